@@ -1,0 +1,57 @@
+"""Settings of the align stage (TOML table ``[align]``)."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+
+@dataclass
+class AlignSettings:
+    """How sections are aligned to each other.
+
+    Attributes
+    ----------
+    work_scale : int
+        Coarse alignment works on mosaics downsampled by this integer factor.
+    model : str
+        ``"rigid"``, ``"similarity"`` or ``"affine"``: the section model of the coarse stage.
+    neighbours : int
+        Each section is matched to the next ``neighbours`` sections (1 = z+1 only; 2 = z+1, z+2).
+    detector : str
+        ``"sift"``, ``"akaze"`` or ``"orb"``.
+    ratio : float
+        Lowe's ratio-test threshold.
+    ransac_threshold : float
+        RANSAC inlier threshold, working-resolution pixels.
+    min_inliers : int
+        Section pairs with fewer RANSAC inliers are not used; a section left with
+        no usable pair is flagged and interpolated from its neighbours.
+    elastic : bool
+        Run the elastic refinement after the coarse stage.
+    grid_spacing : float
+        Spacing of the elastic grid, full-resolution pixels.
+    block_radius : int
+        Half size of a block-matching template, elastic working pixels.
+    search_radius : int
+        Largest displacement searched by block matching, elastic working pixels.
+    elastic_scale : int
+        Elastic block matching works on mosaics downsampled by this factor.
+    stiffness : float
+        Weight of the in-plane smoothness of each displacement field.
+    min_block_ncc : float
+        Block matches with a lower correlation peak are discarded.
+    """
+
+    work_scale: int = 4
+    model: str = "affine"
+    neighbours: int = 2
+    detector: str = "sift"
+    ratio: float = 0.8
+    ransac_threshold: float = 3.0
+    min_inliers: int = 12
+    elastic: bool = True
+    grid_spacing: float = 128.0
+    block_radius: int = 24
+    search_radius: int = 12
+    elastic_scale: int = 2
+    stiffness: float = 1.0
+    min_block_ncc: float = 0.4

@@ -1,0 +1,118 @@
+"""Pipeline TOML -> typed, validated settings.
+
+A pipeline file has one table per stage (``[volume]``, ``[stitch]``,
+``[align]``, ``[render]``, ``[report]``); every key is optional and defaults
+to the value documented on the stage's settings class. Unknown tables or
+keys, and values of the wrong type, are errors naming the file and key.
+"""
+from __future__ import annotations
+
+import dataclasses
+import tomllib
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from .align.settings import AlignSettings
+from .errors import InputError
+from .qc.settings import ReportSettings
+from .render.settings import RenderSettings
+from .stitch.settings import StitchSettings
+
+
+@dataclass
+class VolumeSettings:
+    """Physical scale of the volume (TOML table ``[volume]``).
+
+    Attributes
+    ----------
+    pixel_size : float
+        Nanometres per full-resolution pixel in x and y.
+    section_thickness : float
+        Nanometres between consecutive sections (z step).
+    """
+
+    pixel_size: float = 4.0
+    section_thickness: float = 40.0
+
+
+@dataclass
+class PipelineConfig:
+    """All settings of one build."""
+
+    volume: VolumeSettings = field(default_factory=VolumeSettings)
+    stitch: StitchSettings = field(default_factory=StitchSettings)
+    align: AlignSettings = field(default_factory=AlignSettings)
+    render: RenderSettings = field(default_factory=RenderSettings)
+    report: ReportSettings = field(default_factory=ReportSettings)
+
+    def to_json(self) -> dict:
+        """Return all settings as a plain dict (for the build record)."""
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def from_json(cls, rec: dict, source: str = "build.json") -> "PipelineConfig":
+        """Rebuild settings from :meth:`to_json` output."""
+        return _from_tables(rec, source)
+
+
+def _coerce(value, kind, where: str, source: str):
+    origin = typing.get_origin(kind)
+    if kind is bool:
+        if isinstance(value, bool):
+            return value
+    elif kind is int:
+        if isinstance(value, int) and not isinstance(value, bool):
+            return value
+    elif kind is float:
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            return float(value)
+    elif kind is str:
+        if isinstance(value, str):
+            return value
+    elif origin is tuple:
+        args = typing.get_args(kind)
+        if isinstance(value, (list, tuple)) and len(value) == len(args):
+            return tuple(_coerce(v, a, where, source) for v, a in zip(value, args))
+    name = getattr(kind, "__name__", str(kind))
+    raise InputError(f"{where} must be {name}, got {value!r}", file=source)
+
+
+def _fill(cls, table: dict, name: str, source: str):
+    if not isinstance(table, dict):
+        raise InputError(f"[{name}] must be a table", file=source)
+    hints = typing.get_type_hints(cls)
+    known = {f.name for f in dataclasses.fields(cls)}
+    unknown = sorted(set(table) - known)
+    if unknown:
+        raise InputError(f"unknown key(s) in [{name}]: {', '.join(unknown)}; known: {', '.join(sorted(known))}",
+                         file=source)
+    return cls(**{k: _coerce(v, hints[k], f"[{name}] {k}", source) for k, v in table.items()})
+
+
+def _from_tables(tables: dict, source: str) -> PipelineConfig:
+    hints = typing.get_type_hints(PipelineConfig)
+    unknown = sorted(set(tables) - set(hints))
+    if unknown:
+        raise InputError(f"unknown table(s) {', '.join(unknown)}; known: {', '.join(hints)}", file=source)
+    return PipelineConfig(**{k: _fill(hints[k], v, k, source) for k, v in tables.items()})
+
+
+def load_config(path: str | Path | None = None) -> PipelineConfig:
+    """Return the settings of a pipeline TOML file (defaults when ``path`` is None).
+
+    Raises
+    ------
+    InputError
+        If the file is missing, is not valid TOML, or has unknown keys or wrong types.
+    """
+    if path is None:
+        return PipelineConfig()
+    path = Path(path)
+    try:
+        tables = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise InputError("pipeline file not found", file=path) from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"not valid TOML ({exc})", file=path) from None
+    return _from_tables(tables, str(path))

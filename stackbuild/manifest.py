@@ -1,0 +1,239 @@
+"""The input contract: tile and channel manifests -> validated records.
+
+Tile manifest (CSV with a header)
+    ``section`` integer cutting order (gaps mean lost sections);
+    ``tile`` identifier unique within the section (optional, default the file stem);
+    ``path`` image file, relative to the manifest's folder or absolute;
+    ``x``, ``y`` nominal stage position of the tile's top-left corner, in
+    full-resolution pixels (floats).
+
+Channel manifest (CSV with a header)
+    ``section``, ``channel`` (a name), ``path``, ``pixel_size`` (nm per pixel of
+    that image) and optional ``x``, ``y`` (approximate top-left, section pixels).
+
+Tile headers are checked (single channel, 8 or 16 bit, 2-D) when the manifest
+is read, before any pixels are allocated, so a bad file is named up front.
+"""
+from __future__ import annotations
+
+import csv
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import tifffile
+
+from .errors import InputError
+
+TILE_COLUMNS = ("section", "path", "x", "y")
+CHANNEL_COLUMNS = ("section", "channel", "path", "pixel_size")
+_NAME_OK = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
+
+
+@dataclass(frozen=True)
+class TileEntry:
+    """One row of a tile manifest, checked."""
+
+    section: int
+    tile: str
+    path: Path
+    x: float
+    y: float
+    width: int
+    height: int
+    dtype: str
+    row: int = 0
+
+
+@dataclass(frozen=True)
+class ChannelEntry:
+    """One row of a channel manifest, checked."""
+
+    section: int
+    channel: str
+    path: Path
+    pixel_size: float
+    x: float | None
+    y: float | None
+    width: int
+    height: int
+    dtype: str
+    row: int = 0
+
+
+@dataclass
+class TileManifest:
+    """All tiles of a volume, grouped by section."""
+
+    source: Path
+    tiles: list[TileEntry] = field(default_factory=list)
+
+    @property
+    def sections(self) -> list[int]:
+        """Sorted section numbers that have at least one tile."""
+        return sorted({t.section for t in self.tiles})
+
+    def section_tiles(self, section: int) -> list[TileEntry]:
+        """Tiles of one section, in manifest order."""
+        return [t for t in self.tiles if t.section == section]
+
+    @property
+    def lost_sections(self) -> list[int]:
+        """Section numbers missing between the first and last section."""
+        present = set(self.sections)
+        if not present:
+            return []
+        return [s for s in range(min(present), max(present) + 1) if s not in present]
+
+    @property
+    def dtype(self) -> str:
+        """The tiles' common pixel type."""
+        return self.tiles[0].dtype
+
+
+def _read_rows(path: Path, required: tuple[str, ...]):
+    if not path.is_file():
+        raise InputError("manifest not found", file=path)
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except UnicodeDecodeError:
+        raise InputError("manifest is not a UTF-8 text file", file=path) from None
+    reader = csv.DictReader(text.splitlines())
+    header = [h.strip() for h in (reader.fieldnames or [])]
+    if not header:
+        raise InputError("manifest is empty (no header line)", file=path)
+    reader.fieldnames = header
+    missing = [c for c in required if c not in header]
+    if missing:
+        raise InputError(f"missing column(s) {', '.join(missing)}; header is {', '.join(header)}",
+                         file=path, row=1)
+    rows = []
+    for i, row in enumerate(reader, start=2):
+        if not any((v or "").strip() for v in row.values() if isinstance(v, str)):
+            continue  # blank line
+        if None in row:
+            raise InputError("more fields than header columns", file=path, row=i)
+        rows.append((i, {k: (v or "").strip() for k, v in row.items()}))
+    if not rows:
+        raise InputError("manifest has a header but no rows", file=path)
+    return rows
+
+
+def _int(value: str, name: str, path: Path, row: int) -> int:
+    try:
+        return int(value)
+    except ValueError:
+        raise InputError(f"column {name!r} must be an integer, got {value!r}", file=path, row=row) from None
+
+
+def _float(value: str, name: str, path: Path, row: int) -> float:
+    try:
+        f = float(value)
+    except ValueError:
+        raise InputError(f"column {name!r} must be a number, got {value!r}", file=path, row=row) from None
+    if not math.isfinite(f):
+        raise InputError(f"column {name!r} must be finite, got {value!r}", file=path, row=row)
+    return f
+
+
+def _resolve(value: str, manifest: Path, row: int) -> Path:
+    if not value:
+        raise InputError("column 'path' is empty", file=manifest, row=row)
+    p = Path(value)
+    if not p.is_absolute():
+        p = manifest.parent / p
+    if not p.is_file():
+        raise InputError(f"image file not found: {p}", file=manifest, row=row)
+    return p.resolve()
+
+
+def image_header(path: Path, manifest: Path | None = None, row: int | None = None):
+    """Return ``(height, width, dtype)`` of a single-channel 8/16-bit TIFF, reading the header only."""
+    where = dict(file=manifest or path, row=row)
+    try:
+        with tifffile.TiffFile(path) as tif:
+            page = tif.pages.first
+            shape, dtype = tuple(page.shape), page.dtype
+    except Exception as exc:  # tifffile raises many types for non-TIFF data
+        raise InputError(f"{path} is not a readable TIFF image ({type(exc).__name__}: {exc})", **where) from None
+    if len(shape) != 2:
+        raise InputError(f"{path} must be a single-channel 2-D image, has shape {shape}", **where)
+    if dtype.kind != "u" or dtype.itemsize not in (1, 2):
+        raise InputError(f"{path} must be 8- or 16-bit unsigned, is {dtype}", **where)
+    return shape[0], shape[1], dtype.str.lstrip("<>|=")
+
+
+def read_tile_manifest(path: str | Path) -> TileManifest:
+    """Read and check a tile manifest.
+
+    Parameters
+    ----------
+    path : str or Path
+        The CSV file.
+
+    Returns
+    -------
+    TileManifest
+        Checked entries; every image exists and has a valid header.
+
+    Raises
+    ------
+    InputError
+        Naming the file and line for a missing column, a non-numeric value, a
+        duplicate tile, a missing file, a file that is not an 8/16-bit
+        single-channel TIFF, or tiles of mixed pixel type.
+    """
+    path = Path(path)
+    rows = _read_rows(path, TILE_COLUMNS)
+    seen: dict[tuple[int, str], int] = {}
+    tiles = []
+    for row, rec in rows:
+        section = _int(rec["section"], "section", path, row)
+        if section < 0:
+            raise InputError("column 'section' must be >= 0", file=path, row=row)
+        x = _float(rec["x"], "x", path, row)
+        y = _float(rec["y"], "y", path, row)
+        image = _resolve(rec["path"], path, row)
+        tile = rec.get("tile") or image.stem
+        key = (section, tile)
+        if key in seen:
+            raise InputError(f"duplicate tile {tile!r} in section {section} (first on line {seen[key]})",
+                             file=path, row=row)
+        seen[key] = row
+        h, w, dtype = image_header(image, path, row)
+        tiles.append(TileEntry(section, tile, image, x, y, w, h, dtype, row))
+    dtypes = {t.dtype for t in tiles}
+    if len(dtypes) > 1:
+        odd = next(t for t in tiles if t.dtype != tiles[0].dtype)
+        raise InputError(f"tiles mix pixel types {sorted(dtypes)}; all tiles must share one",
+                         file=path, row=odd.row)
+    return TileManifest(path.resolve(), tiles)
+
+
+def read_channel_manifest(path: str | Path) -> list[ChannelEntry]:
+    """Read and check a channel manifest (see the module docstring for columns)."""
+    path = Path(path)
+    rows = _read_rows(path, CHANNEL_COLUMNS)
+    seen: dict[tuple[int, str], int] = {}
+    entries = []
+    for row, rec in rows:
+        section = _int(rec["section"], "section", path, row)
+        name = rec["channel"]
+        if not _NAME_OK.match(name):
+            raise InputError(f"channel name {name!r} must be letters, digits, '_', '-' or '.'",
+                             file=path, row=row)
+        pixel_size = _float(rec["pixel_size"], "pixel_size", path, row)
+        if pixel_size <= 0:
+            raise InputError("column 'pixel_size' must be > 0", file=path, row=row)
+        x = _float(rec["x"], "x", path, row) if rec.get("x") else None
+        y = _float(rec["y"], "y", path, row) if rec.get("y") else None
+        image = _resolve(rec["path"], path, row)
+        key = (section, name)
+        if key in seen:
+            raise InputError(f"duplicate channel {name!r} for section {section} (first on line {seen[key]})",
+                             file=path, row=row)
+        seen[key] = row
+        h, w, dtype = image_header(image, path, row)
+        entries.append(ChannelEntry(section, name, image, pixel_size, x, y, w, h, dtype, row))
+    return entries

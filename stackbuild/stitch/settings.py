@@ -1,0 +1,53 @@
+"""Settings of the stitch stage (TOML table ``[stitch]``)."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+
+@dataclass
+class StitchSettings:
+    """How tiles of one section are registered, placed and corrected.
+
+    Attributes
+    ----------
+    max_stage_error : float
+        Largest expected error of a stage position, pixels; bounds the
+        phase-correlation search and rejects shifts farther than this.
+    min_overlap : int
+        Pairs whose nominal overlap is narrower than this (pixels) are skipped.
+    min_ncc : float
+        Pairs whose normalised cross-correlation after the shift is lower are rejected.
+    min_peak_ratio : float
+        Pairs whose correlation peak is not this many times the next peak are rejected.
+    upsample : int
+        Sub-pixel refinement factor of the upsampled-DFT method (1/upsample px).
+    prior_weight : float
+        Weight of the pull of each tile toward its stage position, relative to a pair of weight 1.
+    max_residual : float
+        Pairs whose residual after the placement solve exceeds this (pixels) are rejected
+        and the solve repeated.
+    illumination : bool
+        Estimate and divide out the section's shared illumination profile.
+    intensity : bool
+        Solve per-tile gain and offset from the overlaps.
+    blank_std : float
+        Tiles whose robust contrast (grey levels, 8-bit scale) is below this are flagged blank.
+    focus_min : float
+        Tiles whose focus measure (variance of the Laplacian, relative to the section median)
+        is below this are flagged out of focus.
+    saturated_max : float
+        Tiles with a larger fraction of saturated (or zero) pixels are flagged.
+    """
+
+    max_stage_error: float = 40.0
+    min_overlap: int = 16
+    min_ncc: float = 0.3
+    min_peak_ratio: float = 1.3
+    upsample: int = 100
+    prior_weight: float = 1e-3
+    max_residual: float = 1.5
+    illumination: bool = True
+    intensity: bool = True
+    blank_std: float = 2.0
+    focus_min: float = 0.2
+    saturated_max: float = 0.05

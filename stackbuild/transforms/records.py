@@ -1,0 +1,228 @@
+"""Typed, versioned records of what each stage found, as stored in ``DIR/transforms/``.
+
+Each record converts to and from a JSON-ready ``dict`` (``to_json`` /
+``from_json``); the store adds the envelope (format name, version, kind,
+frames, units) and validates it on reading. Large arrays (illumination
+profiles, displacement fields) are stored as zarr arrays beside the JSON.
+"""
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field, fields
+
+import numpy as np
+
+from .types import Affine2D, DisplacementField
+
+#: Version of the on-disk transform format. Bump when a record changes shape;
+#: readers refuse files from a newer version.
+FORMAT_VERSION = 1
+
+
+def _plain(cls, rec: dict):
+    names = {f.name for f in fields(cls)}
+    return cls(**{k: v for k, v in rec.items() if k in names})
+
+
+@dataclass
+class TilePlacement:
+    """Where one tile sits in its section mosaic, and how to correct its intensity.
+
+    ``x, y`` is the solved ``tile -> section`` translation (the position of the
+    tile's pixel (0, 0) centre in section pixels). Corrected intensity is
+    ``gain * raw / illumination + offset``.
+    """
+
+    tile: str
+    path: str
+    width: int
+    height: int
+    stage_x: float
+    stage_y: float
+    x: float
+    y: float
+    gain: float = 1.0
+    offset: float = 0.0
+    flags: list[str] = field(default_factory=list)
+    stats: dict = field(default_factory=dict)
+    residual: float | None = None
+
+    def to_json(self) -> dict:
+        """Return a JSON-ready dict."""
+        return asdict(self)
+
+    @classmethod
+    def from_json(cls, rec: dict) -> "TilePlacement":
+        """Read a dict written by :meth:`to_json`."""
+        return _plain(cls, rec)
+
+
+@dataclass
+class PairMatch:
+    """One registered tile pair: measured offset of tile ``b`` relative to tile ``a``.
+
+    ``dx, dy`` = position of ``b`` minus position of ``a`` (section pixels)
+    as measured by phase correlation; ``stage_dx, stage_dy`` the same from the
+    stage positions. ``residual`` is filled in by the placement solve.
+    """
+
+    a: str
+    b: str
+    dx: float
+    dy: float
+    stage_dx: float
+    stage_dy: float
+    ncc: float
+    peak_ratio: float
+    accepted: bool
+    reason: str = ""
+    weight: float = 1.0
+    residual: float | None = None
+
+    def to_json(self) -> dict:
+        """Return a JSON-ready dict."""
+        return asdict(self)
+
+    @classmethod
+    def from_json(cls, rec: dict) -> "PairMatch":
+        """Read a dict written by :meth:`to_json`."""
+        return _plain(cls, rec)
+
+
+@dataclass
+class SectionStitch:
+    """The stitching result of one section (``tile -> section``)."""
+
+    section: int
+    dtype: str
+    tiles: list[TilePlacement]
+    pairs: list[PairMatch] = field(default_factory=list)
+    illumination: np.ndarray | None = None
+    illumination_step: int = 1
+    flags: list[str] = field(default_factory=list)
+    stats: dict = field(default_factory=dict)
+
+    def bbox(self) -> tuple[float, float, float, float]:
+        """Return ``(x0, y0, x1, y1)``: the section-pixel extent covered by the tiles (pixel edges)."""
+        x0 = min(t.x for t in self.tiles) - 0.5
+        y0 = min(t.y for t in self.tiles) - 0.5
+        x1 = max(t.x + t.width for t in self.tiles) - 0.5
+        y1 = max(t.y + t.height for t in self.tiles) - 0.5
+        return x0, y0, x1, y1
+
+    def tile(self, name: str) -> TilePlacement:
+        """Return the placement of tile ``name``."""
+        for t in self.tiles:
+            if t.tile == name:
+                return t
+        raise KeyError(name)
+
+    def to_json(self) -> dict:
+        """Return a JSON-ready dict (the illumination array is stored apart)."""
+        return {
+            "section": self.section, "dtype": self.dtype,
+            "illumination_step": self.illumination_step,
+            "has_illumination": self.illumination is not None,
+            "flags": list(self.flags), "stats": self.stats,
+            "tiles": [t.to_json() for t in self.tiles],
+            "pairs": [p.to_json() for p in self.pairs],
+        }
+
+    @classmethod
+    def from_json(cls, rec: dict, illumination: np.ndarray | None = None) -> "SectionStitch":
+        """Read a dict written by :meth:`to_json`."""
+        return cls(section=int(rec["section"]), dtype=rec["dtype"],
+                   tiles=[TilePlacement.from_json(t) for t in rec["tiles"]],
+                   pairs=[PairMatch.from_json(p) for p in rec.get("pairs", [])],
+                   illumination=illumination,
+                   illumination_step=int(rec.get("illumination_step", 1)),
+                   flags=list(rec.get("flags", [])), stats=dict(rec.get("stats", {})))
+
+
+@dataclass
+class SectionAlignment:
+    """The alignment of one section: ``aligned -> coarse`` field, then ``coarse -> section`` affine."""
+
+    section: int
+    affine: Affine2D = field(default_factory=Affine2D.identity)
+    displacement: DisplacementField | None = None
+    flags: list[str] = field(default_factory=list)
+    stats: dict = field(default_factory=dict)
+
+    def aligned_to_section(self, points: np.ndarray) -> np.ndarray:
+        """Map ``(N, 2)`` aligned-frame ``(x, y)`` points to section pixels."""
+        p = np.asarray(points, dtype=np.float64)
+        if self.displacement is not None:
+            p = self.displacement.apply(p)
+        return self.affine.apply(p)
+
+    def to_json(self) -> dict:
+        """Return a JSON-ready dict (the displacement array is stored apart)."""
+        rec = {"section": self.section, "flags": list(self.flags), "stats": self.stats,
+               "transforms": {
+                   "type": "sequence",
+                   "input": "aligned", "output": "section",
+                   "transformations": [],
+               }}
+        seq = rec["transforms"]["transformations"]
+        if self.displacement is not None:
+            d = self.displacement
+            seq.append({"type": "displacements", "input": "aligned", "output": "coarse",
+                        "path": "displacement.zarr", "origin": list(d.origin),
+                        "spacing": d.spacing, "shape": list(d.vectors.shape[:2]),
+                        "components": ["dx", "dy"], "interpolation": "linear"})
+        seq.append({**self.affine.to_json(), "input": "coarse", "output": "section"})
+        return rec
+
+    @classmethod
+    def from_json(cls, rec: dict, vectors: np.ndarray | None = None) -> "SectionAlignment":
+        """Read a dict written by :meth:`to_json`; ``vectors`` is the stored displacement array."""
+        affine, fld = Affine2D.identity(), None
+        for t in rec["transforms"]["transformations"]:
+            if t["type"] == "affine":
+                affine = Affine2D.from_json(t)
+            elif t["type"] == "displacements":
+                if vectors is None:
+                    raise ValueError("record refers to a displacement field but none was given")
+                fld = DisplacementField(vectors, tuple(t["origin"]), t["spacing"])
+            else:
+                raise ValueError(f"unknown transform type {t['type']!r}")
+        return cls(int(rec["section"]), affine, fld, list(rec.get("flags", [])), dict(rec.get("stats", {})))
+
+
+@dataclass
+class Canvas:
+    """The output volume's extent in the aligned frame, and its physical scale.
+
+    Output pixel ``[row, col]`` of plane ``z`` is aligned point
+    ``(origin_x + col, origin_y + row)`` of section ``first_section + z``.
+    """
+
+    width: int
+    height: int
+    origin_x: float
+    origin_y: float
+    first_section: int
+    last_section: int
+    dtype: str
+    pixel_size_nm: float = 4.0
+    section_thickness_nm: float = 40.0
+    lost_sections: list[int] = field(default_factory=list)
+    flagged_sections: dict = field(default_factory=dict)
+
+    @property
+    def depth(self) -> int:
+        """Number of output planes (lost sections included)."""
+        return self.last_section - self.first_section + 1
+
+    def to_json(self) -> dict:
+        """Return a JSON-ready dict."""
+        d = asdict(self)
+        d["flagged_sections"] = {str(k): v for k, v in self.flagged_sections.items()}
+        return d
+
+    @classmethod
+    def from_json(cls, rec: dict) -> "Canvas":
+        """Read a dict written by :meth:`to_json`."""
+        c = _plain(cls, rec)
+        c.flagged_sections = {int(k): v for k, v in c.flagged_sections.items()}
+        return c

@@ -1,0 +1,219 @@
+"""The versioned transform store: ``DIR/transforms/``.
+
+Layout::
+
+    transforms/
+      canvas.json                      output extent and physical scale (stack)
+      <name>.json                      other stack-level records (e.g. contrast)
+      sections/<NNNNN>/stitch.json     tile placements, intensity corrections
+      sections/<NNNNN>/illumination.zarr   illumination profile (float32)
+      sections/<NNNNN>/align.json      section affine + displacement reference
+      sections/<NNNNN>/displacement.zarr   elastic field vectors (ny, nx, 2)
+      sections/<NNNNN>/history/        earlier versions, ``stitch.0001.json`` ...
+
+Every JSON file has an envelope ``{"format", "version", "kind", "frames",
+"units", "written", "record"}``. Writes are atomic (write a temporary file,
+then rename); when a record is replaced, the old one moves to ``history/``
+with the next version number, so a re-run can be compared or rolled back.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import zarr
+
+from ..errors import InputError
+from .records import FORMAT_VERSION, Canvas, SectionAlignment, SectionStitch
+
+FORMAT_NAME = "stackbuild.transforms"
+_FRAMES = {
+    "stitch": ("tile", "section"),
+    "align": ("aligned", "section"),
+    "canvas": ("aligned", "physical"),
+}
+
+
+def _now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def atomic_write_text(path: Path, text: str) -> None:
+    """Write ``text`` to ``path`` atomically (temporary file in the same folder, then rename)."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+class TransformStore:
+    """Read and write the transform records of one build folder.
+
+    Parameters
+    ----------
+    root : str or Path
+        The ``DIR/transforms`` folder (created on first write).
+    """
+
+    def __init__(self, root: str | Path):
+        self.root = Path(root)
+
+    # ----------------------------------------------------------------- paths
+    def section_dir(self, section: int) -> Path:
+        """Return the folder of one section's records."""
+        return self.root / "sections" / f"{int(section):05d}"
+
+    def _json_path(self, kind: str, section: int | None) -> Path:
+        base = self.root if section is None else self.section_dir(section)
+        return base / f"{kind}.json"
+
+    # -------------------------------------------------------------- envelope
+    def _write(self, kind: str, section: int | None, record: dict,
+               arrays: dict[str, np.ndarray | None] | None = None) -> Path:
+        path = self._json_path(kind, section)
+        self._retire(path, arrays or {})
+        for name, arr in (arrays or {}).items():
+            if arr is not None:
+                self._write_array(path.parent / f"{name}.zarr", arr)
+        src, dst = _FRAMES.get(kind, (None, None))
+        env = {"format": FORMAT_NAME, "version": FORMAT_VERSION, "kind": kind,
+               "section": section, "frames": {"input": src, "output": dst},
+               "units": "pixel", "written": _now(), "record": record}
+        atomic_write_text(path, json.dumps(env, indent=1, allow_nan=False) + "\n")
+        return path
+
+    def _retire(self, path: Path, arrays: dict) -> None:
+        """Move the current version of a record (and its arrays) into ``history/``."""
+        if not path.exists():
+            return
+        hist = path.parent / "history"
+        hist.mkdir(parents=True, exist_ok=True)
+        stem = path.stem
+        n = 1 + max((int(p.name.split(".")[1]) for p in hist.glob(f"{stem}.*.json")), default=0)
+        for name in arrays:
+            old = path.parent / f"{name}.zarr"
+            if old.exists():
+                os.replace(old, hist / f"{name}.{n:04d}.zarr")
+        os.replace(path, hist / f"{stem}.{n:04d}.json")
+
+    @staticmethod
+    def _write_array(path: Path, arr: np.ndarray) -> None:
+        tmp = path.with_name(f".{path.name}.tmp")
+        shutil.rmtree(tmp, ignore_errors=True)
+        z = zarr.create_array(store=str(tmp), shape=arr.shape, dtype=arr.dtype,
+                              chunks=arr.shape, zarr_format=3)
+        z[...] = arr
+        shutil.rmtree(path, ignore_errors=True)
+        os.replace(tmp, path)
+
+    def _read(self, kind: str, section: int | None) -> dict | None:
+        path = self._json_path(kind, section)
+        if not path.exists():
+            return None
+        return read_envelope(path, kind)
+
+    def _read_array(self, section: int, name: str) -> np.ndarray:
+        path = self.section_dir(section) / f"{name}.zarr"
+        try:
+            return np.asarray(zarr.open_array(str(path), mode="r")[...])
+        except Exception as exc:
+            raise InputError(f"transform array is missing or unreadable ({exc})", file=path,
+                             section=section) from None
+
+    # --------------------------------------------------------------- records
+    def save_stitch(self, rec: SectionStitch) -> Path:
+        """Store one section's stitching result, retiring the previous version."""
+        return self._write("stitch", rec.section, rec.to_json(), {"illumination": rec.illumination})
+
+    def load_stitch(self, section: int) -> SectionStitch | None:
+        """Return a section's stitching result, or ``None`` if it has none."""
+        env = self._read("stitch", section)
+        if env is None:
+            return None
+        rec = env["record"]
+        illum = self._read_array(section, "illumination") if rec.get("has_illumination") else None
+        return _checked(SectionStitch.from_json, rec, illum, path=self._json_path("stitch", section))
+
+    def save_alignment(self, rec: SectionAlignment) -> Path:
+        """Store one section's alignment, retiring the previous version."""
+        vec = None if rec.displacement is None else rec.displacement.vectors
+        return self._write("align", rec.section, rec.to_json(), {"displacement": vec})
+
+    def load_alignment(self, section: int) -> SectionAlignment | None:
+        """Return a section's alignment, or ``None`` if it has none."""
+        env = self._read("align", section)
+        if env is None:
+            return None
+        rec = env["record"]
+        kinds = [t["type"] for t in rec.get("transforms", {}).get("transformations", [])]
+        vec = self._read_array(section, "displacement") if "displacements" in kinds else None
+        return _checked(SectionAlignment.from_json, rec, vec, path=self._json_path("align", section))
+
+    def save_canvas(self, canvas: Canvas) -> Path:
+        """Store the output extent."""
+        return self._write("canvas", None, canvas.to_json())
+
+    def load_canvas(self) -> Canvas | None:
+        """Return the output extent, or ``None``."""
+        env = self._read("canvas", None)
+        return None if env is None else _checked(Canvas.from_json, env["record"],
+                                                 path=self._json_path("canvas", None))
+
+    def save_doc(self, kind: str, record: dict, section: int | None = None) -> Path:
+        """Store any other JSON record (stack-level when ``section`` is None)."""
+        return self._write(kind, section, record)
+
+    def load_doc(self, kind: str, section: int | None = None) -> dict | None:
+        """Return a record stored with :meth:`save_doc`, or ``None``."""
+        env = self._read(kind, section)
+        return None if env is None else env["record"]
+
+    def sections_with(self, kind: str) -> list[int]:
+        """Return the sections that have a current record of ``kind``."""
+        base = self.root / "sections"
+        if not base.exists():
+            return []
+        return sorted(int(p.name) for p in base.iterdir() if (p / f"{kind}.json").exists())
+
+    def history(self, kind: str, section: int | None = None) -> list[Path]:
+        """Return the retired versions of a record, oldest first."""
+        base = self.root if section is None else self.section_dir(section)
+        return sorted((base / "history").glob(f"{kind}.*.json"))
+
+
+def read_envelope(path: Path, kind: str | None = None) -> dict:
+    """Read and validate a transform JSON file; raise :class:`InputError` if it is bad."""
+    try:
+        env = json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise InputError(f"transform file is unreadable or truncated ({exc})", file=path) from None
+    if not isinstance(env, dict) or env.get("format") != FORMAT_NAME:
+        raise InputError(f"not a {FORMAT_NAME} file", file=path)
+    version = env.get("version")
+    if not isinstance(version, int) or version > FORMAT_VERSION:
+        raise InputError(f"written by a newer stackbuild (format version {version}; this one reads "
+                         f"<= {FORMAT_VERSION}); upgrade stackbuild", file=path)
+    if kind is not None and env.get("kind") != kind:
+        raise InputError(f"expected a {kind!r} record, found {env.get('kind')!r}", file=path)
+    if "record" not in env:
+        raise InputError("transform file has no record", file=path)
+    return env
+
+
+def _checked(fn, *args, path: Path):
+    try:
+        return fn(*args)
+    except (KeyError, TypeError, ValueError) as exc:
+        raise InputError(f"transform record is malformed ({type(exc).__name__}: {exc})", file=path) from None

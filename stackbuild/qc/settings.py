@@ -18,9 +18,37 @@ class ReportSettings:
         Residuals above this (pixels) are listed as hot spots.
     worst : int
         How many worst sections, seams and channels the report lists.
+    measure_scale : int
+        Section-to-section residuals are measured on the coarsest pyramid level
+        whose pixel is at most this many full-resolution pixels.
+    block_spacing : int
+        Grid step of the section-to-section block matching, full-resolution pixels.
+    block_radius : int
+        Template half size of that block matching, full-resolution pixels.
+    block_search : int
+        Largest shift that block matching searches, full-resolution pixels.
+    min_block_ncc : float
+        Blocks (seams and sections) with a weaker correlation peak are not counted.
+    seam_spacing : int
+        Grid step of the block matching inside tile overlaps, pixels.
+    seam_radius : int
+        Template half size inside tile overlaps, pixels.
+    seam_search : int
+        Largest residual shift searched inside tile overlaps, pixels.
+    reslice_px : int
+        The orthogonal re-slice uses the finest level whose plane side fits in this many pixels.
     """
 
     stitch_rms: float = 0.5
     align_p95: float = 2.0
     align_max: float = 5.0
     worst: int = 10
+    measure_scale: int = 2
+    block_spacing: int = 96
+    block_radius: int = 24
+    block_search: int = 16
+    min_block_ncc: float = 0.3
+    seam_spacing: int = 24
+    seam_radius: int = 10
+    seam_search: int = 6
+    reslice_px: int = 1536

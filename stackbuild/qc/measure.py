@@ -1,0 +1,150 @@
+"""Independent measurements of the output: seam residuals and section-to-section residuals.
+
+Nothing here trusts the numbers the stitcher or the aligner stored: seams are
+re-measured from the raw tiles at their final placements, and alignment is
+re-measured by block matching adjacent planes of the rendered volume.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from itertools import combinations
+
+import numpy as np
+import tifffile
+
+from ..transforms.records import Canvas, SectionAlignment, SectionStitch
+from .blockmatch import BlockMatches, match_blocks
+from .planes import PlaneSource, data_mask
+from .seams import overlap_box, seam_residual
+from .settings import ReportSettings
+
+
+@dataclass
+class SeamBlocks:
+    """Re-measured residuals of one tile pair (points in section pixels)."""
+
+    a: str
+    b: str
+    blocks: BlockMatches
+    error: str = ""
+
+
+@dataclass
+class PlanePair:
+    """Re-measured residuals between planes ``za`` and ``zb`` (points in level-0 output pixels,
+    shifts in level-0 pixels)."""
+
+    za: int
+    zb: int
+    blocks: BlockMatches
+
+
+@dataclass
+class Measurements:
+    """All block-level measurements of one build, kept in memory for the metrics and plots."""
+
+    seams: dict[int, list[SeamBlocks]] = field(default_factory=dict)
+    plane_pairs: list[PlanePair] = field(default_factory=list)
+    source: PlaneSource | None = None
+    notes: list[str] = field(default_factory=list)
+
+
+def section_to_output(points: np.ndarray, alignment: SectionAlignment | None, canvas: Canvas | None,
+                      iterations: int = 8) -> np.ndarray:
+    """Map ``(N, 2)`` section-pixel ``(x, y)`` points to level-0 output pixels.
+
+    The stored alignment maps aligned -> section (pull-back); it is inverted
+    here: exactly for the affine, by fixed-point iteration for the
+    displacement field (which converges because the field is smooth and
+    small against its grid spacing).
+    """
+    p = np.asarray(points, float).reshape(-1, 2)
+    if alignment is not None:
+        coarse = alignment.affine.inverse().apply(p)
+        q = coarse.copy()
+        if alignment.displacement is not None:
+            for _ in range(iterations):
+                q = coarse - alignment.displacement.displacement(q)
+        p = q
+    if canvas is not None:
+        p = p - np.array([canvas.origin_x, canvas.origin_y])
+    return p
+
+
+def _read_tile(path: str) -> np.ndarray:
+    img = tifffile.imread(path)
+    if img.ndim != 2:
+        raise ValueError(f"tile is not a single 2-D image (shape {img.shape})")
+    return img.astype(np.float32)
+
+
+def _seam_pairs(stitch: SectionStitch, min_side: int) -> list[tuple[str, str]]:
+    if stitch.pairs:
+        return [(p.a, p.b) for p in stitch.pairs]
+    out = []  # the stitcher kept no pairs: measure every overlap of the final placement
+    for ta, tb in combinations(stitch.tiles, 2):
+        box = overlap_box((ta.x, ta.y), (ta.height, ta.width), (tb.x, tb.y), (tb.height, tb.width))
+        if box and min(box[2] - box[0], box[3] - box[1]) >= min_side:
+            out.append((ta.tile, tb.tile))
+    return out
+
+
+def measure_seams(stitch: SectionStitch, settings: ReportSettings) -> list[SeamBlocks]:
+    """Return re-measured residuals of every tile pair of one section, at the final placements."""
+    r, s = settings.seam_radius, settings.seam_search
+    cache: dict[str, np.ndarray | str] = {}
+
+    def tile(name: str):
+        if name not in cache:
+            try:
+                cache[name] = _read_tile(stitch.tile(name).path)
+            except Exception as exc:  # an unreadable tile leaves its seams unmeasured, not the report
+                cache[name] = f"{name}: {type(exc).__name__}: {exc}"
+        return cache[name]
+
+    out = []
+    for a, b in _seam_pairs(stitch, 2 * (r + s) + 1):
+        ia, ib = tile(a), tile(b)
+        if isinstance(ia, str) or isinstance(ib, str):
+            err = ia if isinstance(ia, str) else ib
+            out.append(SeamBlocks(a, b, BlockMatches(np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0)), err))
+            continue
+        ta, tb = stitch.tile(a), stitch.tile(b)
+        m = seam_residual(ia, (ta.x, ta.y), ib, (tb.x, tb.y), radius=r, search=s,
+                          spacing=settings.seam_spacing, min_ncc=settings.min_block_ncc)
+        out.append(SeamBlocks(a, b, m))
+    return out
+
+
+def plane_neighbours(depth: int, lost: set[int]) -> list[tuple[int, int]]:
+    """Return the ``(za, zb)`` plane pairs to compare: each present plane with the next present one."""
+    present = [z for z in range(depth) if z not in lost]
+    return list(zip(present[:-1], present[1:]))
+
+
+def measure_planes(source: PlaneSource, lost: set[int], settings: ReportSettings,
+                   progress=None) -> list[PlanePair]:
+    """Return block-matching residuals between every pair of adjacent present planes.
+
+    Block sizes in the settings are level-0 pixels; they are divided by the
+    level's factor so the blocks cover the same tissue at any level.
+    """
+    f = source.factor
+    spacing = max(2, int(round(settings.block_spacing / f)))
+    radius = max(3, int(round(settings.block_radius / f)))
+    search = max(2, int(round(settings.block_search / f)))
+    pairs = plane_neighbours(source.depth, lost)
+    out, cached = [], {}
+    for k, (za, zb) in enumerate(pairs):
+        a = cached.pop(za, None)
+        if a is None:
+            a = source.plane(za)
+        b = source.plane(zb)
+        cached = {zb: b}
+        valid = data_mask(a) & data_mask(b)
+        m = match_blocks(a, b, spacing=spacing, radius=radius, search=search,
+                         min_ncc=settings.min_block_ncc, valid=valid)
+        out.append(PlanePair(za, zb, BlockMatches(source.to_level0(m.points), m.shifts * f, m.ncc)))
+        if progress is not None:
+            progress(k + 1, len(pairs))
+    return out

@@ -83,15 +83,17 @@ class TransformStore:
     def _write(self, kind: str, section: int | None, record: dict,
                arrays: dict[str, np.ndarray | None] | None = None) -> Path:
         path = self._json_path(kind, section)
-        self._retire(path, arrays or {})
-        for name, arr in (arrays or {}).items():
-            if arr is not None:
-                self._write_array(path.parent / f"{name}.zarr", arr)
         src, dst = _FRAMES.get(kind, (None, None))
         env = {"format": FORMAT_NAME, "version": FORMAT_VERSION, "kind": kind,
                "section": section, "frames": {"input": src, "output": dst},
                "units": "pixel", "written": _now(), "record": record}
-        atomic_write_text(path, json.dumps(env, indent=1, allow_nan=False) + "\n")
+        # Serialise before touching the current version, so a bad record loses nothing.
+        text = json.dumps(env, indent=1, allow_nan=False) + "\n"
+        self._retire(path, arrays or {})
+        for name, arr in (arrays or {}).items():
+            if arr is not None:
+                self._write_array(path.parent / f"{name}.zarr", arr)
+        atomic_write_text(path, text)
         return path
 
     def _retire(self, path: Path, arrays: dict) -> None:

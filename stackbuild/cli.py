@@ -1,0 +1,378 @@
+"""Command line: argument parsing only; every command calls stage functions.
+
+Exit status: 0 success, 2 bad input (one line naming the file, row or
+section), 3 the report missed a ``--fail-on`` bar, 1 an unexpected error.
+"""
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import logging
+import shutil
+import sys
+import typing
+from pathlib import Path
+
+from . import __version__
+from .errors import InputError
+
+EXIT_OK, EXIT_ERROR, EXIT_INPUT, EXIT_FAILED_BAR = 0, 1, 2, 3
+_OUR_OUTPUTS = ("build.json", "transforms", "volume.zarr", "qc")
+
+
+# ------------------------------------------------------------------ options
+def _add_cluster(p: argparse.ArgumentParser) -> None:
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--workers", type=int, metavar="N",
+                   help="run on a local Dask cluster of N worker processes (default: one per core)")
+    g.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run on an existing Dask scheduler: an address such as tcp://host:8786 "
+                        "or the path of a scheduler file (e.g. from dask-jobqueue on Slurm)")
+
+
+def _add_common(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--debug", action="store_true", help="show full tracebacks and debug logging")
+    p.add_argument("--quiet", action="store_true", help="draw no progress bars")
+
+
+def _sections(text: str) -> list[int]:
+    """Parse ``3,5-7`` into ``[3, 5, 6, 7]``."""
+    out = []
+    try:
+        for part in text.split(","):
+            a, _, b = part.partition("-")
+            out.extend(range(int(a), int(b or a) + 1))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected section numbers like 3,5-7, got {text!r}") from None
+    return out
+
+
+def _parser() -> argparse.ArgumentParser:
+    top = argparse.ArgumentParser(
+        prog="stackbuild",
+        description="Turn serial-section EM tiles into a registered, multiscale OME-Zarr volume: "
+                    "stitch each section, align the sections, render the pyramid, report the quality. "
+                    "Raw tiles are only read, never written.")
+    top.add_argument("--version", action="version", version=f"stackbuild {__version__}")
+    sub = top.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    b = sub.add_parser("build", help="run the whole pipeline: stitch, align, render, report",
+                       description="Run every stage on a tile manifest and write the build folder DIR: "
+                                   "DIR/volume.zarr (OME-Zarr 0.5), DIR/transforms/, DIR/qc/report.html.")
+    b.add_argument("tiles", metavar="TILES_CSV", help="tile manifest (columns section,tile,path,x,y)")
+    b.add_argument("--out", required=True, metavar="DIR", help="build folder to create")
+    b.add_argument("--channels", metavar="CHANNELS_CSV",
+                   help="channel manifest of molecular marker images (columns section,channel,path,pixel_size[,x,y]); "
+                        "recorded with the build")
+    b.add_argument("--pixel-size", type=float, metavar="NM",
+                   help="nanometres per full-resolution pixel (default from --config, else 4)")
+    b.add_argument("--section-thickness", type=float, metavar="NM",
+                   help="nanometres between sections (default from --config, else 40)")
+    b.add_argument("--config", metavar="PIPELINE.toml",
+                   help="pipeline settings; see pipelines/default.toml for every key")
+    g = b.add_mutually_exclusive_group()
+    g.add_argument("--resume", action="store_true",
+                   help="continue an interrupted build in DIR, keeping every finished section and plane")
+    g.add_argument("--overwrite", action="store_true",
+                   help="delete the outputs of an earlier build in DIR (build.json, transforms/, "
+                        "volume.zarr, qc/) and start again; raw tiles are never touched")
+    b.add_argument("--fail-on", action="append", metavar="RULE", default=None,
+                   help="exit with status 3 if the report misses this bar, e.g. 'align.p95>2px' (repeatable)")
+    _add_cluster(b)
+    _add_common(b)
+
+    s = sub.add_parser("stitch", help="stitch the sections of an existing build folder",
+                       description="Register overlapping tiles and solve tile placements and intensity "
+                                   "corrections; results go to DIR/transforms.")
+    s.add_argument("dir", metavar="DIR", help="build folder")
+    s.add_argument("--sections", type=_sections, metavar="LIST",
+                   help="only these sections, e.g. 3,5-7 (default all)")
+    s.add_argument("--resume", action="store_true", help="skip sections that already have a result")
+    _add_cluster(s)
+    _add_common(s)
+
+    a = sub.add_parser("align", help="align the stitched sections of a build folder",
+                       description="Feature-based affine alignment, a global solve over the stack, then "
+                                   "elastic refinement; results go to DIR/transforms.")
+    a.add_argument("dir", metavar="DIR", help="build folder")
+    _add_cluster(a)
+    _add_common(a)
+
+    r = sub.add_parser("render", help="write the multiscale OME-Zarr volume of a build folder",
+                       description="Resample raw tiles through the stored transforms into "
+                                   "DIR/volume.zarr, all pyramid levels in one pass.")
+    r.add_argument("dir", metavar="DIR", help="build folder")
+    r.add_argument("--planes", type=_sections, metavar="LIST",
+                   help="re-render only these output planes (z = section - first section), e.g. 0,4-6")
+    g = r.add_mutually_exclusive_group()
+    g.add_argument("--resume", action="store_true", help="render only the planes not finished yet")
+    g.add_argument("--overwrite", action="store_true", help="replace an existing volume.zarr")
+    _add_cluster(r)
+    _add_common(r)
+
+    q = sub.add_parser("report", help="measure quality and write DIR/qc/report.html",
+                       description="Compute residual metrics, draw the plots and write a self-contained "
+                                   "HTML report.")
+    q.add_argument("dir", metavar="DIR", help="build folder")
+    q.add_argument("--fail-on", action="append", metavar="RULE", default=None,
+                   help="exit with status 3 if the volume misses this bar, e.g. 'align.p95>2px', "
+                        "'stitch.rms>0.5px', 'flagged>0' (repeatable)")
+    _add_common(q)
+
+    u = sub.add_parser("update", help="re-register and re-render sections whose tiles were imaged again",
+                       description="Replace the tiles of the sections listed in NEW_TILES_CSV, then "
+                                   "re-stitch those sections, re-align the stack and re-render what changed.")
+    u.add_argument("dir", metavar="DIR", help="build folder")
+    u.add_argument("--tiles", required=True, metavar="NEW_TILES_CSV",
+                   help="tile manifest holding only the re-imaged sections")
+    _add_cluster(u)
+    _add_common(u)
+
+    _add_synth(sub)
+    return top
+
+
+def _add_synth(sub) -> None:
+    from .synth import SynthParams
+
+    doc = _attribute_docs(SynthParams)
+    p = sub.add_parser("synth", help="write a synthetic serial-section data set with ground truth",
+                       description="Synthesise a deterministic EM-like tissue phantom cut into sections "
+                                   "and tiles, with marker channels and ground truth, into OUTDIR.")
+    p.add_argument("outdir", metavar="OUTDIR", help="folder to write (tiles.csv, channels.csv, tiles/, "
+                                                    "channels/, truth/)")
+    hints = typing.get_type_hints(SynthParams)
+    for f in dataclasses.fields(SynthParams):
+        kind = hints[f.name]
+        default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
+        flag = "--" + f.name.replace("_", "-")
+        help_text = f"{doc.get(f.name, '')} (default: {default!r})"
+        if kind is bool:
+            p.add_argument(flag, action=argparse.BooleanOptionalAction, default=default, help=help_text)
+        elif typing.get_origin(kind) is tuple:
+            args = typing.get_args(kind)
+            elem = args[0] if args else str
+            nargs = "*" if (len(args) == 2 and args[1] is Ellipsis) else len(args)
+            p.add_argument(flag, nargs=nargs, type=elem, default=default, help=help_text)
+        else:
+            p.add_argument(flag, type=kind, default=default, help=help_text)
+    _add_common(p)
+
+
+def _attribute_docs(cls) -> dict[str, str]:
+    """Return ``{field: first description line}`` from a numpy-style ``Attributes`` section."""
+    lines = (cls.__doc__ or "").splitlines()
+    out, current = {}, None
+    inside = False
+    for line in lines:
+        s = line.strip()
+        if s == "Attributes":
+            inside = True
+            continue
+        if not inside or set(s) == {"-"}:
+            continue
+        if s and not line.startswith(" " * 8) and ":" in s:
+            current = s.split(":")[0].strip()
+            out[current] = ""
+        elif s and current and not out[current]:
+            out[current] = s
+        elif not s and current is None:
+            continue
+    return out
+
+
+# ----------------------------------------------------------------- commands
+def _prepare_folder(args) -> "BuildFolder":
+    from .config import load_config
+    from .manifest import read_channel_manifest, read_tile_manifest
+    from .run.folder import BuildFolder
+
+    build = BuildFolder(Path(args.out))
+    manifest = read_tile_manifest(args.tiles)
+    channels = Path(args.channels).resolve() if args.channels else None
+    if channels:
+        read_channel_manifest(channels)
+    cfg = load_config(args.config)
+    if args.pixel_size is not None:
+        cfg.volume.pixel_size = _positive(args.pixel_size, "--pixel-size")
+    if args.section_thickness is not None:
+        cfg.volume.section_thickness = _positive(args.section_thickness, "--section-thickness")
+    record = {"tiles": str(manifest.source), "channels": str(channels) if channels else None,
+              "config": cfg.to_json(), "stackbuild": __version__}
+    if build.exists():
+        if args.resume:
+            old = build.load_state()
+            if old.get("tiles") != record["tiles"]:
+                raise InputError(f"--resume: this build was made from {old.get('tiles')}, "
+                                 f"not {record['tiles']}", file=build.state_path)
+            return build
+        if not args.overwrite:
+            raise InputError("already holds a build; pass --resume to continue it or --overwrite "
+                             "to replace it", file=build.root)
+        for name in _OUR_OUTPUTS:
+            target = build.root / name
+            if target.is_dir():
+                shutil.rmtree(target)
+            elif target.exists():
+                target.unlink()
+    elif build.root.exists() and any(build.root.iterdir()) and not args.overwrite:
+        raise InputError("exists, is not empty and holds no build; choose an empty or new folder",
+                         file=build.root)
+    build.root.mkdir(parents=True, exist_ok=True)
+    build.save_state({**record, "stages": {}})
+    return build
+
+
+def _positive(value: float, name: str) -> float:
+    if not value > 0:
+        raise InputError(f"{name} must be > 0, got {value}")
+    return value
+
+
+def _open_build(path: str):
+    from .run.folder import BuildFolder
+
+    build = BuildFolder(Path(path))
+    build.load_state()
+    return build
+
+
+def _cmd_build(args) -> int:
+    from .run import stages
+    from .run.cluster import client_mapper, dask_client
+    from .run.progress import ProgressBar
+
+    build = _prepare_folder(args)
+    show = not args.quiet
+    with dask_client(args.workers, args.scheduler):
+        stages.stitch_stage(build, client_mapper(_client(), ProgressBar("stitch", show)), resume=args.resume)
+        if not (args.resume and build.stage_done("align")):
+            stages.align_stage(build, client_mapper(_client(), ProgressBar("align", show)),
+                               progress=ProgressBar("solve", show))
+        stages.render_stage(build, resume=args.resume, progress=ProgressBar("render", show))
+    verdict = stages.report_stage(build, fail_on=args.fail_on, progress=ProgressBar("report", show))
+    _say(f"volume: {build.volume_path}\nreport: {build.qc_dir / 'report.html'}")
+    return _verdict_status(verdict)
+
+
+def _client():
+    from distributed import get_client
+
+    return get_client()
+
+
+def _cmd_stitch(args) -> int:
+    from .run import stages
+    from .run.cluster import client_mapper, dask_client
+    from .run.progress import ProgressBar
+
+    build = _open_build(args.dir)
+    with dask_client(args.workers, args.scheduler) as client:
+        out = stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", not args.quiet)),
+                                  sections=args.sections, resume=args.resume)
+    _say(f"stitched {len(out)} section(s) into {build.store.root}")
+    return EXIT_OK
+
+
+def _cmd_align(args) -> int:
+    from .run import stages
+    from .run.cluster import client_mapper, dask_client
+    from .run.progress import ProgressBar
+
+    build = _open_build(args.dir)
+    with dask_client(args.workers, args.scheduler) as client:
+        out = stages.align_stage(build, client_mapper(client, ProgressBar("align", not args.quiet)),
+                                 progress=ProgressBar("solve", not args.quiet))
+    _say(f"aligned {len(out)} section(s) into {build.store.root}")
+    return EXIT_OK
+
+
+def _cmd_render(args) -> int:
+    from .run import stages
+    from .run.cluster import dask_client
+    from .run.progress import ProgressBar
+
+    build = _open_build(args.dir)
+    with dask_client(args.workers, args.scheduler):
+        stages.render_stage(build, planes=args.planes, resume=args.resume, overwrite=args.overwrite,
+                            progress=ProgressBar("render", not args.quiet))
+    _say(f"volume: {build.volume_path}")
+    return EXIT_OK
+
+
+def _cmd_report(args) -> int:
+    from .run import stages
+    from .run.progress import ProgressBar
+
+    build = _open_build(args.dir)
+    verdict = stages.report_stage(build, fail_on=args.fail_on, progress=ProgressBar("report", not args.quiet))
+    _say(f"report: {build.qc_dir / 'report.html'}")
+    return _verdict_status(verdict)
+
+
+def _cmd_update(args) -> int:
+    from .run.update import update_build
+
+    build = _open_build(args.dir)
+    update_build(build, Path(args.tiles), workers=args.workers, scheduler=args.scheduler,
+                 show_progress=not args.quiet)
+    return EXIT_OK
+
+
+def _cmd_synth(args) -> int:
+    from .synth import SynthParams, generate
+
+    values = {f.name: getattr(args, f.name) for f in dataclasses.fields(SynthParams)}
+    for k, v in values.items():
+        if isinstance(v, list):
+            values[k] = tuple(v)
+    try:
+        params = SynthParams(**values)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"bad synth option: {exc}") from None
+    path = generate(Path(args.outdir), params)
+    _say(f"tiles: {path}")
+    return EXIT_OK
+
+
+def _verdict_status(verdict) -> int:
+    if getattr(verdict, "passed", True):
+        return EXIT_OK
+    for line in getattr(verdict, "failures", []):
+        print(f"stackbuild: quality bar missed: {line}", file=sys.stderr)
+    return EXIT_FAILED_BAR
+
+
+def _say(text: str) -> None:
+    print(text)
+
+
+COMMANDS = {"build": _cmd_build, "stitch": _cmd_stitch, "align": _cmd_align, "render": _cmd_render,
+            "report": _cmd_report, "update": _cmd_update, "synth": _cmd_synth}
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; return the exit status."""
+    args = _parser().parse_args(argv)
+    logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
+                        format="%(levelname)s %(name)s: %(message)s")
+    try:
+        return COMMANDS[args.command](args)
+    except InputError as exc:
+        if args.debug:
+            raise
+        print(f"stackbuild: error: {exc.one_line()}", file=sys.stderr)
+        return EXIT_INPUT
+    except KeyboardInterrupt:
+        print("stackbuild: interrupted; run again with --resume to continue", file=sys.stderr)
+        return 130
+    except Exception as exc:  # an unexpected failure: short line unless --debug
+        if args.debug:
+            raise
+        print(f"stackbuild: internal error: {type(exc).__name__}: {exc} (rerun with --debug for details)",
+              file=sys.stderr)
+        return EXIT_ERROR
+
+
+if __name__ == "__main__":
+    sys.exit(main())

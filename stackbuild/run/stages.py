@@ -1,0 +1,98 @@
+"""The stages of a build, mapped over sections and chunks.
+
+Each stage reads what it needs from the build folder and writes its result
+back there; a stage never calls another stage's internals. Work is spread
+through a ``mapper`` (see :mod:`stackbuild.run.cluster`), so the scheduler is
+a parameter, not a decision buried in a stage.
+"""
+from __future__ import annotations
+
+import logging
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+from ..errors import InputError
+from ..manifest import TileEntry
+from ..stitch.settings import StitchSettings
+from .folder import BuildFolder
+
+log = logging.getLogger(__name__)
+
+STAGES = ("stitch", "align", "render", "report")
+
+
+@dataclass(frozen=True)
+class _StitchJob:
+    build: str
+    section: int
+    tiles: tuple[TileEntry, ...]
+    settings: StitchSettings
+
+
+def _stitch_one(job: _StitchJob) -> dict:
+    """Stitch one section and store its record (runs on a worker)."""
+    from ..stitch import stitch_section
+
+    rec = stitch_section(list(job.tiles), job.settings, job.section)
+    BuildFolder(Path(job.build)).store.save_stitch(rec)
+    return {"section": job.section, "flags": rec.flags, "stats": rec.stats}
+
+
+def stitch_stage(build: BuildFolder, mapper, *, sections: list[int] | None = None,
+                 resume: bool = False) -> list[dict]:
+    """Stitch every section (or ``sections``) of the build; return one summary per section.
+
+    With ``resume``, sections that already have a stitch record are skipped.
+    """
+    manifest = build.tile_manifest()
+    cfg = build.config
+    todo = sections if sections is not None else manifest.sections
+    unknown = sorted(set(todo) - set(manifest.sections))
+    if unknown:
+        raise InputError(f"section(s) {unknown} have no tiles in the manifest", file=manifest.source)
+    if resume:
+        have = set(build.store.sections_with("stitch"))
+        todo = [s for s in todo if s not in have]
+    build.mark_stage("stitch", "running")
+    t0 = time.monotonic()
+    jobs = [_StitchJob(str(build.root), s, tuple(manifest.section_tiles(s)), cfg.stitch) for s in todo]
+    out = mapper(_stitch_one, jobs)
+    build.mark_stage("stitch", "done", seconds=round(time.monotonic() - t0, 2),
+                     sections=len(manifest.sections))
+    return out
+
+
+def align_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
+    """Align all stitched sections to each other and store one alignment per section."""
+    from ..align.stage import run_align
+
+    build.mark_stage("align", "running")
+    t0 = time.monotonic()
+    result = run_align(build.root, build.config.align, mapper=mapper, progress=progress)
+    build.mark_stage("align", "done", seconds=round(time.monotonic() - t0, 2))
+    return result
+
+
+def render_stage(build: BuildFolder, *, planes: list[int] | None = None, resume: bool = False,
+                 overwrite: bool = False, progress=None) -> dict:
+    """Write the OME-Zarr pyramid from the raw tiles and the stored transforms."""
+    from ..render.write import render_volume
+
+    build.mark_stage("render", "running")
+    t0 = time.monotonic()
+    facts = render_volume(build.root, build.config.render, planes=planes,
+                          overwrite=overwrite or resume, progress=progress)
+    build.mark_stage("render", "done", seconds=round(time.monotonic() - t0, 2))
+    return facts
+
+
+def report_stage(build: BuildFolder, *, fail_on: list[str] | None = None, progress=None):
+    """Measure the result, draw the plots, write ``DIR/qc``; return the verdict."""
+    from ..qc.report import run_report
+
+    build.mark_stage("report", "running")
+    t0 = time.monotonic()
+    verdict = run_report(build.root, build.config.report, fail_on=fail_on, progress=progress)
+    build.mark_stage("report", "done", seconds=round(time.monotonic() - t0, 2))
+    return verdict

@@ -1,0 +1,108 @@
+"""Transform types and the versioned store."""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from skimage.transform import AffineTransform
+
+from stackbuild.errors import InputError
+from stackbuild.transforms import (
+    Affine2D, Canvas, DisplacementField, PairMatch, SectionAlignment, SectionStitch, TilePlacement,
+    TransformStore,
+)
+
+
+def test_affine_agrees_with_skimage():
+    # Reference: skimage.transform.AffineTransform uses the same (x, y) point convention.
+    ref = AffineTransform(scale=(1.02, 0.97), rotation=0.05, shear=0.01, translation=(12.5, -3.0))
+    ours = Affine2D(ref.params)
+    pts = np.random.default_rng(0).uniform(-100, 100, (50, 2))
+    np.testing.assert_allclose(ours.apply(pts), ref(pts), atol=1e-9)
+    np.testing.assert_allclose(ours.inverse().apply(ours.apply(pts)), pts, atol=1e-9)
+    np.testing.assert_allclose(ours.then(ours.inverse()).matrix, np.eye(2, 3), atol=1e-12)
+
+
+def test_displacement_field_is_bilinear_between_nodes():
+    vec = np.zeros((2, 2, 2), np.float32)
+    vec[..., 0] = [[0, 4], [8, 12]]  # dx grows with x and y
+    f = DisplacementField(vec, origin=(10, 20), spacing=10)
+    d = f.displacement(np.array([[15.0, 25.0], [10, 20], [100, 100]]))
+    np.testing.assert_allclose(d[:, 0], [6.0, 0.0, 12.0], atol=0.05)  # centre, node, clamped
+
+
+def _stitch_record():
+    tiles = [TilePlacement("r0c0", "/data/a.tif", 64, 48, 0, 0, 0.25, -0.5, flags=["blank"]),
+             TilePlacement("r0c1", "/data/b.tif", 64, 48, 50, 0, 51.0, 0.0, gain=1.1, offset=-2)]
+    pairs = [PairMatch("r0c0", "r0c1", 50.75, 0.5, 50, 0, 0.9, 4.0, True, residual=0.1)]
+    return SectionStitch(3, "uint8", tiles, pairs, np.ones((6, 8), np.float32), 8)
+
+
+def test_round_trip_and_history(tmp_path):
+    store = TransformStore(tmp_path / "transforms")
+    rec = _stitch_record()
+    store.save_stitch(rec)
+    back = store.load_stitch(3)
+    assert back.tiles == rec.tiles and back.pairs == rec.pairs
+    np.testing.assert_array_equal(back.illumination, rec.illumination)
+    assert back.bbox() == (-0.25, -1.0, 114.5, 47.5)  # pixel edges: centre - 0.5
+
+    rec.tiles[0].x = 9.0
+    store.save_stitch(rec)  # second run: the first version is kept in history
+    assert store.load_stitch(3).tiles[0].x == 9.0
+    old = store.history("stitch", 3)
+    assert len(old) == 1 and json.loads(old[0].read_text())["record"]["tiles"][0]["x"] == 0.25
+    assert store.sections_with("stitch") == [3]
+
+
+def test_alignment_record_uses_ngff_vocabulary(tmp_path):
+    store = TransformStore(tmp_path)
+    field = DisplacementField(np.ones((3, 4, 2), np.float32), (0, 0), 32)
+    store.save_alignment(SectionAlignment(5, Affine2D.similarity(1.01, 0.02, 5, 6), field))
+    env = json.loads((store.section_dir(5) / "align.json").read_text())
+    seq = env["record"]["transforms"]
+    assert seq["type"] == "sequence" and [t["type"] for t in seq["transformations"]] == ["displacements", "affine"]
+    assert env["frames"] == {"input": "aligned", "output": "section"}
+    back = store.load_alignment(5)
+    pts = np.array([[10.0, 20.0]])
+    np.testing.assert_allclose(back.aligned_to_section(pts), Affine2D.similarity(1.01, 0.02, 5, 6).apply(pts + 1))
+
+
+def test_canvas_round_trip(tmp_path):
+    store = TransformStore(tmp_path)
+    c = Canvas(100, 80, -3.0, 4.0, 2, 9, "uint8", 4.0, 40.0, [5], {7: ["damaged"]})
+    store.save_canvas(c)
+    assert store.load_canvas() == c and c.depth == 8
+
+
+@pytest.mark.parametrize("damage, expect", [
+    (lambda t: t[: len(t) // 2], "unreadable or truncated"),
+    (lambda t: t.replace('"version": 1', '"version": 99'), "newer stackbuild"),
+    (lambda t: t.replace('"stackbuild.transforms"', '"something.else"'), "not a stackbuild.transforms file"),
+])
+def test_damaged_records_give_clear_errors(tmp_path, damage, expect):
+    store = TransformStore(tmp_path)
+    path = store.save_stitch(_stitch_record())
+    path.write_text(damage(path.read_text()))
+    with pytest.raises(InputError, match=expect) as err:
+        store.load_stitch(3)
+    assert str(path) in str(err.value)
+
+
+def test_missing_array_is_named(tmp_path):
+    store = TransformStore(tmp_path)
+    store.save_stitch(_stitch_record())
+    import shutil
+    shutil.rmtree(store.section_dir(3) / "illumination.zarr")
+    with pytest.raises(InputError, match="illumination.zarr"):
+        store.load_stitch(3)
+
+
+def test_write_is_atomic_when_serialisation_fails(tmp_path):
+    store = TransformStore(tmp_path)
+    path = store.save_doc("contrast", {"gain": 1.0})
+    with pytest.raises(ValueError):
+        store.save_doc("contrast", {"gain": float("nan")})  # NaN is not JSON
+    assert store.load_doc("contrast") == {"gain": 1.0} and not store.history("contrast")
+    assert not list(path.parent.glob(".contrast.json.*"))  # no temporary left behind

@@ -1,7 +1,7 @@
 """Pipeline TOML -> typed, validated settings.
 
 A pipeline file has one table per stage (``[volume]``, ``[stitch]``,
-``[align]``, ``[render]``, ``[report]``); every key is optional and defaults
+``[align]``, ``[channels]``, ``[render]``, ``[report]``); every key is optional and defaults
 to the value documented on the stage's settings class. Unknown tables or
 keys, and values of the wrong type, are errors naming the file and key.
 """
@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from .align.settings import AlignSettings
+from .channels.settings import ChannelSettings
 from .errors import InputError
 from .qc.settings import ReportSettings
 from .render.settings import RenderSettings
@@ -43,6 +44,7 @@ class PipelineConfig:
     volume: VolumeSettings = field(default_factory=VolumeSettings)
     stitch: StitchSettings = field(default_factory=StitchSettings)
     align: AlignSettings = field(default_factory=AlignSettings)
+    channels: ChannelSettings = field(default_factory=ChannelSettings)
     render: RenderSettings = field(default_factory=RenderSettings)
     report: ReportSettings = field(default_factory=ReportSettings)
 

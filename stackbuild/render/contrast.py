@@ -1,0 +1,54 @@
+"""Per-section contrast normalisation: match each section's robust range to the stack's median range.
+
+Each section's low and high percentiles are measured on a coarse render of
+its mosaic (section frame, ``scale`` x reduced, covered pixels only). Section
+``s`` is then mapped linearly so that its range ``[lo_s, hi_s]`` lands on
+``[median lo, median hi]`` over all sections: ``v -> gain_s * v + offset_s``.
+The record is stored as the stack-level store document ``"contrast"``.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..transforms.records import SectionStitch
+from .sampler import render_region
+
+DOC_KIND = "contrast"
+
+
+def measure_range(stitch: SectionStitch, percentiles: tuple[float, float] = (1.0, 99.0),
+                  scale: int = 8) -> tuple[float, float]:
+    """Return the ``percentiles`` of a section's corrected intensities on a coarse render."""
+    x0, y0, x1, y1 = stitch.bbox()
+    ox, oy = int(np.floor(x0 + 0.5)), int(np.floor(y0 + 0.5))
+    w = int(np.ceil((x1 - 0.5 - ox + 1) / scale))
+    h = int(np.ceil((y1 - 0.5 - oy + 1) / scale))
+    img, weight = render_region(stitch, None, ox, oy, w, h, scale=scale, return_weight=True)
+    vals = img[weight > 0]
+    if vals.size == 0:
+        return 0.0, 1.0
+    lo, hi = np.percentile(vals, percentiles)
+    return float(lo), float(hi)
+
+
+def contrast_record(ranges: dict[int, tuple[float, float]], percentiles: tuple[float, float],
+                    scale: int = 8) -> dict:
+    """Return the contrast document: per-section ranges, the target range, and each section's gain and offset."""
+    if not ranges:
+        return {"percentiles": list(percentiles), "scale": scale, "target": None, "sections": {}}
+    lows = np.array([r[0] for r in ranges.values()])
+    highs = np.array([r[1] for r in ranges.values()])
+    t_lo, t_hi = float(np.median(lows)), float(np.median(highs))
+    sections = {}
+    for s, (lo, hi) in sorted(ranges.items()):
+        gain = (t_hi - t_lo) / (hi - lo) if hi > lo else 1.0
+        sections[str(s)] = {"low": lo, "high": hi, "gain": gain, "offset": t_lo - gain * lo}
+    return {"percentiles": list(percentiles), "scale": scale, "target": [t_lo, t_hi], "sections": sections}
+
+
+def section_contrast(record: dict | None, section: int) -> tuple[float, float] | None:
+    """Return ``(gain, offset)`` of one section from a contrast document, or None."""
+    if not record:
+        return None
+    entry = record.get("sections", {}).get(str(section))
+    return None if entry is None else (float(entry["gain"]), float(entry["offset"]))

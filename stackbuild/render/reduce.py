@@ -1,0 +1,83 @@
+"""The 2x2 reducers that make each pyramid level from the one above.
+
+Level ``n+1`` pixel ``[i, j]`` summarises level ``n`` pixels ``[2i:2i+2, 2j:2j+2]``
+(y and x only; z is never reduced). An odd height or width is first padded by
+repeating the last row or column, so the last output pixel summarises what
+exists: for the mean, ``(a + b + 1) // 2`` of a two-pixel remainder. The same
+function serves the lazy volume and the writer, so both agree byte for byte.
+
+Reducers
+--------
+``mean``  ``(a + b + c + d + 2) // 4``: the exact mean rounded half up (integers).
+``max``, ``min``  the largest / smallest of the four.
+``mode``  the most frequent of the four; ties go to the smallest value.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+REDUCERS = ("mean", "max", "min", "mode")
+
+
+def reduced_size(n: int) -> int:
+    """Return the length of an axis of ``n`` pixels after one 2x reduction."""
+    return (n + 1) // 2
+
+
+def _quads(block: np.ndarray):
+    h, w = block.shape[-2:]
+    if h % 2 or w % 2:
+        pad = [(0, 0)] * (block.ndim - 2) + [(0, h % 2), (0, w % 2)]
+        block = np.pad(block, pad, mode="edge")
+    return block[..., 0::2, 0::2], block[..., 0::2, 1::2], block[..., 1::2, 0::2], block[..., 1::2, 1::2]
+
+
+def _mode4(a, b, c, d):
+    q = np.stack([a, b, c, d])
+    counts = sum((q == v[None]).astype(np.int8) for v in (a, b, c, d))
+    # Rank: higher count first, then smaller value: pick by lexicographic key.
+    best = q[0].copy()
+    best_n = counts[0].copy()
+    for k in range(1, 4):
+        better = (counts[k] > best_n) | ((counts[k] == best_n) & (q[k] < best))
+        best = np.where(better, q[k], best)
+        best_n = np.where(better, counts[k], best_n)
+    return best
+
+
+def reduce2x2(block: np.ndarray, how: str = "mean") -> np.ndarray:
+    """Return ``block`` reduced 2x2 over its last two axes, keeping its dtype.
+
+    Parameters
+    ----------
+    block : ndarray of unsigned integers, shape (..., h, w)
+    how : str
+        One of :data:`REDUCERS`.
+
+    Returns
+    -------
+    ndarray, shape (..., ceil(h/2), ceil(w/2))
+    """
+    if how not in REDUCERS:
+        raise ValueError(f"reducer must be one of {REDUCERS}, got {how!r}")
+    if block.shape[-1] == 0 or block.shape[-2] == 0:
+        return block[..., : reduced_size(block.shape[-2]), : reduced_size(block.shape[-1])]
+    a, b, c, d = _quads(block)
+    if how == "mean":
+        wide = np.uint32 if block.dtype.itemsize <= 2 else np.uint64
+        s = a.astype(wide) + b + c + d + 2
+        return (s // 4).astype(block.dtype)
+    if how == "max":
+        return np.maximum(np.maximum(a, b), np.maximum(c, d))
+    if how == "min":
+        return np.minimum(np.minimum(a, b), np.minimum(c, d))
+    return _mode4(a, b, c, d)
+
+
+def level_shapes(height: int, width: int, chunk: int) -> list[tuple[int, int]]:
+    """Return ``(height, width)`` of every level, reducing until a level fits in one chunk."""
+    shapes = [(height, width)]
+    while shapes[-1][0] > chunk or shapes[-1][1] > chunk:
+        h, w = shapes[-1]
+        shapes.append((reduced_size(h), reduced_size(w)))
+    return shapes

@@ -1,0 +1,157 @@
+"""Reading tiles, with a small per-process cache of prepared (corrected, reduced) tiles.
+
+A tile shared by neighbouring output blocks is decoded and corrected once and
+then served from the cache. The cache is bounded in bytes (default 128 MiB per
+process; the environment variable ``STACKBUILD_TILE_CACHE_MB`` overrides it)
+and evicts the least recently used entry first. Entries are keyed by the
+file's path, size and modification time, so a re-imaged tile is read afresh.
+"""
+from __future__ import annotations
+
+import hashlib
+import os
+import threading
+from collections import OrderedDict
+from pathlib import Path
+
+import cv2
+import numpy as np
+import tifffile
+
+from ..errors import InputError
+
+try:  # written by the stitching stage; the fallback is the same bilinear upsampling
+    from ..stitch.intensity import illumination_at_tile_size
+except ImportError:  # pragma: no cover - only until the stitching module lands
+    def illumination_at_tile_size(profile: np.ndarray, height: int, width: int) -> np.ndarray:
+        """Return ``profile`` resized bilinearly to ``height x width`` (float32)."""
+        return cv2.resize(np.asarray(profile, np.float32), (width, height), interpolation=cv2.INTER_LINEAR)
+
+
+class ByteLRU:
+    """A thread-safe least-recently-used mapping bounded by the total ``nbytes`` of its values."""
+
+    def __init__(self, max_bytes: int):
+        self.max_bytes = int(max_bytes)
+        self._items: OrderedDict = OrderedDict()
+        self._bytes = 0
+        self._lock = threading.Lock()
+
+    def get(self, key):
+        """Return the value for ``key`` (marking it recent) or ``None``."""
+        with self._lock:
+            value = self._items.get(key)
+            if value is not None:
+                self._items.move_to_end(key)
+            return value
+
+    def put(self, key, value: np.ndarray) -> None:
+        """Store ``value``; evict the oldest entries until the bound holds."""
+        size = int(value.nbytes)
+        if size > self.max_bytes:
+            return
+        with self._lock:
+            old = self._items.pop(key, None)
+            if old is not None:
+                self._bytes -= old.nbytes
+            self._items[key] = value
+            self._bytes += size
+            while self._bytes > self.max_bytes:
+                _, dropped = self._items.popitem(last=False)
+                self._bytes -= dropped.nbytes
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes held now."""
+        return self._bytes
+
+    def clear(self) -> None:
+        """Drop every entry."""
+        with self._lock:
+            self._items.clear()
+            self._bytes = 0
+
+
+TILE_CACHE = ByteLRU(int(float(os.environ.get("STACKBUILD_TILE_CACHE_MB", "128")) * 2 ** 20))
+
+
+def read_tile(path: str | Path, height: int, width: int, section: int | None = None) -> np.ndarray:
+    """Return the pixels of one tile, checking them against the recorded size.
+
+    Raises
+    ------
+    InputError
+        If the file is missing, unreadable, or not ``height x width``.
+    """
+    try:
+        img = tifffile.imread(path)
+    except Exception as exc:  # tifffile raises many types for bad data
+        raise InputError(f"tile is missing or unreadable ({type(exc).__name__}: {exc})",
+                         file=path, section=section) from None
+    if img.shape != (height, width):
+        raise InputError(f"tile is {img.shape}, the stitch record says {(height, width)}",
+                         file=path, section=section)
+    return img
+
+
+def block_mean(img: np.ndarray, factor: int) -> np.ndarray:
+    """Return the mean of ``factor x factor`` blocks (float32), the last partial block edge-replicated.
+
+    Notes
+    -----
+    Reduced pixel ``k`` covers full-resolution pixels ``k*factor ... k*factor+factor-1``,
+    so its centre is at ``k*factor + (factor-1)/2``. With the size padded to a multiple
+    of ``factor``, ``cv2.INTER_AREA`` computes exactly these block means.
+    """
+    if factor == 1:
+        return img.astype(np.float32, copy=False)
+    h, w = img.shape
+    ph, pw = -h % factor, -w % factor
+    if ph or pw:
+        img = cv2.copyMakeBorder(img, 0, ph, 0, pw, cv2.BORDER_REPLICATE)
+    return cv2.resize(img, ((w + pw) // factor, (h + ph) // factor), interpolation=cv2.INTER_AREA)
+
+
+def _profile_key(profile: np.ndarray | None) -> str:
+    if profile is None:
+        return ""
+    return hashlib.blake2b(np.ascontiguousarray(profile, np.float32).tobytes(), digest_size=8).hexdigest()
+
+
+def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int,
+                  section: int | None = None) -> np.ndarray:
+    """Return one tile intensity-corrected and reduced by ``scale`` (float32), from the cache if possible.
+
+    Parameters
+    ----------
+    tile : TilePlacement
+        Path, size, gain and offset of the tile.
+    profile : ndarray or None
+        The section's illumination profile (any size; upsampled to the tile size).
+    profile_key : str
+        A digest of ``profile`` (see :func:`profile_digest`), part of the cache key.
+    scale : int
+        Reduction factor (1 = full resolution).
+    """
+    p = Path(tile.path)
+    try:
+        st = p.stat()
+    except OSError:
+        raise InputError("tile is missing", file=p, section=section) from None
+    key = (str(p), st.st_size, st.st_mtime_ns, profile_key, float(tile.gain), float(tile.offset), scale)
+    hit = TILE_CACHE.get(key)
+    if hit is not None:
+        return hit
+    img = read_tile(p, tile.height, tile.width, section).astype(np.float32)
+    if profile is not None:
+        illum = illumination_at_tile_size(profile, tile.height, tile.width)
+        img = img / np.maximum(np.asarray(illum, np.float32), np.float32(1e-6))
+    if tile.gain != 1.0 or tile.offset != 0.0:
+        img = np.float32(tile.gain) * img + np.float32(tile.offset)
+    out = block_mean(img, scale)
+    out.setflags(write=False)
+    TILE_CACHE.put(key, out)
+    return out
+
+
+profile_digest = _profile_key

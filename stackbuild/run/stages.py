@@ -76,14 +76,21 @@ def align_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
 
 def render_stage(build: BuildFolder, *, planes: list[int] | None = None, resume: bool = False,
                  overwrite: bool = False, progress=None) -> dict:
-    """Write the OME-Zarr pyramid from the raw tiles and the stored transforms."""
+    """Write the OME-Zarr pyramid from the raw tiles and the stored transforms.
+
+    With ``resume``, a finished render is kept and an interrupted one continues
+    with the planes not written yet.
+    """
     from ..render.write import render_volume
 
+    if resume and planes is None and build.stage_done("render"):
+        return {"planes": [], "skipped": "finished"}
     build.mark_stage("render", "running")
     t0 = time.monotonic()
-    facts = render_volume(build.root, build.config.render, planes=planes,
-                          overwrite=overwrite or resume, progress=progress)
-    build.mark_stage("render", "done", seconds=round(time.monotonic() - t0, 2))
+    facts = render_volume(build.root, build.config.render, planes=planes, overwrite=overwrite,
+                          progress=progress)
+    build.mark_stage("render", "done", seconds=round(time.monotonic() - t0, 2),
+                     planes=len(facts.get("planes", [])))
     return facts
 
 

@@ -44,15 +44,26 @@ def _parabola(lo: float, mid: float, hi: float) -> float:
     return float(np.clip(0.5 * (lo - hi) / den, -0.5, 0.5))
 
 
-def _peak(score: np.ndarray) -> tuple[float, float, float]:
-    """Return sub-pixel ``(col, row)`` of the maximum of ``score`` and the peak value."""
+def _peak(score: np.ndarray, exclude: int) -> tuple[float, float, float, float]:
+    """Return sub-pixel ``(col, row)`` of the maximum of ``score``, the peak value and its margin.
+
+    The margin is the peak minus the best score farther than ``exclude``
+    pixels from it; ``-1`` when the peak lies on the border of the search
+    window (the true optimum may lie outside).
+    """
     r, c = np.unravel_index(int(np.argmax(score)), score.shape)
+    rest = score.copy()
+    rest[max(0, r - exclude):r + exclude + 1, max(0, c - exclude):c + exclude + 1] = -np.inf
+    second = float(rest.max()) if np.isfinite(rest).any() else -1.0
+    margin = float(score[r, c]) - second
+    if r in (0, score.shape[0] - 1) or c in (0, score.shape[1] - 1):
+        margin = -1.0
     dr = dc = 0.0
     if 0 < r < score.shape[0] - 1:
         dr = _parabola(score[r - 1, c], score[r, c], score[r + 1, c])
     if 0 < c < score.shape[1] - 1:
         dc = _parabola(score[r, c - 1], score[r, c], score[r, c + 1])
-    return c + dc, r + dr, float(score[r, c])
+    return c + dc, r + dr, float(score[r, c]), margin
 
 
 def grid_centres(shape: tuple[int, int], spacing: int, margin: int) -> np.ndarray:
@@ -75,8 +86,8 @@ def grid_centres(shape: tuple[int, int], spacing: int, margin: int) -> np.ndarra
 
 
 def match_blocks(fixed: np.ndarray, moving: np.ndarray, *, spacing: int, radius: int,
-                 search: int, min_ncc: float = 0.3, min_std: float = 1e-3,
-                 valid: np.ndarray | None = None) -> BlockMatches:
+                 search: int, min_ncc: float = 0.3, min_margin: float = 0.05,
+                 min_std: float = 1e-3, valid: np.ndarray | None = None) -> BlockMatches:
     """Return the local shifts of ``moving`` relative to ``fixed`` on a regular grid.
 
     Parameters
@@ -91,6 +102,11 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, *, spacing: int, radius:
         Largest shift searched in x and y, pixels.
     min_ncc : float
         Blocks whose correlation peak is lower are dropped.
+    min_margin : float
+        Blocks whose peak does not stand this far above the best score outside
+        its neighbourhood (half the template radius) are dropped, as are
+        peaks on the border of the search window: a smooth ramp or a
+        repeating pattern matches everywhere and tells nothing.
     min_std : float
         Blocks whose template or search window is flatter than this (standard
         deviation, image units) are dropped: they carry no position information.
@@ -108,7 +124,8 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, *, spacing: int, radius:
     Each template is correlated over its search window with zero-mean
     normalised cross-correlation (OpenCV ``TM_CCOEFF_NORMED``, the measure of
     Lewis 1995); the integer peak is refined by fitting a parabola through the
-    peak and its two neighbours, separately along x and y.
+    peak and its two neighbours, separately along x and y. Blocks with a weak
+    or ambiguous peak are dropped (common practice, no single source).
 
     References
     ----------
@@ -132,8 +149,8 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, *, spacing: int, radius:
         if tpl.std() < min_std or win.std() < min_std:
             continue
         score = cv2.matchTemplate(win, tpl, cv2.TM_CCOEFF_NORMED)
-        cx, cy, peak = _peak(score)
-        if not np.isfinite(peak) or peak < min_ncc:
+        cx, cy, peak, margin = _peak(score, max(2, radius // 2))
+        if not np.isfinite(peak) or peak < min_ncc or margin < min_margin:
             continue
         pts.append((x, y))
         shifts.append((cx - search, cy - search))

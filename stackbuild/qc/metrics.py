@@ -1,0 +1,323 @@
+"""Quality metrics of one build: ``DIR/qc/metrics.json`` and its CSV tables.
+
+Schema of ``metrics.json`` (``schema_version`` 1)
+------------------------------------------------
+All residuals are in full-resolution (level-0) pixels. Every place is given
+as a *location*: ``{"section", "z", "x_px", "y_px", "x_nm", "y_nm", "z_nm"}``
+where ``x_px, y_px`` are level-0 output pixels (column, row of a plane of the
+volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
+``z_nm = z * section_thickness_nm``. A residual summary is
+``{"n", "rms", "median", "p95", "max", "at"}`` over block residual magnitudes,
+``at`` the location of the largest (all ``None`` when nothing was measured).
+
+``schema_version``  int, 1.
+``build``           the build folder.
+``volume``          ``pixel_size_nm``, ``section_thickness_nm``, ``width``,
+                    ``height``, ``depth``, ``first_section``, ``lost_sections``,
+                    ``measured_on`` (``{"origin", "level", "factor"}`` of the planes
+                    the section residuals were measured on, or ``None``).
+``tiles``           one per tile: ``section``, ``tile``, ``path``, ``x``, ``y``
+                    (solved section-pixel position), ``flags``, ``stitch_residual``
+                    (the stitcher's own number), ``seam_median`` (median over the
+                    tile's seams of their median re-measured residual), ``seam_max``,
+                    ``seams``, ``at`` (tile centre).
+``pairs``           one per tile pair: ``section``, ``a``, ``b``, ``dx``, ``dy``,
+                    ``stage_dx``, ``stage_dy``, ``ncc``, ``peak_ratio``, ``accepted``,
+                    ``reason``, ``stitch_residual``, ``measured`` (summary), ``error``.
+``sections``        one per section: ``section``, ``z``, ``lost``, ``flags``,
+                    ``tiles``, ``pairs_accepted``, ``pairs_rejected``, ``stitch``
+                    (summary over all seam blocks), ``stitcher_stats``,
+                    ``align_prev`` / ``align_next`` (summaries against the nearest
+                    present plane before / after), ``align_score`` (median of the
+                    available ``p95`` of the two; a section is blamed only as far
+                    as it disagrees with both neighbours), ``elastic``
+                    (``{"rms", "max", "at"}`` of the stored field), ``aligner_stats``.
+``channels``        one per marker channel (empty until channels are registered).
+``totals``          the measures that ``--fail-on`` can test, see
+                    :data:`stackbuild.qc.thresholds.MEASURES`.
+``worst``           ``tile``, ``pair``, ``section_stitch``, ``section_align``: the
+                    worst row of each (or ``None``).
+``notes``           what could not be measured, and why.
+
+Section-to-section residuals are an independent measurement of the output
+(NCC block matching of adjacent rendered planes), not a copy of the aligner's
+statistics, which are kept apart under ``aligner_stats``.
+"""
+from __future__ import annotations
+
+import csv
+import json
+from pathlib import Path
+
+import numpy as np
+
+from ..run.folder import BuildFolder
+from ..transforms.records import Canvas
+from .blockmatch import BlockMatches, summarize
+from .measure import Measurements, measure_planes, measure_seams, section_to_output
+from .planes import open_planes
+from .settings import ReportSettings
+
+SCHEMA_VERSION = 1
+
+
+def location(section: int, z: int | None, xy, canvas: Canvas | None, px_nm: float, dz_nm: float) -> dict:
+    """Return a location record for a level-0 output pixel ``xy = (x, y)``."""
+    x, y = float(xy[0]), float(xy[1])
+    return {"section": int(section), "z": None if z is None else int(z), "x_px": round(x, 2),
+            "y_px": round(y, 2), "x_nm": round(x * px_nm, 1), "y_nm": round(y * px_nm, 1),
+            "z_nm": None if z is None else round(z * dz_nm, 1)}
+
+
+class _Scale:
+    """Physical scale and section <-> plane bookkeeping of one build."""
+
+    def __init__(self, folder: BuildFolder, canvas: Canvas | None):
+        self.canvas = canvas
+        vol = {}
+        try:
+            vol = folder.load_state().get("config", {}).get("volume", {})
+        except Exception:  # a hand-made folder without build.json still gets a report
+            pass
+        self.px_nm = canvas.pixel_size_nm if canvas else float(vol.get("pixel_size", 4.0))
+        self.dz_nm = canvas.section_thickness_nm if canvas else float(vol.get("section_thickness", 40.0))
+
+    def z(self, section: int) -> int | None:
+        return None if self.canvas is None else section - self.canvas.first_section
+
+    def section(self, z: int) -> int:
+        return z + (self.canvas.first_section if self.canvas else 0)
+
+    def at(self, section: int, xy_out) -> dict:
+        return location(section, self.z(section), xy_out, self.canvas, self.px_nm, self.dz_nm)
+
+
+def _summary(blocks: BlockMatches, where) -> dict:
+    mags = blocks.magnitudes
+    s = summarize(mags)
+    s["at"] = where(blocks.points[int(np.argmax(mags))]) if mags.size else None
+    return s
+
+
+def _concat(items: list[BlockMatches]) -> BlockMatches:
+    items = [b for b in items if len(b.ncc)]
+    if not items:
+        return BlockMatches(np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0))
+    return BlockMatches(*(np.concatenate([getattr(b, k) for b in items]) for k in ("points", "shifts", "ncc")))
+
+
+def _stitch_rows(section, stitch, seams, align, sc: _Scale):
+    """Return tile rows, pair rows and the section's seam summary."""
+    to_out = lambda p: section_to_output(p, align, sc.canvas)[0]  # noqa: E731
+    where = lambda p: sc.at(section, to_out(p))  # noqa: E731
+    by_pair = {(s.a, s.b): s for s in seams}
+    pairs = []
+    recorded = {(p.a, p.b): p for p in stitch.pairs}
+    for key, sb in by_pair.items():
+        p = recorded.get(key)
+        row = {"section": section, "a": key[0], "b": key[1]}
+        for k in ("dx", "dy", "stage_dx", "stage_dy", "ncc", "peak_ratio", "accepted", "reason"):
+            row[k] = getattr(p, k) if p else None
+        row["stitch_residual"] = p.residual if p else None
+        row["measured"] = _summary(sb.blocks, where)
+        row["error"] = sb.error
+        pairs.append(row)
+    tiles = []
+    for t in stitch.tiles:
+        mine = [r["measured"] for r in pairs if t.tile in (r["a"], r["b"]) and r["measured"]["n"]]
+        centre = (t.x + (t.width - 1) / 2, t.y + (t.height - 1) / 2)
+        tiles.append({"section": section, "tile": t.tile, "path": t.path, "x": t.x, "y": t.y,
+                      "flags": list(t.flags), "stitch_residual": t.residual,
+                      "seam_median": float(np.median([m["median"] for m in mine])) if mine else None,
+                      "seam_max": max((m["max"] for m in mine), default=None), "seams": len(mine),
+                      "at": where(centre)})
+    summary = _summary(_concat([s.blocks for s in seams]), where)
+    return tiles, pairs, summary
+
+
+def _elastic(section, align, sc: _Scale) -> dict:
+    if align is None or align.displacement is None:
+        return {"rms": None, "max": None, "at": None}
+    d = align.displacement
+    mag = np.hypot(d.vectors[..., 0], d.vectors[..., 1])
+    j, i = np.unravel_index(int(np.argmax(mag)), mag.shape)
+    node = np.array([d.origin[0] + i * d.spacing, d.origin[1] + j * d.spacing])
+    off = np.array([sc.canvas.origin_x, sc.canvas.origin_y]) if sc.canvas else 0.0
+    st = d.magnitude_stats()
+    return {"rms": st["rms"], "max": st["max"], "at": sc.at(section, node - off)}
+
+
+def _plane_summaries(meas: Measurements, sc: _Scale) -> dict[tuple[int, int], dict]:
+    out = {}
+    for pp in meas.plane_pairs:
+        sec = sc.section(pp.zb)
+        out[(pp.za, pp.zb)] = _summary(pp.blocks, lambda p, s=sec: sc.at(s, p))
+    return out
+
+
+def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale) -> list[dict]:
+    plane = _plane_summaries(meas, sc)
+    prev = {zb: s for (za, zb), s in plane.items()}
+    nxt = {za: s for (za, zb), s in plane.items()}
+    lost = set(sc.canvas.lost_sections) if sc.canvas else set()
+    rows = []
+    for s in sections:
+        st, al, z = stitches.get(s), aligns.get(s), sc.z(s)
+        ap, an = prev.get(z), nxt.get(z)
+        p95s = [x["p95"] for x in (ap, an) if x and x["p95"] is not None]
+        flags = list(st.flags if st else []) + list(al.flags if al else [])
+        if sc.canvas and s in sc.canvas.flagged_sections:
+            flags.append(str(sc.canvas.flagged_sections[s]))
+        rows.append({
+            "section": s, "z": z, "lost": s in lost, "flags": sorted(set(flags)),
+            "tiles": len(st.tiles) if st else 0,
+            "pairs_accepted": sum(p.accepted for p in st.pairs) if st else 0,
+            "pairs_rejected": sum(not p.accepted for p in st.pairs) if st else 0,
+            "stitch": seam_sums.get(s) or summarize([]) | {"at": None},
+            "stitcher_stats": dict(st.stats) if st else {},
+            "align_prev": ap, "align_next": an,
+            "align_score": float(np.median(p95s)) if p95s else None,
+            "elastic": _elastic(s, al, sc), "aligner_stats": dict(al.stats) if al else {},
+        })
+    return rows
+
+
+def _worst(rows: list[dict], key) -> dict | None:
+    ok = [r for r in rows if key(r) is not None]
+    return max(ok, key=key) if ok else None
+
+
+def _totals(tiles, pairs, sections, meas: Measurements) -> dict:
+    def top(rows, key):
+        vals = [key(r) for r in rows if key(r) is not None]
+        return max(vals) if vals else None
+
+    plane = [summarize(pp.blocks.magnitudes) for pp in meas.plane_pairs]
+    n_pairs = sum(r["accepted"] is not None for r in pairs)
+    rejected = sum(r["accepted"] is False for r in pairs)
+    fs = sum(bool(r["flags"]) for r in sections)
+    ft = sum(bool(r["flags"]) for r in tiles)
+    return {
+        "stitch.rms": top(sections, lambda r: r["stitch"]["rms"]),
+        "stitch.p95": top(sections, lambda r: r["stitch"]["p95"]),
+        "stitch.max": top(sections, lambda r: r["stitch"]["max"]),
+        "align.rms": top(plane, lambda r: r["rms"]), "align.p95": top(plane, lambda r: r["p95"]),
+        "align.max": top(plane, lambda r: r["max"]),
+        "elastic.max": top(sections, lambda r: r["elastic"]["max"]),
+        "flagged": fs + ft, "flagged.sections": fs, "flagged.tiles": ft,
+        "lost": sum(r["lost"] for r in sections), "rejected": rejected,
+        "rejected.fraction": rejected / n_pairs if n_pairs else None,
+        "tiles": len(tiles), "pairs": len(pairs), "sections": len(sections),
+    }
+
+
+def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> tuple[dict, Measurements]:
+    """Return the metrics document of a build and the block-level measurements behind it.
+
+    Parameters
+    ----------
+    build_dir : str or Path
+        The build folder.
+    settings : ReportSettings
+        Block sizes and the measuring level.
+    progress : callable, optional
+        Called as ``progress(step, done, total)`` while measuring.
+    """
+    folder = BuildFolder(build_dir)
+    store = folder.store
+    canvas = store.load_canvas()
+    sc = _Scale(folder, canvas)
+    secs = sorted(set(store.sections_with("stitch")) | set(store.sections_with("align"))
+                  | (set(canvas.lost_sections) if canvas else set()))
+    stitches = {s: store.load_stitch(s) for s in store.sections_with("stitch")}
+    aligns = {s: store.load_alignment(s) for s in store.sections_with("align")}
+    meas = Measurements()
+    tiles, pairs, seam_sums = [], [], {}
+    for k, (s, st) in enumerate(stitches.items()):
+        meas.seams[s] = measure_seams(st, settings)
+        t, p, seam_sums[s] = _stitch_rows(s, st, meas.seams[s], aligns.get(s), sc)
+        tiles += t
+        pairs += p
+        if progress:
+            progress("seams", k + 1, len(stitches))
+    meas.source = open_planes(build_dir, max_factor=settings.measure_scale)
+    if meas.source is None:
+        meas.notes.append("no rendered volume yet: section-to-section residuals were not measured")
+    else:
+        lost = {sc.z(s) for s in canvas.lost_sections} if canvas else set()
+        meas.plane_pairs = measure_planes(meas.source, lost, settings,
+                                          (lambda d, n: progress("planes", d, n)) if progress else None)
+    sections = _section_rows(secs, stitches, aligns, seam_sums, meas, sc)
+    meas.notes += [f"section {r['section']} tile pair {r['a']}-{r['b']}: {r['error']}" for r in pairs if r["error"]]
+    src = meas.source
+    doc = {
+        "schema_version": SCHEMA_VERSION, "build": str(build_dir),
+        "volume": {"pixel_size_nm": sc.px_nm, "section_thickness_nm": sc.dz_nm,
+                   "width": canvas.width if canvas else None, "height": canvas.height if canvas else None,
+                   "depth": canvas.depth if canvas else None,
+                   "first_section": canvas.first_section if canvas else None,
+                   "lost_sections": list(canvas.lost_sections) if canvas else [],
+                   "measured_on": None if src is None else
+                   {"origin": src.origin, "level": src.level, "factor": src.factor}},
+        "tiles": tiles, "pairs": pairs, "sections": sections, "channels": [],
+        "totals": _totals(tiles, pairs, sections, meas),
+        "worst": {"tile": _worst(tiles, lambda r: r["seam_median"]),
+                  "pair": _worst(pairs, lambda r: r["measured"]["median"]),
+                  "section_stitch": _worst(sections, lambda r: r["stitch"]["rms"]),
+                  "section_align": _worst(sections, lambda r: r["align_score"])},
+        "notes": meas.notes,
+    }
+    return doc, meas
+
+
+def _flat(row: dict, prefix: str = "") -> dict:
+    """Flatten nested dicts into ``a.b`` columns; lists become ``;``-joined text."""
+    out = {}
+    for k, v in row.items():
+        name = f"{prefix}{k}"
+        if isinstance(v, dict):
+            out.update(_flat(v, name + "."))
+        elif isinstance(v, list):
+            out[name] = ";".join(str(x) for x in v)
+        else:
+            out[name] = v
+    return out
+
+
+def _write_csv(path: Path, rows: list[dict]) -> Path:
+    flat = [_flat(r) for r in rows]
+    cols = list(dict.fromkeys(k for r in flat for k in r))
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=cols)
+        w.writeheader()
+        w.writerows(flat)
+    return path
+
+
+def _jsonable(x):
+    if isinstance(x, dict):
+        return {str(k): _jsonable(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_jsonable(v) for v in x]
+    if isinstance(x, (np.floating, float)):
+        return float(x) if np.isfinite(x) else None
+    if isinstance(x, np.integer):
+        return int(x)
+    if isinstance(x, np.bool_):
+        return bool(x)
+    return x
+
+
+def write_metrics(doc: dict, qc_dir: str | Path) -> list[Path]:
+    """Write ``metrics.json`` and the CSV tables (``channels.csv`` only if there are channels)."""
+    from ..transforms.store import atomic_write_text
+
+    qc_dir = Path(qc_dir)
+    qc_dir.mkdir(parents=True, exist_ok=True)
+    path = qc_dir / "metrics.json"
+    atomic_write_text(path, json.dumps(_jsonable(doc), indent=1, allow_nan=False) + "\n")
+    paths = [path]
+    for name in ("tiles", "pairs", "sections", "channels"):
+        if doc[name] or name != "channels":
+            paths.append(_write_csv(qc_dir / f"{name}.csv", doc[name]))
+    return paths

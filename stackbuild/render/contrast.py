@@ -17,7 +17,7 @@ DOC_KIND = "contrast"
 
 
 def measure_range(stitch: SectionStitch, percentiles: tuple[float, float] = (1.0, 99.0),
-                  scale: int = 8) -> tuple[float, float]:
+                  scale: int = 4) -> tuple[float, float]:
     """Return the ``percentiles`` of a section's corrected intensities on a coarse render."""
     x0, y0, x1, y1 = stitch.bbox()
     ox, oy = int(np.floor(x0 + 0.5)), int(np.floor(y0 + 0.5))
@@ -32,7 +32,7 @@ def measure_range(stitch: SectionStitch, percentiles: tuple[float, float] = (1.0
 
 
 def contrast_record(ranges: dict[int, tuple[float, float]], percentiles: tuple[float, float],
-                    scale: int = 8) -> dict:
+                    scale: int = 4) -> dict:
     """Return the contrast document: per-section ranges, the target range, and each section's gain and offset."""
     if not ranges:
         return {"percentiles": list(percentiles), "scale": scale, "target": None, "sections": {}}

@@ -26,6 +26,9 @@ class RenderSettings:
         Normalise each section's intensity to a common robust percentile range.
     contrast_percentiles : tuple of float
         The low and high percentiles matched by ``contrast``.
+    contrast_scale : int
+        Reduction factor of the coarse render on which ``contrast`` measures each section's
+        percentiles (larger is cheaper; block means narrow the range of fine texture).
     """
 
     chunk: int = 1024
@@ -36,3 +39,4 @@ class RenderSettings:
     interpolation: str = "linear"
     contrast: bool = False
     contrast_percentiles: tuple[float, float] = (1.0, 99.0)
+    contrast_scale: int = 4

@@ -49,6 +49,8 @@ def check_settings(settings) -> None:
     lo, hi = settings.contrast_percentiles
     if not 0 <= lo < hi <= 100:
         raise InputError(f"{where} contrast_percentiles must satisfy 0 <= low < high <= 100")
+    if settings.contrast_scale < 1:
+        raise InputError(f"{where} contrast_scale must be >= 1, got {settings.contrast_scale}")
 
 
 def _compressors(settings):
@@ -67,13 +69,15 @@ def _prepare_contrast(folder, settings, sections, planes_sections) -> None:
     store = folder.store
     old = store.load_doc(DOC_KIND) or {}
     ranges = {int(k): (v["low"], v["high"]) for k, v in old.get("sections", {}).items()
-              if old.get("percentiles") == list(settings.contrast_percentiles)}
+              if old.get("percentiles") == list(settings.contrast_percentiles)
+              and old.get("scale") == settings.contrast_scale}
     for s in sections:
         if s in planes_sections or s not in ranges:
             stitch, _ = section_records(str(store.root), s)
-            ranges[s] = measure_range(stitch, settings.contrast_percentiles)
+            ranges[s] = measure_range(stitch, settings.contrast_percentiles, settings.contrast_scale)
     ranges = {s: r for s, r in ranges.items() if s in sections}
-    store.save_doc(DOC_KIND, contrast_record(ranges, tuple(settings.contrast_percentiles)))
+    store.save_doc(DOC_KIND, contrast_record(ranges, tuple(settings.contrast_percentiles),
+                                             settings.contrast_scale))
 
 
 def _read_checkpoint(em: Path) -> dict | None:

@@ -1,0 +1,178 @@
+"""The sampler and reducers against reference libraries (scikit-image, OpenCV, SciPy) and ground truth."""
+from __future__ import annotations
+
+import cv2
+import numpy as np
+import pytest
+import tifffile
+import zarr
+from scipy import ndimage, stats
+from skimage import data, measure, transform
+
+from stackbuild.render import tiles as tiles_mod
+from stackbuild.render.reduce import reduce2x2
+from stackbuild.render.sampler import render_region
+from stackbuild.render.settings import RenderSettings
+from stackbuild.transforms import Affine2D, DisplacementField, SectionAlignment, SectionStitch, TilePlacement
+
+from test_render_build import foam, make_build
+
+
+def _one_tile(tmp_path, img, x=0.0, y=0.0, gain=1.0, offset=0.0, illumination=None):
+    path = tmp_path / "tile.tif"
+    tifffile.imwrite(path, img)
+    t = TilePlacement("t", str(path), img.shape[1], img.shape[0], x, y, x, y, gain=gain, offset=offset)
+    return SectionStitch(0, img.dtype.name, [t], illumination=illumination)
+
+
+@pytest.fixture
+def camera():
+    # Data shipped with scikit-image (skimage.data.camera), smoothed so that OpenCV's 1/32-pixel
+    # fixed-point bilinear weights (OpenCV docs, INTER_BITS = 5; from memory) stay below a grey level.
+    return np.round(ndimage.gaussian_filter(data.camera()[:256, :256].astype(np.float64), 1.5)).astype(np.uint8)
+
+
+def test_affine_resampling_matches_skimage_warp(tmp_path, camera):
+    stitch = _one_tile(tmp_path, camera)
+    pull = Affine2D.similarity(0.9, 0.3, tx=20.0, ty=-15.0, center=(128, 128))  # aligned -> section
+    ours = render_region(stitch, SectionAlignment(0, pull), 0, 0, 256, 256, order=1)
+    # Reference: skimage.transform.warp with the same inverse map and order=1 (bilinear).
+    ref = transform.warp(camera.astype(np.float64), transform.AffineTransform(matrix=pull.homogeneous),
+                         order=1, preserve_range=True)
+    yy, xx = np.mgrid[:256, :256]
+    src = pull.apply(np.column_stack([xx.ravel(), yy.ravel()])).reshape(256, 256, 2)
+    inside = (src[..., 0] > 1) & (src[..., 0] < 254) & (src[..., 1] > 1) & (src[..., 1] < 254)
+    assert inside.mean() > 0.5
+    assert np.abs(ours[inside] - ref[inside]).max() <= 1.0
+
+
+def test_cubic_resampling_matches_opencv_warp_affine(tmp_path, camera):
+    stitch = _one_tile(tmp_path, camera)
+    pull = Affine2D.similarity(1.1, -0.2, tx=-6.0, ty=9.0, center=(128, 128))
+    ours = render_region(stitch, SectionAlignment(0, pull), 0, 0, 256, 256, order=3)
+    # Reference: OpenCV warpAffine, cubic convolution, given the pull-back (inverse) map.
+    ref = cv2.warpAffine(camera.astype(np.float32), pull.matrix, (256, 256),
+                         flags=cv2.INTER_CUBIC | cv2.WARP_INVERSE_MAP)
+    yy, xx = np.mgrid[:256, :256]
+    src = pull.apply(np.column_stack([xx.ravel(), yy.ravel()])).reshape(256, 256, 2)
+    inside = (src[..., 0] > 2) & (src[..., 0] < 253) & (src[..., 1] > 2) & (src[..., 1] < 253)
+    assert np.abs(ours[inside] - ref[inside]).max() <= 0.5
+
+
+def test_elastic_field_matches_scipy_map_coordinates(tmp_path, camera):
+    stitch = _one_tile(tmp_path, camera)
+    gy, gx = np.mgrid[:9, :9].astype(np.float32)
+    vec = np.stack([3 * np.sin(gx / 3), 2 * np.cos(gy / 2)], axis=-1)
+    field = DisplacementField(vec, origin=(0.0, 0.0), spacing=32.0)
+    pull = Affine2D.translation(4.0, -3.0)
+    ours = render_region(stitch, SectionAlignment(0, pull, field), 0, 0, 256, 256)
+    yy, xx = np.mgrid[:256, :256]
+    src = pull.apply(field.apply(np.column_stack([xx.ravel(), yy.ravel()])))
+    # Reference: scipy.ndimage.map_coordinates, order=1, at the positions the stored chain gives.
+    ref = ndimage.map_coordinates(camera.astype(np.float64), [src[:, 1], src[:, 0]], order=1).reshape(256, 256)
+    s = src.reshape(256, 256, 2)
+    inside = (s[..., 0] > 1) & (s[..., 0] < 254) & (s[..., 1] > 1) & (s[..., 1] < 254)
+    assert np.abs(ours[inside] - ref[inside]).max() <= 1.0
+
+
+def test_intensity_correction_is_gain_times_raw_over_illumination_plus_offset(tmp_path):
+    raw = foam(48, 40, seed=3)
+    stitch = _one_tile(tmp_path, raw, gain=1.5, offset=3.0, illumination=np.full((4, 4), 2.0, np.float32))
+    tiles_mod.TILE_CACHE.clear()
+    out = render_region(stitch, None, 0, 0, 40, 48)
+    # Ground truth: the correction written out (the profile is constant, so its upsampling is too).
+    np.testing.assert_allclose(out, 1.5 * raw / 2.0 + 3.0, rtol=1e-5)
+
+
+def test_overlapping_tiles_blend_back_to_the_mosaic(tmp_path):
+    folder = make_build(tmp_path, n_sections=1, grid=(3, 3), tile=(48, 48), overlap=12)
+    stitch = folder.store.load_stitch(0)
+    out, weight = render_region(stitch, None, -3, -2, 110, 112, return_weight=True)
+    mosaic = foam(120, 120, seed=100)
+    # Ground truth: tiles cut from one mosaic at exact positions must blend back to it.
+    np.testing.assert_allclose(out[2:, 3:], mosaic[:110, :107], atol=1e-3)
+    assert not weight[:2].any() and not weight[:, :3].any()
+
+
+def test_reduced_render_is_the_block_mean(tmp_path):
+    folder = make_build(tmp_path, n_sections=1, grid=(3, 3), tile=(48, 48), overlap=12)
+    stitch = folder.store.load_stitch(0)
+    out = render_region(stitch, None, 0, 0, 30, 30, scale=4)
+    mosaic = foam(120, 120, seed=100).astype(np.float64)
+    # Reference: skimage.transform.downscale_local_mean of the full-resolution mosaic.
+    np.testing.assert_allclose(out, transform.downscale_local_mean(mosaic, (4, 4)), atol=1e-3)
+
+
+def test_only_tiles_meeting_the_region_are_read(tmp_path, monkeypatch):
+    folder = make_build(tmp_path, n_sections=1, grid=(3, 3), tile=(48, 48), overlap=12)
+    stitch = folder.store.load_stitch(0)
+    read = []
+    real = tiles_mod.read_tile
+    monkeypatch.setattr(tiles_mod, "read_tile", lambda p, *a: read.append(p.name) or real(p, *a))
+    tiles_mod.TILE_CACHE.clear()
+    render_region(stitch, None, 2, 2, 20, 20)
+    assert read == ["s0_r0_c0.tif"]
+    render_region(stitch, None, 2, 2, 20, 20)  # served from the cache
+    assert read == ["s0_r0_c0.tif"]
+
+
+def test_tile_cache_is_bounded_in_bytes():
+    cache = tiles_mod.ByteLRU(1000)
+    for k in range(5):
+        cache.put(k, np.zeros(300, np.uint8))
+    assert cache.nbytes <= 1000 and cache.get(0) is None and cache.get(4) is not None
+
+
+def test_point_lands_on_the_same_physical_spot_at_every_level(tmp_path):
+    def content(s, h, w):
+        img = np.full((h, w), 10, np.uint8)
+        img[45:50, 37:44] = 250  # a bright 7 x 5 block, not aligned to any power of two
+        return img
+
+    settings = RenderSettings(chunk=16, shard=1)
+    folder = make_build(tmp_path, n_sections=1, grid=(2, 2), tile=(64, 64), overlap=8,
+                        settings=settings, content=content)
+    from stackbuild.render.write import render_volume
+    facts = render_volume(folder.root, settings)
+    assert len(facts["levels"]) == 4
+    ms = zarr.open_group(str(folder.volume_path / "em"), mode="r").attrs["ome"]["multiscales"][0]
+    centres = []
+    for ds in ms["datasets"]:
+        img = zarr.open_array(str(folder.volume_path / "em" / ds["path"]), mode="r")[0].astype(np.float64) - 10
+        scale, trans = (t[k] for t, k in zip(ds["coordinateTransformations"], ("scale", "translation")))
+        yy, xx = np.mgrid[:img.shape[0], :img.shape[1]]
+        # OME-NGFF: physical = index * scale + translation (index = pixel centre).
+        centres.append((np.sum(img * (xx * scale[2] + trans[2])) / img.sum(),
+                        np.sum(img * (yy * scale[1] + trans[1])) / img.sum()))
+    centres = np.array(centres) / 4.0  # in level-0 pixels
+    np.testing.assert_allclose(centres[0], (40.0, 47.0), atol=1e-9)
+    # Agreement to a tenth of each level's pixel (rounding to integers moves the centroid a
+    # little); a translation of 0 instead of (2**n - 1)/2 would be off by 0.5, 1.5, 3.5 pixels.
+    tol = 0.1 * 2.0 ** np.arange(len(centres))
+    assert np.all(np.abs(centres - centres[0]).max(axis=1) < tol), centres
+
+
+@pytest.mark.parametrize("how, ref", [("max", np.max), ("min", np.min)])
+def test_extreme_reducers_match_skimage_block_reduce(how, ref):
+    rng = np.random.default_rng(1)
+    img = rng.integers(0, 65535, (1, 18, 22), dtype=np.uint16)
+    # Reference: skimage.measure.block_reduce (even sizes, so its padding plays no part).
+    np.testing.assert_array_equal(reduce2x2(img, how), measure.block_reduce(img, (1, 2, 2), ref))
+
+
+def test_mode_reducer_matches_scipy_mode():
+    rng = np.random.default_rng(2)
+    img = rng.integers(0, 4, (1, 20, 20), dtype=np.uint8)
+    quads = img.reshape(1, 10, 2, 10, 2).transpose(0, 1, 3, 2, 4).reshape(1, 10, 10, 4)
+    # Reference: scipy.stats.mode, which returns the smallest of tied values (SciPy docs).
+    np.testing.assert_array_equal(reduce2x2(img, "mode"), stats.mode(quads, axis=-1).mode)
+
+
+def test_bad_arguments_are_refused(tmp_path, camera):
+    stitch = _one_tile(tmp_path, camera)
+    with pytest.raises(ValueError, match="scale"):
+        render_region(stitch, None, 0, 0, 8, 8, scale=0)
+    with pytest.raises(ValueError, match="order"):
+        render_region(stitch, None, 0, 0, 8, 8, order=2)
+    with pytest.raises(ValueError, match="reducer"):
+        reduce2x2(np.zeros((2, 2), np.uint8), "median")

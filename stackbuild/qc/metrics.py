@@ -221,7 +221,7 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
     settings : ReportSettings
         Block sizes and the measuring level.
     progress : callable, optional
-        Called as ``progress(step, done, total)`` while measuring.
+        Called as ``progress(done, total)`` while measuring (seams, then plane pairs).
     """
     folder = BuildFolder(build_dir)
     store = folder.store
@@ -239,14 +239,13 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
         tiles += t
         pairs += p
         if progress:
-            progress("seams", k + 1, len(stitches))
+            progress(k + 1, len(stitches))
     meas.source = open_planes(build_dir, max_factor=settings.measure_scale)
     if meas.source is None:
         meas.notes.append("no rendered volume yet: section-to-section residuals were not measured")
     else:
         lost = {sc.z(s) for s in canvas.lost_sections} if canvas else set()
-        meas.plane_pairs = measure_planes(meas.source, lost, settings,
-                                          (lambda d, n: progress("planes", d, n)) if progress else None)
+        meas.plane_pairs = measure_planes(meas.source, lost, settings, progress)
     sections = _section_rows(secs, stitches, aligns, seam_sums, meas, sc)
     meas.notes += [f"section {r['section']} tile pair {r['a']}-{r['b']}: {r['error']}" for r in pairs if r["error"]]
     src = meas.source

@@ -31,6 +31,9 @@ class PlaneSource:
         ``"volume.zarr"`` or ``"lazy"``: where the planes come from.
     level : int
         Index of the level.
+    bin : int
+        Planes are further reduced by a ``bin x bin`` mean when the volume has
+        no level as coarse as asked for (``factor`` and ``offset`` include it).
     """
 
     data: object
@@ -38,6 +41,7 @@ class PlaneSource:
     offset: tuple[float, float]
     origin: str
     level: int
+    bin: int = 1
 
     @property
     def depth(self) -> int:
@@ -49,7 +53,12 @@ class PlaneSource:
         p = self.data[int(z)]
         if hasattr(p, "compute"):
             p = p.compute()
-        return np.asarray(p, dtype=np.float32)
+        p = np.asarray(p, dtype=np.float32)
+        if self.bin > 1:
+            b = self.bin
+            h, w = (p.shape[0] // b) * b, (p.shape[1] // b) * b
+            p = p[:h, :w].reshape(h // b, b, w // b, b).mean(axis=(1, 3), dtype=np.float32)
+        return p
 
     def to_level0(self, points: np.ndarray) -> np.ndarray:
         """Map ``(N, 2)`` ``(x, y)`` pixels of this level to level-0 output pixels."""
@@ -107,7 +116,7 @@ def _choose(factors: list[float], max_factor: float | None, max_px: int | None, 
 
 
 def open_planes(build_dir: str | Path, *, max_factor: float | None = None,
-                max_px: int | None = None) -> PlaneSource | None:
+                max_px: int | None = None, written: bool = True) -> PlaneSource | None:
     """Return the output volume at a chosen level, or ``None`` if there is no volume yet.
 
     Parameters
@@ -118,9 +127,11 @@ def open_planes(build_dir: str | Path, *, max_factor: float | None = None,
         Choose the coarsest level whose pixel is at most this many level-0 pixels.
     max_px : int, optional
         Instead, choose the finest level whose larger plane side fits in this many pixels.
+    written : bool
+        Prefer the written ``volume.zarr``; False goes straight to the lazy volume.
     """
     build_dir = Path(build_dir)
-    found = _ome_levels(build_dir / "volume.zarr")
+    found = _ome_levels(build_dir / "volume.zarr") if written else None
     if found is not None:
         grp, datasets = found
         st = [_scale_translation(d) for d in datasets]
@@ -138,25 +149,60 @@ def open_planes(build_dir: str | Path, *, max_factor: float | None = None,
 
 
 def _lazy_planes(build_dir: Path, max_factor, max_px) -> PlaneSource | None:
+    """Return a level of the renderer's lazy volume (level ``n`` has pixels ``2**n`` wide)."""
     try:
         from ..render.lazy import open_volume
     except ImportError:
         return None
-    base = open_volume(build_dir, 0, True)
-    extent = max(base.data.shape[-2:])
-    level, chosen = 0, base
-    while True:  # walk down the pyramid until the next level would overshoot
+    try:
+        base = open_volume(build_dir, 0, True)
+    except Exception:  # no stitch records or canvas yet: nothing to look at
+        return None
+    if max_px is not None:
+        extent = max(base.data.shape[-2:])
+        level = max(0, int(np.ceil(np.log2(max(extent / max_px, 1.0)))))
+    else:
+        level = max(0, int(np.floor(np.log2(max(max_factor or 1, 1)))))
+    wanted = level
+    while level > 0:
         try:
-            nxt = open_volume(build_dir, level + 1, True)
-        except Exception:
+            vol = open_volume(build_dir, level, True)
             break
-        f = float(np.asarray(nxt.scale_nm)[-1] / np.asarray(base.scale_nm)[-1])
-        if (max_px is not None and extent / float(np.asarray(chosen.scale_nm)[-1]
-                                                  / np.asarray(base.scale_nm)[-1]) <= max_px) or \
-                (max_px is None and f > (max_factor or 1) + 1e-9) or nxt.data.shape[-1] < 2:
-            break
-        level, chosen = level + 1, nxt
+        except ValueError:  # fewer levels than asked for
+            level -= 1
+    else:
+        vol = base
     s0, t0 = np.asarray(base.scale_nm, float), np.asarray(base.translation_nm, float)
-    s, t = np.asarray(chosen.scale_nm, float), np.asarray(chosen.translation_nm, float)
-    off = ((t[-1] - t0[-1]) / s0[-1], (t[-2] - t0[-2]) / s0[-2])
-    return PlaneSource(chosen.data, float(s[-1] / s0[-1]), off, "lazy", level)
+    s, t = np.asarray(vol.scale_nm, float), np.asarray(vol.translation_nm, float)
+    factor = float(s[-1] / s0[-1])
+    b = max(1, int(round(2 ** wanted / factor)))
+    off = ((t[-1] - t0[-1]) / s0[-1] + factor * (b - 1) / 2, (t[-2] - t0[-2]) / s0[-2] + factor * (b - 1) / 2)
+    return PlaneSource(vol.data, factor * b, off, "lazy", level, b)
+
+
+def reslice_planes(source: PlaneSource, x: float, y: float) -> tuple[np.ndarray, np.ndarray]:
+    """Return the ``(z, x)`` slice at level-0 row ``y`` and the ``(z, y)`` slice at column ``x``."""
+    b = source.bin
+    lx = source.data.shape[-1] // b
+    ly = source.data.shape[-2] // b
+    col = int(np.clip(round((x - source.offset[0]) / source.factor), 0, lx - 1))
+    row = int(np.clip(round((y - source.offset[1]) / source.factor), 0, ly - 1))
+
+    def read(key):
+        a = source.data[key]
+        return np.asarray(a.compute() if hasattr(a, "compute") else a, np.float32)
+
+    xz = read((slice(None), slice(row * b, row * b + b), slice(0, lx * b))).reshape(
+        source.depth, b, lx, b).mean(axis=(1, 3))
+    yz = read((slice(None), slice(0, ly * b), slice(col * b, col * b + b))).reshape(
+        source.depth, ly, b, b).mean(axis=(2, 3))
+    return xz, yz
+
+
+def window(source: PlaneSource, z: int, x: float, y: float, half: int) -> np.ndarray:
+    """Return a ``2 * half`` square of plane ``z`` around level-0 point ``(x, y)`` (clipped to the plane)."""
+    p = source.plane(z)
+    cx = int(round((x - source.offset[0]) / source.factor))
+    cy = int(round((y - source.offset[1]) / source.factor))
+    y0, x0 = max(0, cy - half), max(0, cx - half)
+    return p[y0:cy + half, x0:cx + half]

@@ -1,0 +1,238 @@
+"""Figures of the quality report (matplotlib, Agg backend, PNG).
+
+Every function takes data already measured (rows of the metrics document,
+block measurements, arrays) and returns a :class:`matplotlib.figure.Figure`;
+:func:`save` writes it. Residuals are in full-resolution pixels throughout.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+from matplotlib.collections import LineCollection, PatchCollection  # noqa: E402
+from matplotlib.patches import Rectangle  # noqa: E402
+
+# Our palette: a sequential map for magnitudes and a few accents.
+SEQ = "cividis"
+INK, GOOD, BAD, WARN, LOST = "#22313f", "#2a9d8f", "#c8553d", "#e9a23b", "#b8b8b8"
+
+
+def save(fig, path: str | Path, dpi: int = 110) -> Path:
+    """Write ``fig`` as PNG and close it; return the path."""
+    fig.savefig(path, dpi=dpi, bbox_inches="tight", facecolor="white")
+    plt.close(fig)
+    return Path(path)
+
+
+def _note(ax, text: str) -> None:
+    ax.text(0.5, 0.5, text, ha="center", va="center", transform=ax.transAxes, color=INK)
+    ax.set_xticks([])
+    ax.set_yticks([])
+
+
+def tile_maps(stitches: dict, tile_rows: list[dict], pair_rows: list[dict], sections: list[int]):
+    """Return maps of tile positions coloured by seam residual, one panel per section.
+
+    Accepted pairs are solid lines between tile centres, rejected pairs dashed.
+    """
+    n = max(1, len(sections))
+    cols = min(3, n)
+    rows = int(np.ceil(n / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(4.8 * cols + 1, 4.4 * rows + 0.6), squeeze=False,
+                             layout="constrained")
+    vals = [r["seam_median"] for r in tile_rows if r["section"] in sections and r["seam_median"] is not None]
+    vmax = max(max(vals, default=0.0), 0.5)
+    norm = matplotlib.colors.Normalize(0, vmax)
+    cmap = plt.get_cmap(SEQ)
+    for ax in axes.ravel()[n:]:
+        ax.axis("off")
+    for ax, s in zip(axes.ravel(), sections):
+        st = stitches[s]
+        res = {r["tile"]: r["seam_median"] for r in tile_rows if r["section"] == s}
+        rects = [Rectangle((t.x - 0.5, t.y - 0.5), t.width, t.height) for t in st.tiles]
+        colours = [cmap(norm(res[t.tile])) if res.get(t.tile) is not None else LOST for t in st.tiles]
+        ax.add_collection(PatchCollection(rects, facecolors=colours, edgecolors=INK, linewidths=0.6, alpha=0.85))
+        centre = {t.tile: (t.x + t.width / 2, t.y + t.height / 2) for t in st.tiles}
+        for acc, style, col in ((True, "-", GOOD), (False, "--", BAD)):
+            segs = [(centre[r["a"]], centre[r["b"]]) for r in pair_rows
+                    if r["section"] == s and bool(r["accepted"]) == acc and r["a"] in centre and r["b"] in centre]
+            if segs:
+                ax.add_collection(LineCollection(segs, colors=col, linestyles=style, linewidths=1.6))
+        x0, y0, x1, y1 = st.bbox()
+        ax.set_xlim(x0 - 10, x1 + 10)
+        ax.set_ylim(y1 + 10, y0 - 10)
+        ax.set_aspect("equal")
+        ax.set_title(f"section {s}", color=INK)
+        ax.set_xlabel("x (section px)")
+        ax.set_ylabel("y (section px)")
+    sm = matplotlib.cm.ScalarMappable(norm=norm, cmap=cmap)
+    fig.colorbar(sm, ax=axes.ravel().tolist(), shrink=0.8, label="tile seam residual, median (px)")
+    fig.suptitle("Tile placement: colour = seam residual; solid = accepted pair, dashed = rejected",
+                 color=INK, fontsize=11)
+    return fig
+
+
+def residual_vs_z(section_rows: list[dict]):
+    """Return median, p95 and max of the residual to the previous plane against z.
+
+    Flagged sections get a triangle on the axis, lost sections a grey band.
+    """
+    fig, ax = plt.subplots(figsize=(9, 3.8))
+    rows = [r for r in section_rows if r["z"] is not None]
+    pts = [(r["z"], r["align_prev"]) for r in rows if r["align_prev"] and r["align_prev"]["n"]]
+    if pts:
+        z = np.array([p[0] for p in pts])
+        for key, col, mk in (("median", GOOD, "o"), ("p95", WARN, "s"), ("max", BAD, "^")):
+            ax.plot(z, [p[1][key] for p in pts], marker=mk, color=col, label=key, lw=1.4, ms=4)
+    else:
+        _note(ax, "no section-to-section residuals measured")
+    for r in rows:
+        if r["lost"]:
+            ax.axvspan(r["z"] - 0.5, r["z"] + 0.5, color=LOST, alpha=0.5, lw=0)
+    fz = [r["z"] for r in rows if r["flags"] and not r["lost"]]
+    if fz:
+        ax.plot(fz, np.zeros(len(fz)), "v", color=BAD, ms=9, clip_on=False, label="flagged", ls="none")
+    if any(r["lost"] for r in rows):
+        ax.plot([], [], "s", color=LOST, ms=9, label="lost")
+    ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
+    ax.set_xlabel("z (plane, each compared with the plane before)")
+    ax.set_ylabel("residual (full-res px)")
+    ax.set_ylim(bottom=0)
+    ax.grid(alpha=0.3)
+    ax.legend(loc="upper left", fontsize=8, ncols=5)
+    ax.set_title("Section-to-section residual after the final transforms", color=INK)
+    return fig
+
+
+def displacement_field(section: int, field, origin_out=(0.0, 0.0)):
+    """Return the magnitude map and arrows of a section's elastic displacement field."""
+    fig, ax = plt.subplots(figsize=(6.5, 5.2))
+    if field is None:
+        _note(ax, f"section {section}: no displacement field stored")
+        return fig
+    v = field.vectors
+    ny, nx = v.shape[:2]
+    xs = field.origin[0] - origin_out[0] + field.spacing * np.arange(nx)
+    ys = field.origin[1] - origin_out[1] + field.spacing * np.arange(ny)
+    mag = np.hypot(v[..., 0], v[..., 1])
+    half = field.spacing / 2
+    im = ax.imshow(mag, cmap=SEQ, origin="upper", interpolation="nearest",
+                   extent=(xs[0] - half, xs[-1] + half, ys[-1] + half, ys[0] - half))
+    ax.quiver(*np.meshgrid(xs, ys), v[..., 0], v[..., 1], color="white", angles="xy",
+              scale_units="xy", scale=max(float(mag.max()), 1e-6) / (0.8 * field.spacing), width=0.004)
+    fig.colorbar(im, ax=ax, label="displacement (px)")
+    ax.set_xlabel("x (output px)")
+    ax.set_ylabel("y (output px)")
+    ax.set_title(f"Elastic displacement, section {section} (arrows to scale of the largest)", color=INK)
+    return fig
+
+
+def residual_heatmap(plane_pairs, width: float | None = None, bins: int = 24):
+    """Return the largest residual in each x band, for every pair of adjacent planes."""
+    fig, ax = plt.subplots(figsize=(9, 4))
+    pairs = [p for p in plane_pairs if len(p.blocks.ncc)]
+    if not pairs:
+        _note(ax, "no section-to-section residuals measured")
+        return fig
+    xmax = width or max(float(p.blocks.points[:, 0].max()) for p in pairs) + 1
+    xs = np.unique(np.concatenate([p.blocks.points[:, 0] for p in pairs]))
+    if len(xs) <= bins:  # blocks lie on a regular grid: one column per grid column
+        mid = (xs[:-1] + xs[1:]) / 2
+        edges = np.concatenate([[0.0], mid, [xmax]]) if len(xs) > 1 else np.array([0.0, xmax])
+        bins = len(xs)
+    else:
+        edges = np.linspace(0, xmax, bins + 1)
+    grid = np.full((len(pairs), bins), np.nan)
+    for i, p in enumerate(pairs):
+        k = np.clip(np.digitize(p.blocks.points[:, 0], edges) - 1, 0, bins - 1)
+        for j, m in zip(k, p.blocks.magnitudes):
+            grid[i, j] = m if np.isnan(grid[i, j]) else max(grid[i, j], m)
+    zs = [p.zb for p in pairs]
+    cmap = plt.get_cmap(SEQ).copy()
+    cmap.set_bad("#e6e1d6")
+    ax.pcolormesh(edges, np.arange(len(zs) + 1) - 0.5, np.ma.masked_invalid(grid), cmap=cmap, shading="flat")
+    im = ax.collections[-1]
+    ax.set_ylim(len(zs) - 0.5, -0.5)
+    ax.set_yticks(np.arange(len(zs)), [str(z) for z in zs] if len(zs) <= 40 else None)
+    if len(zs) > 40:
+        ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
+    fig.colorbar(im, ax=ax, label="largest residual in band (px)")
+    ax.set_xlabel("x (output px)")
+    ax.set_ylabel("z (plane vs the one before)")
+    ax.set_title("Residual over the stack (light grey = no block measured)", color=INK)
+    return fig
+
+
+def reslice(xz: np.ndarray, yz: np.ndarray, z_aspect: float, at: tuple[float, float], factor: float):
+    """Return the x-z and y-z re-slices, stretched in z by ``z_aspect`` (section thickness over pixel)."""
+    panel = [float(np.clip(9.0 * img.shape[0] * z_aspect / max(img.shape[1] * factor, 1), 0.6, 4.5))
+             for img in (xz, yz)]
+    fig, axes = plt.subplots(2, 1, figsize=(9, sum(panel) + 2.0), layout="constrained",
+                             gridspec_kw={"height_ratios": panel})
+    for ax, img, name, pos in ((axes[0], xz, "x", f"y = {at[1]:.0f}"), (axes[1], yz, "y", f"x = {at[0]:.0f}")):
+        lo, hi = np.percentile(img, [1, 99]) if img.size else (0, 1)
+        n = img.shape[1] * factor
+        ax.imshow(img, cmap="gray", vmin=lo, vmax=hi, interpolation="nearest",
+                  extent=(0, n, img.shape[0] - 0.5, -0.5), aspect=z_aspect / factor)
+        ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
+        ax.set_xlabel(f"{name} (output px)")
+        ax.set_ylabel("z (plane)")
+        ax.set_title(f"{name}-z re-slice at {pos} (z stretched by {z_aspect:.1f}: physical proportions)",
+                     color=INK, fontsize=10)
+    return fig
+
+
+def overlay(a: np.ndarray, b: np.ndarray, za: int, zb: int, at: tuple[float, float], tiles: int = 8):
+    """Return a two-colour overlay and a checkerboard of two planes around a spot.
+
+    In the overlay plane ``za`` is orange and ``zb`` blue; where they agree the
+    picture is grey.
+    """
+    def norm(x):
+        lo, hi = np.percentile(x, [1, 99])
+        return np.clip((x - lo) / max(hi - lo, 1e-6), 0, 1)
+
+    na, nb = norm(a), norm(b)
+    rgb = np.dstack([na, 0.55 * na + 0.45 * nb, nb])
+    h, w = a.shape
+    yy, xx = np.mgrid[0:h, 0:w]
+    cell = max(1, min(h, w) // tiles)
+    board = np.where(((yy // cell + xx // cell) % 2) == 0, na, nb)
+    fig, axes = plt.subplots(1, 2, figsize=(10, 5))
+    axes[0].imshow(rgb, interpolation="nearest")
+    axes[0].set_title(f"z {za} (orange) over z {zb} (blue)", color=INK)
+    axes[1].imshow(board, cmap="gray", interpolation="nearest")
+    axes[1].set_title(f"checkerboard z {za} / z {zb}", color=INK)
+    for ax in axes:
+        ax.set_xticks([])
+        ax.set_yticks([])
+    fig.suptitle(f"Worst section-to-section residual, around x = {at[0]:.0f}, y = {at[1]:.0f} output px",
+                 color=INK, fontsize=11)
+    return fig
+
+
+def histograms(pair_rows: list[dict], seam_mags: np.ndarray, plane_mags: np.ndarray):
+    """Return histograms of pair confidence (NCC), seam residuals and section residuals."""
+    fig, axes = plt.subplots(1, 3, figsize=(12, 3.6))
+    acc = [r["ncc"] for r in pair_rows if r["ncc"] is not None and r["accepted"]]
+    rej = [r["ncc"] for r in pair_rows if r["ncc"] is not None and not r["accepted"]]
+    bins = np.linspace(min(acc + rej + [0.0]), 1.0, 21)
+    axes[0].hist([acc, rej], bins=bins, stacked=True, color=[GOOD, BAD], label=["accepted", "rejected"])
+    axes[0].set_xlabel("pair NCC (stitcher)")
+    axes[0].legend(fontsize=8)
+    for ax, mags, name in ((axes[1], seam_mags, "seam residual (px)"),
+                           (axes[2], plane_mags, "section-to-section residual (px)")):
+        if len(mags):
+            ax.hist(mags, bins=30, color=WARN, edgecolor=INK, linewidth=0.3)
+        else:
+            _note(ax, "nothing measured")
+        ax.set_xlabel(name)
+    for ax in axes:
+        ax.set_ylabel("count")
+        ax.grid(alpha=0.3)
+    fig.suptitle("Distributions", color=INK, fontsize=11)
+    return fig

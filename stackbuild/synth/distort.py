@@ -51,12 +51,18 @@ def section_field(params: SynthParams, section: int) -> DisplacementField:
     if params.warp == 0:
         return DisplacementField(np.zeros((ny, nx, 2), np.float32), origin, FIELD_SPACING)
     v = np.stack([gaussian_filter(raw[..., i], _FIELD_SMOOTH, mode="nearest") for i in range(2)], -1)
+    # Remove the affine part of the interpolated field over the canvas; bilinear interpolation
+    # reproduces affine functions exactly, so subtracting it at the nodes removes it everywhere inside.
+    qx, qy = np.meshgrid(np.linspace(0, w - 1, 48), np.linspace(0, h - 1, 48))
+    q = np.column_stack([qx.ravel(), qy.ravel(), np.ones(qx.size)])
+    dense = field_at(DisplacementField(v, origin, FIELD_SPACING), q[:, :2])
+    coef, *_ = np.linalg.lstsq(q, dense, rcond=None)
     gx, gy = np.meshgrid(origin[0] + FIELD_SPACING * np.arange(nx), origin[1] + FIELD_SPACING * np.arange(ny))
-    inside = (gx >= 0) & (gx <= w - 1) & (gy >= 0) & (gy <= h - 1)
-    design = np.column_stack([gx.ravel(), gy.ravel(), np.ones(gx.size)])
-    coef, *_ = np.linalg.lstsq(design[inside.ravel()], v.reshape(-1, 2)[inside.ravel()], rcond=None)
-    v = v - (design @ coef).reshape(v.shape)
-    v *= params.warp / np.sqrt((v ** 2).sum(-1)).max()
+    v = v - (np.column_stack([gx.ravel(), gy.ravel(), np.ones(gx.size)]) @ coef).reshape(v.shape)
+    peak = np.sqrt(((dense - q @ coef) ** 2).sum(-1)).max()
+    v *= params.warp / peak
+    # nodes beyond the canvas only matter for marker images; keep them within the bound too
+    v /= np.maximum(np.sqrt((v ** 2).sum(-1, keepdims=True)) / params.warp, 1.0)
     return DisplacementField(v.astype(np.float32), origin, FIELD_SPACING)
 
 

@@ -55,7 +55,7 @@ def slant_model(params: SynthParams) -> dict:
              for a, b in zip(ang, g.uniform(0, 2 * math.pi, 3))]
     rec = {"waves": waves, "correction": [[0.0] * 3, [0.0] * 3], "z_ref": (params.sections - 1) / 2.0,
            "drift": list(map(float, params.drift))}
-    xs, ys = np.arange(0, w, 32.0), np.arange(0, h, 32.0)
+    xs, ys = np.arange(0, w, 8.0), np.arange(0, h, 8.0)
     vx, vy = slant_grid(rec, xs, ys)
     gx, gy = np.meshgrid(xs, ys)
     design = np.column_stack([gx.ravel(), gy.ravel(), np.ones(gx.size)])

@@ -31,6 +31,9 @@ from scipy import optimize
 from ..transforms.types import Affine2D
 
 MODELS = ("rigid", "similarity", "affine")
+MIN_OVERLAP = 0.5  # fraction of the smaller image that must overlap (common practice, no source)
+SEARCH_BUDGET = 2e7  # pixel visits allowed for the exhaustive start search (about a second)
+MAX_STRETCH = 0.1  # largest scale change or shear searched, relative
 
 
 def _bin_index(values: np.ndarray, lo: float, hi: float, bins: int) -> np.ndarray:
@@ -133,6 +136,7 @@ class _Level:
         span = max(hi - lo, 1e-12)
         self.m_lo, self.m_scale = lo, bins / span
         self.mmask = mmask.astype(np.float32)
+        self.n_moving, self.n_fixed = int(mmask.sum()), int(fmask.sum())
         s = float(factor)
         # full-resolution index = s * level index + (s - 1) / 2 (block-mean pixel centres)
         self.to_full = Affine2D(np.array([[s, 0, (s - 1) / 2], [0, s, (s - 1) / 2]]))
@@ -147,7 +151,8 @@ class _Level:
         ok = cv2.warpAffine(self.mmask, inv, (w, h), flags=flags, borderMode=cv2.BORDER_CONSTANT,
                             borderValue=0.0)
         sel = (ok > 0.999) & self.fmask
-        if sel.sum() < 16:
+        # Too small an overlap can score high by chance: require half of the smaller image.
+        if sel.sum() < max(16, MIN_OVERLAP * min(self.n_moving, self.n_fixed)):
             return 0.0
         u = np.clip((val[sel].astype(np.float64) - self.m_lo) * self.m_scale - 0.5, 0, self.bins - 1)
         k0 = np.floor(u).astype(np.intp)
@@ -195,6 +200,16 @@ def _param_map(model: str, centre: np.ndarray, radius: float):
         return Affine2D(np.column_stack([a, t]))
     n = {"rigid": 3, "similarity": 4, "affine": 6}[model]
     return make, n
+
+
+def _search_level(pyr: list, max_offset: float, max_rotation: float) -> "_Level":
+    """Return the finest level whose exhaustive grid costs at most :data:`SEARCH_BUDGET` pixel visits."""
+    n_rot = max(1, 2 * int(math.ceil(max_rotation / 1.5)) + 1)
+    for level in pyr:
+        n_shift = (2 * math.ceil(max_offset / level.factor) + 1) ** 2
+        if n_shift * n_rot * level.fixed_bin.size <= SEARCH_BUDGET:
+            return level
+    return pyr[-1]
 
 
 def _coarse_search(level: _Level, make, n_par, initial, max_offset, max_rotation, radius):
@@ -256,12 +271,14 @@ def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: 
 
     Notes
     -----
-    A coarse exhaustive grid (one coarse pixel in translation, about 1.5
-    degrees in rotation) finds the capture range; the three best grid points
-    are refined with Powell's method (``scipy.optimize.minimize(method="Powell")``)
-    at the coarsest level, and the best of them level by level down to full
-    resolution. During the search the
-    moving image's intensity is binned with linear weights between the two
+    An exhaustive grid (one level pixel in translation, about 1.5 degrees in
+    rotation) at the finest level it can afford (about ``SEARCH_BUDGET`` pixel
+    visits) finds the capture range; coarser levels are not used, as they can
+    smooth away the structure the two modalities share. The three best grid
+    points are refined with Powell's method
+    (``scipy.optimize.minimize(method="Powell")``, bounded to the search range)
+    at that level, and the best of them level by level down to full
+    resolution. During the search the moving image's intensity is binned with linear weights between the two
     nearest bins (partial-volume-like soft binning) so the measure is a
     continuous function of the map, as suggested in [2]_.
 
@@ -291,12 +308,14 @@ def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: 
     centre = initial.apply([[(w - 1) / 2, (h - 1) / 2]])[0]
     radius = 0.5 * math.hypot(*fixed.shape)
     make, n_par = _param_map(model, centre, radius)
-    starts, edge = _coarse_search(pyr[-1], make, n_par, initial, max_offset, max_rotation, radius)
-    coarse = pyr[-1]
-    refined = [_refine(coarse, make, initial, t, step=float(coarse.factor)) for t in starts]
+    coarse = _search_level(pyr, max_offset, max_rotation)
+    pyr = pyr[:pyr.index(coarse) + 1]
+    starts, edge = _coarse_search(coarse, make, n_par, initial, max_offset, max_rotation, radius)
+    bounds = _bounds(n_par, max_offset, max_rotation, radius, margin=2.0 * coarse.factor)
+    refined = [_refine(coarse, make, initial, t, float(coarse.factor), bounds) for t in starts]
     best_theta = max(refined, key=lambda t: coarse.measure(initial.then(make(t))))
     for level in reversed(pyr[:-1]):
-        best_theta = _refine(level, make, initial, best_theta, step=float(level.factor))
+        best_theta = _refine(level, make, initial, best_theta, float(level.factor), bounds)
     result = initial.then(make(best_theta))
     before = _hard_measure(fixed, fmask, moving, mmask, initial, bins)
     after = _hard_measure(fixed, fmask, moving, mmask, result, bins)
@@ -307,12 +326,28 @@ def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: 
                     "at_limit": limit}
 
 
-def _refine(level: _Level, make, initial: Affine2D, theta: np.ndarray, step: float) -> np.ndarray:
+def _bounds(n_par: int, max_offset: float, max_rotation: float, radius: float, margin: float):
+    """Return Powell bounds on ``theta``: the search range plus a margin, in parameter units."""
+    t = max_offset + margin
+    rot = math.radians(max_rotation + 1.0) * radius
+    out = [(-t, t), (-t, t)]
+    if n_par == 6:
+        lim = (math.sin(math.radians(max_rotation + 1.0)) + MAX_STRETCH) * radius
+        return out + [(-lim, lim)] * 4
+    out.append((-rot, rot))
+    if n_par == 4:
+        out.append((-MAX_STRETCH * radius, MAX_STRETCH * radius))
+    return out
+
+
+def _refine(level: _Level, make, initial: Affine2D, theta: np.ndarray, step: float, bounds) -> np.ndarray:
     """Return ``theta`` improved by Powell's method at one level (steps of about one level pixel)."""
     def cost(th):
         return -level.measure(initial.then(make(th)))
 
-    res = optimize.minimize(cost, theta, method="Powell",
+    lo, hi = np.array(bounds).T
+    theta = np.clip(theta, lo, hi)
+    res = optimize.minimize(cost, theta, method="Powell", bounds=bounds,
                             options={"xtol": 0.02 * step, "ftol": 1e-5, "direc": np.eye(len(theta)) * step,
                                      "maxfev": 400 * len(theta)})
     return res.x if res.fun <= cost(theta) else theta

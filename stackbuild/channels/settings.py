@@ -16,8 +16,15 @@ class ChannelSettings:
         Histogram bins of the mutual-information measure.
     max_offset : float
         Largest expected error of the approximate channel position, section pixels.
+    max_rotation : float
+        Largest expected rotation of a channel image relative to its section, degrees.
+    min_measure : float
+        A registration whose normalised mutual information (1 = unrelated,
+        2 = identical) ends below this is flagged ``"low_mi"``.
     """
 
     model: str = "similarity"
     bins: int = 32
     max_offset: float = 200.0
+    max_rotation: float = 5.0
+    min_measure: float = 1.02

@@ -1,0 +1,215 @@
+"""The channel stage: register every marker image to its EM section by mutual information.
+
+For each row of the channel manifest the EM section is rendered at the
+marker's resolution (section frame, ``scale = round(marker pixel size / EM
+pixel size)``), a first guess ``channel pixel -> section pixel`` is made from
+the pixel-size ratio and the manifest's ``x, y`` (or centred on the section
+when they are absent), and :func:`register_mutual_information` refines it.
+
+Stored record (``store.save_doc("channels", ..., section=s)``), one per section::
+
+    {"section": s, "em_pixel_size_nm": float,
+     "channels": {name: {
+        "path", "row", "pixel_size_nm", "em_scale" (the render scale k),
+        "registered": bool,
+        "transform": {"type": "affine", "axes": ["x", "y"], "affine": 2x3,
+                      "input": "channel", "output": "section"},   # (x, y) pixel-centre convention
+        "initial": the same form, the first guess,
+        "measure": "normalized_mutual_information", "bins": int,
+        "measure_before", "measure_after": float (1 unrelated .. 2 identical),
+        "shift_from_given": [dx, dy] section px at the image centre, or null when x, y are absent,
+        "rotation_deg", "scale_ratio" (found scale / pixel-size ratio),
+        "flags": ["blank" | "low_mi" | "at_search_limit"], "seconds"}}}
+
+Manifest ``x, y`` convention: the section-pixel position of the image's first
+block, as in :func:`stackbuild.render.sampler.render_region`; channel pixel
+``(c, r)`` is nominally centred at ``(x + rho c + (rho - 1) / 2, y + rho r + (rho - 1) / 2)``
+with ``rho`` the pixel-size ratio.
+"""
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import tifffile
+
+from ..errors import InputError
+from ..manifest import ChannelEntry
+from ..render.sampler import render_region
+from ..run.folder import BuildFolder
+from ..transforms.store import TransformStore
+from ..transforms.types import Affine2D
+from .mutual_info import MODELS, register_mutual_information
+from .settings import ChannelSettings
+
+DOC_KIND = "channels"
+MEASURE = "normalized_mutual_information"
+
+
+@dataclass(frozen=True)
+class _ChannelJob:
+    """One (section, channel) registration: small and picklable."""
+
+    transforms: str
+    entry: ChannelEntry
+    em_pixel_size: float
+    settings: ChannelSettings
+
+
+def check_settings(settings: ChannelSettings) -> None:
+    """Raise :class:`InputError` if channel settings are out of range."""
+    where = "[channels]"
+    if settings.model not in MODELS:
+        raise InputError(f"{where} model must be one of {', '.join(MODELS)}, got {settings.model!r}")
+    if not 4 <= settings.bins <= 256:
+        raise InputError(f"{where} bins must be in 4..256, got {settings.bins}")
+    if settings.max_offset < 0 or settings.max_rotation < 0:
+        raise InputError(f"{where} max_offset and max_rotation must be >= 0")
+
+
+def em_scale(channel_pixel_size: float, em_pixel_size: float) -> int:
+    """Return the EM render scale for a channel: ``round(channel / EM pixel size)``, at least 1."""
+    return max(1, int(round(channel_pixel_size / em_pixel_size)))
+
+
+def initial_guess(entry: ChannelEntry, em_pixel_size: float, bbox) -> Affine2D:
+    """Return the first-guess ``channel pixel -> section pixel`` map (see the module docstring)."""
+    rho = entry.pixel_size / em_pixel_size
+    if entry.x is not None and entry.y is not None:
+        tx, ty = entry.x + (rho - 1) / 2, entry.y + (rho - 1) / 2
+    else:
+        x0, y0, x1, y1 = bbox
+        tx = (x0 + x1) / 2 - rho * (entry.width - 1) / 2
+        ty = (y0 + y1) / 2 - rho * (entry.height - 1) / 2
+    return Affine2D(np.array([[rho, 0.0, tx], [0.0, rho, ty]]))
+
+
+def _em_at_scale(stitch, k: int):
+    """Return ``(image, mask, fixed -> section map)``: the section mosaic rendered at scale ``k``."""
+    x0, y0, x1, y1 = stitch.bbox()
+    X0, Y0 = math.floor(x0 + 0.5), math.floor(y0 + 0.5)
+    w = max(1, math.ceil((x1 - 0.5 - X0 + 1) / k))
+    h = max(1, math.ceil((y1 - 0.5 - Y0 + 1) / k))
+    img, weight = render_region(stitch, None, X0, Y0, w, h, scale=k, return_weight=True)
+    to_section = Affine2D(np.array([[k, 0.0, X0 + (k - 1) / 2], [0.0, k, Y0 + (k - 1) / 2]]))
+    return img, weight > 0, to_section
+
+
+def _is_blank(img: np.ndarray) -> bool:
+    lo, hi = np.percentile(img, [0.5, 99.5])
+    return not hi > lo
+
+
+def register_channel(job: _ChannelJob) -> dict:
+    """Register one marker image to its section; return its stored record (runs on a worker)."""
+    t0 = time.perf_counter()
+    e, st = job.entry, job.settings
+    stitch = TransformStore(job.transforms).load_stitch(e.section)
+    k = em_scale(e.pixel_size, job.em_pixel_size)
+    guess = initial_guess(e, job.em_pixel_size, stitch.bbox())
+    rec = {"section": e.section, "channel": e.channel, "path": str(e.path), "row": e.row,
+           "pixel_size_nm": e.pixel_size, "em_scale": k, "registered": False,
+           "initial": _frames(guess), "transform": _frames(guess), "measure": MEASURE, "bins": st.bins,
+           "measure_before": None, "measure_after": None, "shift_from_given": None,
+           "rotation_deg": 0.0, "scale_ratio": 1.0, "flags": []}
+    moving = tifffile.imread(e.path).astype(np.float32)
+    if _is_blank(moving):
+        rec["flags"].append("blank")
+        rec["seconds"] = round(time.perf_counter() - t0, 3)
+        return rec
+    fixed, fmask, to_section = _em_at_scale(stitch, k)
+    start = guess.then(to_section.inverse())
+    found, info = register_mutual_information(
+        fixed, moving, start, st.model, bins=st.bins, max_offset=st.max_offset / k,
+        max_rotation=st.max_rotation, fixed_mask=fmask)
+    result = found.then(to_section)
+    rho = e.pixel_size / job.em_pixel_size
+    a = result.matrix[:, :2]
+    centre = np.array([[(e.width - 1) / 2, (e.height - 1) / 2]])
+    shift = (result.apply(centre) - guess.apply(centre))[0]
+    rec.update(registered=True, transform=_frames(result), measure_before=info["before"],
+               measure_after=info["after"],
+               rotation_deg=math.degrees(math.atan2(a[1, 0] - a[0, 1], a[0, 0] + a[1, 1])),
+               scale_ratio=math.sqrt(abs(np.linalg.det(a))) / rho)
+    if e.x is not None and e.y is not None:
+        rec["shift_from_given"] = [float(shift[0]), float(shift[1])]
+    if info["after"] < st.min_measure:
+        rec["flags"].append("low_mi")
+    if info["at_limit"]:
+        rec["flags"].append("at_search_limit")
+    rec["seconds"] = round(time.perf_counter() - t0, 3)
+    return rec
+
+
+def _frames(affine: Affine2D) -> dict:
+    return {**affine.to_json(), "input": "channel", "output": "section"}
+
+
+def channel_affine(rec: dict) -> Affine2D:
+    """Return the stored ``channel pixel -> section pixel`` map of one channel record."""
+    return Affine2D.from_json(rec["transform"])
+
+
+def _jobs(folder: BuildFolder, entries: list[ChannelEntry], settings: ChannelSettings) -> list[_ChannelJob]:
+    """Return one job per manifest row; refuse rows whose section has no stitch record."""
+    store = folder.store
+    stitched = set(store.sections_with("stitch"))
+    source = folder.load_state().get("channels")
+    for e in entries:
+        if e.section not in stitched:
+            raise InputError(f"channel {e.channel!r} is for section {e.section}, which has no stitch record "
+                             "(lost, not in the tile manifest, or not stitched yet)",
+                             file=source, row=e.row, section=e.section)
+    em_px = folder.config.volume.pixel_size
+    return [_ChannelJob(str(store.root), e, em_px, settings) for e in entries]
+
+
+def run_channels(build_dir, settings: ChannelSettings, *, mapper=map, progress=None) -> dict:
+    """Register every marker image of a build to its section and store one record per section.
+
+    Parameters
+    ----------
+    build_dir : str or Path
+        The build folder (stitch records and a channel manifest needed).
+    settings : ChannelSettings
+        Model, histogram bins and search range.
+    mapper : callable(fn, items) -> iterable
+        How per-(section, channel) work is spread (``map`` runs it here).
+    progress : callable(done, total), optional
+        Called before and after the registrations.
+
+    Returns
+    -------
+    dict
+        ``registered`` and ``flagged`` counts, ``channels`` (names),
+        ``sections`` (with records), ``seconds``.
+
+    Raises
+    ------
+    InputError
+        For bad settings, or a manifest row whose section has no stitch record
+        (naming the channel manifest and its line); nothing is stored then.
+    """
+    t0 = time.perf_counter()
+    check_settings(settings)
+    folder = BuildFolder(Path(build_dir))
+    entries = folder.channel_manifest()
+    jobs = _jobs(folder, entries, settings)
+    if progress is not None:
+        progress(0, len(jobs))
+    records = list(mapper(register_channel, jobs))
+    by_section: dict[int, dict] = {}
+    for rec in records:
+        by_section.setdefault(rec["section"], {})[rec["channel"]] = rec
+    for s, chans in sorted(by_section.items()):
+        folder.store.save_doc(DOC_KIND, {"section": s, "em_pixel_size_nm": folder.config.volume.pixel_size,
+                                         "channels": chans}, section=s)
+    if progress is not None:
+        progress(len(jobs), len(jobs))
+    return {"registered": sum(r["registered"] for r in records),
+            "flagged": sum(bool(r["flags"]) for r in records),
+            "channels": sorted({r["channel"] for r in records}), "sections": sorted(by_section),
+            "seconds": time.perf_counter() - t0}

@@ -35,6 +35,8 @@ PLANT_TILE, PLANT_TILE_SECTION, PLANT_SHIFT = "r1c1", 0, (3.0, 0.0)
 PLANT_ROT_SECTION, PLANT_ANGLE = 2, np.deg2rad(1.0)
 CENTRE = ((SIZE - 1) / 2, (SIZE - 1) / 2)
 PX_NM, DZ_NM = 5.0, 45.0
+#: A tile name with HTML metacharacters, to check the report escapes names from input files.
+ODD_NAME = 'r2c2<i>&"x'
 
 
 def scene(section: int) -> np.ndarray:
@@ -49,22 +51,24 @@ def true_positions() -> dict[str, tuple[float, float]]:
     return {f"r{r}c{c}": (c * STEP, r * STEP) for r in range(3) for c in range(3)}
 
 
-def _stitch(section: int, tile_dir) -> SectionStitch:
+def _stitch(section: int, tile_dir, odd_name: bool = False) -> SectionStitch:
     img = scene(section)
     places, pairs = [], []
+    rename = (lambda n: ODD_NAME if n == "r2c2" else n) if odd_name else (lambda n: n)
     for name, (x, y) in true_positions().items():
+        name = rename(name)
         path = tile_dir / f"s{section}_{name}.tif"
         tifffile.imwrite(path, img[y:y + TILE, x:x + TILE])
         rx, ry = float(x), float(y)
         if section == PLANT_TILE_SECTION and name == PLANT_TILE:
             rx, ry = rx + PLANT_SHIFT[0], ry + PLANT_SHIFT[1]
         places.append(TilePlacement(name, str(path), TILE, TILE, float(x), float(y), rx, ry,
-                                    residual=0.1, flags=["dim"] if name == "r2c2" and section == 3 else []))
+                                    residual=0.1, flags=["dim"] if name == rename("r2c2") and section == 3 else []))
     for r in range(3):
         for c in range(3):
             for dr, dc in ((0, 1), (1, 0)):
                 if r + dr < 3 and c + dc < 3:
-                    a, b = f"r{r}c{c}", f"r{r + dr}c{c + dc}"
+                    a, b = rename(f"r{r}c{c}"), rename(f"r{r + dr}c{c + dc}")
                     rejected = (section == 1 and a == "r0c0" and b == "r0c1")
                     pairs.append(PairMatch(a, b, dc * STEP, dr * STEP, dc * STEP, dr * STEP,
                                            ncc=0.2 if rejected else 0.9, peak_ratio=1.1 if rejected else 4.0,
@@ -128,7 +132,7 @@ def _write_volume(path, planes: np.ndarray) -> None:
         "datasets": datasets}]}
 
 
-def make_build(root, *, volume: bool = True):
+def make_build(root, *, volume: bool = True, odd_name: bool = False):
     """Create the planted build folder under ``root``; return its path."""
     root.mkdir(parents=True, exist_ok=True)
     tiles = root / "raw"
@@ -136,7 +140,7 @@ def make_build(root, *, volume: bool = True):
     store = TransformStore(root / "transforms")
     planes = []
     for s in SECTIONS:
-        st, al = _stitch(s, tiles), _alignment(s)
+        st, al = _stitch(s, tiles, odd_name), _alignment(s)
         store.save_stitch(st)
         store.save_alignment(al)
         planes.append(render_plane(st, al))

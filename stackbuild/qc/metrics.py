@@ -39,6 +39,10 @@ volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
                     worst row of each (or ``None``).
 ``notes``           what could not be measured, and why.
 
+``blocks.csv`` beside it lists every section-to-section block (``z_from``,
+``z_to``, ``x_px``, ``y_px``, ``dx``, ``dy``, ``residual``, ``ncc``) so any
+summary can be recomputed; a summary's ``at`` lies on plane ``z_to``.
+
 Section-to-section residuals are an independent measurement of the output
 (NCC block matching of adjacent rendered planes), not a copy of the aligner's
 statistics, which are kept apart under ``aligner_stats``.
@@ -307,8 +311,23 @@ def _jsonable(x):
     return x
 
 
-def write_metrics(doc: dict, qc_dir: str | Path) -> list[Path]:
-    """Write ``metrics.json`` and the CSV tables (``channels.csv`` only if there are channels)."""
+def block_rows(meas: Measurements) -> list[dict]:
+    """Return one row per section-to-section block: planes, level-0 place, residual (px), NCC."""
+    rows = []
+    for pp in meas.plane_pairs:
+        b = pp.blocks
+        for (x, y), (dx, dy), c in zip(b.points, b.shifts, b.ncc):
+            rows.append({"z_from": pp.za, "z_to": pp.zb, "x_px": round(float(x), 2), "y_px": round(float(y), 2),
+                         "dx": round(float(dx), 4), "dy": round(float(dy), 4),
+                         "residual": round(float(np.hypot(dx, dy)), 4), "ncc": round(float(c), 4)})
+    return rows
+
+
+def write_metrics(doc: dict, qc_dir: str | Path, meas: Measurements | None = None) -> list[Path]:
+    """Write ``metrics.json`` and the CSV tables (``channels.csv`` only if there are channels).
+
+    With ``meas``, also ``blocks.csv``: every section-to-section block behind the summaries.
+    """
     from ..transforms.store import atomic_write_text
 
     qc_dir = Path(qc_dir)
@@ -319,4 +338,6 @@ def write_metrics(doc: dict, qc_dir: str | Path) -> list[Path]:
     for name in ("tiles", "pairs", "sections", "channels"):
         if doc[name] or name != "channels":
             paths.append(_write_csv(qc_dir / f"{name}.csv", doc[name]))
+    if meas is not None:
+        paths.append(_write_csv(qc_dir / "blocks.csv", block_rows(meas)))
     return paths

@@ -152,8 +152,7 @@ def residual_heatmap(plane_pairs, width: float | None = None, bins: int = 24):
         for j, m in zip(k, p.blocks.magnitudes):
             grid[i, j] = m if np.isnan(grid[i, j]) else max(grid[i, j], m)
     zs = [p.zb for p in pairs]
-    cmap = plt.get_cmap(SEQ).copy()
-    cmap.set_bad("#e6e1d6")
+    cmap = plt.get_cmap(SEQ).with_extremes(bad="#e6e1d6")
     ax.pcolormesh(edges, np.arange(len(zs) + 1) - 0.5, np.ma.masked_invalid(grid), cmap=cmap, shading="flat")
     im = ax.collections[-1]
     ax.set_ylim(len(zs) - 0.5, -0.5)

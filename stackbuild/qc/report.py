@@ -268,7 +268,7 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     doc["verdict"] = {"passed": passed, "failures": failures, "thresholds": rows}
     folder.qc_dir.mkdir(parents=True, exist_ok=True)
     figures = _figures(folder, doc, meas, settings)
-    paths = write_metrics(doc, folder.qc_dir) + [p for _, p in figures]
+    paths = write_metrics(doc, folder.qc_dir, meas) + [p for _, p in figures]
     page = folder.qc_dir / "report.html"
     atomic_write_text(page, render_html(doc, rows, passed, figures, settings))
     return Verdict(passed, failures, paths + [page])

@@ -1,0 +1,156 @@
+"""The report stage end to end: files, verdict, self-contained HTML, and a real browser."""
+from __future__ import annotations
+
+import base64
+import csv
+import html
+import io
+import json
+import re
+import shutil
+import subprocess
+from pathlib import Path
+
+import numpy as np
+import pytest
+from PIL import Image
+from skimage.registration import phase_cross_correlation
+
+from stackbuild.errors import InputError
+from stackbuild.qc.report import judge, run_report
+from stackbuild.qc.settings import ReportSettings
+from stackbuild.qc.thresholds import parse_fail_on_list
+from test_qc_synthbuild import ODD_NAME, PLANT_ROT_SECTION, PLANT_TILE, PLANT_TILE_SECTION, make_build
+
+CHROMIUM = "/usr/bin/chromium"
+_IMG_SRC = re.compile(r'<img[^>]*\ssrc="([^"]*)"', re.S)
+
+
+@pytest.fixture(scope="module")
+def report(tmp_path_factory):
+    # No volume.zarr: the report must measure the renderer's lazy volume.
+    root = make_build(tmp_path_factory.mktemp("qcr") / "build", volume=False, odd_name=True)
+    verdict = run_report(root, ReportSettings(), fail_on=["flagged>0"])
+    return root, verdict
+
+
+def _png_stats(raw: bytes) -> tuple[tuple[int, int], float]:
+    img = np.asarray(Image.open(io.BytesIO(raw)).convert("L"), np.float32)
+    return img.shape, float(img.std())
+
+
+def test_files_and_verdict(report):
+    root, v = report
+    qc = root / "qc"
+    names = {p.name for p in v.paths}
+    assert {"metrics.json", "tiles.csv", "pairs.csv", "sections.csv", "report.html"} <= names
+    assert "channels.csv" not in names  # no channels in this build
+    assert all(p.exists() and p.stat().st_size > 0 for p in v.paths)
+    assert not v.passed
+    assert any(f.startswith("fail if align.p95 > 2 px") for f in v.failures)
+    assert any(f.startswith("fail if flagged > 0") for f in v.failures)
+    doc = json.loads((qc / "metrics.json").read_text())
+    assert doc["schema_version"] == 1 and doc["volume"]["measured_on"]["origin"] == "lazy"
+    assert doc["verdict"]["passed"] is False
+    with open(qc / "sections.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 5 and {"section", "align_score", "stitch.rms", "align_prev.p95"} <= set(rows[0])
+
+
+def test_lazy_volume_finds_the_same_planted_errors(report):
+    root, _ = report
+    doc = json.loads((root / "qc" / "metrics.json").read_text())
+    assert (doc["worst"]["tile"]["section"], doc["worst"]["tile"]["tile"]) == (PLANT_TILE_SECTION, PLANT_TILE)
+    assert doc["worst"]["section_align"]["section"] == PLANT_ROT_SECTION
+
+
+def test_report_numbers_equal_an_independent_recomputation(report):
+    root, _ = report
+    from stackbuild.render.lazy import open_volume
+
+    doc = json.loads((root / "qc" / "metrics.json").read_text())
+    with open(root / "qc" / "blocks.csv", newline="") as fh:
+        blocks = [{k: float(v) for k, v in r.items()} for r in csv.DictReader(fh)]
+    vol = open_volume(root, 0, lazy=True)
+    row = next(r for r in doc["sections"] if r["section"] == PLANT_ROT_SECTION)
+    for summ, (za, zb) in ((row["align_prev"], (row["z"] - 1, row["z"])),
+                           (row["align_next"], (row["z"], row["z"] + 1))):
+        mine = [b for b in blocks if (b["z_from"], b["z_to"]) == (za, zb)]
+        assert len(mine) == summ["n"] >= 20
+        mags = np.array([b["residual"] for b in mine])
+        # Route 1 (numpy on the listed blocks): the summary is what the blocks say.
+        assert summ["p95"] == pytest.approx(np.percentile(mags, 95), abs=1e-3)
+        assert summ["rms"] == pytest.approx(np.sqrt(np.mean(mags ** 2)), abs=1e-3)
+        # Route 2 (reference: skimage.registration.phase_cross_correlation) on 49 px
+        # windows of the lazily rendered level-0 planes at the same places.
+        a = np.asarray(vol.data[za].compute(), np.float32)
+        b = np.asarray(vol.data[zb].compute(), np.float32)
+        ref, r = [], 24
+        for blk in mine:
+            cx, cy = int(round(blk["x_px"])), int(round(blk["y_px"]))
+            if min(cx, cy) < r or max(cx, cy) > a.shape[0] - r - 1:
+                continue
+            shift, _, _ = phase_cross_correlation(a[cy - r:cy + r + 1, cx - r:cx + r + 1],
+                                                  b[cy - r:cy + r + 1, cx - r:cx + r + 1], upsample_factor=20)
+            ref.append(np.hypot(*shift))
+        assert len(ref) >= 0.8 * len(mine)
+        # measured at level 1 (2 px per pixel) versus level 0: a few tenths of a pixel apart
+        assert summ["median"] == pytest.approx(np.median(ref), abs=0.25)
+        assert summ["p95"] == pytest.approx(np.percentile(ref, 95), abs=0.35)
+    page = (root / "qc" / "report.html").read_text()
+    assert f"<td>{row['align_score']:.3g}</td>" in page  # the table shows the measured number
+
+
+def test_html_is_self_contained_and_escaped(report):
+    root, _ = report
+    page = (root / "qc" / "report.html").read_text()
+    assert "<script" not in page.lower()
+    assert not re.search(r'(src|href)="(?!data:)', page)  # every resource is inline
+    assert "<link" not in page.lower() and "url(" not in page.lower()
+    srcs = _IMG_SRC.findall(page)
+    assert len(srcs) >= 7
+    for s in srcs:
+        assert s.startswith("data:image/png;base64,")
+        raw = base64.b64decode(s.split(",", 1)[1])
+        assert raw[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature, ISO/IEC 15948
+        shape, std = _png_stats(raw)
+        assert min(shape) > 100 and std > 5
+    assert ODD_NAME not in page
+    assert html.escape(ODD_NAME) in page
+
+
+def test_bad_fail_on_is_refused_before_any_work(tmp_path):
+    with pytest.raises(InputError, match="expected MEASURE OP NUMBER"):
+        run_report(tmp_path, ReportSettings(), fail_on=["align.p95 2px"])
+    assert not (tmp_path / "qc").exists()
+
+
+def test_lenient_bars_pass(report):
+    root, _ = report
+    doc = json.loads((root / "qc" / "metrics.json").read_text())
+    passed, failures, rows = judge(doc, parse_fail_on_list(["stitch.rms>10px, align.p95>20px"]))
+    assert passed and not failures and len(rows) == 2
+
+
+@pytest.mark.browser
+@pytest.mark.skipif(not Path(CHROMIUM).exists(), reason="Debian's chromium is not installed (apt-get install chromium)")
+def test_report_renders_in_headless_chromium(report, tmp_path):
+    root, _ = report
+    url = (root / "qc" / "report.html").resolve().as_uri()
+    flags = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+             "--disable-background-networking", "--disable-component-update", "--disable-sync",
+             f"--user-data-dir={tmp_path / 'profile'}"]
+    shot = tmp_path / "shot.png"
+    subprocess.run(flags + [f"--screenshot={shot}", "--window-size=1280,2000", url],
+                   check=True, capture_output=True, timeout=120)
+    shape, std = _png_stats(shot.read_bytes())
+    assert shape == (2000, 1280) and std > 10  # not a blank page
+    dom = subprocess.run(flags + ["--dump-dom", url], check=True, capture_output=True, timeout=120,
+                         text=True).stdout
+    srcs = _IMG_SRC.findall(dom)
+    assert len(srcs) >= 7
+    for s in srcs:
+        shape, std = _png_stats(base64.b64decode(s.split(",", 1)[1]))
+        assert std > 5
+    assert "FAILED" in dom and "Worst sections" in dom
+    shutil.copy(shot, root / "qc" / "browser_shot.png")  # kept for a human look

@@ -29,7 +29,7 @@ def _one_tile(tmp_path, img, x=0.0, y=0.0, gain=1.0, offset=0.0, illumination=No
 def camera():
     # Data shipped with scikit-image (skimage.data.camera), smoothed so that OpenCV's 1/32-pixel
     # fixed-point bilinear weights (OpenCV docs, INTER_BITS = 5; from memory) stay below a grey level.
-    return np.round(ndimage.gaussian_filter(data.camera()[:256, :256].astype(np.float64), 1.5)).astype(np.uint8)
+    return np.round(ndimage.gaussian_filter(data.camera()[:256, :256].astype(np.float64), 2.0)).astype(np.uint8)
 
 
 def test_affine_resampling_matches_skimage_warp(tmp_path, camera):

@@ -22,7 +22,10 @@ from ..transforms.records import SectionAlignment, SectionStitch
 from .tiles import prepared_tile, profile_digest
 
 _INTERP = {0: cv2.INTER_NEAREST, 1: cv2.INTER_LINEAR, 3: cv2.INTER_CUBIC}
-_MAX_MAP = 16384  # cv2.remap handles maps up to SHRT_MAX per side; stay well below
+_MAX_MAP = 16384
+#: Blended weights below this (level-0 pixels of distance to a tile edge) count as uncovered:
+#: only the outer rim of a mosaic, where cubic overshoot could make the ratio unstable.
+_MIN_WEIGHT = 0.05  # cv2.remap handles maps up to SHRT_MAX per side; stay well below
 
 
 def interpolation_order(name: str) -> int:
@@ -72,11 +75,11 @@ def _section_coords(alignment: SectionAlignment | None, xs: np.ndarray, ys: np.n
 
 
 def _remap(img: np.ndarray, mx: np.ndarray, my: np.ndarray, flag: int) -> np.ndarray:
-    out = np.empty(mx.shape, np.float32)
+    out = np.empty(mx.shape + img.shape[2:], np.float32)
     for r0 in range(0, mx.shape[0], _MAX_MAP):
         for c0 in range(0, mx.shape[1], _MAX_MAP):
             sl = np.s_[r0:r0 + _MAX_MAP, c0:c0 + _MAX_MAP]
-            out[sl] = cv2.remap(img, mx[sl], my[sl], flag, borderMode=cv2.BORDER_REPLICATE)
+            out[sl] = cv2.remap(img, mx[sl], my[sl], flag, borderMode=cv2.BORDER_CONSTANT, borderValue=0)
     return out
 
 
@@ -121,13 +124,17 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
 
     Notes
     -----
-    Corrected intensity is ``gain * raw / illumination + offset``. Tiles are
-    sampled with ``cv2.remap`` (bilinear weights quantised to 1/32 pixel);
-    the sampling domain of a tile is its rectangle of pixel edges, and the
-    half-pixel rim beyond the outermost centres repeats the edge pixel, so
-    the edge of a mosaic is not darkened. The feather weight of a tile at a
-    point is the distance (full-resolution pixels) from the point to the
-    nearest edge of the tile's rectangle.
+    Corrected intensity is ``gain * raw / illumination + offset``. Each tile
+    carries a feather weight, the distance (full-resolution pixels) from a
+    pixel centre to the nearest edge of the tile's rectangle. Value and weight
+    are resampled together, and ``sum(weight * value) / sum(weight)`` over the
+    tiles is the result, so a single tile gives plain interpolation and
+    overlaps are feathered. Beyond the outermost pixel centres the value
+    repeats the edge pixel while the weight falls to 0 over one pixel, so the
+    mosaic's outer edge is not darkened. With an elastic
+    field the maps are explicit (``cv2.remap``); with an affine only,
+    ``cv2.warpAffine`` computes them (both quantise bilinear weights to
+    1/32 pixel).
     """
     if scale < 1 or int(scale) != scale:
         raise ValueError(f"scale must be a positive integer, got {scale}")
@@ -135,8 +142,7 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
         raise ValueError(f"order must be 0, 1 or 3, got {order}")
     if width < 0 or height < 0:
         raise ValueError(f"width and height must be >= 0, got {width} x {height}")
-    acc = np.zeros((height, width), np.float32)
-    wsum = np.zeros((height, width), np.float32)
+    acc = np.zeros((height, width, 2), np.float32)
     half = (scale - 1) / 2.0
     cx0, cy0 = x0 + half, y0 + half
     boxes = tile_footprints(stitch, alignment) if stitch.tiles else np.zeros((0, 4))
@@ -144,43 +150,80 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
             if b[2] >= cx0 and b[0] <= cx0 + (width - 1) * scale
             and b[3] >= cy0 and b[1] <= cy0 + (height - 1) * scale]
     if hits and width and height:
-        sub = boxes[hits]
-        c_a, c_b = _index_range(sub[:, 0].min(), sub[:, 2].max(), cx0, scale, width)
-        r_a, r_b = _index_range(sub[:, 1].min(), sub[:, 3].max(), cy0, scale, height)
-        xs = cx0 + scale * np.arange(c_a, c_b, dtype=np.float64)
-        ys = cy0 + scale * np.arange(r_a, r_b, dtype=np.float64)
-        sx, sy = _section_coords(alignment, xs, ys)
         key = profile_digest(stitch.illumination)
-        for i in hits:
-            _blend_tile(stitch, stitch.tiles[i], boxes[i], key, sx, sy, (c_a, r_a, cx0, cy0),
-                        scale, _INTERP[order], acc[r_a:r_b, c_a:c_b], wsum[r_a:r_b, c_a:c_b])
-    covered = wsum > 0
+        if alignment is not None and alignment.displacement is not None:
+            sub = boxes[hits]
+            c_a, c_b = _index_range(sub[:, 0].min(), sub[:, 2].max(), cx0, scale, width)
+            r_a, r_b = _index_range(sub[:, 1].min(), sub[:, 3].max(), cy0, scale, height)
+            xs = cx0 + scale * np.arange(c_a, c_b, dtype=np.float64)
+            ys = cy0 + scale * np.arange(r_a, r_b, dtype=np.float64)
+            sx, sy = _section_coords(alignment, xs, ys)
+            for i in hits:
+                _blend_tile(stitch, stitch.tiles[i], boxes[i], key, sx, sy, (c_a, r_a, cx0, cy0),
+                            scale, _INTERP[order], acc[r_a:r_b, c_a:c_b])
+        else:
+            m = np.eye(2, 3) if alignment is None else alignment.affine.matrix
+            for i in hits:
+                _warp_tile(stitch, stitch.tiles[i], boxes[i], key, m, (cx0, cy0, width, height),
+                           scale, _INTERP[order], acc)
+    wsum = acc[..., 1]
+    covered = wsum > _MIN_WEIGHT
     out = np.zeros((height, width), np.float32)
-    np.divide(acc, wsum, out=out, where=covered)
+    np.divide(acc[..., 0], wsum, out=out, where=covered)
+    wsum = np.where(covered, wsum, np.float32(0))
     if contrast is not None:
         gain, offset = contrast
         out[covered] = np.float32(gain) * out[covered] + np.float32(offset)
     return (out, wsum) if return_weight else out
 
 
-def _blend_tile(stitch, t, box, key, sx, sy, grid, scale, flag, acc, wsum) -> None:
-    """Add one tile's weighted samples to ``acc`` and its weights to ``wsum`` (views of the region)."""
+def _warp_tile(stitch, t, box, key, m, grid, scale, flag, acc) -> None:
+    """Add one tile's ``(weight * value, weight)`` warped by the affine ``m`` (aligned -> section) to ``acc``."""
+    cx0, cy0, width, height = grid
+    a, b = _index_range(box[0], box[2], cx0, scale, width)
+    c, d = _index_range(box[1], box[3], cy0, scale, height)
+    if a >= b or c >= d:
+        return
+    img = prepared_tile(t, stitch.illumination, key, scale, stitch.section)
+    half = (scale - 1) / 2.0
+    # Output pixel (a + i, c + j) -> reduced tile pixel, as a 2x3 map on (i, j).
+    x, y = cx0 + scale * a, cy0 + scale * c
+    u = (m[0, 0] * x + m[0, 1] * y + m[0, 2] - t.x - half) / scale + 1  # + 1: the tile's ring
+    v = (m[1, 0] * x + m[1, 1] * y + m[1, 2] - t.y - half) / scale + 1
+    inv = np.array([[m[0, 0], m[0, 1], u], [m[1, 0], m[1, 1], v]])
+    for r0 in range(c, d, _MAX_MAP):
+        for c0 in range(a, b, _MAX_MAP):
+            r1, c1 = min(r0 + _MAX_MAP, d), min(c0 + _MAX_MAP, b)
+            part = inv.copy()
+            part[:, 2] += inv[:, 0] * (c0 - a) + inv[:, 1] * (r0 - c)
+            _accumulate(acc[r0:r1, c0:c1], cv2.warpAffine(
+                img, part, (c1 - c0, r1 - r0), flags=flag | cv2.WARP_INVERSE_MAP,
+                borderMode=cv2.BORDER_CONSTANT, borderValue=0))
+
+
+def _accumulate(acc: np.ndarray, sampled: np.ndarray) -> None:
+    """Add ``weight * value`` and ``weight`` of resampled ``(value, weight)`` pairs to ``acc``."""
+    w = sampled[..., 1]
+    acc[..., 0] += sampled[..., 0] * w
+    acc[..., 1] += w
+
+
+def _blend_tile(stitch, t, box, key, sx, sy, grid, scale, flag, acc) -> None:
+    """Add one tile's resampled ``(weight * value, weight)`` to ``acc`` (a view of the region)."""
     c_a, r_a, cx0, cy0 = grid
     n_r, n_c = sx.shape
     a, b = _index_range(box[0], box[2], cx0 + scale * c_a, scale, n_c)
     c, d = _index_range(box[1], box[3], cy0 + scale * r_a, scale, n_r)
     if a >= b or c >= d:
         return
-    u0 = sx[c:d, a:b] - t.x
-    v0 = sy[c:d, a:b] - t.y
-    w = np.minimum(np.minimum(u0 + 0.5, t.width - 0.5 - u0), np.minimum(v0 + 0.5, t.height - 0.5 - v0))
-    w = np.maximum(w, 0.0).astype(np.float32)
-    if not w.any():
-        return
     img = prepared_tile(t, stitch.illumination, key, scale, stitch.section)
     half = (scale - 1) / 2.0
-    mx = ((u0 - half) / scale).astype(np.float32)
-    my = ((v0 - half) / scale).astype(np.float32)
-    val = _remap(img, mx, my, flag)
-    acc[c:d, a:b] += w * val
-    wsum[c:d, a:b] += w
+    mx = np.empty((d - c, b - a), np.float32)
+    my = np.empty((d - c, b - a), np.float32)
+    # + scale before dividing: element [j + 1, k + 1] of the prepared tile is its pixel (k, j).
+    np.subtract(sx[c:d, a:b], t.x + half - scale, out=mx, casting="unsafe")
+    np.subtract(sy[c:d, a:b], t.y + half - scale, out=my, casting="unsafe")
+    if scale != 1:
+        mx /= np.float32(scale)
+        my /= np.float32(scale)
+    _accumulate(acc[c:d, a:b], _remap(img, mx, my, flag))

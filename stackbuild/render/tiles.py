@@ -118,9 +118,22 @@ def _profile_key(profile: np.ndarray | None) -> str:
     return hashlib.blake2b(np.ascontiguousarray(profile, np.float32).tobytes(), digest_size=8).hexdigest()
 
 
+def feather_weight(height: int, width: int, scale: int = 1) -> np.ndarray:
+    """Return the feather weight of a tile reduced by ``scale``: distance (level-0 pixels) to the tile's edge.
+
+    Reduced pixel ``[j, k]`` has its centre at level-0 ``(k*scale + (scale-1)/2, j*scale + (scale-1)/2)``;
+    its weight is the distance from there to the nearest edge of the ``width x height`` rectangle of
+    pixel edges ``[-0.5, width - 0.5] x [-0.5, height - 0.5]``, and 0 outside it.
+    """
+    def ramp(n):
+        c = np.arange(-(-n // scale), dtype=np.float32) * scale + (scale - 1) / 2.0
+        return np.maximum(np.minimum(c + 0.5, n - 0.5 - c), 0.0)
+    return np.minimum(ramp(height)[:, None], ramp(width)[None, :])
+
+
 def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int,
                   section: int | None = None) -> np.ndarray:
-    """Return one tile intensity-corrected and reduced by ``scale`` (float32), from the cache if possible.
+    """Return one tile corrected, reduced by ``scale`` and paired with its feather weight, from the cache.
 
     Parameters
     ----------
@@ -132,6 +145,15 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
         A digest of ``profile`` (see :func:`profile_digest`), part of the cache key.
     scale : int
         Reduction factor (1 = full resolution).
+
+    Returns
+    -------
+    ndarray, float32, shape (ceil(height/scale) + 2, ceil(width/scale) + 2, 2)
+        Channel 0 is the corrected value, channel 1 the weight (see :func:`feather_weight`),
+        both with a one-pixel ring: the value repeats the edge pixel, the weight is 0 there.
+        Reduced tile pixel ``(k, j)`` is element ``[j + 1, k + 1]``. Resampled bilinearly, the
+        weight is the exact distance to the edge, falling to 0 one pixel beyond the outermost
+        centres, and the value is never mixed with a border constant.
     """
     p = Path(tile.path)
     try:
@@ -148,7 +170,11 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
         img = img / np.maximum(np.asarray(illum, np.float32), np.float32(1e-6))
     if tile.gain != 1.0 or tile.offset != 0.0:
         img = np.float32(tile.gain) * img + np.float32(tile.offset)
-    out = block_mean(img, scale)
+    img = block_mean(img, scale)
+    w = feather_weight(tile.height, tile.width, scale)
+    out = np.empty((img.shape[0] + 2, img.shape[1] + 2, 2), np.float32)
+    out[..., 0] = cv2.copyMakeBorder(img, 1, 1, 1, 1, cv2.BORDER_REPLICATE)
+    out[..., 1] = cv2.copyMakeBorder(w, 1, 1, 1, 1, cv2.BORDER_CONSTANT, value=0)
     out.setflags(write=False)
     TILE_CACHE.put(key, out)
     return out

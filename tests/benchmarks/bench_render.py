@@ -1,0 +1,117 @@
+"""Benchmark of the render stage: rendering + pyramid throughput against the I/O floor.
+
+Run as ``python tests/benchmarks/bench_render.py`` (modest default size) or with
+``--full``. Scheduler: dask's threaded scheduler with 2 threads by default, or
+``--cluster`` for a ``dask.distributed.LocalCluster`` of 2 single-threaded
+worker processes. Measured side by side in one run:
+
+* render + pyramid: ``render_volume`` wall time, all levels written together;
+* I/O floor: reading every tile once (tifffile) + writing the level-0 pixels
+  once with the same chunks, shards and codec (zarr);
+* a random 1024 x 1024 window read from the lazy volume (cold and warm cache).
+
+Targets: render + pyramid within 2x the I/O floor; a window within 0.5 s.
+"""
+from __future__ import annotations
+
+import argparse
+import shutil
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import dask
+import numpy as np
+import tifffile
+import zarr
+
+sys.path[:0] = [str(Path(__file__).resolve().parents[2]), str(Path(__file__).resolve().parents[1])]
+from test_render_build import make_build  # noqa: E402
+
+from stackbuild.render import tiles as tiles_mod  # noqa: E402
+from stackbuild.render.lazy import lazy_volume  # noqa: E402
+from stackbuild.render.settings import RenderSettings  # noqa: E402
+from stackbuild.render.write import _compressors, render_volume  # noqa: E402
+from stackbuild.transforms import Affine2D  # noqa: E402
+
+
+def _io_floor(folder, settings) -> tuple[float, float]:
+    paths = [t.path for s in folder.store.sections_with("stitch") for t in folder.store.load_stitch(s).tiles]
+    t0 = time.perf_counter()
+    for p in paths:
+        tifffile.imread(p)
+    t_read = time.perf_counter() - t0
+    level0 = zarr.open_array(str(folder.volume_path / "em" / "0"), mode="r")[...]
+    target = folder.root / "floor.zarr"
+    shutil.rmtree(target, ignore_errors=True)
+    c, s = settings.chunk, settings.shard
+    arr = zarr.create_array(str(target), shape=level0.shape, dtype=level0.dtype, chunks=(1, c, c),
+                            shards=None if s == 1 else (1, c * s, c * s), compressors=_compressors(settings),
+                            fill_value=0)
+    t0 = time.perf_counter()
+    arr[...] = level0
+    return t_read, time.perf_counter() - t0
+
+
+def _windows(folder, n: int = 5) -> list[float]:
+    rng = np.random.default_rng(0)
+    vol = lazy_volume(folder.root)
+    tiles_mod.TILE_CACHE.clear()
+    times = []
+    for _ in range(n):
+        z = int(rng.integers(vol.shape[0]))
+        y = int(rng.integers(vol.shape[1] - 1024))
+        x = int(rng.integers(vol.shape[2] - 1024))
+        t0 = time.perf_counter()
+        vol[z, y:y + 1024, x:x + 1024].compute()
+        times.append(time.perf_counter() - t0)
+    return times
+
+
+def main(argv=None) -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--full", action="store_true", help="4 sections of 6 x 6 tiles instead of 2 of 3 x 3")
+    ap.add_argument("--cluster", action="store_true", help="LocalCluster, 2 worker processes")
+    ap.add_argument("--keep", type=Path, help="build in this folder and keep it")
+    args = ap.parse_args(argv)
+    n_sections, grid = (4, 6) if args.full else (2, 3)
+    root = args.keep or Path(tempfile.mkdtemp(prefix="bench_render_"))
+    settings = RenderSettings()
+    t0 = time.perf_counter()
+    folder = make_build(root, n_sections=n_sections, grid=(grid, grid), tile=(1024, 1024), overlap=64,
+                        affines={1: Affine2D.similarity(1.0, 0.01, 5.0, -3.0, center=(1500, 1500))},
+                        settings=settings)
+    print(f"synthetic build: {n_sections} sections of {grid}x{grid} tiles of 1024x1024, "
+          f"written in {time.perf_counter() - t0:.1f} s")
+    client = None
+    if args.cluster:
+        from dask.distributed import Client, LocalCluster
+        client = Client(LocalCluster(n_workers=2, threads_per_worker=1, processes=True))
+        print("scheduler: dask.distributed LocalCluster, 2 worker processes x 1 thread")
+    else:
+        dask.config.set(scheduler="threads", num_workers=2)
+        print("scheduler: dask threaded, 2 threads")
+    facts = render_volume(folder.root, settings, overwrite=True)
+    t_render = facts["seconds"]
+    t_read, t_write = _io_floor(folder, settings)
+    floor = t_read + t_write
+    l0 = facts["levels"][0]
+    mpx0 = l0[0] * l0[1] * l0[2] / 1e6
+    print(f"levels: {facts['levels']}")
+    print(f"render + pyramid: {t_render:.2f} s, {mpx0 / t_render:.1f} Mpx/s of level 0, "
+          f"{facts['megapixels'] / t_render:.1f} Mpx/s all levels")
+    print(f"I/O floor: read tiles {t_read:.2f} s + write level 0 {t_write:.2f} s = {floor:.2f} s")
+    print(f"ratio render+pyramid / I/O floor: {t_render / floor:.2f} (target <= 2)")
+    times = _windows(folder)
+    print(f"random 1024x1024 lazy window: cold {times[0]:.3f} s, median {statistics.median(times):.3f} s, "
+          f"max {max(times):.3f} s (target <= 0.5 s)")
+    if client is not None:
+        client.close()
+    if args.keep is None:
+        shutil.rmtree(root, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,198 @@
+"""Write each marker channel as an OME-Zarr 0.5 multiscale image in the EM's physical space.
+
+Channel ``name`` goes to ``DIR/volume.zarr/channels/<name>/``. Its level 0 lies
+on the grid of EM pyramid level ``L``, where ``2**L * EM pixel size`` is the
+closest power-of-two multiple to the channel's pixel size (``L = round(log2(
+channel / EM pixel size))``, at least 0). Output pixel ``(z, r, c)`` of
+channel level ``n`` is EM level ``L + n`` pixel ``(z, r, c)``: its aligned-frame
+centre ``origin + f * (c, r) + (f - 1) / 2`` (``f = 2**L``) is mapped
+``aligned -> section`` by the section's alignment and ``section -> channel``
+by the inverse of the stored channel affine (see :mod:`stackbuild.channels.stage`),
+and the channel image is sampled there bilinearly. Points beyond the image's
+pixel edges, sections without that channel and blank images give 0.
+
+Levels above 0 are 2x2 reductions with :func:`stackbuild.render.reduce.reduce2x2`
+(the EM's reducer), and the ``multiscales`` metadata are the EM's level ``L``,
+``L + 1``, ... transforms from :mod:`stackbuild.render.ngff`, so a physical
+point means the same place in both images.
+"""
+from __future__ import annotations
+
+import math
+import shutil
+import time
+from pathlib import Path
+
+import cv2
+import numpy as np
+import tifffile
+import zarr
+from zarr.codecs import BloscCodec
+
+from ..errors import InputError
+from ..run.folder import BuildFolder
+from ..render.ngff import multiscales_attrs, root_attrs
+from ..render.reduce import level_shapes, reduce2x2, reduced_size
+from ..render.write import check_settings
+from ..transforms.records import Canvas, SectionAlignment
+from .stage import DOC_KIND, channel_affine
+
+_ROWS = 1024  # output rows resampled at a time
+
+
+def _compressors(settings):
+    """Return the EM's codec chain (Blosc, as :mod:`stackbuild.render.write` uses), or None."""
+    if settings.codec == "none":
+        return None
+    return [BloscCodec(cname=settings.codec, clevel=settings.clevel, shuffle="shuffle")]
+
+
+def channel_level(channel_pixel_size: float, em_pixel_size: float) -> int:
+    """Return the EM pyramid level whose pixel is closest (in log scale) to the channel pixel, >= 0."""
+    return max(0, int(round(math.log2(channel_pixel_size / em_pixel_size))))
+
+
+def resample_channel(image: np.ndarray, to_section_inv, alignment: SectionAlignment | None,
+                     canvas: Canvas, level: int, shape: tuple[int, int]) -> np.ndarray:
+    """Return the channel image resampled onto EM level ``level`` of the canvas (float32, ``shape``).
+
+    Parameters
+    ----------
+    image : ndarray
+        The marker image.
+    to_section_inv : Affine2D
+        ``section pixel -> channel pixel``.
+    alignment : SectionAlignment or None
+        ``aligned -> section`` (None: the aligned frame is the section frame).
+    canvas : Canvas
+        The EM output extent.
+    level : int
+        EM pyramid level of the output grid.
+    shape : (int, int)
+        Output ``(height, width)`` (EM level ``level``'s shape).
+    """
+    f = 2 ** level
+    h, w = shape
+    src = image.astype(np.float32)
+    ih, iw = src.shape
+    out = np.zeros((h, w), np.float32)
+    xs = canvas.origin_x + f * np.arange(w, dtype=np.float64) + (f - 1) / 2
+    for r0 in range(0, h, _ROWS):
+        ys = canvas.origin_y + f * np.arange(r0, min(h, r0 + _ROWS), dtype=np.float64) + (f - 1) / 2
+        pts = np.stack(np.meshgrid(xs, ys), -1).reshape(-1, 2)
+        if alignment is not None:
+            pts = alignment.aligned_to_section(pts)
+        uv = to_section_inv.apply(pts).reshape(len(ys), w, 2)
+        mx, my = uv[..., 0].astype(np.float32), uv[..., 1].astype(np.float32)
+        val = np.empty(mx.shape, np.float32)
+        step = 16384  # cv2.remap limit per side
+        for c0 in range(0, w, step):
+            val[:, c0:c0 + step] = cv2.remap(src, mx[:, c0:c0 + step], my[:, c0:c0 + step], cv2.INTER_LINEAR,
+                                             borderMode=cv2.BORDER_REPLICATE)
+        inside = (mx >= -0.5) & (mx < iw - 0.5) & (my >= -0.5) & (my < ih - 0.5)
+        out[r0:r0 + len(ys)] = np.where(inside, val, 0.0)
+    return out
+
+
+def _channel_table(folder: BuildFolder) -> dict[str, dict[int, dict]]:
+    """Return ``name -> {section: record}`` of every stored channel registration."""
+    table: dict[str, dict[int, dict]] = {}
+    for s in folder.store.sections_with(DOC_KIND):
+        doc = folder.store.load_doc(DOC_KIND, section=s) or {}
+        for name, rec in doc.get("channels", {}).items():
+            table.setdefault(name, {})[s] = rec
+    return table
+
+
+def _level0_shape(canvas: Canvas, level: int) -> tuple[int, int]:
+    h, w = canvas.height, canvas.width
+    for _ in range(level):
+        h, w = reduced_size(h), reduced_size(w)
+    return h, w
+
+
+def _write_channel(folder, name, recs, canvas, settings, progress, done_before, total) -> dict:
+    """Write one channel's pyramid; return its facts."""
+    pixel_sizes = {r["pixel_size_nm"] for r in recs.values()}
+    level = channel_level(min(pixel_sizes), canvas.pixel_size_nm)
+    shapes = level_shapes(*_level0_shape(canvas, level), settings.chunk)
+    dtypes = [np.dtype(tifffile.TiffFile(r["path"]).pages.first.dtype) for r in recs.values()]
+    dtype = np.result_type(*dtypes)
+    em_levels = multiscales_attrs(name, level + len(shapes), canvas.pixel_size_nm,
+                                  canvas.section_thickness_nm, settings.reducer)
+    ms = em_levels["ome"]["multiscales"][0]
+    ms["datasets"] = [{**d, "path": str(n)} for n, d in enumerate(ms["datasets"][level:])]
+    extra = {"channel": name, "em_level": level, "sections": sorted(recs),
+             "source": "resampled from marker images through stored channel -> section -> aligned maps"}
+    attrs = {"ome": em_levels["ome"], "stackbuild": extra}
+    path = folder.volume_path / "channels" / name
+    shutil.rmtree(path, ignore_errors=True)
+    group = zarr.open_group(str(path), mode="w", zarr_format=3, attributes=attrs)
+    arrays = []
+    for n, (h, w) in enumerate(shapes):
+        shards = None if settings.shard == 1 else (1, settings.chunk * settings.shard, settings.chunk * settings.shard)
+        arrays.append(group.create_array(str(n), shape=(canvas.depth, h, w), dtype=dtype,
+                                         chunks=(1, settings.chunk, settings.chunk), shards=shards,
+                                         compressors=_compressors(settings), fill_value=0,
+                                         dimension_names=["z", "y", "x"]))
+    info = np.iinfo(dtype)
+    for i, (s, rec) in enumerate(sorted(recs.items())):
+        z = s - canvas.first_section
+        if "blank" in rec["flags"] or not 0 <= z < canvas.depth:
+            continue
+        alignment = folder.store.load_alignment(s)
+        img = resample_channel(tifffile.imread(rec["path"]), channel_affine(rec).inverse(), alignment,
+                               canvas, level, shapes[0])
+        plane = np.clip(np.rint(img), info.min, info.max).astype(dtype)
+        for n, arr in enumerate(arrays):
+            if n:
+                plane = reduce2x2(plane, settings.reducer)
+            arr[z] = plane
+        if progress is not None:
+            progress(done_before + i + 1, total)
+    return {"path": str(path), "em_level": level, "levels": [(canvas.depth, h, w) for h, w in shapes],
+            "sections": sorted(recs), "dtype": dtype.name}
+
+
+def render_channels(build_dir, render_settings, *, progress=None) -> dict:
+    """Write every registered marker channel of a build as OME-Zarr 0.5 beside the EM; return facts.
+
+    Parameters
+    ----------
+    build_dir : str or Path
+        The build folder: channel records (the channel stage) and the canvas
+        (the render stage) are needed.
+    render_settings : RenderSettings
+        Chunk, shard, codec and reducer, the same as the EM's.
+    progress : callable(done, total), optional
+        Called after each resampled plane.
+
+    Returns
+    -------
+    dict
+        ``channels``: ``name -> {"path", "em_level", "levels", "sections", "dtype"}``; ``seconds``.
+
+    Raises
+    ------
+    InputError
+        If the render stage has not stored a canvas yet.
+    """
+    t0 = time.perf_counter()
+    check_settings(render_settings)
+    folder = BuildFolder(Path(build_dir))
+    canvas = folder.store.load_canvas()
+    if canvas is None:
+        raise InputError("no canvas stored; run the render stage before rendering channels",
+                         file=folder.store.root)
+    table = _channel_table(folder)
+    zarr.open_group(str(folder.volume_path), mode="a", zarr_format=3).update_attributes(root_attrs())
+    if table:
+        zarr.open_group(str(folder.volume_path / "channels"), mode="a", zarr_format=3)
+    total = sum(len(v) for v in table.values())
+    if progress is not None:
+        progress(0, total)
+    facts, done = {}, 0
+    for name, recs in sorted(table.items()):
+        facts[name] = _write_channel(folder, name, recs, canvas, render_settings, progress, done, total)
+        done += len(recs)
+    return {"channels": facts, "seconds": time.perf_counter() - t0}

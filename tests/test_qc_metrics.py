@@ -145,4 +145,25 @@ def test_locations_carry_pixels_and_nanometres(planted):
     # the planted tile's centre: true x 156 + 3 px recorded shift + (200 - 1) / 2
     assert at["x_px"] == pytest.approx(156 + 3 + 99.5)
     assert doc["schema_version"] == SCHEMA_VERSION
-    assert doc["channels"] == []
+
+
+def test_channel_rows_come_from_the_channel_records(planted):
+    _, doc, _ = planted
+    rows = {c["channel"]: c for c in doc["channels"]}
+    assert set(rows) == {"glowA", "glowB"}
+    assert doc["worst"]["channel"]["channel"] == "glowB"  # lowest measure after registration
+    assert doc["totals"]["channels.flagged"] == 1
+    # image centre (23.5, 31.5) through the stored affine x 4 + (100, 60); section 1 is aligned by identity
+    assert (rows["glowA"]["at"]["x_px"], rows["glowA"]["at"]["y_px"]) == (4 * 23.5 + 100, 4 * 31.5 + 60)
+
+
+def test_a_build_without_channels_or_volume_still_measures_seams(tmp_path):
+    from stackbuild.qc.metrics import write_metrics
+
+    root = make_build(tmp_path / "b", volume=False)
+    (root / "transforms" / "sections" / "00001" / "channels.json").unlink()
+    (root / "transforms" / "canvas.json").unlink()
+    doc, meas = collect(root, ReportSettings(measure_scale=4))
+    assert doc["channels"] == [] and doc["worst"]["tile"]["tile"] == PLANT_TILE
+    names = {p.name for p in write_metrics(doc, tmp_path / "qc", meas)}
+    assert "channels.csv" not in names and "sections.csv" in names

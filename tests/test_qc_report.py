@@ -43,8 +43,8 @@ def test_files_and_verdict(report):
     root, v = report
     qc = root / "qc"
     names = {p.name for p in v.paths}
-    assert {"metrics.json", "tiles.csv", "pairs.csv", "sections.csv", "report.html"} <= names
-    assert "channels.csv" not in names  # no channels in this build
+    assert {"metrics.json", "tiles.csv", "pairs.csv", "sections.csv", "channels.csv", "blocks.csv",
+            "report.html"} <= names
     assert all(p.exists() and p.stat().st_size > 0 for p in v.paths)
     assert not v.passed
     assert any(f.startswith("fail if align.p95 > 2 px") for f in v.failures)

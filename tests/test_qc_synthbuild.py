@@ -132,6 +132,22 @@ def _write_volume(path, planes: np.ndarray) -> None:
         "datasets": datasets}]}
 
 
+def _channel_record(section: int, folder) -> dict:
+    """Return a channel-stage record of two invented markers (form of stackbuild.channels.stage)."""
+    rng = np.random.default_rng(7)
+    chans = {}
+    for name, after, flags, tx in (("glowA", 1.42, [], 100.0), ("glowB", 1.04, ["low_mi"], 40.0)):
+        path = folder / f"s{section}_{name}.tif"
+        tifffile.imwrite(path, rng.integers(0, 255, (64, 48), dtype=np.uint8))
+        aff = Affine2D(np.array([[4.0, 0.0, tx], [0.0, 4.0, 60.0]]))
+        chans[name] = {"path": str(path), "row": 2, "pixel_size_nm": 20.0, "em_scale": 4, "registered": True,
+                       "transform": {**aff.to_json(), "input": "channel", "output": "section"},
+                       "measure": "normalized_mutual_information", "measure_before": 1.01,
+                       "measure_after": after, "shift_from_given": [1.5, -0.5], "rotation_deg": 0.2,
+                       "scale_ratio": 1.0, "flags": flags}
+    return {"section": section, "em_pixel_size_nm": PX_NM, "channels": chans}
+
+
 def make_build(root, *, volume: bool = True, odd_name: bool = False):
     """Create the planted build folder under ``root``; return its path."""
     root.mkdir(parents=True, exist_ok=True)
@@ -144,6 +160,7 @@ def make_build(root, *, volume: bool = True, odd_name: bool = False):
         store.save_stitch(st)
         store.save_alignment(al)
         planes.append(render_plane(st, al))
+    store.save_doc("channels", _channel_record(1, tiles), section=1)
     store.save_canvas(Canvas(SIZE, SIZE, 0.0, 0.0, SECTIONS[0], SECTIONS[-1], "uint8", PX_NM, DZ_NM))
     (root / "build.json").write_text(json.dumps({"format": "stackbuild.build", "version": 1,
                                                  "config": {"volume": {"pixel_size": PX_NM}}}))

@@ -32,11 +32,16 @@ volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
                     available ``p95`` of the two; a section is blamed only as far
                     as it disagrees with both neighbours), ``elastic``
                     (``{"rms", "max", "at"}`` of the stored field), ``aligner_stats``.
-``channels``        one per marker channel (empty until channels are registered).
+``channels``        one per (section, marker channel) registration: ``section``,
+                    ``channel``, ``path``, ``registered``, ``measure`` (its name),
+                    ``measure_before``, ``measure_after``, ``shift_from_given``
+                    (section px), ``rotation_deg``, ``scale_ratio``, ``flags``,
+                    ``landmark_residual`` (``None`` until landmarks exist), ``at``
+                    (the image centre). Empty when the build has no channels.
 ``totals``          the measures that ``--fail-on`` can test, see
                     :data:`stackbuild.qc.thresholds.MEASURES`.
-``worst``           ``tile``, ``pair``, ``section_stitch``, ``section_align``: the
-                    worst row of each (or ``None``).
+``worst``           ``tile``, ``pair``, ``section_stitch``, ``section_align``,
+                    ``channel`` (lowest ``measure_after``): the worst row of each (or ``None``).
 ``notes``           what could not be measured, and why.
 
 ``blocks.csv`` beside it lists every section-to-section block (``z_from``,
@@ -54,9 +59,11 @@ import json
 from pathlib import Path
 
 import numpy as np
+import tifffile
 
 from ..run.folder import BuildFolder
 from ..transforms.records import Canvas
+from ..transforms.types import Affine2D
 from .blockmatch import BlockMatches, summarize
 from .measure import Measurements, measure_planes, measure_seams, section_to_output
 from .planes import open_planes
@@ -186,12 +193,42 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale) -> li
     return rows
 
 
+def _image_size(path: str) -> tuple[int, int] | None:
+    """Return ``(width, height)`` from an image header, or None if it cannot be read."""
+    try:
+        with tifffile.TiffFile(path) as tf:
+            shape = tf.pages[0].shape
+        return int(shape[1]), int(shape[0])
+    except Exception:
+        return None
+
+
+def _channel_rows(store, sections, aligns, sc: _Scale) -> list[dict]:
+    """Return one row per registered marker channel, from the channel stage's records."""
+    rows = []
+    for s in sections:
+        rec = store.load_doc("channels", section=s)
+        for name, ch in sorted(((rec or {}).get("channels") or {}).items()):
+            size = _image_size(ch.get("path", ""))
+            at = None
+            if size is not None and ch.get("transform"):
+                c = Affine2D.from_json(ch["transform"]).apply([[(size[0] - 1) / 2, (size[1] - 1) / 2]])
+                at = sc.at(s, section_to_output(c, aligns.get(s), sc.canvas)[0])
+            rows.append({"section": s, "channel": name, "path": ch.get("path"),
+                         "registered": ch.get("registered"), "measure": ch.get("measure"),
+                         "measure_before": ch.get("measure_before"), "measure_after": ch.get("measure_after"),
+                         "shift_from_given": ch.get("shift_from_given"), "rotation_deg": ch.get("rotation_deg"),
+                         "scale_ratio": ch.get("scale_ratio"), "flags": list(ch.get("flags") or []),
+                         "landmark_residual": ch.get("landmark_residual"), "at": at})
+    return rows
+
+
 def _worst(rows: list[dict], key) -> dict | None:
     ok = [r for r in rows if key(r) is not None]
     return max(ok, key=key) if ok else None
 
 
-def _totals(tiles, pairs, sections, meas: Measurements) -> dict:
+def _totals(tiles, pairs, sections, channels, meas: Measurements) -> dict:
     def top(rows, key):
         vals = [key(r) for r in rows if key(r) is not None]
         return max(vals) if vals else None
@@ -201,6 +238,7 @@ def _totals(tiles, pairs, sections, meas: Measurements) -> dict:
     rejected = sum(r["accepted"] is False for r in pairs)
     fs = sum(bool(r["flags"]) for r in sections)
     ft = sum(bool(r["flags"]) for r in tiles)
+    fc = sum(bool(r["flags"]) or r["registered"] is False for r in channels)
     return {
         "stitch.rms": top(sections, lambda r: r["stitch"]["rms"]),
         "stitch.p95": top(sections, lambda r: r["stitch"]["p95"]),
@@ -211,7 +249,8 @@ def _totals(tiles, pairs, sections, meas: Measurements) -> dict:
         "flagged": fs + ft, "flagged.sections": fs, "flagged.tiles": ft,
         "lost": sum(r["lost"] for r in sections), "rejected": rejected,
         "rejected.fraction": rejected / n_pairs if n_pairs else None,
-        "tiles": len(tiles), "pairs": len(pairs), "sections": len(sections),
+        "channels.flagged": fc,
+        "tiles": len(tiles), "pairs": len(pairs), "sections": len(sections), "channels": len(channels),
     }
 
 
@@ -244,13 +283,14 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
         pairs += p
         if progress:
             progress(k + 1, len(stitches))
-    meas.source = open_planes(build_dir, max_factor=settings.measure_scale)
+    meas.source = open_planes(build_dir, max_factor=settings.measure_scale, max_px=settings.measure_max_px)
     if meas.source is None:
         meas.notes.append("no rendered volume yet: section-to-section residuals were not measured")
     else:
         lost = {sc.z(s) for s in canvas.lost_sections} if canvas else set()
         meas.plane_pairs = measure_planes(meas.source, lost, settings, progress)
     sections = _section_rows(secs, stitches, aligns, seam_sums, meas, sc)
+    channels = _channel_rows(store, secs, aligns, sc)
     meas.notes += [f"section {r['section']} tile pair {r['a']}-{r['b']}: {r['error']}" for r in pairs if r["error"]]
     src = meas.source
     doc = {
@@ -262,12 +302,14 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
                    "lost_sections": list(canvas.lost_sections) if canvas else [],
                    "measured_on": None if src is None else
                    {"origin": src.origin, "level": src.level, "factor": src.factor}},
-        "tiles": tiles, "pairs": pairs, "sections": sections, "channels": [],
-        "totals": _totals(tiles, pairs, sections, meas),
+        "tiles": tiles, "pairs": pairs, "sections": sections, "channels": channels,
+        "totals": _totals(tiles, pairs, sections, channels, meas),
         "worst": {"tile": _worst(tiles, lambda r: r["seam_median"]),
                   "pair": _worst(pairs, lambda r: r["measured"]["median"]),
                   "section_stitch": _worst(sections, lambda r: r["stitch"]["rms"]),
-                  "section_align": _worst(sections, lambda r: r["align_score"])},
+                  "section_align": _worst(sections, lambda r: r["align_score"]),
+                  "channel": _worst(channels, lambda r: None if r["measure_after"] is None
+                                    else -r["measure_after"])},
         "notes": meas.notes,
     }
     return doc, meas

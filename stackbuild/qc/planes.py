@@ -105,14 +105,13 @@ def _scale_translation(ds: dict) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _choose(factors: list[float], max_factor: float | None, max_px: int | None, extent: int) -> int:
-    """Return the level index: the coarsest with factor <= max_factor, or the finest fitting max_px."""
-    if max_px is not None:
-        for i, f in enumerate(factors):
-            if extent / f <= max_px:
-                return i
-        return len(factors) - 1
+    """Return the level index: the coarsest with factor <= max_factor, but no finer than fits max_px."""
     ok = [i for i, f in enumerate(factors) if f <= (max_factor or 1) + 1e-9]
-    return ok[-1] if ok else 0
+    level = ok[-1] if (ok and max_factor is not None) else 0
+    if max_px is not None:
+        fits = next((i for i, f in enumerate(factors) if extent / f <= max_px), len(factors) - 1)
+        level = max(level, fits)
+    return level
 
 
 def open_planes(build_dir: str | Path, *, max_factor: float | None = None,
@@ -126,7 +125,8 @@ def open_planes(build_dir: str | Path, *, max_factor: float | None = None,
     max_factor : float, optional
         Choose the coarsest level whose pixel is at most this many level-0 pixels.
     max_px : int, optional
-        Instead, choose the finest level whose larger plane side fits in this many pixels.
+        But no level finer than the first whose larger plane side fits in this many pixels
+        (alone: the finest level that fits).
     written : bool
         Prefer the written ``volume.zarr``; False goes straight to the lazy volume.
     """
@@ -158,11 +158,10 @@ def _lazy_planes(build_dir: Path, max_factor, max_px) -> PlaneSource | None:
         base = open_volume(build_dir, 0, True)
     except Exception:  # no stitch records or canvas yet: nothing to look at
         return None
+    level = max(0, int(np.floor(np.log2(max(max_factor or 1, 1)))))
     if max_px is not None:
         extent = max(base.data.shape[-2:])
-        level = max(0, int(np.ceil(np.log2(max(extent / max_px, 1.0)))))
-    else:
-        level = max(0, int(np.floor(np.log2(max(max_factor or 1, 1)))))
+        level = max(level, int(np.ceil(np.log2(max(extent / max_px, 1.0)))))
     wanted = level
     while level > 0:
         try:

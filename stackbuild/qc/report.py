@@ -184,9 +184,12 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
     tl = sorted((r for r in doc["tiles"] if r["seam_median"] is not None), key=lambda r: -r["seam_median"])[:n]
     t_rows = [[r["section"], r["tile"], r["seam_median"], r["seam_max"], r["stitch_residual"], "; ".join(r["flags"]),
                *_loc(r["at"]), r["path"]] for r in tl]
-    ch = doc["channels"][:n]
-    c_rows = [[c.get("channel"), c.get("section"), c.get("measure"), c.get("residual"), *_loc(c.get("at"))]
-              for c in ch]
+    ch = sorted(doc["channels"], key=lambda c: (c["measure_after"] is not None, c["measure_after"] or 0))[:n]
+    shift = lambda v: None if not v else f"{v[0]:.1f}, {v[1]:.1f}"  # noqa: E731
+    c_rows = [[c["channel"], c["section"], c["registered"], c["measure_before"], c["measure_after"],
+               shift(c["shift_from_given"]), c["rotation_deg"], c["landmark_residual"], "; ".join(c["flags"]),
+               *_loc(c["at"])] for c in ch]
+    c_bad = [bool(c["flags"]) or c["registered"] is False for c in ch]
     return "".join([
         "<h2>Worst sections: alignment</h2>",
         '<p class="small">score = median over both neighbours of the 95th-percentile residual; '
@@ -202,7 +205,10 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
         _table(["section", "tile", "seam median (px)", "seam max", "stitcher residual", "flags", *_LOC, "path"],
                t_rows, text_cols=(1, 5, 9)),
         "<h2>Channels</h2>",
-        _table(["channel", "section", "measure", "residual (px)", *_LOC], c_rows, text_cols=(0,))
+        '<p class="small">registration measure: normalised mutual information (1 unrelated .. 2 identical); '
+        "lowest after registration first.</p>" +
+        _table(["channel", "section", "registered", "measure before", "measure after", "shift from given (px)",
+                "rotation (deg)", "landmark residual (px)", "flags", *_LOC], c_rows, c_bad, (0, 8))
         if c_rows else '<p class="small">no marker channels in this build</p>',
     ])
 

@@ -21,6 +21,8 @@ class ReportSettings:
     measure_scale : int
         Section-to-section residuals are measured on the coarsest pyramid level
         whose pixel is at most this many full-resolution pixels.
+    measure_max_px : int
+        ... but never a level whose plane side exceeds this many pixels (memory bound).
     block_spacing : int
         Grid step of the section-to-section block matching, full-resolution pixels.
     block_radius : int
@@ -44,6 +46,7 @@ class ReportSettings:
     align_max: float = 5.0
     worst: int = 10
     measure_scale: int = 2
+    measure_max_px: int = 8192
     block_spacing: int = 96
     block_radius: int = 24
     block_search: int = 16

@@ -38,6 +38,7 @@ MEASURES = {
     "flagged.sections": ("count", "flagged sections"),
     "flagged.tiles": ("count", "flagged tiles"),
     "lost": ("count", "lost sections"),
+    "channels.flagged": ("count", "marker channels flagged or not registered"),
     "rejected": ("count", "rejected tile pairs"),
     "rejected.fraction": ("fraction", "rejected tile pairs over all pairs"),
 }

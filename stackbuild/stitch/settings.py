@@ -21,6 +21,13 @@ class StitchSettings:
         Pairs whose correlation peak is not this many times the next peak are rejected.
     upsample : int
         Sub-pixel refinement factor of the upsampled-DFT method (1/upsample px).
+    whitening : float
+        Exponent of the spectral normalisation in the pair correlation: 1 is
+        classical phase correlation, 0 plain cross-correlation; 0.8 keeps a
+        sharp peak while tolerating noisy tiles.
+    spectrum_sigma : float
+        Sigma (cycles per pixel) of the Gaussian weight on the cross-power
+        spectrum that damps noise-dominated frequencies; 0 for none.
     prior_weight : float
         Weight of the pull of each tile toward its stage position, relative to a pair of weight 1.
     max_residual : float
@@ -28,6 +35,9 @@ class StitchSettings:
         and the solve repeated.
     illumination : bool
         Estimate and divide out the section's shared illumination profile.
+    illumination_step : int
+        The profile is stored at one sample per ``illumination_step`` tile
+        pixels (shape ``ceil(h / step) x ceil(w / step)``).
     intensity : bool
         Solve per-tile gain and offset from the overlaps.
     blank_std : float
@@ -44,9 +54,12 @@ class StitchSettings:
     min_ncc: float = 0.3
     min_peak_ratio: float = 1.3
     upsample: int = 100
+    whitening: float = 0.8
+    spectrum_sigma: float = 0.1
     prior_weight: float = 1e-3
     max_residual: float = 1.5
     illumination: bool = True
+    illumination_step: int = 32
     intensity: bool = True
     blank_std: float = 2.0
     focus_min: float = 0.2

@@ -75,7 +75,7 @@ def _section_coords(alignment: SectionAlignment | None, xs: np.ndarray, ys: np.n
 
 
 def _remap(img: np.ndarray, mx: np.ndarray, my: np.ndarray, flag: int) -> np.ndarray:
-    out = np.empty(mx.shape + img.shape[2:], np.float32)
+    out = np.empty(mx.shape, np.float32)
     for r0 in range(0, mx.shape[0], _MAX_MAP):
         for c0 in range(0, mx.shape[1], _MAX_MAP):
             sl = np.s_[r0:r0 + _MAX_MAP, c0:c0 + _MAX_MAP]
@@ -142,7 +142,7 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
         raise ValueError(f"order must be 0, 1 or 3, got {order}")
     if width < 0 or height < 0:
         raise ValueError(f"width and height must be >= 0, got {width} x {height}")
-    acc = np.zeros((height, width, 2), np.float32)
+    acc = np.zeros((2, height, width), np.float32)
     half = (scale - 1) / 2.0
     cx0, cy0 = x0 + half, y0 + half
     boxes = tile_footprints(stitch, alignment) if stitch.tiles else np.zeros((0, 4))
@@ -160,16 +160,16 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
             sx, sy = _section_coords(alignment, xs, ys)
             for i in hits:
                 _blend_tile(stitch, stitch.tiles[i], boxes[i], key, sx, sy, (c_a, r_a, cx0, cy0),
-                            scale, _INTERP[order], acc[r_a:r_b, c_a:c_b])
+                            scale, _INTERP[order], acc[:, r_a:r_b, c_a:c_b])
         else:
             m = np.eye(2, 3) if alignment is None else alignment.affine.matrix
             for i in hits:
                 _warp_tile(stitch, stitch.tiles[i], boxes[i], key, m, (cx0, cy0, width, height),
                            scale, _INTERP[order], acc)
-    wsum = acc[..., 1]
+    wsum = acc[1]
     covered = wsum > _MIN_WEIGHT
     out = np.zeros((height, width), np.float32)
-    np.divide(acc[..., 0], wsum, out=out, where=covered)
+    np.divide(acc[0], wsum, out=out, where=covered)
     wsum = np.where(covered, wsum, np.float32(0))
     if contrast is not None:
         gain, offset = contrast
@@ -196,16 +196,15 @@ def _warp_tile(stitch, t, box, key, m, grid, scale, flag, acc) -> None:
             r1, c1 = min(r0 + _MAX_MAP, d), min(c0 + _MAX_MAP, b)
             part = inv.copy()
             part[:, 2] += inv[:, 0] * (c0 - a) + inv[:, 1] * (r0 - c)
-            _accumulate(acc[r0:r1, c0:c1], cv2.warpAffine(
-                img, part, (c1 - c0, r1 - r0), flags=flag | cv2.WARP_INVERSE_MAP,
-                borderMode=cv2.BORDER_CONSTANT, borderValue=0))
+            val, w = (cv2.warpAffine(a, part, (c1 - c0, r1 - r0), flags=flag | cv2.WARP_INVERSE_MAP,
+                                     borderMode=cv2.BORDER_CONSTANT, borderValue=0) for a in img)
+            _accumulate(acc[:, r0:r1, c0:c1], val, w)
 
 
-def _accumulate(acc: np.ndarray, sampled: np.ndarray) -> None:
-    """Add ``weight * value`` and ``weight`` of resampled ``(value, weight)`` pairs to ``acc``."""
-    w = sampled[..., 1]
-    acc[..., 0] += sampled[..., 0] * w
-    acc[..., 1] += w
+def _accumulate(acc: np.ndarray, val: np.ndarray, w: np.ndarray) -> None:
+    """Add ``weight * value`` and ``weight`` of resampled values and weights to ``acc``."""
+    acc[0] += val * w
+    acc[1] += w
 
 
 def _blend_tile(stitch, t, box, key, sx, sy, grid, scale, flag, acc) -> None:
@@ -226,4 +225,4 @@ def _blend_tile(stitch, t, box, key, sx, sy, grid, scale, flag, acc) -> None:
     if scale != 1:
         mx /= np.float32(scale)
         my /= np.float32(scale)
-    _accumulate(acc[c:d, a:b], _remap(img, mx, my, flag))
+    _accumulate(acc[:, c:d, a:b], *(_remap(a_, mx, my, flag) for a_ in img))

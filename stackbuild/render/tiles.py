@@ -8,6 +8,7 @@ file's path, size and modification time, so a re-imaged tile is read afresh.
 """
 from __future__ import annotations
 
+import functools
 import hashlib
 import os
 import threading
@@ -28,6 +29,10 @@ except ImportError:  # pragma: no cover - only until the stitching module lands
         return cv2.resize(np.asarray(profile, np.float32), (width, height), interpolation=cv2.INTER_LINEAR)
 
 
+def _nbytes(value) -> int:
+    return sum(int(v.nbytes) for v in value) if isinstance(value, tuple) else int(value.nbytes)
+
+
 class ByteLRU:
     """A thread-safe least-recently-used mapping bounded by the total ``nbytes`` of its values."""
 
@@ -45,20 +50,20 @@ class ByteLRU:
                 self._items.move_to_end(key)
             return value
 
-    def put(self, key, value: np.ndarray) -> None:
-        """Store ``value``; evict the oldest entries until the bound holds."""
-        size = int(value.nbytes)
+    def put(self, key, value) -> None:
+        """Store ``value`` (an array or a tuple of arrays); evict the oldest entries until the bound holds."""
+        size = _nbytes(value)
         if size > self.max_bytes:
             return
         with self._lock:
             old = self._items.pop(key, None)
             if old is not None:
-                self._bytes -= old.nbytes
+                self._bytes -= _nbytes(old)
             self._items[key] = value
             self._bytes += size
             while self._bytes > self.max_bytes:
                 _, dropped = self._items.popitem(last=False)
-                self._bytes -= dropped.nbytes
+                self._bytes -= _nbytes(dropped)
 
     @property
     def nbytes(self) -> int:
@@ -131,6 +136,13 @@ def feather_weight(height: int, width: int, scale: int = 1) -> np.ndarray:
     return np.minimum(ramp(height)[:, None], ramp(width)[None, :])
 
 
+@functools.lru_cache(maxsize=16)
+def _padded_weight(height: int, width: int, scale: int) -> np.ndarray:
+    w = cv2.copyMakeBorder(feather_weight(height, width, scale), 1, 1, 1, 1, cv2.BORDER_CONSTANT, value=0)
+    w.setflags(write=False)
+    return w
+
+
 def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int,
                   section: int | None = None) -> np.ndarray:
     """Return one tile corrected, reduced by ``scale`` and paired with its feather weight, from the cache.
@@ -148,9 +160,10 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
 
     Returns
     -------
-    ndarray, float32, shape (ceil(height/scale) + 2, ceil(width/scale) + 2, 2)
-        Channel 0 is the corrected value, channel 1 the weight (see :func:`feather_weight`),
-        both with a one-pixel ring: the value repeats the edge pixel, the weight is 0 there.
+    (value, weight) : two float32 arrays, shape (ceil(height/scale) + 2, ceil(width/scale) + 2)
+        The corrected value and the weight (see :func:`feather_weight`), both with a one-pixel
+        ring (kept apart because OpenCV resamples one channel several times faster than two;
+        the weight depends only on the tile's size and is shared): the value repeats the edge pixel, the weight is 0 there.
         Reduced tile pixel ``(k, j)`` is element ``[j + 1, k + 1]``. Resampled bilinearly, the
         weight is the exact distance to the edge, falling to 0 one pixel beyond the outermost
         centres, and the value is never mixed with a border constant.
@@ -163,7 +176,7 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
     key = (str(p), st.st_size, st.st_mtime_ns, profile_key, float(tile.gain), float(tile.offset), scale)
     hit = TILE_CACHE.get(key)
     if hit is not None:
-        return hit
+        return hit, _padded_weight(tile.height, tile.width, scale)
     img = read_tile(p, tile.height, tile.width, section).astype(np.float32)
     if profile is not None:
         illum = illumination_at_tile_size(profile, tile.height, tile.width)
@@ -171,13 +184,10 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
     if tile.gain != 1.0 or tile.offset != 0.0:
         img = np.float32(tile.gain) * img + np.float32(tile.offset)
     img = block_mean(img, scale)
-    w = feather_weight(tile.height, tile.width, scale)
-    out = np.empty((img.shape[0] + 2, img.shape[1] + 2, 2), np.float32)
-    out[..., 0] = cv2.copyMakeBorder(img, 1, 1, 1, 1, cv2.BORDER_REPLICATE)
-    out[..., 1] = cv2.copyMakeBorder(w, 1, 1, 1, 1, cv2.BORDER_CONSTANT, value=0)
-    out.setflags(write=False)
-    TILE_CACHE.put(key, out)
-    return out
+    value = cv2.copyMakeBorder(img, 1, 1, 1, 1, cv2.BORDER_REPLICATE)
+    value.setflags(write=False)
+    TILE_CACHE.put(key, value)
+    return value, _padded_weight(tile.height, tile.width, scale)
 
 
 profile_digest = _profile_key

@@ -23,7 +23,9 @@ INK, GOOD, BAD, WARN, LOST = "#22313f", "#2a9d8f", "#c8553d", "#e9a23b", "#b8b8b
 
 def save(fig, path: str | Path, dpi: int = 110) -> Path:
     """Write ``fig`` as PNG and close it; return the path."""
-    fig.savefig(path, dpi=dpi, bbox_inches="tight", facecolor="white")
+    # constrained layouts already fit; "tight" would draw the figure twice
+    tight = None if fig.get_layout_engine() is not None else "tight"
+    fig.savefig(path, dpi=dpi, bbox_inches=tight, facecolor="white")
     plt.close(fig)
     return Path(path)
 

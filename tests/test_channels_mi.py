@@ -68,6 +68,17 @@ def test_registration_recovers_a_known_similarity_across_modalities(camera):
     assert err.max() < 0.3  # the brief's tolerance, over the whole image
     assert info["after"] > info["before"]
     assert not info["at_limit"]
+    assert info["distinctness"] > 6.0  # a unique optimum (threshold: rule of thumb, see ChannelSettings)
+
+
+def test_offset_beyond_the_search_range_is_reported(camera):
+    size, off = 160, 48.0
+    truth = Affine2D.translation(off + 14.0, off - 3.0)  # 14 px beyond the nominal position in x
+    moving = _other_modality(transform.warp(camera / 255.0, transform.AffineTransform(matrix=truth.homogeneous),
+                                            output_shape=(size, size), order=1) * 255.0)
+    _, info = register_mutual_information(camera, moving, Affine2D.translation(off, off), "rigid",
+                                          bins=32, max_offset=6.0, max_rotation=0.0)
+    assert info["at_limit"]
 
 
 def test_registration_refuses_bad_arguments(camera):

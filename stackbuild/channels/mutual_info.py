@@ -231,7 +231,11 @@ def _coarse_search(level: _Level, make, n_par, initial, max_offset, max_rotation
                     theta[2:6] = np.array([c, -s, s, c]) * radius
                 scored.append((level.measure(initial.then(make(theta))), theta))
     scored.sort(key=lambda p: -p[0])
-    return [t for _, t in scored[:3]], shifts[-1] if len(shifts) else 0.0
+    values = np.array([v for v, _ in scored])
+    med = np.median(values)
+    mad = 1.4826 * np.median(np.abs(values - med))
+    distinct = float((values[0] - med) / mad) if mad > 0 else 0.0
+    return [t for _, t in scored[:3]], shifts[-1] if len(shifts) else 0.0, distinct
 
 
 def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: Affine2D | None = None,
@@ -266,8 +270,11 @@ def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: 
         The map, and ``{"before", "after"}`` normalised MI at the initial and
         final maps (full resolution, hard bins as :func:`mutual_information`),
         ``"shift"`` the translation of the moving centre relative to
-        ``initial`` (fixed pixels) and ``"at_limit"`` (True if the coarse
-        optimum or the result lies at the edge of the search range).
+        ``initial`` (fixed pixels), ``"at_limit"`` (True if the grid
+        optimum or the result lies at the edge of the search range) and
+        ``"distinctness"``: how far the best grid value stands above the
+        others, ``(max - median) / (1.4826 MAD)`` (a robust z-score; a
+        unique, well-defined optimum scores high, a flat landscape low).
 
     Notes
     -----
@@ -310,7 +317,7 @@ def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: 
     make, n_par = _param_map(model, centre, radius)
     coarse = _search_level(pyr, max_offset, max_rotation)
     pyr = pyr[:pyr.index(coarse) + 1]
-    starts, edge = _coarse_search(coarse, make, n_par, initial, max_offset, max_rotation, radius)
+    starts, edge, distinct = _coarse_search(coarse, make, n_par, initial, max_offset, max_rotation, radius)
     bounds = _bounds(n_par, max_offset, max_rotation, radius, margin=2.0 * coarse.factor)
     refined = [_refine(coarse, make, initial, t, float(coarse.factor), bounds) for t in starts]
     best_theta = max(refined, key=lambda t: coarse.measure(initial.then(make(t))))
@@ -323,7 +330,7 @@ def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: 
     limit = edge > 0 and (bool(np.any(np.abs(shift) >= max_offset + 0.5 * pyr[-1].factor))
                           or bool(np.any(np.abs(starts[0][:2]) >= edge)))
     return result, {"before": before, "after": after, "shift": [float(shift[0]), float(shift[1])],
-                    "at_limit": limit}
+                    "at_limit": limit, "distinctness": distinct}
 
 
 def _bounds(n_par: int, max_offset: float, max_rotation: float, radius: float, margin: float):

@@ -122,7 +122,8 @@ def _write_channel(folder, name, recs, canvas, settings, progress, done_before, 
                                   canvas.section_thickness_nm, settings.reducer)
     ms = em_levels["ome"]["multiscales"][0]
     ms["datasets"] = [{**d, "path": str(n)} for n, d in enumerate(ms["datasets"][level:])]
-    extra = {"channel": name, "em_level": level, "sections": sorted(recs),
+    flagged = {str(s): r["flags"] for s, r in sorted(recs.items()) if r["flags"]}
+    extra = {"channel": name, "em_level": level, "sections": sorted(recs), "flagged_sections": flagged,
              "source": "resampled from marker images through stored channel -> section -> aligned maps"}
     attrs = {"ome": em_levels["ome"], "stackbuild": extra}
     path = folder.volume_path / "channels" / name

@@ -21,6 +21,10 @@ class ChannelSettings:
     min_measure : float
         A registration whose normalised mutual information (1 = unrelated,
         2 = identical) ends below this is flagged ``"low_mi"``.
+    min_distinctness : float
+        A registration whose best start stands out from the other searched
+        positions by less than this robust z-score is flagged ``"ambiguous"``
+        (the value is a rule of thumb set on the synthetic sample, no source).
     """
 
     model: str = "similarity"
@@ -28,3 +32,4 @@ class ChannelSettings:
     max_offset: float = 200.0
     max_rotation: float = 5.0
     min_measure: float = 1.02
+    min_distinctness: float = 6.0

@@ -17,9 +17,10 @@ Stored record (``store.save_doc("channels", ..., section=s)``), one per section:
         "initial": the same form, the first guess,
         "measure": "normalized_mutual_information", "bins": int,
         "measure_before", "measure_after": float (1 unrelated .. 2 identical),
+        "distinctness": robust z-score of the best start-search value (see register_mutual_information),
         "shift_from_given": [dx, dy] section px at the image centre, or null when x, y are absent,
         "rotation_deg", "scale_ratio" (found scale / pixel-size ratio),
-        "flags": ["blank" | "low_mi" | "at_search_limit"], "seconds"}}}
+        "flags": ["blank" | "low_mi" | "ambiguous" | "at_search_limit"], "seconds"}}}
 
 Manifest ``x, y`` convention: the section-pixel position of the image's first
 block, as in :func:`stackbuild.render.sampler.render_region`; channel pixel
@@ -113,7 +114,7 @@ def register_channel(job: _ChannelJob) -> dict:
     rec = {"section": e.section, "channel": e.channel, "path": str(e.path), "row": e.row,
            "pixel_size_nm": e.pixel_size, "em_scale": k, "registered": False,
            "initial": _frames(guess), "transform": _frames(guess), "measure": MEASURE, "bins": st.bins,
-           "measure_before": None, "measure_after": None, "shift_from_given": None,
+           "measure_before": None, "measure_after": None, "distinctness": None, "shift_from_given": None,
            "rotation_deg": 0.0, "scale_ratio": 1.0, "flags": []}
     moving = tifffile.imread(e.path).astype(np.float32)
     if _is_blank(moving):
@@ -131,13 +132,15 @@ def register_channel(job: _ChannelJob) -> dict:
     centre = np.array([[(e.width - 1) / 2, (e.height - 1) / 2]])
     shift = (result.apply(centre) - guess.apply(centre))[0]
     rec.update(registered=True, transform=_frames(result), measure_before=info["before"],
-               measure_after=info["after"],
+               measure_after=info["after"], distinctness=info["distinctness"],
                rotation_deg=math.degrees(math.atan2(a[1, 0] - a[0, 1], a[0, 0] + a[1, 1])),
                scale_ratio=math.sqrt(abs(np.linalg.det(a))) / rho)
     if e.x is not None and e.y is not None:
         rec["shift_from_given"] = [float(shift[0]), float(shift[1])]
     if info["after"] < st.min_measure:
         rec["flags"].append("low_mi")
+    if info["distinctness"] < st.min_distinctness:
+        rec["flags"].append("ambiguous")
     if info["at_limit"]:
         rec["flags"].append("at_search_limit")
     rec["seconds"] = round(time.perf_counter() - t0, 3)

@@ -98,6 +98,13 @@ def _parser() -> argparse.ArgumentParser:
     _add_cluster(a)
     _add_common(a)
 
+    c = sub.add_parser("channels", help="register the molecular marker images of a build folder",
+                       description="Co-register each marker image with its EM section by mutual "
+                                   "information; results go to DIR/transforms.")
+    c.add_argument("dir", metavar="DIR", help="build folder (made with --channels)")
+    _add_cluster(c)
+    _add_common(c)
+
     r = sub.add_parser("render", help="write the multiscale OME-Zarr volume of a build folder",
                        description="Resample raw tiles through the stored transforms into "
                                    "DIR/volume.zarr, all pyramid levels in one pass.")
@@ -244,21 +251,18 @@ def _cmd_build(args) -> int:
 
     build = _prepare_folder(args)
     show = not args.quiet
-    with dask_client(args.workers, args.scheduler):
-        stages.stitch_stage(build, client_mapper(_client(), ProgressBar("stitch", show)), resume=args.resume)
+    with dask_client(args.workers, args.scheduler) as client:
+        stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", show)), resume=args.resume)
         if not (args.resume and build.stage_done("align")):
-            stages.align_stage(build, client_mapper(_client(), ProgressBar("align", show)),
+            stages.align_stage(build, client_mapper(client, ProgressBar("align", show)),
                                progress=ProgressBar("solve", show))
+        if not (args.resume and build.stage_done("channels")):
+            stages.channels_stage(build, client_mapper(client, ProgressBar("channels", show)))
         stages.render_stage(build, resume=args.resume, progress=ProgressBar("render", show))
+        stages.render_channels_stage(build, progress=ProgressBar("markers", show))
     verdict = stages.report_stage(build, fail_on=args.fail_on, progress=ProgressBar("report", show))
     _say(f"volume: {build.volume_path}\nreport: {build.qc_dir / 'report.html'}")
     return _verdict_status(verdict)
-
-
-def _client():
-    from distributed import get_client
-
-    return get_client()
 
 
 def _cmd_stitch(args) -> int:
@@ -287,6 +291,20 @@ def _cmd_align(args) -> int:
     return EXIT_OK
 
 
+def _cmd_channels(args) -> int:
+    from .run import stages
+    from .run.cluster import client_mapper, dask_client
+    from .run.progress import ProgressBar
+
+    build = _open_build(args.dir)
+    if not build.load_state().get("channels"):
+        raise InputError("this build has no channel manifest (build it with --channels)", file=build.root)
+    with dask_client(args.workers, args.scheduler) as client:
+        out = stages.channels_stage(build, client_mapper(client, ProgressBar("channels", not args.quiet)))
+    _say(f"registered {len(out)} channel image(s) into {build.store.root}")
+    return EXIT_OK
+
+
 def _cmd_render(args) -> int:
     from .run import stages
     from .run.cluster import dask_client
@@ -296,6 +314,7 @@ def _cmd_render(args) -> int:
     with dask_client(args.workers, args.scheduler):
         stages.render_stage(build, planes=args.planes, resume=args.resume, overwrite=args.overwrite,
                             progress=ProgressBar("render", not args.quiet))
+        stages.render_channels_stage(build, progress=ProgressBar("markers", not args.quiet))
     _say(f"volume: {build.volume_path}")
     return EXIT_OK
 
@@ -347,7 +366,8 @@ def _say(text: str) -> None:
     print(text)
 
 
-COMMANDS = {"build": _cmd_build, "stitch": _cmd_stitch, "align": _cmd_align, "render": _cmd_render,
+COMMANDS = {"build": _cmd_build, "stitch": _cmd_stitch, "align": _cmd_align, "channels": _cmd_channels,
+            "render": _cmd_render,
             "report": _cmd_report, "update": _cmd_update, "synth": _cmd_synth}
 
 

@@ -11,7 +11,7 @@ import tifffile
 from stackbuild import __version__
 from stackbuild.cli import _parser, main
 
-COMMANDS = ["build", "stitch", "align", "render", "report", "update", "synth"]
+COMMANDS = ["build", "stitch", "align", "channels", "render", "report", "update", "synth"]
 
 
 def _subparsers():

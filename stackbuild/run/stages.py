@@ -19,7 +19,7 @@ from .folder import BuildFolder
 
 log = logging.getLogger(__name__)
 
-STAGES = ("stitch", "align", "render", "report")
+STAGES = ("stitch", "align", "channels", "render", "report")
 
 
 @dataclass(frozen=True)
@@ -72,6 +72,28 @@ def align_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
     result = run_align(build.root, build.config.align, mapper=mapper, progress=progress)
     build.mark_stage("align", "done", seconds=round(time.monotonic() - t0, 2))
     return result
+
+
+def channels_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
+    """Register every marker image to its EM section (nothing to do without a channel manifest)."""
+    from ..channels.stage import run_channels
+
+    if not build.load_state().get("channels"):
+        return {}
+    build.mark_stage("channels", "running")
+    t0 = time.monotonic()
+    result = run_channels(build.root, build.config.channels, mapper=mapper, progress=progress)
+    build.mark_stage("channels", "done", seconds=round(time.monotonic() - t0, 2))
+    return result
+
+
+def render_channels_stage(build: BuildFolder, *, progress=None) -> dict:
+    """Write each marker channel's pyramid beside the EM, in the same physical space."""
+    from ..channels.render import render_channels
+
+    if not build.load_state().get("channels"):
+        return {}
+    return render_channels(build.root, build.config.render, progress=progress)
 
 
 def render_stage(build: BuildFolder, *, planes: list[int] | None = None, resume: bool = False,

@@ -39,6 +39,20 @@ class AlignSettings:
         Weight of the in-plane smoothness of each displacement field.
     min_block_ncc : float
         Block matches with a lower correlation peak are discarded.
+    max_features : int
+        Keep at most this many of the strongest features per section.
+    max_vector_deviation : float
+        Block-match vectors farther than this (full-resolution pixels) from the
+        median of their grid neighbours are discarded.
+    elastic_pull : float
+        Weight of the weak pull of every displacement field toward zero (fixes
+        only what the data leave free: fields that change linearly with z).
+    elastic_rounds : int
+        Rounds of block matching and solving; each round measures what the
+        fields so far have left.
+    damaged_fraction : float
+        A section whose share of trusted block matches is below this fraction
+        of the stack's median share is flagged ``"damaged"``.
     """
 
     work_scale: int = 4
@@ -55,3 +69,8 @@ class AlignSettings:
     elastic_scale: int = 2
     stiffness: float = 1.0
     min_block_ncc: float = 0.4
+    max_features: int = 4000
+    max_vector_deviation: float = 6.0
+    elastic_pull: float = 1e-3
+    elastic_rounds: int = 2
+    damaged_fraction: float = 0.85

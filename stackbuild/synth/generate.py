@@ -73,6 +73,23 @@ def _channels(params, out, section, affine, field, layers):
     return rows, info
 
 
+def _section(params, out, z):
+    """Render and write one section; return its manifest rows, truth record, warp and defects."""
+    affine, field = section_affine(params, z), section_field(params, z)
+    with_markers = params.channels > 0 and z % params.channel_every == 0
+    layers = phantom_layers(params, z, markers=with_markers)
+    rep = params.repetitive()
+    extras = {"blank": set(params.blank()), "fold": fold_record(params, z) if z in params.damaged() else None,
+              "repeat": None}
+    if rep is not None and rep[0] == z:
+        extras["repeat"] = repeat_record(tile_layout(params, z), rep[1], rep[2], params.tile_size)
+    rows, tiles, sigma = _tiles(params, out, z, affine, field, layers["em"], extras)
+    crow, chans = _channels(params, out, z, affine, field, layers) if with_markers else ([], {})
+    record = {"affine": affine.matrix.tolist(), "noise_std": sigma, "tiles": tiles, "channels": chans,
+              "field": {"file": f"fields/{z}.npy", "origin": list(field.origin), "spacing": field.spacing}}
+    return rows, crow, record, field, extras
+
+
 def _write_csv(path: Path, header: list[str], rows: list[list]) -> None:
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
@@ -106,31 +123,19 @@ def generate(outdir, params: SynthParams = SynthParams()) -> Path:
     params.check()
     out = Path(outdir)
     out.mkdir(parents=True, exist_ok=True)
-    lost, damaged = set(params.lost()), set(params.damaged())
-    rep = params.repetitive()
+    lost = set(params.lost())
     tile_rows, chan_rows, sections, fields, folds = [], [], {}, {}, {}
     repeat_truth = None
     for z in range(params.sections):
         if z in lost:
             continue
-        affine, field = section_affine(params, z), section_field(params, z)
-        with_markers = params.channels > 0 and z % params.channel_every == 0
-        layers = phantom_layers(params, z, markers=with_markers)
-        extras = {"blank": set(params.blank()), "fold": fold_record(params, z) if z in damaged else None,
-                  "repeat": None}
-        if rep is not None and rep[0] == z:
-            extras["repeat"] = repeat_record(tile_layout(params, z), rep[1], rep[2], params.tile_size)
-            repeat_truth = {"section": z, **extras["repeat"]}
-        if extras["fold"] is not None:
-            folds[str(z)] = extras["fold"]
-        rows, tiles, sigma = _tiles(params, out, z, affine, field, layers["em"], extras)
-        crow, chans = _channels(params, out, z, affine, field, layers) if with_markers else ([], {})
+        rows, crow, sections[str(z)], fields[z], extras = _section(params, out, z)
         tile_rows += rows
         chan_rows += crow
-        fields[z] = field
-        sections[str(z)] = {"affine": affine.matrix.tolist(), "noise_std": sigma, "tiles": tiles,
-                            "channels": chans, "field": {"file": f"fields/{z}.npy", "origin": list(field.origin),
-                                                         "spacing": field.spacing}}
+        if extras["fold"] is not None:
+            folds[str(z)] = extras["fold"]
+        if extras["repeat"] is not None:
+            repeat_truth = {"section": z, **extras["repeat"]}
     manifest = out / "tiles.csv"
     _write_csv(manifest, ["section", "tile", "path", "x", "y"], tile_rows)
     if chan_rows:

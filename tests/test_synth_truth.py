@@ -4,10 +4,15 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import tifffile
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.ndimage import map_coordinates
 from skimage.transform import AffineTransform
 
 from stackbuild.synth import SynthParams, generate, load_truth
+from stackbuild.synth.acquire import vignetting_profile
+from stackbuild.synth.distort import section_affine, section_field, section_to_true, true_to_section
+from stackbuild.synth.layout import section_shape
 
 PARAMS = dict(sections=2, grid=(2, 3), tile_size=128, offset=10.0, cell_size=40.0, warp=6.0)
 
@@ -130,3 +135,21 @@ def test_uint16_tiles_are_the_8_bit_model_times_256(tmp_path):
     assert image.dtype == np.uint16 and not (tmp_path / "channels.csv").exists()
     residual = image / 256.0 - _predicted(truth, s, "r0c0", truth.undistorted(s))
     assert residual.std() < 1.5 * truth.noise_std(s)
+
+
+@settings(max_examples=25, deadline=None)
+@given(seed=st.integers(0, 10 ** 6), warp=st.floats(0.0, 20.0), scale=st.floats(0.0, 0.05),
+       rotation=st.floats(0.0, 10.0))
+def test_inverse_map_round_trips_for_any_distortion(seed, warp, scale, rotation):
+    params = SynthParams(seed=seed, warp=warp, scale=scale, rotation=rotation, grid=(2, 2), tile_size=256)
+    affine, field = section_affine(params, 1), section_field(params, 1)
+    h, w = section_shape(params)
+    q = np.random.default_rng(seed).uniform([0, 0], [w, h], (500, 2))
+    back = true_to_section(affine, field, section_to_true(affine, field, q))
+    assert np.abs(back - q).max() < 1e-3
+
+
+def test_vignetting_darkens_corners_by_the_stated_fraction():
+    profile = vignetting_profile((101, 121), 0.2)
+    assert profile[50, 60] == pytest.approx(1.0)
+    assert profile[[0, 0, -1, -1], [0, -1, 0, -1]] == pytest.approx([0.8] * 4)

@@ -42,7 +42,20 @@ def tile_thumbnail(image: np.ndarray, step: int) -> np.ndarray:
     return cv2.resize(img / mean, (ws, hs), interpolation=cv2.INTER_AREA)
 
 
-def illumination_profile(thumbnails: np.ndarray, smooth: float = 1.0) -> np.ndarray:
+def _polynomial_fit(values: np.ndarray, degree: int) -> np.ndarray:
+    """Return the least-squares 2-D polynomial of total degree ``degree`` through ``values``, at its samples."""
+    hs, ws = values.shape
+    yy, xx = np.mgrid[:hs, :ws]
+    u = (2 * xx + 1) / ws - 1.0   # sample centres on [-1, 1]
+    v = (2 * yy + 1) / hs - 1.0
+    terms = [(i, j) for i in range(degree + 1) for j in range(degree + 1 - i)
+             if i < ws and j < hs]
+    basis = np.stack([(u ** i * v ** j).ravel() for i, j in terms], axis=1)
+    coef = np.linalg.lstsq(basis, values.ravel().astype(np.float64), rcond=None)[0]
+    return (basis @ coef).reshape(hs, ws).astype(np.float32)
+
+
+def illumination_profile(thumbnails: np.ndarray, degree: int = 4) -> np.ndarray:
     """Return the section's illumination profile from mean-normalised tile thumbnails.
 
     Parameters
@@ -50,8 +63,10 @@ def illumination_profile(thumbnails: np.ndarray, smooth: float = 1.0) -> np.ndar
     thumbnails : ndarray, shape (T, hs, ws)
         :func:`tile_thumbnail` of the tiles that show specimen (blank and
         saturated tiles left out).
-    smooth : float
-        Sigma (profile pixels) of the Gaussian that smooths the median; 0 for none.
+    degree : int
+        Total degree of the 2-D polynomial fitted to the per-pixel median
+        (smooths it, and keeps its shape right up to the tile edges); a
+        negative value keeps the raw median.
 
     Returns
     -------
@@ -63,17 +78,18 @@ def illumination_profile(thumbnails: np.ndarray, smooth: float = 1.0) -> np.ndar
     The per-pixel median over many tiles keeps what all tiles share (the
     illumination and detector shading) and rejects the specimen, which
     differs from tile to tile; this is the retrospective flat-field idea of
-    estimating shading from the images themselves (e.g. Peng et al., "A
-    BaSiC tool for background and shading correction of optical microscopy
+    estimating shading from the images themselves (Peng et al., "A BaSiC
+    tool for background and shading correction of optical microscopy
     images", Nat. Commun. 8:14836 (2017), doi:10.1038/ncomms14836, use a
-    low-rank model; the median is the simplest robust version).
+    low-rank model; the median with a low-order polynomial is the simplest
+    robust version, common practice, no source).
     """
     t = np.asarray(thumbnails, dtype=np.float32)
     if t.ndim != 3 or len(t) == 0:
         raise ValueError(f"thumbnails must be a non-empty (T, hs, ws) stack, got {t.shape}")
     prof = np.median(t, axis=0).astype(np.float32)
-    if smooth > 0:
-        prof = cv2.GaussianBlur(prof, (0, 0), smooth, borderType=cv2.BORDER_REFLECT)
+    if degree >= 0:
+        prof = _polynomial_fit(prof, degree)
     prof = np.maximum(prof, np.float32(1e-3))
     return (prof / prof.mean()).astype(np.float32)
 

@@ -59,7 +59,7 @@ class StitchSettings:
     prior_weight: float = 1e-3
     max_residual: float = 1.5
     illumination: bool = True
-    illumination_step: int = 32
+    illumination_step: int = 16
     intensity: bool = True
     blank_std: float = 2.0
     focus_min: float = 0.2

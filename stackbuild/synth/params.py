@@ -72,7 +72,7 @@ class SynthParams:
     channels : int
         Number of marker channels (0, 1 or 2).
     channel_every : int
-        Marker images are taken of every n-th section (section % n == 0).
+        Marker images are taken of every n-th section (section numbers divisible by n).
     channel_binning : int
         Marker pixel size as a multiple of the EM pixel size.
     channel_shift : float

@@ -87,7 +87,7 @@ def _alignment(section: int) -> SectionAlignment:
         v = np.zeros((5, 5, 2), np.float32)
         v[1, 3] = (0.3, -0.4)
         field = DisplacementField(v, (0.0, 0.0), 128.0)
-    return SectionAlignment(section, aff, field, stats={"inliers_next": 40})
+    return SectionAlignment(section, aff, field, stats={"coarse": {"pairs": {str(section + 1): {"inliers": 40 + section}}}})
 
 
 def render_plane(stitch: SectionStitch, align: SectionAlignment) -> np.ndarray:

@@ -30,7 +30,8 @@ volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
                     ``align_prev`` / ``align_next`` (summaries against the nearest
                     present plane before / after), ``align_score`` (median of the
                     available ``p95`` of the two; a section is blamed only as far
-                    as it disagrees with both neighbours), ``elastic``
+                    as it disagrees with both neighbours), ``inliers``
+                    (``{neighbour section: RANSAC inliers}`` of the coarse stage), ``elastic``
                     (``{"rms", "max", "at"}`` of the stored field), ``aligner_stats``.
 ``channels``        one per (section, marker channel) registration: ``section``,
                     ``channel``, ``path``, ``registered``, ``measure`` (its name),
@@ -158,6 +159,16 @@ def _elastic(section, align, sc: _Scale) -> dict:
     return {"rms": st["rms"], "max": st["max"], "at": sc.at(section, node - off)}
 
 
+def _inliers(align) -> dict:
+    """Return ``{neighbour section: RANSAC inliers}`` from the aligner's statistics (empty if absent)."""
+    pairs = ((align.stats if align else {}).get("coarse") or {}).get("pairs") or {}
+    out = {}
+    for k, v in pairs.items():
+        if isinstance(v, dict) and isinstance(v.get("inliers"), (int, float)):
+            out[str(k)] = int(v["inliers"])
+    return out
+
+
 def _plane_summaries(meas: Measurements, sc: _Scale) -> dict[tuple[int, int], dict]:
     out = {}
     for pp in meas.plane_pairs:
@@ -178,7 +189,8 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale) -> li
         p95s = [x["p95"] for x in (ap, an) if x and x["p95"] is not None]
         flags = list(st.flags if st else []) + list(al.flags if al else [])
         if sc.canvas and s in sc.canvas.flagged_sections:
-            flags.append(str(sc.canvas.flagged_sections[s]))
+            extra = sc.canvas.flagged_sections[s]
+            flags += [str(f) for f in extra] if isinstance(extra, (list, tuple, dict)) else [str(extra)]
         rows.append({
             "section": s, "z": z, "lost": s in lost, "flags": sorted(set(flags)),
             "tiles": len(st.tiles) if st else 0,
@@ -188,6 +200,7 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale) -> li
             "stitcher_stats": dict(st.stats) if st else {},
             "align_prev": ap, "align_next": an,
             "align_score": float(np.median(p95s)) if p95s else None,
+            "inliers": _inliers(al),
             "elastic": _elastic(s, al, sc), "aligner_stats": dict(al.stats) if al else {},
         })
     return rows

@@ -172,7 +172,8 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
     worst_at = lambda r: max((s for s in (r["align_prev"], r["align_next"]) if s and s["n"]),  # noqa: E731
                              key=lambda s: s["max"])
     a_rows = [[r["section"], r["align_score"], (r["align_prev"] or {}).get("p95"), (r["align_next"] or {}).get("p95"),
-               worst_at(r)["max"], *_loc(worst_at(r)["at"]), "; ".join(r["flags"])] for r in secs]
+               worst_at(r)["max"], min(r["inliers"].values(), default=None), r["elastic"]["max"],
+               *_loc(worst_at(r)["at"]), "; ".join(r["flags"])] for r in secs]
     a_bad = [worst_at(r)["max"] > amax for r in secs]
     st = sorted((r for r in doc["sections"] if r["stitch"]["rms"] is not None), key=lambda r: -r["stitch"]["rms"])[:n]
     s_rows = [[r["section"], r["stitch"]["rms"], r["stitch"]["p95"], r["stitch"]["max"], r["pairs_rejected"],
@@ -194,8 +195,8 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
         "<h2>Worst sections: alignment</h2>",
         '<p class="small">score = median over both neighbours of the 95th-percentile residual; '
         f"rows over {amax:g} px (largest residual) are shaded.</p>",
-        _table(["section", "score (px)", "p95 to z-1", "p95 to z+1", "max (px)", *_LOC, "flags"], a_rows, a_bad,
-               (8,)),
+        _table(["section", "score (px)", "p95 to z-1", "p95 to z+1", "max (px)", "fewest inliers",
+                "elastic max (px)", *_LOC, "flags"], a_rows, a_bad, (10,)),
         "<h2>Worst sections: stitching</h2>",
         _table(["section", "seam RMS (px)", "p95", "max", "rejected pairs", *_LOC], s_rows),
         "<h2>Worst seams</h2>",

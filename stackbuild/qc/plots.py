@@ -57,7 +57,10 @@ def tile_maps(stitches: dict, tile_rows: list[dict], pair_rows: list[dict], sect
         res = {r["tile"]: r["seam_median"] for r in tile_rows if r["section"] == s}
         rects = [Rectangle((t.x - 0.5, t.y - 0.5), t.width, t.height) for t in st.tiles]
         colours = [cmap(norm(res[t.tile])) if res.get(t.tile) is not None else LOST for t in st.tiles]
-        ax.add_collection(PatchCollection(rects, facecolors=colours, edgecolors=INK, linewidths=0.6, alpha=0.85))
+        # faces opaque (overlaps show the later tile), outlines drawn on top so every tile stays visible
+        ax.add_collection(PatchCollection(rects, facecolors=colours, edgecolors="none"))
+        ax.add_collection(PatchCollection([Rectangle(r.get_xy(), r.get_width(), r.get_height()) for r in rects],
+                                          facecolors="none", edgecolors=INK, linewidths=0.7))
         centre = {t.tile: (t.x + t.width / 2, t.y + t.height / 2) for t in st.tiles}
         for acc, style, col in ((True, "-", GOOD), (False, "--", BAD)):
             segs = [(centre[r["a"]], centre[r["b"]]) for r in pair_rows
@@ -90,6 +93,7 @@ def residual_vs_z(section_rows: list[dict]):
         z = np.array([p[0] for p in pts])
         for key, col, mk in (("median", GOOD, "o"), ("p95", WARN, "s"), ("max", BAD, "^")):
             ax.plot(z, [p[1][key] for p in pts], marker=mk, color=col, label=key, lw=1.4, ms=4)
+        ax.set_ylim(0, 1.08 * max(p[1]["max"] for p in pts) + 1e-6)
     else:
         _note(ax, "no section-to-section residuals measured")
     for r in rows:
@@ -103,9 +107,8 @@ def residual_vs_z(section_rows: list[dict]):
     ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
     ax.set_xlabel("z (plane, each compared with the plane before)")
     ax.set_ylabel("residual (full-res px)")
-    ax.set_ylim(bottom=0)
     ax.grid(alpha=0.3)
-    ax.legend(loc="upper left", fontsize=8, ncols=5)
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.18), fontsize=8, ncols=5, frameon=False)
     ax.set_title("Section-to-section residual after the final transforms", color=INK)
     return fig
 
@@ -179,7 +182,7 @@ def reslice(xz: np.ndarray, yz: np.ndarray, z_aspect: float, at: tuple[float, fl
         n = img.shape[1] * factor
         ax.imshow(img, cmap="gray", vmin=lo, vmax=hi, interpolation="nearest",
                   extent=(0, n, img.shape[0] - 0.5, -0.5), aspect=z_aspect / factor)
-        ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
+        ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(nbins=4, integer=True))
         ax.set_xlabel(f"{name} (output px)")
         ax.set_ylabel("z (plane)")
         ax.set_title(f"{name}-z re-slice at {pos} (z stretched by {z_aspect:.1f}: physical proportions)",

@@ -32,7 +32,8 @@ from ..transforms.types import Affine2D
 
 MODELS = ("rigid", "similarity", "affine")
 MIN_OVERLAP = 0.5  # fraction of the smaller image that must overlap (common practice, no source)
-SEARCH_BUDGET = 2e7  # pixel visits allowed for the exhaustive start search (about a second)
+SEARCH_BUDGET = 4e7  # pixel visits allowed for the exhaustive start search (about a second)
+EVAL_OVERHEAD = 1500  # fixed cost of one evaluation, in pixel visits (measured, this machine)
 MAX_STRETCH = 0.1  # largest scale change or shear searched, relative
 
 
@@ -207,7 +208,7 @@ def _search_level(pyr: list, max_offset: float, max_rotation: float) -> "_Level"
     n_rot = max(1, 2 * int(math.ceil(max_rotation / 1.5)) + 1)
     for level in pyr:
         n_shift = (2 * math.ceil(max_offset / level.factor) + 1) ** 2
-        if n_shift * n_rot * level.fixed_bin.size <= SEARCH_BUDGET:
+        if n_shift * n_rot * (level.fixed_bin.size + EVAL_OVERHEAD) <= SEARCH_BUDGET:
             return level
     return pyr[-1]
 
@@ -352,9 +353,12 @@ def _refine(level: _Level, make, initial: Affine2D, theta: np.ndarray, step: flo
     def cost(th):
         return -level.measure(initial.then(make(th)))
 
+    # Powell's bounded line searches span the whole box; keep them local (two level pixels) so a
+    # far, spurious peak along a search line cannot capture the result.
     lo, hi = np.array(bounds).T
     theta = np.clip(theta, lo, hi)
-    res = optimize.minimize(cost, theta, method="Powell", bounds=bounds,
+    local = list(zip(np.maximum(lo, theta - 2 * step), np.minimum(hi, theta + 2 * step)))
+    res = optimize.minimize(cost, theta, method="Powell", bounds=local,
                             options={"xtol": 0.02 * step, "ftol": 1e-5, "direc": np.eye(len(theta)) * step,
                                      "maxfev": 400 * len(theta)})
     return res.x if res.fun <= cost(theta) else theta

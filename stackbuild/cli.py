@@ -153,7 +153,7 @@ def _add_synth(sub) -> None:
         kind = hints[f.name]
         default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
         flag = "--" + f.name.replace("_", "-")
-        help_text = f"{doc.get(f.name, '')} (default: {default!r})"
+        help_text = f"{doc.get(f.name, '')} (default: {default!r})".replace("%", "%%")
         if kind is bool:
             p.add_argument(flag, action=argparse.BooleanOptionalAction, default=default, help=help_text)
         elif typing.get_origin(kind) is tuple:
@@ -262,7 +262,7 @@ def _cmd_build(args) -> int:
         stages.render_channels_stage(build, progress=ProgressBar("markers", show))
     verdict = stages.report_stage(build, fail_on=args.fail_on, progress=ProgressBar("report", show))
     _say(f"volume: {build.volume_path}\nreport: {build.qc_dir / 'report.html'}")
-    return _verdict_status(verdict)
+    return _verdict_status(verdict, args.fail_on)
 
 
 def _cmd_stitch(args) -> int:
@@ -326,7 +326,7 @@ def _cmd_report(args) -> int:
     build = _open_build(args.dir)
     verdict = stages.report_stage(build, fail_on=args.fail_on, progress=ProgressBar("report", not args.quiet))
     _say(f"report: {build.qc_dir / 'report.html'}")
-    return _verdict_status(verdict)
+    return _verdict_status(verdict, args.fail_on)
 
 
 def _cmd_update(args) -> int:
@@ -354,12 +354,13 @@ def _cmd_synth(args) -> int:
     return EXIT_OK
 
 
-def _verdict_status(verdict) -> int:
+def _verdict_status(verdict, fail_on: list[str] | None) -> int:
+    """Exit 3 only when the user set a bar with --fail-on; otherwise the verdict is in the report."""
     if getattr(verdict, "passed", True):
         return EXIT_OK
     for line in getattr(verdict, "failures", []):
         print(f"stackbuild: quality bar missed: {line}", file=sys.stderr)
-    return EXIT_FAILED_BAR
+    return EXIT_FAILED_BAR if fail_on else EXIT_OK
 
 
 def _say(text: str) -> None:
@@ -376,6 +377,9 @@ def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
                         format="%(levelname)s %(name)s: %(message)s")
+    if not args.debug:  # Dask's own start/stop chatter is not news to the user
+        for name in ("distributed", "tornado", "asyncio"):
+            logging.getLogger(name).setLevel(logging.ERROR)
     try:
         return COMMANDS[args.command](args)
     except InputError as exc:

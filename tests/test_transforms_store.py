@@ -106,3 +106,19 @@ def test_write_is_atomic_when_serialisation_fails(tmp_path):
         store.save_doc("contrast", {"gain": float("nan")})  # NaN is not JSON
     assert store.load_doc("contrast") == {"gain": 1.0} and not store.history("contrast")
     assert not list(path.parent.glob(".contrast.json.*"))  # no temporary left behind
+
+
+def test_displacement_field_matches_scipy_bilinear():
+    # Reference: scipy.interpolate.RegularGridInterpolator(method="linear") on the same nodes.
+    from scipy.interpolate import RegularGridInterpolator
+
+    rng = np.random.default_rng(3)
+    vec = rng.normal(0, 4, (6, 7, 2)).astype(np.float32)
+    f = DisplacementField(vec, origin=(-20.0, 10.0), spacing=32.0)
+    gy, gx = -20.0 + 32.0 * np.arange(7), 10.0 + 32.0 * np.arange(6)
+    ref = RegularGridInterpolator((gx, gy), vec.astype(np.float64), method="linear")
+    xs, ys = np.linspace(-20, 172, 23), np.linspace(10, 170, 19)
+    X, Y = np.meshgrid(xs, ys)
+    expect = ref(np.column_stack([Y.ravel(), X.ravel()]))
+    np.testing.assert_allclose(f.displacement(np.column_stack([X.ravel(), Y.ravel()])), expect, atol=1e-5)
+    np.testing.assert_allclose(f.displacement_grid(xs, ys).reshape(-1, 2), expect, atol=1e-5)

@@ -7,7 +7,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import cv2
 import numpy as np
 
 
@@ -129,23 +128,39 @@ class DisplacementField:
         return self._sample(gx, gy).reshape(-1, 2).astype(np.float64)
 
     def displacement_grid(self, xs: np.ndarray, ys: np.ndarray) -> np.ndarray:
-        """Return ``d`` on the grid ``xs`` (columns) x ``ys`` (rows), shape ``(len(ys), len(xs), 2)``."""
-        gx = ((np.asarray(xs, np.float64) - self.origin[0]) / self.spacing).astype(np.float32)
-        gy = ((np.asarray(ys, np.float64) - self.origin[1]) / self.spacing).astype(np.float32)
-        mx, my = np.meshgrid(gx, gy)
-        return self._sample(mx, my)
+        """Return ``d`` on the grid ``xs`` (columns) x ``ys`` (rows), shape ``(len(ys), len(xs), 2)``.
+
+        Bilinear interpolation is separable on a grid, so it is done along x
+        for every node row, then along y: the same values as :meth:`displacement`.
+        """
+        ny, nx = self.vectors.shape[:2]
+        ix, fx = self._axis_weights(xs, self.origin[0], nx)
+        iy, fy = self._axis_weights(ys, self.origin[1], ny)
+        v = self.vectors
+        rows = v[:, ix] * (1 - fx)[None, :, None] + v[:, np.minimum(ix + 1, nx - 1)] * fx[None, :, None]
+        out = rows[iy] * (1 - fy)[:, None, None] + rows[np.minimum(iy + 1, ny - 1)] * fy[:, None, None]
+        return out.astype(np.float32)
+
+    def _axis_weights(self, coords, origin: float, n: int):
+        g = np.clip((np.asarray(coords, np.float64) - origin) / self.spacing, 0, n - 1)
+        i = np.minimum(np.floor(g).astype(np.intp), max(n - 2, 0))
+        return i, (g - i).astype(np.float32)
 
     def _sample(self, gx: np.ndarray, gy: np.ndarray) -> np.ndarray:
+        """Exact bilinear interpolation of the nodes at fractional grid coordinates (clamped)."""
         ny, nx = self.vectors.shape[:2]
-        gx = np.clip(gx, 0, nx - 1).reshape(gx.shape[0], -1) if gx.ndim == 2 else np.clip(gx, 0, nx - 1)[None]
-        gy = np.clip(gy, 0, ny - 1).reshape(gy.shape[0], -1) if gy.ndim == 2 else np.clip(gy, 0, ny - 1)[None]
-        # cv2.remap caps map size at SHRT_MAX per side; split long point lists.
-        out = np.empty((*gx.shape, 2), np.float32)
-        step = 32000
-        for c0 in range(0, gx.shape[1], step):
-            out[:, c0:c0 + step] = cv2.remap(self.vectors, gx[:, c0:c0 + step], gy[:, c0:c0 + step],
-                                             cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE)
-        return out
+        gx = np.clip(np.asarray(gx, np.float64), 0, nx - 1)
+        gy = np.clip(np.asarray(gy, np.float64), 0, ny - 1)
+        ix = np.minimum(np.floor(gx).astype(np.intp), max(nx - 2, 0))
+        iy = np.minimum(np.floor(gy).astype(np.intp), max(ny - 2, 0))
+        fx = (gx - ix)[..., None]
+        fy = (gy - iy)[..., None]
+        v = self.vectors
+        ix1 = np.minimum(ix + 1, nx - 1)
+        iy1 = np.minimum(iy + 1, ny - 1)
+        top = v[iy, ix] * (1 - fx) + v[iy, ix1] * fx
+        bottom = v[iy1, ix] * (1 - fx) + v[iy1, ix1] * fx
+        return (top * (1 - fy) + bottom * fy).astype(np.float32)
 
     def apply(self, points: np.ndarray) -> np.ndarray:
         """Return ``p + d(p)`` for ``(N, 2)`` ``(x, y)`` points."""

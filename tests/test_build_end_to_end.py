@@ -1,0 +1,124 @@
+"""The whole pipeline through the command line, on real files and real Dask worker processes."""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+import zarr
+
+import stackbuild
+from stackbuild.cli import main
+
+
+def _digest(folder: Path) -> dict[str, str]:
+    """Return ``{relative path: sha256}`` of every chunk file under ``folder``."""
+    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file() and p.name != "zarr.json"
+            and not p.name.startswith(".")}
+
+
+def _small_chunks(folder: Path) -> Path:
+    """Return a pipeline file with small chunks, so the tiny volume still has several levels."""
+    path = folder / "small.toml"
+    path.write_text("[render]\nchunk = 128\nshard = 2\n")
+    return path
+
+
+@pytest.fixture(scope="module")
+def built(tiny_data, tmp_path_factory):
+    out = tmp_path_factory.mktemp("build") / "b"
+    status = main(["build", str(tiny_data / "tiles.csv"), "--out", str(out), "--channels",
+                   str(tiny_data / "channels.csv"), "--config", str(_small_chunks(out.parent)),
+                   "--workers", "2", "--quiet"])
+    assert status == 0
+    return out
+
+
+def test_build_writes_volume_transforms_and_report(built):
+    state = json.loads((built / "build.json").read_text())
+    assert all(state["stages"][s]["status"] == "done" for s in ("stitch", "align", "render", "report"))
+    em = zarr.open_group(str(built / "volume.zarr" / "em"), mode="r")
+    assert em.attrs["ome"]["version"] == "0.5"
+    level0 = em["0"]
+    assert level0.shape[0] == 5  # sections 0..4, the lost one included
+    assert not np.any(level0[2])  # section 2 is lost: an empty plane
+    assert np.count_nonzero(level0[0]) > 0.9 * level0[0].size
+    assert (built / "qc" / "report.html").stat().st_size > 10_000
+    assert sorted(p.name for p in (built / "transforms" / "sections").iterdir()) == ["00000", "00001", "00003", "00004"]
+
+
+def test_open_volume_lazy_equals_written(built):
+    written = stackbuild.open_volume(built, level=1, lazy=False)
+    lazy = stackbuild.open_volume(built, level=1, lazy=True)
+    np.testing.assert_array_equal(written[3].compute(), lazy[3].compute())
+    assert written.scale_nm[1] == 2 * 4.0  # level 1: twice the 4 nm default pixel
+
+
+def test_resume_of_a_finished_build_changes_nothing(built, tiny_data):
+    before = _digest(built / "volume.zarr")
+    assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(built), "--resume", "--workers", "1",
+                 "--quiet"]) == 0
+    assert _digest(built / "volume.zarr") == before
+
+
+def test_refuses_existing_build_without_resume_or_overwrite(built, tiny_data, capsys):
+    assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(built), "--quiet"]) == 2
+    assert "--resume" in capsys.readouterr().err
+
+
+def test_killed_build_resumes_to_the_same_volume(built, tiny_data, tmp_path):
+    out = tmp_path / "killed"
+    cmd = [sys.executable, "-m", "stackbuild.cli", "build", str(tiny_data / "tiles.csv"), "--out", str(out),
+           "--channels", str(tiny_data / "channels.csv"), "--config", str(_small_chunks(tmp_path)),
+           "--workers", "1", "--quiet"]
+    proc = subprocess.Popen(cmd, start_new_session=True)
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and proc.poll() is None:
+        if (out / "transforms" / "sections").exists() and any((out / "transforms" / "sections").iterdir()):
+            os.killpg(proc.pid, signal.SIGKILL)  # the whole process group: CLI and its Dask workers
+            break
+        time.sleep(0.05)
+    proc.wait(timeout=60)
+    status = main(["build", str(tiny_data / "tiles.csv"), "--out", str(out), "--resume", "--workers", "2",
+                   "--quiet"])
+    assert status == 0
+    assert _digest(out / "volume.zarr" / "em") == _digest(built / "volume.zarr" / "em")
+
+
+def test_update_restitches_the_reimaged_section(built, tiny_data, tmp_path):
+    work = tmp_path / "b"
+    shutil.copytree(built, work)
+    # Section 1 imaged again: same field of view, a brighter detector setting.
+    lines = (tiny_data / "tiles.csv").read_text().splitlines()
+    again = tmp_path / "again"
+    rows = ["section,tile,path,x,y"]
+    for line in lines[1:]:
+        section, tile, path, x, y = line.split(",")
+        if section != "1":
+            continue
+        img = tifffile.imread(tiny_data / path).astype(np.float32) * 1.15
+        dst = again / f"{tile}.tif"
+        dst.parent.mkdir(parents=True, exist_ok=True)
+        tifffile.imwrite(dst, np.clip(img, 0, 255).astype(np.uint8))
+        rows.append(f"1,{tile},{dst},{x},{y}")
+    (again / "tiles.csv").write_text("\n".join(rows) + "\n")
+    assert main(["update", str(work), "--tiles", str(again / "tiles.csv"), "--workers", "1", "--quiet"]) == 0
+    store = stackbuild.transforms.TransformStore(work / "transforms")
+    assert len(store.history("stitch", 1)) == 1 and not store.history("stitch", 0)
+    new_tiles = {t.path for t in store.load_stitch(1).tiles}
+    assert all(str(again) in p for p in new_tiles)
+    written = stackbuild.open_volume(work, level=0, lazy=False)[1].compute()
+    lazy = stackbuild.open_volume(work, level=0, lazy=True)[1].compute()
+    np.testing.assert_array_equal(written, lazy)  # the re-imaged plane was rendered again
+    old = stackbuild.open_volume(built, level=0, lazy=False)[1].compute()
+    assert written[old > 0].mean() > old[old > 0].mean() * 1.05  # and shows the new tiles

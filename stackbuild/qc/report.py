@@ -80,6 +80,8 @@ def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> 
                            qc / "residual_map.png")))
     el = [r for r in doc["sections"] if r["elastic"]["max"] is not None]
     pick = max(el, key=lambda r: r["elastic"]["max"]) if el else doc["worst"]["section_align"]
+    if settings.field_section >= 0:
+        pick = next((r for r in doc["sections"] if r["section"] == settings.field_section), pick)
     if pick is not None:
         al = store.load_alignment(pick["section"])
         canvas = store.load_canvas()

@@ -37,6 +37,8 @@ class ReportSettings:
         Template half size inside tile overlaps, pixels.
     seam_search : int
         Largest residual shift searched inside tile overlaps, pixels.
+    field_section : int
+        Section whose elastic displacement field is drawn; -1 picks the one with the largest displacement.
     reslice_px : int
         The orthogonal re-slice uses the finest level whose plane side fits in this many pixels.
     """
@@ -54,4 +56,5 @@ class ReportSettings:
     seam_spacing: int = 24
     seam_radius: int = 10
     seam_search: int = 6
+    field_section: int = -1
     reslice_px: int = 1536

@@ -152,7 +152,7 @@ def solve_gain_offset(pairs: np.ndarray, mean_a: np.ndarray, std_a: np.ndarray,
     g_of, o_of = (lambda i: i), (lambda i: n + i)
     rows = [r, r, k + r, k + r, k + r, k + r]
     cidx = [g_of(a), g_of(b), g_of(a), g_of(b), o_of(a), o_of(b)]
-    vals = [sa / scale, -sb / scale, ma / scale, -mb / scale, np.ones(k), -np.ones(k)]
+    vals = [sa / scale, -sb / scale, ma / scale, -mb / scale, np.full(k, 1 / scale), np.full(k, -1 / scale)]
     # Gauge rows (strong) and the weak pull of every tile toward (1, 0).
     gauge_w = 10.0 * math.sqrt(max(k, 1))
     rows += [np.full(n, 2 * k), np.full(n, 2 * k + 1), 2 * k + 2 + np.arange(2 * n)]

@@ -63,6 +63,21 @@ def taper_window(height: int, width: int, taper: int) -> np.ndarray:
     return w
 
 
+def _pad_fast(img: np.ndarray) -> np.ndarray:
+    """Return ``img`` zero-padded at the bottom and right to fast FFT lengths.
+
+    Only used after windowing, when the image already falls to zero at its
+    edges, so the padding adds no edge and leaves the shift unchanged.
+    """
+    m, n = img.shape
+    fm, fn = scipy.fft.next_fast_len(m), scipy.fft.next_fast_len(n, real=True)
+    if (fm, fn) == (m, n):
+        return img
+    out = np.zeros((fm, fn), np.float32)
+    out[:m, :n] = img
+    return out
+
+
 @lru_cache(maxsize=64)
 def _gaussian_weight(m: int, n: int, sigma: float) -> np.ndarray:
     """Return ``exp(-|f|^2 / (2 sigma^2))`` on the ``rfft2`` frequency grid (cycles per pixel), float32."""
@@ -173,7 +188,8 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
     window : bool
         Subtract each image's mean and multiply by a Hann window before the
         transform, which suppresses the edge discontinuity of the periodic
-        extension.
+        extension; the windowed images are then zero-padded to fast FFT
+        lengths (``scipy.fft.next_fast_len``).
     whiten : float
         Exponent of the spectral normalisation: the cross-power spectrum is
         divided by its magnitude to this power. ``1`` is classical phase
@@ -230,8 +246,8 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
         raise ValueError(f"max_shift must be >= 0, got {max_shift}")
     if window:
         w = hann_window(*a.shape)
-        a = (a - a.mean()) * w
-        b = (b - b.mean()) * w
+        a = _pad_fast((a - a.mean()) * w)
+        b = _pad_fast((b - b.mean()) * w)
     fa = scipy.fft.rfft2(a)
     fb = scipy.fft.rfft2(b)
     spec = fb * np.conj(fa)

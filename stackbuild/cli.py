@@ -63,7 +63,7 @@ def _parser() -> argparse.ArgumentParser:
     b.add_argument("--out", required=True, metavar="DIR", help="build folder to create")
     b.add_argument("--channels", metavar="CHANNELS_CSV",
                    help="channel manifest of molecular marker images (columns section,channel,path,pixel_size[,x,y]); "
-                        "recorded with the build")
+                        "registered to the EM by mutual information and written to volume.zarr/channels/<name>")
     b.add_argument("--pixel-size", type=float, metavar="NM",
                    help="nanometres per full-resolution pixel (default from --config, else 4)")
     b.add_argument("--section-thickness", type=float, metavar="NM",

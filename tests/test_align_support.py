@@ -41,15 +41,15 @@ def _smooth_field(rng, shape, amplitude, wavelength):
     return (out * (amplitude / mag)).astype(np.float32) if amplitude > 0 else out.astype(np.float32)
 
 
-def _deaffine(field_xy, step=8):
-    """Remove the least-squares affine part of a field (so no affine model can absorb it)."""
+def _deaffine(field_xy, lo, hi, step=8):
+    """Remove the least-squares affine part over ``[lo, hi)^2`` of a field (so no affine model can absorb it)."""
     h, w = field_xy.shape[:2]
-    ys, xs = np.mgrid[0:h:step, 0:w:step]
+    ys, xs = np.mgrid[lo:hi:step, lo:hi:step]
     design = np.column_stack([xs.ravel(), ys.ravel(), np.ones(xs.size)])
     full = np.stack(np.mgrid[0:h, 0:w][::-1], -1).reshape(-1, 2)
     out = field_xy.copy()
     for c in range(2):
-        coef, *_ = np.linalg.lstsq(design, field_xy[::step, ::step, c].ravel(), rcond=None)
+        coef, *_ = np.linalg.lstsq(design, field_xy[lo:hi:step, lo:hi:step, c].ravel(), rcond=None)
         out[..., c] -= (np.column_stack([full, np.ones(len(full))]) @ coef).reshape(h, w)
     return out
 
@@ -87,8 +87,10 @@ def make_stack(n=20, size=768, seed=0, rotation=3.0, offset=100.0, scale=0.02, w
     base = _texture(rng, (big, big))
     s_field = np.zeros((big, big, 2), np.float32)
     if slant:
-        s_field = _deaffine(_smooth_field(rng, (big, big), 1.0, big * 0.7))
-        s_field *= slant / np.hypot(s_field[..., 0], s_field[..., 1]).max()
+        s_field = _deaffine(_smooth_field(rng, (big, big), 1.0, 0.6 * size), pad, pad + size)
+        s_field = s_field.astype(np.float32)
+        inner = s_field[pad:pad + size, pad:pad + size]
+        s_field *= slant / np.hypot(inner[..., 0], inner[..., 1]).max()
     st = Stack({}, margin=pad)
     c = (size - 1) / 2.0
     for z in range(n):
@@ -104,6 +106,7 @@ def make_stack(n=20, size=768, seed=0, rotation=3.0, offset=100.0, scale=0.02, w
         qx, qy = xs + wf[..., 0], ys + wf[..., 1]
         tx = lin[0, 0] * qx + lin[0, 1] * qy + t[0]
         ty = lin[1, 0] * qx + lin[1, 1] * qy + t[1]
+        tx, ty = tx.astype(np.float32), ty.astype(np.float32)
         if slant:
             sxf = cv2.remap(s_field[..., 0], tx, ty, cv2.INTER_LINEAR)
             syf = cv2.remap(s_field[..., 1], tx, ty, cv2.INTER_LINEAR)
@@ -145,3 +148,27 @@ def rms(r):
 def p95(r):
     """95th percentile of residual magnitudes."""
     return float(np.percentile(np.hypot(np.asarray(r)[..., 0], np.asarray(r)[..., 1]), 95))
+
+
+def split_linear(r: dict):
+    """Return ``(linear, rest)``: the per-point straight-line-in-z part of residuals and what is left.
+
+    A field that changes linearly with z is invisible to second differences
+    (it is what a steady slant looks like), so ``rest`` is what the elastic
+    stage is answerable for. Sections are placed by their numbers.
+    """
+    zs = np.array(sorted(r), float)
+    big = np.stack([r[int(z)] for z in zs])
+    zc = (zs - zs.mean())[:, None, None]
+    lin = big.mean(0) + zc * (zc * big).sum(0) / (zc ** 2).sum()
+    return lin, big - lin
+
+
+def small_settings(**kw):
+    """Settings sized for the small test sections (not a test)."""
+    from stackbuild.align.settings import AlignSettings
+    base = dict(work_scale=2, elastic_scale=2, grid_spacing=64, block_radius=16, search_radius=10,
+                max_features=2500)
+    base.update(kw)
+    return AlignSettings(**base)
+

@@ -36,7 +36,9 @@ class AlignSettings:
     elastic_scale : int
         Elastic block matching works on mosaics downsampled by this factor.
     stiffness : float
-        Weight of the in-plane smoothness of each displacement field.
+        Weight of the in-plane smoothness (membrane) of each displacement field,
+        relative to the block-match data; its effect grows with ``grid_spacing``
+        squared, since the term penalises differences between neighbouring nodes.
     min_block_ncc : float
         Block matches with a lower correlation peak are discarded.
     max_features : int
@@ -67,7 +69,7 @@ class AlignSettings:
     block_radius: int = 24
     search_radius: int = 12
     elastic_scale: int = 2
-    stiffness: float = 1.0
+    stiffness: float = 0.002
     min_block_ncc: float = 0.4
     max_features: int = 4000
     max_vector_deviation: float = 6.0

@@ -113,11 +113,13 @@ class ArraySource:
             img = _box(img, int(scale))
         xs, ys = _centres(x0, y0, width, height, scale)
         gx, gy = np.meshgrid(xs, ys)
-        pts = np.column_stack([gx.ravel(), gy.ravel()])
         if alignment is not None:
-            pts = alignment.aligned_to_section(pts)
-        mx = pts[:, 0].reshape(gx.shape).astype(np.float32)
-        my = pts[:, 1].reshape(gx.shape).astype(np.float32)
+            if alignment.displacement is not None:
+                d = alignment.displacement.displacement_grid(xs, ys)
+                gx, gy = gx + d[..., 0], gy + d[..., 1]
+            (a, b, tx), (c, e, ty) = alignment.affine.matrix
+            gx, gy = a * gx + b * gy + tx, c * gx + e * gy + ty
+        mx, my = gx.astype(np.float32), gy.astype(np.float32)
         out = cv2.remap(img, mx, my, cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT,
                         borderValue=float("nan"))
         h, w = img.shape

@@ -1,0 +1,169 @@
+"""Align kernels checked against reference libraries and closed-form cases."""
+from __future__ import annotations
+
+import cv2
+import numpy as np
+import pytest
+from scipy import ndimage
+from skimage import data, transform
+
+from stackbuild.align.blockmatch import block_match, filter_vectors
+from stackbuild.align.coarse import PairResult, estimate_model, fit_model, match_pair
+from stackbuild.align.elastic import solve_fields
+from stackbuild.align.features import detect_features, match_features
+from stackbuild.align.solve import solve_affines
+from stackbuild.transforms.types import Affine2D
+
+
+def _exact_points(seed=1, n=40):
+    rng = np.random.default_rng(seed)
+    src = rng.uniform(0, 100, (n, 2))
+    m = np.array([[1.01, -0.05, 12.5], [0.04, 0.99, -7.25]])
+    return src, src @ m[:, :2].T + m[:, 2], m
+
+
+def test_affine_fit_agrees_with_opencv_and_skimage():
+    src, dst, m = _exact_points()
+    ours = fit_model(src, dst, "affine").matrix
+    # reference 1: OpenCV's least-squares affine (no RANSAC) on exact correspondences
+    ref_cv, _ = cv2.estimateAffine2D(src, dst, method=cv2.LMEDS)
+    # reference 2: scikit-image AffineTransform estimation (total least squares)
+    ref_sk = transform.AffineTransform.from_estimate(src, dst).params[:2] \
+        if hasattr(transform.AffineTransform, "from_estimate") else _sk_estimate(transform.AffineTransform, src, dst)
+    np.testing.assert_allclose(ours, ref_cv, atol=1e-6)
+    np.testing.assert_allclose(ours, ref_sk, atol=1e-6)
+    np.testing.assert_allclose(ours, m, atol=1e-9)
+    # RANSAC path: same answer with 25 % gross outliers mixed in
+    bad = dst.copy()
+    bad[::4] += 200.0
+    model, inl = estimate_model(src, bad, "affine", threshold=1.0)
+    np.testing.assert_allclose(model.matrix, m, atol=1e-6)
+    assert inl.sum() == 30
+
+
+def _sk_estimate(cls, src, dst):
+    t = cls()
+    assert t.estimate(src, dst)
+    return t.params[:2]
+
+
+@pytest.mark.parametrize("model,cls", [("similarity", transform.SimilarityTransform),
+                                       ("rigid", transform.EuclideanTransform)])
+def test_similarity_and_rigid_fits_agree_with_skimage(model, cls):
+    rng = np.random.default_rng(3)
+    src = rng.uniform(0, 500, (30, 2))
+    true = cls(rotation=0.04, translation=(5.0, -3.0), **({"scale": 1.02} if model == "similarity" else {}))
+    dst = true(src) + rng.normal(0, 0.3, src.shape)     # noisy: the least-squares optimum is unique
+    ours = fit_model(src, dst, model).matrix
+    # reference: scikit-image's Umeyama estimate of the same model
+    ref = cls.from_estimate(src, dst).params[:2] if hasattr(cls, "from_estimate") else _sk_estimate(cls, src, dst)
+    np.testing.assert_allclose(ours, ref, atol=1e-6)
+
+
+def test_features_recover_a_known_rotation_of_camera():
+    img = data.camera().astype(np.float32)            # scikit-image bundled image
+    true = Affine2D.similarity(1.0, np.deg2rad(2.5), 6.0, -4.0, center=(255.5, 255.5))
+    moved = cv2.warpAffine(img, true.inverse().matrix, (512, 512), flags=cv2.INTER_LINEAR)
+    fa, fb = detect_features(img), detect_features(moved)
+    assert len(fa) > 100 and len(fb) > 100
+    res = match_pair(fa, fb, 0, 1, model="similarity", ratio=0.8, threshold=2.0, min_inliers=12)
+    assert res.usable and res.stats["inliers"] > 50
+    # moved(x) = img(true(x)); res.model maps section-1 pixels to section-0 pixels, i.e. ``true``
+    pts = np.array([[100.0, 100.0], [400.0, 120.0], [256.0, 400.0]])
+    err = np.abs(res.model.apply(pts) - true.apply(pts))
+    assert err.max() < 0.5    # 0.5 px at 512 px: common practice for SIFT + RANSAC, no source
+
+
+def test_blank_image_has_no_features_and_pair_says_why():
+    blank = np.full((256, 256), 7.0, np.float32)
+    fs = detect_features(blank)
+    assert len(fs) == 0
+    other = detect_features(data.camera().astype(np.float32))
+    res = match_pair(fs, other, 3, 4, model="affine", ratio=0.8, threshold=3.0, min_inliers=12)
+    assert not res.usable and res.reason == "few_features"
+    assert match_features(fs, other)[0].size == 0
+
+
+def test_block_match_finds_a_subpixel_shift_made_by_scipy():
+    img = ndimage.gaussian_filter(data.camera().astype(np.float32), 1.0)
+    # reference shift: scipy.ndimage.shift (cubic spline); content at p moves to p + (2.3, -1.6)
+    moved = ndimage.shift(img, (-1.6, 2.3), order=3, mode="nearest")
+    nodes = np.array([[x, y] for y in range(128, 400, 64) for x in range(128, 400, 64)], float)
+    shifts, peaks = block_match(img, moved, nodes, block_radius=20, search_radius=6)
+    good = np.isfinite(peaks)
+    assert good.sum() >= 0.8 * len(nodes)
+    np.testing.assert_allclose(np.median(shifts[good], axis=0), [2.3, -1.6], atol=0.1)
+
+
+def test_filter_vectors_drops_low_peaks_and_inconsistent_vectors():
+    shifts = np.zeros((5, 5, 2))
+    shifts[2, 2] = [9.0, 0.0]                         # disagrees with all its neighbours
+    peaks = np.full((5, 5), 0.9)
+    peaks[0, 0] = 0.1
+    ok = filter_vectors(shifts, peaks, min_ncc=0.4, max_deviation=3.0)
+    assert not ok[2, 2] and not ok[0, 0] and ok.sum() == 23
+
+
+def _chain_pairs(truth: dict[int, Affine2D], links, rng, noise=0.0):
+    pairs = []
+    for a, b in links:
+        pb = rng.uniform(0, 2000, (60, 2))
+        common = truth[b].inverse().apply(pb)          # coarse point seen at pb in section b
+        pa = truth[a].apply(common) + rng.normal(0, noise, pb.shape)
+        pairs.append(PairResult(a, b, pa, pb, None, {}))
+    return pairs
+
+
+def test_global_solve_is_exact_and_template_free():
+    rng = np.random.default_rng(7)
+    zs = list(range(8))
+    raw = {z: Affine2D.similarity(1 + rng.uniform(-.02, .02), rng.uniform(-.05, .05),
+                                  *rng.uniform(-100, 100, 2)) for z in zs}
+    links = [(z, z + k) for z in zs for k in (1, 2) if z + k in zs]
+    res = solve_affines(zs, _chain_pairs(raw, links, rng), "affine")
+    # any solution differs from the truth by one common map G: A_z = raw_z o G
+    g = res.affines[0].then(raw[0].inverse())
+    for z in zs:
+        np.testing.assert_allclose(res.affines[z].matrix, g.then(raw[z]).matrix, atol=1e-6)
+    # gauge: the mean of the section -> coarse maps is the identity (no reference section)
+    mean_b = np.mean([res.affines[z].inverse().matrix for z in zs], axis=0)
+    np.testing.assert_allclose(mean_b, np.eye(2, 3), atol=1e-9)
+
+
+def test_global_solve_drops_an_outlier_pair_and_interpolates_a_lonely_section():
+    rng = np.random.default_rng(8)
+    zs = list(range(7))
+    raw = {z: Affine2D.translation(*rng.uniform(-50, 50, 2)) for z in zs}
+    links = [(z, z + k) for z in zs for k in (1, 2) if z + k in zs and 3 not in (z, z + k)]
+    pairs = _chain_pairs(raw, links, rng, noise=0.2)
+    pairs[0].pts_a = pairs[0].pts_a + 60.0                  # one pair wildly wrong
+    res = solve_affines(zs, pairs, "affine")
+    assert (0, 1) in res.dropped
+    assert res.flags[3] == ["interpolated"]
+    for z in (2, 4):
+        assert res.flags[z] == []
+    t2, t4 = (res.affines[z].inverse().matrix for z in (2, 4))
+    np.testing.assert_allclose(res.affines[3].inverse().matrix, (t2 + t4) / 2, atol=1e-9)
+    single = solve_affines([5], [], "affine")
+    assert single.flags[5] == ["single_section"] and np.allclose(single.affines[5].matrix, np.eye(2, 3))
+
+
+def test_elastic_keeps_linear_change_and_removes_random_distortion():
+    rng = np.random.default_rng(2)
+    zs, shape = list(range(10)), (6, 6)
+    slant = rng.normal(0, 1, (*shape, 2))                  # steady change: u grows linearly with z
+    noise = {z: rng.normal(0, 2, (*shape, 2)) for z in zs}  # random per-section distortion
+    seen = {z: z * slant + noise[z] for z in zs}           # where each section's content lies
+    matches = {(a, b): (seen[b] - seen[a], np.ones(shape)) for a in zs for b in (a + 1, a + 2) if b in zs}
+    u = solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6)
+    # u must reproduce the random part up to a linear-in-z field (the slant, kept in place)
+    z = np.array(zs, float)[:, None, None, None]
+    res = np.stack([u[k] - noise[k] for k in zs])
+    zc = z - z.mean()
+    lin = res.mean(0) + zc * (zc * res).sum(0) / (zc ** 2).sum()
+    assert np.abs(res - lin).max() < 1e-3
+    # and the slant itself is not removed: the fitted slope of u carries none of it
+    slope_u = (zc * np.stack([u[k] for k in zs])).sum(0) / (zc ** 2).sum()
+    slope_noise = (zc * np.stack([noise[k] for k in zs])).sum(0) / (zc ** 2).sum()
+    assert np.abs(slope_u).max() < 1e-3 < np.abs(slant).max()
+    assert np.abs(slope_noise).max() > 0.05               # the part no 2nd difference can see

@@ -148,11 +148,29 @@ def _records_token(plan: RenderPlan, planes: list[int]) -> tuple:
                   _mtime(store.section_dir(plan.first_section + z) / "align.json")) for z in planes)
 
 
+def _reduce_quad(kids: list[list[np.ndarray]], reducer: str) -> np.ndarray:
+    return reduce2x2(np.block(kids), reducer)
+
+
 def reduce_level(arr: da.Array, reducer: str, block: int) -> da.Array:
-    """Return ``arr`` reduced 2x2 in y and x, in ``1 x block x block`` blocks."""
-    src = arr.rechunk((1, 2 * block, 2 * block))
-    out_chunks = (src.chunks[0],) + tuple(tuple((c + 1) // 2 for c in ax) for ax in src.chunks[1:])
-    return src.map_blocks(reduce2x2, reducer, chunks=out_chunks, dtype=arr.dtype)
+    """Return ``arr`` reduced 2x2 in y and x, in ``1 x block x block`` blocks.
+
+    Each output block is one task on the (up to) 2 x 2 input blocks it summarises, so the
+    graph is a quadtree and the scheduler can finish each quad before rendering far ahead.
+    """
+    if any(set(c[:-1]) - {block} for c in arr.chunks[1:]) or set(arr.chunks[0]) != {1}:
+        arr = arr.rechunk((1, block, block))
+    name = "stackbuild-reduce-" + tokenize(arr.name, reducer, block)
+    nz, ny, nx = arr.numblocks
+    dsk = {}
+    for k in range(nz):
+        for i in range(0, ny, 2):
+            for j in range(0, nx, 2):
+                kids = [[(arr.name, k, a, b) for b in range(j, min(j + 2, nx))] for a in range(i, min(i + 2, ny))]
+                dsk[(name, k, i // 2, j // 2)] = (_reduce_quad, kids, reducer)
+    pairs = [tuple((sum(c[i:i + 2]) + 1) // 2 for i in range(0, len(c), 2)) for c in arr.chunks[1:]]
+    graph = HighLevelGraph.from_collections(name, dsk, dependencies=[arr])
+    return da.Array(graph, name, (arr.chunks[0], *pairs), dtype=arr.dtype)
 
 
 def pyramid(base: da.Array, n_levels: int, reducer: str, block: int) -> list[da.Array]:

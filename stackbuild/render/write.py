@@ -1,8 +1,8 @@
 """The render stage: write the registered volume as a multiscale OME-Zarr 0.5 pyramid (zarr v3).
 
 All levels are written in the same pass: level ``n+1`` is computed from level
-``n`` in the same dask graph, and every level's dask blocks are that level's
-shards, so no two tasks ever write the same shard. Planes are written in
+``n`` in the same dask graph (see :func:`written_pyramid`), and every level's
+dask blocks are that level's shards, so no two tasks ever write the same shard. Planes are written in
 small batches; after each batch the list of finished planes is saved to
 ``volume.zarr/em/.stackbuild_done.json``, so a killed render resumes with the
 planes not yet done, and ``planes=[...]`` re-renders only those planes.
@@ -16,7 +16,9 @@ import time
 from dataclasses import asdict
 from pathlib import Path
 
+import dask
 import dask.array as da
+import numpy as np
 import zarr
 from zarr.codecs import BloscCodec
 
@@ -25,7 +27,7 @@ from ..run.folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from .canvas import compute_canvas
 from .contrast import DOC_KIND, contrast_record, measure_range
-from .lazy import RenderPlan, level0, pyramid, section_records
+from .lazy import RenderPlan, level0, reduce_level, section_records
 from .ngff import multiscales_attrs, root_attrs
 from .reduce import REDUCERS, level_shapes
 from .sampler import interpolation_order
@@ -206,6 +208,30 @@ def _write_checkpoint(em: Path, stamp: dict, done: set[int]) -> None:
     atomic_write_text(em / CHECKPOINT, json.dumps({"stamp": stamp, "done": sorted(done)}) + "\n")
 
 
+def _write_through(block: np.ndarray, target, z: int, block_info=None) -> np.ndarray:
+    """Write one block to its place in ``target`` (plane ``z`` on), and pass it on to the next level."""
+    (k0, k1), (y0, y1), (x0, x1) = block_info[0]["array-location"]
+    target[z + k0:z + k1, y0:y1, x0:x1] = block
+    return block
+
+
+def written_pyramid(base: da.Array, targets: list, z: int, reducer: str, block: int) -> da.Array:
+    """Return the top level of ``base``'s pyramid, each level's blocks written to ``targets`` on the way.
+
+    Every level-``n`` block is written by the task that makes it and then feeds the
+    level ``n+1`` reduction, so the graph is a tree: the scheduler finishes each quad of
+    blocks before rendering far ahead, and memory stays bounded by a few blocks per level
+    instead of growing with the width of a plane. ``block`` is the shard edge, so no two
+    tasks write the same shard.
+    """
+    level = base.rechunk((1, block, block))
+    for n, target in enumerate(targets):
+        if n:
+            level = reduce_level(level, reducer, block)
+        level = level.map_blocks(_write_through, target, z, dtype=level.dtype)
+    return level
+
+
 def _write_planes(plan, arrays, shapes, todo, settings, done, em, stamp, progress) -> None:
     block = settings.chunk * settings.shard
     per_plane = math.ceil(shapes[0][0] / block) * math.ceil(shapes[0][1] / block)
@@ -215,13 +241,8 @@ def _write_planes(plan, arrays, shapes, todo, settings, done, em, stamp, progres
         progress(0, total)
     for b0 in range(0, total, batch):
         group = todo[b0:b0 + batch]
-        sources, targets, regions = [], [], []
-        for z in group:
-            for arr, level in zip(arrays, pyramid(level0(plan, [z]), len(shapes), settings.reducer, block)):
-                sources.append(level)
-                targets.append(arr)
-                regions.append((slice(z, z + 1), slice(None), slice(None)))
-        da.store(sources, targets, regions=regions, lock=False)
+        tops = [written_pyramid(level0(plan, [z]), arrays, z, settings.reducer, block) for z in group]
+        dask.compute(*tops)
         done.update(group)
         _write_checkpoint(em, stamp, done)
         if progress is not None:

@@ -70,6 +70,10 @@ def test_the_planted_tile_is_named_worst(planted):
     assert worst["seam_median"] == pytest.approx(np.hypot(*PLANT_SHIFT), abs=0.15)
     others = [t["seam_median"] for t in doc["tiles"] if t is not worst and t["seam_median"] is not None]
     assert max(others) < 0.5 * worst["seam_median"]
+    # every other pair was placed exactly (ground truth): only noise is left
+    clean = [p["residual"] for p in doc["pairs"] if PLANT_TILE not in (p["a"], p["b"])
+             or p["section"] != PLANT_TILE_SECTION]
+    assert len(clean) == 60 - 4 and max(clean) < 0.1
     assert doc["worst"]["section_stitch"]["section"] == PLANT_TILE_SECTION
     assert PLANT_TILE in (doc["worst"]["pair"]["a"], doc["worst"]["pair"]["b"])
 

@@ -2,7 +2,8 @@
 
 Ground truth (invented for these tests): every section shows the same scene,
 scikit-image's bundled ``gravel`` image (512 x 512) plus independent noise,
-cut into a 3 x 3 grid of 200 px tiles at a 156 px step. Two errors are planted
+cut into a 3 x 3 grid of 200 px tiles at a 156 px step, each tile with its
+own noise (sigma 4 grey levels). Two errors are planted
 in the stored records:
 
 * section ``PLANT_TILE_SECTION``: tile ``PLANT_TILE`` is recorded 3 px to the
@@ -58,7 +59,9 @@ def _stitch(section: int, tile_dir, odd_name: bool = False) -> SectionStitch:
     for name, (x, y) in true_positions().items():
         name = rename(name)
         path = tile_dir / f"s{section}_{name}.tif"
-        tifffile.imwrite(path, img[y:y + TILE, x:x + TILE])
+        # each exposure carries its own noise, so two tiles never agree exactly in their overlap
+        noise = np.random.default_rng(1000 * section + len(places)).normal(0, 4, (TILE, TILE))
+        tifffile.imwrite(path, np.clip(img[y:y + TILE, x:x + TILE] + noise, 1, 255).astype(np.uint8))
         rx, ry = float(x), float(y)
         if section == PLANT_TILE_SECTION and name == PLANT_TILE:
             rx, ry = rx + PLANT_SHIFT[0], ry + PLANT_SHIFT[1]

@@ -111,7 +111,8 @@ def measure_seams(stitch: SectionStitch, settings: ReportSettings) -> list[SeamB
             continue
         ta, tb = stitch.tile(a), stitch.tile(b)
         m = seam_residual(ia, (ta.x, ta.y), ib, (tb.x, tb.y), radius=r, search=s,
-                          spacing=settings.seam_spacing, min_ncc=settings.min_block_ncc)
+                          spacing=settings.seam_spacing, min_ncc=settings.min_block_ncc,
+                          smooth=settings.seam_smooth)
         out.append(SeamBlocks(a, b, m))
     return out
 

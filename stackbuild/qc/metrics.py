@@ -18,15 +18,19 @@ volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
                     the section residuals were measured on, or ``None``).
 ``tiles``           one per tile: ``section``, ``tile``, ``path``, ``x``, ``y``
                     (solved section-pixel position), ``flags``, ``stitch_residual``
-                    (the stitcher's own number), ``seam_median`` (median over the
-                    tile's seams of their median re-measured residual), ``seam_max``,
-                    ``seams``, ``at`` (tile centre).
+                    (the stitcher's own number), ``seam_median`` / ``seam_max``
+                    (median / largest ``residual`` of the tile's seams), ``seams``,
+                    ``at`` (tile centre).
 ``pairs``           one per tile pair: ``section``, ``a``, ``b``, ``dx``, ``dy``,
                     ``stage_dx``, ``stage_dy``, ``ncc``, ``peak_ratio``, ``accepted``,
-                    ``reason``, ``stitch_residual``, ``measured`` (summary), ``error``.
+                    ``reason``, ``stitch_residual`` (the stitcher's), ``misfit``
+                    (``[dx, dy]``: re-measured misplacement of ``b`` relative to ``a``,
+                    the component-wise median over the overlap's blocks), ``residual``
+                    (its length), ``at`` (overlap centre), ``blocks`` (summary of the
+                    single blocks, whose spread is mostly image noise), ``error``.
 ``sections``        one per section: ``section``, ``z``, ``lost``, ``flags``,
                     ``tiles``, ``pairs_accepted``, ``pairs_rejected``, ``stitch``
-                    (summary over all seam blocks), ``stitcher_stats``,
+                    (summary over the section's pair ``residual`` values), ``stitcher_stats``,
                     ``align_prev`` / ``align_next`` (summaries against the nearest
                     present plane before / after), ``align_score`` (median of the
                     available ``p95`` of the two; a section is blamed only as far
@@ -118,32 +122,45 @@ def _concat(items: list[BlockMatches]) -> BlockMatches:
     return BlockMatches(*(np.concatenate([getattr(b, k) for b in items]) for k in ("points", "shifts", "ncc")))
 
 
+def _pair_misfit(blocks: BlockMatches) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """Return the pair's rigid misfit (component-wise median of its block shifts) and the overlap centre."""
+    if not len(blocks.ncc):
+        return None, None
+    return np.median(blocks.shifts, axis=0), blocks.points.mean(axis=0)
+
+
 def _stitch_rows(section, stitch, seams, align, sc: _Scale):
-    """Return tile rows, pair rows and the section's seam summary."""
+    """Return tile rows, pair rows and the section's seam summary (over the pairs' misfits)."""
     to_out = lambda p: section_to_output(p, align, sc.canvas)[0]  # noqa: E731
     where = lambda p: sc.at(section, to_out(p))  # noqa: E731
-    by_pair = {(s.a, s.b): s for s in seams}
-    pairs = []
     recorded = {(p.a, p.b): p for p in stitch.pairs}
-    for key, sb in by_pair.items():
-        p = recorded.get(key)
-        row = {"section": section, "a": key[0], "b": key[1]}
+    pairs, misfits, places = [], [], []
+    for sb in seams:
+        p = recorded.get((sb.a, sb.b))
+        row = {"section": section, "a": sb.a, "b": sb.b}
         for k in ("dx", "dy", "stage_dx", "stage_dy", "ncc", "peak_ratio", "accepted", "reason"):
             row[k] = getattr(p, k) if p else None
         row["stitch_residual"] = p.residual if p else None
-        row["measured"] = _summary(sb.blocks, where)
+        vec, centre = _pair_misfit(sb.blocks)
+        row["misfit"] = None if vec is None else [float(vec[0]), float(vec[1])]
+        row["residual"] = None if vec is None else float(np.hypot(*vec))
+        row["at"] = None if centre is None else where(centre)
+        row["blocks"] = _summary(sb.blocks, where)
         row["error"] = sb.error
         pairs.append(row)
+        if vec is not None:
+            misfits.append(row["residual"])
+            places.append(centre)
     tiles = []
     for t in stitch.tiles:
-        mine = [r["measured"] for r in pairs if t.tile in (r["a"], r["b"]) and r["measured"]["n"]]
+        mine = [r["residual"] for r in pairs if t.tile in (r["a"], r["b"]) and r["residual"] is not None]
         centre = (t.x + (t.width - 1) / 2, t.y + (t.height - 1) / 2)
         tiles.append({"section": section, "tile": t.tile, "path": t.path, "x": t.x, "y": t.y,
                       "flags": list(t.flags), "stitch_residual": t.residual,
-                      "seam_median": float(np.median([m["median"] for m in mine])) if mine else None,
-                      "seam_max": max((m["max"] for m in mine), default=None), "seams": len(mine),
-                      "at": where(centre)})
-    summary = _summary(_concat([s.blocks for s in seams]), where)
+                      "seam_median": float(np.median(mine)) if mine else None,
+                      "seam_max": max(mine, default=None), "seams": len(mine), "at": where(centre)})
+    summary = summarize(misfits)
+    summary["at"] = where(places[int(np.argmax(misfits))]) if misfits else None
     return tiles, pairs, summary
 
 
@@ -318,7 +335,7 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
         "tiles": tiles, "pairs": pairs, "sections": sections, "channels": channels,
         "totals": _totals(tiles, pairs, sections, channels, meas),
         "worst": {"tile": _worst(tiles, lambda r: r["seam_median"]),
-                  "pair": _worst(pairs, lambda r: r["measured"]["median"]),
+                  "pair": _worst(pairs, lambda r: r["residual"]),
                   "section_stitch": _worst(sections, lambda r: r["stitch"]["rms"]),
                   "section_align": _worst(sections, lambda r: r["align_score"]),
                   "channel": _worst(channels, lambda r: None if r["measure_after"] is None

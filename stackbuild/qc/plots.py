@@ -220,7 +220,7 @@ def overlay(a: np.ndarray, b: np.ndarray, za: int, zb: int, at: tuple[float, flo
 
 
 def histograms(pair_rows: list[dict], seam_mags: np.ndarray, plane_mags: np.ndarray):
-    """Return histograms of pair confidence (NCC), seam residuals and section residuals."""
+    """Return histograms of pair confidence (NCC), per-pair seam residuals and section residuals per block."""
     fig, axes = plt.subplots(1, 3, figsize=(12, 3.6))
     acc = [r["ncc"] for r in pair_rows if r["ncc"] is not None and r["accepted"]]
     rej = [r["ncc"] for r in pair_rows if r["ncc"] is not None and not r["accepted"]]
@@ -228,7 +228,7 @@ def histograms(pair_rows: list[dict], seam_mags: np.ndarray, plane_mags: np.ndar
     axes[0].hist([acc, rej], bins=bins, stacked=True, color=[GOOD, BAD], label=["accepted", "rejected"])
     axes[0].set_xlabel("pair NCC (stitcher)")
     axes[0].legend(fontsize=8)
-    for ax, mags, name in ((axes[1], seam_mags, "seam residual (px)"),
+    for ax, mags, name in ((axes[1], seam_mags, "seam residual per tile pair (px)"),
                            (axes[2], plane_mags, "section-to-section residual (px)")):
         if len(mags):
             ax.hist(mags, bins=30, color=WARN, edgecolor=INK, linewidth=0.3)

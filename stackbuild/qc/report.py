@@ -89,7 +89,7 @@ def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> 
         fig = plots.displacement_field(pick["section"], al.displacement if al else None, org)
         out.append((f"Elastic displacement of section {pick['section']}", plots.save(fig, qc / "displacement.png")))
     out += _volume_figures(folder, doc, meas, settings)
-    seam = np.concatenate([s.blocks.magnitudes for v in meas.seams.values() for s in v] or [np.zeros(0)])
+    seam = np.array([r["residual"] for r in doc["pairs"] if r["residual"] is not None])
     plane = np.concatenate([p.blocks.magnitudes for p in meas.plane_pairs] or [np.zeros(0)])
     out.append(("Distributions of pair confidence and residuals",
                 plots.save(plots.histograms(doc["pairs"], seam, plane), qc / "histograms.png")))
@@ -180,10 +180,10 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
     st = sorted((r for r in doc["sections"] if r["stitch"]["rms"] is not None), key=lambda r: -r["stitch"]["rms"])[:n]
     s_rows = [[r["section"], r["stitch"]["rms"], r["stitch"]["p95"], r["stitch"]["max"], r["pairs_rejected"],
                *_loc(r["stitch"]["at"])] for r in st]
-    pr = sorted((r for r in doc["pairs"] if r["measured"]["median"] is not None),
-                key=lambda r: -r["measured"]["median"])[:n]
-    p_rows = [[r["section"], r["a"], r["b"], r["measured"]["median"], r["measured"]["max"], r["ncc"],
-               r["accepted"], r["reason"], *_loc(r["measured"]["at"])] for r in pr]
+    pr = sorted((r for r in doc["pairs"] if r["residual"] is not None), key=lambda r: -r["residual"])[:n]
+    vec = lambda v: f"{v[0]:.2f}, {v[1]:.2f}"  # noqa: E731
+    p_rows = [[r["section"], r["a"], r["b"], r["residual"], vec(r["misfit"]), r["blocks"]["n"], r["ncc"],
+               r["accepted"], r["reason"], *_loc(r["at"])] for r in pr]
     tl = sorted((r for r in doc["tiles"] if r["seam_median"] is not None), key=lambda r: -r["seam_median"])[:n]
     t_rows = [[r["section"], r["tile"], r["seam_median"], r["seam_max"], r["stitch_residual"], "; ".join(r["flags"]),
                *_loc(r["at"]), r["path"]] for r in tl]
@@ -202,8 +202,10 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
         "<h2>Worst sections: stitching</h2>",
         _table(["section", "seam RMS (px)", "p95", "max", "rejected pairs", *_LOC], s_rows),
         "<h2>Worst seams</h2>",
-        _table(["section", "tile a", "tile b", "median (px)", "max (px)", "NCC", "accepted", "reason", *_LOC],
-               p_rows, text_cols=(1, 2, 7)),
+        '<p class="small">residual = length of the misplacement of tile b relative to tile a, re-measured '
+        "over their overlap (median over blocks); NCC and accepted are the stitcher's.</p>",
+        _table(["section", "tile a", "tile b", "residual (px)", "dx, dy (px)", "blocks", "NCC", "accepted",
+                "reason", *_LOC], p_rows, text_cols=(1, 2, 8)),
         "<h2>Worst tiles</h2>",
         _table(["section", "tile", "seam median (px)", "seam max", "stitcher residual", "flags", *_LOC, "path"],
                t_rows, text_cols=(1, 5, 9)),

@@ -37,6 +37,9 @@ class ReportSettings:
         Template half size inside tile overlaps, pixels.
     seam_search : int
         Largest residual shift searched inside tile overlaps, pixels.
+    seam_smooth : float
+        Gaussian sigma (pixels) applied to both sides of an overlap before matching, against
+        the independent noise of two exposures; 0 disables it.
     field_section : int
         Section whose elastic displacement field is drawn; -1 picks the one with the largest displacement.
     reslice_px : int
@@ -53,8 +56,9 @@ class ReportSettings:
     block_radius: int = 24
     block_search: int = 16
     min_block_ncc: float = 0.3
-    seam_spacing: int = 24
-    seam_radius: int = 10
+    seam_spacing: int = 16
+    seam_radius: int = 12
     seam_search: int = 6
+    seam_smooth: float = 1.0
     field_section: int = -1
     reslice_px: int = 1536

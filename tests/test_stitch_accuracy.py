@@ -158,3 +158,19 @@ def test_single_tile_section(tmp_path):
     t = res.tiles[0]
     assert (t.x, t.y) == pytest.approx((t.stage_x, t.stage_y), abs=1e-6)
     assert res.pairs == [] and res.illumination is None and t.flags == []
+
+
+def test_record_round_trips_through_the_transform_store(plain, tmp_path):
+    # The record must be plain JSON (standard library json, no numpy scalars)
+    # and survive the project's store unchanged.
+    import json
+
+    from stackbuild.transforms import TransformStore
+
+    _, res = plain
+    json.dumps(res.to_json(), allow_nan=False)
+    store = TransformStore(tmp_path / "transforms")
+    store.save_stitch(res)
+    back = store.load_stitch(0)
+    assert back.to_json() == res.to_json()
+    np.testing.assert_array_equal(back.illumination, res.illumination)

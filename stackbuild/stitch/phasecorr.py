@@ -249,14 +249,21 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
         a = _pad_fast((a - a.mean()) * w)
         b = _pad_fast((b - b.mean()) * w)
     fa = scipy.fft.rfft2(a)
-    fb = scipy.fft.rfft2(b)
-    spec = fb * np.conj(fa)
+    spec = scipy.fft.rfft2(b)
+    spec *= np.conjugate(fa, out=fa)
     m, n = a.shape
+    factor = None
     if whiten:
-        mag = np.maximum(np.abs(spec), np.float32(100 * np.finfo(np.float32).eps))
-        spec /= mag if whiten == 1 else mag ** np.float32(whiten)
+        # One power of |spec|^2 instead of a square root and a power of |spec|.
+        power = spec.real * spec.real
+        power += spec.imag * spec.imag
+        np.maximum(power, np.float32((100 * np.finfo(np.float32).eps) ** 2), out=power)
+        factor = 1.0 / np.sqrt(power) if whiten == 1 else np.power(power, np.float32(-whiten / 2))
     if lowpass is not None:
-        spec *= _gaussian_weight(m, n, float(lowpass))
+        g = _gaussian_weight(m, n, float(lowpass))
+        factor = g if factor is None else factor * g
+    if factor is not None:
+        spec *= factor
     surface = scipy.fft.irfft2(spec, s=(m, n))
     y0, x0, ratio = _peak_and_ratio(surface, max_shift)
     if upsample > 1:

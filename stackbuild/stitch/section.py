@@ -187,9 +187,8 @@ def stitch_section(tiles: list[TileEntry], settings: StitchSettings, section: in
     return _assemble(tiles, section, settings, stage, overlaps, results, stats, flags, profile, sec_flags)
 
 
-def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results: list[PairResult],
-              stats, flags, profile, sec_flags) -> SectionStitch:
-    """Solve placement and intensity from the pair results and build the record."""
+def _place(tiles, settings, stage, overlaps: list[Overlap], results: list[PairResult], flags):
+    """Return positions, kept-pair mask, pair residuals, placed-tile mask, weights and solve rounds."""
     n = len(tiles)
     pairs = np.array([(ov.a, ov.b) for ov in overlaps], dtype=np.int64).reshape(-1, 2)
     shifts = np.array([(r.dx, r.dy) for r in results], dtype=np.float64).reshape(-1, 2)
@@ -209,6 +208,15 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
         pos = _place_unplaced(pos, stage, placed, neighbours(overlaps, n))
         for i in np.flatnonzero(~placed):
             flags[i].append("unplaced")
+    return pairs, pos, kept, residual, placed, weights, sol.rounds
+
+
+def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results: list[PairResult],
+              stats, flags, profile, sec_flags) -> SectionStitch:
+    """Solve placement and intensity from the pair results and build the record."""
+    n = len(tiles)
+    pairs, pos, kept, residual, placed, weights, rounds = _place(
+        tiles, settings, stage, overlaps, results, flags)
     gain, offset = np.ones(n), np.zeros(n)
     if settings.intensity and kept.any():
         kr = [results[k] for k in np.flatnonzero(kept)]
@@ -223,9 +231,9 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
             gain=float(gain[i]), offset=float(offset[i]), flags=flags[i], stats=stats[i],
             residual=float(np.sqrt(np.mean(residual[mine] ** 2))) if mine.any() else None))
     matches = [PairMatch(
-        a=tiles[ov.a].tile, b=tiles[ov.b].tile, dx=r.dx, dy=r.dy,
+        a=tiles[ov.a].tile, b=tiles[ov.b].tile, dx=float(r.dx), dy=float(r.dy),
         stage_dx=float(stage[ov.b, 0] - stage[ov.a, 0]), stage_dy=float(stage[ov.b, 1] - stage[ov.a, 1]),
-        ncc=r.ncc, peak_ratio=r.peak_ratio, accepted=bool(kept[k]), reason=r.reason,
+        ncc=float(r.ncc), peak_ratio=float(r.peak_ratio), accepted=bool(kept[k]), reason=r.reason,
         weight=float(weights[k]), residual=None if r.reason == "blank_tile" else float(residual[k]))
         for k, (ov, r) in enumerate(zip(overlaps, results))]
     sec_flags = list(sec_flags)
@@ -239,7 +247,7 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
     return SectionStitch(
         section=section, dtype=tiles[0].dtype, tiles=placements, pairs=matches,
         illumination=profile, illumination_step=settings.illumination_step,
-        flags=sec_flags, stats=_section_stats(residual[kept], results, kept, flags, sol.rounds))
+        flags=sec_flags, stats=_section_stats(residual[kept], results, kept, flags, rounds))
 
 
 def _section_stats(res: np.ndarray, results, kept, flags, rounds) -> dict:

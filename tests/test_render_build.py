@@ -264,3 +264,15 @@ def test_contrast_brings_sections_to_the_median_range(tmp_path):
     assert abs(raw[1][1] - raw[0][1]) > 40  # the dimmed section really differs before
     for z in (1, 2):
         assert np.all(np.abs(ranges[z] - ranges[0]) < 6), (ranges, raw)
+
+
+def test_contrast_range_by_strips_matches_numpy_percentile_of_the_whole_render(tmp_path):
+    from stackbuild.render.contrast import measure_range
+    from stackbuild.render.sampler import render_region
+    folder = make_build(tmp_path, n_sections=1, grid=(3, 3), tile=(48, 48), overlap=12)
+    stitch = folder.store.load_stitch(0)
+    whole, weight = render_region(stitch, None, 0, 0, 60, 60, scale=2, return_weight=True)
+    # Reference: numpy.percentile over every covered pixel of the whole coarse render.
+    expect = np.percentile(whole[weight > 0], (1.0, 99.0))
+    got = measure_range(stitch, (1.0, 99.0), scale=2, strip=7)
+    np.testing.assert_allclose(got, expect, rtol=1e-6)

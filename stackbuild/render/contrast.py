@@ -1,7 +1,8 @@
 """Per-section contrast normalisation: match each section's robust range to the stack's median range.
 
 Each section's low and high percentiles are measured on a coarse render of
-its mosaic (section frame, ``scale`` x reduced, covered pixels only). Section
+its mosaic (section frame, ``scale`` x reduced, covered pixels only, rendered
+strip by strip). Section
 ``s`` is then mapped linearly so that its range ``[lo_s, hi_s]`` lands on
 ``[median lo, median hi]`` over all sections: ``v -> gain_s * v + offset_s``.
 The record is stored as the stack-level store document ``"contrast"``.
@@ -17,14 +18,28 @@ DOC_KIND = "contrast"
 
 
 def measure_range(stitch: SectionStitch, percentiles: tuple[float, float] = (1.0, 99.0),
-                  scale: int = 4) -> tuple[float, float]:
-    """Return the ``percentiles`` of a section's corrected intensities on a coarse render."""
+                  scale: int = 4, max_samples: int = 1 << 20, strip: int = 256) -> tuple[float, float]:
+    """Return the ``percentiles`` of a section's corrected intensities on a coarse render.
+
+    The coarse mosaic is rendered in strips of ``strip`` rows, and at most about
+    ``max_samples`` covered pixels are kept (every k-th, in a fixed order), so neither
+    the section nor its coarse render is ever held whole.
+    """
     x0, y0, x1, y1 = stitch.bbox()
     ox, oy = int(np.floor(x0 + 0.5)), int(np.floor(y0 + 0.5))
     w = int(np.ceil((x1 - 0.5 - ox + 1) / scale))
     h = int(np.ceil((y1 - 0.5 - oy + 1) / scale))
-    img, weight = render_region(stitch, None, ox, oy, w, h, scale=scale, return_weight=True)
-    vals = img[weight > 0]
+    step = max(1, -(-w * h // max_samples))
+    kept, seen = [], 0
+    for r0 in range(0, h, strip):
+        rows = min(strip, h - r0)
+        img, weight = render_region(stitch, None, ox, oy + r0 * scale, w, rows, scale=scale,
+                                    return_weight=True)
+        vals = img[weight > 0]
+        first = (-seen) % step
+        kept.append(vals[first::step])
+        seen += vals.size
+    vals = np.concatenate(kept) if kept else np.zeros(0, np.float32)
     if vals.size == 0:
         return 0.0, 1.0
     lo, hi = np.percentile(vals, percentiles)

@@ -148,3 +148,22 @@ def smooth_valid(values: np.ndarray, mask: np.ndarray, sigma: float = 1.0) -> np
     wgt = ndimage.gaussian_filter(mask.astype(float), sigma)
     out = ndimage.gaussian_filter(v, sigma) / np.where(wgt > 0, wgt, 1)
     return np.where(mask, out, np.nan)
+
+
+def block_contrast(image: np.ndarray, nodes: np.ndarray, block_radius: int) -> np.ndarray:
+    """Return the standard deviation of ``image`` in the block around each node (NaN if incomplete).
+
+    Used to find damaged regions (folds, stains, smears): there the local
+    contrast falls well below that of the same place in other sections.
+    """
+    img = np.asarray(image, np.float32)
+    h, w = img.shape
+    br = int(block_radius)
+    out = np.full(len(nodes), np.nan)
+    for i, (x, y) in enumerate(np.rint(np.asarray(nodes, float)).astype(int)):
+        if x - br < 0 or y - br < 0 or x + br >= w or y + br >= h:
+            continue
+        blk = img[y - br:y + br + 1, x - br:x + br + 1]
+        if np.isfinite(blk).all():
+            out[i] = float(blk.std())
+    return out

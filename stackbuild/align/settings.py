@@ -55,6 +55,11 @@ class AlignSettings:
     damaged_fraction : float
         A section whose share of trusted block matches is below this fraction
         of the stack's median share is flagged ``"damaged"``.
+    damaged_contrast : float
+        Grid blocks whose contrast (standard deviation) is below this fraction
+        of the stack's median at the same place count as damaged; they keep a
+        tenth of their weight in the elastic solve, and a section with a tenth
+        of its blocks damaged is flagged ``"damaged"``.
     """
 
     work_scale: int = 4
@@ -76,3 +81,4 @@ class AlignSettings:
     elastic_pull: float = 1e-3
     elastic_rounds: int = 2
     damaged_fraction: float = 0.85
+    damaged_contrast: float = 0.6

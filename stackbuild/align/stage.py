@@ -18,7 +18,7 @@ import numpy as np
 from ..errors import InputError
 from ..transforms.records import SectionAlignment
 from ..transforms.types import Affine2D, DisplacementField
-from .blockmatch import block_match, filter_vectors, grid_nodes
+from .blockmatch import block_contrast, block_match, filter_vectors, grid_nodes
 from .coarse import PairResult, match_pair
 from .elastic import solve_fields
 from .features import FeatureSet, detect_features
@@ -83,14 +83,13 @@ def pair_job(item) -> PairResult:
                       scale=settings.work_scale, offset_a=oa, offset_b=ob)
 
 
-def render_job(item) -> str:
-    """Render one section over the grid region through ``alignment`` and save it."""
-    source, alignment, grid, scratch, tag = item
+def render_job(item) -> np.ndarray:
+    """Render one section over the grid region through ``alignment``, save it, return its block contrast."""
+    source, alignment, grid, scratch, tag, radius = item
     img = source.region(alignment.section, alignment, grid.x0, grid.y0, grid.width,
                         grid.height, grid.scale)
-    path = Path(scratch) / f"{tag}_{alignment.section}.npy"
-    np.save(path, img)
-    return str(path)
+    np.save(Path(scratch) / f"{tag}_{alignment.section}.npy", img)
+    return block_contrast(img, grid.node_pixels(), radius).reshape(grid.shape)
 
 
 def block_job(item) -> tuple:
@@ -160,10 +159,22 @@ def _make_grid(source, affines: dict[int, Affine2D], settings: AlignSettings) ->
 
 
 def _measure(source, aligns, grid, settings, scratch, mapper, tag, links):
-    items = [(source, aligns[z], grid, scratch, tag) for z in sorted(aligns)]
-    list(mapper(render_job, items))
+    zs = sorted(aligns)
+    items = [(source, aligns[z], grid, scratch, tag, settings.block_radius) for z in zs]
+    contrast = dict(zip(zs, mapper(render_job, items)))
     out = list(mapper(block_job, [(scratch, a, b, grid, settings, tag) for a, b in links]))
-    return dict(zip(links, out))
+    return dict(zip(links, out)), contrast
+
+
+def _low_contrast(contrast: dict, settings: AlignSettings) -> dict[int, np.ndarray]:
+    """Return, per section, the grid nodes whose contrast is far below the stack's at that place."""
+    import warnings
+    stack = np.stack([contrast[z] for z in sorted(contrast)])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)   # all-NaN nodes outside every section
+        med = np.nanmedian(stack, axis=0)
+    return {z: np.nan_to_num(contrast[z], nan=np.inf) < settings.damaged_contrast * med
+            for z in contrast}
 
 
 def _elastic(source, sections, affines, settings, scratch, mapper, tick):
@@ -176,19 +187,22 @@ def _elastic(source, sections, affines, settings, scratch, mapper, tick):
     grid = _make_grid(source, affines, settings)
     links = _pairs(sections, settings.neighbours)
     fields = None
-    first = {}
+    first, low, share = {}, {}, {}
     for rnd in range(settings.elastic_rounds):
         aligns = {z: SectionAlignment(z, affines[z], None if fields is None else
                                       DisplacementField(fields[z], grid.origin, grid.spacing))
                   for z in sections}
-        found = _measure(source, aligns, grid, settings, scratch, mapper, f"round{rnd}", links)
+        found, contrast = _measure(source, aligns, grid, settings, scratch, mapper, f"round{rnd}", links)
         tick(len(links))
-        first = first or found
-        matches = {k: (v[0], v[1]) for k, v in found.items()}
+        if not first:
+            first, low = found, _low_contrast(contrast, settings)
+            share = {z: float(low[z].sum() / max(1, np.isfinite(contrast[z]).sum())) for z in sections}
+        # damaged regions keep a tenth of their say (common practice, no source)
+        matches = {(a, b): (v[0], v[1] * np.where(low[a] | low[b], 0.1, 1.0)) for (a, b), v in found.items()}
         step = solve_fields(sections, grid.shape, matches, stiffness=settings.stiffness,
                             pull=settings.elastic_pull, max_gap=settings.neighbours, prior=fields)
         fields = step if fields is None else {z: fields[z] + step[z] for z in sections}
-    return grid, fields, first
+    return grid, fields, first, low, share
 
 
 def _residual_stats(shifts: np.ndarray) -> dict:
@@ -200,7 +214,7 @@ def _residual_stats(shifts: np.ndarray) -> dict:
             "p95": float(np.percentile(mag, 95)), "max": float(mag.max())}
 
 
-def _flags(sections, facts, solved, found, settings) -> dict[int, list[str]]:
+def _flags(sections, facts, solved, found, share, settings) -> dict[int, list[str]]:
     flags = {z: list(solved.flags.get(z, [])) for z in sections}
     present, lo, hi = set(sections), min(sections), max(sections)
     areas = {z: (b[2] - b[0]) * (b[3] - b[1]) for z, b in ((z, facts[z]["bbox"]) for z in sections)}
@@ -221,7 +235,10 @@ def _flags(sections, facts, solved, found, settings) -> dict[int, list[str]]:
         known = [f for f in frac.values() if f is not None]
         med = float(np.median(known)) if known else 0.0
         for z in sections:
-            if med > 0 and frac[z] is not None and frac[z] < settings.damaged_fraction * med:
+            weak = med > 0 and frac[z] is not None and frac[z] < settings.damaged_fraction * med
+            # a tenth of the area at low contrast marks a damaged section (common practice, no source)
+            faded = share.get(z, 0.0) >= 0.1
+            if weak or faded:
                 flags[z].append("damaged")
     return flags
 
@@ -277,11 +294,11 @@ def align_sections(source, settings: AlignSettings, *, mapper=map, progress=None
     scratch.mkdir(parents=True, exist_ok=True)
     try:
         facts, pairs, solved = _coarse(source, sections, settings, scratch, mapper, tick)
-        fields, found, grid = {}, {}, None
+        fields, found, grid, share = {}, {}, None, {}
         if settings.elastic and len(sections) >= 3:
-            grid, fields, found = _elastic(source, sections, solved.affines, settings, scratch,
+            grid, fields, found, _, share = _elastic(source, sections, solved.affines, settings, scratch,
                                            mapper, tick)
-        flags = _flags(sections, facts, solved, found, settings)
+        flags = _flags(sections, facts, solved, found, share, settings)
         aligns = {}
         for z in sections:
             disp = None
@@ -290,11 +307,12 @@ def align_sections(source, settings: AlignSettings, *, mapper=map, progress=None
             stats = {"coarse": _coarse_stats(z, facts, pairs, solved)}
             if disp is not None:
                 stats["elastic"] = disp.magnitude_stats()
+                stats["elastic"]["low_contrast_fraction"] = share[z]
             aligns[z] = SectionAlignment(z, solved.affines[z], disp, flags[z], stats)
         if grid is None:
             grid = _make_grid(source, solved.affines, settings)
         links = list(zip(sections[:-1], sections[1:]))
-        final = _measure(source, aligns, grid, settings, scratch, mapper, "final", links)
+        final, _ = _measure(source, aligns, grid, settings, scratch, mapper, "final", links)
         tick(len(links))
         for (a, b), v in final.items():
             aligns[a].stats["residual_next"] = {"section": b, **_residual_stats(v[0])}

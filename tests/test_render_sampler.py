@@ -176,3 +176,14 @@ def test_bad_arguments_are_refused(tmp_path, camera):
         render_region(stitch, None, 0, 0, 8, 8, order=2)
     with pytest.raises(ValueError, match="reducer"):
         reduce2x2(np.zeros((2, 2), np.uint8), "median")
+
+
+def test_illumination_profile_is_upsampled_bilinearly_before_dividing(tmp_path):
+    raw = foam(48, 40, seed=4)
+    profile = np.array([[0.8, 1.0, 1.2], [1.1, 0.9, 1.3]], np.float32)
+    stitch = _one_tile(tmp_path, raw, illumination=profile)
+    tiles_mod.TILE_CACHE.clear()
+    out = render_region(stitch, None, 0, 0, 40, 48)
+    # Reference: OpenCV's bilinear resize of the profile to the tile size (the stitching stage's rule).
+    expect = raw / cv2.resize(profile, (40, 48), interpolation=cv2.INTER_LINEAR)
+    np.testing.assert_allclose(out, expect, rtol=1e-5)

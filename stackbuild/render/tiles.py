@@ -21,12 +21,7 @@ import tifffile
 
 from ..errors import InputError
 
-try:  # written by the stitching stage; the fallback is the same bilinear upsampling
-    from ..stitch.intensity import illumination_at_tile_size
-except ImportError:  # pragma: no cover - only until the stitching module lands
-    def illumination_at_tile_size(profile: np.ndarray, height: int, width: int) -> np.ndarray:
-        """Return ``profile`` resized bilinearly to ``height x width`` (float32)."""
-        return cv2.resize(np.asarray(profile, np.float32), (width, height), interpolation=cv2.INTER_LINEAR)
+from ..stitch.intensity import illumination_at_tile_size
 
 
 def _nbytes(value) -> int:

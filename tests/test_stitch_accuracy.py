@@ -174,3 +174,9 @@ def test_record_round_trips_through_the_transform_store(plain, tmp_path):
     back = store.load_stitch(0)
     assert back.to_json() == res.to_json()
     np.testing.assert_array_equal(back.illumination, res.illumination)
+
+
+def test_unusable_setting_is_an_input_error(tmp_path):
+    sec = make_section(tmp_path, rows=1, cols=2, seed=2)
+    with pytest.raises(InputError, match=r"\[stitch\] whitening"):
+        stitch_section(sec.tiles, StitchSettings(whitening=2.0), 0)

@@ -44,6 +44,20 @@ def read_tile(entry: TileEntry, section: int) -> np.ndarray:
     return img
 
 
+def _check_settings(s: StitchSettings) -> None:
+    """Raise InputError naming the ``[stitch]`` key whose value cannot work."""
+    rules = [
+        ("max_stage_error", s.max_stage_error > 0, "> 0"), ("min_overlap", s.min_overlap >= 1, ">= 1"),
+        ("upsample", s.upsample >= 1, ">= 1"), ("prior_weight", s.prior_weight > 0, "> 0"),
+        ("max_residual", s.max_residual > 0, "> 0"), ("illumination_step", s.illumination_step >= 1, ">= 1"),
+        ("whitening", 0 <= s.whitening <= 1, "between 0 and 1"),
+        ("spectrum_sigma", s.spectrum_sigma >= 0, ">= 0"),
+    ]
+    for key, ok, want in rules:
+        if not ok:
+            raise InputError(f"[stitch] {key} must be {want}, got {getattr(s, key)!r}")
+
+
 def _slice(box):
     x0, y0, x1, y1 = box
     return np.s_[y0:y1, x0:x1]
@@ -176,7 +190,7 @@ def stitch_section(tiles: list[TileEntry], settings: StitchSettings, section: in
     """
     if not tiles:
         raise InputError("section has no tiles", section=section)
-    n = len(tiles)
+    _check_settings(settings)
     stage = np.array([(t.x, t.y) for t in tiles], dtype=np.float64)
     sizes = np.array([(t.width, t.height) for t in tiles], dtype=np.int64)
     overlaps = find_overlaps(stage, sizes, settings.min_overlap, math.ceil(settings.max_stage_error))

@@ -59,15 +59,9 @@ def tile_footprints(stitch: SectionStitch, alignment: SectionAlignment | None) -
                             c[..., 0].max(1) + margin, c[..., 1].max(1) + margin])
 
 
-def _section_coords(alignment: SectionAlignment | None, xs: np.ndarray, ys: np.ndarray):
-    """Return section-frame ``(sx, sy)`` (float64, ``len(ys) x len(xs)``) of aligned points on a grid."""
-    if alignment is None:
-        return np.broadcast_to(xs[None, :], (len(ys), len(xs))), np.broadcast_to(ys[:, None], (len(ys), len(xs)))
+def _section_coords(alignment: SectionAlignment, xs: np.ndarray, ys: np.ndarray):
+    """Return section-frame ``(sx, sy)`` (float64, ``len(ys) x len(xs)``) of aligned grid points, through the field."""
     m = alignment.affine.matrix
-    if alignment.displacement is None:
-        sx = m[0, 0] * xs[None, :] + (m[0, 1] * ys[:, None] + m[0, 2])
-        sy = m[1, 0] * xs[None, :] + (m[1, 1] * ys[:, None] + m[1, 2])
-        return sx, sy
     d = alignment.displacement.displacement_grid(xs, ys).astype(np.float64)
     cx = xs[None, :] + d[..., 0]
     cy = ys[:, None] + d[..., 1]
@@ -178,7 +172,7 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
 
 
 def _warp_tile(stitch, t, box, key, m, grid, scale, flag, acc) -> None:
-    """Add one tile's ``(weight * value, weight)`` warped by the affine ``m`` (aligned -> section) to ``acc``."""
+    """Add one tile's value and weight, warped by the affine ``m`` (aligned -> section), to ``acc``."""
     cx0, cy0, width, height = grid
     a, b = _index_range(box[0], box[2], cx0, scale, width)
     c, d = _index_range(box[1], box[3], cy0, scale, height)
@@ -196,8 +190,8 @@ def _warp_tile(stitch, t, box, key, m, grid, scale, flag, acc) -> None:
             r1, c1 = min(r0 + _MAX_MAP, d), min(c0 + _MAX_MAP, b)
             part = inv.copy()
             part[:, 2] += inv[:, 0] * (c0 - a) + inv[:, 1] * (r0 - c)
-            val, w = (cv2.warpAffine(a, part, (c1 - c0, r1 - r0), flags=flag | cv2.WARP_INVERSE_MAP,
-                                     borderMode=cv2.BORDER_CONSTANT, borderValue=0) for a in img)
+            val, w = (cv2.warpAffine(src, part, (c1 - c0, r1 - r0), flags=flag | cv2.WARP_INVERSE_MAP,
+                                     borderMode=cv2.BORDER_CONSTANT, borderValue=0) for src in img)
             _accumulate(acc[:, r0:r1, c0:c1], val, w)
 
 
@@ -208,7 +202,7 @@ def _accumulate(acc: np.ndarray, val: np.ndarray, w: np.ndarray) -> None:
 
 
 def _blend_tile(stitch, t, box, key, sx, sy, grid, scale, flag, acc) -> None:
-    """Add one tile's resampled ``(weight * value, weight)`` to ``acc`` (a view of the region)."""
+    """Add one tile's value and weight, resampled at section points ``(sx, sy)``, to ``acc`` (a view)."""
     c_a, r_a, cx0, cy0 = grid
     n_r, n_c = sx.shape
     a, b = _index_range(box[0], box[2], cx0 + scale * c_a, scale, n_c)
@@ -225,4 +219,4 @@ def _blend_tile(stitch, t, box, key, sx, sy, grid, scale, flag, acc) -> None:
     if scale != 1:
         mx /= np.float32(scale)
         my /= np.float32(scale)
-    _accumulate(acc[:, c:d, a:b], *(_remap(a_, mx, my, flag) for a_ in img))
+    _accumulate(acc[:, c:d, a:b], *(_remap(src, mx, my, flag) for src in img))

@@ -142,7 +142,9 @@ def _parser() -> argparse.ArgumentParser:
 def _add_synth(sub) -> None:
     from .synth import SynthParams
 
-    doc = _attribute_docs(SynthParams)
+    from .config import attribute_docs
+
+    doc = attribute_docs(SynthParams)
     p = sub.add_parser("synth", help="write a synthetic serial-section data set with ground truth",
                        description="Synthesise a deterministic EM-like tissue phantom cut into sections "
                                    "and tiles, with marker channels and ground truth, into OUTDIR.")
@@ -164,28 +166,6 @@ def _add_synth(sub) -> None:
         else:
             p.add_argument(flag, type=kind, default=default, help=help_text)
     _add_common(p)
-
-
-def _attribute_docs(cls) -> dict[str, str]:
-    """Return ``{field: first description line}`` from a numpy-style ``Attributes`` section."""
-    lines = (cls.__doc__ or "").splitlines()
-    out, current = {}, None
-    inside = False
-    for line in lines:
-        s = line.strip()
-        if s == "Attributes":
-            inside = True
-            continue
-        if not inside or set(s) == {"-"}:
-            continue
-        if s and not line.startswith(" " * 8) and ":" in s:
-            current = s.split(":")[0].strip()
-            out[current] = ""
-        elif s and current and not out[current]:
-            out[current] = s
-        elif not s and current is None:
-            continue
-    return out
 
 
 # ----------------------------------------------------------------- commands

@@ -8,6 +8,7 @@ keys, and values of the wrong type, are errors naming the file and key.
 from __future__ import annotations
 
 import dataclasses
+import textwrap
 import tomllib
 import typing
 from dataclasses import dataclass, field
@@ -118,3 +119,50 @@ def load_config(path: str | Path | None = None) -> PipelineConfig:
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise InputError(f"not valid TOML ({exc})", file=path) from None
     return _from_tables(tables, str(path))
+
+
+def attribute_docs(cls) -> dict[str, str]:
+    """Return ``{field: description}`` from a numpy-style ``Attributes`` docstring section."""
+    out, current, inside = {}, None, False
+    for line in (cls.__doc__ or "").splitlines():
+        text = line.strip()
+        if text == "Attributes":
+            inside = True
+            continue
+        if not inside or not text or set(text) == {"-"}:
+            continue
+        indent = len(line) - len(line.lstrip())
+        if " : " in text and indent <= 4:
+            current = text.split(" : ")[0].strip()
+            out[current] = ""
+        elif current:
+            out[current] = f"{out[current]} {text}".strip()
+    return out
+
+
+def _toml_value(value) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(value, (tuple, list)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    return repr(value)
+
+
+def default_toml() -> str:
+    """Return a pipeline file listing every setting with its default and its one-line description."""
+    lines = ["# stackbuild pipeline settings: every key, with its default value.",
+             "# Pass with: stackbuild build TILES_CSV --out DIR --config PIPELINE.toml",
+             "# Units: pixels are full-resolution (level 0) pixels unless a key says otherwise.",
+             "# Made by stackbuild.config.default_toml(); the tests keep it equal to the code."]
+    defaults = PipelineConfig()
+    for table in dataclasses.fields(PipelineConfig):
+        settings = getattr(defaults, table.name)
+        docs = attribute_docs(type(settings))
+        lines += ["", f"[{table.name}]"]
+        for f in dataclasses.fields(settings):
+            note = docs.get(f.name, "").replace("``", "")
+            lines += ["# " + part for part in textwrap.wrap(note, 86)]
+            lines.append(f"{f.name} = {_toml_value(getattr(settings, f.name))}")
+    return "\n".join(lines) + "\n"

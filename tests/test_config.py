@@ -5,7 +5,7 @@ from pathlib import Path
 
 import pytest
 
-from stackbuild.config import PipelineConfig, load_config
+from stackbuild.config import PipelineConfig, default_toml, load_config
 from stackbuild.errors import InputError
 
 PIPELINES = Path(__file__).resolve().parents[1] / "pipelines"
@@ -13,6 +13,8 @@ PIPELINES = Path(__file__).resolve().parents[1] / "pipelines"
 
 def test_default_pipeline_file_lists_exactly_the_defaults():
     # pipelines/default.toml documents every key; it must not drift from the code.
+    # Regenerate with: python -c "from stackbuild.config import default_toml; print(default_toml(), end='')"
+    assert (PIPELINES / "default.toml").read_text() == default_toml()
     assert load_config(PIPELINES / "default.toml") == PipelineConfig()
 
 

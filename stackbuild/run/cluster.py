@@ -17,6 +17,31 @@ from ..errors import InputError
 log = logging.getLogger(__name__)
 
 
+#: One thread per library inside each worker process: Dask already runs one
+#: task per core, and nested BLAS/OpenCV pools on top of that oversubscribe the
+#: cores (tiny matrix products in sub-pixel refinement slowed ~100x).
+SINGLE_THREAD_ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+
+
+def _single_threaded_opencv() -> None:
+    import cv2
+
+    cv2.setNumThreads(1)
+
+
+def _pin_worker_threads(client) -> None:
+    """Make every worker, now and later, run OpenCV single-threaded."""
+    from distributed.diagnostics.plugin import WorkerPlugin
+
+    class _OneThread(WorkerPlugin):
+        name = "stackbuild-one-thread"
+
+        def setup(self, worker):
+            _single_threaded_opencv()
+
+    client.register_plugin(_OneThread())
+
+
 @contextlib.contextmanager
 def dask_client(workers: int | None = None, scheduler: str | None = None,
                 memory_limit: str = "auto"):
@@ -42,6 +67,7 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
                 client = Client(scheduler, timeout="30s")
         except OSError as exc:
             raise InputError(f"cannot reach the Dask scheduler {scheduler!r} ({exc})") from None
+        _pin_worker_threads(client)
         try:
             yield client
         finally:
@@ -50,10 +76,14 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
     n = workers or os.cpu_count() or 1
     if n < 1:
         raise InputError(f"--workers must be >= 1, got {n}")
-    cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                           memory_limit=memory_limit, dashboard_address=None,
-                           silence_logs=logging.ERROR)
+    import dask
+
+    with dask.config.set({"distributed.nanny.pre-spawn-environ": SINGLE_THREAD_ENV}):
+        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                               memory_limit=memory_limit, dashboard_address=None,
+                               silence_logs=logging.ERROR)
     client = Client(cluster)
+    _pin_worker_threads(client)
     try:
         yield client
     finally:

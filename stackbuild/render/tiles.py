@@ -157,8 +157,9 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
     -------
     (value, weight) : two float32 arrays, shape (ceil(height/scale) + 2, ceil(width/scale) + 2)
         The corrected value and the weight (see :func:`feather_weight`), both with a one-pixel
-        ring (kept apart because OpenCV resamples one channel several times faster than two;
-        the weight depends only on the tile's size and is shared): the value repeats the edge pixel, the weight is 0 there.
+        ring: the value repeats the edge pixel, the weight is 0 there. They are kept apart
+        because OpenCV resamples one channel several times faster than two; the weight
+        depends only on the tile's size and is shared, and only the value is cached.
         Reduced tile pixel ``(k, j)`` is element ``[j + 1, k + 1]``. Resampled bilinearly, the
         weight is the exact distance to the edge, falling to 0 one pixel beyond the outermost
         centres, and the value is never mixed with a border constant.
@@ -169,9 +170,19 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
     except OSError:
         raise InputError("tile is missing", file=p, section=section) from None
     key = (str(p), st.st_size, st.st_mtime_ns, profile_key, float(tile.gain), float(tile.offset), scale)
-    hit = TILE_CACHE.get(key)
-    if hit is not None:
-        return hit, _padded_weight(tile.height, tile.width, scale)
+    with _PREP_LOCKS[hash(key) % len(_PREP_LOCKS)]:  # two threads never prepare the same tile
+        value = TILE_CACHE.get(key)
+        if value is None:
+            value = _prepare(p, tile, profile, scale, section)
+            TILE_CACHE.put(key, value)
+    return value, _padded_weight(tile.height, tile.width, scale)
+
+
+_PREP_LOCKS = [threading.Lock() for _ in range(64)]
+
+
+def _prepare(p: Path, tile, profile, scale: int, section) -> np.ndarray:
+    """Return the corrected, reduced tile with its one-pixel edge ring (float32)."""
     img = read_tile(p, tile.height, tile.width, section).astype(np.float32)
     if profile is not None:
         illum = illumination_at_tile_size(profile, tile.height, tile.width)
@@ -181,8 +192,7 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
     img = block_mean(img, scale)
     value = cv2.copyMakeBorder(img, 1, 1, 1, 1, cv2.BORDER_REPLICATE)
     value.setflags(write=False)
-    TILE_CACHE.put(key, value)
-    return value, _padded_weight(tile.height, tile.width, scale)
+    return value
 
 
 profile_digest = _profile_key

@@ -167,3 +167,19 @@ def test_elastic_keeps_linear_change_and_removes_random_distortion():
     slope_noise = (zc * np.stack([noise[k] for k in zs])).sum(0) / (zc ** 2).sum()
     assert np.abs(slope_u).max() < 1e-3 < np.abs(slant).max()
     assert np.abs(slope_noise).max() > 0.05               # the part no 2nd difference can see
+
+
+def test_iterative_elastic_solve_matches_scipy_direct_solve():
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as spla
+    from stackbuild.align.elastic import _membrane, _solve_spd
+    rng = np.random.default_rng(4)
+    nn, nz = 64, 80
+    g = sp.kron(sp.identity(nz), _membrane(8, 8))
+    chain = sp.diags([np.ones(nz - 1), -2 * np.ones(nz), np.ones(nz - 1)], [-1, 0, 1])
+    d = sp.kron(chain, sp.identity(nn))
+    a = (d.T @ d + 0.01 * (g.T @ g) + 1e-3 * sp.identity(nz * nn)).tocsc()
+    b = rng.normal(size=(nz * nn, 2))
+    # reference: SciPy's sparse LU (SuperLU)
+    ref = spla.splu(a).solve(b)
+    np.testing.assert_allclose(_solve_spd(a, b, nn, direct_limit=10), ref, atol=1e-5 * np.abs(ref).max())

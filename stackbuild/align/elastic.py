@@ -50,6 +50,30 @@ def _membrane(ny: int, nx: int) -> sp.csr_matrix:
     return sp.vstack([dx, dy]).tocsr()
 
 
+def _solve_spd(a: sp.csc_matrix, b: np.ndarray, nn: int, direct_limit: int = 4000) -> np.ndarray:
+    """Solve the SPD system ``a x = b`` (two right-hand sides).
+
+    Small systems: sparse LU. Large ones: conjugate gradients preconditioned
+    by the exact solve of every grid node's own column through z (the matrix
+    without its in-plane couplings, which are weak), so a few dozen
+    iterations suffice whatever the number of sections.
+    """
+    if a.shape[0] <= direct_limit:
+        return spla.splu(a).solve(b)
+    coo = a.tocoo()
+    keep = (coo.row % nn) == (coo.col % nn)
+    own = sp.csc_matrix((coo.data[keep], (coo.row[keep], coo.col[keep])), shape=a.shape)
+    lu = spla.splu(own)
+    pre = spla.LinearOperator(a.shape, matvec=lu.solve, dtype=np.float64)
+    out = np.empty_like(b)
+    for k in range(b.shape[1]):
+        x, info = spla.cg(a, b[:, k], rtol=1e-9, maxiter=2000, M=pre)
+        if info != 0:
+            x = spla.splu(a).solve(b[:, k])
+        out[:, k] = x
+    return out
+
+
 def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
                  stiffness: float = 1.0, pull: float = 1e-3, max_gap: int = 2,
                  prior: dict[int, np.ndarray] | None = None) -> dict[int, np.ndarray]:
@@ -86,8 +110,8 @@ def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
     -----
     All sections, both components, one sparse least-squares problem
     ``min ||W (D u - m)||^2 + stiffness ||G u||^2 + pull ||u||^2``, solved
-    through its normal equations with a sparse direct solver (SuperLU);
-    x and y share the matrix. With fewer than three sections there is no
+    through its normal equations (SuperLU for small stacks, preconditioned
+    conjugate gradients for large ones); x and y share the matrix. With fewer than three sections there is no
     second difference and every field is zero.
 
     References
@@ -135,6 +159,6 @@ def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
     if prior is not None:
         u0 = np.concatenate([np.asarray(prior[z], np.float64).reshape(nn, 2) for z in sections])
         b = b - reg @ u0
-    u = spla.splu(normal).solve(np.ascontiguousarray(b))
+    u = _solve_spd(normal, np.ascontiguousarray(b), nn)
     return {z: u[index[z] * nn:(index[z] + 1) * nn].reshape(ny, nx, 2).astype(np.float32)
             for z in sections}

@@ -1,0 +1,108 @@
+"""Benchmark of the align stage: seconds per section pair, and how the global solves scale.
+
+Run: ``python tests/benchmarks/bench_align.py`` (1024 px working size) or ``--full``
+(4096 px, the size the brief names). Everything is measured in one run and
+printed side by side.
+"""
+from __future__ import annotations
+
+import argparse
+import time
+
+import cv2
+import numpy as np
+from scipy import ndimage
+
+from stackbuild.align.blockmatch import block_match, filter_vectors, grid_nodes
+from stackbuild.align.coarse import PairResult, match_pair
+from stackbuild.align.elastic import solve_fields
+from stackbuild.align.features import detect_features
+from stackbuild.align.settings import AlignSettings
+from stackbuild.align.solve import solve_affines
+from stackbuild.transforms.types import Affine2D
+
+
+def _texture(rng, n):
+    a = ndimage.gaussian_filter(rng.standard_normal((n, n)).astype(np.float32), 6)
+    b = ndimage.gaussian_filter(rng.standard_normal((n, n)).astype(np.float32), 1.5)
+    return np.exp(-(a / a.std() / 0.25) ** 2) + 0.1 * b / b.std()
+
+
+def _pair(n, rng):
+    img = _texture(rng, n)
+    m = Affine2D.similarity(1.01, np.deg2rad(1.5), 7.0, -5.0, center=(n / 2, n / 2))
+    return img, cv2.warpAffine(img, m.matrix, (n, n), flags=cv2.INTER_LINEAR)
+
+
+def _clock(fn, repeat=1):
+    best = np.inf
+    for _ in range(repeat):
+        t = time.perf_counter()
+        out = fn()
+        best = min(best, time.perf_counter() - t)
+    return best, out
+
+
+def bench_pair(n, s: AlignSettings):
+    rng = np.random.default_rng(0)
+    a, b = _pair(n, rng)
+    t_feat, (fa, fb) = _clock(lambda: (detect_features(a, s.detector, s.max_features),
+                                       detect_features(b, s.detector, s.max_features)))
+    t_match, res = _clock(lambda: match_pair(fa, fb, 0, 1, model=s.model, ratio=s.ratio,
+                                             threshold=s.ransac_threshold, min_inliers=s.min_inliers))
+    step = s.grid_spacing / s.elastic_scale
+    m = int((s.block_radius + s.search_radius + 2))
+    k = int((n - 2 * m) // step) + 1
+    nodes = grid_nodes((m, m), step, (k, k))
+    shifted = ndimage.shift(a, (1.3, -2.2), order=1)
+    t_block, (sh, pk) = _clock(lambda: block_match(a, shifted, nodes, s.block_radius, s.search_radius))
+    ok = filter_vectors(sh.reshape(k, k, 2), pk.reshape(k, k), s.min_block_ncc, s.max_vector_deviation)
+    return {"features_per_section": t_feat / 2, "match_ransac": t_match, "inliers": res.stats["inliers"],
+            "coarse_per_pair": t_feat / 2 + t_match, "block_nodes": k * k,
+            "elastic_per_pair": t_block, "trusted": int(ok.sum())}
+
+
+def bench_solve(n_sections, rng, nodes=16):
+    zs = list(range(n_sections))
+    raw = {z: Affine2D.similarity(1 + rng.uniform(-.02, .02), rng.uniform(-.05, .05),
+                                  *rng.uniform(-100, 100, 2)) for z in zs}
+    pairs = []
+    for a in zs:
+        for b in (a + 1, a + 2):
+            if b in raw:
+                pb = rng.uniform(0, 4000, (300, 2))
+                pa = raw[a].apply(raw[b].inverse().apply(pb)) + rng.normal(0, 0.3, pb.shape)
+                pairs.append(PairResult(a, b, pa, pb, None, {}))
+    t_aff, _ = _clock(lambda: solve_affines(zs, pairs, "affine"))
+    shape = (nodes, nodes)
+    seen = {z: rng.normal(0, 2, (*shape, 2)) for z in zs}
+    matches = {(a, b): (seen[b] - seen[a], np.ones(shape)) for a in zs for b in (a + 1, a + 2) if b in seen}
+    t_el, _ = _clock(lambda: solve_fields(zs, shape, matches, stiffness=0.002, pull=1e-3))
+    return t_aff, t_el
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--full", action="store_true", help="4096 px working size (default 1024)")
+    args = ap.parse_args()
+    n = 4096 if args.full else 1024
+    s = AlignSettings()
+    r = bench_pair(n, s)
+    print(f"working size {n} x {n}, detector {s.detector}, max_features {s.max_features}, "
+          f"grid_spacing {s.grid_spacing} at elastic_scale {s.elastic_scale}")
+    print(f"  coarse : {r['features_per_section']:.3f} s features per section + {r['match_ransac']:.3f} s "
+          f"match + RANSAC = {r['coarse_per_pair']:.3f} s per pair ({r['inliers']} inliers)")
+    print(f"  elastic: {r['elastic_per_pair']:.3f} s block matching per pair "
+          f"({r['block_nodes']} nodes, {r['trusted']} trusted); elastic/coarse = "
+          f"{r['elastic_per_pair'] / r['coarse_per_pair']:.2f}")
+    rng = np.random.default_rng(1)
+    rows = [(k, *bench_solve(k, rng)) for k in (20, 50, 100, 200)]
+    base = rows[0]
+    print("  global solves (z+1 and z+2 links; affine: 300 points per pair; elastic: 16 x 16 nodes)")
+    print("  sections  affine s  ratio   elastic s  ratio   (ratio to 20 sections; linear would be k/20)")
+    for k, ta, te in rows:
+        print(f"  {k:8d}  {ta:8.3f}  {ta / base[1]:5.1f}   {te:9.3f}  {te / base[2]:5.1f}")
+
+
+if __name__ == "__main__":
+    main()

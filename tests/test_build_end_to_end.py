@@ -121,4 +121,5 @@ def test_update_restitches_the_reimaged_section(built, tiny_data, tmp_path):
     lazy = stackbuild.open_volume(work, level=0, lazy=True)[1].compute()
     np.testing.assert_array_equal(written, lazy)  # the re-imaged plane was rendered again
     old = stackbuild.open_volume(built, level=0, lazy=False)[1].compute()
-    assert written[old > 0].mean() > old[old > 0].mean() * 1.05  # and shows the new tiles
+    # ... and shows the new tiles (the canvas may grow a pixel when the section is re-placed)
+    assert written[written > 0].mean() > old[old > 0].mean() * 1.05

@@ -2,6 +2,8 @@
 positions (isolates alignment from stitching) -> run_align -> stored records, against the truth."""
 from __future__ import annotations
 
+import pickle
+
 import numpy as np
 import pytest
 
@@ -26,7 +28,13 @@ def build(tmp_path_factory):
                  for t in manifest.section_tiles(z)]
         store.save_stitch(SectionStitch(z, manifest.section_tiles(z)[0].dtype, tiles))
     seen = []
-    aligns = run_align(root / "build", small_settings(), progress=lambda d, t: seen.append((d, t)))
+
+    def pickling_mapper(fn, items):
+        # what a distributed mapper does: every task and its answer cross a process boundary
+        return [pickle.loads(pickle.dumps(fn(pickle.loads(pickle.dumps(i))))) for i in items]
+
+    aligns = run_align(root / "build", small_settings(), mapper=pickling_mapper,
+                       progress=lambda d, t: seen.append((d, t)))
     return truth, store, aligns, seen, root
 
 

@@ -6,9 +6,10 @@ images' (working) pixels; a shift ``v`` at node ``p`` means the content of
 """
 from __future__ import annotations
 
+import warnings
+
 import cv2
 import numpy as np
-from scipy import ndimage
 
 
 def _parabola(lo: float, mid: float, hi: float) -> float:
@@ -124,11 +125,9 @@ def filter_vectors(shifts: np.ndarray, peaks: np.ndarray, min_ncc: float,
                  for dy in (-1, 0, 1) for dx in (-1, 0, 1) if (dy, dx) != (0, 0)]
         stack = np.stack(stack)
         count = np.isfinite(stack).sum(axis=0)
-        with np.errstate(all="ignore"):
-            import warnings
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)
-                med = np.nanmedian(stack, axis=0)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)   # all-NaN neighbourhoods
+            med = np.nanmedian(stack, axis=0)
         keep &= (count > 0) & ~(np.abs(v - med) > max_deviation)
     return keep
 
@@ -140,14 +139,6 @@ def grid_nodes(origin: tuple[float, float], spacing: float, shape: tuple[int, in
     ys = origin[1] + spacing * np.arange(ny)
     gx, gy = np.meshgrid(xs, ys)
     return np.column_stack([gx.ravel(), gy.ravel()])
-
-
-def smooth_valid(values: np.ndarray, mask: np.ndarray, sigma: float = 1.0) -> np.ndarray:
-    """Return a normalised-convolution smoothing of ``values`` where ``mask`` holds (NaN elsewhere)."""
-    v = np.where(mask, values, 0.0)
-    wgt = ndimage.gaussian_filter(mask.astype(float), sigma)
-    out = ndimage.gaussian_filter(v, sigma) / np.where(wgt > 0, wgt, 1)
-    return np.where(mask, out, np.nan)
 
 
 def block_contrast(image: np.ndarray, nodes: np.ndarray, block_radius: int) -> np.ndarray:

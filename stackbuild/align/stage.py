@@ -163,6 +163,8 @@ def _measure(source, aligns, grid, settings, scratch, mapper, tag, links):
     items = [(source, aligns[z], grid, scratch, tag, settings.block_radius) for z in zs]
     contrast = dict(zip(zs, mapper(render_job, items)))
     out = list(mapper(block_job, [(scratch, a, b, grid, settings, tag) for a, b in links]))
+    for z in zs:   # a round's images are not needed again; keep the scratch folder small
+        (Path(scratch) / f"{tag}_{z}.npy").unlink(missing_ok=True)
     return dict(zip(links, out)), contrast
 
 

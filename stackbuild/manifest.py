@@ -137,6 +137,22 @@ def _float(value: str, name: str, path: Path, row: int) -> float:
     return f
 
 
+def _section(value: str, path: Path, row: int) -> int:
+    section = _int(value, "section", path, row)
+    if section < 0:
+        raise InputError("column 'section' must be >= 0", file=path, row=row)
+    return section
+
+
+def _claim(seen: dict, section: int, name: str, what: str, path: Path, row: int) -> None:
+    """Record ``(section, name)`` as used on ``row``; refuse a second use."""
+    key = (section, name)
+    if key in seen:
+        raise InputError(f"duplicate {what} {name!r} in section {section} (first on line {seen[key]})",
+                         file=path, row=row)
+    seen[key] = row
+
+
 def _resolve(value: str, manifest: Path, row: int) -> Path:
     if not value:
         raise InputError("column 'path' is empty", file=manifest, row=row)
@@ -189,18 +205,12 @@ def read_tile_manifest(path: str | Path) -> TileManifest:
     seen: dict[tuple[int, str], int] = {}
     tiles = []
     for row, rec in rows:
-        section = _int(rec["section"], "section", path, row)
-        if section < 0:
-            raise InputError("column 'section' must be >= 0", file=path, row=row)
+        section = _section(rec["section"], path, row)
         x = _float(rec["x"], "x", path, row)
         y = _float(rec["y"], "y", path, row)
         image = _resolve(rec["path"], path, row)
         tile = rec.get("tile") or image.stem
-        key = (section, tile)
-        if key in seen:
-            raise InputError(f"duplicate tile {tile!r} in section {section} (first on line {seen[key]})",
-                             file=path, row=row)
-        seen[key] = row
+        _claim(seen, section, tile, "tile", path, row)
         h, w, dtype = image_header(image, path, row)
         tiles.append(TileEntry(section, tile, image, x, y, w, h, dtype, row))
     dtypes = {t.dtype for t in tiles}
@@ -218,7 +228,7 @@ def read_channel_manifest(path: str | Path) -> list[ChannelEntry]:
     seen: dict[tuple[int, str], int] = {}
     entries = []
     for row, rec in rows:
-        section = _int(rec["section"], "section", path, row)
+        section = _section(rec["section"], path, row)
         name = rec["channel"]
         if not _NAME_OK.match(name):
             raise InputError(f"channel name {name!r} must be letters, digits, '_', '-' or '.'",
@@ -229,11 +239,7 @@ def read_channel_manifest(path: str | Path) -> list[ChannelEntry]:
         x = _float(rec["x"], "x", path, row) if rec.get("x") else None
         y = _float(rec["y"], "y", path, row) if rec.get("y") else None
         image = _resolve(rec["path"], path, row)
-        key = (section, name)
-        if key in seen:
-            raise InputError(f"duplicate channel {name!r} for section {section} (first on line {seen[key]})",
-                             file=path, row=row)
-        seen[key] = row
+        _claim(seen, section, name, "channel", path, row)
         h, w, dtype = image_header(image, path, row)
         entries.append(ChannelEntry(section, name, image, pixel_size, x, y, w, h, dtype, row))
     return entries

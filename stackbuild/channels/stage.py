@@ -16,6 +16,8 @@ Stored record (``store.save_doc("channels", ..., section=s)``), one per section:
                       "input": "channel", "output": "section"},   # (x, y) pixel-centre convention
         "initial": the same form, the first guess,
         "measure": "normalized_mutual_information", "bins": int,
+        "feature": "edges" | "density" | "intensity" (what was registered; null if blank),
+        "feature_scale": EM render scale of the features, "distinctness_by_feature": {kind: z},
         "measure_before", "measure_after": float (1 unrelated .. 2 identical),
         "distinctness": robust z-score of the best start-search value (see register_mutual_information),
         "shift_from_given": [dx, dy] section px at the image centre, or null when x, y are absent,
@@ -43,11 +45,16 @@ from ..render.sampler import render_region
 from ..run.folder import BuildFolder
 from ..transforms.store import TransformStore
 from ..transforms.types import Affine2D
+from .features import KINDS, block_mean, em_feature, marker_feature
 from .mutual_info import MODELS, register_mutual_information
 from .settings import ChannelSettings
 
 DOC_KIND = "channels"
 MEASURE = "normalized_mutual_information"
+FEATURES = ("auto",) + KINDS
+AUTO_KINDS = ("edges", "density")
+#: Marker-side smoothing per feature, marker pixels (set on the synthetic sample, no source).
+MARKER_SIGMA = {"edges": 1.0, "density": 1.5, "intensity": 0.0}
 
 
 @dataclass(frozen=True)
@@ -69,6 +76,12 @@ def check_settings(settings: ChannelSettings) -> None:
         raise InputError(f"{where} bins must be in 4..256, got {settings.bins}")
     if settings.max_offset < 0 or settings.max_rotation < 0:
         raise InputError(f"{where} max_offset and max_rotation must be >= 0")
+    if settings.feature not in FEATURES:
+        raise InputError(f"{where} feature must be one of {', '.join(FEATURES)}, got {settings.feature!r}")
+    if settings.feature_scale < 1:
+        raise InputError(f"{where} feature_scale must be >= 1, got {settings.feature_scale}")
+    if min(settings.membrane_px, settings.vesicle_px) <= 0 or settings.cluster_px < 0:
+        raise InputError(f"{where} membrane_px and vesicle_px must be > 0 and cluster_px >= 0")
 
 
 def em_scale(channel_pixel_size: float, em_pixel_size: float) -> int:
@@ -88,15 +101,56 @@ def initial_guess(entry: ChannelEntry, em_pixel_size: float, bbox) -> Affine2D:
     return Affine2D(np.array([[rho, 0.0, tx], [0.0, rho, ty]]))
 
 
-def _em_at_scale(stitch, k: int):
-    """Return ``(image, mask, fixed -> section map)``: the section mosaic rendered at scale ``k``."""
+def feature_render_scale(k: int, feature_scale: int) -> int:
+    """Return the EM render scale of the feature images: the largest divisor of ``k`` at most ``k / feature_scale``."""
+    target = max(1, k // max(1, feature_scale))
+    return max(d for d in range(1, target + 1) if k % d == 0)
+
+
+def _em_at_scale(stitch, k: int, fine: int | None = None):
+    """Return ``(image, mask, fixed -> section map)``: the section mosaic rendered at scale ``fine`` (default ``k``).
+
+    The fixed grid (``fixed -> section``) is always that of scale ``k``; with
+    ``fine`` dividing ``k`` the image is ``k // fine`` times larger and its
+    blocks of ``k // fine`` pixels are the fixed pixels.
+    """
+    fine = k if fine is None else fine
     x0, y0, x1, y1 = stitch.bbox()
     X0, Y0 = math.floor(x0 + 0.5), math.floor(y0 + 0.5)
-    w = max(1, math.ceil((x1 - 0.5 - X0 + 1) / k))
-    h = max(1, math.ceil((y1 - 0.5 - Y0 + 1) / k))
-    img, weight = render_region(stitch, None, X0, Y0, w, h, scale=k, return_weight=True)
+    w = max(1, math.ceil((x1 - 0.5 - X0 + 1) / fine))
+    h = max(1, math.ceil((y1 - 0.5 - Y0 + 1) / fine))
+    img, weight = render_region(stitch, None, X0, Y0, w, h, scale=fine, return_weight=True)
     to_section = Affine2D(np.array([[k, 0.0, X0 + (k - 1) / 2], [0.0, k, Y0 + (k - 1) / 2]]))
     return img, weight > 0, to_section
+
+
+def _feature_pair(kind: str, em_fine, mask_fine, moving, fine: int, k: int, st: ChannelSettings):
+    """Return the fixed (EM, channel grid) and moving (marker) feature images of one kind."""
+    size = st.membrane_px if kind == "edges" else st.vesicle_px
+    spread = st.cluster_px if kind == "density" else 0.0
+    fixed = em_feature(em_fine, mask_fine, kind, fine, k, size, spread)
+    return fixed, marker_feature(moving, kind, MARKER_SIGMA[kind])
+
+
+def _register_features(em_fine, mask_fine, moving, start: Affine2D, fine: int, k: int, st: ChannelSettings):
+    """Register the marker by NMI of feature images; return ``(kind, map, info, distinctness per kind)``.
+
+    With ``feature = "auto"`` every kind of :data:`AUTO_KINDS` is tried and the
+    one whose optimum stands out most (largest distinctness) is kept.
+    """
+    fmask = block_mean(mask_fine.astype(np.float32), k // fine) > 0.999
+    kinds = AUTO_KINDS if st.feature == "auto" else (st.feature,)
+    best, tried = None, {}
+    for kind in kinds:
+        fixed, mov = _feature_pair(kind, em_fine, mask_fine, moving, fine, k, st)
+        fixed = fixed[:fmask.shape[0], :fmask.shape[1]]
+        found, info = register_mutual_information(
+            fixed, mov, start, st.model, bins=st.bins, max_offset=st.max_offset / k,
+            max_rotation=st.max_rotation, fixed_mask=fmask[:fixed.shape[0], :fixed.shape[1]])
+        tried[kind] = float(info["distinctness"])
+        if best is None or info["distinctness"] > best[2]["distinctness"]:
+            best = (kind, found, info)
+    return best[0], best[1], best[2], tried
 
 
 def _is_blank(img: np.ndarray) -> bool:
@@ -114,6 +168,7 @@ def register_channel(job: _ChannelJob) -> dict:
     rec = {"section": e.section, "channel": e.channel, "path": str(e.path), "row": e.row,
            "pixel_size_nm": e.pixel_size, "em_scale": k, "registered": False,
            "initial": _frames(guess), "transform": _frames(guess), "measure": MEASURE, "bins": st.bins,
+           "feature": None,
            "measure_before": None, "measure_after": None, "distinctness": None, "shift_from_given": None,
            "rotation_deg": 0.0, "scale_ratio": 1.0, "flags": []}
     moving = tifffile.imread(e.path).astype(np.float32)
@@ -121,12 +176,12 @@ def register_channel(job: _ChannelJob) -> dict:
         rec["flags"].append("blank")
         rec["seconds"] = round(time.perf_counter() - t0, 3)
         return rec
-    fixed, fmask, to_section = _em_at_scale(stitch, k)
+    fine = feature_render_scale(k, st.feature_scale)
+    em_fine, mask_fine, to_section = _em_at_scale(stitch, k, fine)
     start = guess.then(to_section.inverse())
-    found, info = register_mutual_information(
-        fixed, moving, start, st.model, bins=st.bins, max_offset=st.max_offset / k,
-        max_rotation=st.max_rotation, fixed_mask=fmask)
+    kind, found, info, tried = _register_features(em_fine, mask_fine, moving, start, fine, k, st)
     result = found.then(to_section)
+    rec.update(feature=kind, feature_scale=fine, distinctness_by_feature=tried)
     rho = e.pixel_size / job.em_pixel_size
     a = result.matrix[:, :2]
     centre = np.array([[(e.width - 1) / 2, (e.height - 1) / 2]])

@@ -3,7 +3,11 @@
 * normalised mutual information (``stackbuild.channels.mutual_info.mutual_information``)
   against ``skimage.metrics.normalized_mutual_information`` on the same images and bins;
 * one cross-modality registration of ``skimage.data.camera()`` (known similarity),
-  timed, with its error.
+  timed, with its error;
+* the feature kernels (``stackbuild.channels.features``) against their reference
+  computations: ``dark_blobs`` against ``skimage.feature.hessian_matrix`` +
+  ``hessian_matrix_eigvals``, ``gradient_magnitude`` against
+  ``scipy.ndimage.gaussian_gradient_magnitude``.
 
 Run: ``python tests/benchmarks/bench_channels.py`` (256 px) or ``--full`` (512 px).
 """
@@ -16,9 +20,11 @@ import time
 from pathlib import Path
 
 import numpy as np
-from skimage import data, metrics, transform
+from scipy import ndimage
+from skimage import data, feature, metrics, transform
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
+from stackbuild.channels import features as F  # noqa: E402
 from stackbuild.channels.mutual_info import mutual_information, register_mutual_information  # noqa: E402
 from stackbuild.transforms import Affine2D  # noqa: E402
 
@@ -59,6 +65,21 @@ def main() -> None:
     err = np.hypot(*(found.apply(g) - truth.apply(g)).T).max()
     print(f"registration {size} px onto {cam.shape}: {dt:.2f} s, max error {err:.3f} px, "
           f"NMI {info['before']:.3f} -> {info['after']:.3f}")
+
+    _bench_features(cam)
+
+
+def _bench_features(cam: np.ndarray) -> None:
+    img32 = cam.astype(np.float32)
+    ours = _best_of(lambda: F.dark_blobs(img32, 2.0))
+    ref = _best_of(lambda: feature.hessian_matrix_eigvals(
+        feature.hessian_matrix(cam, sigma=2.0, order="rc", use_gaussian_derivatives=True)))
+    print(f"dark blobs {cam.shape}: stackbuild {ours * 1e3:.1f} ms, skimage Hessian eigenvalues "
+          f"{ref * 1e3:.1f} ms, ratio skimage/stackbuild {ref / ours:.2f}")
+    ours = _best_of(lambda: F.gradient_magnitude(img32, 2.0))
+    ref = _best_of(lambda: ndimage.gaussian_gradient_magnitude(cam, 2.0))
+    print(f"gradient magnitude {cam.shape}: stackbuild {ours * 1e3:.1f} ms, scipy {ref * 1e3:.1f} ms, "
+          f"ratio scipy/stackbuild {ref / ours:.2f}")
 
 
 if __name__ == "__main__":

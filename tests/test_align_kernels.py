@@ -183,3 +183,47 @@ def test_iterative_elastic_solve_matches_scipy_direct_solve():
     # reference: SciPy's sparse LU (SuperLU)
     ref = spla.splu(a).solve(b)
     np.testing.assert_allclose(_solve_spd(a, b, nn, direct_limit=10), ref, atol=1e-5 * np.abs(ref).max())
+
+
+def _slope(fields: dict) -> np.ndarray:
+    """Per-node least-squares slope along z of ``{z: (ny, nx, 2)}`` fields."""
+    zs = sorted(fields)
+    zc = (np.array(zs, float) - np.mean(zs))[:, None, None, None]
+    return (zc * np.stack([fields[z] for z in zs])).sum(0) / (zc ** 2).sum()
+
+
+def test_first_difference_term_trades_slant_for_random_trend():
+    # invented ground truth: random per-section distortions only (no slant); their straight-line
+    # part in z is invisible to second differences, and the first-difference term recovers it
+    rng = np.random.default_rng(7)
+    zs, shape = list(range(12)), (5, 5)
+    noise = {z: rng.normal(0, 2, (*shape, 2)) for z in zs}
+    matches = {(a, b): (noise[b] - noise[a], np.ones(shape)) for a in zs for b in (a + 1, a + 2) if b in zs}
+    want = _slope(noise)
+    got = [np.abs(_slope(solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6, chain=c)) - want).max()
+           for c in (0.0, 0.02, 1.0)]
+    assert got[0] > 0.9 * np.abs(want).max()       # no chain: the trend is left (kept as if slant)
+    assert got[0] > got[1] > got[2]                 # a stronger chain removes more of it
+    u = solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6, chain=1.0)
+    mean = np.mean([noise[z] for z in zs], axis=0)  # the pull fixes only the constant along z
+    for z in zs:
+        np.testing.assert_allclose(u[z], noise[z] - mean, atol=0.05)
+
+
+def test_affine_first_difference_leaves_non_affine_slant():
+    # invented ground truth: each section's affine field (in grid units) drifts steadily, plus a
+    # non-affine slant; the affine term takes out the affine drift and keeps the slant
+    rng = np.random.default_rng(8)
+    zs, shape = list(range(10)), (7, 7)
+    ys, xs = np.mgrid[0:7, 0:7].astype(float)
+    basis = np.stack([xs - 3, ys - 3, np.ones_like(xs)], -1)
+    bend = np.stack([np.cos(xs) * np.sin(ys), np.sin(xs + ys)], -1)
+    bend -= basis @ np.linalg.lstsq(basis.reshape(-1, 3), bend.reshape(-1, 2), rcond=None)[0]
+    drift = rng.normal(0, 0.3, (3, 2))
+    aff = {z: basis @ (z * drift + rng.normal(0, 0.5, (3, 2))) for z in zs}
+    seen = {z: aff[z] + 0.5 * z * bend for z in zs}
+    matches = {(a, b): (seen[b] - seen[a], np.ones(shape)) for a in zs for b in (a + 1, a + 2) if b in zs}
+    u = solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6, affine_chain=10.0)
+    np.testing.assert_allclose(_slope(u), _slope(aff), atol=1e-3)          # affine drift removed
+    plain = solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6)
+    assert np.abs(_slope(plain) - _slope(aff)).max() > 0.1                  # without it, kept

@@ -32,8 +32,10 @@ def test_random_distortions_are_removed(random_stack):
     # what a second-difference elastic solve is answerable for: the part not linear in z
     assert rms(rest) <= 1.0 and p95(rest) <= 2.0
     # the plain residual also holds the straight-line-in-z part of the random warps, which
-    # cannot be told from a steady slant; with 20 sections it is ~1 px RMS on its own
-    assert rms(allr) <= 1.6 and p95(allr) <= 3.0
+    # second differences cannot tell from a steady slant; the weak first-difference term
+    # (elastic_chain) takes most of it out. Issue targets RMS <= 1.0, p95 <= 2.0;
+    # measured 0.91 / 1.69 (1.32 / 2.52 without the term)
+    assert rms(allr) <= 1.0 and p95(allr) <= 2.0
     assert rms(allr) < 0.5 * rms(np.stack(list(coarse.values())))
     assert all("residual_next" in al[z].stats for z in range(19))
     assert all(not a.flags for a in al.values())
@@ -49,7 +51,8 @@ def test_no_drift_over_fifty_sections():
 
 def test_steady_slant_is_kept():
     # structures drift sideways up to 0.5 px per section (affine part over the section box
-    # removed); sections get random affines and no warp, so a change of the slant is the aligner's
+    # removed); sections get random affines and no warp (warp=0 now gives a zero field; it used
+    # to give an unscaled ~3 px one), so a change of the slant is the aligner's
     st = make_stack(n=20, size=512, seed=3, offset=30.0, warp=0.0, slant=0.5)
     al = align_sections(ArraySource(st.images), small_settings())
     r = residuals(st, al, border=100)
@@ -59,12 +62,32 @@ def test_steady_slant_is_kept():
     affine_part = design @ np.linalg.lstsq(design, change, rcond=None)[0]
     # the coarse first-difference chain takes out whatever affine part the slant has over each
     # section pair's overlap (by design: it cannot be told from drift); the elastic stage must
-    # keep the rest. Measured: ~1.0 px non-affine, ~1.4 px in all (the brief asks for 1 px).
-    assert rms(change - affine_part) <= 1.25
-    assert rms(change) <= 2.0
-    # the check can fail: straightening would remove a slant of up to 19 * 0.5 = 9.5 px
-    coarse = residuals(st, {z: type(a)(z, a.affine) for z, a in al.items()}, border=100)
-    assert rms(change) < rms(coarse[19] - coarse[0])
+    # keep the rest. Issue target: 1 px. Measured 0.39 px non-affine, 0.52 px in all (the weak
+    # first-difference term costs ~0.3 px of it: 0.02 / 0.19 px without it)
+    assert rms(change - affine_part) <= 0.6
+    assert rms(change) <= 1.0
+    # the check can fail: straightening would remove a slant of up to 19 * 0.5 = 9.5 px, as a
+    # strong first-difference term does (measured 2.84 px RMS with elastic_chain=10)
+    assert rms(change) < 0.25 * _straightened_change(st)
+
+
+def _straightened_change(st) -> float:
+    """RMS change over the block when a strong first-difference term straightens the slant."""
+    al = align_sections(ArraySource(st.images), small_settings(elastic_chain=10.0))
+    r = residuals(st, al, border=100)
+    return rms(r[19] - r[0])
+
+
+def test_slant_through_random_warps_is_mostly_kept():
+    # slant and 3 px random warps together: the straight-line-in-z part of the warps cannot be
+    # told from slant, so the first-difference term trades one for the other. Measured change
+    # over the block 2.07 px RMS (1.22 px with elastic_chain=0, 3.54 px with 0.1); a strong
+    # first-difference term straightens the slant and leaves far more (measured 4.97 px)
+    st = make_stack(n=20, size=512, seed=3, offset=30.0, warp=3.0, slant=0.5)
+    al = align_sections(ArraySource(st.images), small_settings())
+    r = residuals(st, al, border=100)
+    assert rms(r[19] - r[0]) <= 2.5
+    assert rms(r[19] - r[0]) < 0.5 * _straightened_change(st)
 
 
 def test_damaged_and_lost_sections():

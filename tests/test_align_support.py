@@ -38,7 +38,9 @@ def _smooth_field(rng, shape, amplitude, wavelength):
             kx, ky = rng.normal(0, 1, 2) * 2 * np.pi / wavelength
             out[..., comp] += np.cos(kx * xs + ky * ys + rng.uniform(0, 2 * np.pi))
     mag = np.hypot(out[..., 0], out[..., 1]).max()
-    return (out * (amplitude / mag)).astype(np.float32) if amplitude > 0 else out.astype(np.float32)
+    # amplitude 0 means no field (the random numbers are still drawn, so the rest of a
+    # stack does not change with it)
+    return (out * (amplitude / mag) if amplitude > 0 else 0.0 * out).astype(np.float32)
 
 
 def _deaffine(field_xy, lo, hi, step=8):

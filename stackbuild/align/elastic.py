@@ -50,6 +50,52 @@ def _membrane(ny: int, nx: int) -> sp.csr_matrix:
     return sp.vstack([dx, dy]).tocsr()
 
 
+def _chain_rows(sections, matches, index, nn, chain, blocks, rhs, wts) -> None:
+    """Append first-difference rows ``u_b - u_a = v_ab`` (weight ``chain / gap``) to the lists."""
+    n = len(sections)
+    for (a, b), (shifts, weights) in sorted(matches.items()):
+        if a not in index or b not in index:
+            continue
+        w = np.asarray(weights, np.float64).ravel() * (chain / (b - a))
+        if not (w > 0).any():
+            continue
+        cols = np.concatenate([index[a] * nn + np.arange(nn), index[b] * nn + np.arange(nn)])
+        vals = np.concatenate([-np.ones(nn), np.ones(nn)])
+        blocks.append(sp.csr_matrix((vals, (np.tile(np.arange(nn), 2), cols)), shape=(nn, n * nn)))
+        rhs.append(np.nan_to_num(shifts).reshape(nn, 2))
+        wts.append(w)
+
+
+def _affine_chain_rows(sections, shape, matches, index, weight, blocks, rhs, wts) -> None:
+    """Append, per pair, 3 rows ``L (u_b - u_a) = L v_ab`` with ``L = (X'WX)^(-1/2) X'W``.
+
+    ``X`` holds the affine basis ``(x, y, 1)`` of the grid nodes and ``W`` the
+    match weights, so ``||L r||^2`` is the weighted squared norm of the
+    weighted-least-squares affine part of ``r`` (the rest of ``r`` costs nothing).
+    """
+    ny, nx = shape
+    nn = ny * nx
+    ys, xs = np.mgrid[0:ny, 0:nx].astype(np.float64)
+    x = np.column_stack([(xs.ravel() - xs.mean()) / max(1.0, nx), (ys.ravel() - ys.mean()) / max(1.0, ny),
+                         np.ones(nn)])
+    n = len(sections)
+    for (a, b), (shifts, weights) in sorted(matches.items()):
+        if a not in index or b not in index:
+            continue
+        w = np.asarray(weights, np.float64).ravel()
+        g = x.T @ (w[:, None] * x)
+        if (w > 0).sum() < 6 or np.linalg.cond(g) > 1e8:
+            continue
+        ev, evec = np.linalg.eigh(g)
+        ell = (evec @ np.diag(ev ** -0.5) @ evec.T) @ (x.T * w)          # (3, nn)
+        cols = np.concatenate([index[a] * nn + np.arange(nn), index[b] * nn + np.arange(nn)])
+        vals = np.concatenate([-ell, ell], axis=1)
+        rows = np.repeat(np.arange(3), 2 * nn)
+        blocks.append(sp.csr_matrix((vals.ravel(), (rows, np.tile(cols, 3))), shape=(3, n * nn)))
+        rhs.append(ell @ np.nan_to_num(shifts).reshape(nn, 2))
+        wts.append(np.full(3, weight / (b - a)))
+
+
 def _solve_spd(a: sp.csc_matrix, b: np.ndarray, nn: int, direct_limit: int = 4000) -> np.ndarray:
     """Solve the SPD system ``a x = b`` (two right-hand sides).
 
@@ -76,7 +122,8 @@ def _solve_spd(a: sp.csc_matrix, b: np.ndarray, nn: int, direct_limit: int = 400
 
 def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
                  stiffness: float = 1.0, pull: float = 1e-3, max_gap: int = 2,
-                 prior: dict[int, np.ndarray] | None = None) -> dict[int, np.ndarray]:
+                 prior: dict[int, np.ndarray] | None = None,
+                 chain: float = 0.0, affine_chain: float = 0.0) -> dict[int, np.ndarray]:
     """Return the displacement field ``u_z`` (shape ``(ny, nx, 2)``, pixels) of every section.
 
     Parameters
@@ -96,6 +143,18 @@ def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
         what the data leave free (fields linear in z).
     max_gap : int
         Largest z gap between a section and a neighbour used in a constraint.
+    chain : float
+        Weight of a first-difference data term ``u_b - u_a = v_ab`` beside the
+        second differences (0 = none). It sees the straight-line-in-z part of
+        the fields, so it trades keeping a steady slant against removing the
+        straight-line part of random warps; see Notes.
+    affine_chain : float
+        Weight of a first-difference term on the affine part only (over the
+        grid, weighted like the data) of ``u_b - u_a - v_ab`` (0 = none).
+        The coarse stage already removes the steady change of the affine part
+        along z (see :mod:`stackbuild.align.solve`); this term does the same
+        with the denser, sub-pixel block matches, so the random-walk error of
+        the coarse chain does not survive as a straight line in z.
     prior : dict, optional
         Fields already applied when ``matches`` were measured (a refinement
         round): the answer is then the *increment* to add to them, while the
@@ -147,6 +206,10 @@ def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
         m = (g1 * np.nan_to_num(s2) - g2 * np.nan_to_num(s1)) / (g1 + g2)
         rhs.append(m.reshape(nn, 2))
         wts.append(w)
+    if chain > 0:
+        _chain_rows(sections, matches, index, nn, chain, blocks, rhs, wts)
+    if affine_chain > 0:
+        _affine_chain_rows(sections, (ny, nx), matches, index, affine_chain, blocks, rhs, wts)
     if not blocks:
         return zero
     d = sp.vstack(blocks).tocsr()

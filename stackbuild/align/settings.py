@@ -49,6 +49,16 @@ class AlignSettings:
     elastic_pull : float
         Weight of the weak pull of every displacement field toward zero (fixes
         only what the data leave free: fields that change linearly with z).
+    elastic_chain : float
+        Weight of a first-difference term in the elastic solve, relative to the
+        second-difference data (0 = none). Larger values remove more of the
+        straight-line-in-z part of random warps but also straighten structures
+        that slant steadily through the block.
+    elastic_affine_chain : float
+        Weight of a first-difference term on the affine part of the elastic
+        fields (relative to the second-difference data; 0 = none): the affine
+        part of the block matches fixes the steady change of the section
+        affines along z, which the coarse features measure less precisely.
     elastic_rounds : int
         Rounds of block matching and solving; each round measures what the
         fields so far have left.
@@ -79,6 +89,8 @@ class AlignSettings:
     max_features: int = 4000
     max_vector_deviation: float = 6.0
     elastic_pull: float = 1e-3
+    elastic_chain: float = 0.02
+    elastic_affine_chain: float = 0.0
     elastic_rounds: int = 2
     damaged_fraction: float = 0.85
     damaged_contrast: float = 0.6

@@ -202,7 +202,9 @@ def _elastic(source, sections, affines, settings, scratch, mapper, tick):
         # damaged regions keep a tenth of their say (common practice, no source)
         matches = {(a, b): (v[0], v[1] * np.where(low[a] | low[b], 0.1, 1.0)) for (a, b), v in found.items()}
         step = solve_fields(sections, grid.shape, matches, stiffness=settings.stiffness,
-                            pull=settings.elastic_pull, max_gap=settings.neighbours, prior=fields)
+                            pull=settings.elastic_pull, max_gap=settings.neighbours, prior=fields,
+                            chain=settings.elastic_chain,
+                            affine_chain=settings.elastic_affine_chain)
         fields = step if fields is None else {z: fields[z] + step[z] for z in sections}
     return grid, fields, first, low, share
 

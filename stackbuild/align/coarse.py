@@ -114,6 +114,9 @@ def estimate_model(src: np.ndarray, dst: np.ndarray, model: str = "affine", thre
     if n < 3:
         return none
     fn = cv2.estimateAffine2D if model == "affine" else cv2.estimateAffinePartial2D
+    # OpenCV draws RANSAC samples from a per-thread generator whose state depends on every
+    # earlier call; seeding it makes each pair's answer independent of what ran before
+    cv2.setRNGSeed(0)
     mat, mask = fn(src.astype(np.float32), dst.astype(np.float32), method=cv2.RANSAC,
                    ransacReprojThreshold=float(threshold), maxIters=int(max_iters),
                    confidence=float(confidence), refineIters=10)

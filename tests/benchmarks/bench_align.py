@@ -2,7 +2,9 @@
 
 Run: ``python tests/benchmarks/bench_align.py`` (1024 px working size) or ``--full``
 (4096 px, the size the brief names). Everything is measured in one run and
-printed side by side.
+printed side by side. ``--tradeoff`` instead sweeps ``elastic_chain`` over the
+ground-truth stacks of the align tests (invented data; about two minutes):
+random-warp residual against slant kept.
 """
 from __future__ import annotations
 
@@ -81,10 +83,37 @@ def bench_solve(n_sections, rng, nodes=16):
     return t_aff, t_el
 
 
+def tradeoff(weights=(0.0, 0.01, 0.02, 0.03, 0.1)):
+    """Print residual RMS / p95 of random warps beside the slant change, per ``elastic_chain``."""
+    import sys
+    from dataclasses import replace
+    from pathlib import Path
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+    from test_align_support import make_stack, p95, residuals, rms, small_settings
+    from stackbuild.align.sources import ArraySource
+    from stackbuild.align.stage import align_sections
+    stacks = {"random": (make_stack(n=20, size=768, seed=0, offset=40.0), 150),
+              "slant": (make_stack(n=20, size=512, seed=3, offset=30.0, warp=0.0, slant=0.5), 100),
+              "slant+warp": (make_stack(n=20, size=512, seed=3, offset=30.0, warp=3.0, slant=0.5), 100)}
+    print("  chain   random rms  p95    slant change  slant+warp change   (px; 20 sections)")
+    for c in weights:
+        out = []
+        for name, (st, border) in stacks.items():
+            al = align_sections(ArraySource(st.images), replace(small_settings(), elastic_chain=c))
+            r = residuals(st, al, border=border)
+            out.append((rms(np.stack(list(r.values()))), p95(np.stack(list(r.values()))))
+                       if name == "random" else rms(r[19] - r[0]))
+        print(f"  {c:5.3f}   {out[0][0]:10.3f}  {out[0][1]:5.3f}  {out[1]:12.3f}  {out[2]:17.3f}")
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--full", action="store_true", help="4096 px working size (default 1024)")
+    ap.add_argument("--tradeoff", action="store_true", help="sweep elastic_chain on ground-truth stacks")
     args = ap.parse_args()
+    if args.tradeoff:
+        tradeoff()
+        return
     n = 4096 if args.full else 1024
     s = AlignSettings()
     r = bench_pair(n, s)

@@ -30,11 +30,12 @@ def test_random_distortions_are_removed(random_stack):
     lin, rest = split_linear(r)
     allr = np.stack(list(r.values()))
     # what a second-difference elastic solve is answerable for: the part not linear in z
-    assert rms(rest) <= 1.0 and p95(rest) <= 2.0
+    # issue targets 1.0 / 2.0; measured 0.56 / 1.08
+    assert rms(rest) <= 0.75 and p95(rest) <= 1.4
     # the plain residual also holds the straight-line-in-z part of the random warps, which
     # second differences cannot tell from a steady slant; the weak first-difference term
     # (elastic_chain) takes most of it out. Issue targets RMS <= 1.0, p95 <= 2.0;
-    # measured 0.91 / 1.69 (1.32 / 2.52 without the term)
+    # measured 0.89 / 1.66 (1.25 / 2.36 without the term)
     assert rms(allr) <= 1.0 and p95(allr) <= 2.0
     assert rms(allr) < 0.5 * rms(np.stack(list(coarse.values())))
     assert all("residual_next" in al[z].stats for z in range(19))

@@ -29,8 +29,9 @@ its weight sets how much of a straight-line change along z is read as warp
 (removed) rather than slant (kept) -- a trade-off no weight escapes, since
 the two look alike in the data. Measured on the align tests' invented
 stacks, 20 sections (random warps: residual RMS; pure slant: change over
-the block): chain 0 -> 1.32 / 0.19 px, 0.01 -> 1.04 / 0.34, 0.02 -> 0.91 /
-0.52, 0.03 -> 0.83 / 0.68, 0.1 -> 0.63 / 1.34. An optional first-difference
+the block; ``python tests/benchmarks/bench_align.py --tradeoff``): chain 0 ->
+1.25 / 0.19 px, 0.01 -> 1.01 / 0.34, 0.02 -> 0.89 / 0.52, 0.03 -> 0.82 /
+0.68, 0.1 -> 0.63 / 1.34. An optional first-difference
 term on the affine part only (``affine_chain``) does the same for the
 affine part, which the coarse stage already treats that way.
 """

@@ -47,7 +47,13 @@ def test_no_drift_over_fifty_sections():
     st = make_stack(n=50, size=384, seed=5, offset=20.0, warp=0.0)
     al = align_sections(ArraySource(st.images), small_settings(elastic=False, max_features=800))
     r = residuals(st, al, border=60, step=24)
-    assert rms(r[49]) <= 1.5 and rms(r[0]) <= 1.5
+    # issue target 1.5 px; measured 0.03 / 0.02 px (no warps since warp=0 gives a zero field)
+    assert rms(r[49]) <= 0.2 and rms(r[0]) <= 0.2
+    # and the whole stage on 4 px random warps: measured 0.75 / 0.72 px at the two ends
+    st = make_stack(n=50, size=384, seed=5, offset=20.0, warp=4.0)
+    al = align_sections(ArraySource(st.images), small_settings(max_features=800))
+    r = residuals(st, al, border=60, step=24)
+    assert rms(r[49]) <= 1.0 and rms(r[0]) <= 1.0
 
 
 def test_steady_slant_is_kept():

@@ -357,9 +357,6 @@ def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
                         format="%(levelname)s %(name)s: %(message)s")
-    if not args.debug:  # Dask's own start/stop chatter is not news to the user
-        for name in ("distributed", "tornado", "asyncio"):
-            logging.getLogger(name).setLevel(logging.ERROR)
     try:
         return COMMANDS[args.command](args)
     except InputError as exc:

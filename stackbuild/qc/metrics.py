@@ -44,10 +44,12 @@ volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
                     ``landmark_residual`` (``None`` until landmarks exist), ``at``
                     (the image centre). Empty when the build has no channels.
 ``totals``          the measures that ``--fail-on`` can test, see
-                    :data:`stackbuild.qc.thresholds.MEASURES`.
+                    :data:`stackbuild.qc.thresholds.MEASURES`; ``align.*`` are
+                    over adjacent plane pairs only (pairs across a lost section
+                    are in ``sections`` and ``blocks.csv``, and named in ``notes``).
 ``worst``           ``tile``, ``pair``, ``section_stitch``, ``section_align``,
                     ``channel`` (lowest ``measure_after``): the worst row of each (or ``None``).
-``notes``           what could not be measured, and why.
+``notes``           what could not be measured or was left out of the totals, and why.
 
 ``blocks.csv`` beside it lists every section-to-section block (``z_from``,
 ``z_to``, ``x_px``, ``y_px``, ``dx``, ``dy``, ``residual``, ``ncc``) so any
@@ -263,7 +265,9 @@ def _totals(tiles, pairs, sections, channels, meas: Measurements) -> dict:
         vals = [key(r) for r in rows if key(r) is not None]
         return max(vals) if vals else None
 
-    plane = [summarize(pp.blocks.magnitudes) for pp in meas.plane_pairs]
+    # Planes either side of a lost section are two or more cuts apart: their residuals hold real
+    # change of the tissue, so they are reported per section but kept out of the volume totals.
+    plane = [summarize(pp.blocks.magnitudes) for pp in meas.plane_pairs if pp.zb - pp.za == 1]
     n_pairs = sum(r["accepted"] is not None for r in pairs)
     rejected = sum(r["accepted"] is False for r in pairs)
     fs = sum(bool(r["flags"]) for r in sections)
@@ -319,6 +323,11 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
     else:
         lost = {sc.z(s) for s in canvas.lost_sections} if canvas else set()
         meas.plane_pairs = measure_planes(meas.source, lost, settings, progress)
+        gaps = [f"{pp.za}-{pp.zb}" for pp in meas.plane_pairs if pp.zb - pp.za > 1]
+        if gaps:
+            meas.notes.append("plane pairs across a lost section (" + ", ".join(gaps) + ") compare tissue "
+                              "two or more sections apart; they are listed per section but not counted "
+                              "in the align.* totals")
     sections = _section_rows(secs, stitches, aligns, seam_sums, meas, sc)
     channels = _channel_rows(store, secs, aligns, sc)
     meas.notes += [f"section {r['section']} tile pair {r['a']}-{r['b']}: {r['error']}" for r in pairs if r["error"]]

@@ -31,7 +31,7 @@ MEASURES = {
     "stitch.p95": ("distance", "worst section's seam residual 95th percentile"),
     "stitch.max": ("distance", "largest seam residual anywhere"),
     "align.rms": ("distance", "worst plane pair's residual RMS"),
-    "align.p95": ("distance", "worst plane pair's residual 95th percentile"),
+    "align.p95": ("distance", "worst adjacent plane pair's residual 95th percentile"),
     "align.max": ("distance", "largest section-to-section residual anywhere"),
     "elastic.max": ("distance", "largest elastic displacement"),
     "flagged": ("count", "flagged sections plus flagged tiles"),

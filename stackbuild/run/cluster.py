@@ -59,6 +59,11 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
     """
     from distributed import Client, LocalCluster
 
+    if not logging.getLogger().isEnabledFor(logging.DEBUG):
+        # Importing distributed configures its loggers at INFO; its start/stop chatter is not news.
+        for name in ("distributed", "tornado"):
+            logging.getLogger(name).setLevel(logging.ERROR)
+
     if scheduler:
         try:
             if Path(scheduler).is_file():

@@ -338,8 +338,9 @@ def _verdict_status(verdict, fail_on: list[str] | None) -> int:
     """Exit 3 only when the user set a bar with --fail-on; otherwise the verdict is in the report."""
     if getattr(verdict, "passed", True):
         return EXIT_OK
+    what = "quality bar missed" if fail_on else "report verdict (default bars; see qc/report.html)"
     for line in getattr(verdict, "failures", []):
-        print(f"stackbuild: quality bar missed: {line}", file=sys.stderr)
+        print(f"stackbuild: {what}: {line}", file=sys.stderr)
     return EXIT_FAILED_BAR if fail_on else EXIT_OK
 
 

@@ -123,3 +123,10 @@ def test_update_restitches_the_reimaged_section(built, tiny_data, tmp_path):
     old = stackbuild.open_volume(built, level=0, lazy=False)[1].compute()
     # ... and shows the new tiles (the canvas may grow a pixel when the section is re-placed)
     assert written[written > 0].mean() > old[old > 0].mean() * 1.05
+
+
+def test_report_fail_on_sets_the_exit_status(built, capsys):
+    assert main(["report", str(built), "--quiet", "--fail-on", "stitch.rms>100px"]) == 0
+    assert main(["report", str(built), "--quiet", "--fail-on", "align.p95>0.001px"]) == 3
+    assert "quality bar missed" in capsys.readouterr().err
+    assert main(["report", str(built), "--quiet", "--fail-on", "p95 is bad"]) == 2

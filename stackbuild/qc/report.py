@@ -36,11 +36,15 @@ class Verdict:
         One line per failed threshold: the condition and the measured value.
     paths : list of Path
         Every file written under ``DIR/qc``.
+    missed_bars : list of str
+        The failures among the ``fail_on`` expressions alone (what a batch
+        script asked to be checked; the CLI's exit status follows these).
     """
 
     passed: bool
     failures: list[str] = field(default_factory=list)
     paths: list[Path] = field(default_factory=list)
+    missed_bars: list[str] = field(default_factory=list)
 
 
 def _thresholds(settings: ReportSettings, fail_on) -> list[Threshold]:
@@ -282,4 +286,7 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     paths = write_metrics(doc, folder.qc_dir, meas) + [p for _, p in figures]
     page = folder.qc_dir / "report.html"
     atomic_write_text(page, render_html(doc, rows, passed, figures, settings))
-    return Verdict(passed, failures, paths + [page])
+    asked = set(parse_fail_on_list([t for t in (fail_on or []) if not isinstance(t, Threshold)])
+                + [t for t in (fail_on or []) if isinstance(t, Threshold)])
+    _, missed, _ = judge(doc, [t for t in thresholds if t in asked])
+    return Verdict(passed, failures, paths + [page], missed)

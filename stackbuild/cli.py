@@ -55,7 +55,13 @@ def _parser() -> argparse.ArgumentParser:
                     "Raw tiles are only read, never written.")
     top.add_argument("--version", action="version", version=f"stackbuild {__version__}")
     sub = top.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    _add_build(sub)
+    _add_stages(sub)
+    _add_synth(sub)
+    return top
 
+
+def _add_build(sub) -> None:
     b = sub.add_parser("build", help="run the whole pipeline: stitch, align, render, report",
                        description="Run every stage on a tile manifest and write the build folder DIR: "
                                    "DIR/volume.zarr (OME-Zarr 0.5), DIR/transforms/, DIR/qc/report.html.")
@@ -81,6 +87,8 @@ def _parser() -> argparse.ArgumentParser:
     _add_cluster(b)
     _add_common(b)
 
+
+def _add_stages(sub) -> None:
     s = sub.add_parser("stitch", help="stitch the sections of an existing build folder",
                        description="Register overlapping tiles and solve tile placements and intensity "
                                    "corrections; results go to DIR/transforms.")
@@ -134,9 +142,6 @@ def _parser() -> argparse.ArgumentParser:
                    help="tile manifest holding only the re-imaged sections")
     _add_cluster(u)
     _add_common(u)
-
-    _add_synth(sub)
-    return top
 
 
 def _add_synth(sub) -> None:

@@ -130,3 +130,22 @@ def test_report_fail_on_sets_the_exit_status(built, capsys):
     assert main(["report", str(built), "--quiet", "--fail-on", "align.p95>0.001px"]) == 3
     assert "quality bar missed" in capsys.readouterr().err
     assert main(["report", str(built), "--quiet", "--fail-on", "p95 is bad"]) == 2
+
+
+def test_stage_runs_on_an_existing_scheduler_from_its_file(built, tmp_path):
+    # The path a Slurm run takes (dask-jobqueue workers behind a scheduler file), with local workers.
+    from distributed import LocalCluster
+
+    work = tmp_path / "b"
+    shutil.copytree(built, work)
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        sched = tmp_path / "scheduler.json"
+        sched.write_text(json.dumps({"address": cluster.scheduler_address}))
+        assert main(["stitch", str(work), "--sections", "1", "--scheduler", str(sched), "--quiet"]) == 0
+    store = stackbuild.transforms.TransformStore(work / "transforms")
+    assert len(store.history("stitch", 1)) == 1  # re-stitched there; the first version kept
+
+
+def test_unreachable_scheduler_is_a_clear_error(built, capsys):
+    assert main(["stitch", str(built), "--scheduler", "tcp://127.0.0.1:9", "--quiet"]) == 2
+    assert "cannot reach the Dask scheduler" in capsys.readouterr().err

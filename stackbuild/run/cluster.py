@@ -67,9 +67,9 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
     if scheduler:
         try:
             if Path(scheduler).is_file():
-                client = Client(scheduler_file=scheduler, timeout="30s")
+                client = Client(scheduler_file=scheduler, timeout="10s")
             else:
-                client = Client(scheduler, timeout="30s")
+                client = Client(scheduler, timeout="10s")
         except OSError as exc:
             raise InputError(f"cannot reach the Dask scheduler {scheduler!r} ({exc})") from None
         _pin_worker_threads(client)

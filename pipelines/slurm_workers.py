@@ -1,0 +1,56 @@
+"""Start Dask workers on a Slurm cluster and write a scheduler file for ``stackbuild --scheduler``.
+
+Usage (on a login node, inside the environment where stackbuild is installed)::
+
+    pip install '.[cluster]'
+    python pipelines/slurm_workers.py --jobs 20 --cores 8 --memory 64GiB --walltime 12:00:00 \\
+        --scheduler-file ~/stackbuild-scheduler.json &
+    stackbuild build tiles.csv --out /scratch/volume1 --scheduler ~/stackbuild-scheduler.json \\
+        --config pipelines/cluster_large.toml
+
+Each Slurm job runs one Dask worker process per core with one thread each
+(stackbuild's tasks are CPU-bound NumPy/OpenCV work). The scheduler lives in
+this script's process: keep it running until the build ends; stop it with
+Ctrl-C, which also cancels the Slurm jobs. If the build is killed, start it
+again with ``--resume``; finished sections and planes are kept.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import time
+from pathlib import Path
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--jobs", type=int, default=4, help="number of Slurm jobs to submit")
+    ap.add_argument("--cores", type=int, default=8, help="cores per job (one worker process each)")
+    ap.add_argument("--memory", default="32GiB", help="memory per job")
+    ap.add_argument("--walltime", default="04:00:00", help="Slurm walltime per job")
+    ap.add_argument("--queue", default=None, help="Slurm partition")
+    ap.add_argument("--account", default=None, help="Slurm account")
+    ap.add_argument("--scheduler-file", type=Path, required=True,
+                    help="where to write the scheduler address for 'stackbuild --scheduler'")
+    args = ap.parse_args()
+
+    from dask_jobqueue import SLURMCluster
+
+    cluster = SLURMCluster(cores=args.cores, processes=args.cores, memory=args.memory,
+                           walltime=args.walltime, queue=args.queue, account=args.account,
+                           job_script_prologue=["export OMP_NUM_THREADS=1 OPENBLAS_NUM_THREADS=1"])
+    cluster.scale(jobs=args.jobs)
+    tmp = args.scheduler_file.with_suffix(".tmp")
+    tmp.write_text(json.dumps({"address": cluster.scheduler_address}))
+    os.replace(tmp, args.scheduler_file)
+    print(f"scheduler at {cluster.scheduler_address}; written to {args.scheduler_file}", flush=True)
+    try:
+        while True:
+            time.sleep(60)
+    except KeyboardInterrupt:
+        cluster.close()
+
+
+if __name__ == "__main__":
+    main()

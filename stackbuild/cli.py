@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import json
 import logging
 import shutil
 import sys
@@ -78,7 +79,8 @@ def _add_build(sub) -> None:
                    help="pipeline settings; see pipelines/default.toml for every key")
     g = b.add_mutually_exclusive_group()
     g.add_argument("--resume", action="store_true",
-                   help="continue an interrupted build in DIR, keeping every finished section and plane")
+                   help="continue an interrupted build in DIR, keeping every finished section and plane; "
+                        "the build's own settings are used (settings given again must match)")
     g.add_argument("--overwrite", action="store_true",
                    help="delete the outputs of an earlier build in DIR (build.json, transforms/, "
                         "volume.zarr, qc/) and start again; raw tiles are never touched")
@@ -194,9 +196,16 @@ def _prepare_folder(args) -> "BuildFolder":
     if build.exists():
         if args.resume:
             old = build.load_state()
-            if old.get("tiles") != record["tiles"]:
+            if old.get("tiles") != record["tiles"] and not old.get("manifests"):
                 raise InputError(f"--resume: this build was made from {old.get('tiles')}, "
                                  f"not {record['tiles']}", file=build.state_path)
+            given = args.config or args.pixel_size is not None or args.section_thickness is not None
+            changed = _changed_settings(old.get("config", {}), json.loads(json.dumps(record["config"]))) \
+                if given else []  # no settings given: carry on with the build's own
+            if changed or (args.channels and old.get("channels") != record["channels"]):
+                what = ", ".join(changed) if changed else "the channel manifest"
+                raise InputError(f"--resume: {what} differ from the interrupted build's; resume with the "
+                                 "same settings, or start again with --overwrite", file=build.state_path)
             return build
         if not args.overwrite:
             raise InputError("already holds a build; pass --resume to continue it or --overwrite "
@@ -213,6 +222,13 @@ def _prepare_folder(args) -> "BuildFolder":
     build.root.mkdir(parents=True, exist_ok=True)
     build.save_state({**record, "stages": {}})
     return build
+
+
+def _changed_settings(old: dict, new: dict) -> list[str]:
+    """Return ``table.key`` names whose values differ between two settings records."""
+    return sorted(f"{t}.{k}" for t in set(old) | set(new)
+                  for k in set(old.get(t, {})) | set(new.get(t, {}))
+                  if old.get(t, {}).get(k) != new.get(t, {}).get(k))
 
 
 def _positive(value: float, name: str) -> float:

@@ -149,3 +149,9 @@ def test_stage_runs_on_an_existing_scheduler_from_its_file(built, tmp_path):
 def test_unreachable_scheduler_is_a_clear_error(built, capsys):
     assert main(["stitch", str(built), "--scheduler", "tcp://127.0.0.1:9", "--quiet"]) == 2
     assert "cannot reach the Dask scheduler" in capsys.readouterr().err
+
+
+def test_resume_with_other_settings_is_refused(built, tiny_data, capsys):
+    assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(built), "--resume", "--pixel-size", "5",
+                 "--quiet"]) == 2
+    assert "volume.pixel_size" in capsys.readouterr().err

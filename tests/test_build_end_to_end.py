@@ -123,6 +123,7 @@ def test_update_restitches_the_reimaged_section(built, tiny_data, tmp_path):
     old = stackbuild.open_volume(built, level=0, lazy=False)[1].compute()
     # ... and shows the new tiles (the canvas may grow a pixel when the section is re-placed)
     assert written[written > 0].mean() > old[old > 0].mean() * 1.05
+    assert (work / "volume.zarr" / "channels").is_dir()  # marker pyramids survive a full re-render
 
 
 def test_report_fail_on_sets_the_exit_status(built, capsys):

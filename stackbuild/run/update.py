@@ -3,8 +3,9 @@
 The new tile manifest lists only the sections that were imaged again. Their
 old tiles are replaced (in a new merged manifest kept inside the build
 folder; the user's files are never edited), those sections are stitched
-again, the stack is re-aligned (the global solve couples all sections), and
-only the planes whose transforms moved are rendered again.
+again, the stack is re-aligned (the global solve couples all sections), the
+marker images are registered again (their maps are relative to the section
+frame), and only the EM planes whose transforms moved are rendered again.
 """
 from __future__ import annotations
 
@@ -98,11 +99,14 @@ def update_build(build: BuildFolder, new_tiles: Path, *, workers=None, scheduler
         stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", show)), sections=new.sections)
         stages.align_stage(build, client_mapper(client, ProgressBar("align", show)),
                            progress=ProgressBar("solve", show))
+        # Marker images are registered to the section frame, which re-stitching moves.
+        stages.channels_stage(build, client_mapper(client, ProgressBar("channels", show)))
         planes = sorted(set(_moved_planes(build, before, first)) | {s - first for s in new.sections})
         try:
             facts = stages.render_stage(build, planes=planes, progress=ProgressBar("render", show))
         except InputError as exc:  # the canvas grew or shrank: every plane must be rendered again
             log.info("full re-render: %s", exc)
             facts = stages.render_stage(build, overwrite=True, progress=ProgressBar("render", show))
+        stages.render_channels_stage(build, progress=ProgressBar("markers", show))
     stages.report_stage(build, progress=ProgressBar("report", show))
     return {"sections": new.sections, "planes": facts.get("planes", []), "manifest": str(merged)}

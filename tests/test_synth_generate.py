@@ -118,3 +118,20 @@ def test_bad_settings_are_input_errors(tmp_path):
         generate(tmp_path, SynthParams(sections=3, lost_sections="7"))
     with pytest.raises(InputError, match="neighbouring"):
         generate(tmp_path, SynthParams(repetitive_pair="0:r0c0-r1c1"))
+
+
+def test_regenerating_replaces_an_earlier_sample_and_keeps_other_files(tmp_path):
+    from stackbuild.errors import InputError
+    from stackbuild.synth import SynthParams, generate
+
+    small = dict(sections=2, grid=(1, 2), tile_size=96, cell_size=40.0, offset=4.0, warp=1.0)
+    generate(tmp_path, SynthParams(channels=1, **small))
+    (tmp_path / "README.md").write_text("notes")
+    generate(tmp_path, SynthParams(channels=0, **small))
+    assert not (tmp_path / "channels.csv").exists()  # no stale channel manifest
+    assert (tmp_path / "README.md").read_text() == "notes"
+    foreign = tmp_path / "foreign"
+    foreign.mkdir()
+    (foreign / "data.txt").write_text("keep")
+    with pytest.raises(InputError, match="holds no synthetic sample"):
+        generate(foreign, SynthParams(**small))

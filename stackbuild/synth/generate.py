@@ -3,11 +3,13 @@ from __future__ import annotations
 
 import csv
 import io
+import shutil
 from pathlib import Path
 
 import numpy as np
 import tifffile
 
+from ..errors import InputError
 from .acquire import (expose, fold_record, quantise, repeat_record, tile_gain_offset, tile_signal,
                       vignetting_profile)
 from .channels import CHANNEL_LAYERS, CHANNEL_NAMES, channel_affine, channel_shape, render_channel
@@ -98,13 +100,33 @@ def _write_csv(path: Path, header: list[str], rows: list[list]) -> None:
     path.write_text(buf.getvalue(), encoding="utf-8")
 
 
+_OUTPUTS = ("tiles.csv", "channels.csv", "tiles", "channels", "truth")
+
+
+def _clear_previous(out: Path) -> None:
+    """Remove an earlier sample's files from ``out`` (other files stay); refuse a foreign folder."""
+    if not out.exists() or not any(out.iterdir()):
+        return
+    if not (out / "truth" / "truth.json").is_file():
+        raise InputError("exists, is not empty and holds no synthetic sample; choose an empty or new folder",
+                         file=out)
+    for name in _OUTPUTS:
+        target = out / name
+        if target.is_dir():
+            shutil.rmtree(target)
+        elif target.exists():
+            target.unlink()
+
+
 def generate(outdir, params: SynthParams = SynthParams()) -> Path:
     """Return the tile manifest path of a freshly written synthetic sample.
 
     Parameters
     ----------
     outdir : str or Path
-        Folder to write into (created if needed): ``tiles.csv``, ``tiles/``,
+        Folder to write into: new, empty, or holding an earlier sample (whose
+        generated files are replaced; others, e.g. a README, are kept):
+        ``tiles.csv``, ``tiles/``,
         ``channels.csv``, ``channels/`` (when ``params.channels > 0``) and
         ``truth/`` (see :mod:`stackbuild.synth.truth`).
     params : SynthParams
@@ -122,6 +144,7 @@ def generate(outdir, params: SynthParams = SynthParams()) -> Path:
     """
     params.check()
     out = Path(outdir)
+    _clear_previous(out)
     out.mkdir(parents=True, exist_ok=True)
     lost = set(params.lost())
     tile_rows, chan_rows, sections, fields, folds = [], [], {}, {}, {}

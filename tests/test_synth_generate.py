@@ -121,9 +121,6 @@ def test_bad_settings_are_input_errors(tmp_path):
 
 
 def test_regenerating_replaces_an_earlier_sample_and_keeps_other_files(tmp_path):
-    from stackbuild.errors import InputError
-    from stackbuild.synth import SynthParams, generate
-
     small = dict(sections=2, grid=(1, 2), tile_size=96, cell_size=40.0, offset=4.0, warp=1.0)
     generate(tmp_path, SynthParams(channels=1, **small))
     (tmp_path / "README.md").write_text("notes")

@@ -116,7 +116,9 @@ def render_block(plan: RenderPlan, z: int, y0: int, y1: int, x0: int, x1: int) -
     img = render_region(stitch, alignment, int(plan.origin_x) + x0, int(plan.origin_y) + y0,
                         x1 - x0, y1 - y0, scale=1, order=plan.order, contrast=contrast)
     info = np.iinfo(dtype)
-    return np.clip(np.rint(img), info.min, info.max).astype(dtype)[None]
+    np.rint(img, out=img)  # in place: one pass fewer over the block than chained temporaries
+    np.clip(img, info.min, info.max, out=img)
+    return img.astype(dtype)[None]
 
 
 def _edges(n: int, step: int) -> list[tuple[int, int]]:

@@ -240,3 +240,19 @@ def test_blended_mosaic_with_the_shortcut_matches_skimage_warp_of_the_whole_imag
     # The weight-returning path blends every pixel; both give the same values (float rounding apart).
     full, _ = render_region(stitch, SectionAlignment(0, pull), 0, 0, 256, 256, order=1, return_weight=True)
     np.testing.assert_allclose(ours[inside], full[inside], atol=1e-3)
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16])
+def test_mean_reducer_matches_skimage_block_reduce_rounded_half_up(dtype):
+    rng = np.random.default_rng(3)
+    top = np.iinfo(dtype).max
+    img = rng.integers(0, top, (2, 18, 22), dtype=dtype, endpoint=True)
+    img[0, :4, :4] = top  # the largest sums: no overflow in the narrow accumulator
+    # Reference: skimage.measure.block_reduce with np.mean (even sizes), rounded half up.
+    ref = np.floor(measure.block_reduce(img.astype(np.float64), (1, 2, 2), np.mean) + 0.5)
+    np.testing.assert_array_equal(reduce2x2(img, "mean"), ref.astype(dtype))
+    # Odd sizes: the last row and column repeat (numpy.pad mode "edge" as the reference).
+    odd = img[:, :17, :21]
+    padded = np.pad(odd.astype(np.float64), [(0, 0), (0, 1), (0, 1)], mode="edge")
+    ref = np.floor(measure.block_reduce(padded, (1, 2, 2), np.mean) + 0.5)
+    np.testing.assert_array_equal(reduce2x2(odd, "mean"), ref.astype(dtype))

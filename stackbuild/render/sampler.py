@@ -287,7 +287,6 @@ def _warp_tile(stitch, t, box, key, m, grid, scale, flag, acc, only=None):
     u = (m[0, 0] * x + m[0, 1] * y + m[0, 2] - t.x - half) / scale + 1  # + 1: the tile's ring
     v = (m[1, 0] * x + m[1, 1] * y + m[1, 2] - t.y - half) / scale + 1
     inv = np.array([[m[0, 0], m[0, 1], u], [m[1, 0], m[1, 1], v]])
-    val = _warp_rect(val_img, inv, (0, d - c, 0, b - a), flag)
     e0 = e1 = f0 = f1 = 0
     if only is not None:
         e0, e1 = _index_range(only[0], only[2], cx0, scale, width)
@@ -296,36 +295,39 @@ def _warp_tile(stitch, t, box, key, m, grid, scale, flag, acc, only=None):
     direct = None
     if e0 < e1 and f0 < f1:
         direct = (c + f0, c + f1, a + e0, a + e1)
-        acc[0, c + f0:c + f1, a + e0:a + e1] = val[f0:f1, e0:e1]
+        # OpenCV writes into the (strided) view of acc itself: no temporary, no copy.
+        _warp_rect(val_img, inv, (f0, f1, e0, e1), flag, out=acc[0, c + f0:c + f1, a + e0:a + e1])
         strips = [(0, f0, 0, b - a), (f1, d - c, 0, b - a), (f0, f1, 0, e0), (f0, f1, e1, b - a)]
     else:
         strips = [(0, d - c, 0, b - a)]
     blended = []
     for r0, r1, c0, c1 in strips:
         if r0 < r1 and c0 < c1:
-            w = _warp_rect(w_img, inv, (r0, r1, c0, c1), flag)
-            _accumulate(acc[:, c + r0:c + r1, a + c0:a + c1], val[r0:r1, c0:c1], w)
+            rect = (r0, r1, c0, c1)
+            _accumulate(acc[:, c + r0:c + r1, a + c0:a + c1], _warp_rect(val_img, inv, rect, flag),
+                        _warp_rect(w_img, inv, rect, flag))
             blended.append((c + r0, c + r1, a + c0, a + c1))
     return direct, blended
 
 
-def _warp_rect(src: np.ndarray, inv: np.ndarray, rect, flag: int) -> np.ndarray:
-    """Return rows ``r0:r1``, columns ``c0:c1`` of ``src`` warped by the 2x3 output -> source map ``inv``."""
+def _warp_rect(src: np.ndarray, inv: np.ndarray, rect, flag: int, out: np.ndarray | None = None) -> np.ndarray:
+    """Return rows ``r0:r1``, columns ``c0:c1`` of ``src`` warped by the 2x3 output -> source map ``inv``.
+
+    The result is written into ``out`` (float32, ``(r1 - r0, c1 - c0)``, may be a strided view) if given.
+    """
     r0, r1, c0, c1 = rect
-    if r1 - r0 <= _MAX_MAP and c1 - c0 <= _MAX_MAP:  # the usual case: no copy
-        part = inv.copy()
-        part[:, 2] += inv[:, 0] * c0 + inv[:, 1] * r0
-        return cv2.warpAffine(src, part, (c1 - c0, r1 - r0), flags=flag | cv2.WARP_INVERSE_MAP,
-                              borderMode=cv2.BORDER_CONSTANT, borderValue=0)
-    out = np.empty((r1 - r0, c1 - c0), np.float32)
+    if out is None:
+        out = np.empty((r1 - r0, c1 - c0), np.float32)
     for i in range(r0, r1, _MAX_MAP):
         for j in range(c0, c1, _MAX_MAP):
             i1, j1 = min(i + _MAX_MAP, r1), min(j + _MAX_MAP, c1)
             part = inv.copy()
             part[:, 2] += inv[:, 0] * j + inv[:, 1] * i
-            out[i - r0:i1 - r0, j - c0:j1 - c0] = cv2.warpAffine(
-                src, part, (j1 - j, i1 - i), flags=flag | cv2.WARP_INVERSE_MAP,
-                borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+            dst = out[i - r0:i1 - r0, j - c0:j1 - c0]
+            got = cv2.warpAffine(src, part, (j1 - j, i1 - i), dst=dst, flags=flag | cv2.WARP_INVERSE_MAP,
+                                 borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+            if got is not dst:  # OpenCV reallocated (it should not): keep the result anyway
+                dst[...] = got
     return out
 
 

@@ -32,16 +32,24 @@ def camera():
     return np.round(ndimage.gaussian_filter(data.camera()[:256, :256].astype(np.float64), 2.0)).astype(np.uint8)
 
 
+def _skimage_bilinear(image: np.ndarray, pull: Affine2D):
+    """Return ``skimage.transform.warp`` of ``image`` through ``pull`` (order 1) and the mask of
+    output pixels whose source lies at least one pixel inside the image."""
+    ref = transform.warp(image.astype(np.float64), transform.AffineTransform(matrix=pull.homogeneous),
+                         order=1, preserve_range=True)
+    h, w = image.shape
+    yy, xx = np.mgrid[:h, :w]
+    src = pull.apply(np.column_stack([xx.ravel(), yy.ravel()])).reshape(h, w, 2)
+    inside = (src[..., 0] > 1) & (src[..., 0] < w - 2) & (src[..., 1] > 1) & (src[..., 1] < h - 2)
+    return ref, inside
+
+
 def test_affine_resampling_matches_skimage_warp(tmp_path, camera):
     stitch = _one_tile(tmp_path, camera)
     pull = Affine2D.similarity(0.9, 0.3, tx=20.0, ty=-15.0, center=(128, 128))  # aligned -> section
     ours = render_region(stitch, SectionAlignment(0, pull), 0, 0, 256, 256, order=1)
     # Reference: skimage.transform.warp with the same inverse map and order=1 (bilinear).
-    ref = transform.warp(camera.astype(np.float64), transform.AffineTransform(matrix=pull.homogeneous),
-                         order=1, preserve_range=True)
-    yy, xx = np.mgrid[:256, :256]
-    src = pull.apply(np.column_stack([xx.ravel(), yy.ravel()])).reshape(256, 256, 2)
-    inside = (src[..., 0] > 1) & (src[..., 0] < 254) & (src[..., 1] > 1) & (src[..., 1] < 254)
+    ref, inside = _skimage_bilinear(camera, pull)
     assert inside.mean() > 0.5
     assert np.abs(ours[inside] - ref[inside]).max() <= 1.0
 
@@ -230,11 +238,7 @@ def test_blended_mosaic_with_the_shortcut_matches_skimage_warp_of_the_whole_imag
     # Reference: skimage.transform.warp of the uncut image (scikit-image's bundled camera), bilinear;
     # tiles cut from one image at exact positions blend back to it, within OpenCV's 1/32-pixel
     # quantisation (one grey level, as in the single-tile test above).
-    ref = transform.warp(camera.astype(np.float64), transform.AffineTransform(matrix=pull.homogeneous),
-                         order=1, preserve_range=True)
-    yy, xx = np.mgrid[:256, :256]
-    src = pull.apply(np.column_stack([xx.ravel(), yy.ravel()])).reshape(256, 256, 2)
-    inside = (src[..., 0] > 1) & (src[..., 0] < 254) & (src[..., 1] > 1) & (src[..., 1] < 254)
+    ref, inside = _skimage_bilinear(camera, pull)
     assert inside.mean() > 0.8
     assert np.abs(ours[inside] - ref[inside]).max() <= 1.0
     # The weight-returning path blends every pixel; both give the same values (float rounding apart).

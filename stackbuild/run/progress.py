@@ -29,18 +29,26 @@ class ProgressBar:
         self.stream = stream or sys.stderr
         self.start = time.monotonic()
         self._last_decile = -1
+        self._total = None
+        self._phase = 1
         self._tty = hasattr(self.stream, "isatty") and self.stream.isatty()
 
     def __call__(self, done: int, total: int) -> None:
         """Report that ``done`` of ``total`` units are finished."""
         if not self.enabled or total <= 0:
             return
+        if self._total is not None and total != self._total:  # a stage's next phase starts a new bar
+            self._phase += 1
+            self.start = time.monotonic()
+            self._last_decile = -1
+        self._total = total
         frac = min(1.0, done / total)
         elapsed = time.monotonic() - self.start
         eta = elapsed / frac - elapsed if frac > 0 else float("nan")
         width = 28
         bar = "#" * int(frac * width) + "-" * (width - int(frac * width))
-        text = f"{self.label:>8} [{bar}] {done}/{total} {elapsed:6.1f}s"
+        label = self.label if self._phase == 1 else f"{self.label} ({self._phase})"
+        text = f"{label:>12} [{bar}] {done}/{total} {elapsed:6.1f}s"
         if 0 < frac < 1:
             text += f" (about {eta:.0f}s left)"
         if self._tty:

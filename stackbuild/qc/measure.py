@@ -10,8 +10,8 @@ from dataclasses import dataclass, field
 from itertools import combinations
 
 import numpy as np
-import tifffile
 
+from ..tiles import read_tile
 from ..transforms.records import Canvas, SectionAlignment, SectionStitch
 from .blockmatch import BlockMatches, match_blocks
 from .planes import PlaneSource, data_mask
@@ -71,13 +71,6 @@ def section_to_output(points: np.ndarray, alignment: SectionAlignment | None, ca
     return p
 
 
-def _read_tile(path: str) -> np.ndarray:
-    img = tifffile.imread(path)
-    if img.ndim != 2:
-        raise ValueError(f"tile is not a single 2-D image (shape {img.shape})")
-    return img.astype(np.float32)
-
-
 def _seam_pairs(stitch: SectionStitch, min_side: int) -> list[tuple[str, str]]:
     if stitch.pairs:
         return [(p.a, p.b) for p in stitch.pairs]
@@ -97,7 +90,8 @@ def measure_seams(stitch: SectionStitch, settings: ReportSettings) -> list[SeamB
     def tile(name: str):
         if name not in cache:
             try:
-                cache[name] = _read_tile(stitch.tile(name).path)
+                t = stitch.tile(name)
+                cache[name] = read_tile(t.path, t.height, t.width, stitch.section).astype(np.float32)
             except Exception as exc:  # an unreadable tile leaves its seams unmeasured, not the report
                 cache[name] = f"{name}: {type(exc).__name__}: {exc}"
         return cache[name]

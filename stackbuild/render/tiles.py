@@ -17,11 +17,11 @@ from pathlib import Path
 
 import cv2
 import numpy as np
-import tifffile
 
 from ..errors import InputError
 
 from ..stitch.intensity import illumination_at_tile_size
+from ..tiles import read_tile  # a module global, so tests can count the reads
 
 
 def _nbytes(value) -> int:
@@ -73,25 +73,6 @@ class ByteLRU:
 
 
 TILE_CACHE = ByteLRU(int(float(os.environ.get("STACKBUILD_TILE_CACHE_MB", "128")) * 2 ** 20))
-
-
-def read_tile(path: str | Path, height: int, width: int, section: int | None = None) -> np.ndarray:
-    """Return the pixels of one tile, checking them against the recorded size.
-
-    Raises
-    ------
-    InputError
-        If the file is missing, unreadable, or not ``height x width``.
-    """
-    try:
-        img = tifffile.imread(path)
-    except Exception as exc:  # tifffile raises many types for bad data
-        raise InputError(f"tile is missing or unreadable ({type(exc).__name__}: {exc})",
-                         file=path, section=section) from None
-    if img.shape != (height, width):
-        raise InputError(f"tile is {img.shape}, the stitch record says {(height, width)}",
-                         file=path, section=section)
-    return img
 
 
 def block_mean(img: np.ndarray, factor: int) -> np.ndarray:

@@ -5,10 +5,10 @@ import math
 from collections import Counter
 
 import numpy as np
-import tifffile
 
 from ..errors import InputError
 from ..manifest import TileEntry
+from ..tiles import read_tile as read_raw_tile
 from ..transforms.records import PairMatch, SectionStitch, TilePlacement
 from .inspect import flag_tiles, tile_stats
 from .intensity import (illumination_at_tile_size, illumination_profile, solve_gain_offset,
@@ -23,25 +23,10 @@ MIN_ILLUMINATION_TILES = 3
 
 
 def read_tile(entry: TileEntry, section: int) -> np.ndarray:
-    """Return the pixels of one tile, checked against its manifest entry.
-
-    Raises
-    ------
-    InputError
-        Naming the tile file when its pixels cannot be decoded or do not
-        match the shape and type the manifest recorded from its header.
-    """
+    """Return the pixels of one tile, checked against the shape and type its manifest header gave."""
     where = f" (manifest line {entry.row})" if entry.row else ""
-    try:
-        img = tifffile.imread(entry.path, key=0)
-    except Exception as exc:  # tifffile and the codecs raise many exception types
-        raise InputError(f"cannot read the pixels of tile {entry.tile!r}{where}: "
-                         f"{type(exc).__name__}: {exc}", file=entry.path, section=section) from None
-    if img.shape != (entry.height, entry.width) or img.dtype.str.lstrip("<>|=") != entry.dtype:
-        raise InputError(f"tile {entry.tile!r}{where} has shape {img.shape} {img.dtype}, but its "
-                         f"header said ({entry.height}, {entry.width}) {entry.dtype}",
-                         file=entry.path, section=section)
-    return img
+    return read_raw_tile(entry.path, entry.height, entry.width, section, dtype=entry.dtype,
+                         what=f"tile {entry.tile!r}{where}", source="header")
 
 
 def _check_settings(s: StitchSettings) -> None:

@@ -30,6 +30,7 @@ import zarr
 from zarr.codecs import BloscCodec
 
 from ..errors import InputError
+from ..manifest import image_header
 from ..run.folder import BuildFolder
 from ..render.ngff import multiscales_attrs, root_attrs
 from ..render.reduce import level_shapes, reduce2x2, reduced_size
@@ -116,7 +117,7 @@ def _write_channel(folder, name, recs, canvas, settings, progress, done_before, 
     pixel_sizes = {r["pixel_size_nm"] for r in recs.values()}
     level = channel_level(min(pixel_sizes), canvas.pixel_size_nm)
     shapes = level_shapes(*_level0_shape(canvas, level), settings.chunk)
-    dtypes = [np.dtype(tifffile.TiffFile(r["path"]).pages.first.dtype) for r in recs.values()]
+    dtypes = [np.dtype(image_header(Path(r["path"]))[2]) for r in recs.values()]
     dtype = np.result_type(*dtypes)
     em_levels = multiscales_attrs(name, level + len(shapes), canvas.pixel_size_nm,
                                   canvas.section_thickness_nm, settings.reducer)

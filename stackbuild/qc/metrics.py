@@ -66,8 +66,9 @@ import json
 from pathlib import Path
 
 import numpy as np
-import tifffile
 
+from ..errors import InputError
+from ..manifest import image_header
 from ..run.folder import BuildFolder
 from ..transforms.records import Canvas
 from ..transforms.types import Affine2D
@@ -228,11 +229,10 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale) -> li
 def _image_size(path: str) -> tuple[int, int] | None:
     """Return ``(width, height)`` from an image header, or None if it cannot be read."""
     try:
-        with tifffile.TiffFile(path) as tf:
-            shape = tf.pages[0].shape
-        return int(shape[1]), int(shape[0])
-    except Exception:
+        height, width, _ = image_header(Path(path))
+    except InputError:
         return None
+    return width, height
 
 
 def _channel_rows(store, sections, aligns, sc: _Scale) -> list[dict]:

@@ -91,6 +91,49 @@ class TileManifest:
         """The tiles' common pixel type."""
         return self.tiles[0].dtype
 
+    def to_json(self) -> dict:
+        """Return the checked entries as a JSON-ready dict, one list per field (compact for 1M tiles)."""
+        cols = {name: [getattr(t, name) for t in self.tiles] for name in _ENTRY_FIELDS}
+        cols["path"] = [str(p) for p in cols["path"]]
+        return {"source": str(self.source), "count": len(self.tiles), "columns": cols}
+
+    @classmethod
+    def from_json(cls, doc: dict) -> "TileManifest":
+        """Rebuild a manifest written by :meth:`to_json`, without opening any tile.
+
+        Raises
+        ------
+        ValueError
+            If ``doc`` is not what :meth:`to_json` writes (missing or ragged
+            columns, values of the wrong type).
+        """
+        try:
+            n, cols, source = doc["count"], doc["columns"], Path(doc["source"])
+            values = [_json_column(cols[name], kind, n, name) for name, kind in _ENTRY_FIELDS.items()]
+        except (KeyError, TypeError) as exc:
+            raise ValueError(f"not a tile manifest record ({type(exc).__name__}: {exc})") from None
+        values[_PATH_AT] = [Path(p) for p in values[_PATH_AT]]
+        return cls(source, [TileEntry(*row) for row in zip(*values)])
+
+
+#: TileEntry fields in constructor order, with the JSON type each column holds.
+_ENTRY_FIELDS = {"section": int, "tile": str, "path": str, "x": float, "y": float,
+                 "width": int, "height": int, "dtype": str, "row": int}
+_PATH_AT = list(_ENTRY_FIELDS).index("path")
+
+
+def _json_column(values, kind: type, n: int, name: str) -> list:
+    """Return one column of :meth:`TileManifest.to_json` output, checked for length and type."""
+    if not isinstance(values, list) or len(values) != n:
+        raise ValueError(f"column {name!r} is not a list of {n} values")
+    if kind is float:  # JSON writes 3.0 as 3.0, but accept integers written by hand
+        if not all(type(v) in (float, int) for v in values):
+            raise ValueError(f"column {name!r} holds a value that is not a number")
+        return [float(v) for v in values]
+    if not all(type(v) is kind for v in values):
+        raise ValueError(f"column {name!r} holds a value that is not {kind.__name__}")
+    return values
+
 
 def _read_rows(path: Path, required: tuple[str, ...]):
     if not path.is_file():

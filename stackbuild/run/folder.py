@@ -6,12 +6,18 @@ Layout::
     DIR/transforms/       every transform, apart from the pixels (see stackbuild.transforms.store)
     DIR/volume.zarr/      OME-Zarr 0.5: em/ (EM pyramid), channels/<name>/ (marker pyramids)
     DIR/qc/               metrics.json, CSV tables, PNG plots, report.html
+    DIR/manifests/        merged tile manifests written by ``update``, and
+                          tiles.checked.json, the checked tile manifest (a cache)
 
 Raw tiles are only ever read, never written.
 """
 from __future__ import annotations
 
+import datetime as _dt
+import hashlib
 import json
+import logging
+import os
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -22,6 +28,10 @@ from ..transforms.store import TransformStore, atomic_write_text
 
 STATE_FORMAT = "stackbuild.build"
 STATE_VERSION = 1
+SNAPSHOT_FORMAT = "stackbuild.checked-manifest"
+SNAPSHOT_VERSION = 1
+
+log = logging.getLogger(__name__)
 
 
 @dataclass
@@ -109,11 +119,105 @@ class BuildFolder:
         state = self.load_state()
         return PipelineConfig.from_json(state.get("config", {}), str(self.state_path))
 
+    @property
+    def snapshot_path(self) -> Path:
+        """``DIR/manifests/tiles.checked.json``, the checked tile manifest."""
+        return self.root / "manifests" / "tiles.checked.json"
+
     def tile_manifest(self) -> TileManifest:
-        """Re-read and check the tile manifest this build was made from."""
-        return read_tile_manifest(self.load_state()["tiles"])
+        """Return the checked tile manifest this build is made from, opening tile headers only when needed.
+
+        The first call checks the CSV fully (every tile's header included, see
+        :func:`stackbuild.manifest.read_tile_manifest`) and keeps the result in
+        :attr:`snapshot_path`, with the CSV's path, size, mtime_ns and sha256.
+        Later calls hash the CSV and return the snapshot when path and digest
+        still match; otherwise the CSV is checked again and the snapshot
+        rewritten. ``update`` points the build at a new CSV, whose digest
+        differs, so the snapshot follows it.
+
+        Notes
+        -----
+        The snapshot is a cache, never the source of truth: a missing,
+        truncated or unreadable one is rebuilt, and one that cannot be written
+        (a read-only build folder) is skipped. One written by a newer
+        stackbuild is refused, as the build record and transform store refuse
+        theirs, since it means a newer version is at work in this folder.
+        Tiles whose files change after the check are not seen here; they are
+        caught where pixels are read (:func:`stackbuild.tiles.read_tile`
+        checks every decoded tile against its recorded size and type).
+
+        Raises
+        ------
+        InputError
+            For a bad manifest or tile (as ``read_tile_manifest``), or a
+            snapshot written by a newer stackbuild.
+        """
+        csv_path = Path(self.load_state()["tiles"])
+        if not csv_path.is_file():
+            return read_tile_manifest(csv_path)  # names the missing file
+        facts = _csv_facts(csv_path)
+        kept = self._kept_manifest(facts)
+        if kept is not None:
+            return kept
+        manifest = read_tile_manifest(csv_path)
+        self._keep_manifest(manifest, facts)
+        return manifest
+
+    def _kept_manifest(self, facts: dict) -> TileManifest | None:
+        """Return the snapshot's manifest if it was checked from the CSV described by ``facts``."""
+        path = self.snapshot_path
+        try:
+            doc = json.loads(path.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            return None
+        except (OSError, ValueError) as exc:  # truncated, not UTF-8, not JSON
+            log.info("rebuilding %s: unreadable (%s)", path, exc)
+            return None
+        if not isinstance(doc, dict) or doc.get("format") != SNAPSHOT_FORMAT \
+                or not isinstance(doc.get("version"), int):
+            log.info("rebuilding %s: not a %s file", path, SNAPSHOT_FORMAT)
+            return None
+        if doc["version"] > SNAPSHOT_VERSION:
+            raise InputError(f"written by a newer stackbuild (version {doc['version']}, this one reads "
+                             f"up to {SNAPSHOT_VERSION}); use that version, or delete the file (it is "
+                             "rebuilt from the tile manifest)", file=path)
+        csv = doc.get("csv")
+        if not isinstance(csv, dict) or {k: csv.get(k) for k in ("path", "sha256")} != \
+                {k: facts[k] for k in ("path", "sha256")}:
+            log.info("rebuilding %s: the tile manifest %s changed", path, facts["path"])
+            return None
+        try:
+            return TileManifest.from_json(doc.get("record"))
+        except ValueError as exc:
+            log.info("rebuilding %s: %s", path, exc)
+            return None
+
+    def _keep_manifest(self, manifest: TileManifest, facts: dict) -> None:
+        """Write the snapshot of a freshly checked manifest; skip it if the folder is not writable."""
+        doc = {"format": SNAPSHOT_FORMAT, "version": SNAPSHOT_VERSION, "kind": "tiles",
+               "written": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+               "csv": facts, "record": manifest.to_json()}
+        try:
+            atomic_write_text(self.snapshot_path, json.dumps(doc, allow_nan=False, separators=(",", ":")))
+        except OSError as exc:
+            log.warning("cannot keep the checked tile manifest in %s (%s); every stage start will "
+                        "check the tiles again", self.snapshot_path, exc)
 
     def channel_manifest(self):
         """Re-read the channel manifest, or return ``[]`` if the build has none."""
         path = self.load_state().get("channels")
         return read_channel_manifest(path) if path else []
+
+
+def _csv_facts(path: Path) -> dict:
+    """Return the resolved path, size, mtime_ns and sha256 of a manifest file.
+
+    The digest is taken before the file is checked, so an edit made during
+    the check can only leave a stale digest (a rebuild next time), never a
+    snapshot that claims content it was not made from.
+    """
+    path = path.resolve()
+    with path.open("rb") as fh:
+        st = os.fstat(fh.fileno())
+        digest = hashlib.file_digest(fh, "sha256").hexdigest()
+    return {"path": str(path), "size": st.st_size, "mtime_ns": st.st_mtime_ns, "sha256": digest}

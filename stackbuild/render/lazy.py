@@ -17,6 +17,7 @@ from collections import OrderedDict
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
+import cv2
 import dask.array as da
 import numpy as np
 from dask.base import tokenize
@@ -29,7 +30,7 @@ from ..transforms.store import TransformStore
 from .canvas import compute_canvas
 from .contrast import DOC_KIND, section_contrast
 from .ngff import AXES, level_transform
-from .reduce import level_shapes, reduce2x2
+from .reduce import level_shapes, reduce2x2, reduced_size
 from .sampler import interpolation_order, render_region
 
 
@@ -115,10 +116,25 @@ def render_block(plan: RenderPlan, z: int, y0: int, y1: int, x0: int, x1: int) -
     contrast = section_contrast(_contrast_doc(plan.transforms), section) if plan.contrast else None
     img = render_region(stitch, alignment, int(plan.origin_x) + x0, int(plan.origin_y) + y0,
                         x1 - x0, y1 - y0, scale=1, order=plan.order, contrast=contrast)
+    return to_pixels(img, dtype)[None]
+
+
+_CV_DEPTH = {np.dtype(np.uint8): cv2.CV_8U, np.dtype(np.uint16): cv2.CV_16U}
+
+
+def to_pixels(img: np.ndarray, dtype) -> np.ndarray:
+    """Return float ``img`` rounded half to even and saturated to the integer ``dtype``.
+
+    For 8- and 16-bit unsigned output OpenCV's saturating conversion does it in one pass
+    (it rounds half to even, as :func:`numpy.rint` does); other types go through numpy.
+    """
+    dtype = np.dtype(dtype)
+    if dtype in _CV_DEPTH:
+        return cv2.multiply(img, 1.0, dtype=_CV_DEPTH[dtype])
     info = np.iinfo(dtype)
-    np.rint(img, out=img)  # in place: one pass fewer over the block than chained temporaries
+    np.rint(img, out=img)
     np.clip(img, info.min, info.max, out=img)
-    return img.astype(dtype)[None]
+    return img.astype(dtype)
 
 
 def _edges(n: int, step: int) -> list[tuple[int, int]]:
@@ -132,7 +148,7 @@ def level0(plan: RenderPlan, planes: list[int] | None = None) -> da.Array:
         if not 0 <= p < plan.depth:
             raise ValueError(f"plane {p} is outside the volume (depth {plan.depth})")
     ys, xs = _edges(plan.height, plan.chunk), _edges(plan.width, plan.chunk)
-    name = "stackbuild-level0-" + tokenize(plan, planes, _records_token(plan, planes))
+    name = "stackbuild-level0-" + tokenize(plan, planes, records_token(plan, planes))
     dsk = {}
     for k, z in enumerate(planes):
         for i, (a, b) in enumerate(ys):
@@ -143,7 +159,7 @@ def level0(plan: RenderPlan, planes: list[int] | None = None) -> da.Array:
     return da.Array(graph, name, chunks, dtype=np.dtype(plan.dtype))
 
 
-def _records_token(plan: RenderPlan, planes: list[int]) -> tuple:
+def records_token(plan: RenderPlan, planes: list[int]) -> tuple:
     """Modification times of the records behind ``planes``, so a changed record gets a new graph name."""
     store = TransformStore(plan.transforms)
     return tuple((_mtime(store.section_dir(plan.first_section + z) / "stitch.json"),
@@ -151,7 +167,27 @@ def _records_token(plan: RenderPlan, planes: list[int]) -> tuple:
 
 
 def _reduce_quad(kids: list[list[np.ndarray]], reducer: str) -> np.ndarray:
-    return reduce2x2(np.block(kids), reducer)
+    """Return the 2x2 reduction of the (up to) 2 x 2 blocks ``kids`` as if they were one array.
+
+    When every block but the last in each row and column has an even height and width
+    (always, for even block edges), each block is reduced on its own straight into its
+    place in the result: no concatenated copy of the four blocks is ever made.
+    """
+    heights = [row[0].shape[-2] for row in kids]
+    widths = [b.shape[-1] for b in kids[0]]
+    if any(n % 2 for n in heights[:-1] + widths[:-1]):
+        return reduce2x2(np.block(kids), reducer)
+    first = kids[0][0]
+    out = np.empty(first.shape[:-2] + (sum(reduced_size(n) for n in heights),
+                                       sum(reduced_size(n) for n in widths)), first.dtype)
+    r = 0
+    for row, h in zip(kids, heights):
+        c = 0
+        for b, w in zip(row, widths):
+            out[..., r:r + reduced_size(h), c:c + reduced_size(w)] = reduce2x2(b, reducer)
+            c += reduced_size(w)
+        r += reduced_size(h)
+    return out
 
 
 def reduce_level(arr: da.Array, reducer: str, block: int) -> da.Array:

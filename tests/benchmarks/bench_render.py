@@ -3,7 +3,10 @@
 Run as ``python tests/benchmarks/bench_render.py`` (modest default size) or with
 ``--full``. Scheduler: dask's threaded scheduler with 2 threads by default, or
 ``--cluster`` for a ``dask.distributed.LocalCluster`` of 2 single-threaded
-worker processes. Measured side by side in one run:
+worker processes; either way OpenCV runs single-threaded inside each task, as in
+the build's workers (:mod:`stackbuild.run.cluster`). Measured side by side in one
+run, alternating, ``--repeat`` times each (the best of each is reported, since the
+machine is shared):
 
 * render + pyramid: ``render_volume`` wall time, all levels written together;
 * I/O floor: reading every tile once (tifffile) + writing the level-0 pixels
@@ -22,6 +25,7 @@ import tempfile
 import time
 from pathlib import Path
 
+import cv2
 import dask
 import numpy as np
 import tifffile
@@ -75,6 +79,7 @@ def main(argv=None) -> None:
     ap.add_argument("--full", action="store_true", help="4 sections of 6 x 6 tiles instead of 2 of 3 x 3")
     ap.add_argument("--cluster", action="store_true", help="LocalCluster, 2 worker processes")
     ap.add_argument("--keep", type=Path, help="build in this folder and keep it")
+    ap.add_argument("--repeat", type=int, default=4, help="alternating runs of render and floor (default 4)")
     args = ap.parse_args(argv)
     n_sections, grid = (4, 6) if args.full else (2, 3)
     root = args.keep or Path(tempfile.mkdtemp(prefix="bench_render_"))
@@ -92,10 +97,10 @@ def main(argv=None) -> None:
         print("scheduler: dask.distributed LocalCluster, 2 worker processes x 1 thread")
     else:
         dask.config.set(scheduler="threads", num_workers=2)
-        print("scheduler: dask threaded, 2 threads")
-    # Measured side by side, twice each in turn; the best of each is reported (the machine is shared).
+        cv2.setNumThreads(1)
+        print("scheduler: dask threaded, 2 threads; OpenCV single-threaded per task")
     renders, floors = [], []
-    for _ in range(2):
+    for _ in range(args.repeat):
         tiles_mod.TILE_CACHE.clear()
         facts = render_volume(folder.root, settings, overwrite=True)
         renders.append(facts["seconds"])
@@ -108,7 +113,8 @@ def main(argv=None) -> None:
     print(f"levels: {facts['levels']}")
     print(f"render + pyramid: {t_render:.2f} s (runs: {', '.join(f'{t:.2f}' for t in renders)}), "
           f"{mpx0 / t_render:.1f} Mpx/s of level 0, {facts['megapixels'] / t_render:.1f} Mpx/s all levels")
-    print(f"I/O floor: read tiles {t_read:.2f} s + write level 0 {t_write:.2f} s = {floor:.2f} s")
+    print(f"I/O floor: read tiles {t_read:.2f} s + write level 0 {t_write:.2f} s = {floor:.2f} s "
+          f"(runs: {', '.join(f'{sum(f):.2f}' for f in floors)})")
     print(f"ratio render+pyramid / I/O floor: {t_render / floor:.2f} (target <= 2)")
     times = _windows(folder)
     print(f"random 1024x1024 lazy window: cold {times[0]:.3f} s, median {statistics.median(times):.3f} s, "

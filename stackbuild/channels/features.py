@@ -42,7 +42,7 @@ import numpy as np
 KINDS = ("intensity", "edges", "density")
 
 
-def block_mean(img: np.ndarray, factor: int) -> np.ndarray:
+def whole_block_mean(img: np.ndarray, factor: int) -> np.ndarray:
     """Return means of ``factor x factor`` blocks (trailing partial blocks dropped), float32."""
     img = np.asarray(img, np.float32)
     if factor == 1:
@@ -125,7 +125,7 @@ def em_feature(em_fine: np.ndarray, mask_fine: np.ndarray, kind: str, fine: int,
     if k % fine:
         raise ValueError(f"fine scale {fine} must divide the channel scale {k}")
     if kind == "intensity":
-        return block_mean(em_fine, k // fine)
+        return whole_block_mean(em_fine, k // fine)
     size = max(structure_px / fine, 0.5)
     if kind == "edges":
         feat = dark_lines(em_fine, 3.0 * size, mask_fine)
@@ -133,7 +133,7 @@ def em_feature(em_fine: np.ndarray, mask_fine: np.ndarray, kind: str, fine: int,
         feat = dark_blobs(em_fine, max(size / np.sqrt(2.0), 0.7), mask_fine)
     if spread_px > 0:
         feat = cv2.GaussianBlur(feat, (0, 0), spread_px / fine)
-    return block_mean(feat, k // fine)
+    return whole_block_mean(feat, k // fine)
 
 
 def marker_feature(marker: np.ndarray, kind: str, sigma: float = 1.0) -> np.ndarray:

@@ -45,7 +45,7 @@ from ..render.sampler import render_region
 from ..run.folder import BuildFolder
 from ..transforms.store import TransformStore
 from ..transforms.types import Affine2D
-from .features import KINDS, block_mean, em_feature, marker_feature
+from .features import KINDS, whole_block_mean, em_feature, marker_feature
 from .mutual_info import MODELS, register_mutual_information
 from .settings import ChannelSettings
 
@@ -138,7 +138,7 @@ def _register_features(em_fine, mask_fine, moving, start: Affine2D, fine: int, k
     With ``feature = "auto"`` every kind of :data:`AUTO_KINDS` is tried and the
     one whose optimum stands out most (largest distinctness) is kept.
     """
-    fmask = block_mean(mask_fine.astype(np.float32), k // fine) > 0.999
+    fmask = whole_block_mean(mask_fine.astype(np.float32), k // fine) > 0.999
     kinds = AUTO_KINDS if st.feature == "auto" else (st.feature,)
     best, tried = None, {}
     for kind in kinds:

@@ -6,6 +6,7 @@ section), 3 the report missed a ``--fail-on`` bar, 1 an unexpected error.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import dataclasses
 import json
 import logging
@@ -16,6 +17,7 @@ from pathlib import Path
 
 from . import __version__
 from .errors import InputError
+from .run.lock import LOCK_NAME, build_lock
 
 EXIT_OK, EXIT_ERROR, EXIT_INPUT, EXIT_FAILED_BAR = 0, 1, 2, 3
 _OUR_OUTPUTS = ("build.json", "transforms", "volume.zarr", "qc")
@@ -216,7 +218,7 @@ def _prepare_folder(args) -> "BuildFolder":
                 shutil.rmtree(target)
             elif target.exists():
                 target.unlink()
-    elif build.root.exists() and any(build.root.iterdir()) and not args.overwrite:
+    elif build.root.exists() and any(p.name != LOCK_NAME for p in build.root.iterdir()) and not args.overwrite:
         raise InputError("exists, is not empty and holds no build; choose an empty or new folder",
                          file=build.root)
     build.root.mkdir(parents=True, exist_ok=True)
@@ -379,7 +381,9 @@ def main(argv: list[str] | None = None) -> int:
     logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
                         format="%(levelname)s %(name)s: %(message)s")
     try:
-        return COMMANDS[args.command](args)
+        folder = args.out if args.command == "build" else getattr(args, "dir", None)
+        with build_lock(folder) if folder else contextlib.nullcontext():
+            return COMMANDS[args.command](args)
     except InputError as exc:
         if args.debug:
             raise

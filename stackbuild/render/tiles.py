@@ -173,18 +173,17 @@ def _prepare(p: Path, tile, profile, scale: int, section) -> np.ndarray:
             img = np.float32(tile.gain) * img + np.float32(tile.offset)
         value = cv2.copyMakeBorder(block_mean(img, scale), 1, 1, 1, 1, cv2.BORDER_REPLICATE)
     else:
-        # Full resolution, the hot path of the render: one fused pass writes
-        # gain * raw / illumination straight into the ring's interior, about 4x faster
-        # than converting, dividing, scaling and padding one after the other.
+        # Full resolution, the hot path of the render: gain * raw / illumination is
+        # written straight into the ring's interior, in one or two passes instead of
+        # converting, dividing, scaling and padding one after the other (about 4x faster).
         value = np.empty((tile.height + 2, tile.width + 2), np.float32)
         inner = value[1:-1, 1:-1]
         if profile is not None:
-            got = cv2.divide(raw, _illumination(profile, tile.height, tile.width), dst=inner,
-                             scale=float(tile.gain), dtype=cv2.CV_32F)
+            np.divide(raw, _illumination(profile, tile.height, tile.width), out=inner, dtype=np.float32)
+            if tile.gain != 1.0:
+                inner *= np.float32(tile.gain)
         else:
-            got = cv2.multiply(raw, 1.0, dst=inner, scale=float(tile.gain), dtype=cv2.CV_32F)
-        if not np.shares_memory(got, value):  # OpenCV reallocated (it should not): keep the result anyway
-            inner[...] = got
+            np.multiply(raw, np.float32(tile.gain), out=inner, dtype=np.float32)
         if tile.offset != 0.0:
             inner += np.float32(tile.offset)
         value[0, 1:-1], value[-1, 1:-1] = value[1, 1:-1], value[-2, 1:-1]

@@ -1,9 +1,9 @@
 """The render stage: write the registered volume as a multiscale OME-Zarr 0.5 pyramid (zarr v3).
 
 All levels are written in the same pass: level ``n+1`` is computed from level
-``n`` in the same dask graph (see :func:`written_pyramid`), and every level's
-dask blocks are that level's shards, so no two tasks ever write the same shard. Planes are written in
-small batches; after each batch the list of finished planes is saved to
+``n`` in the same dask graph, one task per shard and level, so no two tasks ever
+write the same shard (see :mod:`stackbuild.render.pyramid`). Planes are written in
+batches; after each batch the list of finished planes is saved to
 ``volume.zarr/em/.stackbuild_done.json``, so a killed render resumes with the
 planes not yet done, and ``planes=[...]`` re-renders only those planes.
 """
@@ -16,11 +16,7 @@ import time
 from dataclasses import asdict
 from pathlib import Path
 
-import dask.array as da
-import numpy as np
 import zarr
-from dask.base import tokenize
-from dask.highlevelgraph import HighLevelGraph
 from zarr.codecs import BloscCodec
 
 from ..errors import BuildFolderError, InputError
@@ -28,8 +24,9 @@ from ..run.folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from .canvas import compute_canvas
 from .contrast import DOC_KIND, contrast_record, measure_range
-from .lazy import RenderPlan, records_token, reduce_level, render_block, section_records
+from .lazy import RenderPlan, section_records
 from .ngff import multiscales_attrs, root_attrs
+from .pyramid import pyramid_writes
 from .reduce import REDUCERS, level_shapes
 from .sampler import interpolation_order
 
@@ -211,74 +208,6 @@ def _write_checkpoint(em: Path, stamp: dict, done: set[int]) -> None:
     atomic_write_text(em / CHECKPOINT, json.dumps({"stamp": stamp, "done": sorted(done)}) + "\n")
 
 
-def _write_through(block: np.ndarray, target, z: int, block_info=None) -> np.ndarray:
-    """Write one block to its place in ``target`` (plane ``z`` on), and pass it on to the next level."""
-    (k0, k1), (y0, y1), (x0, x1) = block_info[0]["array-location"]
-    target[z + k0:z + k1, y0:y1, x0:x1] = block
-    return block
-
-
-def _render_shard(plan: RenderPlan, target, z: int, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
-    """Render level-0 pixels ``[z, y0:y1, x0:x1]`` (one shard) chunk by chunk, write them to ``target``, return them.
-
-    The chunks are exactly the lazy volume's blocks (:func:`stackbuild.render.lazy.render_block`
-    on the same edges), so the written level 0 equals the lazy one byte for byte; rendering
-    them straight into one shard-sized buffer spares a rechunk (a graph layer and a copy).
-    """
-    out = np.empty((1, y1 - y0, x1 - x0), np.dtype(plan.dtype))
-    c = plan.chunk
-    for a in range(y0, y1, c):
-        for b in range(x0, x1, c):
-            out[:, a - y0:min(a + c, y1) - y0, b - x0:min(b + c, x1) - x0] = \
-                render_block(plan, z, a, min(a + c, y1), b, min(b + c, x1))
-    target[z:z + 1, y0:y1, x0:x1] = out
-    return out
-
-
-def written_level0(plan: RenderPlan, target, planes: list[int], block: int) -> da.Array:
-    """Return level 0 of ``planes`` in ``1 x block x block`` blocks, each written to ``target`` by the task that renders it."""
-    ys = [(a, min(a + block, plan.height)) for a in range(0, plan.height, block)]
-    xs = [(a, min(a + block, plan.width)) for a in range(0, plan.width, block)]
-    name = "stackbuild-written-level0-" + tokenize(plan, planes, str(target.store_path), block,
-                                                   records_token(plan, planes))
-    dsk = {(name, k, i, j): (_render_shard, plan, target, z, a, b, c, d)
-           for k, z in enumerate(planes) for i, (a, b) in enumerate(ys) for j, (c, d) in enumerate(xs)}
-    chunks = ((1,) * len(planes), tuple(b - a for a, b in ys), tuple(d - c for c, d in xs))
-    return da.Array(HighLevelGraph.from_collections(name, dsk, dependencies=[]), name, chunks,
-                    dtype=np.dtype(plan.dtype))
-
-
-def written_pyramid(plan: RenderPlan, targets: list, planes: list[int], reducer: str, block: int) -> da.Array:
-    """Return the top level of the pyramid of ``planes``, each level's blocks written to ``targets`` on the way.
-
-    Every level-``n`` block is written by the task that makes it and then feeds the
-    level ``n+1`` reduction, so the graph is a tree: the scheduler finishes each quad of
-    blocks before rendering far ahead, and memory stays bounded by a few blocks per level
-    instead of growing with the width of a plane. ``block`` is the shard edge, so no two
-    tasks write the same shard. ``planes`` must be consecutive (they are written from
-    ``planes[0]`` on).
-    """
-    if list(planes) != list(range(planes[0], planes[0] + len(planes))):
-        raise ValueError(f"planes must be consecutive, got {planes}")
-    level = written_level0(plan, targets[0], planes, block)
-    for target in targets[1:]:
-        level = reduce_level(level, reducer, block)
-        level = level.map_blocks(_write_through, target, planes[0], dtype=level.dtype,
-                                 name="stackbuild-write-" + tokenize(level.name, str(target.store_path)))
-    return level
-
-
-def _batches(todo: list[int], size: int) -> list[list[int]]:
-    """Split sorted plane numbers into runs of consecutive planes, each at most ``size`` long."""
-    runs: list[list[int]] = []
-    for z in todo:
-        if runs and z == runs[-1][-1] + 1 and len(runs[-1]) < size:
-            runs[-1].append(z)
-        else:
-            runs.append([z])
-    return runs
-
-
 def _write_planes(plan, arrays, shapes, todo, settings, done, em, stamp, progress) -> None:
     block = settings.chunk * settings.shard
     per_plane = math.ceil(shapes[0][0] / block) * math.ceil(shapes[0][1] / block)
@@ -287,8 +216,8 @@ def _write_planes(plan, arrays, shapes, todo, settings, done, em, stamp, progres
     total, finished = len(todo), 0
     if progress is not None:
         progress(0, total)
-    for group in _batches(todo, batch):
-        written_pyramid(plan, arrays, group, settings.reducer, block).compute()
+    for group in (todo[i:i + batch] for i in range(0, total, batch)):
+        pyramid_writes(plan, arrays, shapes, group, settings.reducer, block).compute()
         done.update(group)
         _write_checkpoint(em, stamp, done)
         finished += len(group)

@@ -181,10 +181,17 @@ def _add_synth(sub) -> None:
 def _prepare_folder(args) -> "BuildFolder":
     from .config import load_config
     from .manifest import read_channel_manifest, read_tile_manifest
-    from .run.folder import BuildFolder
+    from .run.folder import BuildFolder, csv_facts
 
     build = BuildFolder(Path(args.out))
-    manifest = read_tile_manifest(args.tiles)
+    tiles = Path(args.tiles)
+    # Hashed before the check, so the kept snapshot never claims content it was not made from.
+    facts = csv_facts(tiles) if tiles.is_file() else None
+    manifest = None
+    if args.resume and build.exists() and Path(build.load_state().get("tiles", "")) == tiles.resolve():
+        manifest = build.tile_manifest()  # the kept snapshot while the CSV is unchanged
+    if manifest is None:
+        manifest = read_tile_manifest(tiles)
     channels = Path(args.channels).resolve() if args.channels else None
     if channels:
         read_channel_manifest(channels)
@@ -223,6 +230,8 @@ def _prepare_folder(args) -> "BuildFolder":
                          file=build.root)
     build.root.mkdir(parents=True, exist_ok=True)
     build.save_state({**record, "stages": {}})
+    if facts is not None:
+        build.keep_checked_manifest(manifest, facts)
     return build
 
 

@@ -234,3 +234,14 @@ def test_manifest_json_round_trip_is_exact(build):
         TileManifest.from_json(doc)
     with pytest.raises(ValueError, match="not a tile manifest"):
         TileManifest.from_json({"count": 3})
+
+
+def test_a_whole_build_checks_the_manifest_once(tiny_data, tmp_path, header_calls):
+    """``build`` checks the manifest before it makes the folder and keeps that check: no stage repeats it."""
+    from stackbuild.cli import main
+
+    names = sorted(t.path.stem for t in read_tile_manifest(tiny_data / "tiles.csv").tiles)
+    header_calls.clear()
+    assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(tmp_path / "b"), "--quiet",
+                 "--workers", "1"]) == 0
+    assert sorted(header_calls) == names

@@ -155,7 +155,7 @@ class BuildFolder:
         csv_path = Path(self.load_state()["tiles"])
         if not csv_path.is_file():
             return read_tile_manifest(csv_path)  # names the missing file
-        facts = _csv_facts(csv_path)
+        facts = csv_facts(csv_path)
         kept = self._kept_manifest(facts)
         if kept is not None:
             return kept
@@ -192,6 +192,14 @@ class BuildFolder:
             log.info("rebuilding %s: %s", path, exc)
             return None
 
+    def keep_checked_manifest(self, manifest: TileManifest, facts: dict) -> None:
+        """Keep ``manifest``, just checked from the CSV that ``facts`` describes (see :func:`csv_facts`), as the snapshot.
+
+        For a caller that has checked the manifest itself (``build`` checks it before it
+        creates the folder), so the first stage does not check every tile again.
+        """
+        self._keep_manifest(manifest, facts)
+
     def _keep_manifest(self, manifest: TileManifest, facts: dict) -> None:
         """Write the snapshot of a freshly checked manifest; skip it if the folder is not writable."""
         doc = {"format": SNAPSHOT_FORMAT, "version": SNAPSHOT_VERSION, "kind": "tiles",
@@ -209,7 +217,7 @@ class BuildFolder:
         return read_channel_manifest(path) if path else []
 
 
-def _csv_facts(path: Path) -> dict:
+def csv_facts(path: Path) -> dict:
     """Return the resolved path, size, mtime_ns and sha256 of a manifest file.
 
     The digest is taken before the file is checked, so an edit made during

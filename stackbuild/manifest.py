@@ -11,6 +11,14 @@ Channel manifest (CSV with a header)
     ``section``, ``channel`` (a name), ``path``, ``pixel_size`` (nm per pixel of
     that image) and optional ``x``, ``y`` (approximate top-left, section pixels).
 
+Landmark file (CSV with a header; optional, for checking marker registration)
+    ``section``, ``channel``: a row of the channel manifest;
+    ``tile`` a tile of that section (its ``tile`` id in the tile manifest) and
+    ``tile_x``, ``tile_y`` a spot on that raw tile (pixels, ``(0, 0)`` the centre
+    of its top-left pixel); ``marker_x``, ``marker_y`` the same spot on the
+    marker image (its pixels, same convention); optional ``name``. Spots on raw
+    images do not depend on any build, so one file serves every re-run.
+
 Tile headers are checked (single channel, 8 or 16 bit, 2-D) when the manifest
 is read, before any pixels are allocated, so a bad file is named up front.
 """
@@ -28,6 +36,7 @@ from .errors import InputError
 
 TILE_COLUMNS = ("section", "path", "x", "y")
 CHANNEL_COLUMNS = ("section", "channel", "path", "pixel_size")
+LANDMARK_COLUMNS = ("section", "channel", "tile", "tile_x", "tile_y", "marker_x", "marker_y")
 _NAME_OK = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
 
 
@@ -286,3 +295,55 @@ def read_channel_manifest(path: str | Path) -> list[ChannelEntry]:
         h, w, dtype = image_header(image, path, row)
         entries.append(ChannelEntry(section, name, image, pixel_size, x, y, w, h, dtype, row))
     return entries
+
+
+@dataclass(frozen=True)
+class LandmarkEntry:
+    """One row of a landmark file, checked: the same spot on a raw tile and on a marker image."""
+
+    section: int
+    channel: str
+    tile: str
+    tile_x: float
+    tile_y: float
+    marker_x: float
+    marker_y: float
+    name: str
+    row: int = 0
+
+
+def read_landmarks(path: str | Path, tiles: TileManifest, channels: list[ChannelEntry]) -> list[LandmarkEntry]:
+    """Read and check a landmark file against the build's tile and channel manifests.
+
+    Raises
+    ------
+    InputError
+        Naming the file and line for a missing column, a non-finite number, a
+        section/channel pair not in the channel manifest, a tile not in that
+        section, or a spot outside its tile or its marker image.
+    """
+    path = Path(path)
+    rows = _read_rows(path, LANDMARK_COLUMNS)
+    by_tile = {(t.section, t.tile): t for t in tiles.tiles}
+    by_channel = {(c.section, c.channel): c for c in channels}
+    out = []
+    for row, rec in rows:
+        section = _section(rec["section"], path, row)
+        chan = by_channel.get((section, rec["channel"]))
+        if chan is None:
+            raise InputError(f"section {section} has no channel {rec['channel']!r} in the channel manifest",
+                             file=path, row=row)
+        tile = by_tile.get((section, rec["tile"]))
+        if tile is None:
+            raise InputError(f"section {section} has no tile {rec['tile']!r} in the tile manifest",
+                             file=path, row=row)
+        v = {k: _float(rec[k], k, path, row) for k in LANDMARK_COLUMNS[3:]}
+        for what, (x, y), (w, h) in (("tile", (v["tile_x"], v["tile_y"]), (tile.width, tile.height)),
+                                     ("marker", (v["marker_x"], v["marker_y"]), (chan.width, chan.height))):
+            if not (-0.5 <= x <= w - 0.5 and -0.5 <= y <= h - 0.5):
+                raise InputError(f"{what} spot ({x:g}, {y:g}) lies outside the {w} x {h} {what} image",
+                                 file=path, row=row)
+        name = rec.get("name") or f"row{row}"
+        out.append(LandmarkEntry(section, chan.channel, tile.tile, v["tile_x"], v["tile_y"],
+                                 v["marker_x"], v["marker_y"], name, row))
+    return out

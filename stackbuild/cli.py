@@ -73,6 +73,10 @@ def _add_build(sub) -> None:
     b.add_argument("--channels", metavar="CHANNELS_CSV",
                    help="channel manifest of molecular marker images (columns section,channel,path,pixel_size[,x,y]); "
                         "registered to the EM by mutual information and written to volume.zarr/channels/<name>")
+    b.add_argument("--landmarks", metavar="LANDMARKS_CSV",
+                   help="landmark file: the same spot on a raw tile and on a marker image (columns section,channel,tile,"
+                        "tile_x,tile_y,marker_x,marker_y[,name]); the report lists how far the marker registration "
+                        "misses each one" " (needs --channels)")
     b.add_argument("--pixel-size", type=float, metavar="NM",
                    help="nanometres per full-resolution pixel (default from --config, else 4)")
     b.add_argument("--section-thickness", type=float, metavar="NM",
@@ -136,6 +140,10 @@ def _add_stages(sub) -> None:
     q.add_argument("--fail-on", action="append", metavar="RULE", default=None,
                    help="exit with status 3 if the volume misses this bar, e.g. 'align.p95>2px', "
                         "'stitch.rms>0.5px', 'flagged>0' (repeatable)")
+    q.add_argument("--landmarks", metavar="LANDMARKS_CSV",
+                   help="landmark file: the same spot on a raw tile and on a marker image (columns section,channel,tile,"
+                        "tile_x,tile_y,marker_x,marker_y[,name]); the report lists how far the marker registration "
+                        "misses each one" "; replaces the build's landmark file from now on")
     _add_common(q)
 
     u = sub.add_parser("update", help="re-register and re-render sections whose tiles were imaged again",
@@ -180,7 +188,7 @@ def _add_synth(sub) -> None:
 # ----------------------------------------------------------------- commands
 def _prepare_folder(args) -> "BuildFolder":
     from .config import load_config
-    from .manifest import read_channel_manifest, read_tile_manifest
+    from .manifest import read_channel_manifest, read_landmarks, read_tile_manifest
     from .run.folder import BuildFolder, csv_facts
 
     build = BuildFolder(Path(args.out))
@@ -193,14 +201,20 @@ def _prepare_folder(args) -> "BuildFolder":
     if manifest is None:
         manifest = read_tile_manifest(tiles)
     channels = Path(args.channels).resolve() if args.channels else None
-    if channels:
-        read_channel_manifest(channels)
+    entries = read_channel_manifest(channels) if channels else []
+    if args.landmarks and not channels:
+        raise InputError("--landmarks needs --channels: landmarks tie marker images to the EM",
+                         file=Path(args.landmarks))
+    landmarks = Path(args.landmarks).resolve() if args.landmarks else None
+    if landmarks:
+        read_landmarks(landmarks, manifest, entries)
     cfg = load_config(args.config)
     if args.pixel_size is not None:
         cfg.volume.pixel_size = _positive(args.pixel_size, "--pixel-size")
     if args.section_thickness is not None:
         cfg.volume.section_thickness = _positive(args.section_thickness, "--section-thickness")
     record = {"tiles": str(manifest.source), "channels": str(channels) if channels else None,
+              "landmarks": str(landmarks) if landmarks else None,
               "config": cfg.to_json(), "stackbuild": __version__}
     if build.exists():
         if args.resume:
@@ -215,6 +229,8 @@ def _prepare_folder(args) -> "BuildFolder":
                 what = ", ".join(changed) if changed else "the channel manifest"
                 raise InputError(f"--resume: {what} differ from the interrupted build's; resume with the "
                                  "same settings, or start again with --overwrite", file=build.state_path)
+            if landmarks:  # they only feed the report, so a resumed build may take new ones
+                build.update_state(landmarks=str(landmarks))
             return build
         if not args.overwrite:
             raise InputError("already holds a build; pass --resume to continue it or --overwrite "
@@ -336,6 +352,12 @@ def _cmd_report(args) -> int:
     from .run.progress import ProgressBar
 
     build = _open_build(args.dir)
+    if args.landmarks:
+        from .manifest import read_landmarks
+
+        path = Path(args.landmarks).resolve()
+        read_landmarks(path, build.tile_manifest(), build.channel_manifest())
+        build.update_state(landmarks=str(path))
     verdict = stages.report_stage(build, fail_on=args.fail_on, progress=ProgressBar("report", not args.quiet))
     _say(f"report: {build.qc_dir / 'report.html'}")
     return _verdict_status(verdict, args.fail_on)

@@ -41,14 +41,21 @@ volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
                     ``channel``, ``path``, ``registered``, ``measure`` (its name),
                     ``measure_before``, ``measure_after``, ``shift_from_given``
                     (section px), ``rotation_deg``, ``scale_ratio``, ``flags``,
-                    ``landmark_residual`` (``None`` until landmarks exist), ``at``
-                    (the image centre). Empty when the build has no channels.
+                    ``landmark_residual`` (RMS over its landmarks, EM px; ``None``
+                    without landmarks), ``at`` (the image centre). Empty when the build
+                    has no channels.
+``landmarks``       one per row of the build's landmark file (see
+                    :mod:`stackbuild.qc.landmarks`): ``section``, ``channel``, ``name``,
+                    ``tile``, ``em`` / ``marker`` (the spot, section px / marker px),
+                    ``dx``, ``dy``, ``residual`` (EM px), ``residual_nm``, ``row``, ``at``.
+                    Empty without a landmark file.
 ``totals``          the measures that ``--fail-on`` can test, see
                     :data:`stackbuild.qc.thresholds.MEASURES`; ``align.*`` are
                     over adjacent plane pairs only (pairs across a lost section
                     are in ``sections`` and ``blocks.csv``, and named in ``notes``).
 ``worst``           ``tile``, ``pair``, ``section_stitch``, ``section_align``,
-                    ``channel`` (lowest ``measure_after``): the worst row of each (or ``None``).
+                    ``channel`` (lowest ``measure_after``), ``landmark`` (largest
+                    ``residual``): the worst row of each (or ``None``).
 ``notes``           what could not be measured or was left out of the totals, and why.
 
 ``blocks.csv`` beside it lists every section-to-section block (``z_from``,
@@ -73,6 +80,7 @@ from ..run.folder import BuildFolder
 from ..transforms.records import Canvas
 from ..transforms.types import Affine2D
 from .blockmatch import BlockMatches, summarize
+from .landmarks import landmark_rows, landmark_totals, per_channel_rms
 from .measure import Measurements, measure_planes, measure_seams, section_to_output
 from .planes import open_planes
 from .settings import ReportSettings
@@ -330,6 +338,11 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
                               "in the align.* totals")
     sections = _section_rows(secs, stitches, aligns, seam_sums, meas, sc)
     channels = _channel_rows(store, secs, aligns, sc)
+    landmarks, notes = landmark_rows(folder, stitches, aligns, sc)
+    meas.notes += notes
+    rms = per_channel_rms(landmarks)
+    for r in channels:
+        r["landmark_residual"] = rms.get((r["section"], r["channel"]))
     meas.notes += [f"section {r['section']} tile pair {r['a']}-{r['b']}: {r['error']}" for r in pairs if r["error"]]
     src = meas.source
     doc = {
@@ -341,14 +354,15 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
                    "lost_sections": list(canvas.lost_sections) if canvas else [],
                    "measured_on": None if src is None else
                    {"origin": src.origin, "level": src.level, "factor": src.factor}},
-        "tiles": tiles, "pairs": pairs, "sections": sections, "channels": channels,
-        "totals": _totals(tiles, pairs, sections, channels, meas),
+        "tiles": tiles, "pairs": pairs, "sections": sections, "channels": channels, "landmarks": landmarks,
+        "totals": {**_totals(tiles, pairs, sections, channels, meas), **landmark_totals(landmarks)},
         "worst": {"tile": _worst(tiles, lambda r: r["seam_median"]),
                   "pair": _worst(pairs, lambda r: r["residual"]),
                   "section_stitch": _worst(sections, lambda r: r["stitch"]["rms"]),
                   "section_align": _worst(sections, lambda r: r["align_score"]),
                   "channel": _worst(channels, lambda r: None if r["measure_after"] is None
-                                    else -r["measure_after"])},
+                                    else -r["measure_after"]),
+                  "landmark": _worst(landmarks, lambda r: r["residual"])},
         "notes": meas.notes,
     }
     return doc, meas
@@ -405,7 +419,7 @@ def block_rows(meas: Measurements) -> list[dict]:
 
 
 def write_metrics(doc: dict, qc_dir: str | Path, meas: Measurements | None = None) -> list[Path]:
-    """Write ``metrics.json`` and the CSV tables (``channels.csv`` only if there are channels).
+    """Write ``metrics.json`` and the CSV tables (``channels.csv``, ``landmarks.csv`` only if there are any).
 
     With ``meas``, also ``blocks.csv``: every section-to-section block behind the summaries.
     """
@@ -416,8 +430,8 @@ def write_metrics(doc: dict, qc_dir: str | Path, meas: Measurements | None = Non
     path = qc_dir / "metrics.json"
     atomic_write_text(path, json.dumps(_jsonable(doc), indent=1, allow_nan=False) + "\n")
     paths = [path]
-    for name in ("tiles", "pairs", "sections", "channels"):
-        if doc[name] or name != "channels":
+    for name in ("tiles", "pairs", "sections", "channels", "landmarks"):
+        if doc.get(name) or name not in ("channels", "landmarks"):
             paths.append(_write_csv(qc_dir / f"{name}.csv", doc[name]))
     if meas is not None:
         paths.append(_write_csv(qc_dir / "blocks.csv", block_rows(meas)))

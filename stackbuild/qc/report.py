@@ -219,6 +219,24 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
         _table(["channel", "section", "registered", "measure before", "measure after", "shift from given (px)",
                 "rotation (deg)", "landmark residual (px)", "flags", *_LOC], c_rows, c_bad, (0, 8))
         if c_rows else '<p class="small">no marker channels in this build</p>',
+        _landmark_table(doc.get("landmarks") or [], n, settings.align_max),
+    ])
+
+
+def _landmark_table(rows: list[dict], n: int, bar: float) -> str:
+    """Return the worst landmarks: marker registration checked against spots the user placed on both images."""
+    if not rows:
+        return ""
+    worst = sorted(rows, key=lambda r: (r["residual"] is not None, r["residual"] or 0), reverse=True)[:n]
+    body = [[r["channel"], r["section"], r["name"], r["tile"], r["residual"], r["residual_nm"],
+             None if r["dx"] is None else f"{r['dx']:.2f}, {r['dy']:.2f}", r["row"], *_loc(r["at"])] for r in worst]
+    bad = [r["residual"] is None or r["residual"] > bar for r in worst]
+    return "".join([
+        "<h2>Worst landmarks</h2>",
+        '<p class="small">residual = where the stored marker registration puts the marker spot, minus where the '
+        f"same spot lies on the EM tile, in EM pixels; rows over {bar:g} px or not measured are shaded.</p>",
+        _table(["channel", "section", "landmark", "tile", "residual (px)", "residual (nm)", "dx, dy (px)",
+                "file line", *_LOC], body, bad, (0, 2, 3)),
     ])
 
 

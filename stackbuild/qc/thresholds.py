@@ -39,6 +39,8 @@ MEASURES = {
     "flagged.tiles": ("count", "flagged tiles"),
     "lost": ("count", "lost sections"),
     "channels.flagged": ("count", "marker channels flagged or not registered"),
+    "channels.landmark_rms": ("distance", "RMS landmark residual of the marker registrations"),
+    "channels.landmark_max": ("distance", "largest landmark residual of the marker registrations"),
     "rejected": ("count", "rejected tile pairs"),
     "rejected.fraction": ("fraction", "rejected tile pairs over all pairs"),
 }

@@ -9,6 +9,7 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
+import warnings
 from pathlib import Path
 from typing import Callable, Iterable
 
@@ -83,7 +84,9 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
         raise InputError(f"--workers must be >= 1, got {n}")
     import dask
 
-    with dask.config.set({"distributed.nanny.pre-spawn-environ": SINGLE_THREAD_ENV}):
+    with dask.config.set({"distributed.nanny.pre-spawn-environ": SINGLE_THREAD_ENV}), warnings.catch_warnings():
+        # Another Dask process on this machine holds the default HTTP port; ours takes a free one.
+        warnings.filterwarnings("ignore", message="Port .* is already in use")
         cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
                                memory_limit=memory_limit, dashboard_address=None,
                                silence_logs=logging.ERROR)

@@ -17,7 +17,8 @@ from .distort import section_affine, section_field, section_to_true, section_to_
 from .layout import TAG_NOISE, rng, section_shape, tile_layout, true_shape
 from .params import SynthParams, tile_index
 from .phantom import phantom_layers, slant_model
-from .truth import write_truth
+from .landmarks import COLUMNS as LANDMARK_COLUMNS, landmark_rows
+from .truth import load_truth, write_truth
 
 
 def _write_tiff(path: Path, image: np.ndarray, compress: bool) -> None:
@@ -100,7 +101,7 @@ def _write_csv(path: Path, header: list[str], rows: list[list]) -> None:
     path.write_text(buf.getvalue(), encoding="utf-8")
 
 
-_OUTPUTS = ("tiles.csv", "channels.csv", "tiles", "channels", "truth")
+_OUTPUTS = ("tiles.csv", "channels.csv", "landmarks.csv", "tiles", "channels", "truth")
 
 
 def _clear_previous(out: Path) -> None:
@@ -127,7 +128,7 @@ def generate(outdir, params: SynthParams = SynthParams()) -> Path:
         Folder to write into: new, empty, or holding an earlier sample (whose
         generated files are replaced; others, e.g. a README, are kept):
         ``tiles.csv``, ``tiles/``,
-        ``channels.csv``, ``channels/`` (when ``params.channels > 0``) and
+        ``channels.csv``, ``channels/``, ``landmarks.csv`` (when ``params.channels > 0``) and
         ``truth/`` (see :mod:`stackbuild.synth.truth`).
     params : SynthParams
         The sample description; the same parameters give byte-identical files.
@@ -172,4 +173,7 @@ def generate(outdir, params: SynthParams = SynthParams()) -> Path:
               "slant": slant_model(params), "lost_sections": sorted(lost), "defects": defects,
               "sections": sections}
     write_truth(out, record, fields)
+    if chan_rows and params.landmarks > 0:
+        _write_csv(out / "landmarks.csv", LANDMARK_COLUMNS,
+                   landmark_rows(load_truth(out), params.landmarks, params.seed))
     return manifest

@@ -83,6 +83,9 @@ class SynthParams:
         Gaussian point-spread sigma of the marker microscope, marker pixels.
     channel_snr : float
         Signal-to-noise ratio of the marker images (std signal / std noise).
+    landmarks : int
+        Landmarks per marker image written to ``landmarks.csv`` (the same spot on a raw tile
+        and on the marker image, exact from the truth); 0 writes none.
     blank_tiles : str
         Tiles that image empty resin, as "section:tile" comma-separated (e.g. "2:r1c1").
     lost_sections : str
@@ -123,6 +126,7 @@ class SynthParams:
     channel_rotation: float = 3.0
     channel_blur: float = 1.0
     channel_snr: float = 8.0
+    landmarks: int = 6
     blank_tiles: str = ""
     lost_sections: str = ""
     damaged_sections: str = ""
@@ -178,6 +182,7 @@ class SynthParams:
             (self.snr > 0 and self.channel_snr > 0, "snr and channel_snr must be > 0"),
             (self.dtype in ("uint8", "uint16"), "dtype must be uint8 or uint16"),
             (0 <= self.channels <= 2, "channels must be 0, 1 or 2"),
+            (self.landmarks >= 0, "landmarks must be >= 0"),
             (self.channel_every >= 1 and self.channel_binning >= 1, "channel_every and channel_binning must be >= 1"),
             (0.0 <= self.vignetting < 1.0, "vignetting must be in [0, 1)"),
             (0.0 <= self.scale < 0.5, "scale must be in [0, 0.5)"),

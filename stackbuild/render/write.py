@@ -211,9 +211,10 @@ def _write_checkpoint(em: Path, stamp: dict, done: set[int]) -> None:
 def _write_planes(plan, arrays, shapes, todo, settings, done, em, stamp, progress) -> None:
     block = settings.chunk * settings.shard
     per_plane = math.ceil(shapes[0][0] / block) * math.ceil(shapes[0][1] / block)
-    # Enough shards per batch that the upper levels of one plane overlap other planes' work.
-    batch = max(1, min(16, math.ceil(BATCH_SHARDS / per_plane)))
     total, finished = len(todo), 0
+    # Enough shards per batch that the upper levels of one plane overlap other planes' work,
+    # but at least eight batches when there are enough planes, so progress moves.
+    batch = max(1, min(16, math.ceil(BATCH_SHARDS / per_plane), math.ceil(total / 8)))
     if progress is not None:
         progress(0, total)
     for group in (todo[i:i + batch] for i in range(0, total, batch)):

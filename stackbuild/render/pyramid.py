@@ -57,14 +57,14 @@ def join_shard(quarters: list[list[np.ndarray]], target, z: int, y0: int, x0: in
     return None if reducer is None else reduce2x2(block, reducer)
 
 
-def _finish(*_ignored) -> None:
-    """The graph's last task: every top-level shard has been written once it runs."""
+def _plane_done(*_ignored) -> None:
+    """A plane's last task: all its top-level shards (and so every shard below them) are written."""
     return None
 
 
 def pyramid_writes(plan: RenderPlan, targets: list, shapes: list[tuple[int, int]], planes: list[int],
-                   reducer: str, shard: int) -> Delayed:
-    """Return one delayed task that renders ``planes`` and writes all levels of their pyramid to ``targets``.
+                   reducer: str, shard: int) -> list[Delayed]:
+    """Return one delayed task per plane of ``planes`` that renders it and writes all levels of its pyramid.
 
     Parameters
     ----------
@@ -84,8 +84,9 @@ def pyramid_writes(plan: RenderPlan, targets: list, shapes: list[tuple[int, int]
 
     Returns
     -------
-    dask.delayed.Delayed
-        Computing it (with any scheduler) writes everything and returns None.
+    list of dask.delayed.Delayed
+        One per plane, all sharing one graph; computing them together (with any scheduler)
+        writes everything, and a plane's item finishes once all its shards are written.
     """
     token = tokenize(plan, planes, [str(t.store_path) for t in targets], shapes, reducer, shard,
                      records_token(plan, planes))
@@ -106,6 +107,10 @@ def pyramid_writes(plan: RenderPlan, targets: list, shapes: list[tuple[int, int]
                                     for ii in (2 * i, 2 * i + 1) if (below, k, ii, 2 * j) in dsk]
                         dsk[(name, k, i, j)] = (join_shard, quarters, target, z, a, c, up)
         below = name
-    final = f"stackbuild-pyramid-done-{token}"
-    dsk[final] = (_finish, *[key for key in dsk if key[0] == below])
-    return Delayed(final, dsk)
+    tops = [key for key in dsk if key[0] == below]
+    finals = []
+    for k in range(len(planes)):
+        final = (f"stackbuild-plane-done-{token}", k)
+        dsk[final] = (_plane_done, *[key for key in tops if key[1] == k])
+        finals.append(final)
+    return [Delayed(final, dsk) for final in finals]

@@ -20,6 +20,7 @@ import zarr
 from zarr.codecs import BloscCodec
 
 from ..errors import BuildFolderError, InputError
+from ..run.cluster import compute_each
 from ..run.folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from .canvas import compute_canvas
@@ -31,8 +32,8 @@ from .reduce import REDUCERS, level_shapes
 from .sampler import interpolation_order
 
 CHECKPOINT = ".stackbuild_done.json"
-#: Level-0 shards rendered per dask graph (whole planes; the checkpoint is saved after each graph).
-BATCH_SHARDS = 16
+#: Level-0 shards rendered per dask graph (whole planes; each plane is checkpointed when it is done).
+BATCH_SHARDS = 32
 
 
 def check_settings(settings) -> None:
@@ -211,16 +212,19 @@ def _write_checkpoint(em: Path, stamp: dict, done: set[int]) -> None:
 def _write_planes(plan, arrays, shapes, todo, settings, done, em, stamp, progress) -> None:
     block = settings.chunk * settings.shard
     per_plane = math.ceil(shapes[0][0] / block) * math.ceil(shapes[0][1] / block)
+    # Enough shards per graph that the upper levels of one plane overlap other planes' work;
+    # each plane is checkpointed (and counted) as soon as it is finished.
+    batch = max(1, min(64, math.ceil(BATCH_SHARDS / per_plane)))
     total, finished = len(todo), 0
-    # Enough shards per batch that the upper levels of one plane overlap other planes' work,
-    # but at least eight batches when there are enough planes, so progress moves.
-    batch = max(1, min(16, math.ceil(BATCH_SHARDS / per_plane), math.ceil(total / 8)))
     if progress is not None:
         progress(0, total)
     for group in (todo[i:i + batch] for i in range(0, total, batch)):
-        pyramid_writes(plan, arrays, shapes, group, settings.reducer, block).compute()
-        done.update(group)
-        _write_checkpoint(em, stamp, done)
-        finished += len(group)
-        if progress is not None:
-            progress(finished, total)
+        def finish(k: int, group=group) -> None:
+            nonlocal finished
+            done.add(group[k])
+            _write_checkpoint(em, stamp, done)
+            finished += 1
+            if progress is not None:
+                progress(finished, total)
+
+        compute_each(pyramid_writes(plan, arrays, shapes, group, settings.reducer, block), finish)

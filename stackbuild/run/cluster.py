@@ -137,3 +137,42 @@ def serial_mapper(progress: Callable[[int, int], None] | None = None):
         return out
 
     return mapper
+
+
+def compute_each(items: list, on_done: Callable[[int], None]) -> None:
+    """Compute dask collections ``items`` in one go, calling ``on_done(i)`` as soon as item ``i`` is finished.
+
+    With a ``distributed`` client as the default scheduler the items are submitted
+    together and reported through ``as_completed``; otherwise they run on dask's
+    local scheduler, reported by a callback after each item's last task. Either
+    way ``on_done`` runs in the calling thread, so it may write files. The first
+    task error is re-raised in the caller.
+    """
+    import dask
+    from dask.callbacks import Callback
+
+    client = None
+    try:
+        from distributed import default_client
+
+        client = default_client()
+    except (ImportError, ValueError):  # no distributed, or no client: the local scheduler
+        pass
+    if client is not None and dask.config.get("scheduler", None) in (None, "dask.distributed"):
+        from distributed import as_completed
+
+        futures = client.compute(items)
+        index = {f.key: i for i, f in enumerate(futures)}
+        for fut in as_completed(futures):
+            fut.result()
+            on_done(index[fut.key])
+        return
+    keys = {item.key: i for i, item in enumerate(items)}
+
+    class _Finished(Callback):
+        def _posttask(self, key, result, dsk, state, worker_id):
+            if key in keys:
+                on_done(keys[key])
+
+    with _Finished():
+        dask.compute(*items)

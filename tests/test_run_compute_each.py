@@ -1,0 +1,44 @@
+"""compute_each: one graph, a callback per finished item, locally and on a distributed client."""
+from __future__ import annotations
+
+import time
+
+import dask
+import pytest
+
+from stackbuild.run.cluster import compute_each
+
+
+def _slow(i: int) -> int:
+    time.sleep(0.05 * (3 - i))  # item 2 finishes first when run in parallel
+    return i
+
+
+def _items():
+    return [dask.delayed(_slow)(i, dask_key_name=f"item-{i}") for i in range(3)]
+
+
+@pytest.mark.parametrize("scheduler", ["sync", "threads"])
+def test_every_item_is_reported_once_locally(scheduler):
+    seen = []
+    with dask.config.set(scheduler=scheduler):
+        compute_each(_items(), seen.append)
+    assert sorted(seen) == [0, 1, 2]
+
+
+def test_items_are_reported_as_they_finish_on_a_client():
+    from distributed import Client, LocalCluster
+
+    with LocalCluster(n_workers=1, threads_per_worker=3, processes=False, dashboard_address=None) as cluster, \
+            Client(cluster):
+        seen = []
+        compute_each(_items(), seen.append)
+    assert sorted(seen) == [0, 1, 2] and seen[0] == 2
+
+
+def test_a_task_error_reaches_the_caller():
+    def boom():
+        raise ValueError("bad tile")
+
+    with dask.config.set(scheduler="sync"), pytest.raises(ValueError, match="bad tile"):
+        compute_each([dask.delayed(boom)()], lambda i: None)

@@ -63,7 +63,10 @@ def test_residuals_equal_the_registrations_true_error(built, tiny_data):
         assert c["landmark_residual"] == pytest.approx(np.sqrt(np.mean(np.square(mine))))
     with open(built / "qc" / "landmarks.csv", newline="") as fh:
         assert len(list(csv.DictReader(fh))) == len(rows)
-    assert "Worst landmarks" in (built / "qc" / "report.html").read_text()
+    html = (built / "qc" / "report.html").read_text()
+    assert "Worst landmarks" in html and "Landmark residuals of the marker registrations" in html
+    import matplotlib.image
+    assert matplotlib.image.imread(built / "qc" / "landmarks.png").ndim == 3  # a real PNG
 
 
 def test_a_planted_registration_error_is_measured_and_named(built, tmp_path):

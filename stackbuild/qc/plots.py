@@ -240,3 +240,42 @@ def histograms(pair_rows: list[dict], seam_mags: np.ndarray, plane_mags: np.ndar
         ax.grid(alpha=0.3)
     fig.suptitle("Distributions", color=INK, fontsize=11)
     return fig
+
+
+def landmark_residuals(rows: list[dict], marker_px: dict[str, float]):
+    """Return each landmark's residual vector ``(dx, dy)`` (EM px), one panel per marker channel.
+
+    A dashed circle marks one marker pixel (``marker_px[channel]``, in EM px): inside it, the
+    registration places the marker spot within the marker image's own resolution.
+    """
+    names = sorted({r["channel"] for r in rows})
+    fig, axes = plt.subplots(1, max(len(names), 1), figsize=(3.6 * max(len(names), 1), 3.6), squeeze=False,
+                             layout="constrained")
+    if not names:
+        _note(axes[0, 0], "no landmarks")
+        return fig
+    for ax, name in zip(axes[0], names):
+        mine = [r for r in rows if r["channel"] == name and r["residual"] is not None]
+        if not mine:
+            _note(ax, f"{name}: not registered")
+            continue
+        d = np.array([[r["dx"], r["dy"]] for r in mine])
+        one = marker_px.get(name)
+        reach = max(float(np.abs(d).max()), one or 0.0) * 1.15 + 1e-6
+        if one:
+            ax.add_patch(plt.Circle((0, 0), one, fill=False, ls="--", color=INK, lw=1))
+        inside = np.hypot(d[:, 0], d[:, 1]) <= (one or np.inf)
+        ax.scatter(d[inside, 0], d[inside, 1], s=18, color=GOOD, label="within one marker px")
+        ax.scatter(d[~inside, 0], d[~inside, 1], s=18, color=BAD, marker="^", label="beyond")
+        ax.axhline(0, color=LOST, lw=0.8)
+        ax.axvline(0, color=LOST, lw=0.8)
+        ax.set_xlim(-reach, reach)
+        ax.set_ylim(reach, -reach)  # y down, as in the image
+        ax.set_aspect("equal")
+        rms = float(np.sqrt(np.mean(np.sum(d ** 2, axis=1))))
+        ax.set_title(f"{name}: {len(mine)} landmarks, RMS {rms:.2f} px", color=INK, fontsize=10)
+        ax.set_xlabel("dx (EM px)")
+        ax.set_ylabel("dy (EM px)")
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize=7, loc="lower left")
+    return fig

@@ -93,6 +93,11 @@ def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> 
         fig = plots.displacement_field(pick["section"], al.displacement if al else None, org)
         out.append((f"Elastic displacement of section {pick['section']}", plots.save(fig, qc / "displacement.png")))
     out += _volume_figures(folder, doc, meas, settings)
+    if doc.get("landmarks"):
+        px = doc["volume"]["pixel_size_nm"]
+        marker_px = {c.channel: c.pixel_size / px for c in folder.channel_manifest()}
+        out.append(("Landmark residuals of the marker registrations (marker spot as registered minus the EM spot)",
+                    plots.save(plots.landmark_residuals(doc["landmarks"], marker_px), qc / "landmarks.png")))
     seam = np.array([r["residual"] for r in doc["pairs"] if r["residual"] is not None])
     plane = np.concatenate([p.blocks.magnitudes for p in meas.plane_pairs] or [np.zeros(0)])
     out.append(("Distributions of pair confidence and residuals",

@@ -279,3 +279,29 @@ def landmark_residuals(rows: list[dict], marker_px: dict[str, float]):
         ax.grid(alpha=0.3)
         ax.legend(fontsize=7, loc="lower left")
     return fig
+
+
+def channel_overlays(panels: list[tuple[str, int, np.ndarray, np.ndarray]]):
+    """Return the EM plane in grey with each registered marker over it in green, one panel per channel.
+
+    ``panels`` holds ``(channel, section, em, marker)``, both images on the same grid (the
+    marker pyramid's level 0 and the EM level of the same pixel size). Marker structures
+    should sit on their EM counterparts; a misregistration shows as a consistent offset.
+    """
+    def norm(x):
+        lo, hi = np.percentile(x, [1, 99.5])
+        return np.clip((x.astype(np.float32) - lo) / max(hi - lo, 1e-6), 0, 1)
+
+    n = max(len(panels), 1)
+    fig, axes = plt.subplots(1, n, figsize=(4.4 * n, 4.6), squeeze=False, layout="constrained")
+    if not panels:
+        _note(axes[0, 0], "no registered marker channels")
+        return fig
+    for ax, (name, section, em, marker) in zip(axes[0], panels):
+        g, m = norm(em), norm(marker)
+        rgb = np.dstack([0.85 * g, 0.85 * g + 0.6 * m, 0.85 * g]).clip(0, 1)
+        ax.imshow(rgb, interpolation="nearest")
+        ax.set_title(f"{name} (green) on section {section}", color=INK, fontsize=10)
+        ax.set_xticks([])
+        ax.set_yticks([])
+    return fig

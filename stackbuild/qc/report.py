@@ -93,6 +93,10 @@ def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> 
         fig = plots.displacement_field(pick["section"], al.displacement if al else None, org)
         out.append((f"Elastic displacement of section {pick['section']}", plots.save(fig, qc / "displacement.png")))
     out += _volume_figures(folder, doc, meas, settings)
+    panels = _channel_panels(folder, doc)
+    if panels:
+        out.append(("Marker channels over the EM, as registered",
+                    plots.save(plots.channel_overlays(panels), qc / "channels.png")))
     if doc.get("landmarks"):
         px = doc["volume"]["pixel_size_nm"]
         marker_px = {c.channel: c.pixel_size / px for c in folder.channel_manifest()}
@@ -103,6 +107,46 @@ def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> 
     out.append(("Distributions of pair confidence and residuals",
                 plots.save(plots.histograms(doc["pairs"], seam, plane), qc / "histograms.png")))
     return out
+
+
+def _channel_panels(folder: BuildFolder, doc: dict, size: int = 384) -> list:
+    """Return ``(channel, section, em, marker)`` crops for each channel's best-registered section.
+
+    Both come from the written volume: the marker's level 0, and the EM on the same grid
+    (the EM level of the marker's pixel size, reduced further from the smallest written
+    level when the EM pyramid stops above it).
+    """
+    import zarr
+
+    from ..render.lazy import open_volume
+    from ..render.reduce import reduce2x2
+
+    root = folder.volume_path / "channels"
+    if not root.is_dir() or not doc["channels"]:
+        return []
+    levels = [k for k in range(32) if (folder.volume_path / "em" / str(k) / "zarr.json").exists()]
+    em0 = open_volume(folder.root, 0, lazy=False).scale_nm[-1]
+    panels = []
+    for name in sorted({c["channel"] for c in doc["channels"]}):
+        rows = [c for c in doc["channels"] if c["channel"] == name and c["registered"] and c["at"]]
+        if not (root / name / "zarr.json").exists() or not rows or not levels:
+            continue
+        best = max(rows, key=lambda c: c["measure_after"] or 0)
+        marker = open_volume(folder.root, 0, lazy=False, channel=name)
+        level = int(round(np.log2(marker.scale_nm[-1] / em0)))
+        have = min(level, levels[-1])
+        z, f, g = best["at"]["z"], 2 ** level, 2 ** (level - have)
+        h, w = marker.shape[1:]
+        cx, cy = int(best["at"]["x_px"] / f), int(best["at"]["y_px"] / f)
+        y0, x0 = max(0, min(cy - size // 2, h - size)), max(0, min(cx - size // 2, w - size))
+        em = np.asarray(zarr.open_array(str(folder.volume_path / "em" / str(have)), mode="r")[
+            z, y0 * g:(y0 + size) * g, x0 * g:(x0 + size) * g])
+        for _ in range(level - have):
+            em = reduce2x2(em, "mean")
+        mk = np.asarray(marker.data[z, y0:y0 + size, x0:x0 + size])
+        hh, ww = min(em.shape[0], mk.shape[0]), min(em.shape[1], mk.shape[1])
+        panels.append((name, best["section"], em[:hh, :ww], mk[:hh, :ww]))
+    return panels
 
 
 def _volume_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> list[tuple[str, Path]]:

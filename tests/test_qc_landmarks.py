@@ -67,6 +67,8 @@ def test_residuals_equal_the_registrations_true_error(built, tiny_data):
     assert "Worst landmarks" in html and "Landmark residuals of the marker registrations" in html
     import matplotlib.image
     assert matplotlib.image.imread(built / "qc" / "landmarks.png").ndim == 3  # a real PNG
+    assert "Marker channels over the EM" in html
+    assert matplotlib.image.imread(built / "qc" / "channels.png").ndim == 3
 
 
 def test_a_planted_registration_error_is_measured_and_named(built, tmp_path):

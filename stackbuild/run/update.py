@@ -19,7 +19,7 @@ import numpy as np
 from ..errors import InputError
 from ..manifest import TileManifest, read_tile_manifest
 from ..transforms.store import atomic_write_text
-from .folder import BuildFolder
+from .folder import BuildFolder, csv_facts
 
 log = logging.getLogger(__name__)
 
@@ -83,7 +83,8 @@ def update_build(build: BuildFolder, new_tiles: Path, *, workers=None, scheduler
     n = len(state.get("manifests", [])) + 1
     merged = build.root / "manifests" / f"tiles.{n:04d}.csv"
     atomic_write_text(merged, merged_manifest(old, new))
-    read_tile_manifest(merged)  # check before switching the build to it
+    facts = csv_facts(merged)
+    checked = read_tile_manifest(merged)  # check before switching the build to it
     canvas = build.store.load_canvas()
     first = canvas.first_section if canvas else min(old.sections + new.sections)
     before = {}
@@ -94,6 +95,7 @@ def update_build(build: BuildFolder, new_tiles: Path, *, workers=None, scheduler
             aligned = a.affine.inverse().apply(pts)  # roughly where the section sits in the aligned frame
             before[s] = (aligned, a.aligned_to_section(aligned))
     build.update_state(tiles=str(merged), manifests=state.get("manifests", []) + [str(merged)])
+    build.keep_checked_manifest(checked, facts)  # so the stages below do not check every tile again
     show = show_progress
     with dask_client(workers, scheduler) as client:
         stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", show)), sections=new.sections)

@@ -8,19 +8,16 @@ from __future__ import annotations
 import argparse
 import contextlib
 import dataclasses
-import json
 import logging
-import shutil
 import sys
 import typing
 from pathlib import Path
 
 from . import __version__
 from .errors import InputError
-from .run.lock import LOCK_NAME, build_lock
+from .run.lock import build_lock
 
 EXIT_OK, EXIT_ERROR, EXIT_INPUT, EXIT_FAILED_BAR = 0, 1, 2, 3
-_OUR_OUTPUTS = ("build.json", "transforms", "volume.zarr", "qc")
 
 
 # ------------------------------------------------------------------ options
@@ -186,82 +183,12 @@ def _add_synth(sub) -> None:
 
 
 # ----------------------------------------------------------------- commands
-def _prepare_folder(args) -> "BuildFolder":
-    from .config import load_config
-    from .manifest import read_channel_manifest, read_landmarks, read_tile_manifest
-    from .run.folder import BuildFolder, csv_facts
+def _prepare_folder(args):
+    from .run.start import start_build
 
-    build = BuildFolder(Path(args.out))
-    tiles = Path(args.tiles)
-    # Hashed before the check, so the kept snapshot never claims content it was not made from.
-    facts = csv_facts(tiles) if tiles.is_file() else None
-    manifest = None
-    if args.resume and build.exists() and Path(build.load_state().get("tiles", "")) == tiles.resolve():
-        manifest = build.tile_manifest()  # the kept snapshot while the CSV is unchanged
-    if manifest is None:
-        manifest = read_tile_manifest(tiles)
-    channels = Path(args.channels).resolve() if args.channels else None
-    entries = read_channel_manifest(channels) if channels else []
-    if args.landmarks and not channels:
-        raise InputError("--landmarks needs --channels: landmarks tie marker images to the EM",
-                         file=Path(args.landmarks))
-    landmarks = Path(args.landmarks).resolve() if args.landmarks else None
-    if landmarks:
-        read_landmarks(landmarks, manifest, entries)
-    cfg = load_config(args.config)
-    if args.pixel_size is not None:
-        cfg.volume.pixel_size = _positive(args.pixel_size, "--pixel-size")
-    if args.section_thickness is not None:
-        cfg.volume.section_thickness = _positive(args.section_thickness, "--section-thickness")
-    record = {"tiles": str(manifest.source), "channels": str(channels) if channels else None,
-              "landmarks": str(landmarks) if landmarks else None,
-              "config": cfg.to_json(), "stackbuild": __version__}
-    if build.exists():
-        if args.resume:
-            old = build.load_state()
-            if old.get("tiles") != record["tiles"] and not old.get("manifests"):
-                raise InputError(f"--resume: this build was made from {old.get('tiles')}, "
-                                 f"not {record['tiles']}", file=build.state_path)
-            given = args.config or args.pixel_size is not None or args.section_thickness is not None
-            changed = _changed_settings(old.get("config", {}), json.loads(json.dumps(record["config"]))) \
-                if given else []  # no settings given: carry on with the build's own
-            if changed or (args.channels and old.get("channels") != record["channels"]):
-                what = ", ".join(changed) if changed else "the channel manifest"
-                raise InputError(f"--resume: {what} differ from the interrupted build's; resume with the "
-                                 "same settings, or start again with --overwrite", file=build.state_path)
-            if landmarks:  # they only feed the report, so a resumed build may take new ones
-                build.update_state(landmarks=str(landmarks))
-            return build
-        if not args.overwrite:
-            raise InputError("already holds a build; pass --resume to continue it or --overwrite "
-                             "to replace it", file=build.root)
-        for name in _OUR_OUTPUTS:
-            target = build.root / name
-            if target.is_dir():
-                shutil.rmtree(target)
-            elif target.exists():
-                target.unlink()
-    elif build.root.exists() and any(p.name != LOCK_NAME for p in build.root.iterdir()) and not args.overwrite:
-        raise InputError("exists, is not empty and holds no build; choose an empty or new folder",
-                         file=build.root)
-    build.root.mkdir(parents=True, exist_ok=True)
-    build.save_state({**record, "stages": {}})
-    if facts is not None:
-        build.keep_checked_manifest(manifest, facts)
-    return build
-
-
-def _changed_settings(old: dict, new: dict) -> list[str]:
-    """Return ``table.key`` names whose values differ between two settings records."""
-    return sorted(f"{t}.{k}" for t in set(old) | set(new)
-                  for k in set(old.get(t, {})) | set(new.get(t, {}))
-                  if old.get(t, {}).get(k) != new.get(t, {}).get(k))
-
-
-def _positive(value: float, name: str) -> float:
-    if not value > 0:
-        raise InputError(f"{name} must be > 0, got {value}")
-    return value
+    return start_build(args.out, args.tiles, channels=args.channels, landmarks=args.landmarks,
+                       config=args.config, pixel_size=args.pixel_size,
+                       section_thickness=args.section_thickness, resume=args.resume, overwrite=args.overwrite)
 
 
 def _open_build(path: str):

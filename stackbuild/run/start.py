@@ -1,0 +1,120 @@
+"""Starting a build: check every input, then create, resume or empty the build folder.
+
+Raw tiles, channel images and manifests are only read. ``overwrite`` deletes
+exactly :data:`OUR_OUTPUTS` inside the build folder, nothing else.
+"""
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+from .. import __version__
+from ..config import load_config
+from ..errors import InputError
+from ..manifest import read_channel_manifest, read_landmarks, read_tile_manifest
+from .folder import BuildFolder, csv_facts
+from .lock import LOCK_NAME
+
+#: What an earlier build wrote into its folder, and all that ``overwrite`` deletes.
+OUR_OUTPUTS = ("build.json", "transforms", "volume.zarr", "qc")
+
+
+def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel_size=None,
+                section_thickness=None, resume: bool = False, overwrite: bool = False) -> BuildFolder:
+    """Return the build folder ``out``, ready for the stages: new, resumed, or emptied of an earlier build.
+
+    Every input is checked before anything is written: the tile manifest (its check is kept
+    in the folder, see :meth:`BuildFolder.keep_checked_manifest`), the channel manifest, the
+    landmark file and the settings.
+
+    Parameters
+    ----------
+    out : str or Path
+        The build folder.
+    tiles, channels, landmarks : str or Path
+        The tile manifest; optional channel manifest and landmark file (which needs channels).
+    config : str or Path, optional
+        A pipeline TOML; ``pixel_size`` and ``section_thickness`` (nm) override its volume table.
+    resume : bool
+        Continue the build in ``out`` with its own settings; settings given again must match.
+    overwrite : bool
+        Delete the outputs of an earlier build in ``out`` (:data:`OUR_OUTPUTS`; nothing else).
+
+    Raises
+    ------
+    InputError
+        For bad input, a folder that already holds a build (without ``resume`` or
+        ``overwrite``), a non-empty folder that holds none, or settings that differ on resume.
+    """
+    build = BuildFolder(Path(out))
+    tiles = Path(tiles)
+    # Hashed before the check, so the kept snapshot never claims content it was not made from.
+    facts = csv_facts(tiles) if tiles.is_file() else None
+    manifest = None
+    if resume and build.exists() and Path(build.load_state().get("tiles", "")) == tiles.resolve():
+        manifest = build.tile_manifest()  # the kept snapshot while the CSV is unchanged
+    if manifest is None:
+        manifest = read_tile_manifest(tiles)
+    channels = Path(channels).resolve() if channels else None
+    entries = read_channel_manifest(channels) if channels else []
+    if landmarks and not channels:
+        raise InputError("--landmarks needs --channels: landmarks tie marker images to the EM",
+                         file=Path(landmarks))
+    landmarks = Path(landmarks).resolve() if landmarks else None
+    if landmarks:
+        read_landmarks(landmarks, manifest, entries)
+    cfg = load_config(config)
+    if pixel_size is not None:
+        cfg.volume.pixel_size = _positive(pixel_size, "--pixel-size")
+    if section_thickness is not None:
+        cfg.volume.section_thickness = _positive(section_thickness, "--section-thickness")
+    record = {"tiles": str(manifest.source), "channels": str(channels) if channels else None,
+              "landmarks": str(landmarks) if landmarks else None,
+              "config": cfg.to_json(), "stackbuild": __version__}
+    if build.exists():
+        if resume:
+            old = build.load_state()
+            if old.get("tiles") != record["tiles"] and not old.get("manifests"):
+                raise InputError(f"--resume: this build was made from {old.get('tiles')}, "
+                                 f"not {record['tiles']}", file=build.state_path)
+            given = config or pixel_size is not None or section_thickness is not None
+            changed = _changed_settings(old.get("config", {}), json.loads(json.dumps(record["config"]))) \
+                if given else []  # no settings given: carry on with the build's own
+            if changed or (channels and old.get("channels") != record["channels"]):
+                what = ", ".join(changed) if changed else "the channel manifest"
+                raise InputError(f"--resume: {what} differ from the interrupted build's; resume with the "
+                                 "same settings, or start again with --overwrite", file=build.state_path)
+            if landmarks:  # they only feed the report, so a resumed build may take new ones
+                build.update_state(landmarks=str(landmarks))
+            return build
+        if not overwrite:
+            raise InputError("already holds a build; pass --resume to continue it or --overwrite "
+                             "to replace it", file=build.root)
+        for name in OUR_OUTPUTS:
+            target = build.root / name
+            if target.is_dir():
+                shutil.rmtree(target)
+            elif target.exists():
+                target.unlink()
+    elif build.root.exists() and any(p.name != LOCK_NAME for p in build.root.iterdir()) and not overwrite:
+        raise InputError("exists, is not empty and holds no build; choose an empty or new folder",
+                         file=build.root)
+    build.root.mkdir(parents=True, exist_ok=True)
+    build.save_state({**record, "stages": {}})
+    if facts is not None:
+        build.keep_checked_manifest(manifest, facts)
+    return build
+
+
+def _changed_settings(old: dict, new: dict) -> list[str]:
+    """Return ``table.key`` names whose values differ between two settings records."""
+    return sorted(f"{t}.{k}" for t in set(old) | set(new)
+                  for k in set(old.get(t, {})) | set(new.get(t, {}))
+                  if old.get(t, {}).get(k) != new.get(t, {}).get(k))
+
+
+def _positive(value: float, name: str) -> float:
+    if not value > 0:
+        raise InputError(f"{name} must be > 0, got {value}")
+    return value

@@ -107,7 +107,8 @@ def load_config(path: str | Path | None = None) -> PipelineConfig:
     Raises
     ------
     InputError
-        If the file is missing, is not valid TOML, or has unknown keys or wrong types.
+        If the file is missing, is not valid TOML, or has unknown keys, wrong
+        types or values out of range (see :func:`check_config`).
     """
     if path is None:
         return PipelineConfig()
@@ -118,7 +119,50 @@ def load_config(path: str | Path | None = None) -> PipelineConfig:
         raise InputError("pipeline file not found", file=path) from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise InputError(f"not valid TOML ({exc})", file=path) from None
-    return _from_tables(tables, str(path))
+    cfg = _from_tables(tables, str(path))
+    check_config(cfg, str(path))
+    return cfg
+
+
+#: ``(table, key, test, wanted)`` for keys no stage checks itself when it starts.
+_RANGES = (
+    ("volume", "pixel_size", lambda v: v > 0, "> 0"),
+    ("volume", "section_thickness", lambda v: v > 0, "> 0"),
+    ("render", "clevel", lambda v: 0 <= v <= 9, "in 0..9"),
+    *(("report", k, lambda v: v >= 1, ">= 1") for k in (
+        "worst", "measure_scale", "measure_max_px", "block_spacing", "block_radius", "block_search",
+        "seam_spacing", "seam_radius", "seam_search", "reslice_px")),
+    ("report", "seam_smooth", lambda v: v >= 0, ">= 0"),
+)
+
+
+def check_config(cfg: PipelineConfig, source: str) -> None:
+    """Raise :class:`InputError` naming ``source`` and the key of the first value that cannot work.
+
+    Runs every stage's own settings check up front, so a bad value is refused
+    before the build folder is made, not when its stage starts hours later.
+    """
+    from zarr.codecs import BloscCname
+
+    from .align.stage import check_settings as check_align
+    from .channels.stage import check_settings as check_channels
+    from .render.write import check_settings as check_render
+    from .stitch.section import check_settings as check_stitch
+
+    for table, key, ok, wanted in _RANGES:
+        value = getattr(getattr(cfg, table), key)
+        if not ok(value):
+            raise InputError(f"[{table}] {key} must be {wanted}, got {value!r}", file=source)
+    codecs = ["none", *(c.value for c in BloscCname)]
+    if cfg.render.codec not in codecs:
+        raise InputError(f"[render] codec must be one of {', '.join(codecs)}, got {cfg.render.codec!r}",
+                         file=source)
+    for check, settings in ((check_stitch, cfg.stitch), (check_align, cfg.align),
+                            (check_channels, cfg.channels), (check_render, cfg.render)):
+        try:
+            check(settings)
+        except InputError as exc:
+            raise InputError(exc.reason, file=source) from None
 
 
 def attribute_docs(cls) -> dict[str, str]:

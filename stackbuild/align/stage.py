@@ -19,9 +19,9 @@ from ..errors import InputError
 from ..transforms.records import SectionAlignment
 from ..transforms.types import Affine2D, DisplacementField
 from .blockmatch import block_contrast, block_match, filter_vectors, grid_nodes
-from .coarse import PairResult, match_pair
+from .coarse import MODELS, PairResult, match_pair
 from .elastic import solve_fields
-from .features import FeatureSet, detect_features
+from .features import DETECTORS, FeatureSet, detect_features
 from .settings import AlignSettings
 from .solve import solve_affines
 from .sources import BuildSource
@@ -114,7 +114,19 @@ def _pairs(sections: list[int], neighbours: int) -> list[tuple[int, int]]:
     return [(z, z + k) for z in sections for k in range(1, neighbours + 1) if z + k in present]
 
 
-def _check(settings: AlignSettings) -> None:
+def check_settings(settings: AlignSettings) -> None:
+    """Raise :class:`InputError` naming the ``[align]`` key whose value cannot work."""
+    if settings.model not in MODELS:
+        raise InputError(f"[align] model must be one of {', '.join(MODELS)}, got {settings.model!r}")
+    if settings.detector not in DETECTORS:
+        raise InputError(f"[align] detector must be one of {', '.join(DETECTORS)}, got {settings.detector!r}")
+    if not 0 < settings.ratio <= 1:
+        raise InputError(f"[align] ratio must be in (0, 1], got {settings.ratio}")
+    if settings.ransac_threshold <= 0 or settings.max_features < 1 or settings.min_inliers < 3:
+        # an affine needs 3 point pairs, so fewer inliers can never make a model
+        raise InputError("[align] ransac_threshold must be > 0, max_features >= 1 and min_inliers >= 3")
+    if settings.block_radius < 1 or settings.search_radius < 1:
+        raise InputError("[align] block_radius and search_radius must be >= 1")
     if settings.work_scale < 1 or settings.elastic_scale < 1:
         raise InputError("[align] work_scale and elastic_scale must be >= 1")
     if settings.neighbours < 1:
@@ -277,7 +289,7 @@ def align_sections(source, settings: AlignSettings, *, mapper=map, progress=None
     scratch : path, optional
         Folder for intermediate arrays (a temporary folder if not given).
     """
-    _check(settings)
+    check_settings(settings)
     sections = sorted(source.sections())
     if not sections:
         raise InputError("no stitched sections to align; run the stitch stage first")

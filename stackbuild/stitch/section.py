@@ -29,7 +29,7 @@ def read_tile(entry: TileEntry, section: int) -> np.ndarray:
                          what=f"tile {entry.tile!r}{where}", source="header")
 
 
-def _check_settings(s: StitchSettings) -> None:
+def check_settings(s: StitchSettings) -> None:
     """Raise InputError naming the ``[stitch]`` key whose value cannot work."""
     rules = [
         ("max_stage_error", s.max_stage_error > 0, "> 0"), ("min_overlap", s.min_overlap >= 1, ">= 1"),
@@ -175,7 +175,7 @@ def stitch_section(tiles: list[TileEntry], settings: StitchSettings, section: in
     """
     if not tiles:
         raise InputError("section has no tiles", section=section)
-    _check_settings(settings)
+    check_settings(settings)
     stage = np.array([(t.x, t.y) for t in tiles], dtype=np.float64)
     sizes = np.array([(t.width, t.height) for t in tiles], dtype=np.int64)
     overlaps = find_overlaps(stage, sizes, settings.min_overlap, math.ceil(settings.max_stage_error))

@@ -23,6 +23,21 @@ def _plain(cls, rec: dict):
     return cls(**{k: v for k, v in rec.items() if k in names})
 
 
+#: Largest coordinate (pixels) a record may hold: far beyond any real mosaic (4 m at 4 nm),
+#: yet small enough that float64 positions keep sub-pixel precision.
+MAX_COORDINATE = 1e9
+
+
+def _require_finite(obj, names: tuple[str, ...], what: str, limit: float | None = None) -> None:
+    """Raise ValueError if an attribute of ``obj`` is not a finite number (or exceeds ``limit``)."""
+    for name in names:
+        v = getattr(obj, name)
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not np.isfinite(v) \
+                or (limit is not None and abs(v) > limit):
+            bound = "" if limit is None else f" within +-{limit:g}"
+            raise ValueError(f"{what} {name} must be a finite number{bound}, got {v!r}")
+
+
 @dataclass
 class TilePlacement:
     """Where one tile sits in its section mosaic, and how to correct its intensity.
@@ -52,8 +67,14 @@ class TilePlacement:
 
     @classmethod
     def from_json(cls, rec: dict) -> "TilePlacement":
-        """Read a dict written by :meth:`to_json`."""
-        return _plain(cls, rec)
+        """Read a dict written by :meth:`to_json`; positions and corrections must be finite."""
+        t = _plain(cls, rec)
+        what = f"tile {t.tile!r}"
+        _require_finite(t, ("stage_x", "stage_y", "x", "y"), what, MAX_COORDINATE)
+        _require_finite(t, ("gain", "offset"), what)
+        if not (isinstance(t.width, int) and isinstance(t.height, int) and t.width > 0 and t.height > 0):
+            raise ValueError(f"{what} width and height must be positive integers, got {t.width!r}, {t.height!r}")
+        return t
 
 
 @dataclass
@@ -225,4 +246,10 @@ class Canvas:
         """Read a dict written by :meth:`to_json`."""
         c = _plain(cls, rec)
         c.flagged_sections = {int(k): v for k, v in c.flagged_sections.items()}
+        _require_finite(c, ("origin_x", "origin_y"), "canvas", MAX_COORDINATE)
+        _require_finite(c, ("pixel_size_nm", "section_thickness_nm"), "canvas")
+        if not (isinstance(c.width, int) and isinstance(c.height, int) and c.width > 0 and c.height > 0) \
+                or min(c.pixel_size_nm, c.section_thickness_nm) <= 0 or c.last_section < c.first_section:
+            raise ValueError("canvas width, height, pixel_size_nm and section_thickness_nm must be > 0 "
+                             "and last_section >= first_section")
         return c

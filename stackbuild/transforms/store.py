@@ -146,7 +146,8 @@ class TransformStore:
             return None
         rec = env["record"]
         illum = self._read_array(section, "illumination") if rec.get("has_illumination") else None
-        return _checked(SectionStitch.from_json, rec, illum, path=self._json_path("stitch", section))
+        return _checked(SectionStitch.from_json, rec, illum, path=self._json_path("stitch", section),
+                        section=section)
 
     def save_alignment(self, rec: SectionAlignment) -> Path:
         """Store one section's alignment, retiring the previous version."""
@@ -161,7 +162,8 @@ class TransformStore:
         rec = env["record"]
         kinds = [t["type"] for t in rec.get("transforms", {}).get("transformations", [])]
         vec = self._read_array(section, "displacement") if "displacements" in kinds else None
-        return _checked(SectionAlignment.from_json, rec, vec, path=self._json_path("align", section))
+        return _checked(SectionAlignment.from_json, rec, vec, path=self._json_path("align", section),
+                        section=section)
 
     def save_canvas(self, canvas: Canvas) -> Path:
         """Store the output extent."""
@@ -214,8 +216,9 @@ def read_envelope(path: Path, kind: str | None = None) -> dict:
     return env
 
 
-def _checked(fn, *args, path: Path):
+def _checked(fn, *args, path: Path, section: int | None = None):
     try:
         return fn(*args)
     except (KeyError, TypeError, ValueError) as exc:
-        raise InputError(f"transform record is malformed ({type(exc).__name__}: {exc})", file=path) from None
+        raise InputError(f"transform record is malformed ({type(exc).__name__}: {exc})", file=path,
+                         section=section) from None

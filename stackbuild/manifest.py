@@ -33,6 +33,7 @@ from pathlib import Path
 import tifffile
 
 from .errors import InputError
+from .transforms.records import MAX_COORDINATE
 
 TILE_COLUMNS = ("section", "path", "x", "y")
 CHANNEL_COLUMNS = ("section", "channel", "path", "pixel_size")
@@ -258,8 +259,8 @@ def read_tile_manifest(path: str | Path) -> TileManifest:
     tiles = []
     for row, rec in rows:
         section = _section(rec["section"], path, row)
-        x = _float(rec["x"], "x", path, row)
-        y = _float(rec["y"], "y", path, row)
+        x = _coordinate(rec["x"], "x", path, row)
+        y = _coordinate(rec["y"], "y", path, row)
         image = _resolve(rec["path"], path, row)
         tile = rec.get("tile") or image.stem
         _claim(seen, section, tile, "tile", path, row)
@@ -270,7 +271,47 @@ def read_tile_manifest(path: str | Path) -> TileManifest:
         odd = next(t for t in tiles if t.dtype != tiles[0].dtype)
         raise InputError(f"tiles mix pixel types {sorted(dtypes)}; all tiles must share one",
                          file=path, row=odd.row)
+    _check_layout(tiles, path)
     return TileManifest(path.resolve(), tiles)
+
+
+def _coordinate(value: str, name: str, path: Path, row: int) -> float:
+    f = _float(value, name, path, row)
+    if abs(f) > MAX_COORDINATE:
+        raise InputError(f"column {name!r} is {f:g}, beyond +-{MAX_COORDINATE:g} pixels; stage positions "
+                         "must be in full-resolution pixels", file=path, row=row)
+    return f
+
+
+#: A section may spread its tiles over at most this many times the area they cover ...
+_MAX_SPREAD = 64
+#: ... once its extent exceeds this many pixels (32768 x 32768): below it a sparse layout is cheap.
+_SPREAD_FLOOR = 2 ** 30
+
+
+def _check_layout(tiles: list[TileEntry], path: Path) -> None:
+    """Refuse a section whose stage positions put its tiles absurdly far apart.
+
+    Every stage works on a section's whole mosaic, so tiles scattered over a
+    huge, nearly empty extent (positions in nanometres rather than pixels, a
+    mistyped coordinate) would exhaust memory deep in a stage instead of
+    being named here.
+    """
+    by_section: dict[int, list[TileEntry]] = {}
+    for t in tiles:
+        by_section.setdefault(t.section, []).append(t)
+    for section, group in by_section.items():
+        width = max(t.x + t.width for t in group) - min(t.x for t in group)
+        height = max(t.y + t.height for t in group) - min(t.y for t in group)
+        covered = sum(t.width * t.height for t in group)
+        if width * height > max(_SPREAD_FLOOR, _MAX_SPREAD * covered):
+            cx = sorted(t.x for t in group)[len(group) // 2]
+            cy = sorted(t.y for t in group)[len(group) // 2]
+            far = max(group, key=lambda t: abs(t.x - cx) + abs(t.y - cy))
+            raise InputError(f"the stage positions spread the section's {len(group)} tile(s) over "
+                             f"{width:.0f} x {height:.0f} pixels, {width * height / covered:.0f} times the area "
+                             f"they cover (tile {far.tile!r} is farthest out); x and y must be in "
+                             "full-resolution pixels", file=path, row=far.row, section=section)
 
 
 def read_channel_manifest(path: str | Path) -> list[ChannelEntry]:

@@ -151,3 +151,39 @@ def test_report_before_stitch_is_refused(small_build, tmp_path, capsys):
     assert "stitch" in _one_error(capsys)
     assert main(["report", str(b), "--quiet"]) == 2
     assert "stitch" in _one_error(capsys)
+
+
+def test_unwritable_record_folder_is_named(small_build, tmp_path, capsys):
+    # Before: NotADirectoryError traceback from the transform store, in a stitch worker.
+    _, b = _copy(small_build, tmp_path)
+    folder = b / "transforms" / "sections" / "00001"
+    shutil.rmtree(folder)
+    folder.write_text("a file where the section's folder should be")
+    assert main(["stitch", str(b), "--sections", "1", "--workers", "1", "--quiet"]) == 2
+    line = _one_error(capsys)
+    assert str(folder) in line and "section 1" in line
+
+
+def test_update_with_unreadable_new_tile_keeps_the_old_tiles(small_build, tmp_path, capsys):
+    # Before: the build was left pointing at the new manifest while section 1's records
+    # still came from the old tiles.
+    d, b = _copy(small_build, tmp_path)
+    new = tmp_path / "reimaged"
+    new.mkdir()
+    rows = [line.split(",") for line in (d / "tiles.csv").read_text().splitlines()]
+    out = [",".join(rows[0])]
+    for r in rows[1:]:
+        if r[0] == "1":
+            shutil.copy(d / r[2], new / Path(r[2]).name)
+            out.append(",".join([r[0], r[1], Path(r[2]).name, *r[3:]]))
+    (new / "tiles.csv").write_text("\n".join(out) + "\n")
+    bad = new / "r1c1.tif"
+    bad.write_bytes(bad.read_bytes()[:5000])  # the header still reads; the pixels do not
+    state = json.loads((b / "build.json").read_text())
+    before = _digest(b / "transforms")
+    assert main(["update", str(b), "--tiles", str(new / "tiles.csv"), "--workers", "1", "--quiet"]) == 2
+    assert str(bad) in _one_error(capsys)
+    after = json.loads((b / "build.json").read_text())
+    assert (after["tiles"], after.get("manifests", [])) == (state["tiles"], state.get("manifests", []))
+    assert _digest(b / "transforms") == before
+    assert main(["render", str(b), "--overwrite", "--quiet"]) == 0  # the old tiles still render

@@ -98,7 +98,14 @@ def update_build(build: BuildFolder, new_tiles: Path, *, workers=None, scheduler
     build.keep_checked_manifest(checked, facts)  # so the stages below do not check every tile again
     show = show_progress
     with dask_client(workers, scheduler) as client:
-        stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", show)), sections=new.sections)
+        try:
+            stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", show)), sections=new.sections)
+        except InputError:
+            # A new tile that cannot be read: the build goes back to its old tiles, whose records it still
+            # holds, rather than naming tiles its records were not made from.
+            build.update_state(tiles=state["tiles"], manifests=state.get("manifests", []))
+            build.keep_checked_manifest(old, csv_facts(Path(state["tiles"])))
+            raise
         stages.align_stage(build, client_mapper(client, ProgressBar("align", show)),
                            progress=ProgressBar("solve", show))
         # Marker images are registered to the section frame, which re-stitching moves.

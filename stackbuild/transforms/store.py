@@ -89,11 +89,15 @@ class TransformStore:
                "units": "pixel", "written": _now(), "record": record}
         # Serialise before touching the current version, so a bad record loses nothing.
         text = json.dumps(env, indent=1, allow_nan=False) + "\n"
-        self._retire(path, arrays or {})
-        for name, arr in (arrays or {}).items():
-            if arr is not None:
-                self._write_array(path.parent / f"{name}.zarr", arr)
-        atomic_write_text(path, text)
+        try:
+            self._retire(path, arrays or {})
+            for name, arr in (arrays or {}).items():
+                if arr is not None:
+                    self._write_array(path.parent / f"{name}.zarr", arr)
+            atomic_write_text(path, text)
+        except OSError as exc:  # a read-only or full disk, a file where a folder should be
+            raise InputError(f"cannot write the {kind} record ({exc.strerror or exc})", file=path,
+                             section=section) from None
         return path
 
     def _retire(self, path: Path, arrays: dict) -> None:

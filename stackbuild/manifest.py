@@ -38,6 +38,8 @@ from .transforms.records import MAX_COORDINATE
 TILE_COLUMNS = ("section", "path", "x", "y")
 CHANNEL_COLUMNS = ("section", "channel", "path", "pixel_size")
 LANDMARK_COLUMNS = ("section", "channel", "tile", "tile_x", "tile_y", "marker_x", "marker_y")
+#: Smallest side (pixels) of a marker image that can be registered.
+MIN_CHANNEL_SIDE = 8
 _NAME_OK = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
 
 
@@ -329,11 +331,14 @@ def read_channel_manifest(path: str | Path) -> list[ChannelEntry]:
         pixel_size = _float(rec["pixel_size"], "pixel_size", path, row)
         if pixel_size <= 0:
             raise InputError("column 'pixel_size' must be > 0", file=path, row=row)
-        x = _float(rec["x"], "x", path, row) if rec.get("x") else None
-        y = _float(rec["y"], "y", path, row) if rec.get("y") else None
+        x = _coordinate(rec["x"], "x", path, row) if rec.get("x") else None
+        y = _coordinate(rec["y"], "y", path, row) if rec.get("y") else None
         image = _resolve(rec["path"], path, row)
         _claim(seen, section, name, "channel", path, row)
         h, w, dtype = image_header(image, path, row)
+        if min(h, w) < MIN_CHANNEL_SIDE:  # the registration's smallest image (channels.mutual_info)
+            raise InputError(f"{image} is {h} x {w} pixels; a marker image must be at least "
+                             f"{MIN_CHANNEL_SIDE} x {MIN_CHANNEL_SIDE}", file=path, row=row)
         entries.append(ChannelEntry(section, name, image, pixel_size, x, y, w, h, dtype, row))
     return entries
 

@@ -135,3 +135,17 @@ def test_awkward_but_valid_stack_builds(base, tmp_path):
     assert all("blank" in t["flags"] for t in stitch8["tiles"])
     stitch7 = json.loads((out / "transforms" / "sections" / "00007" / "stitch.json").read_text())["record"]
     assert len(stitch7["tiles"]) == 1 and stitch7["stats"]["pairs"] == 0
+
+
+def test_tiny_marker_image_is_refused_naming_the_row(tmp_path):
+    # Before: a 5 x 4 marker image passed the manifest and raised "images must be 2-D and at
+    # least 8 x 8" as a traceback from the channel stage's worker.
+    from stackbuild.manifest import read_channel_manifest
+
+    tifffile.imwrite(tmp_path / "ok.tif", np.ones((16, 16), np.uint16))
+    tifffile.imwrite(tmp_path / "tiny.tif", np.arange(20, dtype=np.uint16).reshape(5, 4))
+    path = tmp_path / "channels.csv"
+    path.write_text("section,channel,path,pixel_size\n0,veridin,ok.tif,32\n1,veridin,tiny.tif,32\n")
+    with pytest.raises(InputError) as info:
+        read_channel_manifest(path)
+    assert (info.value.file, info.value.row) == (str(path), 3) and "5 x 4" in info.value.reason

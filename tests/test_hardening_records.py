@@ -187,3 +187,17 @@ def test_update_with_unreadable_new_tile_keeps_the_old_tiles(small_build, tmp_pa
     assert (after["tiles"], after.get("manifests", [])) == (state["tiles"], state.get("manifests", []))
     assert _digest(b / "transforms") == before
     assert main(["render", str(b), "--overwrite", "--quiet"]) == 0  # the old tiles still render
+
+
+def test_channel_row_for_a_section_without_tiles_is_named(small_build, tmp_path, capsys):
+    data, _ = small_build
+    rng = np.random.default_rng(5)
+    for s in (0, 5):
+        tifffile.imwrite(tmp_path / f"m{s}.tif", rng.integers(0, 4000, (48, 48)).astype(np.uint16))
+    channels = tmp_path / "channels.csv"
+    channels.write_text("section,channel,path,pixel_size\n0,veridin,m0.tif,32\n5,veridin,m5.tif,32\n")
+    status = main(["build", str(data / "tiles.csv"), "--out", str(tmp_path / "b"), "--channels", str(channels),
+                   "--workers", "1", "--quiet"])
+    assert status == 2
+    line = _one_error(capsys)
+    assert f"{channels}:3" in line and "section 5" in line

@@ -28,7 +28,7 @@ def read_tile(path: str | Path, height: int, width: int, section: int | None = N
     section : int, optional
         Its section, for the error message.
     dtype : str, optional
-        The pixel type recorded for it (e.g. ``"uint8"``); not checked if None.
+        The pixel type recorded for it (``"u1"`` or ``"uint8"`` alike); not checked if None.
     what : str
         How the tile is named in messages (e.g. ``"tile 'r0c1' (manifest line 4)"``).
     source : str
@@ -46,7 +46,7 @@ def read_tile(path: str | Path, height: int, width: int, section: int | None = N
         raise InputError(f"cannot read the pixels of {what}: {type(exc).__name__}: {exc}",
                          file=path, section=section) from None
     kind = img.dtype.str.lstrip("<>|=")
-    if img.shape != (height, width) or (dtype is not None and kind != dtype):
+    if img.shape != (height, width) or (dtype is not None and img.dtype != np.dtype(dtype)):
         expected = f"({height}, {width})" + (f" {dtype}" if dtype is not None else "")
         raise InputError(f"{what} has shape {img.shape} {kind}, but its {source} said {expected}",
                          file=path, section=section)

@@ -116,8 +116,6 @@ def test_resized_tile_is_named_by_render(small_build, tmp_path, capsys):
     assert str(tile) in line and "(100, 120)" in line
 
 
-@pytest.mark.xfail(strict=True, reason="render/tiles.py does not pass the recorded dtype to read_tile "
-                                       "(fix for the render owner; see the hardening report)")
 def test_tile_replaced_by_other_pixel_type_is_named_by_render(small_build, tmp_path, capsys):
     # Before: a 16-bit file in an 8-bit build rendered silently (status 0), wrapped or clipped.
     d, b = _copy(small_build, tmp_path)
@@ -127,8 +125,6 @@ def test_tile_replaced_by_other_pixel_type_is_named_by_render(small_build, tmp_p
     assert str(tile) in _one_error(capsys)
 
 
-@pytest.mark.xfail(strict=True, reason="run/lock.py build_lock lets OSError from mkdir/open through "
-                                       "(fix for the lock owner; see the hardening report)")
 def test_unwritable_output_folder_is_one_line(small_build, tmp_path, capsys):
     # Before: "internal error: NotADirectoryError ..." with exit status 1.
     data, _ = small_build
@@ -138,8 +134,6 @@ def test_unwritable_output_folder_is_one_line(small_build, tmp_path, capsys):
     assert str(blocker / "sub") in _one_error(capsys)
 
 
-@pytest.mark.xfail(strict=True, reason="qc/report.py writes a report for a build that was never stitched "
-                                       "(fix for the QC owner; see the hardening report)")
 def test_report_before_stitch_is_refused(small_build, tmp_path, capsys):
     _, b = _copy(small_build, tmp_path)
     for name in ("transforms", "volume.zarr", "qc"):

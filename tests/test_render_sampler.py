@@ -116,7 +116,7 @@ def test_only_tiles_meeting_the_region_are_read(tmp_path, monkeypatch):
     stitch = folder.store.load_stitch(0)
     read = []
     real = tiles_mod.read_tile
-    monkeypatch.setattr(tiles_mod, "read_tile", lambda p, *a: read.append(p.name) or real(p, *a))
+    monkeypatch.setattr(tiles_mod, "read_tile", lambda p, *a, **k: read.append(p.name) or real(p, *a, **k))
     tiles_mod.TILE_CACHE.clear()
     render_region(stitch, None, 2, 2, 20, 20)
     assert read == ["s0_r0_c0.tif"]

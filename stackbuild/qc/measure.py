@@ -91,7 +91,8 @@ def measure_seams(stitch: SectionStitch, settings: ReportSettings) -> list[SeamB
         if name not in cache:
             try:
                 t = stitch.tile(name)
-                cache[name] = read_tile(t.path, t.height, t.width, stitch.section).astype(np.float32)
+                cache[name] = read_tile(t.path, t.height, t.width, stitch.section,
+                                        dtype=stitch.dtype).astype(np.float32)
             except Exception as exc:  # an unreadable tile leaves its seams unmeasured, not the report
                 cache[name] = f"{name}: {type(exc).__name__}: {exc}"
         return cache[name]

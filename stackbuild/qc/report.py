@@ -15,6 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..errors import InputError
 from ..run.folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from . import plots
@@ -345,10 +346,16 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     """
     folder = BuildFolder(build_dir)
     thresholds = _thresholds(settings, fail_on)  # bad syntax fails before any work
+    if not folder.store.sections_with("stitch"):
+        raise InputError("nothing to report yet: no section has been stitched; run the stitch stage "
+                         "(or build) first", file=folder.root)
+    try:
+        folder.qc_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot write the report folder ({exc.strerror})", file=folder.qc_dir) from None
     doc, meas = collect(build_dir, settings, progress)
     passed, failures, rows = judge(doc, thresholds)
     doc["verdict"] = {"passed": passed, "failures": failures, "thresholds": rows}
-    folder.qc_dir.mkdir(parents=True, exist_ok=True)
     figures = _figures(folder, doc, meas, settings)
     paths = write_metrics(doc, folder.qc_dir, meas) + [p for _, p in figures]
     page = folder.qc_dir / "report.html"

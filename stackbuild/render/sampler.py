@@ -280,7 +280,7 @@ def _warp_tile(stitch, t, box, key, m, grid, scale, flag, acc, only=None):
     c, d = _index_range(box[1], box[3], cy0, scale, height)
     if a >= b or c >= d:
         return None, []
-    val_img, w_img = prepared_tile(t, stitch.illumination, key, scale, stitch.section)
+    val_img, w_img = prepared_tile(t, stitch.illumination, key, scale, stitch.section, stitch.dtype)
     half = (scale - 1) / 2.0
     # Output pixel (a + i, c + j) -> reduced tile pixel, as a 2x3 map on (i, j).
     x, y = cx0 + scale * a, cy0 + scale * c
@@ -345,7 +345,7 @@ def _blend_tile(stitch, t, box, key, sx, sy, grid, scale, flag, acc) -> None:
     c, d = _index_range(box[1], box[3], cy0 + scale * r_a, scale, n_r)
     if a >= b or c >= d:
         return
-    img = prepared_tile(t, stitch.illumination, key, scale, stitch.section)
+    img = prepared_tile(t, stitch.illumination, key, scale, stitch.section, stitch.dtype)
     half = (scale - 1) / 2.0
     mx = np.empty((d - c, b - a), np.float32)
     my = np.empty((d - c, b - a), np.float32)

@@ -120,7 +120,7 @@ def _padded_weight(height: int, width: int, scale: int) -> np.ndarray:
 
 
 def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int,
-                  section: int | None = None) -> np.ndarray:
+                  section: int | None = None, dtype: str | None = None) -> np.ndarray:
     """Return one tile corrected, reduced by ``scale`` and paired with its feather weight, from the cache.
 
     Parameters
@@ -133,6 +133,10 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
         A digest of ``profile`` (see :func:`profile_digest`), part of the cache key.
     scale : int
         Reduction factor (1 = full resolution).
+    section : int, optional
+        For error messages.
+    dtype : str, optional
+        The recorded pixel type; a file of another type is refused, naming it.
 
     Returns
     -------
@@ -154,7 +158,7 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
     with _PREP_LOCKS[hash(key) % len(_PREP_LOCKS)]:  # two threads never prepare the same tile
         value = TILE_CACHE.get(key)
         if value is None:
-            value = _prepare(p, tile, profile, scale, section)
+            value = _prepare(p, tile, profile, scale, section, dtype)
             TILE_CACHE.put(key, value)
     return value, _padded_weight(tile.height, tile.width, scale)
 
@@ -162,9 +166,9 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
 _PREP_LOCKS = [threading.Lock() for _ in range(64)]
 
 
-def _prepare(p: Path, tile, profile, scale: int, section) -> np.ndarray:
+def _prepare(p: Path, tile, profile, scale: int, section, dtype: str | None = None) -> np.ndarray:
     """Return the corrected, reduced tile with its one-pixel edge ring (float32)."""
-    raw = read_tile(p, tile.height, tile.width, section)
+    raw = read_tile(p, tile.height, tile.width, section, dtype=dtype)
     if scale != 1:
         img = raw.astype(np.float32)
         if profile is not None:

@@ -57,9 +57,12 @@ def build_lock(folder: str | Path, command: str | None = None):
     """
     folder = Path(folder)
     created = not folder.exists()
-    folder.mkdir(parents=True, exist_ok=True)
     path = folder / LOCK_NAME
-    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    except OSError as exc:  # under a file, a read-only mount, no permission
+        raise BuildFolderError(f"cannot create or write the build folder ({exc.strerror})", file=folder) from None
     try:
         try:
             fcntl.lockf(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)

@@ -163,3 +163,17 @@ def test_blank_channel_is_flagged_not_registered(sample, tmp_path):
     rec = folder.store.load_doc(DOC_KIND, section=0)["channels"]["empty"]
     assert facts["registered"] == 0 and rec["flags"] == ["blank"] and rec["registered"] is False
     assert rec["measure_after"] is None
+
+
+def test_marker_pixels_coarser_than_the_section_are_flagged_not_registered(sample, tmp_path):
+    raw, _, _ = sample
+    coarse = tmp_path / "coarse.tif"
+    rng = np.random.default_rng(0)
+    tifffile.imwrite(coarse, rng.integers(100, 4000, (12, 12)).astype(np.uint16))
+    csv = tmp_path / "channels.csv"
+    # 4 nm EM pixels, ~900 px sections: a 1000 nm marker pixel makes the section ~4 marker px across.
+    csv.write_text(f"section,channel,path,pixel_size\n0,coarse,{coarse},1000\n")
+    folder = _build(tmp_path / "build", raw, csv)
+    facts = run_channels(folder.root, SETTINGS)
+    rec = folder.store.load_doc(DOC_KIND, section=0)["channels"]["coarse"]
+    assert facts["registered"] == 0 and rec["flags"] == ["too_small"] and rec["registered"] is False

@@ -140,7 +140,7 @@ def _write_channel(folder, name, recs, canvas, settings, progress, done_before, 
     info = np.iinfo(dtype)
     for i, (s, rec) in enumerate(sorted(recs.items())):
         z = s - canvas.first_section
-        if "blank" in rec["flags"] or not 0 <= z < canvas.depth:
+        if {"blank", "too_small"} & set(rec["flags"]) or not 0 <= z < canvas.depth:
             continue
         alignment = folder.store.load_alignment(s)
         img = resample_channel(tifffile.imread(rec["path"]), channel_affine(rec).inverse(), alignment,

@@ -22,7 +22,7 @@ Stored record (``store.save_doc("channels", ..., section=s)``), one per section:
         "distinctness": robust z-score of the best start-search value (see register_mutual_information),
         "shift_from_given": [dx, dy] section px at the image centre, or null when x, y are absent,
         "rotation_deg", "scale_ratio" (found scale / pixel-size ratio),
-        "flags": ["blank" | "low_mi" | "ambiguous" | "at_search_limit"], "seconds"}}}
+        "flags": ["blank" | "too_small" | "low_mi" | "ambiguous" | "at_search_limit"], "seconds"}}}
 
 Manifest ``x, y`` convention: the section-pixel position of the image's first
 block, as in :func:`stackbuild.render.sampler.render_region`; channel pixel
@@ -178,6 +178,10 @@ def register_channel(job: _ChannelJob) -> dict:
         return rec
     fine = feature_render_scale(k, st.feature_scale)
     em_fine, mask_fine, to_section = _em_at_scale(stitch, k, fine)
+    if min(em_fine.shape) * fine < 8 * k:  # the section is under 8 marker pixels across: nothing to match
+        rec["flags"].append("too_small")
+        rec["seconds"] = round(time.perf_counter() - t0, 3)
+        return rec
     start = guess.then(to_section.inverse())
     kind, found, info, tried = _register_features(em_fine, mask_fine, moving, start, fine, k, st)
     result = found.then(to_section)

@@ -58,6 +58,11 @@ def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel
         manifest = read_tile_manifest(tiles)
     channels = Path(channels).resolve() if channels else None
     entries = read_channel_manifest(channels) if channels else []
+    imaged = set(manifest.sections)
+    stray = next((e for e in entries if e.section not in imaged), None)
+    if stray is not None:  # refused now rather than after stitching and aligning everything else
+        raise InputError(f"channel {stray.channel!r} is for section {stray.section}, which has no tiles "
+                         "in the tile manifest", file=channels, row=stray.row, section=stray.section)
     if landmarks and not channels:
         raise InputError("--landmarks needs --channels: landmarks tie marker images to the EM",
                          file=Path(landmarks))

@@ -91,14 +91,14 @@ def _windows(folder, n: int = 5) -> list[float]:
 
 def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--full", action="store_true", help="4 sections of 6 x 6 tiles instead of 3 of 4 x 4")
+    ap.add_argument("--full", action="store_true", help="4 sections of 6 x 6 tiles instead of 4 of 4 x 4")
     ap.add_argument("--cluster", action="store_true", help="LocalCluster, 2 worker processes")
     ap.add_argument("--keep", type=Path, help="build in this folder and keep it")
     ap.add_argument("--repeat", type=int, default=4, help="alternating runs of render and floor (default 4)")
     ap.add_argument("--cold", action="store_true",
                     help="drop the page cache before every run (root only), so tiles are read from disk")
     args = ap.parse_args(argv)
-    n_sections, grid = (4, 6) if args.full else (3, 4)
+    n_sections, grid = (4, 6) if args.full else (4, 4)
     root = args.keep or Path(tempfile.mkdtemp(prefix="bench_render_"))
     settings = RenderSettings()
     t0 = time.perf_counter()

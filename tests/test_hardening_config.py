@@ -20,6 +20,7 @@ ROOT = Path(__file__).resolve().parents[1]
 # ones marked "was:" got through the config check and failed later.
 BAD = [
     ("[render]\nchunk = -64\n", "[render] chunk"),            # was: refused after stitch+align, no file named
+    ("[render]\nchunk = 513\n", "[render] chunk must be an even number"),  # odd shards cannot halve exactly
     ("[render]\nshard = 0\n", "[render] shard"),              # was: same
     ("[render]\ncodec = \"lzma9\"\n", "[render] codec"),      # was: ValueError traceback from the codec
     ("[render]\nclevel = 12\n", "[render] clevel"),

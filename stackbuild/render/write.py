@@ -3,9 +3,9 @@
 All levels are written in the same pass: level ``n+1`` is computed from level
 ``n`` in the same dask graph, one task per shard and level, so no two tasks ever
 write the same shard (see :mod:`stackbuild.render.pyramid`). Planes are written in
-batches; after each batch the list of finished planes is saved to
-``volume.zarr/em/.stackbuild_done.json``, so a killed render resumes with the
-planes not yet done, and ``planes=[...]`` re-renders only those planes.
+batches (one dask graph each); as each plane is finished the list of finished
+planes is saved to ``volume.zarr/em/.stackbuild_done.json``, so a killed render
+resumes with the planes not yet done, and ``planes=[...]`` re-renders only those planes.
 """
 from __future__ import annotations
 
@@ -39,8 +39,9 @@ BATCH_SHARDS = 32
 def check_settings(settings) -> None:
     """Raise :class:`InputError` if render settings are out of range."""
     where = "[render]"
-    if settings.chunk < 16:
-        raise InputError(f"{where} chunk must be >= 16, got {settings.chunk}")
+    if settings.chunk < 16 or settings.chunk % 2:
+        # Even, so every shard but the last halves exactly into the level above it.
+        raise InputError(f"{where} chunk must be an even number >= 16, got {settings.chunk}")
     if settings.shard < 1:
         raise InputError(f"{where} shard must be >= 1, got {settings.shard}")
     if settings.reducer not in REDUCERS:

@@ -137,7 +137,8 @@ def to_pixels(img: np.ndarray, dtype) -> np.ndarray:
     return img.astype(dtype)
 
 
-def _edges(n: int, step: int) -> list[tuple[int, int]]:
+def block_edges(n: int, step: int) -> list[tuple[int, int]]:
+    """Return the ``[a, b)`` index ranges that cut an axis of ``n`` pixels into blocks of ``step`` (the last may be short)."""
     return [(a, min(a + step, n)) for a in range(0, n, step)]
 
 
@@ -147,7 +148,7 @@ def level0(plan: RenderPlan, planes: list[int] | None = None) -> da.Array:
     for p in planes:
         if not 0 <= p < plan.depth:
             raise ValueError(f"plane {p} is outside the volume (depth {plan.depth})")
-    ys, xs = _edges(plan.height, plan.chunk), _edges(plan.width, plan.chunk)
+    ys, xs = block_edges(plan.height, plan.chunk), block_edges(plan.width, plan.chunk)
     name = "stackbuild-level0-" + tokenize(plan, planes, records_token(plan, planes))
     dsk = {}
     for k, z in enumerate(planes):

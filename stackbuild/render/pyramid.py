@@ -23,12 +23,8 @@ import numpy as np
 from dask.base import tokenize
 from dask.delayed import Delayed
 
-from .lazy import RenderPlan, records_token, render_block
+from .lazy import RenderPlan, block_edges, records_token, render_block
 from .reduce import reduce2x2
-
-
-def _edges(n: int, step: int) -> list[tuple[int, int]]:
-    return [(a, min(a + step, n)) for a in range(0, n, step)]
 
 
 def render_shard(plan: RenderPlan, target, z: int, y0: int, y1: int, x0: int, x1: int,
@@ -96,7 +92,7 @@ def pyramid_writes(plan: RenderPlan, targets: list, shapes: list[tuple[int, int]
     for n, (target, (h, w)) in enumerate(zip(targets, shapes)):
         name = f"stackbuild-pyramid-{n}-{token}"
         up = reducer if n < top else None
-        ys, xs = _edges(h, shard), _edges(w, shard)
+        ys, xs = block_edges(h, shard), block_edges(w, shard)
         for k, z in enumerate(planes):
             for i, (a, b) in enumerate(ys):
                 for j, (c, d) in enumerate(xs):

@@ -33,6 +33,9 @@ def main() -> None:
     ap.add_argument("--account", default=None, help="Slurm account")
     ap.add_argument("--scheduler-file", type=Path, required=True,
                     help="where to write the scheduler address for 'stackbuild --scheduler'")
+    ap.add_argument("--no-keep-jobs", dest="keep_jobs", action="store_false",
+                    help="do not replace Slurm jobs that end (by default a job that is killed or "
+                         "reaches its walltime is resubmitted, so a long build survives it)")
     args = ap.parse_args()
 
     from dask_jobqueue import SLURMCluster
@@ -45,11 +48,35 @@ def main() -> None:
     tmp.write_text(json.dumps({"address": cluster.scheduler_address}))
     os.replace(tmp, args.scheduler_file)
     print(f"scheduler at {cluster.scheduler_address}; written to {args.scheduler_file}", flush=True)
+    seen: set[str] = set()
     try:
         while True:
-            time.sleep(60)
+            time.sleep(20)
+            if args.keep_jobs:
+                _replace_lost_jobs(cluster, args.jobs, seen)
     except KeyboardInterrupt:
         cluster.close()
+
+
+def _replace_lost_jobs(cluster, jobs: int, seen: set[str]) -> None:
+    """Resubmit Slurm jobs whose workers were up and are gone (walltime, preemption, a lost node).
+
+    A job counts as lost only after its workers have been seen once, so jobs still waiting
+    in the queue are left alone. Meanwhile the build's tasks wait on the scheduler for the
+    new workers; nothing is lost, since every stage writes its results as it goes.
+    """
+    names = {str(w.get("name", "")) for w in cluster.scheduler_info.get("workers", {}).values()}
+    for job in list(cluster.worker_spec):
+        up = any(n == str(job) or n.startswith(f"{job}-") for n in names)
+        if up:
+            seen.add(job)
+        elif job in seen:
+            print(f"Slurm job of {job} ended; submitting a replacement", flush=True)
+            seen.discard(job)
+            cluster.worker_spec.pop(job, None)
+            cluster.workers.pop(job, None)
+    if len(cluster.worker_spec) < jobs:
+        cluster.scale(jobs=jobs)
 
 
 if __name__ == "__main__":

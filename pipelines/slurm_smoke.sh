@@ -44,7 +44,10 @@ NodeName=$host CPUs=$cpus RealMemory=$mem State=UNKNOWN
 PartitionName=smoke Nodes=$host Default=YES MaxTime=INFINITE State=UP
 EOF
 
-pgrep -x munged >/dev/null || munged
+if ! pgrep -x munged >/dev/null; then
+  chown munge:munge /run/munge 2>/dev/null || true
+  runuser -u munge -- /usr/sbin/munged 2>/dev/null || munged --force
+fi
 slurmctld
 slurmd
 cleanup() {
@@ -57,7 +60,7 @@ for _ in $(seq 30); do sinfo -h -o %T 2>/dev/null | grep -q idle && break; sleep
 sinfo
 
 python pipelines/slurm_workers.py --jobs 1 --cores "$cpus" --memory "$((mem / 1024 - 1))GiB" \
-  --walltime 00:30:00 --scheduler-file "$work/scheduler.json" > "$work/workers.log" 2>&1 &
+  --walltime 00:30:00 --scheduler-file "$work/scheduler.json" --log-dir "$work/jobs" > "$work/workers.log" 2>&1 &
 workers_pid=$!
 for _ in $(seq 60); do [ -f "$work/scheduler.json" ] && break; sleep 1; done
 

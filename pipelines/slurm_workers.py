@@ -33,6 +33,8 @@ def main() -> None:
     ap.add_argument("--account", default=None, help="Slurm account")
     ap.add_argument("--scheduler-file", type=Path, required=True,
                     help="where to write the scheduler address for 'stackbuild --scheduler'")
+    ap.add_argument("--log-dir", type=Path, default=None,
+                    help="folder for the Slurm jobs' output files (default: Slurm's, the current folder)")
     ap.add_argument("--no-keep-jobs", dest="keep_jobs", action="store_false",
                     help="do not replace Slurm jobs that end (by default a job that is killed or "
                          "reaches its walltime is resubmitted, so a long build survives it)")
@@ -42,7 +44,8 @@ def main() -> None:
 
     cluster = SLURMCluster(cores=args.cores, processes=args.cores, memory=args.memory,
                            walltime=args.walltime, queue=args.queue, account=args.account,
-                           job_script_prologue=["export OMP_NUM_THREADS=1 OPENBLAS_NUM_THREADS=1"])
+                           job_script_prologue=["export OMP_NUM_THREADS=1 OPENBLAS_NUM_THREADS=1"],
+                           log_directory=str(args.log_dir) if args.log_dir else None)
     cluster.scale(jobs=args.jobs)
     tmp = args.scheduler_file.with_suffix(".tmp")
     tmp.write_text(json.dumps({"address": cluster.scheduler_address}))

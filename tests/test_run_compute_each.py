@@ -42,3 +42,29 @@ def test_a_task_error_reaches_the_caller():
 
     with dask.config.set(scheduler="sync"), pytest.raises(ValueError, match="bad tile"):
         compute_each([dask.delayed(boom)()], lambda i: None)
+
+
+def test_a_scheduler_without_workers_is_reported(caplog):
+    from distributed import Client, LocalCluster
+
+    from stackbuild.run.cluster import WorkerWatch
+
+    with LocalCluster(n_workers=0, processes=False, dashboard_address=None) as cluster, Client(cluster) as client:
+        with caplog.at_level("WARNING", logger="stackbuild.run.cluster"):
+            watch = WorkerWatch(client, patience=0.3, every=0.1)
+            time.sleep(1.0)
+            watch.stop()
+    assert watch.warnings == 1  # once per outage, not every check
+    assert "no Dask workers have been connected" in caplog.text
+
+
+def test_a_scheduler_with_workers_is_not_reported():
+    from distributed import Client, LocalCluster
+
+    from stackbuild.run.cluster import WorkerWatch
+
+    with LocalCluster(n_workers=1, processes=False, dashboard_address=None) as cluster, Client(cluster) as client:
+        watch = WorkerWatch(client, patience=0.2, every=0.1)
+        time.sleep(0.6)
+        watch.stop()
+    assert watch.warnings == 0

@@ -9,6 +9,8 @@ from __future__ import annotations
 import contextlib
 import logging
 import os
+import threading
+import time
 import warnings
 from pathlib import Path
 from typing import Callable, Iterable
@@ -74,9 +76,11 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
         except OSError as exc:
             raise InputError(f"cannot reach the Dask scheduler {scheduler!r} ({exc})") from None
         _pin_worker_threads(client)
+        watch = WorkerWatch(client)
         try:
             yield client
         finally:
+            watch.stop()
             client.close()
         return
     n = workers or os.cpu_count() or 1
@@ -97,6 +101,45 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
     finally:
         client.close()
         cluster.close()
+
+
+class WorkerWatch:
+    """Warn (through :mod:`logging`) while a scheduler has had no workers for ``patience`` seconds.
+
+    Tasks on a scheduler without workers simply wait, which is right while a cluster's job
+    scheduler brings new workers (see ``pipelines/slurm_workers.py``), but looks like a hang
+    to whoever watches the build. The warning says so, once per outage.
+    """
+
+    def __init__(self, client, patience: float = 60.0, every: float = 5.0):
+        self._client, self._patience, self._every = client, patience, every
+        self._stop = threading.Event()
+        self.warnings = 0
+        self._thread = threading.Thread(target=self._run, name="stackbuild-worker-watch", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        empty_since = None
+        warned = False
+        while not self._stop.wait(self._every):
+            try:
+                n = len(self._client.scheduler_info().get("workers", {}))
+            except Exception:  # the client is closing, or the scheduler is gone: nothing to say here
+                continue
+            if n:
+                empty_since, warned = None, False
+                continue
+            empty_since = empty_since or time.monotonic()
+            if not warned and time.monotonic() - empty_since >= self._patience:
+                log.warning("no Dask workers have been connected for %.0f s; the build is waiting for "
+                            "workers (is the cluster job still queued or running?)", self._patience)
+                warned = True
+                self.warnings += 1
+
+    def stop(self) -> None:
+        """End the watch."""
+        self._stop.set()
+        self._thread.join(timeout=2 * self._every)
 
 
 def client_mapper(client, progress: Callable[[int, int], None] | None = None):

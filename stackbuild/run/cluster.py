@@ -96,9 +96,11 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
                                silence_logs=logging.ERROR)
     client = Client(cluster)
     _pin_worker_threads(client)
+    watch = WorkerWatch(client)  # local workers that all die and stay dead are worth a word too
     try:
         yield client
     finally:
+        watch.stop()
         client.close()
         cluster.close()
 

@@ -67,6 +67,7 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
         for name in ("distributed", "tornado"):
             logging.getLogger(name).setLevel(logging.ERROR)
 
+    cluster = None
     if scheduler:
         try:
             if Path(scheduler).is_file():
@@ -75,34 +76,29 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
                 client = Client(scheduler, timeout="10s")
         except OSError as exc:
             raise InputError(f"cannot reach the Dask scheduler {scheduler!r} ({exc})") from None
-        _pin_worker_threads(client)
-        watch = WorkerWatch(client)
-        try:
-            yield client
-        finally:
-            watch.stop()
-            client.close()
-        return
-    n = workers or os.cpu_count() or 1
-    if n < 1:
-        raise InputError(f"--workers must be >= 1, got {n}")
-    import dask
+    else:
+        n = workers or os.cpu_count() or 1
+        if n < 1:
+            raise InputError(f"--workers must be >= 1, got {n}")
+        import dask
 
-    with dask.config.set({"distributed.nanny.pre-spawn-environ": SINGLE_THREAD_ENV}), warnings.catch_warnings():
-        # Another Dask process on this machine holds the default HTTP port; ours takes a free one.
-        warnings.filterwarnings("ignore", message="Port .* is already in use")
-        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                               memory_limit=memory_limit, dashboard_address=None,
-                               silence_logs=logging.ERROR)
-    client = Client(cluster)
+        with dask.config.set({"distributed.nanny.pre-spawn-environ": SINGLE_THREAD_ENV}), \
+                warnings.catch_warnings():
+            # Another Dask process on this machine holds the default HTTP port; ours takes a free one.
+            warnings.filterwarnings("ignore", message="Port .* is already in use")
+            cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                                   memory_limit=memory_limit, dashboard_address=None,
+                                   silence_logs=logging.ERROR)
+        client = Client(cluster)
     _pin_worker_threads(client)
-    watch = WorkerWatch(client)  # local workers that all die and stay dead are worth a word too
+    watch = WorkerWatch(client)  # a scheduler's workers, or local ones, that all die are worth a word
     try:
         yield client
     finally:
         watch.stop()
         client.close()
-        cluster.close()
+        if cluster is not None:
+            cluster.close()
 
 
 class WorkerWatch:

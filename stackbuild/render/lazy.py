@@ -30,7 +30,7 @@ from ..transforms.store import TransformStore
 from .canvas import compute_canvas
 from .contrast import DOC_KIND, section_contrast
 from .ngff import AXES, level_transform
-from .reduce import level_shapes, reduce2x2, reduced_size
+from .reduce import level_shapes, reduce2x2
 from .sampler import interpolation_order, render_region
 
 
@@ -171,24 +171,15 @@ def _reduce_quad(kids: list[list[np.ndarray]], reducer: str) -> np.ndarray:
     """Return the 2x2 reduction of the (up to) 2 x 2 blocks ``kids`` as if they were one array.
 
     When every block but the last in each row and column has an even height and width
-    (always, for even block edges), each block is reduced on its own straight into its
-    place in the result: no concatenated copy of the four blocks is ever made.
+    (always, for even block edges), each block is reduced on its own and the quarters are
+    joined, as the writer does (:func:`stackbuild.render.pyramid.join_shard`): the four
+    full-size blocks are never concatenated.
     """
     heights = [row[0].shape[-2] for row in kids]
     widths = [b.shape[-1] for b in kids[0]]
     if any(n % 2 for n in heights[:-1] + widths[:-1]):
         return reduce2x2(np.block(kids), reducer)
-    first = kids[0][0]
-    out = np.empty(first.shape[:-2] + (sum(reduced_size(n) for n in heights),
-                                       sum(reduced_size(n) for n in widths)), first.dtype)
-    r = 0
-    for row, h in zip(kids, heights):
-        c = 0
-        for b, w in zip(row, widths):
-            out[..., r:r + reduced_size(h), c:c + reduced_size(w)] = reduce2x2(b, reducer)
-            c += reduced_size(w)
-        r += reduced_size(h)
-    return out
+    return np.block([[reduce2x2(b, reducer) for b in row] for row in kids])
 
 
 def reduce_level(arr: da.Array, reducer: str, block: int) -> da.Array:

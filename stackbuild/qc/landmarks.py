@@ -33,16 +33,17 @@ def landmark_rows(folder, stitches: dict, aligns: dict, scale) -> tuple[list[dic
     if not path:
         return [], []
     entries = read_landmarks(path, folder.tile_manifest(), folder.channel_manifest())
+    sections = {e.section for e in entries}
+    placements = {s: {t.tile: t for t in stitches[s].tiles} for s in sections if s in stitches}
+    registered = {s: (folder.store.load_doc("channels", section=s) or {}).get("channels") or {} for s in sections}
     rows, notes, missing = [], [], set()
     for e in entries:
-        placement = {t.tile: t for t in stitches[e.section].tiles} if e.section in stitches else {}
-        t = placement.get(e.tile)
+        t = placements.get(e.section, {}).get(e.tile)
         if t is None:
             missing.add(f"section {e.section} (not stitched)")
             continue
         em = np.array([[t.x + e.tile_x, t.y + e.tile_y]])
-        rec = folder.store.load_doc("channels", section=e.section) or {}
-        ch = (rec.get("channels") or {}).get(e.channel) or {}
+        ch = registered[e.section].get(e.channel) or {}
         row = {"section": e.section, "channel": e.channel, "name": e.name, "tile": e.tile,
                "em": [float(em[0, 0]), float(em[0, 1])], "marker": [e.marker_x, e.marker_y],
                "dx": None, "dy": None, "residual": None, "residual_nm": None, "row": e.row,

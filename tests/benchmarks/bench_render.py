@@ -23,6 +23,7 @@ Targets: render + pyramid within 2x the I/O floor; a window within 0.5 s.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
 import shutil
 import statistics
@@ -107,17 +108,24 @@ def main(argv=None) -> None:
                         settings=settings)
     print(f"synthetic build: {n_sections} sections of {grid}x{grid} tiles of 1024x1024, "
           f"written in {time.perf_counter() - t0:.1f} s")
-    client = None
+    stack = contextlib.ExitStack()
     if args.cluster:
         from stackbuild.run.cluster import dask_client
-        cluster = dask_client(2)
-        client = cluster.__enter__()
+        stack.enter_context(dask_client(2))
         print("scheduler: the build's own dask.distributed LocalCluster (stackbuild.run.cluster), "
               "2 worker processes x 1 thread")
     else:
         dask.config.set(scheduler="threads", num_workers=2)
         cv2.setNumThreads(1)
         print("scheduler: dask threaded, 2 threads; OpenCV single-threaded per task")
+    with stack:
+        _measure(folder, settings, args)
+    if args.keep is None:
+        shutil.rmtree(root, ignore_errors=True)
+
+
+def _measure(folder, settings, args) -> None:
+    """Render and measure the floor ``args.repeat`` times each, alternating; print the results."""
     renders, floors = [], []
     for _ in range(args.repeat):
         tiles_mod.TILE_CACHE.clear()
@@ -142,10 +150,6 @@ def main(argv=None) -> None:
     times = _windows(folder)
     print(f"random 1024x1024 lazy window: cold {times[0]:.3f} s, median {statistics.median(times):.3f} s, "
           f"max {max(times):.3f} s (target <= 0.5 s)")
-    if client is not None:
-        cluster.__exit__(None, None, None)
-    if args.keep is None:
-        shutil.rmtree(root, ignore_errors=True)
 
 
 if __name__ == "__main__":

@@ -6,15 +6,45 @@ strip by strip). Section
 ``s`` is then mapped linearly so that its range ``[lo_s, hi_s]`` lands on
 ``[median lo, median hi]`` over all sections: ``v -> gain_s * v + offset_s``.
 The record is stored as the stack-level store document ``"contrast"``.
+
+Each section is measured by its own task (:func:`range_job`, mapped over
+sections by the render stage), which holds one strip of the coarse render and
+at most ``max_samples`` kept values: about ``2 * strip * width / scale * 4``
+bytes plus 4 MB at any section size, never the section.
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
+from ..errors import InputError
 from ..transforms.records import SectionStitch
+from ..transforms.store import TransformStore
 from .sampler import render_region
 
 DOC_KIND = "contrast"
+
+
+@dataclass(frozen=True)
+class RangeJob:
+    """One section's range measurement: small and picklable (the task reads its own record)."""
+
+    transforms: str
+    section: int
+    percentiles: tuple[float, float]
+    scale: int
+
+
+def range_job(job: RangeJob) -> tuple[int, float, float]:
+    """Return ``(section, low, high)``: :func:`measure_range` of one section, reading its stitch record."""
+    store = TransformStore(job.transforms)
+    stitch = store.load_stitch(job.section)
+    if stitch is None:
+        raise InputError("section has tiles but no stitch record; run the stitch stage",
+                         file=store.section_dir(job.section) / "stitch.json", section=job.section)
+    lo, hi = measure_range(stitch, tuple(job.percentiles), job.scale)
+    return job.section, lo, hi
 
 
 def measure_range(stitch: SectionStitch, percentiles: tuple[float, float] = (1.0, 99.0),

@@ -20,11 +20,11 @@ import zarr
 from zarr.codecs import BloscCodec
 
 from ..errors import BuildFolderError, InputError
-from ..run.cluster import compute_each
+from ..run.cluster import client_mapper, compute_each
 from ..run.folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from .canvas import compute_canvas
-from .contrast import DOC_KIND, contrast_record, measure_range
+from .contrast import DOC_KIND, RangeJob, contrast_record, range_job
 from .lazy import RenderPlan, section_records
 from .ngff import multiscales_attrs, root_attrs
 from .pyramid import pyramid_writes
@@ -69,16 +69,32 @@ def _validate_records(folder: BuildFolder, sections: list[int]) -> None:
         section_records(str(folder.store.root), s)
 
 
-def _prepare_contrast(folder, settings, sections, planes_sections) -> None:
+def _default_mapper():
+    """Return a mapper onto the running Dask client, else onto a thread pool of this process."""
+    try:
+        from distributed import default_client
+
+        return client_mapper(default_client())
+    except (ImportError, ValueError):  # no distributed, or no client
+        from concurrent.futures import ThreadPoolExecutor
+
+        def mapper(fn, items):
+            with ThreadPoolExecutor() as pool:
+                return list(pool.map(fn, items))
+        return mapper
+
+
+def _prepare_contrast(folder, settings, sections, planes_sections, mapper=None) -> None:
+    """Measure the range of every section that needs it, one task per section (see :func:`range_job`)."""
     store = folder.store
     old = store.load_doc(DOC_KIND) or {}
     ranges = {int(k): (v["low"], v["high"]) for k, v in old.get("sections", {}).items()
               if old.get("percentiles") == list(settings.contrast_percentiles)
               and old.get("scale") == settings.contrast_scale}
-    for s in sections:
-        if s in planes_sections or s not in ranges:
-            stitch, _ = section_records(str(store.root), s)
-            ranges[s] = measure_range(stitch, settings.contrast_percentiles, settings.contrast_scale)
+    jobs = [RangeJob(str(store.root), s, tuple(settings.contrast_percentiles), settings.contrast_scale)
+            for s in sections if s in planes_sections or s not in ranges]
+    for s, lo, hi in (mapper or _default_mapper())(range_job, jobs):
+        ranges[s] = (lo, hi)
     ranges = {s: r for s, r in ranges.items() if s in sections}
     store.save_doc(DOC_KIND, contrast_record(ranges, tuple(settings.contrast_percentiles),
                                              settings.contrast_scale))
@@ -107,7 +123,7 @@ def _create_arrays(em: Path, shapes, depth: int, settings, dtype: str, attrs: di
 
 
 def render_volume(build_dir, settings, *, planes: list[int] | None = None, overwrite: bool = False,
-                  progress=None) -> dict:
+                  progress=None, mapper=None) -> dict:
     """Render and write the volume of a build folder; return facts about the run.
 
     Parameters
@@ -124,6 +140,9 @@ def render_volume(build_dir, settings, *, planes: list[int] | None = None, overw
         Replace an existing volume.
     progress : callable(done, total), optional
         Called after each batch of planes.
+    mapper : callable(fn, items), optional
+        Runs the contrast measurements, one task per section (default: the running Dask
+        client, else a thread pool).
 
     Returns
     -------
@@ -157,7 +176,8 @@ def render_volume(build_dir, settings, *, planes: list[int] | None = None, overw
     if folder.store.load_canvas() != canvas:
         folder.store.save_canvas(canvas)
     if settings.contrast:
-        _prepare_contrast(folder, settings, manifest.sections, {canvas.first_section + z for z in todo})
+        _prepare_contrast(folder, settings, manifest.sections, {canvas.first_section + z for z in todo},
+                          mapper)
     attrs = multiscales_attrs("em", len(shapes), canvas.pixel_size_nm, canvas.section_thickness_nm,
                               settings.reducer, extra=stamp)
     ckpt = _read_checkpoint(em)

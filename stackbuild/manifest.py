@@ -25,6 +25,7 @@ is read, before any pixels are allocated, so a bad file is named up front.
 from __future__ import annotations
 
 import csv
+import logging
 import math
 import re
 from dataclasses import dataclass, field
@@ -34,6 +35,8 @@ import tifffile
 
 from .errors import InputError
 from .transforms.records import MAX_COORDINATE
+
+log = logging.getLogger(__name__)
 
 TILE_COLUMNS = ("section", "path", "x", "y")
 CHANNEL_COLUMNS = ("section", "channel", "path", "pixel_size")
@@ -221,18 +224,56 @@ def _resolve(value: str, manifest: Path, row: int) -> Path:
 
 def image_header(path: Path, manifest: Path | None = None, row: int | None = None):
     """Return ``(height, width, dtype)`` of a single-channel 8/16-bit TIFF, reading the header only."""
+    return _header(path, manifest, row)[:3]
+
+
+#: TIFF compression schemes that lose information (or may: JPEG 2000, WebP,
+#: JPEG XL and LERC have lossless modes that the header does not tell apart).
+LOSSY_COMPRESSION = frozenset({
+    "OJPEG", "JPEG", "JPEG_99", "JPEG_LOSSY", "ALT_JPEG", "JPEG_2000_LOSSY", "APERIO_JP2000_YCBC",
+    "APERIO_JP2000_RGB", "JPEGXR_NDPI", "JPEGXR", "JPEG2000", "WEBP", "WEBP_DEPRECATED", "JPEGXL",
+    "JPEGXL_DNG", "LERC"})
+
+
+def _header(path: Path, manifest: Path | None = None, row: int | None = None):
+    """Return ``(height, width, dtype, lossy)`` of a single-page, single-channel 8/16-bit TIFF.
+
+    ``lossy`` is the name of the lossy compression scheme of its pixels, or
+    None. A file of several pages is refused, naming the pages: which page is
+    the image (a thumbnail first, a stack of frames) cannot be guessed safely.
+    """
     where = dict(file=manifest or path, row=row)
     try:
         with tifffile.TiffFile(path) as tif:
             page = tif.pages.first
             shape, dtype = tuple(page.shape), page.dtype
+            compression = getattr(page.compression, "name", str(page.compression))
+            pages = len(tif.pages)
+            sizes = [tuple(p.shape) for p in tif.pages[:4]] if pages > 1 else []
     except Exception as exc:  # tifffile raises many types for non-TIFF data
         raise InputError(f"{path} is not a readable TIFF image ({type(exc).__name__}: {exc})", **where) from None
+    if pages > 1:
+        listed = ", ".join(f"page {i}: {' x '.join(map(str, s))}" for i, s in enumerate(sizes))
+        more = ", ..." if pages > len(sizes) else ""
+        raise InputError(f"{path} holds {pages} pages ({listed}{more}); a tile or marker image must be "
+                         "a single-page TIFF: save the full-resolution image alone", **where)
     if len(shape) != 2:
         raise InputError(f"{path} must be a single-channel 2-D image, has shape {shape}", **where)
     if dtype.kind != "u" or dtype.itemsize not in (1, 2):
         raise InputError(f"{path} must be 8- or 16-bit unsigned, is {dtype}", **where)
-    return shape[0], shape[1], dtype.str.lstrip("<>|=")
+    return shape[0], shape[1], dtype.str.lstrip("<>|="), (compression if compression in LOSSY_COMPRESSION
+                                                          else None)
+
+
+def lossy_compression(path: str | Path) -> str | None:
+    """Return the name of the lossy compression scheme of a TIFF's pixels, or None (header only)."""
+    try:
+        with tifffile.TiffFile(path) as tif:
+            comp = tif.pages.first.compression
+    except Exception:  # an unreadable file is named by the reader, not here
+        return None
+    name = getattr(comp, "name", str(comp))
+    return name if name in LOSSY_COMPRESSION else None
 
 
 def read_tile_manifest(path: str | Path) -> TileManifest:
@@ -252,22 +293,43 @@ def read_tile_manifest(path: str | Path) -> TileManifest:
     ------
     InputError
         Naming the file and line for a missing column, a non-numeric value, a
-        duplicate tile, a missing file, a file that is not an 8/16-bit
-        single-channel TIFF, or tiles of mixed pixel type.
+        duplicate tile, one image file on two lines (both named), a missing
+        file, a file that is not a single-page 8/16-bit single-channel TIFF
+        (a multi-page file is refused, its pages listed), or tiles of mixed
+        pixel type.
+
+    Notes
+    -----
+    Tiles stored with lossy compression (JPEG and kin, see
+    :data:`LOSSY_COMPRESSION`) are accepted with one logged warning; the
+    stitch record flags each of them ``lossy_compression``.
     """
     path = Path(path)
     rows = _read_rows(path, TILE_COLUMNS)
     seen: dict[tuple[int, str], int] = {}
+    files: dict[Path, int] = {}
+    lossy: list[tuple[int, Path, str]] = []
     tiles = []
     for row, rec in rows:
         section = _section(rec["section"], path, row)
         x = _coordinate(rec["x"], "x", path, row)
         y = _coordinate(rec["y"], "y", path, row)
         image = _resolve(rec["path"], path, row)
+        if image in files:
+            raise InputError(f"image file {image} is listed twice, on lines {files[image]} and {row}; "
+                             "each tile must be its own file", file=path, row=row)
+        files[image] = row
         tile = rec.get("tile") or image.stem
         _claim(seen, section, tile, "tile", path, row)
-        h, w, dtype = image_header(image, path, row)
+        h, w, dtype, lossy_name = _header(image, path, row)
+        if lossy_name:
+            lossy.append((row, image, lossy_name))
         tiles.append(TileEntry(section, tile, image, x, y, w, h, dtype, row))
+    if lossy:
+        row, image, name = lossy[0]
+        log.warning("%s: %d tile(s) are stored with lossy %s compression (first: %s, line %d); they are "
+                    "used as they are, and the stitch record flags them lossy_compression",
+                    path, len(lossy), name, image, row)
     dtypes = {t.dtype for t in tiles}
     if len(dtypes) > 1:
         odd = next(t for t in tiles if t.dtype != tiles[0].dtype)

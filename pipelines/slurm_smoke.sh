@@ -87,7 +87,7 @@ import sys
 import numpy as np
 import zarr
 work = sys.argv[1]
-for level in ("em/0", "em/1", "channels/ambrin/0", "channels/punctin/0"):
+for level in ("em/0", "em/1", "channels/ambrin/0", "channels/stippolin/0"):
     a = zarr.open_array(f"{work}/slurm/volume.zarr/{level}", mode="r")[...]
     b = zarr.open_array(f"{work}/local/volume.zarr/{level}", mode="r")[...]
     assert np.array_equal(a, b), f"{level} differs between the Slurm and the local build"

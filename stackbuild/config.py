@@ -130,8 +130,8 @@ _RANGES = (
     ("volume", "section_thickness", lambda v: v > 0, "> 0"),
     ("render", "clevel", lambda v: 0 <= v <= 9, "in 0..9"),
     *(("report", k, lambda v: v >= 1, ">= 1") for k in (
-        "worst", "measure_scale", "measure_max_px", "block_spacing", "block_radius", "block_search",
-        "seam_spacing", "seam_radius", "seam_search", "reslice_px")),
+        "worst", "measure_scale", "measure_max_px", "probe_spacing", "probe_half_size", "probe_max_shift",
+        "seam_spacing", "seam_half_size", "seam_max_shift", "reslice_px")),
     ("report", "seam_smooth", lambda v: v >= 0, ">= 0"),
 )
 

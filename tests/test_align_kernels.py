@@ -89,7 +89,7 @@ def test_block_match_finds_a_subpixel_shift_made_by_scipy():
     # reference shift: scipy.ndimage.shift (cubic spline); content at p moves to p + (2.3, -1.6)
     moved = ndimage.shift(img, (-1.6, 2.3), order=3, mode="nearest")
     nodes = np.array([[x, y] for y in range(128, 400, 64) for x in range(128, 400, 64)], float)
-    shifts, peaks = block_match(img, moved, nodes, block_radius=20, search_radius=6)
+    shifts, peaks = block_match(img, moved, nodes, half_size=20, max_shift=6)
     good = np.isfinite(peaks)
     assert good.sum() >= 0.8 * len(nodes)
     np.testing.assert_allclose(np.median(shifts[good], axis=0), [2.3, -1.6], atol=0.1)
@@ -155,7 +155,7 @@ def test_elastic_keeps_linear_change_and_removes_random_distortion():
     noise = {z: rng.normal(0, 2, (*shape, 2)) for z in zs}  # random per-section distortion
     seen = {z: z * slant + noise[z] for z in zs}           # where each section's content lies
     matches = {(a, b): (seen[b] - seen[a], np.ones(shape)) for a in zs for b in (a + 1, a + 2) if b in zs}
-    u = solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6)
+    u = solve_fields(zs, shape, matches, smoothness_weight=0.0, pull=1e-6)
     # u must reproduce the random part up to a linear-in-z field (the slant, kept in place)
     z = np.array(zs, float)[:, None, None, None]
     res = np.stack([u[k] - noise[k] for k in zs])
@@ -200,11 +200,11 @@ def test_first_difference_term_trades_slant_for_random_trend():
     noise = {z: rng.normal(0, 2, (*shape, 2)) for z in zs}
     matches = {(a, b): (noise[b] - noise[a], np.ones(shape)) for a in zs for b in (a + 1, a + 2) if b in zs}
     want = _slope(noise)
-    got = [np.abs(_slope(solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6, chain=c)) - want).max()
+    got = [np.abs(_slope(solve_fields(zs, shape, matches, smoothness_weight=0.0, pull=1e-6, chain=c)) - want).max()
            for c in (0.0, 0.02, 1.0)]
     assert got[0] > 0.9 * np.abs(want).max()       # no chain: the trend is left (kept as if slant)
     assert got[0] > got[1] > got[2]                 # a stronger chain removes more of it
-    u = solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6, chain=1.0)
+    u = solve_fields(zs, shape, matches, smoothness_weight=0.0, pull=1e-6, chain=1.0)
     mean = np.mean([noise[z] for z in zs], axis=0)  # the pull fixes only the constant along z
     for z in zs:
         np.testing.assert_allclose(u[z], noise[z] - mean, atol=0.05)
@@ -223,7 +223,7 @@ def test_affine_first_difference_leaves_non_affine_slant():
     aff = {z: basis @ (z * drift + rng.normal(0, 0.5, (3, 2))) for z in zs}
     seen = {z: aff[z] + 0.5 * z * bend for z in zs}
     matches = {(a, b): (seen[b] - seen[a], np.ones(shape)) for a in zs for b in (a + 1, a + 2) if b in zs}
-    u = solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6, affine_chain=10.0)
+    u = solve_fields(zs, shape, matches, smoothness_weight=0.0, pull=1e-6, affine_chain=10.0)
     np.testing.assert_allclose(_slope(u), _slope(aff), atol=1e-3)          # affine drift removed
-    plain = solve_fields(zs, shape, matches, stiffness=0.0, pull=1e-6)
+    plain = solve_fields(zs, shape, matches, smoothness_weight=0.0, pull=1e-6)
     assert np.abs(_slope(plain) - _slope(aff)).max() > 0.1                  # without it, kept

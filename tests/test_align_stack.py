@@ -124,7 +124,7 @@ def test_known_warp_of_camera_is_recovered():
     st = Stack({0: img, 1: moved, 2: img.copy()},
                affines={z: np.eye(2, 3) for z in range(3)},
                warps={0: np.zeros_like(warp), 1: warp, 2: np.zeros_like(warp)})
-    al = align_sections(ArraySource(st.images), small_settings(grid_spacing=32, block_radius=12))
+    al = align_sections(ArraySource(st.images), small_settings(grid_spacing=32, match_half_size=12))
     r = residuals(st, al, border=96, step=16)
     assert rms(r[1]) <= 0.5
     assert al[1].displacement.magnitude_stats()["max"] > 2.0

@@ -169,7 +169,7 @@ def split_linear(r: dict):
 def small_settings(**kw):
     """Settings sized for the small test sections (not a test)."""
     from stackbuild.align.settings import AlignSettings
-    base = dict(work_scale=2, elastic_scale=2, grid_spacing=64, block_radius=16, search_radius=10,
+    base = dict(work_scale=2, elastic_scale=2, grid_spacing=64, match_half_size=16, match_max_shift=10,
                 max_features=2500)
     base.update(kw)
     return AlignSettings(**base)

@@ -91,10 +91,10 @@ def test_sparse_marker_is_right_or_flagged(sample):
     raw, folder, _ = sample
     truth = load_truth(raw)
     for s in truth.sections:
-        rec = folder.store.load_doc(DOC_KIND, section=s)["channels"]["punctin"]
+        rec = folder.store.load_doc(DOC_KIND, section=s)["channels"]["stippolin"]
         h, w = tifffile.imread(rec["path"]).shape
         pts = _grid(w, h)
-        err = np.hypot(*(channel_affine(rec).apply(pts) - truth.channel_to_section(s, "punctin", pts)).T) / BINNING
+        err = np.hypot(*(channel_affine(rec).apply(pts) - truth.channel_to_section(s, "stippolin", pts)).T) / BINNING
         assert err.max() <= 1.0 or {"low_mi", "ambiguous"} & set(rec["flags"]), f"section {s}: {err.max():.2f} px"
         assert rec["registered"] and rec["feature"] in ("edges", "density")
 

@@ -108,7 +108,7 @@ def test_repetitive_texture_pair_is_rejected_and_named(tmp_path):
     pair = next(p for p in res.pairs if (p.a, p.b) == ("r0c0", "r0c1"))
     assert not pair.accepted
     assert pair.reason in {"weak_peak", "residual", "far_from_stage"}
-    assert pair.peak_ratio < StitchSettings().min_peak_ratio or pair.reason != "weak_peak"
+    assert pair.peak_ratio < StitchSettings().min_peak_margin or pair.reason != "weak_peak"
     assert res.stats["pairs_rejected"].get(pair.reason, 0) >= 1
     err = placement_errors(res, sec.truth)
     assert np.sqrt(np.mean(err ** 2)) <= 0.1
@@ -178,5 +178,5 @@ def test_record_round_trips_through_the_transform_store(plain, tmp_path):
 
 def test_unusable_setting_is_an_input_error(tmp_path):
     sec = make_section(tmp_path, rows=1, cols=2, seed=2)
-    with pytest.raises(InputError, match=r"\[stitch\] whitening"):
-        stitch_section(sec.tiles, StitchSettings(whitening=2.0), 0)
+    with pytest.raises(InputError, match=r"\[stitch\] spectral_exponent"):
+        stitch_section(sec.tiles, StitchSettings(spectral_exponent=2.0), 0)

@@ -29,11 +29,11 @@ def test_published_worked_example_camera():
 
 
 def test_published_example_with_window_and_smoothing():
-    # Same published case; our pipeline options (Hann window, partial whitening,
+    # Same published case; our pipeline options (Hann window, partial spectral normalisation,
     # spectral weight) must not bias it by more than 0.02 px (our tolerance).
     img = data.camera().astype(np.float64)
     moved = fourier_shifted(img, (3.48574, 8.73837))
-    (dx, dy), _ = phase_correlate(img, moved, upsample=100, window=True, whiten=0.8, lowpass=0.1)
+    (dx, dy), _ = phase_correlate(img, moved, upsample=100, window=True, spectral_exponent=0.8, lowpass=0.1)
     assert abs(dy - 3.48574) <= 0.02
     assert abs(dx - 8.73837) <= 0.02
 
@@ -132,6 +132,6 @@ def test_windowed_padded_path_agrees_with_skimage():
         assert abs(dx + ref[1]) <= 0.02 and abs(dy + ref[0]) <= 0.02
         # Against the applied shift, with the pipeline's spectral settings: the
         # cubic-spline shift (scipy.ndimage.shift) is inexact near Nyquist, which
-        # full whitening weights as much as the rest (~0.1 px error here).
-        (dx, dy), _ = phase_correlate(a, b, upsample=100, whiten=0.8, lowpass=0.1)
+        # full normalisation weights as much as the rest (~0.1 px error here).
+        (dx, dy), _ = phase_correlate(a, b, upsample=100, spectral_exponent=0.8, lowpass=0.1)
         assert abs(dx - shift[1]) < 0.05 and abs(dy - shift[0]) < 0.05  # noise-free: our tolerance

@@ -42,7 +42,7 @@ def test_manifests_pass_the_project_readers(sample):
     assert {t.tile for t in manifest.section_tiles(0)} == {"r0c0", "r0c1", "r1c0", "r1c1"}
     assert {(t.width, t.height, t.dtype) for t in manifest.tiles} == {(128, 128, "u1")}  # manifest reports numpy dtype codes
     channels = read_channel_manifest(sample / "channels.csv")
-    assert {(c.section, c.channel) for c in channels} == {(0, "ambrin"), (0, "punctin")}
+    assert {(c.section, c.channel) for c in channels} == {(0, "ambrin"), (0, "stippolin")}
     assert {c.pixel_size for c in channels} == {4.0 * 8}
     truth = load_truth(sample)
     assert truth.sections == [0, 1, 3] and truth.lost_sections == [2]

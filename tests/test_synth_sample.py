@@ -22,7 +22,7 @@ def test_sample_is_as_documented():
     assert {(t.width, t.height) for t in manifest.tiles} == {(448, 448)}
     channels = read_channel_manifest(SAMPLE / "channels.csv")
     assert sorted({c.section for c in channels}) == [0, 2, 4, 6, 8]
-    assert {c.channel for c in channels} == {"ambrin", "punctin"}
+    assert {c.channel for c in channels} == {"ambrin", "stippolin"}
     size = sum(p.stat().st_size for p in SAMPLE.rglob("*") if p.is_file())
     assert size <= 15 * 2 ** 20
 

@@ -123,7 +123,7 @@ def test_channel_map_lines_the_marker_up_with_the_tissue(sample):
     nominal = seen(lambda pts: b * pts + (b - 1) / 2)
     assert _corr(image, true_map) > 0.8
     assert _corr(image, true_map) > _corr(image, nominal) + 0.1
-    assert truth.channels(s) == ["ambrin", "punctin"]
+    assert truth.channels(s) == ["ambrin", "stippolin"]
 
 
 def test_uint16_tiles_are_the_8_bit_model_times_256(tmp_path):

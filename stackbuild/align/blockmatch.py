@@ -17,8 +17,8 @@ def _parabola(lo: float, mid: float, hi: float) -> float:
     return 0.0 if den >= 0 else float(np.clip(0.5 * (lo - hi) / den, -0.5, 0.5))
 
 
-def block_match(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, block_radius: int,
-                search_radius: int, min_std: float = 1e-3) -> tuple[np.ndarray, np.ndarray]:
+def block_match(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_size: int,
+                max_shift: int, min_std: float = 1e-3) -> tuple[np.ndarray, np.ndarray]:
     """Return the shift and correlation peak of every grid node.
 
     Parameters
@@ -27,9 +27,9 @@ def block_match(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, block_
         Images of the same frame and size. NaN marks pixels without data.
     nodes : ndarray, shape (N, 2)
         Node positions ``(x, y)``; rounded to the nearest pixel.
-    block_radius : int
-        The template is ``2 * block_radius + 1`` pixels square.
-    search_radius : int
+    half_size : int
+        The template is ``2 * half_size + 1`` pixels square.
+    max_shift : int
         Shifts up to this many pixels in x and y are searched.
     min_std : float
         Templates whose standard deviation (relative to the image's) is below
@@ -57,9 +57,9 @@ def block_match(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, block_
     """
     if fixed.shape != moving.shape or fixed.ndim != 2:
         raise ValueError(f"fixed and moving must be 2-D of one shape, got {fixed.shape}, {moving.shape}")
-    br, sr = int(block_radius), int(search_radius)
+    br, sr = int(half_size), int(max_shift)
     if br < 2 or sr < 1:
-        raise ValueError(f"block_radius must be >= 2 and search_radius >= 1, got {br}, {sr}")
+        raise ValueError(f"half_size must be >= 2 and max_shift >= 1, got {br}, {sr}")
     f = np.asarray(fixed, np.float32)
     m = np.asarray(moving, np.float32)
     scale = float(np.nanstd(f)) or 1.0
@@ -141,7 +141,7 @@ def grid_nodes(origin: tuple[float, float], spacing: float, shape: tuple[int, in
     return np.column_stack([gx.ravel(), gy.ravel()])
 
 
-def block_contrast(image: np.ndarray, nodes: np.ndarray, block_radius: int) -> np.ndarray:
+def block_contrast(image: np.ndarray, nodes: np.ndarray, half_size: int) -> np.ndarray:
     """Return the standard deviation of ``image`` in the block around each node (NaN if incomplete).
 
     Used to find damaged regions (folds, stains, smears): there the local
@@ -149,7 +149,7 @@ def block_contrast(image: np.ndarray, nodes: np.ndarray, block_radius: int) -> n
     """
     img = np.asarray(image, np.float32)
     h, w = img.shape
-    br = int(block_radius)
+    br = int(half_size)
     out = np.full(len(nodes), np.nan)
     for i, (x, y) in enumerate(np.rint(np.asarray(nodes, float)).astype(int)):
         if x - br < 0 or y - br < 0 or x + br >= w or y + br >= h:

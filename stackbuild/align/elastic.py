@@ -20,7 +20,7 @@ a first-difference chain (``u_b - u_a = v_ab``) would straighten them. Random
 per-section distortions are not linear in z and are removed. The linear-in-z
 part, which the data cannot see, is fixed by a weak pull of every field
 toward zero. In-plane smoothness is a membrane term (first differences
-between neighbouring nodes, weight ``stiffness``).
+between neighbouring nodes, weight ``smoothness_weight``).
 
 The straight-line-in-z part of *random* warps is invisible to second
 differences too, and is left in the result (about 1 px RMS on 20 sections
@@ -134,7 +134,7 @@ def _solve_spd(a: sp.csc_matrix, b: np.ndarray, nn: int, direct_limit: int = 400
 
 
 def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
-                 stiffness: float = 1.0, pull: float = 1e-3, max_gap: int = 2,
+                 smoothness_weight: float = 1.0, pull: float = 1e-3, max_gap: int = 2,
                  prior: dict[int, np.ndarray] | None = None,
                  chain: float = 0.0, affine_chain: float = 0.0) -> dict[int, np.ndarray]:
     """Return the displacement field ``u_z`` (shape ``(ny, nx, 2)``, pixels) of every section.
@@ -149,7 +149,7 @@ def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
         ``{(a, b): (shifts, weights)}`` for ``a < b``: ``shifts`` ``(ny, nx, 2)``
         in full-resolution pixels, ``weights`` ``(ny, nx)`` >= 0 (0 = no data;
         NaN shifts must have weight 0).
-    stiffness : float
+    smoothness_weight : float
         Weight of the in-plane membrane term relative to the data term.
     pull : float
         Weight of the pull of every field toward zero; small, it only fixes
@@ -181,7 +181,7 @@ def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
     Notes
     -----
     All sections, both components, one sparse least-squares problem
-    ``min ||W (D u - m)||^2 + stiffness ||G u||^2 + pull ||u||^2`` (``D``
+    ``min ||W (D u - m)||^2 + smoothness_weight ||G u||^2 + pull ||u||^2`` (``D``
     stacks the second differences and, when asked, the first-difference
     rows), solved
     through its normal equations (SuperLU for small stacks, preconditioned
@@ -195,8 +195,8 @@ def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
            doi:10.1038/nmeth.2072 (the spirit: a joint elastic solve of the
            whole series rather than section-by-section chaining).
     """
-    if stiffness < 0 or pull <= 0:
-        raise ValueError(f"stiffness must be >= 0 and pull > 0, got {stiffness}, {pull}")
+    if smoothness_weight < 0 or pull <= 0:
+        raise ValueError(f"smoothness_weight must be >= 0 and pull > 0, got {smoothness_weight}, {pull}")
     sections = sorted(int(z) for z in sections)
     ny, nx = shape
     nn = ny * nx
@@ -231,7 +231,7 @@ def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
     w = sp.diags(np.concatenate(wts))
     g = sp.kron(sp.identity(len(sections)), _membrane(ny, nx)).tocsr()
     n = len(sections) * nn
-    reg = stiffness * (g.T @ g) + pull * sp.identity(n)
+    reg = smoothness_weight * (g.T @ g) + pull * sp.identity(n)
     normal = (d.T @ w @ d + reg).tocsc()
     b = d.T @ (w @ np.concatenate(rhs))
     if prior is not None:

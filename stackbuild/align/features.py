@@ -108,7 +108,7 @@ def detect_features(image: np.ndarray, detector: str = "sift", max_features: int
 
 
 def match_features(a: FeatureSet, b: FeatureSet, ratio: float = 0.8) -> tuple[np.ndarray, np.ndarray]:
-    """Return index arrays ``(ia, ib)`` of matches that pass Lowe's ratio test.
+    """Return index arrays ``(ia, ib)`` of matches whose nearest / second-nearest distance ratio is low.
 
     A feature of ``a`` is matched to its nearest descriptor in ``b`` when that
     is closer than ``ratio`` times the second nearest ([1]_, section 7.1).

@@ -19,7 +19,7 @@ class AlignSettings:
     detector : str
         ``"sift"``, ``"akaze"`` or ``"orb"``.
     ratio : float
-        Lowe's ratio-test threshold.
+        Largest nearest / second-nearest descriptor distance ratio of a kept feature match.
     ransac_threshold : float
         RANSAC inlier threshold, working-resolution pixels.
     min_inliers : int
@@ -29,13 +29,13 @@ class AlignSettings:
         Run the elastic refinement after the coarse stage.
     grid_spacing : float
         Spacing of the elastic grid, full-resolution pixels.
-    block_radius : int
+    match_half_size : int
         Half size of a block-matching template, elastic working pixels.
-    search_radius : int
+    match_max_shift : int
         Largest displacement searched by block matching, elastic working pixels.
     elastic_scale : int
         Elastic block matching works on mosaics downsampled by this factor.
-    stiffness : float
+    smoothness_weight : float
         Weight of the in-plane smoothness (membrane) of each displacement field,
         relative to the block-match data; its effect grows with ``grid_spacing``
         squared, since the term penalises differences between neighbouring nodes.
@@ -43,7 +43,7 @@ class AlignSettings:
         Block matches with a lower correlation peak are discarded.
     max_features : int
         Keep at most this many of the strongest features per section.
-    max_vector_deviation : float
+    max_neighbour_deviation : float
         Block-match vectors farther than this (full-resolution pixels) from the
         median of their grid neighbours are discarded.
     elastic_pull : float
@@ -81,13 +81,13 @@ class AlignSettings:
     min_inliers: int = 12
     elastic: bool = True
     grid_spacing: float = 128.0
-    block_radius: int = 24
-    search_radius: int = 12
+    match_half_size: int = 24
+    match_max_shift: int = 12
     elastic_scale: int = 2
-    stiffness: float = 0.002
+    smoothness_weight: float = 0.002
     min_block_ncc: float = 0.4
     max_features: int = 4000
-    max_vector_deviation: float = 6.0
+    max_neighbour_deviation: float = 6.0
     elastic_pull: float = 1e-3
     elastic_chain: float = 0.02
     elastic_affine_chain: float = 0.0

@@ -97,12 +97,12 @@ def block_job(item) -> tuple:
     scratch, a, b, grid, settings, tag = item
     fa = np.load(Path(scratch) / f"{tag}_{a}.npy")
     fb = np.load(Path(scratch) / f"{tag}_{b}.npy")
-    shifts, peaks = block_match(fa, fb, grid.node_pixels(), settings.block_radius,
-                                settings.search_radius)
+    shifts, peaks = block_match(fa, fb, grid.node_pixels(), settings.match_half_size,
+                                settings.match_max_shift)
     ny, nx = grid.shape
     shifts = shifts.reshape(ny, nx, 2) * grid.scale
     peaks = peaks.reshape(ny, nx)
-    ok = filter_vectors(shifts, peaks, settings.min_block_ncc, settings.max_vector_deviation)
+    ok = filter_vectors(shifts, peaks, settings.min_block_ncc, settings.max_neighbour_deviation)
     tried = np.isfinite(peaks)
     weights = np.where(ok, np.nan_to_num(peaks), 0.0)
     return np.where(ok[..., None], shifts, np.nan), weights, int(tried.sum()), int(ok.sum())
@@ -125,8 +125,8 @@ def check_settings(settings: AlignSettings) -> None:
     if settings.ransac_threshold <= 0 or settings.max_features < 1 or settings.min_inliers < 3:
         # an affine needs 3 point pairs, so fewer inliers can never make a model
         raise InputError("[align] ransac_threshold must be > 0, max_features >= 1 and min_inliers >= 3")
-    if settings.block_radius < 1 or settings.search_radius < 1:
-        raise InputError("[align] block_radius and search_radius must be >= 1")
+    if settings.match_half_size < 1 or settings.match_max_shift < 1:
+        raise InputError("[align] match_half_size and match_max_shift must be >= 1")
     if settings.work_scale < 1 or settings.elastic_scale < 1:
         raise InputError("[align] work_scale and elastic_scale must be >= 1")
     if settings.neighbours < 1:
@@ -162,7 +162,7 @@ def _make_grid(source, affines: dict[int, Affine2D], settings: AlignSettings) ->
     span = (np.array(shape[::-1]) - 1) * spacing
     origin = lo + ((hi - lo) - span) / 2.0
     origin = np.round(origin)
-    margin = s * (settings.block_radius + settings.search_radius + 2)
+    margin = s * (settings.match_half_size + settings.match_max_shift + 2)
     x0, y0 = int(origin[0] - (s - 1) / 2.0 - margin), int(origin[1] - (s - 1) / 2.0 - margin)
     origin = (x0 + margin + (s - 1) / 2.0, y0 + margin + (s - 1) / 2.0)
     width = int((span[0] + 2 * margin) // s) + 1
@@ -172,7 +172,7 @@ def _make_grid(source, affines: dict[int, Affine2D], settings: AlignSettings) ->
 
 def _measure(source, aligns, grid, settings, scratch, mapper, tag, links):
     zs = sorted(aligns)
-    items = [(source, aligns[z], grid, scratch, tag, settings.block_radius) for z in zs]
+    items = [(source, aligns[z], grid, scratch, tag, settings.match_half_size) for z in zs]
     contrast = dict(zip(zs, mapper(render_job, items)))
     out = list(mapper(block_job, [(scratch, a, b, grid, settings, tag) for a, b in links]))
     for z in zs:   # a round's images are not needed again; keep the scratch folder small
@@ -213,7 +213,7 @@ def _elastic(source, sections, affines, settings, scratch, mapper, tick):
             share = {z: float(low[z].sum() / max(1, np.isfinite(contrast[z]).sum())) for z in sections}
         # damaged regions keep a tenth of their say (common practice, no source)
         matches = {(a, b): (v[0], v[1] * np.where(low[a] | low[b], 0.1, 1.0)) for (a, b), v in found.items()}
-        step = solve_fields(sections, grid.shape, matches, stiffness=settings.stiffness,
+        step = solve_fields(sections, grid.shape, matches, smoothness_weight=settings.smoothness_weight,
                             pull=settings.elastic_pull, max_gap=settings.neighbours, prior=fields,
                             chain=settings.elastic_chain,
                             affine_chain=settings.elastic_affine_chain)

@@ -84,7 +84,7 @@ def _seam_pairs(stitch: SectionStitch, min_side: int) -> list[tuple[str, str]]:
 
 def measure_seams(stitch: SectionStitch, settings: ReportSettings) -> list[SeamBlocks]:
     """Return re-measured residuals of every tile pair of one section, at the final placements."""
-    r, s = settings.seam_radius, settings.seam_search
+    r, s = settings.seam_half_size, settings.seam_max_shift
     cache: dict[str, np.ndarray | str] = {}
 
     def tile(name: str):
@@ -126,9 +126,9 @@ def measure_planes(source: PlaneSource, lost: set[int], settings: ReportSettings
     level's factor so the blocks cover the same tissue at any level.
     """
     f = source.factor
-    spacing = max(2, int(round(settings.block_spacing / f)))
-    radius = max(3, int(round(settings.block_radius / f)))
-    search = max(2, int(round(settings.block_search / f)))
+    spacing = max(2, int(round(settings.probe_spacing / f)))
+    radius = max(3, int(round(settings.probe_half_size / f)))
+    search = max(2, int(round(settings.probe_max_shift / f)))
     pairs = plane_neighbours(source.depth, lost)
     out, cached = [], {}
     for k, (za, zb) in enumerate(pairs):

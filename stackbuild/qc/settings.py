@@ -23,19 +23,19 @@ class ReportSettings:
         whose pixel is at most this many full-resolution pixels.
     measure_max_px : int
         ... but never a level whose plane side exceeds this many pixels (memory bound).
-    block_spacing : int
+    probe_spacing : int
         Grid step of the section-to-section block matching, full-resolution pixels.
-    block_radius : int
+    probe_half_size : int
         Template half size of that block matching, full-resolution pixels.
-    block_search : int
+    probe_max_shift : int
         Largest shift that block matching searches, full-resolution pixels.
     min_block_ncc : float
         Blocks (seams and sections) with a weaker correlation peak are not counted.
     seam_spacing : int
         Grid step of the block matching inside tile overlaps, pixels.
-    seam_radius : int
+    seam_half_size : int
         Template half size inside tile overlaps, pixels.
-    seam_search : int
+    seam_max_shift : int
         Largest residual shift searched inside tile overlaps, pixels.
     seam_smooth : float
         Gaussian sigma (pixels) applied to both sides of an overlap before matching, against
@@ -52,13 +52,13 @@ class ReportSettings:
     worst: int = 10
     measure_scale: int = 2
     measure_max_px: int = 8192
-    block_spacing: int = 96
-    block_radius: int = 24
-    block_search: int = 16
+    probe_spacing: int = 96
+    probe_half_size: int = 24
+    probe_max_shift: int = 16
     min_block_ncc: float = 0.3
     seam_spacing: int = 16
-    seam_radius: int = 12
-    seam_search: int = 6
+    seam_half_size: int = 12
+    seam_max_shift: int = 6
     seam_smooth: float = 1.0
     field_section: int = -1
     reslice_px: int = 1536

@@ -78,9 +78,9 @@ def illumination_profile(thumbnails: np.ndarray, degree: int = 4) -> np.ndarray:
     The per-pixel median over many tiles keeps what all tiles share (the
     illumination and detector shading) and rejects the specimen, which
     differs from tile to tile; this is the retrospective flat-field idea of
-    estimating shading from the images themselves (Peng et al., "A BaSiC
-    tool for background and shading correction of optical microscopy
-    images", Nat. Commun. 8:14836 (2017), doi:10.1038/ncomms14836, use a
+    estimating shading from the images themselves (Peng et al., on
+    retrospective background and shading correction of optical microscopy
+    images, Nat. Commun. 8:14836 (2017), doi:10.1038/ncomms14836, use a
     low-rank model; the median with a low-order polynomial is the simplest
     robust version, common practice, no source).
     """

@@ -120,7 +120,7 @@ def _true_box(d: np.ndarray, size_a: tuple[int, int], size_b: tuple[int, int], o
 def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
                   size_a: tuple[int, int], size_b: tuple[int, int], nominal: tuple[int, int],
                   max_stage_error: float, upsample: int, min_ncc: float,
-                  min_peak_ratio: float, whitening: float = 1.0,
+                  min_peak_margin: float, spectral_exponent: float = 1.0,
                   spectrum_sigma: float = 0.0) -> PairResult:
     """Return the measured offset of tile ``b`` relative to tile ``a`` and its confidence.
 
@@ -135,7 +135,7 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
         ``(width, height)`` of the two tiles.
     nominal : (int, int)
         Integer stage offset of ``b`` relative to ``a`` (``box_a - box_b``).
-    max_stage_error, upsample, min_ncc, min_peak_ratio, whitening, spectrum_sigma
+    max_stage_error, upsample, min_ncc, min_peak_margin, spectral_exponent, spectrum_sigma
         As in :class:`~stackbuild.stitch.settings.StitchSettings`.
 
     Returns
@@ -154,7 +154,8 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
     decide acceptance.
     """
     nom = np.asarray(nominal, dtype=np.float64)
-    spectral = dict(whiten=whitening, lowpass=spectrum_sigma if spectrum_sigma > 0 else None)
+    spectral = dict(spectral_exponent=spectral_exponent,
+                    lowpass=spectrum_sigma if spectrum_sigma > 0 else None)
     fa, fb = _coarse_canvases(strip_a, strip_b, ov, nominal)
     (sx, sy), ratio = phase_correlate(fa, fb, upsample=1, max_shift=max_stage_error, window=False, **spectral)
     d = nom - np.array([sx, sy])
@@ -174,6 +175,6 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
     if np.max(np.abs(d - nom)) > max_stage_error:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
     ncc, ia, ib = ncc_after_shift(ca, cb, (sx, sy))
-    reason = "weak_peak" if ratio < min_peak_ratio else ("low_ncc" if ncc < min_ncc else "")
+    reason = "weak_peak" if ratio < min_peak_margin else ("low_ncc" if ncc < min_ncc else "")
     return PairResult(float(d[0]), float(d[1]), ncc, ratio, reason,
                       float(ia.mean()), float(ia.std()), float(ib.mean()), float(ib.std()), int(ca.size))

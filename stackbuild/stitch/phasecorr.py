@@ -170,7 +170,7 @@ def _peak_and_ratio(surface: np.ndarray, max_shift: float | None) -> tuple[float
 
 def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
                     max_shift: float | None = None, window: bool = True,
-                    whiten: float = 1.0, lowpass: float | None = None
+                    spectral_exponent: float = 1.0, lowpass: float | None = None
                     ) -> tuple[tuple[float, float], float]:
     """Return the sub-pixel shift ``(dx, dy)`` of ``moving`` relative to ``fixed``, and the peak ratio.
 
@@ -190,12 +190,12 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
         transform, which suppresses the edge discontinuity of the periodic
         extension; the windowed images are then zero-padded to fast FFT
         lengths (``scipy.fft.next_fast_len``).
-    whiten : float
+    spectral_exponent : float
         Exponent of the spectral normalisation: the cross-power spectrum is
         divided by its magnitude to this power. ``1`` is classical phase
         correlation, ``0`` plain cross-correlation; in between trades the
         sharp peak of the first for the noise robustness of the second
-        (partial whitening: common practice, no source).
+        (partial spectral normalisation: common practice, no source).
     lowpass : float, optional
         Sigma, in cycles per pixel, of a Gaussian weight on the normalised
         cross-power spectrum, which damps the noise-dominated high
@@ -253,12 +253,13 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
     spec *= np.conjugate(fa, out=fa)
     m, n = a.shape
     factor = None
-    if whiten:
+    if spectral_exponent:
         # One power of |spec|^2 instead of a square root and a power of |spec|.
         power = spec.real * spec.real
         power += spec.imag * spec.imag
         np.maximum(power, np.float32((100 * np.finfo(np.float32).eps) ** 2), out=power)
-        factor = 1.0 / np.sqrt(power) if whiten == 1 else np.power(power, np.float32(-whiten / 2))
+        e = spectral_exponent
+        factor = 1.0 / np.sqrt(power) if e == 1 else np.power(power, np.float32(-e / 2))
     if lowpass is not None:
         g = _gaussian_weight(m, n, float(lowpass))
         factor = g if factor is None else factor * g

@@ -35,7 +35,7 @@ def check_settings(s: StitchSettings) -> None:
         ("max_stage_error", s.max_stage_error > 0, "> 0"), ("min_overlap", s.min_overlap >= 1, ">= 1"),
         ("upsample", s.upsample >= 1, ">= 1"), ("prior_weight", s.prior_weight > 0, "> 0"),
         ("max_residual", s.max_residual > 0, "> 0"), ("illumination_step", s.illumination_step >= 1, ">= 1"),
-        ("whitening", 0 <= s.whitening <= 1, "between 0 and 1"),
+        ("spectral_exponent", 0 <= s.spectral_exponent <= 1, "between 0 and 1"),
         ("spectrum_sigma", s.spectrum_sigma >= 0, ">= 0"),
     ]
     for key, ok, want in rules:
@@ -101,8 +101,8 @@ def _register(tiles, overlaps, strips, flags, profile, settings) -> list[PairRes
         nominal = (ov.box_a[0] - ov.box_b[0], ov.box_a[1] - ov.box_b[1])
         out.append(register_pair(corrected(k, 0), corrected(k, 1), ov, (a.width, a.height),
                                  (b.width, b.height), nominal, settings.max_stage_error,
-                                 settings.upsample, settings.min_ncc, settings.min_peak_ratio,
-                                 settings.whitening, settings.spectrum_sigma))
+                                 settings.upsample, settings.min_ncc, settings.min_peak_margin,
+                                 settings.spectral_exponent, settings.spectrum_sigma))
     return out
 
 

@@ -17,11 +17,11 @@ class StitchSettings:
         Pairs whose nominal overlap is narrower than this (pixels) are skipped.
     min_ncc : float
         Pairs whose normalised cross-correlation after the shift is lower are rejected.
-    min_peak_ratio : float
+    min_peak_margin : float
         Pairs whose correlation peak is not this many times the next peak are rejected.
     upsample : int
         Sub-pixel refinement factor of the upsampled-DFT method (1/upsample px).
-    whitening : float
+    spectral_exponent : float
         Exponent of the spectral normalisation in the pair correlation: 1 is
         classical phase correlation, 0 plain cross-correlation; 0.8 keeps a
         sharp peak while tolerating noisy tiles.
@@ -52,9 +52,9 @@ class StitchSettings:
     max_stage_error: float = 40.0
     min_overlap: int = 16
     min_ncc: float = 0.3
-    min_peak_ratio: float = 1.3
+    min_peak_margin: float = 1.3
     upsample: int = 100
-    whitening: float = 0.8
+    spectral_exponent: float = 0.8
     spectrum_sigma: float = 0.1
     prior_weight: float = 1e-3
     max_residual: float = 1.5

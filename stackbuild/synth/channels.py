@@ -22,8 +22,8 @@ from ..transforms import Affine2D
 from .layout import TAG_CHANNEL, TAG_CHANNEL_NOISE, rng, section_centre, section_shape
 from .params import SynthParams
 
-CHANNEL_NAMES = ("ambrin", "punctin")
-CHANNEL_LAYERS = {"ambrin": "fill", "punctin": "puncta"}
+CHANNEL_NAMES = ("ambrin", "stippolin")
+CHANNEL_LAYERS = {"ambrin": "fill", "stippolin": "puncta"}
 _BACKGROUND, _BRIGHT = 300.0, 3000.0  # 16-bit counts
 
 

@@ -53,12 +53,12 @@ def bench_pair(n, s: AlignSettings):
     t_match, res = _clock(lambda: match_pair(fa, fb, 0, 1, model=s.model, ratio=s.ratio,
                                              threshold=s.ransac_threshold, min_inliers=s.min_inliers))
     step = s.grid_spacing / s.elastic_scale
-    m = int((s.block_radius + s.search_radius + 2))
+    m = int((s.match_half_size + s.match_max_shift + 2))
     k = int((n - 2 * m) // step) + 1
     nodes = grid_nodes((m, m), step, (k, k))
     shifted = ndimage.shift(a, (1.3, -2.2), order=1)
-    t_block, (sh, pk) = _clock(lambda: block_match(a, shifted, nodes, s.block_radius, s.search_radius))
-    ok = filter_vectors(sh.reshape(k, k, 2), pk.reshape(k, k), s.min_block_ncc, s.max_vector_deviation)
+    t_block, (sh, pk) = _clock(lambda: block_match(a, shifted, nodes, s.match_half_size, s.match_max_shift))
+    ok = filter_vectors(sh.reshape(k, k, 2), pk.reshape(k, k), s.min_block_ncc, s.max_neighbour_deviation)
     return {"features_per_section": t_feat / 2, "match_ransac": t_match, "inliers": res.stats["inliers"],
             "coarse_per_pair": t_feat / 2 + t_match, "block_nodes": k * k,
             "elastic_per_pair": t_block, "trusted": int(ok.sum())}
@@ -79,7 +79,7 @@ def bench_solve(n_sections, rng, nodes=16):
     shape = (nodes, nodes)
     seen = {z: rng.normal(0, 2, (*shape, 2)) for z in zs}
     matches = {(a, b): (seen[b] - seen[a], np.ones(shape)) for a in zs for b in (a + 1, a + 2) if b in seen}
-    t_el, _ = _clock(lambda: solve_fields(zs, shape, matches, stiffness=0.002, pull=1e-3))
+    t_el, _ = _clock(lambda: solve_fields(zs, shape, matches, smoothness_weight=0.002, pull=1e-3))
     return t_aff, t_el
 
 

@@ -114,7 +114,7 @@ def compare_pairwise(strips, settings: StitchSettings, repeat: int = 3):
     for a, b, e in strips:
         ((sx, sy), _), t1 = _timed(lambda: phase_correlate(
             a, b, upsample=100, max_shift=settings.max_stage_error,
-            whiten=settings.whitening, lowpass=settings.spectrum_sigma), repeat)
+            spectral_exponent=settings.spectral_exponent, lowpass=settings.spectrum_sigma), repeat)
         ref, t2 = _timed(lambda: phase_cross_correlation(a, b, upsample_factor=100)[0], repeat)
         t_ours += t1
         t_ref += t2

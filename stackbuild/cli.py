@@ -192,7 +192,7 @@ def _prepare_folder(args):
 
 
 def _open_build(path: str):
-    from .run.folder import BuildFolder
+    from .folder import BuildFolder
 
     build = BuildFolder(Path(path))
     build.load_state()
@@ -216,7 +216,7 @@ def _cmd_build(args) -> int:
         stages.render_stage(build, resume=args.resume, progress=ProgressBar("render", show))
         stages.render_channels_stage(build, progress=ProgressBar("markers", show))
     verdict = stages.report_stage(build, fail_on=args.fail_on, progress=ProgressBar("report", show))
-    _say(f"volume: {build.volume_path}\nreport: {build.qc_dir / 'report.html'}")
+    _say(f"volume: {build.volume_path}\nreport: {build.report_path}")
     return _verdict_status(verdict, args.fail_on)
 
 
@@ -286,7 +286,7 @@ def _cmd_report(args) -> int:
         read_landmarks(path, build.tile_manifest(), build.channel_manifest())
         build.update_state(landmarks=str(path))
     verdict = stages.report_stage(build, fail_on=args.fail_on, progress=ProgressBar("report", not args.quiet))
-    _say(f"report: {build.qc_dir / 'report.html'}")
+    _say(f"report: {build.report_path}")
     return _verdict_status(verdict, args.fail_on)
 
 

@@ -24,7 +24,7 @@ from stackbuild.errors import InputError
 from stackbuild.manifest import read_tile_manifest
 from stackbuild.render.canvas import compute_canvas
 from stackbuild.render.settings import RenderSettings
-from stackbuild.run.folder import BuildFolder
+from stackbuild.folder import BuildFolder
 from stackbuild.synth import SynthParams, generate, load_truth
 from stackbuild.transforms import SectionStitch, TilePlacement
 

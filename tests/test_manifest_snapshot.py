@@ -19,10 +19,10 @@ import pytest
 import tifffile
 
 import stackbuild.manifest as manifest_mod
-import stackbuild.run.folder as folder_mod
+import stackbuild.folder as folder_mod
 from stackbuild.errors import InputError
 from stackbuild.manifest import TileManifest, read_tile_manifest
-from stackbuild.run.folder import SNAPSHOT_VERSION, BuildFolder
+from stackbuild.folder import SNAPSHOT_VERSION, BuildFolder
 from stackbuild.run.update import merged_manifest
 from stackbuild.tiles import read_tile
 

@@ -17,7 +17,7 @@ import pytest
 from stackbuild.cli import main
 from stackbuild.errors import InputError
 from stackbuild.manifest import read_channel_manifest, read_landmarks, read_tile_manifest
-from stackbuild.run.folder import BuildFolder
+from stackbuild.folder import BuildFolder
 from stackbuild.synth import load_truth
 from stackbuild.transforms import Affine2D
 

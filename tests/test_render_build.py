@@ -18,7 +18,7 @@ import zarr
 from stackbuild.config import PipelineConfig
 from stackbuild.errors import BuildFolderError, InputError
 from stackbuild.render.settings import RenderSettings
-from stackbuild.run.folder import BuildFolder
+from stackbuild.folder import BuildFolder
 from stackbuild.transforms import Affine2D, SectionAlignment, SectionStitch, TilePlacement
 
 

@@ -13,7 +13,7 @@ import numpy as np
 import tifffile
 
 from stackbuild.config import PipelineConfig
-from stackbuild.run.folder import BuildFolder
+from stackbuild.folder import BuildFolder
 from stackbuild.transforms import SectionStitch, TilePlacement
 
 TILE, OVERLAP = 1024, 64

@@ -31,7 +31,7 @@ from zarr.codecs import BloscCodec
 
 from ..errors import InputError
 from ..manifest import image_header
-from ..run.folder import BuildFolder
+from ..folder import BuildFolder
 from ..render.ngff import multiscales_attrs, root_attrs
 from ..render.reduce import level_shapes, reduce2x2, reduced_size
 from ..render.write import check_settings
@@ -127,7 +127,7 @@ def _write_channel(folder, name, recs, canvas, settings, progress, done_before, 
     extra = {"channel": name, "em_level": level, "sections": sorted(recs), "flagged_sections": flagged,
              "source": "resampled from marker images through stored channel -> section -> aligned maps"}
     attrs = {"ome": em_levels["ome"], "stackbuild": extra}
-    path = folder.volume_path / "channels" / name
+    path = folder.pyramid_path(name)
     shutil.rmtree(path, ignore_errors=True)
     group = zarr.open_group(str(path), mode="w", zarr_format=3, attributes=attrs)
     arrays = []
@@ -189,7 +189,7 @@ def render_channels(build_dir, render_settings, *, progress=None) -> dict:
     table = _channel_table(folder)
     zarr.open_group(str(folder.volume_path), mode="a", zarr_format=3).update_attributes(root_attrs())
     if table:
-        zarr.open_group(str(folder.volume_path / "channels"), mode="a", zarr_format=3)
+        zarr.open_group(str(folder.channels_path), mode="a", zarr_format=3)
     total = sum(len(v) for v in table.values())
     if progress is not None:
         progress(0, total)

@@ -42,7 +42,7 @@ import tifffile
 from ..errors import InputError
 from ..manifest import ChannelEntry
 from ..render.sampler import render_region
-from ..run.folder import BuildFolder
+from ..folder import BuildFolder
 from ..transforms.store import TransformStore
 from ..transforms.types import Affine2D
 from .features import KINDS, whole_block_mean, em_feature, marker_feature

@@ -76,7 +76,7 @@ import numpy as np
 
 from ..errors import InputError
 from ..manifest import image_header
-from ..run.folder import BuildFolder
+from ..folder import BuildFolder
 from ..transforms.records import Canvas
 from ..transforms.types import Affine2D
 from .blockmatch import BlockMatches, summarize

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-from ..run.folder import BuildFolder
+from ..folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from . import plots
 from .metrics import collect, write_metrics
@@ -122,10 +122,10 @@ def _channel_panels(folder: BuildFolder, doc: dict, size: int = 384) -> list:
     from ..render.lazy import open_volume
     from ..render.reduce import reduce2x2
 
-    root = folder.volume_path / "channels"
+    root = folder.channels_path
     if not root.is_dir() or not doc["channels"]:
         return []
-    levels = [k for k in range(32) if (folder.volume_path / "em" / str(k) / "zarr.json").exists()]
+    levels = [k for k in range(32) if (folder.pyramid_path() / str(k) / "zarr.json").exists()]
     em0 = open_volume(folder.root, 0, lazy=False).scale_nm[-1]
     panels = []
     for name in sorted({c["channel"] for c in doc["channels"]}):
@@ -140,7 +140,7 @@ def _channel_panels(folder: BuildFolder, doc: dict, size: int = 384) -> list:
         h, w = marker.shape[1:]
         cx, cy = int(best["at"]["x_px"] / f), int(best["at"]["y_px"] / f)
         y0, x0 = max(0, min(cy - size // 2, h - size)), max(0, min(cx - size // 2, w - size))
-        em = np.asarray(zarr.open_array(str(folder.volume_path / "em" / str(have)), mode="r")[
+        em = np.asarray(zarr.open_array(str(folder.pyramid_path() / str(have)), mode="r")[
             z, y0 * g:(y0 + size) * g, x0 * g:(x0 + size) * g])
         for _ in range(level - have):
             em = reduce2x2(em, "mean")
@@ -358,7 +358,7 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     doc["verdict"] = {"passed": passed, "failures": failures, "thresholds": rows}
     figures = _figures(folder, doc, meas, settings)
     paths = write_metrics(doc, folder.qc_dir, meas) + [p for _, p in figures]
-    page = folder.qc_dir / "report.html"
+    page = folder.report_path
     atomic_write_text(page, render_html(doc, rows, passed, figures, settings))
     asked = set(parse_fail_on_list([t for t in (fail_on or []) if not isinstance(t, Threshold)])
                 + [t for t in (fail_on or []) if isinstance(t, Threshold)])

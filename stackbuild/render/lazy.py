@@ -11,7 +11,6 @@ and loaded records are cached.
 from __future__ import annotations
 
 import json
-import os
 import threading
 from collections import OrderedDict
 from dataclasses import asdict, dataclass
@@ -24,7 +23,7 @@ from dask.base import tokenize
 from dask.highlevelgraph import HighLevelGraph
 
 from ..errors import InputError
-from ..run.folder import BuildFolder
+from ..folder import BuildFolder
 from ..transforms.records import Canvas
 from ..transforms.store import TransformStore
 from .canvas import compute_canvas
@@ -214,7 +213,7 @@ def pyramid(base: da.Array, n_levels: int, reducer: str, block: int) -> list[da.
 def _written_settings(folder: BuildFolder):
     """Return the render settings recorded in the written volume, else the build's settings."""
     settings = folder.config.render
-    meta = folder.volume_path / "em" / "zarr.json"
+    meta = folder.pyramid_path() / "zarr.json"
     if meta.exists():
         attrs = json.loads(meta.read_text(encoding="utf-8")).get("attributes", {})
         used = attrs.get("stackbuild", {}).get("render")
@@ -307,7 +306,7 @@ def open_volume(build_dir, level: int = 0, lazy: bool = True, channel: str | Non
         canvas = plan_for(build_dir)[1]
         scale, trans = level_transform(level, canvas.pixel_size_nm, canvas.section_thickness_nm)
         return Volume(data, scale, trans, level)
-    group = folder.volume_path / ("em" if channel is None else os.path.join("channels", channel))
+    group = folder.pyramid_path(channel)
     meta = group / "zarr.json"
     if not meta.exists():
         raise InputError("no written volume here; run the render stage", file=group)

@@ -21,7 +21,7 @@ from zarr.codecs import BloscCodec
 
 from ..errors import BuildFolderError, InputError
 from ..run.cluster import client_mapper, compute_each
-from ..run.folder import BuildFolder
+from ..folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from .canvas import compute_canvas
 from .contrast import DOC_KIND, RangeJob, contrast_record, range_job
@@ -162,7 +162,7 @@ def render_volume(build_dir, settings, *, planes: list[int] | None = None, overw
     folder = BuildFolder(Path(build_dir))
     manifest = folder.tile_manifest()
     vol = folder.config.volume
-    em = folder.volume_path / "em"
+    em = folder.pyramid_path()
     _validate_records(folder, manifest.sections)
     canvas = compute_canvas(folder.store, manifest.sections, manifest.lost_sections,
                             vol.pixel_size, vol.section_thickness)

@@ -31,8 +31,8 @@ from contextlib import contextmanager
 from pathlib import Path
 
 from ..errors import BuildFolderError
+from ..folder import LOCK_NAME
 
-LOCK_NAME = ".stackbuild.lock"
 
 
 @contextmanager

@@ -13,11 +13,10 @@ from .. import __version__
 from ..config import load_config
 from ..errors import InputError
 from ..manifest import read_channel_manifest, read_landmarks, read_tile_manifest
-from .folder import BuildFolder, csv_facts
-from .lock import LOCK_NAME
+from ..folder import LOCK_NAME, OUTPUTS, BuildFolder, csv_facts
 
 #: What an earlier build wrote into its folder, and all that ``overwrite`` deletes.
-OUR_OUTPUTS = ("build.json", "transforms", "volume.zarr", "qc")
+OUR_OUTPUTS = OUTPUTS
 
 
 def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel_size=None,

@@ -19,7 +19,7 @@ import numpy as np
 from ..errors import InputError
 from ..manifest import TileManifest, read_tile_manifest
 from ..transforms.store import atomic_write_text
-from .folder import BuildFolder, csv_facts
+from ..folder import BuildFolder, csv_facts
 
 log = logging.getLogger(__name__)
 
@@ -81,7 +81,7 @@ def update_build(build: BuildFolder, new_tiles: Path, *, workers=None, scheduler
         raise InputError(f"new tiles are {new.dtype}, the build's are {old.dtype}", file=new.source)
     state = build.load_state()
     n = len(state.get("manifests", [])) + 1
-    merged = build.root / "manifests" / f"tiles.{n:04d}.csv"
+    merged = build.merged_manifest_path(n)
     atomic_write_text(merged, merged_manifest(old, new))
     facts = csv_facts(merged)
     checked = read_tile_manifest(merged)  # check before switching the build to it

@@ -30,7 +30,7 @@ import tifffile
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
 from stackbuild.manifest import read_tile_manifest  # noqa: E402
-from stackbuild.run.folder import BuildFolder  # noqa: E402
+from stackbuild.folder import BuildFolder  # noqa: E402
 
 PER_SECTION = 100
 

@@ -8,8 +8,11 @@ Layout::
     DIR/qc/               metrics.json, CSV tables, PNG plots, report.html
     DIR/manifests/        merged tile manifests written by ``update``, and
                           tiles.checked.json, the checked tile manifest (a cache)
+    DIR/scratch/<stage>/  a stage's temporary files, removed when it ends
+    DIR/.stackbuild.lock  held while a command works in the folder
 
-Raw tiles are only ever read, never written.
+Raw tiles are only ever read, never written. Every path inside the folder is
+named here and nowhere else: stages ask the :class:`BuildFolder` for it.
 """
 from __future__ import annotations
 
@@ -21,15 +24,19 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 
-from ..config import PipelineConfig
-from ..errors import BuildFolderError, InputError
-from ..manifest import TileManifest, read_channel_manifest, read_tile_manifest
-from ..transforms.store import TransformStore, atomic_write_text
+from .config import PipelineConfig
+from .errors import BuildFolderError, InputError
+from .manifest import TileManifest, read_channel_manifest, read_tile_manifest
+from .transforms.store import TransformStore, atomic_write_text
 
 STATE_FORMAT = "stackbuild.build"
 STATE_VERSION = 1
 SNAPSHOT_FORMAT = "stackbuild.checked-manifest"
 SNAPSHOT_VERSION = 1
+#: The file whose lock marks a folder in use (see :mod:`stackbuild.run.lock`).
+LOCK_NAME = ".stackbuild.lock"
+#: What a build writes at the top of its folder (``--overwrite`` removes these).
+OUTPUTS = ("build.json", "transforms", "volume.zarr", "qc")
 
 log = logging.getLogger(__name__)
 
@@ -64,10 +71,46 @@ class BuildFolder:
         """``DIR/volume.zarr``."""
         return self.root / "volume.zarr"
 
+    def pyramid_path(self, channel: str | None = None) -> Path:
+        """``DIR/volume.zarr/em``, or ``DIR/volume.zarr/channels/<channel>`` for a marker channel."""
+        return self.volume_path / "em" if channel is None else self.channels_path / channel
+
+    @property
+    def channels_path(self) -> Path:
+        """``DIR/volume.zarr/channels``, the group holding the marker-channel pyramids."""
+        return self.volume_path / "channels"
+
     @property
     def qc_dir(self) -> Path:
         """``DIR/qc``."""
         return self.root / "qc"
+
+    @property
+    def report_path(self) -> Path:
+        """``DIR/qc/report.html``."""
+        return self.qc_dir / "report.html"
+
+    @property
+    def lock_path(self) -> Path:
+        """``DIR/.stackbuild.lock``."""
+        return self.root / LOCK_NAME
+
+    @property
+    def manifests_dir(self) -> Path:
+        """``DIR/manifests``: merged tile manifests and the checked-manifest snapshot."""
+        return self.root / "manifests"
+
+    def merged_manifest_path(self, n: int) -> Path:
+        """``DIR/manifests/tiles.NNNN.csv``, the ``n``-th tile manifest merged by ``update``."""
+        return self.manifests_dir / f"tiles.{int(n):04d}.csv"
+
+    def scratch_dir(self, stage: str) -> Path:
+        """``DIR/scratch/<stage>``: a stage's temporary files (the stage removes them)."""
+        return self.root / "scratch" / stage
+
+    def output_paths(self) -> list[Path]:
+        """The top-level outputs of a build in this folder (see :data:`OUTPUTS`)."""
+        return [self.root / name for name in OUTPUTS]
 
     def exists(self) -> bool:
         """Return True if the folder holds a build (its ``build.json``)."""
@@ -122,7 +165,7 @@ class BuildFolder:
     @property
     def snapshot_path(self) -> Path:
         """``DIR/manifests/tiles.checked.json``, the checked tile manifest."""
-        return self.root / "manifests" / "tiles.checked.json"
+        return self.manifests_dir / "tiles.checked.json"
 
     def tile_manifest(self) -> TileManifest:
         """Return the checked tile manifest this build is made from, opening tile headers only when needed.

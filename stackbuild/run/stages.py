@@ -15,7 +15,7 @@ from pathlib import Path
 from ..errors import InputError
 from ..manifest import TileEntry
 from ..stitch.settings import StitchSettings
-from .folder import BuildFolder
+from ..folder import BuildFolder
 
 log = logging.getLogger(__name__)
 

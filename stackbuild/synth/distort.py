@@ -10,7 +10,8 @@ centre) and ``w_k`` a smooth elastic warp of at most ``warp`` px whose mean and
 linear part over the section are zero (so it cannot be mistaken for part of
 ``A_k``). ``w_k`` is a :class:`~stackbuild.transforms.DisplacementField` on a
 coarse grid (bilinear between nodes), built from Gaussian-smoothed random node
-displacements.
+displacements (standard family) or from a random 5 x 5 control grid over the
+section interpolated by a cubic spline (realistic family).
 """
 from __future__ import annotations
 
@@ -26,6 +27,7 @@ from .params import SynthParams
 FIELD_SPACING = 64.0
 _FIELD_PAD = 2  # nodes beyond the canvas on each side
 _FIELD_SMOOTH = 2.5  # Gaussian sigma, in nodes
+CONTROL_POINTS = 5  # control grid per side of the realistic family's warps
 
 
 def section_affine(params: SynthParams, section: int) -> Affine2D:
@@ -47,10 +49,13 @@ def section_field(params: SynthParams, section: int) -> DisplacementField:
     ny = int(math.ceil((h - 1) / FIELD_SPACING)) + 1 + 2 * _FIELD_PAD
     origin = (-_FIELD_PAD * FIELD_SPACING, -_FIELD_PAD * FIELD_SPACING)
     g = rng(params, TAG_FIELD, section)
-    raw = g.standard_normal((ny, nx, 2))
     if params.warp == 0:
         return DisplacementField(np.zeros((ny, nx, 2), np.float32), origin, FIELD_SPACING)
-    v = np.stack([gaussian_filter(raw[..., i], _FIELD_SMOOTH, mode="nearest") for i in range(2)], -1)
+    if params.content == "realistic":
+        v = _control_grid_nodes(g, h, w, origin, nx, ny)
+    else:
+        raw = g.standard_normal((ny, nx, 2))
+        v = np.stack([gaussian_filter(raw[..., i], _FIELD_SMOOTH, mode="nearest") for i in range(2)], -1)
     # Remove the affine part of the interpolated field over the canvas; bilinear interpolation
     # reproduces affine functions exactly, so subtracting it at the nodes removes it everywhere inside.
     qx, qy = np.meshgrid(np.linspace(0, w - 1, 48), np.linspace(0, h - 1, 48))
@@ -64,6 +69,19 @@ def section_field(params: SynthParams, section: int) -> DisplacementField:
     # nodes beyond the canvas only matter for marker images; keep them within the bound too
     v /= np.maximum(np.sqrt((v ** 2).sum(-1, keepdims=True)) / params.warp, 1.0)
     return DisplacementField(v.astype(np.float32), origin, FIELD_SPACING)
+
+
+def _control_grid_nodes(g: np.random.Generator, h: int, w: int, origin, nx: int, ny: int) -> np.ndarray:
+    """Return field nodes ``(ny, nx, 2)`` interpolated (cubic spline) from a random 5 x 5 control grid over the canvas.
+
+    Nodes beyond the canvas take the value of the nearest control point's edge
+    (the spline is clamped there), so marker images see a bounded warp.
+    """
+    control = g.standard_normal((CONTROL_POINTS, CONTROL_POINTS, 2))
+    gx = (origin[0] + FIELD_SPACING * np.arange(nx)) / max(w - 1, 1) * (CONTROL_POINTS - 1)
+    gy = (origin[1] + FIELD_SPACING * np.arange(ny)) / max(h - 1, 1) * (CONTROL_POINTS - 1)
+    cy, cx = np.meshgrid(np.clip(gy, 0, CONTROL_POINTS - 1), np.clip(gx, 0, CONTROL_POINTS - 1), indexing="ij")
+    return np.stack([map_coordinates(control[..., i], [cy, cx], order=3, mode="nearest") for i in range(2)], -1)
 
 
 def field_at(field: DisplacementField, points: np.ndarray) -> np.ndarray:

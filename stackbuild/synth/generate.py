@@ -17,6 +17,7 @@ from .distort import section_affine, section_field, section_to_true, section_to_
 from .layout import TAG_NOISE, rng, section_shape, tile_layout, true_shape
 from .params import SynthParams, tile_index
 from .phantom import phantom_layers, slant_model
+from .tissue import motion_record
 from .landmarks import COLUMNS as LANDMARK_COLUMNS, landmark_rows
 from .truth import load_truth, write_truth
 
@@ -170,7 +171,8 @@ def generate(outdir, params: SynthParams = SynthParams()) -> Path:
               "section_thickness": params.section_thickness, "true_shape": list(true_shape(params)),
               "section_shape": list(section_shape(params)), "tile_shape": [params.tile_size] * 2,
               "vignetting": params.vignetting, "intensity_scale": 256 if params.dtype == "uint16" else 1,
-              "slant": slant_model(params), "lost_sections": sorted(lost), "defects": defects,
+              "slant": motion_record(params) if params.content == "realistic" else slant_model(params),
+              "lost_sections": sorted(lost), "defects": defects,
               "sections": sections}
     write_truth(out, record, fields)
     if chan_rows and params.landmarks > 0:

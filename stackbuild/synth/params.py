@@ -15,6 +15,8 @@ from ..errors import InputError
 
 _TILE_REF = re.compile(r"^(\d+):(r\d+c\d+)$")
 _PAIR_REF = re.compile(r"^(\d+):(r\d+c\d+)-(r\d+c\d+)$")
+#: The tissue families ``content`` may name.
+CONTENTS = ("standard", "realistic")
 
 
 @dataclass
@@ -25,6 +27,12 @@ class SynthParams:
     ----------
     seed : int
         Seed of every random choice; the same seed gives byte-identical files.
+    content : str
+        Which tissue family to draw: "standard" (smooth slant field, texture that
+        decorrelates over about two sections) or "realistic" (every cell moves in
+        its own direction plus a common drift, vesicles and cytoplasm texture new
+        in every section, organelles that last a few sections, warps from a coarse
+        5 x 5 control grid); see stackbuild.synth.tissue.
     sections : int
         Number of sections cut (numbered 0 .. sections-1, lost ones included).
     grid : tuple of int
@@ -97,6 +105,7 @@ class SynthParams:
     """
 
     seed: int = 0
+    content: str = "standard"
     sections: int = 9
     grid: tuple[int, int] = (3, 3)
     tile_size: int = 512
@@ -181,6 +190,7 @@ class SynthParams:
             (0.0 <= self.overlap < 0.5, "overlap must be in [0, 0.5)"),
             (self.snr > 0 and self.channel_snr > 0, "snr and channel_snr must be > 0"),
             (self.dtype in ("uint8", "uint16"), "dtype must be uint8 or uint16"),
+            (self.content in CONTENTS, f"content must be one of {', '.join(CONTENTS)}"),
             (0 <= self.channels <= 2, "channels must be 0, 1 or 2"),
             (self.landmarks >= 0, "landmarks must be >= 0"),
             (self.channel_every >= 1 and self.channel_binning >= 1, "channel_every and channel_binning must be >= 1"),

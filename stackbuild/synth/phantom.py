@@ -200,13 +200,13 @@ def _texture(params, z, ox, oy, h, w):
     return ((1 - f) * a + f * b) / math.sqrt((1 - f) ** 2 + f ** 2)
 
 
-def _noise_slab(params, j, ox, oy, h, w, s1=1.2, s2=3.5, pad=16):
+def _noise_slab(params, j, ox, oy, h, w, s1=1.2, s2=3.5, pad=16, tag=_TAG_TEX):
     bx0, by0 = math.floor((ox - pad) / BLOCK), math.floor((oy - pad) / BLOCK)
     bx1, by1 = math.floor((ox + w + pad) / BLOCK), math.floor((oy + h + pad) / BLOCK)
     big = np.empty(((by1 - by0 + 1) * BLOCK, (bx1 - bx0 + 1) * BLOCK), np.float32)
     for by in range(by0, by1 + 1):
         for bx in range(bx0, bx1 + 1):
-            g = rng(params, _TAG_TEX, j + _KEY, bx + _KEY, by + _KEY)
+            g = rng(params, tag, j + _KEY, bx + _KEY, by + _KEY)
             big[(by - by0) * BLOCK:(by - by0 + 1) * BLOCK, (bx - bx0) * BLOCK:(bx - bx0 + 1) * BLOCK] = \
                 g.standard_normal((BLOCK, BLOCK), dtype=np.float32)
     r0, c0 = oy - pad - by0 * BLOCK, ox - pad - bx0 * BLOCK
@@ -293,6 +293,10 @@ def phantom_layers(params: SynthParams, z: int, shape: tuple[int, int] | None = 
         float32 images of ``shape``; ``"em"`` in grey levels on an 8-bit scale.
     """
     h, w = true_shape(params) if shape is None else shape
+    if params.content == "realistic":
+        from .tissue import realistic_layers  # the other family builds on this module's helpers
+
+        return realistic_layers(params, z, (h, w), markers)
     model = slant_model(params)
     xs, ys = np.arange(w, dtype=np.float64), np.arange(h, dtype=np.float64)
     vx, vy = slant_grid(model, xs, ys)

@@ -202,9 +202,24 @@ class BuildFolder:
         kept = self._kept_manifest(facts)
         if kept is not None:
             return kept
-        manifest = read_tile_manifest(csv_path)
+        manifest = read_tile_manifest(csv_path, known=self.checked_headers())  # opens new or changed files only
         self._keep_manifest(manifest, facts)
         return manifest
+
+    def checked_headers(self) -> dict:
+        """Return the tile files the kept snapshot checked, whatever CSV it was made from (``{}`` if none).
+
+        For :func:`stackbuild.manifest.read_tile_manifest` ``known=``: files whose size and
+        modification time are unchanged are not opened again, so a changed or merged
+        manifest (``update``) costs one header read per new or changed file only.
+        """
+        try:
+            doc = json.loads(self.snapshot_path.read_text(encoding="utf-8"))
+            if doc.get("format") == SNAPSHOT_FORMAT and doc.get("version", 0) <= SNAPSHOT_VERSION:
+                return TileManifest.from_json(doc.get("record")).known_headers()
+        except (OSError, ValueError, AttributeError, TypeError):
+            pass
+        return {}
 
     def _kept_manifest(self, facts: dict) -> TileManifest | None:
         """Return the snapshot's manifest if it was checked from the CSV described by ``facts``."""

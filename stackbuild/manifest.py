@@ -83,6 +83,21 @@ class TileManifest:
 
     source: Path
     tiles: list[TileEntry] = field(default_factory=list)
+    #: Per tile file, as checked: ``{path: (size, mtime_ns, lossy compression name or None)}``.
+    files: dict[str, tuple[int, int, str | None]] = field(default_factory=dict)
+
+    def known_headers(self) -> dict[str, tuple]:
+        """Return ``{path: (size, mtime_ns, height, width, dtype, lossy)}`` of every tile file checked.
+
+        Pass it as ``known`` to :func:`read_tile_manifest` so files unchanged since
+        (same size and modification time) are not opened again.
+        """
+        out = {}
+        for t in self.tiles:
+            f = self.files.get(str(t.path))
+            if f is not None:
+                out[str(t.path)] = (f[0], f[1], t.height, t.width, t.dtype, f[2])
+        return out
 
     @property
     def sections(self) -> list[int]:
@@ -110,7 +125,12 @@ class TileManifest:
         """Return the checked entries as a JSON-ready dict, one list per field (compact for 1M tiles)."""
         cols = {name: [getattr(t, name) for t in self.tiles] for name in _ENTRY_FIELDS}
         cols["path"] = [str(p) for p in cols["path"]]
-        return {"source": str(self.source), "count": len(self.tiles), "columns": cols}
+        doc = {"source": str(self.source), "count": len(self.tiles), "columns": cols}
+        if self.files and all(str(t.path) in self.files for t in self.tiles):
+            facts = [self.files[str(t.path)] for t in self.tiles]
+            doc["files"] = {"size": [f[0] for f in facts], "mtime_ns": [f[1] for f in facts],
+                            "lossy": [f[2] for f in facts]}
+        return doc
 
     @classmethod
     def from_json(cls, doc: dict) -> "TileManifest":
@@ -127,8 +147,14 @@ class TileManifest:
             values = [_json_column(cols[name], kind, n, name) for name, kind in _ENTRY_FIELDS.items()]
         except (KeyError, TypeError) as exc:
             raise ValueError(f"not a tile manifest record ({type(exc).__name__}: {exc})") from None
+        files = {}
+        kept = doc.get("files")  # per-file facts (optional: older snapshots lack them)
+        if isinstance(kept, dict) and all(isinstance(kept.get(k), list) and len(kept[k]) == n
+                                          for k in ("size", "mtime_ns", "lossy")):
+            files = {p: (int(a), int(b), c) for p, a, b, c in
+                     zip(values[_PATH_AT], kept["size"], kept["mtime_ns"], kept["lossy"])}
         values[_PATH_AT] = [Path(p) for p in values[_PATH_AT]]
-        return cls(source, [TileEntry(*row) for row in zip(*values)])
+        return cls(source, [TileEntry(*row) for row in zip(*values)], files)
 
 
 #: TileEntry fields in constructor order, with the JSON type each column holds.
@@ -276,13 +302,54 @@ def lossy_compression(path: str | Path) -> str | None:
     return name if name in LOSSY_COMPRESSION else None
 
 
-def read_tile_manifest(path: str | Path) -> TileManifest:
+#: Tile files checked at once: header reads wait on the disk (a network file system most of
+#: all), so many in flight overlap their latency; threads suffice since tifffile parses little.
+CHECK_THREADS = 16
+
+
+def _check_file(job) -> tuple[Path, int, int, tuple]:
+    """Return ``(path, size, mtime_ns, (height, width, dtype, lossy))`` of one tile file.
+
+    The header is read unless ``known`` holds the file with the same size and mtime.
+    """
+    value, manifest, row, known = job
+    image = _resolve(value, manifest, row)
+    try:
+        st = image.stat()
+    except OSError:
+        raise InputError(f"image file not found: {image}", file=manifest, row=row) from None
+    k = known.get(str(image)) if known else None
+    if k is not None and (k[0], k[1]) == (st.st_size, st.st_mtime_ns):
+        return image, st.st_size, st.st_mtime_ns, tuple(k[2:])
+    return image, st.st_size, st.st_mtime_ns, _header(image, manifest, row)
+
+
+def _check_files(jobs: list, threads: int) -> list:
+    """Run :func:`_check_file` over ``jobs`` on a thread pool; raise the first failure in row order."""
+    if threads <= 1 or len(jobs) < 2:
+        return [_check_file(j) for j in jobs]
+    from concurrent.futures import ThreadPoolExecutor
+
+    pool = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="stackbuild-check")
+    try:
+        return list(pool.map(_check_file, jobs, chunksize=1))
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def read_tile_manifest(path: str | Path, *, known: dict | None = None,
+                       threads: int = CHECK_THREADS) -> TileManifest:
     """Read and check a tile manifest.
 
     Parameters
     ----------
     path : str or Path
         The CSV file.
+    known : dict, optional
+        Files checked before (:meth:`TileManifest.known_headers`): a file whose size and
+        modification time are unchanged is not opened again.
+    threads : int
+        Tile files checked at once (see :data:`CHECK_THREADS`).
 
     Returns
     -------
@@ -310,18 +377,19 @@ def read_tile_manifest(path: str | Path) -> TileManifest:
     files: dict[Path, int] = {}
     lossy: list[tuple[int, Path, str]] = []
     tiles = []
-    for row, rec in rows:
-        section = _section(rec["section"], path, row)
-        x = _coordinate(rec["x"], "x", path, row)
-        y = _coordinate(rec["y"], "y", path, row)
-        image = _resolve(rec["path"], path, row)
+    parsed = [(row, rec, _section(rec["section"], path, row), _coordinate(rec["x"], "x", path, row),
+               _coordinate(rec["y"], "y", path, row)) for row, rec in rows]
+    checked = _check_files([(rec["path"], path, row, known) for row, rec, *_ in parsed], threads)
+    facts = {}
+    for (row, rec, section, x, y), (image, size, mtime, header) in zip(parsed, checked):
         if image in files:
             raise InputError(f"image file {image} is listed twice, on lines {files[image]} and {row}; "
                              "each tile must be its own file", file=path, row=row)
         files[image] = row
         tile = rec.get("tile") or image.stem
         _claim(seen, section, tile, "tile", path, row)
-        h, w, dtype, lossy_name = _header(image, path, row)
+        h, w, dtype, lossy_name = header
+        facts[str(image)] = (size, mtime, lossy_name)
         if lossy_name:
             lossy.append((row, image, lossy_name))
         tiles.append(TileEntry(section, tile, image, x, y, w, h, dtype, row))
@@ -336,7 +404,7 @@ def read_tile_manifest(path: str | Path) -> TileManifest:
         raise InputError(f"tiles mix pixel types {sorted(dtypes)}; all tiles must share one",
                          file=path, row=odd.row)
     _check_layout(tiles, path)
-    return TileManifest(path.resolve(), tiles)
+    return TileManifest(path.resolve(), tiles, facts)
 
 
 def _coordinate(value: str, name: str, path: Path, row: int) -> float:

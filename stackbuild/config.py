@@ -15,11 +15,16 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from .align.settings import AlignSettings
+from .align.settings import check_settings as check_align
 from .channels.settings import ChannelSettings
+from .channels.settings import check_settings as check_channels
 from .errors import InputError
 from .qc.settings import ReportSettings
+from .qc.settings import check_settings as check_report
 from .render.settings import RenderSettings
+from .render.settings import check_settings as check_render
 from .stitch.settings import StitchSettings
+from .stitch.settings import check_settings as check_stitch
 
 
 @dataclass
@@ -124,41 +129,26 @@ def load_config(path: str | Path | None = None) -> PipelineConfig:
     return cfg
 
 
-#: ``(table, key, test, wanted)`` for keys no stage checks itself when it starts.
+#: ``(table, key, test, wanted)`` of the ``[volume]`` table (the stages check their own tables).
 _RANGES = (
     ("volume", "pixel_size", lambda v: v > 0, "> 0"),
     ("volume", "section_thickness", lambda v: v > 0, "> 0"),
-    ("render", "clevel", lambda v: 0 <= v <= 9, "in 0..9"),
-    *(("report", k, lambda v: v >= 1, ">= 1") for k in (
-        "worst", "measure_scale", "measure_max_px", "probe_spacing", "probe_half_size", "probe_max_shift",
-        "seam_spacing", "seam_half_size", "seam_max_shift", "reslice_px")),
-    ("report", "seam_smooth", lambda v: v >= 0, ">= 0"),
 )
 
 
 def check_config(cfg: PipelineConfig, source: str) -> None:
     """Raise :class:`InputError` naming ``source`` and the key of the first value that cannot work.
 
-    Runs every stage's own settings check up front, so a bad value is refused
-    before the build folder is made, not when its stage starts hours later.
+    Runs every stage's own settings check (each in its ``settings.py``) up front, so a bad
+    value is refused before the build folder is made, not when its stage starts hours later.
     """
-    from zarr.codecs import BloscCname
-
-    from .align.stage import check_settings as check_align
-    from .channels.stage import check_settings as check_channels
-    from .render.write import check_settings as check_render
-    from .stitch.section import check_settings as check_stitch
-
     for table, key, ok, wanted in _RANGES:
         value = getattr(getattr(cfg, table), key)
         if not ok(value):
             raise InputError(f"[{table}] {key} must be {wanted}, got {value!r}", file=source)
-    codecs = ["none", *(c.value for c in BloscCname)]
-    if cfg.render.codec not in codecs:
-        raise InputError(f"[render] codec must be one of {', '.join(codecs)}, got {cfg.render.codec!r}",
-                         file=source)
     for check, settings in ((check_stitch, cfg.stitch), (check_align, cfg.align),
-                            (check_channels, cfg.channels), (check_render, cfg.render)):
+                            (check_channels, cfg.channels), (check_render, cfg.render),
+                            (check_report, cfg.report)):
         try:
             check(settings)
         except InputError as exc:

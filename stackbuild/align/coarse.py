@@ -12,7 +12,7 @@ import numpy as np
 from ..transforms.types import Affine2D
 from .features import FeatureSet, match_features
 
-MODELS = ("rigid", "similarity", "affine")
+from .settings import MODELS  # one list, kept with the settings
 
 
 @dataclass

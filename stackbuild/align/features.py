@@ -11,7 +11,7 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-DETECTORS = ("sift", "akaze", "orb")
+from .settings import DETECTORS  # one list, kept with the settings
 
 
 @dataclass

@@ -3,6 +3,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from ..errors import InputError
+
 
 @dataclass
 class AlignSettings:
@@ -94,3 +96,32 @@ class AlignSettings:
     elastic_rounds: int = 2
     damaged_fraction: float = 0.85
     damaged_contrast: float = 0.6
+
+
+#: Section models of the coarse stage.
+MODELS = ("rigid", "similarity", "affine")
+#: Feature detectors (OpenCV).
+DETECTORS = ("sift", "akaze", "orb")
+
+
+def check_settings(settings: AlignSettings) -> None:
+    """Raise :class:`InputError` naming the ``[align]`` key whose value cannot work."""
+    if settings.model not in MODELS:
+        raise InputError(f"[align] model must be one of {', '.join(MODELS)}, got {settings.model!r}")
+    if settings.detector not in DETECTORS:
+        raise InputError(f"[align] detector must be one of {', '.join(DETECTORS)}, got {settings.detector!r}")
+    if not 0 < settings.ratio <= 1:
+        raise InputError(f"[align] ratio must be in (0, 1], got {settings.ratio}")
+    if settings.ransac_threshold <= 0 or settings.max_features < 1 or settings.min_inliers < 3:
+        # an affine needs 3 point pairs, so fewer inliers can never make a model
+        raise InputError("[align] ransac_threshold must be > 0, max_features >= 1 and min_inliers >= 3")
+    if settings.match_half_size < 1 or settings.match_max_shift < 1:
+        raise InputError("[align] match_half_size and match_max_shift must be >= 1")
+    if settings.work_scale < 1 or settings.elastic_scale < 1:
+        raise InputError("[align] work_scale and elastic_scale must be >= 1")
+    if settings.neighbours < 1:
+        raise InputError("[align] neighbours must be >= 1")
+    if settings.elastic_rounds < 1:
+        raise InputError("[align] elastic_rounds must be >= 1")
+    if settings.grid_spacing < 2 * settings.elastic_scale:
+        raise InputError("[align] grid_spacing must be at least twice elastic_scale")

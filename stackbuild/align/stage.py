@@ -22,7 +22,7 @@ from .blockmatch import block_contrast, block_match, filter_vectors, grid_nodes
 from .coarse import MODELS, PairResult, match_pair
 from .elastic import solve_fields
 from .features import DETECTORS, FeatureSet, detect_features
-from .settings import AlignSettings
+from .settings import AlignSettings, check_settings
 from .solve import solve_affines
 from .sources import BuildSource
 
@@ -112,29 +112,6 @@ def block_job(item) -> tuple:
 def _pairs(sections: list[int], neighbours: int) -> list[tuple[int, int]]:
     present = set(sections)
     return [(z, z + k) for z in sections for k in range(1, neighbours + 1) if z + k in present]
-
-
-def check_settings(settings: AlignSettings) -> None:
-    """Raise :class:`InputError` naming the ``[align]`` key whose value cannot work."""
-    if settings.model not in MODELS:
-        raise InputError(f"[align] model must be one of {', '.join(MODELS)}, got {settings.model!r}")
-    if settings.detector not in DETECTORS:
-        raise InputError(f"[align] detector must be one of {', '.join(DETECTORS)}, got {settings.detector!r}")
-    if not 0 < settings.ratio <= 1:
-        raise InputError(f"[align] ratio must be in (0, 1], got {settings.ratio}")
-    if settings.ransac_threshold <= 0 or settings.max_features < 1 or settings.min_inliers < 3:
-        # an affine needs 3 point pairs, so fewer inliers can never make a model
-        raise InputError("[align] ransac_threshold must be > 0, max_features >= 1 and min_inliers >= 3")
-    if settings.match_half_size < 1 or settings.match_max_shift < 1:
-        raise InputError("[align] match_half_size and match_max_shift must be >= 1")
-    if settings.work_scale < 1 or settings.elastic_scale < 1:
-        raise InputError("[align] work_scale and elastic_scale must be >= 1")
-    if settings.neighbours < 1:
-        raise InputError("[align] neighbours must be >= 1")
-    if settings.elastic_rounds < 1:
-        raise InputError("[align] elastic_rounds must be >= 1")
-    if settings.grid_spacing < 2 * settings.elastic_scale:
-        raise InputError("[align] grid_spacing must be at least twice elastic_scale")
 
 
 def _coarse(source, sections, settings, scratch, mapper, tick):

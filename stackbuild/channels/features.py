@@ -39,7 +39,7 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
-KINDS = ("intensity", "edges", "density")
+from .settings import KINDS  # one list, kept with the settings
 
 
 def whole_block_mean(img: np.ndarray, factor: int) -> np.ndarray:

@@ -30,7 +30,7 @@ from scipy import optimize
 
 from ..transforms.types import Affine2D
 
-MODELS = ("rigid", "similarity", "affine")
+from .settings import MODELS  # one list, kept with the settings
 MIN_OVERLAP = 0.5  # fraction of the smaller image that must overlap (common practice, no source)
 SEARCH_BUDGET = 4e7  # pixel visits allowed for the exhaustive start search (about a second)
 EVAL_OVERHEAD = 1500  # fixed cost of one evaluation, in pixel visits (measured, this machine)

@@ -34,7 +34,7 @@ from ..manifest import image_header
 from ..folder import BuildFolder
 from ..render.ngff import multiscales_attrs, root_attrs
 from ..render.reduce import level_shapes, reduce2x2, reduced_size
-from ..render.write import check_settings
+from ..render.settings import check_settings
 from ..transforms.records import Canvas, SectionAlignment
 from .stage import DOC_KIND, channel_affine
 

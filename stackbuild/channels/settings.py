@@ -3,6 +3,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from ..errors import InputError
+
 
 @dataclass
 class ChannelSettings:
@@ -60,3 +62,29 @@ class ChannelSettings:
     membrane_px: float = 1.3
     vesicle_px: float = 3.5
     cluster_px: float = 20.0
+
+
+#: Channel -> section models of the mutual-information registration.
+MODELS = ("rigid", "similarity", "affine")
+#: EM feature maps a marker can be compared with.
+KINDS = ("intensity", "edges", "density")
+#: Values of ``feature``: a kind, or ``"auto"`` (try the kinds of :data:`AUTO_KINDS`).
+FEATURES = ("auto",) + KINDS
+AUTO_KINDS = ("edges", "density")
+
+
+def check_settings(settings: ChannelSettings) -> None:
+    """Raise :class:`InputError` if channel settings are out of range."""
+    where = "[channels]"
+    if settings.model not in MODELS:
+        raise InputError(f"{where} model must be one of {', '.join(MODELS)}, got {settings.model!r}")
+    if not 4 <= settings.bins <= 256:
+        raise InputError(f"{where} bins must be in 4..256, got {settings.bins}")
+    if settings.max_offset < 0 or settings.max_rotation < 0:
+        raise InputError(f"{where} max_offset and max_rotation must be >= 0")
+    if settings.feature not in FEATURES:
+        raise InputError(f"{where} feature must be one of {', '.join(FEATURES)}, got {settings.feature!r}")
+    if settings.feature_scale < 1:
+        raise InputError(f"{where} feature_scale must be >= 1, got {settings.feature_scale}")
+    if min(settings.membrane_px, settings.vesicle_px) <= 0 or settings.cluster_px < 0:
+        raise InputError(f"{where} membrane_px and vesicle_px must be > 0 and cluster_px >= 0")

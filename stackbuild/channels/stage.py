@@ -47,12 +47,10 @@ from ..transforms.store import TransformStore
 from ..transforms.types import Affine2D
 from .features import KINDS, whole_block_mean, em_feature, marker_feature
 from .mutual_info import MODELS, register_mutual_information
-from .settings import ChannelSettings
+from .settings import AUTO_KINDS, FEATURES, ChannelSettings, check_settings
 
 DOC_KIND = "channels"
 MEASURE = "normalized_mutual_information"
-FEATURES = ("auto",) + KINDS
-AUTO_KINDS = ("edges", "density")
 #: Marker-side smoothing per feature, marker pixels (set on the synthetic sample, no source).
 MARKER_SIGMA = {"edges": 1.0, "density": 1.5, "intensity": 0.0}
 
@@ -65,23 +63,6 @@ class _ChannelJob:
     entry: ChannelEntry
     em_pixel_size: float
     settings: ChannelSettings
-
-
-def check_settings(settings: ChannelSettings) -> None:
-    """Raise :class:`InputError` if channel settings are out of range."""
-    where = "[channels]"
-    if settings.model not in MODELS:
-        raise InputError(f"{where} model must be one of {', '.join(MODELS)}, got {settings.model!r}")
-    if not 4 <= settings.bins <= 256:
-        raise InputError(f"{where} bins must be in 4..256, got {settings.bins}")
-    if settings.max_offset < 0 or settings.max_rotation < 0:
-        raise InputError(f"{where} max_offset and max_rotation must be >= 0")
-    if settings.feature not in FEATURES:
-        raise InputError(f"{where} feature must be one of {', '.join(FEATURES)}, got {settings.feature!r}")
-    if settings.feature_scale < 1:
-        raise InputError(f"{where} feature_scale must be >= 1, got {settings.feature_scale}")
-    if min(settings.membrane_px, settings.vesicle_px) <= 0 or settings.cluster_px < 0:
-        raise InputError(f"{where} membrane_px and vesicle_px must be > 0 and cluster_px >= 0")
 
 
 def em_scale(channel_pixel_size: float, em_pixel_size: float) -> int:

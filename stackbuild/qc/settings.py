@@ -3,6 +3,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from ..errors import InputError
+
 
 @dataclass
 class ReportSettings:
@@ -62,3 +64,13 @@ class ReportSettings:
     seam_smooth: float = 1.0
     field_section: int = -1
     reslice_px: int = 1536
+
+
+def check_settings(s: ReportSettings) -> None:
+    """Raise :class:`InputError` naming the ``[report]`` key whose value cannot work."""
+    for key in ("worst", "measure_scale", "measure_max_px", "probe_spacing", "probe_half_size",
+                "probe_max_shift", "seam_spacing", "seam_half_size", "seam_max_shift", "reslice_px"):
+        if not getattr(s, key) >= 1:
+            raise InputError(f"[report] {key} must be >= 1, got {getattr(s, key)!r}")
+    if not s.seam_smooth >= 0:
+        raise InputError(f"[report] seam_smooth must be >= 0, got {s.seam_smooth!r}")

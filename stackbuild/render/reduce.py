@@ -17,7 +17,7 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
-REDUCERS = ("mean", "max", "min", "mode")
+from .settings import REDUCERS  # one list, kept with the settings
 
 
 def reduced_size(n: int) -> int:

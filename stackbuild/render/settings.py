@@ -3,6 +3,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from ..errors import InputError
+
 
 @dataclass
 class RenderSettings:
@@ -40,3 +42,36 @@ class RenderSettings:
     contrast: bool = False
     contrast_percentiles: tuple[float, float] = (1.0, 99.0)
     contrast_scale: int = 4
+
+
+#: Reducers of the pyramid (see :mod:`stackbuild.render.reduce`).
+REDUCERS = ("mean", "max", "min", "mode")
+#: Interpolations of the resampling, with their spline order.
+INTERPOLATIONS = {"nearest": 0, "linear": 1, "cubic": 3}
+
+
+def check_settings(settings: RenderSettings) -> None:
+    """Raise :class:`InputError` if render settings are out of range."""
+    from zarr.codecs import BloscCname  # the codec names zarr knows; a plain enum, no I/O
+
+    where = "[render]"
+    if settings.chunk < 16 or settings.chunk % 2:
+        # Even, so every shard but the last halves exactly into the level above it.
+        raise InputError(f"{where} chunk must be an even number >= 16, got {settings.chunk}")
+    if settings.shard < 1:
+        raise InputError(f"{where} shard must be >= 1, got {settings.shard}")
+    if settings.reducer not in REDUCERS:
+        raise InputError(f"{where} reducer must be one of {', '.join(REDUCERS)}, got {settings.reducer!r}")
+    if settings.interpolation not in INTERPOLATIONS:
+        raise InputError(f"{where} interpolation must be one of {sorted(INTERPOLATIONS)}, "
+                         f"got {settings.interpolation!r}")
+    lo, hi = settings.contrast_percentiles
+    if not 0 <= lo < hi <= 100:
+        raise InputError(f"{where} contrast_percentiles must satisfy 0 <= low < high <= 100")
+    if settings.contrast_scale < 1:
+        raise InputError(f"{where} contrast_scale must be >= 1, got {settings.contrast_scale}")
+    if not 0 <= settings.clevel <= 9:
+        raise InputError(f"{where} clevel must be in 0..9, got {settings.clevel!r}")
+    codecs = ["none", *(c.value for c in BloscCname)]
+    if settings.codec not in codecs:
+        raise InputError(f"{where} codec must be one of {', '.join(codecs)}, got {settings.codec!r}")

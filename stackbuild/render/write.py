@@ -28,33 +28,12 @@ from .contrast import DOC_KIND, RangeJob, contrast_record, range_job
 from .lazy import RenderPlan, section_records
 from .ngff import multiscales_attrs, root_attrs
 from .pyramid import pyramid_writes
-from .reduce import REDUCERS, level_shapes
-from .sampler import interpolation_order
+from .reduce import level_shapes
+from .settings import check_settings
 
 CHECKPOINT = ".stackbuild_done.json"
 #: Level-0 shards rendered per dask graph (whole planes; each plane is checkpointed when it is done).
 BATCH_SHARDS = 32
-
-
-def check_settings(settings) -> None:
-    """Raise :class:`InputError` if render settings are out of range."""
-    where = "[render]"
-    if settings.chunk < 16 or settings.chunk % 2:
-        # Even, so every shard but the last halves exactly into the level above it.
-        raise InputError(f"{where} chunk must be an even number >= 16, got {settings.chunk}")
-    if settings.shard < 1:
-        raise InputError(f"{where} shard must be >= 1, got {settings.shard}")
-    if settings.reducer not in REDUCERS:
-        raise InputError(f"{where} reducer must be one of {', '.join(REDUCERS)}, got {settings.reducer!r}")
-    try:
-        interpolation_order(settings.interpolation)
-    except ValueError as exc:
-        raise InputError(f"{where} {exc}") from None
-    lo, hi = settings.contrast_percentiles
-    if not 0 <= lo < hi <= 100:
-        raise InputError(f"{where} contrast_percentiles must satisfy 0 <= low < high <= 100")
-    if settings.contrast_scale < 1:
-        raise InputError(f"{where} contrast_scale must be >= 1, got {settings.contrast_scale}")
 
 
 def _compressors(settings):

@@ -16,7 +16,7 @@ from .intensity import (illumination_at_tile_size, illumination_profile, solve_g
 from .overlaps import Overlap, find_overlaps, neighbours
 from .pairs import PairResult, register_pair
 from .placement import solve_translations
-from .settings import StitchSettings
+from .settings import StitchSettings, check_settings
 
 #: Fewest specimen tiles from which an illumination profile is estimated.
 MIN_ILLUMINATION_TILES = 3
@@ -27,20 +27,6 @@ def read_tile(entry: TileEntry, section: int) -> np.ndarray:
     where = f" (manifest line {entry.row})" if entry.row else ""
     return read_raw_tile(entry.path, entry.height, entry.width, section, dtype=entry.dtype,
                          what=f"tile {entry.tile!r}{where}", source="header")
-
-
-def check_settings(s: StitchSettings) -> None:
-    """Raise InputError naming the ``[stitch]`` key whose value cannot work."""
-    rules = [
-        ("max_stage_error", s.max_stage_error > 0, "> 0"), ("min_overlap", s.min_overlap >= 1, ">= 1"),
-        ("upsample", s.upsample >= 1, ">= 1"), ("prior_weight", s.prior_weight > 0, "> 0"),
-        ("max_residual", s.max_residual > 0, "> 0"), ("illumination_step", s.illumination_step >= 1, ">= 1"),
-        ("spectral_exponent", 0 <= s.spectral_exponent <= 1, "between 0 and 1"),
-        ("spectrum_sigma", s.spectrum_sigma >= 0, ">= 0"),
-    ]
-    for key, ok, want in rules:
-        if not ok:
-            raise InputError(f"[stitch] {key} must be {want}, got {getattr(s, key)!r}")
 
 
 def _slice(box):

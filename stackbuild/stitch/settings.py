@@ -3,6 +3,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from ..errors import InputError
+
 
 @dataclass
 class StitchSettings:
@@ -64,3 +66,17 @@ class StitchSettings:
     blank_std: float = 2.0
     focus_min: float = 0.2
     saturated_max: float = 0.05
+
+
+def check_settings(s: StitchSettings) -> None:
+    """Raise InputError naming the ``[stitch]`` key whose value cannot work."""
+    rules = [
+        ("max_stage_error", s.max_stage_error > 0, "> 0"), ("min_overlap", s.min_overlap >= 1, ">= 1"),
+        ("upsample", s.upsample >= 1, ">= 1"), ("prior_weight", s.prior_weight > 0, "> 0"),
+        ("max_residual", s.max_residual > 0, "> 0"), ("illumination_step", s.illumination_step >= 1, ">= 1"),
+        ("spectral_exponent", 0 <= s.spectral_exponent <= 1, "between 0 and 1"),
+        ("spectrum_sigma", s.spectrum_sigma >= 0, ">= 0"),
+    ]
+    for key, ok, want in rules:
+        if not ok:
+            raise InputError(f"[stitch] {key} must be {want}, got {getattr(s, key)!r}")

@@ -1,5 +1,5 @@
 """stackbuild: serial-section EM tiles -> registered, multiscale, chunked OME-Zarr volume."""
-__version__ = "0.1.0"
+from ._version import __version__
 
 
 def open_volume(build_dir, level: int = 0, lazy: bool = True, channel: str | None = None):

@@ -7,7 +7,8 @@ from skimage.color import rgb2gray
 
 from stackbuild.errors import InputError
 from stackbuild.manifest import read_tile_manifest
-from stackbuild.stitch import StitchSettings, stitch_section
+from stackbuild.stitch.section import stitch_section
+from stackbuild.stitch.settings import StitchSettings
 from stackbuild.stitch.intensity import illumination_at_tile_size
 
 from stitch_fixtures import make_section, placement_errors, vignetting

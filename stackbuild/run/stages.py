@@ -32,7 +32,7 @@ class _StitchJob:
 
 def _stitch_one(job: _StitchJob) -> dict:
     """Stitch one section and store its record (runs on a worker)."""
-    from ..stitch import stitch_section
+    from ..stitch.section import stitch_section
 
     rec = stitch_section(list(job.tiles), job.settings, job.section)
     BuildFolder(Path(job.build)).store.save_stitch(rec)

@@ -9,7 +9,7 @@ import json
 import shutil
 from pathlib import Path
 
-from .. import __version__
+from .._version import __version__
 from ..config import load_config
 from ..errors import InputError
 from ..manifest import read_channel_manifest, read_landmarks, read_tile_manifest

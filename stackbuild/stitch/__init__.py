@@ -1,7 +1,8 @@
 """Per-section stitching: overlaps, phase correlation, placement solve, intensity correction.
 
-The entry point is :func:`stitch_section`; the modules below it are pure
-compute kernels (arrays in, arrays out):
+The entry point is :func:`stackbuild.stitch.section.stitch_section`; the modules
+below it are pure compute kernels (arrays in, arrays out). This file imports
+nothing, so that reading the settings (``stitch.settings``) loads no stage code.
 
 ``overlaps``    which tiles overlap and the strips to compare
 ``phasecorr``   phase correlation with upsampled-DFT sub-pixel refinement
@@ -10,7 +11,3 @@ compute kernels (arrays in, arrays out):
 ``intensity``   illumination profile, per-tile gain and offset
 ``inspect``     per-tile statistics and quality flags
 """
-from .section import stitch_section
-from .settings import StitchSettings
-
-__all__ = ["StitchSettings", "stitch_section"]

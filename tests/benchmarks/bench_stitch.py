@@ -37,7 +37,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from skimage.registration import phase_cross_correlation  # noqa: E402
 
 from stackbuild.manifest import read_tile_manifest  # noqa: E402
-from stackbuild.stitch import StitchSettings, stitch_section  # noqa: E402
+from stackbuild.stitch.section import stitch_section
+from stackbuild.stitch.settings import StitchSettings  # noqa: E402
 from stackbuild.stitch.phasecorr import phase_correlate  # noqa: E402
 
 

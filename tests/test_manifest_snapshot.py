@@ -53,15 +53,15 @@ def build(tmp_path) -> BuildFolder:
 
 @pytest.fixture
 def header_calls(monkeypatch) -> list:
-    """Count the tile headers opened through ``stackbuild.manifest.image_header``."""
+    """Count the tile headers opened through ``stackbuild.manifest._header``."""
     calls = []
-    real = manifest_mod.image_header
+    real = manifest_mod._header
 
     def counting(path, *args, **kw):
         calls.append(Path(path).stem)
         return real(path, *args, **kw)
 
-    monkeypatch.setattr(manifest_mod, "image_header", counting)
+    monkeypatch.setattr(manifest_mod, "_header", counting)
     return calls
 
 
@@ -71,6 +71,7 @@ def _no_tiff(monkeypatch) -> None:
         raise AssertionError("a TIFF header was opened")
 
     monkeypatch.setattr(manifest_mod, "image_header", refuse)
+    monkeypatch.setattr(manifest_mod, "_header", refuse)
     monkeypatch.setattr(manifest_mod.tifffile, "TiffFile", refuse)
 
 

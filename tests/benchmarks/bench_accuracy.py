@@ -1,0 +1,169 @@
+"""Alignment accuracy against ground truth: the identifiable residual of real builds, and how well the
+report's per-section error estimate agrees with it.
+
+Each case synthesises a stack (:func:`stackbuild.synth.variants.variant_params`), builds it through the
+real command line (``stackbuild build``), and measures the build with
+:func:`stackbuild.synth.residual.identifiable_residual`. Printed per build: residual RMS / p95 / max,
+RMS of the last section, intact sections the build flagged ``damaged`` or ``interpolated``, and, when
+``qc/sections.csv`` has the column ``align_error_px``, the share of sections whose estimate is within
+30 % or 0.3 px (whichever is larger) of the true per-section RMS and whether the truly worst section
+is among the estimate's two worst (the bars of the QC issue).
+
+Run::
+
+    python tests/benchmarks/bench_accuracy.py                        # both families, base variant, seed 0
+    python tests/benchmarks/bench_accuracy.py --family realistic --variant base dense small long --seeds 0 1 2
+    python tests/benchmarks/bench_accuracy.py --sections 6 --json /tmp/x/acc.json
+
+``--full`` is every family x variant on seeds 0, 1, 2 (the bars of the alignment issue).
+"""
+from __future__ import annotations
+
+import argparse
+import csv
+import json
+import math
+import shutil
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
+from stackbuild.errors import InputError  # noqa: E402
+from stackbuild.synth import generate, load_truth  # noqa: E402
+from stackbuild.synth.residual import identifiable_residual  # noqa: E402
+from stackbuild.synth.variants import VARIANTS, variant_params  # noqa: E402
+
+FAMILIES = ("standard", "realistic")
+#: the QC issue's agreement rule: within 30 % or 0.3 px, whichever is larger
+REL_TOL, ABS_TOL = 0.30, 0.3
+
+
+def estimate_agreement(truth_rms: dict[int, float], estimate: dict[int, float]) -> dict | None:
+    """Return how a per-section error estimate agrees with the true per-section residual, or None.
+
+    ``fraction_within``: share of sections (present in both) with
+    ``|estimate - truth| <= max(0.3 * truth, 0.3 px)``; ``worst_in_top2``: the truly worst section
+    is among the two largest estimates.
+    """
+    common = sorted(set(truth_rms) & set(estimate))
+    if not common:
+        return None
+    ok = [abs(estimate[s] - truth_rms[s]) <= max(REL_TOL * truth_rms[s], ABS_TOL) for s in common]
+    worst = max(common, key=lambda s: truth_rms[s])
+    top2 = sorted(common, key=lambda s: -estimate[s])[:2]
+    return {"fraction_within": float(np.mean(ok)), "worst_in_top2": worst in top2, "true_worst": worst,
+            "estimate_top2": top2}
+
+
+def read_estimate(build: Path) -> dict[int, float] | None:
+    """Return ``section -> align_error_px`` from ``qc/sections.csv``, or None if there is no such column."""
+    path = build / "qc" / "sections.csv"
+    if not path.is_file():
+        return None
+    with open(path, newline="", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    if not rows or "align_error_px" not in rows[0]:
+        return None
+    out = {}
+    for r in rows:
+        try:
+            v = float(r["align_error_px"])
+        except (TypeError, ValueError):
+            continue
+        if math.isfinite(v):
+            out[int(r["section"])] = v
+    return out
+
+
+def run_case(family, variant, seed, work: Path, sections=None, workers=None, keep=False) -> dict:
+    """Synthesise, build and measure one stack; return its row of results."""
+    over = {} if sections is None else {"sections": sections}
+    params = variant_params(family, variant, seed, **over)
+    name = f"{family}-{variant}-s{seed}" + ("" if sections is None else f"-n{sections}")
+    data, build = work / name / "sample", work / name / "build"
+    shutil.rmtree(work / name, ignore_errors=True)
+    t0 = time.perf_counter()
+    generate(data, params)
+    t_synth = time.perf_counter() - t0
+    # the installed command line's own entry point, in a child process as a user would run it
+    cmd = [sys.executable, "-c", "import sys; from stackbuild.cli import main; sys.exit(main())",
+           "build", str(data / "tiles.csv"), "--out", str(build), "--quiet"]
+    if workers:
+        cmd += ["--workers", str(workers)]
+    t0 = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True)
+    row = {"case": name, "family": family, "variant": variant, "seed": seed, "sections": params.sections,
+           "synth_s": round(t_synth, 1), "build_s": round(time.perf_counter() - t0, 1),
+           "build_exit": proc.returncode, "build_error": proc.stderr.strip().splitlines()[-1:] if proc.returncode else []}
+    try:
+        truth = load_truth(data)
+        rep = identifiable_residual(build, truth)
+    except InputError as exc:
+        row["error"] = str(exc)
+        return row
+    truly_damaged = {int(s) for s in truth.defects["damaged_sections"]}
+    last = max(rep.sections)
+    per_rms = {s: v["rms"] for s, v in rep.per_section.items() if v["measured"]}
+    row.update(rms=rep.rms, p95=rep.p95, max=rep.max, last_rms=rep.per_section[last]["rms"],
+               worst_section=max(per_rms, key=per_rms.get),
+               flagged_damaged=sorted(s for s, f in rep.flags.items() if "damaged" in f and s not in truly_damaged),
+               flagged_interpolated=sorted(s for s, f in rep.flags.items() if "interpolated" in f),
+               per_section_rms={str(s): round(v, 3) for s, v in per_rms.items()})
+    estimate = read_estimate(build)
+    if estimate is not None:
+        row["estimate"] = {str(s): round(v, 3) for s, v in estimate.items()}
+        row["agreement"] = estimate_agreement(per_rms, estimate)
+    if not keep:
+        shutil.rmtree(work / name, ignore_errors=True)
+    return row
+
+
+def _line(r: dict) -> str:
+    if "rms" not in r:
+        return f"{r['case']:<28} build exit {r['build_exit']} {r.get('error', '')} {r['build_error']}"
+    agree = r.get("agreement")
+    qc = ("qc estimate: none" if agree is None else
+          f"qc estimate: {100 * agree['fraction_within']:.0f}% within, worst in top 2: {agree['worst_in_top2']}")
+    exit_note = "" if r["build_exit"] == 0 else f"  [build exit {r['build_exit']}: {' '.join(r['build_error'])}]"
+    return (f"{r['case']:<28} RMS {r['rms']:6.2f}  p95 {r['p95']:6.2f}  max {r['max']:6.2f}  "
+            f"last {r['last_rms']:6.2f} px  damaged-flagged {r['flagged_damaged']}  "
+            f"interpolated {r['flagged_interpolated']}  {qc}  ({r['build_s']:.0f} s){exit_note}")
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--family", nargs="+", choices=FAMILIES, default=list(FAMILIES))
+    ap.add_argument("--variant", nargs="+", choices=VARIANTS, default=["base"])
+    ap.add_argument("--seeds", nargs="+", type=int, default=[0])
+    ap.add_argument("--sections", type=int, default=None, help="override the variant's section count")
+    ap.add_argument("--workers", type=int, default=None, help="passed to stackbuild build")
+    ap.add_argument("--work", type=Path, default=Path("/tmp/bench_accuracy"), help="scratch folder")
+    ap.add_argument("--keep", action="store_true", help="keep each case's sample and build folder")
+    ap.add_argument("--json", type=Path, default=None, help="also write every row to this JSON file")
+    ap.add_argument("--full", action="store_true", help="every family and variant on seeds 0, 1, 2")
+    args = ap.parse_args(argv)
+    if args.full:
+        args.family, args.variant, args.seeds = list(FAMILIES), list(VARIANTS), [0, 1, 2]
+    rows = []
+    for family in args.family:
+        for variant in args.variant:
+            for seed in args.seeds:
+                try:
+                    row = run_case(family, variant, seed, args.work, args.sections, args.workers, args.keep)
+                except InputError as exc:
+                    row = {"case": f"{family}-{variant}-s{seed}", "build_exit": None, "build_error": [],
+                           "error": str(exc)}
+                rows.append(row)
+                print(_line(row), flush=True)
+                if args.json:
+                    args.json.parent.mkdir(parents=True, exist_ok=True)
+                    args.json.write_text(json.dumps(rows, indent=1, default=str) + "\n")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

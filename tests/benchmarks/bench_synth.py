@@ -1,4 +1,4 @@
-"""Time of rendering one phantom section, beside a plain Gaussian blur of the same image as a yardstick.
+"""Time of rendering one phantom section (both families), beside a plain Gaussian blur of the same image as a yardstick.
 
 Run: ``python tests/benchmarks/bench_synth.py [--full]`` (default 1024 px, ``--full`` adds 2048 px).
 """
@@ -26,13 +26,14 @@ def _best(fn, repeat=3):
 
 def main(argv):
     sizes = [1024, 2048] if "--full" in argv else [1024]
-    params = SynthParams(seed=0)
-    for n in sizes:
-        render = _best(lambda: phantom_section(params, 4, (n, n)))
-        image = np.random.default_rng(0).random((n, n), dtype=np.float32)
-        blur = _best(lambda: gaussian_filter(image, 3.0))
-        print(f"{n}x{n}: phantom {render:.3f} s, scipy gaussian_filter(sigma=3) {blur:.3f} s, "
-              f"ratio {render / blur:.1f}")
+    for content in ("standard", "realistic"):
+        params = SynthParams(seed=0, content=content)
+        for n in sizes:
+            render = _best(lambda: phantom_section(params, 4, (n, n)))
+            image = np.random.default_rng(0).random((n, n), dtype=np.float32)
+            blur = _best(lambda: gaussian_filter(image, 3.0))
+            print(f"{content} {n}x{n}: phantom {render:.3f} s, scipy gaussian_filter(sigma=3) {blur:.3f} s, "
+                  f"ratio {render / blur:.1f}")
 
 
 if __name__ == "__main__":

@@ -78,7 +78,7 @@ def test_bad_shapes_are_refused():
 
 # -- on a build folder -----------------------------------------------------------------
 
-def _truth_build(root, truth, tile_error=None):
+def _truth_build(root, truth, tile_error=None, canvas=True):
     """A build folder whose records are the truth's own transforms (section -> true, inverted on a grid)."""
     store = TransformStore(root / "transforms")
     h, w = truth.section_shape
@@ -100,7 +100,8 @@ def _truth_build(root, truth, tile_error=None):
         vec = (coarse - grid).reshape(*ax.shape, 2).astype(np.float32)
         store.save_alignment(SectionAlignment(s, inv, DisplacementField(vec, (-64.0, -64.0), spacing), []))
     th, tw = truth.true_shape
-    store.save_canvas(Canvas(tw - 200, th - 200, 100.0, 100.0, truth.sections[0], truth.sections[-1], "uint8"))
+    if canvas:
+        store.save_canvas(Canvas(tw - 200, th - 200, 100.0, 100.0, truth.sections[0], truth.sections[-1], "uint8"))
     return root
 
 
@@ -119,6 +120,9 @@ def test_a_build_with_the_true_transforms_has_no_residual(sample):
     # an 8 px field reproduces the inverse of the truth's 64 px bilinear warp to about a hundredth
     assert rep.rms < 0.02 and rep.max < 0.05
     assert rep.excluded == {3: "lost"} and rep.sections == [0, 1, 2, 4]
+    # before render there is no canvas: the grid lies on the sections' aligned extent instead
+    early = identifiable_residual(_truth_build(root / "early", truth, canvas=False), truth, block=64)
+    assert early.rms < 0.02 and len(early.points) >= len(rep.points) // 2
 
 
 def test_a_misplaced_tile_shows_in_its_section_only(sample):

@@ -29,6 +29,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 
@@ -206,6 +207,24 @@ def _section_to_truth_section(stitch, truth_pos, q):
     return q + num / np.maximum(den, 1e-12)[:, None], covered
 
 
+def _aligned_extent(store, sections):
+    """Return a stand-in canvas (``width, height, origin_x, origin_y``) for a build not yet rendered.
+
+    It is the union of the sections' tile rectangles carried into the aligned
+    frame by the inverse of each section's affine (the field is ignored: only
+    the grid's placement depends on it, and uncovered blocks are dropped anyway).
+    """
+    corners = []
+    for s in sections:
+        x0, y0, x1, y1 = store.load_stitch(s).bbox()
+        box = np.array([[x0, y0], [x1, y0], [x0, y1], [x1, y1]])
+        corners.append(store.load_alignment(s).affine.inverse().apply(box))
+    c = np.vstack(corners)
+    lo, hi = np.floor(c.min(0)), np.ceil(c.max(0))
+    return SimpleNamespace(width=int(hi[0] - lo[0]), height=int(hi[1] - lo[1]),
+                           origin_x=float(lo[0]), origin_y=float(lo[1]))
+
+
 def plane_positions(build_dir, truth: Truth, block: int = 128):
     """Return what each output plane of a build shows, in the true frame, on a grid of blocks.
 
@@ -222,9 +241,6 @@ def plane_positions(build_dir, truth: Truth, block: int = 128):
         ``section -> alignment flags``.
     """
     store = TransformStore(Path(build_dir) / "transforms")
-    canvas = store.load_canvas()
-    if canvas is None:
-        raise InputError("the build has no canvas record (render has not run)", file=Path(build_dir))
     aligned = set(store.sections_with("align"))
     excluded = {s: "lost" for s in truth.lost_sections}
     sections = []
@@ -235,6 +251,7 @@ def plane_positions(build_dir, truth: Truth, block: int = 128):
             sections.append(s)
     if not sections:
         raise InputError("no section of the ground truth is aligned in the build", file=Path(build_dir))
+    canvas = store.load_canvas() or _aligned_extent(store, sections)
     centres, samples = _block_samples(canvas, block)
     flat = samples.reshape(-1, 2) + [canvas.origin_x, canvas.origin_y]
     mapped = np.empty((len(sections),) + samples.shape)
@@ -259,7 +276,9 @@ def identifiable_residual(build_dir, truth_dir, *, block: int = 128, bumps: int 
     Parameters
     ----------
     build_dir : str or Path
-        The build folder (``--out DIR``); needs its stitch, align and canvas records.
+        The build folder (``--out DIR``); needs its stitch and align records. The grid
+        lies on the output canvas when render has run, else on the union of the
+        sections' extents in the aligned frame (same origin convention).
     truth_dir : str, Path or Truth
         The synthetic sample folder (holding ``truth/``), or its loaded :class:`Truth`.
     block : int

@@ -143,13 +143,18 @@ def test_flags_blank_saturated_out_of_focus():
     saturated[:100] = 255
     blurred = ndi.gaussian_filter(cam, 4)
     stats = [tile_stats(t) for t in (cam, cam[::-1].copy(), blank, saturated, blurred)]
-    flags = flag_tiles(stats, blank_std=2.0, focus_min=0.2, saturated_max=0.05)
+    flags = flag_tiles(stats, blank_contrast_to_noise=3.0, focus_min=0.2, saturated_max=0.05)
     assert flags[0] == [] and flags[1] == []
     assert flags[2] == ["blank"]  # noise and shading, but no structure
     assert "saturated" in flags[3]
     assert flags[4] == ["out_of_focus"]
-    s16 = tile_stats(cam.astype(np.uint16) * 257)  # the 8-bit scale is the same for 16-bit tiles
-    assert s16["contrast"] == pytest.approx(stats[0]["contrast"], rel=1e-3)
+    # Flags do not depend on bit depth or range: the same camera image at full 16 bits,
+    # as 12-bit values in a 16-bit file, and squeezed into 1000..3000 of a 16-bit file.
+    for scaled in (cam.astype(np.uint16) * 257, cam.astype(np.uint16) * 16,
+                   (1000 + cam.astype(np.uint16) * 7.84).astype(np.uint16)):
+        s = tile_stats(scaled)
+        assert s["contrast_to_noise"] == pytest.approx(stats[0]["contrast_to_noise"], rel=0.15)
+        assert flag_tiles([s, stats[2]], 3.0, 0.2, 0.05) == [[], ["blank"]]
 
 
 def test_ncc_after_shift_matches_pearson_for_zero_shift():

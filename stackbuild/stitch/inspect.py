@@ -10,10 +10,10 @@ CONTRAST_BLOCK = 8
 CONTRAST_SHADING_SIGMA = 4.0
 
 
-def _scale_to_8bit(dtype: np.dtype) -> float:
-    """Return the factor that brings grey levels of ``dtype`` to the 0..255 scale."""
-    dtype = np.dtype(dtype)
-    return 255.0 / np.iinfo(dtype).max if dtype.kind == "u" else 1.0
+#: Smallest pixel noise (grey levels) assumed: the rounding noise of integer pixels, 1 / sqrt(12).
+QUANTISATION_NOISE = float(1.0 / np.sqrt(12.0))
+#: A value is a pile-up (clipping) when it holds this many times the pixels of the next value inward.
+PILE_UP_FACTOR = 4.0
 
 
 def robust_contrast(image: np.ndarray) -> float:
@@ -51,34 +51,101 @@ def focus_measure(image: np.ndarray) -> float:
     return float(cv2.Laplacian(img, cv2.CV_32F, ksize=1).var())
 
 
+def pixel_noise(image: np.ndarray) -> float:
+    """Return the standard deviation of the pixel noise of a tile, in its own grey levels.
+
+    Notes
+    -----
+    Immerkaer's estimator: the image is filtered with the mask
+    ``[[1, -2, 1], [-2, 4, -2], [1, -2, 1]]`` (the difference of two
+    Laplacians, blind to locally linear intensity), whose response to white
+    noise of deviation ``sigma`` has deviation ``6 sigma``. A robust spread
+    (``1.4826 * MAD``) of the response, over every other row, replaces the
+    paper's mean absolute value so that edges and granules do not count as
+    noise. Floored at the rounding noise of integer pixels.
+
+    References
+    ----------
+    .. [1] J. Immerkaer, "Fast noise variance estimation", Computer Vision
+       and Image Understanding 64(2), 300-302 (1996). doi:10.1006/cviu.1996.0060
+    """
+    img = np.asarray(image, dtype=np.float32)
+    if min(img.shape) < 3:
+        return QUANTISATION_NOISE
+    mask = np.array([[1, -2, 1], [-2, 4, -2], [1, -2, 1]], np.float32)
+    resp = cv2.filter2D(img, cv2.CV_32F, mask, borderType=cv2.BORDER_REFLECT)[1:-1:2, 1:-1]
+    mad = float(np.median(np.abs(resp - np.median(resp))))
+    return max(1.4826 * mad / 6.0, QUANTISATION_NOISE)
+
+
+def _pile_up(image: np.ndarray) -> tuple[float, float]:
+    """Return the fractions of pixels piled up at the tile's highest and at its lowest value.
+
+    A value counts as piled up (clipped by the detector or the digitiser)
+    only if it holds more than ``PILE_UP_FACTOR`` times the pixels of the
+    next value present inward; otherwise its share is 0. Measured against
+    the tile's own extremes, not the pixel type's, so 12-bit data in 16-bit
+    files that clip at 4095 are seen as clipped.
+    """
+    img = np.asarray(image)
+    if img.dtype.kind in "ub" and img.dtype.itemsize <= 2:
+        counts = np.bincount(img.ravel(), minlength=1)
+        present = np.flatnonzero(counts)
+        c = counts[present]
+    else:
+        _, c = np.unique(img, return_counts=True)
+    if len(c) < 2:
+        return 1.0, 1.0
+    n = float(img.size)
+    top = c[-1] / n if c[-1] > PILE_UP_FACTOR * c[-2] else 0.0
+    bottom = c[0] / n if c[0] > PILE_UP_FACTOR * c[1] else 0.0
+    return float(top), float(bottom)
+
+
 def tile_stats(image: np.ndarray) -> dict:
-    """Return the statistics of one raw tile, on the 8-bit grey scale where they are grey levels.
+    """Return the statistics of one raw tile, in its own grey levels (any bit depth or range).
 
     Returns
     -------
     dict
-        ``mean``, ``std`` (grey levels scaled to 0..255), ``contrast``
-        (:func:`robust_contrast`, same scale), ``saturated_fraction`` (pixels at
-        the dtype's maximum), ``zero_fraction`` (pixels at 0), ``focus``
-        (:func:`focus_measure` on the 8-bit scale).
+        ``mean``, ``std``, ``median``, ``p01``, ``p99`` (1st and 99th
+        percentiles) of the pixels; ``noise`` (:func:`pixel_noise`);
+        ``contrast`` (:func:`robust_contrast`); ``contrast_to_noise``, the
+        contrast over the noise left in a ``CONTRAST_BLOCK``-pixel block mean
+        (``noise / CONTRAST_BLOCK``), about 1 for a tile of pure noise;
+        ``saturated_fraction`` and ``zero_fraction``, the shares of pixels
+        piled up at the tile's highest and lowest value (see
+        :func:`_pile_up`); ``focus`` (:func:`focus_measure`, compared only
+        within a section).
+
+    Notes
+    -----
+    No statistic refers to the pixel type's maximum: 8-bit, 12-bit data in
+    16-bit files, and 16-bit data of any range give the same flags.
     """
     image = np.asarray(image)
     if image.ndim != 2:
         raise ValueError(f"tile must be 2-D, got shape {image.shape}")
-    scale = _scale_to_8bit(image.dtype)
-    top = np.iinfo(image.dtype).max if image.dtype.kind == "u" else np.inf
     img = image.astype(np.float32)
+    sub = img[::4, ::4] if img.size > 1 << 20 else img
+    p01, median, p99 = (float(v) for v in np.percentile(sub, [1, 50, 99]))
+    noise = pixel_noise(img)
+    contrast = robust_contrast(img)
+    top, bottom = _pile_up(image)
     return {
-        "mean": float(img.mean() * scale),
-        "std": float(img.std() * scale),
-        "contrast": robust_contrast(img) * scale,
-        "saturated_fraction": float(np.count_nonzero(image >= top) / image.size),
-        "zero_fraction": float(np.count_nonzero(image == 0) / image.size),
-        "focus": focus_measure(img) * scale * scale,
+        "mean": float(img.mean()),
+        "std": float(img.std()),
+        "median": median, "p01": p01, "p99": p99,
+        "noise": noise,
+        "contrast": contrast,
+        "contrast_to_noise": contrast / (noise / CONTRAST_BLOCK),
+        "saturated_fraction": top,
+        "zero_fraction": bottom,
+        "focus": focus_measure(img),
     }
 
 
-def flag_tiles(stats: list[dict], blank_std: float, focus_min: float,
+def flag_tiles(stats: list[dict], blank_contrast_to_noise: float, focus_min: float,
                saturated_max: float) -> list[list[str]]:
     """Return the quality flags of every tile of a section from :func:`tile_stats` results.
 
@@ -86,14 +153,15 @@ def flag_tiles(stats: list[dict], blank_std: float, focus_min: float,
     ----------
     stats : list of dict
         One :func:`tile_stats` result per tile.
-    blank_std : float
-        Tiles whose ``contrast`` is below this (8-bit grey levels) are ``"blank"``.
+    blank_contrast_to_noise : float
+        Tiles whose ``contrast_to_noise`` is below this are ``"blank"``: their
+        structure does not stand out of their own noise (pure noise gives about 1).
     focus_min : float
         Non-blank tiles whose ``focus`` is below this fraction of the median
         focus of the section's non-blank tiles are ``"out_of_focus"``.
     saturated_max : float
-        Tiles with more than this fraction of pixels at the maximum (or at
-        zero) are ``"saturated"``.
+        Tiles with more than this fraction of pixels piled up at their
+        highest (or lowest) value are ``"saturated"``.
 
     Returns
     -------
@@ -101,7 +169,7 @@ def flag_tiles(stats: list[dict], blank_std: float, focus_min: float,
     """
     flags: list[list[str]] = [[] for _ in stats]
     for f, s in zip(flags, stats):
-        if s["contrast"] < blank_std:
+        if s["contrast_to_noise"] < blank_contrast_to_noise:
             f.append("blank")
         if max(s["saturated_fraction"], s["zero_fraction"]) > saturated_max:
             f.append("saturated")

@@ -19,6 +19,9 @@ import cv2
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
+from scipy.sparse.csgraph import connected_components
+
+from ..tiles import illumination_at_tile_size  # noqa: F401  (defined with the tile reader)
 
 
 def profile_shape(height: int, width: int, step: int) -> tuple[int, int]:
@@ -94,21 +97,11 @@ def illumination_profile(thumbnails: np.ndarray, degree: int = 4) -> np.ndarray:
     return (prof / prof.mean()).astype(np.float32)
 
 
-def illumination_at_tile_size(profile: np.ndarray, height: int, width: int) -> np.ndarray:
-    """Return the illumination profile upsampled to a ``height x width`` tile, float32.
-
-    Exactly ``cv2.resize(profile, (width, height), interpolation=cv2.INTER_LINEAR)``
-    (see the module docstring for the sampling convention).
-    """
-    prof = np.asarray(profile, dtype=np.float32)
-    if prof.ndim != 2:
-        raise ValueError(f"profile must be 2-D, got shape {prof.shape}")
-    return cv2.resize(prof, (int(width), int(height)), interpolation=cv2.INTER_LINEAR)
-
-
 def solve_gain_offset(pairs: np.ndarray, mean_a: np.ndarray, std_a: np.ndarray,
                       mean_b: np.ndarray, std_b: np.ndarray, n_tiles: int,
-                      regularise: float = 1e-3) -> tuple[np.ndarray, np.ndarray]:
+                      regularise: float = 1e-3, *, eligible: np.ndarray | None = None,
+                      levels: np.ndarray | None = None,
+                      max_gain_change: float | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Return per-tile ``gain`` and ``offset`` that make overlapping tiles agree.
 
     Parameters
@@ -121,39 +114,99 @@ def solve_gain_offset(pairs: np.ndarray, mean_a: np.ndarray, std_a: np.ndarray,
     n_tiles : int
         Number of tiles.
     regularise : float
-        Weight of a weak pull toward ``gain = 1, offset = 0`` that fixes tiles
-        no pair reaches (and each disconnected group's scale).
+        Weight of the pull of every tile toward ``gain = 1, offset = 0`` (the
+        section's typical tile), relative to one pair's equations.
+    eligible : ndarray of bool, shape (n_tiles,), optional
+        Tiles that may take part (default all). The others (blank, saturated,
+        unplaced tiles) keep ``gain = 1, offset = 0`` and their pairs are left out,
+        so they can never anchor the solve.
+    levels : ndarray, shape (n_tiles,), optional
+        Each tile's typical raw grey (its median). When given, each connected
+        group's offsets are shifted so that the median of its corrected levels
+        equals the median of its raw ones: a group keeps its own raw intensity.
+    max_gain_change : float, optional
+        Gains are clipped to ``[1 / (1 + m), 1 + m]`` and offsets to ``m``
+        times the section's typical grey.
 
     Returns
     -------
     gain, offset : ndarray, shape (n_tiles,)
-        With the gauge ``mean(gain) = 1``, ``mean(offset) = 0``.
+        Within each group of tiles connected by pairs, ``mean(gain) = 1`` and
+        (without ``levels``) ``mean(offset) = 0``; a tile in no pair keeps
+        ``(1, 0)``.
 
     Notes
     -----
     For each pair, the corrected overlaps ``g * I + o`` should have equal
     spread and equal mean: ``g_a s_a = g_b s_b`` and ``g_a m_a + o_a = g_b m_b
     + o_b``. These equations are linear in ``(g, o)``; with the two gauge rows
-    they form one small sparse least-squares problem per section, solved by
-    LSQR (Paige & Saunders, ACM TOMS 8(1):43-71 (1982), doi:10.1145/355984.355989).
-    Rows are divided by the section's typical mean so that all are unitless.
+    of each connected group they form one small sparse least-squares problem
+    per group, solved by LSQR (Paige & Saunders, ACM TOMS 8(1):43-71 (1982),
+    doi:10.1145/355984.355989). Spread rows are divided by the pair's mean
+    spread and mean rows by the section's typical grey, so that every row is
+    unitless and of order one. Solving each group on its own, with its own
+    gauge, is what keeps groups that no accepted pair joins from being pushed
+    apart by the pull of a few tiles.
     """
     pairs = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)
     k = len(pairs)
     cols = [np.asarray(v, dtype=np.float64).reshape(-1) for v in (mean_a, std_a, mean_b, std_b)]
     if any(len(v) != k for v in cols):
         raise ValueError("mean and std arrays must have one entry per pair")
-    ma, sa, mb, sb = cols
     n = int(n_tiles)
-    scale = float(np.mean(np.r_[ma, mb])) if k else 1.0
+    ok = np.ones(n, bool) if eligible is None else np.asarray(eligible, bool).reshape(-1)
+    if len(ok) != n:
+        raise ValueError(f"eligible must have one entry per tile ({n}), got {len(ok)}")
+    if levels is not None and len(np.asarray(levels).reshape(-1)) != n:
+        raise ValueError(f"levels must have one entry per tile ({n})")
+    use = ok[pairs[:, 0]] & ok[pairs[:, 1]] if k else np.zeros(0, bool)
+    ma, sa, mb, sb = (v[use] for v in cols)
+    pairs = pairs[use]
+    scale = float(np.median(np.r_[ma, mb])) if len(pairs) else 1.0
+    if levels is not None and ok.any():
+        scale = float(np.median(np.asarray(levels, np.float64)[ok]))
     scale = scale if scale > 0 else 1.0
+    gain, offset = np.ones(n), np.zeros(n)
+    for members in _groups(n, pairs, ok):
+        if len(members) < 2:
+            continue
+        inside = np.isin(pairs[:, 0], members)
+        local = np.searchsorted(members, pairs[inside])
+        g, o = _solve_group(local, ma[inside], sa[inside], mb[inside], sb[inside], len(members),
+                            scale, regularise)
+        gain[members], offset[members] = g, o
+    if max_gain_change is not None:
+        m = float(max_gain_change)
+        gain = np.clip(gain, 1.0 / (1.0 + m), 1.0 + m)
+    if levels is not None:
+        lev = np.asarray(levels, np.float64).reshape(-1)
+        for members in _groups(n, pairs, ok):
+            shift = np.median(lev[members]) - np.median(gain[members] * lev[members] + offset[members])
+            offset[members] += shift
+    if max_gain_change is not None:
+        offset = np.clip(offset, -max_gain_change * scale, max_gain_change * scale)
+    offset[~ok] = 0.0
+    gain[~ok] = 1.0
+    return gain, offset
+
+
+def _groups(n: int, pairs: np.ndarray, ok: np.ndarray) -> list[np.ndarray]:
+    """Return the sorted tile indices of each group of eligible tiles connected by ``pairs``."""
+    graph = sp.coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
+    _, label = connected_components(graph, directed=False)
+    return [np.flatnonzero((label == c) & ok) for c in np.unique(label[ok])]
+
+
+def _solve_group(pairs, ma, sa, mb, sb, n, scale, regularise):
+    """Return gain and offset of one connected group (gauge: mean gain 1, mean offset 0)."""
+    k = len(pairs)
     a, b = pairs[:, 0], pairs[:, 1]
     r = np.arange(k)
-    g_of, o_of = (lambda i: i), (lambda i: n + i)
+    spread = np.maximum(0.5 * (sa + sb), 1e-12)
     rows = [r, r, k + r, k + r, k + r, k + r]
-    cidx = [g_of(a), g_of(b), g_of(a), g_of(b), o_of(a), o_of(b)]
-    vals = [sa / scale, -sb / scale, ma / scale, -mb / scale, np.full(k, 1 / scale), np.full(k, -1 / scale)]
-    # Gauge rows (strong) and the weak pull of every tile toward (1, 0).
+    cidx = [a, b, a, b, n + a, n + b]
+    vals = [sa / spread, -sb / spread, ma / scale, -mb / scale, np.full(k, 1 / scale), np.full(k, -1 / scale)]
+    # Gauge rows (strong) and the pull of every tile toward (1, 0).
     gauge_w = 10.0 * math.sqrt(max(k, 1))
     rows += [np.full(n, 2 * k), np.full(n, 2 * k + 1), 2 * k + 2 + np.arange(2 * n)]
     cidx += [np.arange(n), n + np.arange(n), np.arange(2 * n)]

@@ -50,7 +50,12 @@ def _clip(box, width: int, height: int) -> tuple[int, int, int, int]:
 
 def find_overlaps(positions: np.ndarray, sizes: np.ndarray, min_overlap: int,
                   margin: int = 0) -> list[Overlap]:
-    """Return every tile pair whose nominal footprints overlap by at least ``min_overlap`` px both ways.
+    """Return every tile pair whose footprints may overlap by at least ``min_overlap`` px both ways.
+
+    With stage errors the true overlap differs from the nominal one by up to
+    ``margin``; a pair counts when its nominal overlap, grown by ``margin``,
+    reaches ``min_overlap`` in both directions (a nominal overlap may then be
+    empty, its box inverted: the strips, grown by ``margin``, still hold it).
 
     Parameters
     ----------
@@ -89,7 +94,7 @@ def find_overlaps(positions: np.ndarray, sizes: np.ndarray, min_overlap: int,
         oy0 = np.maximum(lo[i, 1], lo[i + 1:, 1])
         ox1 = np.minimum(hi[i, 0], hi[i + 1:, 0])
         oy1 = np.minimum(hi[i, 1], hi[i + 1:, 1])
-        hit = np.flatnonzero((ox1 - ox0 >= min_overlap) & (oy1 - oy0 >= min_overlap))
+        hit = np.flatnonzero((ox1 - ox0 + margin >= min_overlap) & (oy1 - oy0 + margin >= min_overlap))
         for k in hit:
             j = i + 1 + int(k)
             box = np.array([ox0[k], oy0[k], ox1[k], oy1[k]])

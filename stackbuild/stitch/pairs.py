@@ -15,6 +15,9 @@ from .phasecorr import phase_correlate, taper_window
 MIN_SCORED = 8
 #: Width (pixels) of the cosine ramp at the edges of the coarse-pass strips.
 COARSE_TAPER = 12
+#: Search radius (pixels) per bin of the coarse pass, and the largest binning.
+COARSE_PIXELS_PER_BIN = 24
+MAX_COARSE_BIN = 4
 
 
 @dataclass
@@ -85,23 +88,38 @@ def ncc_after_shift(fixed: np.ndarray, moving: np.ndarray, shift_xy: tuple[float
     return (float((za * zb).sum()) / den if den > 0 else 0.0), fa, fb
 
 
-def _coarse_canvases(strip_a, strip_b, ov: Overlap, nominal) -> tuple[np.ndarray, np.ndarray]:
-    """Return both kept strips, tapered, on one zero canvas laid out in tile-a pixels.
+def coarse_bin(search: float) -> int:
+    """Return the binning of the coarse pass for a search radius of ``search`` pixels.
+
+    The coarse pass only needs the whole-pixel offset to within a few
+    pixels (the re-cut pass measures the rest at full resolution), so wide
+    searches run on binned strips: one bin per ``COARSE_PIXELS_PER_BIN``
+    pixels of search radius, at most ``MAX_COARSE_BIN``.
+    """
+    return int(max(1, min(MAX_COARSE_BIN, search // COARSE_PIXELS_PER_BIN)))
+
+
+def _coarse_canvases(strip_a, strip_b, ov: Overlap, nominal, binning: int = 1) -> tuple[np.ndarray, np.ndarray]:
+    """Return both kept strips, tapered, on one zero canvas laid out in tile-a pixels, binned by ``binning``.
 
     Each strip reaches ``margin`` pixels into its own tile beyond the
     nominal overlap, so whatever the stage error (up to the margin), the
-    whole true overlap is on both canvases.
+    whole true overlap is on both canvases. Binning averages ``binning``
+    x ``binning`` blocks (``cv2.resize`` with ``INTER_AREA``, exact block
+    means since the canvas is a whole number of blocks).
     """
     nx, ny = nominal
     pa, pb = ov.pad_a, (ov.pad_b[0] + nx, ov.pad_b[1] + ny, ov.pad_b[2] + nx, ov.pad_b[3] + ny)
     ux0, uy0 = min(pa[0], pb[0]), min(pa[1], pb[1])
-    w = scipy.fft.next_fast_len(max(pa[2], pb[2]) - ux0, real=True)
-    h = scipy.fft.next_fast_len(max(pa[3], pb[3]) - uy0, real=True)
+    w = binning * scipy.fft.next_fast_len(-(-(max(pa[2], pb[2]) - ux0) // binning), real=True)
+    h = binning * scipy.fft.next_fast_len(-(-(max(pa[3], pb[3]) - uy0) // binning), real=True)
     out = []
     for strip, p in ((strip_a, pa), (strip_b, pb)):
         c = np.zeros((h, w), np.float32)
         s = strip.astype(np.float32)
         c[p[1] - uy0:p[3] - uy0, p[0] - ux0:p[2] - ux0] = (s - s.mean()) * taper_window(*s.shape, COARSE_TAPER)
+        if binning > 1:
+            c = cv2.resize(c, (w // binning, h // binning), interpolation=cv2.INTER_AREA)
         out.append(c)
     return out[0], out[1]
 
@@ -119,7 +137,7 @@ def _true_box(d: np.ndarray, size_a: tuple[int, int], size_b: tuple[int, int], o
 
 def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
                   size_a: tuple[int, int], size_b: tuple[int, int], nominal: tuple[int, int],
-                  max_stage_error: float, upsample: int, min_ncc: float,
+                  search: float, upsample: int, min_ncc: float,
                   min_peak_margin: float, spectral_exponent: float = 1.0,
                   spectrum_sigma: float = 0.0) -> PairResult:
     """Return the measured offset of tile ``b`` relative to tile ``a`` and its confidence.
@@ -135,7 +153,11 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
         ``(width, height)`` of the two tiles.
     nominal : (int, int)
         Integer stage offset of ``b`` relative to ``a`` (``box_a - box_b``).
-    max_stage_error, upsample, min_ncc, min_peak_margin, spectral_exponent, spectrum_sigma
+    search : float
+        Largest difference (pixels, each axis) between the measured and the
+        nominal offset: twice the largest stage error, since both tiles may be
+        off, in opposite directions.
+    upsample, min_ncc, min_peak_margin, spectral_exponent, spectrum_sigma
         As in :class:`~stackbuild.stitch.settings.StitchSettings`.
 
     Returns
@@ -147,32 +169,40 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
     Notes
     -----
     Pass 1 correlates the two kept strips, each tapered and laid on a zero
-    canvas (integer peak, search bounded by ``max_stage_error``). The strips are then re-cut at the overlap implied
+    canvas and binned by :func:`coarse_bin` (integer peak, search bounded
+    by ``search``). The strips are then re-cut at the overlap implied
     by that estimate, so that both hold the same specimen area, and
     correlated again; the residual shift is now small, where the Hann
     window's bias is negligible. The peak ratio and NCC of the final pass
     decide acceptance.
     """
     nom = np.asarray(nominal, dtype=np.float64)
+    search = float(search)
     spectral = dict(spectral_exponent=spectral_exponent,
                     lowpass=spectrum_sigma if spectrum_sigma > 0 else None)
-    fa, fb = _coarse_canvases(strip_a, strip_b, ov, nominal)
-    (sx, sy), ratio = phase_correlate(fa, fb, upsample=1, max_shift=max_stage_error, window=False, **spectral)
-    d = nom - np.array([sx, sy])
-    if max(abs(sx), abs(sy)) >= max_stage_error - 1:
+    b = coarse_bin(search)
+    fa, fb = _coarse_canvases(strip_a, strip_b, ov, nominal, b)
+    # Low-pass on the binned canvases would cut b times more of the band; the bins already average noise.
+    (sx, sy), ratio = phase_correlate(fa, fb, upsample=1, max_shift=search / b, window=False,
+                                      spectral_exponent=spectral_exponent)
+    d = nom - b * np.array([sx, sy])
+    if max(abs(sx), abs(sy)) >= search / b - 1:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
-    for _ in range(3):
+    up = 1 if b > 1 else upsample  # a binned estimate is first brought to the whole pixel
+    for _ in range(4):
         di = np.round(d)
         x0, y0, x1, y1 = _true_box(di, size_a, size_b, ov)
         if min(x1 - x0, y1 - y0) < MIN_SCORED:
             return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "small_overlap")
         box_b = (x0 - int(di[0]), y0 - int(di[1]), x1 - int(di[0]), y1 - int(di[1]))
         ca, cb = _cut(strip_a, ov.pad_a, (x0, y0, x1, y1)), _cut(strip_b, ov.pad_b, box_b)
-        (sx, sy), ratio = phase_correlate(ca, cb, upsample=upsample, max_shift=max_stage_error, **spectral)
+        (sx, sy), ratio = phase_correlate(ca, cb, upsample=up, max_shift=2 * b + 2, **spectral)
         d = di - np.array([sx, sy])
-        if max(abs(sx), abs(sy)) <= 1.0:
+        if max(abs(sx), abs(sy)) <= 1.0 and up == upsample:
             break
-    if np.max(np.abs(d - nom)) > max_stage_error:
+        if max(abs(sx), abs(sy)) <= 1.0:
+            up = upsample
+    if np.max(np.abs(d - nom)) > search:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
     ncc, ia, ib = ncc_after_shift(ca, cb, (sx, sy))
     reason = "weak_peak" if ratio < min_peak_margin else ("low_ncc" if ncc < min_ncc else "")

@@ -46,7 +46,7 @@ def _solve(pairs, shifts, weights, stage, prior_weight):
 
 def solve_translations(pairs: np.ndarray, shifts: np.ndarray, weights: np.ndarray,
                        stage: np.ndarray, prior_weight: float = 1e-3,
-                       max_residual: float = 1.5, max_rounds: int = 20) -> Placement:
+                       max_residual: float = 1.5, max_rounds: int | None = None) -> Placement:
     """Return tile positions that best agree with the pair shifts, rejecting pairs that disagree.
 
     Parameters
@@ -64,10 +64,10 @@ def solve_translations(pairs: np.ndarray, shifts: np.ndarray, weights: np.ndarra
     prior_weight : float
         Weight of the stage prior relative to a pair of weight 1 (> 0).
     max_residual : float
-        After each solve, pairs with a residual above this (pixels) and above
-        half the worst residual are dropped, and the solve is repeated.
-    max_rounds : int
-        Upper bound on the number of solves.
+        After each solve, the pair with the largest residual is dropped if
+        that residual exceeds this (pixels), and the solve is repeated.
+    max_rounds : int, optional
+        Upper bound on the number of solves (default: one per pair, plus one).
 
     Returns
     -------
@@ -80,8 +80,10 @@ def solve_translations(pairs: np.ndarray, shifts: np.ndarray, weights: np.ndarra
     signed pair-tile incidence matrix, a weighted graph Laplacian plus a
     ridge) is sparse, symmetric positive definite, and solved directly with
     ``scipy.sparse.linalg.spsolve`` for both coordinates at once. Dropping
-    the worst pairs and solving again is the usual iteratively re-weighted
-    outlier rejection (common practice, no source).
+    the worst pair and solving again is the usual iterative outlier
+    rejection (common practice, no source); one pair per round, because one
+    wrong pair in a loop of pairs spreads part of its error onto the good
+    ones, and dropping all pairs near the worst would drop those too.
     """
     pairs = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)
     shifts = np.asarray(shifts, dtype=np.float64).reshape(-1, 2)
@@ -97,14 +99,15 @@ def solve_translations(pairs: np.ndarray, shifts: np.ndarray, weights: np.ndarra
         raise ValueError(f"prior_weight must be > 0, got {prior_weight}")
     kept = np.ones(len(pairs), dtype=bool)
     rounds = 0
+    max_rounds = len(pairs) + 1 if max_rounds is None else max_rounds
     while True:
         rounds += 1
         pos = _solve(pairs[kept], shifts[kept], weights[kept], stage, prior_weight)
         res = np.hypot(*(pos[pairs[:, 1]] - pos[pairs[:, 0]] - shifts).T) if len(pairs) else np.zeros(0)
         if not kept.any() or rounds >= max_rounds:
             break
-        worst = res[kept].max()
-        if worst <= max_residual:
+        worst = int(np.flatnonzero(kept)[np.argmax(res[kept])])
+        if res[worst] <= max_residual:
             break
-        kept &= ~(res > max(max_residual, 0.5 * worst))
+        kept[worst] = False
     return Placement(pos, kept, res, rounds)

@@ -1,4 +1,4 @@
-"""Stitch one section: read tiles once, register overlapping pairs, place tiles, correct intensity."""
+"""Stitch one section: stream tiles and pairs, place tiles, correct intensity."""
 from __future__ import annotations
 
 import math
@@ -8,100 +8,42 @@ import numpy as np
 
 from ..errors import InputError
 from ..manifest import TileEntry
-from ..tiles import read_tile as read_raw_tile
 from ..transforms.records import PairMatch, SectionStitch, TilePlacement
-from .inspect import flag_tiles, tile_stats
-from .intensity import (illumination_at_tile_size, illumination_profile, solve_gain_offset,
-                        tile_thumbnail)
+from .inspect import flag_tiles
+from .intensity import solve_gain_offset
 from .overlaps import Overlap, find_overlaps, neighbours
-from .pairs import PairResult, register_pair
+from .pairs import PairResult
 from .placement import solve_translations
 from .settings import StitchSettings, check_settings
+from .stream import read_tile, reading_order, sample_profile, stream_pairs
 
-#: Fewest specimen tiles from which an illumination profile is estimated.
-MIN_ILLUMINATION_TILES = 3
+__all__ = ["check_settings", "read_tile", "stitch_section"]
 
-
-def read_tile(entry: TileEntry, section: int) -> np.ndarray:
-    """Return the pixels of one tile, checked against the shape and type its manifest header gave."""
-    where = f" (manifest line {entry.row})" if entry.row else ""
-    return read_raw_tile(entry.path, entry.height, entry.width, section, dtype=entry.dtype,
-                         what=f"tile {entry.tile!r}{where}", source="header")
+#: Tile flags that keep a tile out of the gain/offset solve (it keeps its raw intensity).
+NO_INTENSITY_ANCHOR = frozenset({"blank", "saturated", "unplaced"})
 
 
-def _slice(box):
-    x0, y0, x1, y1 = box
-    return np.s_[y0:y1, x0:x1]
-
-
-def _read_all(tiles, overlaps, settings, section):
-    """Read each tile once; keep its stats, its thumbnail and the strips its pairs need."""
-    wanted: list[list[tuple[int, int]]] = [[] for _ in tiles]
-    for k, ov in enumerate(overlaps):
-        wanted[ov.a].append((k, 0))
-        wanted[ov.b].append((k, 1))
-    stats, thumbs, strips = [], [], {}
-    for i, t in enumerate(tiles):
-        img = read_tile(t, section)
-        stats.append(tile_stats(img))
-        thumbs.append(tile_thumbnail(img, settings.illumination_step)
-                      if settings.illumination and img.any() else None)
-        for k, side in wanted[i]:
-            pad = overlaps[k].pad_a if side == 0 else overlaps[k].pad_b
-            strips[k, side] = img[_slice(pad)].copy()
-    return stats, thumbs, strips
-
-
-def _profile(tiles, thumbs, flags, settings):
-    """Return the illumination profile (or None) and the section flags it raises."""
-    if not settings.illumination:
-        return None, []
-    shape = (tiles[0].height, tiles[0].width)
-    use = [th for t, th, f in zip(tiles, thumbs, flags)
-           if th is not None and (t.height, t.width) == shape and not {"blank", "saturated"} & set(f)]
-    if len(use) < MIN_ILLUMINATION_TILES:
-        return None, ["illumination_too_few_tiles"]
-    return illumination_profile(np.stack(use)), []
-
-
-def _register(tiles, overlaps, strips, flags, profile, settings) -> list[PairResult]:
-    illum: dict[tuple[int, int], np.ndarray] = {}
-
-    def corrected(k: int, side: int) -> np.ndarray:
-        ov = overlaps[k]
-        t = tiles[ov.a if side == 0 else ov.b]
-        raw = strips.pop((k, side)).astype(np.float32)
-        if profile is None:
-            return raw
-        if (t.height, t.width) not in illum:
-            illum[t.height, t.width] = illumination_at_tile_size(profile, t.height, t.width)
-        return raw / illum[t.height, t.width][_slice(ov.pad_a if side == 0 else ov.pad_b)]
-
-    out = []
-    for k, ov in enumerate(overlaps):
-        a, b = tiles[ov.a], tiles[ov.b]
-        if "blank" in flags[ov.a] or "blank" in flags[ov.b]:
-            strips.pop((k, 0)), strips.pop((k, 1))
-            out.append(PairResult(b.x - a.x, b.y - a.y, 0.0, 0.0, "blank_tile"))
-            continue
-        nominal = (ov.box_a[0] - ov.box_b[0], ov.box_a[1] - ov.box_b[1])
-        out.append(register_pair(corrected(k, 0), corrected(k, 1), ov, (a.width, a.height),
-                                 (b.width, b.height), nominal, settings.max_stage_error,
-                                 settings.upsample, settings.min_ncc, settings.min_peak_margin,
-                                 settings.spectral_exponent, settings.spectrum_sigma))
-    return out
+#: Peak ratio from which a pair counts as fully distinct (ratios from 1 up to it ramp its weight).
+CLEAR_PEAK_RATIO = 2.5
 
 
 def _pair_weights(results: list[PairResult]) -> np.ndarray:
-    """Return each pair's weight: its scored overlap area over the median area of scored pairs.
+    """Return each pair's weight: scored overlap area over the median area, times its peak confidence.
 
     The variance of a correlation shift estimate falls about as one over the
     number of pixels compared (common practice, no source), so area is the
-    inverse-variance weight up to a constant.
+    inverse-variance weight up to a constant. The confidence
+    ``clip((ratio - 1) / (CLEAR_PEAK_RATIO - 1), 0.02, 1) ** 2`` makes a
+    barely distinct peak (a periodic texture, a near-blank overlap) count
+    little, so that in a loop of pairs that disagree the solve puts the
+    disagreement on it and the outlier rejection drops it rather than a good
+    pair (common practice, no source).
     """
     area = np.array([max(r.area, 0) for r in results], dtype=np.float64)
     ref = float(np.median(area[area > 0])) if (area > 0).any() else 1.0
-    return np.maximum(area / ref, 1e-3)
+    ratio = np.array([r.peak_ratio for r in results], dtype=np.float64)
+    confidence = np.clip((ratio - 1.0) / (CLEAR_PEAK_RATIO - 1.0), 0.02, 1.0) ** 2
+    return np.maximum(area / ref * confidence, 1e-4)
 
 
 def _place_unplaced(pos, stage, placed, near):
@@ -155,20 +97,29 @@ def stitch_section(tiles: list[TileEntry], settings: StitchSettings, section: in
 
     Notes
     -----
-    Each tile is read once; only its statistics, a thumbnail and the
-    overlap strips its pairs need are kept, so memory is about the strips of
-    one section, not its tiles.
+    Tiles are streamed (:mod:`stackbuild.stitch.stream`): each is read once
+    for the pairs (plus at most ``MAX_PROFILE_TILES`` once more for the
+    illumination profile), each pair is registered as soon as its second
+    tile is read and its strips dropped, so a task's memory does not grow
+    with the number of tiles in the section. Tiles stored with lossy
+    compression are flagged ``lossy_compression`` (section flag ``lossy_tiles``).
     """
     if not tiles:
         raise InputError("section has no tiles", section=section)
     check_settings(settings)
     stage = np.array([(t.x, t.y) for t in tiles], dtype=np.float64)
     sizes = np.array([(t.width, t.height) for t in tiles], dtype=np.int64)
-    overlaps = find_overlaps(stage, sizes, settings.min_overlap, math.ceil(settings.max_stage_error))
-    stats, thumbs, strips = _read_all(tiles, overlaps, settings, section)
-    flags = flag_tiles(stats, settings.blank_std, settings.focus_min, settings.saturated_max)
-    profile, sec_flags = _profile(tiles, thumbs, flags, settings)
-    results = _register(tiles, overlaps, strips, flags, profile, settings)
+    overlaps = find_overlaps(stage, sizes, settings.min_overlap, math.ceil(2 * settings.max_stage_error))
+    order = reading_order(stage, sizes)
+    cache: dict = {}
+    profile, sec_flags = sample_profile(tiles, order, settings, section, cache)
+    results, stats, lossy = stream_pairs(tiles, overlaps, order, profile, settings, section, cache)
+    flags = flag_tiles(stats, settings.blank_contrast_to_noise, settings.focus_min, settings.saturated_max)
+    for f, name in zip(flags, lossy):
+        if name:
+            f.append("lossy_compression")
+    if any(lossy):
+        sec_flags = [*sec_flags, "lossy_tiles"]
     return _assemble(tiles, section, settings, stage, overlaps, results, stats, flags, profile, sec_flags)
 
 
@@ -205,8 +156,11 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
     gain, offset = np.ones(n), np.zeros(n)
     if settings.intensity and kept.any():
         kr = [results[k] for k in np.flatnonzero(kept)]
-        gain, offset = solve_gain_offset(pairs[kept], [r.mean_a for r in kr], [r.std_a for r in kr],
-                                         [r.mean_b for r in kr], [r.std_b for r in kr], n)
+        eligible = np.array([not NO_INTENSITY_ANCHOR & set(f) for f in flags], bool)
+        gain, offset = solve_gain_offset(
+            pairs[kept], [r.mean_a for r in kr], [r.std_a for r in kr], [r.mean_b for r in kr],
+            [r.std_b for r in kr], n, settings.intensity_pull, eligible=eligible,
+            levels=np.array([st["median"] for st in stats]), max_gain_change=settings.max_gain_change)
     placements = []
     for i, t in enumerate(tiles):
         mine = kept & ((pairs[:, 0] == i) | (pairs[:, 1] == i)) if len(pairs) else np.zeros(0, bool)

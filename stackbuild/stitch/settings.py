@@ -13,10 +13,13 @@ class StitchSettings:
     Attributes
     ----------
     max_stage_error : float
-        Largest expected error of a stage position, pixels; bounds the
-        phase-correlation search and rejects shifts farther than this.
+        Largest expected error of one tile's stage position, pixels (each
+        axis). Two neighbours may be off in opposite directions, so a pair's
+        offset is searched up to twice this from its nominal value, and
+        tiles are paired when their footprints could overlap that far.
     min_overlap : int
-        Pairs whose nominal overlap is narrower than this (pixels) are skipped.
+        Pairs whose overlap, even at the most favourable stage error, is
+        narrower than this (pixels) are skipped.
     min_ncc : float
         Pairs whose normalised cross-correlation after the shift is lower are rejected.
     min_peak_margin : float
@@ -42,16 +45,26 @@ class StitchSettings:
         pixels (shape ``ceil(h / step) x ceil(w / step)``).
     intensity : bool
         Solve per-tile gain and offset from the overlaps.
-    blank_std : float
-        Tiles whose robust contrast (grey levels, 8-bit scale) is below this are flagged blank.
+    blank_contrast_to_noise : float
+        Tiles whose structure contrast (robust spread of 8-pixel block means)
+        is less than this many times the noise left in such a block mean (the
+        tile's own pixel noise / 8) are flagged blank; pure noise gives about 1.
+        Independent of bit depth and grey-level range.
     focus_min : float
         Tiles whose focus measure (variance of the Laplacian, relative to the section median)
         is below this are flagged out of focus.
     saturated_max : float
-        Tiles with a larger fraction of saturated (or zero) pixels are flagged.
+        Tiles with a larger fraction of pixels piled up at their highest (or
+        lowest) value are flagged saturated.
+    max_gain_change : float
+        Solved tile gains are kept within ``[1 / (1 + m), 1 + m]`` of the
+        section's typical tile, and offsets within ``m`` times its median grey.
+    intensity_pull : float
+        Weight of the pull of each tile's gain and offset toward the section's
+        typical tile (gain 1, offset 0), relative to one pair's equations.
     """
 
-    max_stage_error: float = 40.0
+    max_stage_error: float = 50.0
     min_overlap: int = 16
     min_ncc: float = 0.3
     min_peak_margin: float = 1.3
@@ -63,9 +76,11 @@ class StitchSettings:
     illumination: bool = True
     illumination_step: int = 16
     intensity: bool = True
-    blank_std: float = 2.0
+    blank_contrast_to_noise: float = 3.0
     focus_min: float = 0.2
     saturated_max: float = 0.05
+    max_gain_change: float = 0.3
+    intensity_pull: float = 0.05
 
 
 def check_settings(s: StitchSettings) -> None:
@@ -76,6 +91,9 @@ def check_settings(s: StitchSettings) -> None:
         ("max_residual", s.max_residual > 0, "> 0"), ("illumination_step", s.illumination_step >= 1, ">= 1"),
         ("spectral_exponent", 0 <= s.spectral_exponent <= 1, "between 0 and 1"),
         ("spectrum_sigma", s.spectrum_sigma >= 0, ">= 0"),
+        ("blank_contrast_to_noise", s.blank_contrast_to_noise >= 0, ">= 0"),
+        ("max_gain_change", s.max_gain_change > 0, "> 0"),
+        ("intensity_pull", s.intensity_pull > 0, "> 0"),
     ]
     for key, ok, want in rules:
         if not ok:

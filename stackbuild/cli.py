@@ -1,7 +1,8 @@
 """Command line: argument parsing only; every command calls stage functions.
 
 Exit status: 0 success, 2 bad input (one line naming the file, row or
-section), 3 the report missed a ``--fail-on`` bar, 1 an unexpected error.
+section), 3 the report missed a ``--fail-on`` bar, 4 ``audit`` found stale or damaged planes,
+1 an unexpected error.
 """
 from __future__ import annotations
 
@@ -17,7 +18,7 @@ from . import __version__
 from .errors import InputError
 from .run.lock import build_lock
 
-EXIT_OK, EXIT_ERROR, EXIT_INPUT, EXIT_FAILED_BAR = 0, 1, 2, 3
+EXIT_OK, EXIT_ERROR, EXIT_INPUT, EXIT_FAILED_BAR, EXIT_STALE = 0, 1, 2, 3, 4
 
 
 # ------------------------------------------------------------------ options
@@ -152,6 +153,19 @@ def _add_stages(sub) -> None:
     _add_cluster(u)
     _add_common(u)
 
+    k = sub.add_parser("audit", help="check that the volume matches its transforms and every chunk decodes",
+                       description="Compare every written plane (EM and markers) with the transform records "
+                                   "and settings it would be rendered from now, and decode every chunk of "
+                                   "every level; list what is stale or damaged and exit with status 4 if "
+                                   "anything is. Damaged planes are noted so that 'render --resume' renders "
+                                   "them again, as it does stale ones.")
+    k.add_argument("dir", metavar="DIR", help="build folder")
+    k.add_argument("--fingerprints-only", action="store_true",
+                   help="only compare fingerprints; do not read the pixels (fast)")
+    _add_cluster(k)
+    _add_common(k)
+
+
 
 def _add_synth(sub) -> None:
     from .synth import SynthParams
@@ -269,7 +283,8 @@ def _cmd_render(args) -> int:
     with dask_client(args.workers, args.scheduler):
         stages.render_stage(build, planes=args.planes, resume=args.resume, overwrite=args.overwrite,
                             progress=ProgressBar("render", not args.quiet))
-        stages.render_channels_stage(build, progress=ProgressBar("markers", not args.quiet))
+        stages.render_channels_stage(build, overwrite=args.overwrite,
+                                     progress=ProgressBar("markers", not args.quiet))
     _say(f"volume: {build.volume_path}")
     return EXIT_OK
 
@@ -288,6 +303,32 @@ def _cmd_report(args) -> int:
     verdict = stages.report_stage(build, fail_on=args.fail_on, progress=ProgressBar("report", not args.quiet))
     _say(f"report: {build.report_path}")
     return _verdict_status(verdict, args.fail_on)
+
+
+def _cmd_audit(args) -> int:
+    from .render.audit import audit_volume
+    from .run.cluster import client_mapper, dask_client
+    from .run.progress import ProgressBar
+
+    build = _open_build(args.dir)
+    if args.fingerprints_only:
+        report = audit_volume(build, pixels=False)
+    else:
+        with dask_client(args.workers, args.scheduler) as client:
+            report = audit_volume(build, mapper=client_mapper(client, ProgressBar("audit", not args.quiet)))
+    for pyr in report.unrecorded:
+        print(f"stackbuild: volume.zarr/{pyr} has no plane record (rendered by an older stackbuild)",
+              file=sys.stderr)
+    for f in report.findings:
+        print(f.line())
+    read = "" if args.fingerprints_only else f", {report.chunks} chunks decoded"
+    if report.ok:
+        _say(f"volume matches its transforms: {report.planes} planes checked{read}")
+        return EXIT_OK
+    planes = len({(f.pyramid, f.plane) for f in report.findings})
+    print(f"stackbuild: {planes} plane(s) stale or damaged; 'stackbuild render {args.dir} --resume' "
+          "renders exactly these again", file=sys.stderr)
+    return EXIT_STALE
 
 
 def _cmd_update(args) -> int:
@@ -330,7 +371,8 @@ def _say(text: str) -> None:
 
 COMMANDS = {"build": _cmd_build, "stitch": _cmd_stitch, "align": _cmd_align, "channels": _cmd_channels,
             "render": _cmd_render,
-            "report": _cmd_report, "update": _cmd_update, "synth": _cmd_synth}
+            "report": _cmd_report, "update": _cmd_update, "synth": _cmd_synth,
+            "audit": _cmd_audit}
 
 
 def main(argv: list[str] | None = None) -> int:

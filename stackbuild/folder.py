@@ -104,6 +104,11 @@ class BuildFolder:
         """``DIR/manifests/tiles.NNNN.csv``, the ``n``-th tile manifest merged by ``update``."""
         return self.manifests_dir / f"tiles.{int(n):04d}.csv"
 
+    @property
+    def incoming_dir(self) -> Path:
+        """``DIR/.render-incoming``: pyramids rendered to replace others, swapped in when complete."""
+        return self.root / ".render-incoming"
+
     def scratch_dir(self, stage: str) -> Path:
         """``DIR/scratch/<stage>``: a stage's temporary files (the stage removes them)."""
         return self.root / "scratch" / stage

@@ -34,6 +34,8 @@ from ..manifest import image_header
 from ..folder import BuildFolder
 from ..render.ngff import multiscales_attrs, root_attrs
 from ..render.reduce import level_shapes, reduce2x2, reduced_size
+from ..render.fingerprint import channel_fingerprints, read_plane_record, write_plane_record
+from ..render.swap import incoming_path, swap_in
 from ..render.settings import check_settings
 from ..transforms.records import Canvas, SectionAlignment
 from .stage import DOC_KIND, channel_affine
@@ -112,10 +114,18 @@ def _level0_shape(canvas: Canvas, level: int) -> tuple[int, int]:
     return h, w
 
 
-def _write_channel(folder, name, recs, canvas, settings, progress, done_before, total) -> dict:
-    """Write one channel's pyramid; return its facts."""
-    pixel_sizes = {r["pixel_size_nm"] for r in recs.values()}
-    level = channel_level(min(pixel_sizes), canvas.pixel_size_nm)
+def channel_records(folder: BuildFolder, name: str, canvas: Canvas) -> tuple[int, dict[int, dict]]:
+    """Return ``(level, {section: record})`` of channel ``name``: its EM level and its registrations."""
+    recs = _channel_table(folder).get(name, {})
+    if not recs:
+        return 0, {}
+    return channel_level(min(r["pixel_size_nm"] for r in recs.values()), canvas.pixel_size_nm), recs
+
+
+def _write_channel(folder, name, recs, canvas, settings, progress, done_before, total,
+                   overwrite: bool = False) -> dict:
+    """Write the stale planes of one channel's pyramid (all of them into a new pyramid if its layout changed)."""
+    level, _ = channel_records(folder, name, canvas)
     shapes = level_shapes(*_level0_shape(canvas, level), settings.chunk)
     dtypes = [np.dtype(image_header(Path(r["path"]))[2]) for r in recs.values()]
     dtype = np.result_type(*dtypes)
@@ -128,35 +138,71 @@ def _write_channel(folder, name, recs, canvas, settings, progress, done_before, 
              "source": "resampled from marker images through stored channel -> section -> aligned maps"}
     attrs = {"ome": em_levels["ome"], "stackbuild": extra}
     path = folder.pyramid_path(name)
-    shutil.rmtree(path, ignore_errors=True)
-    group = zarr.open_group(str(path), mode="w", zarr_format=3, attributes=attrs)
-    arrays = []
-    for n, (h, w) in enumerate(shapes):
-        shards = None if settings.shard == 1 else (1, settings.chunk * settings.shard, settings.chunk * settings.shard)
-        arrays.append(group.create_array(str(n), shape=(canvas.depth, h, w), dtype=dtype,
-                                         chunks=(1, settings.chunk, settings.chunk), shards=shards,
-                                         compressors=_compressors(settings), fill_value=0,
-                                         dimension_names=["z", "y", "x"]))
+    stamp = {"shapes": [[canvas.depth, h, w] for h, w in shapes], "dtype": dtype.name, "level": level,
+             "chunk": settings.chunk, "shard": settings.shard, "codec": settings.codec, "clevel": settings.clevel}
+    fps = channel_fingerprints(folder.store, canvas, settings, name, level, recs)
+    doc = read_plane_record(path)
+    fresh = overwrite or doc is None or doc.get("stamp") != stamp or not (path / "zarr.json").exists()
+    target = incoming_path(folder, f"channels/{name}") if fresh and (path / "zarr.json").exists() else path
+    if fresh:
+        shutil.rmtree(target, ignore_errors=True)
+        group = zarr.open_group(str(target), mode="w", zarr_format=3, attributes=attrs)
+        arrays = []
+        for n, (h, w) in enumerate(shapes):
+            shards = None if settings.shard == 1 else (1, settings.chunk * settings.shard,
+                                                        settings.chunk * settings.shard)
+            arrays.append(group.create_array(str(n), shape=(canvas.depth, h, w), dtype=dtype,
+                                             chunks=(1, settings.chunk, settings.chunk), shards=shards,
+                                             compressors=_compressors(settings), fill_value=0,
+                                             dimension_names=["z", "y", "x"]))
+        done, damaged = {}, {}
+        todo = list(range(canvas.depth))
+    else:
+        group = zarr.open_group(str(target), mode="r+")
+        group.update_attributes(attrs)
+        arrays = [group[str(n)] for n in range(len(shapes))]
+        todo = [z for z in range(canvas.depth) if str(z) in doc["damaged"]
+                or doc["fingerprints"].get(str(z)) != fps[z]]
+        done = {int(z): fp for z, fp in doc["fingerprints"].items() if int(z) not in set(todo)}
+        damaged = {k: v for k, v in doc["damaged"].items() if int(k) not in set(todo)}
+    write_plane_record(target, stamp, done, damaged)
     info = np.iinfo(dtype)
-    for i, (s, rec) in enumerate(sorted(recs.items())):
-        z = s - canvas.first_section
-        if {"blank", "too_small"} & set(rec["flags"]) or not 0 <= z < canvas.depth:
-            continue
-        alignment = folder.store.load_alignment(s)
-        img = resample_channel(tifffile.imread(rec["path"]), channel_affine(rec).inverse(), alignment,
-                               canvas, level, shapes[0])
-        plane = np.clip(np.rint(img), info.min, info.max).astype(dtype)
-        for n, arr in enumerate(arrays):
-            if n:
-                plane = reduce2x2(plane, settings.reducer)
-            arr[z] = plane
-        if progress is not None:
-            progress(done_before + i + 1, total)
+    for i, z in enumerate(todo):
+        s = canvas.first_section + z
+        rec = recs.get(s)
+        if rec is None or {"blank", "too_small"} & set(rec["flags"]):
+            if not fresh:  # a new array already reads as zeros
+                for n, arr in enumerate(arrays):
+                    arr[z] = np.zeros(shapes[n], dtype)
+        else:
+            alignment = folder.store.load_alignment(s)
+            img = resample_channel(read_marker(rec["path"], s), channel_affine(rec).inverse(), alignment,
+                                   canvas, level, shapes[0])
+            plane = np.clip(np.rint(img), info.min, info.max).astype(dtype)
+            for n, arr in enumerate(arrays):
+                if n:
+                    plane = reduce2x2(plane, settings.reducer)
+                arr[z] = plane
+        done[z] = fps[z]
+        write_plane_record(target, stamp, done, damaged)
+    if progress is not None:
+        progress(done_before + 1, total)
+    if target != path:
+        swap_in(folder, f"channels/{name}")
     return {"path": str(path), "em_level": level, "levels": [(canvas.depth, h, w) for h, w in shapes],
-            "sections": sorted(recs), "dtype": dtype.name}
+            "sections": sorted(recs), "dtype": dtype.name, "planes": todo}
 
 
-def render_channels(build_dir, render_settings, *, progress=None) -> dict:
+def read_marker(path: str, section: int) -> np.ndarray:
+    """Return a marker image's pixels, or raise :class:`InputError` naming it."""
+    try:
+        return tifffile.imread(path, key=0)
+    except Exception as exc:  # tifffile and the codecs raise many exception types
+        raise InputError(f"cannot read the marker image: {type(exc).__name__}: {exc}", file=path,
+                         section=section) from None
+
+
+def render_channels(build_dir, render_settings, *, overwrite: bool = False, progress=None) -> dict:
     """Write every registered marker channel of a build as OME-Zarr 0.5 beside the EM; return facts.
 
     Parameters
@@ -166,18 +212,24 @@ def render_channels(build_dir, render_settings, *, progress=None) -> dict:
         (the render stage) are needed.
     render_settings : RenderSettings
         Chunk, shard, codec and reducer, the same as the EM's.
+    overwrite : bool
+        Render every plane into new pyramids and swap them in when complete. Without
+        it only stale planes are rendered (see :mod:`stackbuild.render.fingerprint`),
+        and a pyramid whose layout changed is rendered anew and swapped in.
     progress : callable(done, total), optional
-        Called after each resampled plane.
+        Called after each channel.
 
     Returns
     -------
     dict
-        ``channels``: ``name -> {"path", "em_level", "levels", "sections", "dtype"}``; ``seconds``.
+        ``channels``: ``name -> {"path", "em_level", "levels", "sections", "dtype", "planes"}``
+        (``planes``: those written); ``seconds``.
 
     Raises
     ------
     InputError
-        If the render stage has not stored a canvas yet.
+        If the render stage has not stored a canvas yet, or a marker image is gone or
+        unreadable (checked for every channel before anything is written).
     """
     t0 = time.perf_counter()
     check_settings(render_settings)
@@ -187,14 +239,18 @@ def render_channels(build_dir, render_settings, *, progress=None) -> dict:
         raise InputError("no canvas stored; run the render stage before rendering channels",
                          file=folder.store.root)
     table = _channel_table(folder)
+    for name, recs in table.items():  # every input checked before any output is touched
+        for s, rec in recs.items():
+            if not {"blank", "too_small"} & set(rec["flags"]):
+                image_header(Path(rec["path"]))
     zarr.open_group(str(folder.volume_path), mode="a", zarr_format=3).update_attributes(root_attrs())
     if table:
         zarr.open_group(str(folder.channels_path), mode="a", zarr_format=3)
-    total = sum(len(v) for v in table.values())
+    total = len(table)
     if progress is not None:
         progress(0, total)
-    facts, done = {}, 0
-    for name, recs in sorted(table.items()):
-        facts[name] = _write_channel(folder, name, recs, canvas, render_settings, progress, done, total)
-        done += len(recs)
+    facts = {}
+    for k, (name, recs) in enumerate(sorted(table.items())):
+        facts[name] = _write_channel(folder, name, recs, canvas, render_settings, progress, k, total,
+                                     overwrite=overwrite)
     return {"channels": facts, "seconds": time.perf_counter() - t0}

@@ -87,30 +87,34 @@ def channels_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
     return result
 
 
-def render_channels_stage(build: BuildFolder, *, progress=None) -> dict:
-    """Write each marker channel's pyramid beside the EM, in the same physical space."""
+def render_channels_stage(build: BuildFolder, *, overwrite: bool = False, progress=None) -> dict:
+    """Write each marker channel's pyramid beside the EM, in the same physical space (stale planes only, unless ``overwrite``)."""
     from ..channels.render import render_channels
 
     if not build.load_state().get("channels"):
         return {}
-    return render_channels(build.root, build.config.render, progress=progress)
+    return render_channels(build.root, build.config.render, overwrite=overwrite, progress=progress)
 
 
 def render_stage(build: BuildFolder, *, planes: list[int] | None = None, resume: bool = False,
                  overwrite: bool = False, progress=None) -> dict:
     """Write the OME-Zarr pyramid from the raw tiles and the stored transforms.
 
-    With ``resume``, a finished render is kept and an interrupted one continues
-    with the planes not written yet.
+    With ``resume``, only the stale planes are rendered (never written, rendered
+    from other transforms or settings, or found damaged by ``stackbuild audit``);
+    nothing when there are none. The stage is marked running only once every check
+    has passed, so a refused render leaves ``build.json`` as it was.
     """
-    from ..render.write import render_volume
+    from ..render.write import prepare_render, write_render
 
-    if resume and planes is None and build.stage_done("render"):
-        return {"planes": [], "skipped": "finished"}
+    job = prepare_render(build.root, build.config.render, planes=planes, overwrite=overwrite, resume=resume)
+    if not job.todo and not job.overwrite:
+        if not build.stage_done("render"):
+            build.mark_stage("render", "done", seconds=0.0, planes=0)
+        return {"planes": [], "skipped": "every plane matches its transforms"}
     build.mark_stage("render", "running")
     t0 = time.monotonic()
-    facts = render_volume(build.root, build.config.render, planes=planes, overwrite=overwrite,
-                          progress=progress)
+    facts = write_render(job, progress=progress)
     build.mark_stage("render", "done", seconds=round(time.monotonic() - t0, 2),
                      planes=len(facts.get("planes", [])))
     return facts

@@ -1,0 +1,158 @@
+"""The volume check: does every plane match its transforms, and can every chunk be decoded?
+
+For each pyramid of ``volume.zarr`` (``em`` and every marker channel) the check
+compares each plane's recorded fingerprint with the one the current
+transform records and settings give (:mod:`stackbuild.render.fingerprint`),
+and decodes every chunk of every level, one task per pyramid, level and plane.
+Planes with a chunk that cannot be decoded are noted as damaged in the
+pyramid's plane record, so that ``render --resume`` renders them again.
+
+What one task holds: one plane of one level, read chunk by chunk (one
+``chunk x chunk`` block at a time).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import zarr
+
+from ..errors import InputError
+from .fingerprint import current_fingerprints, forget_planes, read_plane_record
+
+
+@dataclass(frozen=True)
+class _PlaneJob:
+    array: str          # path of the level array
+    label: str          # how the array is named in messages, e.g. "volume.zarr/em/0"
+    z: int
+
+
+@dataclass
+class Finding:
+    """One stale or damaged plane."""
+
+    pyramid: str        # "em" or "channels/<name>"
+    plane: int
+    kind: str           # "stale" or "damaged"
+    detail: str
+
+    def line(self) -> str:
+        """Return the finding as one line."""
+        return f"{self.kind}: volume.zarr/{self.pyramid} plane {self.plane}: {self.detail}"
+
+
+@dataclass
+class AuditReport:
+    """What the volume check found."""
+
+    planes: int = 0
+    chunks: int = 0
+    findings: list[Finding] = field(default_factory=list)
+    unrecorded: list[str] = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        """True when nothing is stale or damaged."""
+        return not self.findings
+
+
+def check_plane(job: _PlaneJob) -> tuple[int, list[str]]:
+    """Decode every chunk of one plane of one level array; return ``(chunks read, problems)`` (runs on a worker)."""
+    try:
+        arr = zarr.open_array(job.array, mode="r")
+    except Exception as exc:  # unreadable metadata: zarr and the JSON parser raise many types
+        return 0, [f"{job.label}: array metadata unreadable ({type(exc).__name__}: {exc})"]
+    _, h, w = arr.shape
+    _, ch, cw = arr.chunks
+    problems, n = [], 0
+    for i, y0 in enumerate(range(0, h, ch)):
+        for j, x0 in enumerate(range(0, w, cw)):
+            n += 1
+            try:
+                arr[job.z, y0:y0 + ch, x0:x0 + cw]
+            except Exception as exc:  # codecs raise many types for corrupt bytes
+                problems.append(f"{job.label} chunk (z={job.z}, row {i}, col {j}) cannot be decoded "
+                                f"({type(exc).__name__}: {exc})")
+    return n, problems
+
+
+def _pyramids(volume: Path) -> list[str]:
+    out = ["em"] if (volume / "em" / "zarr.json").exists() else []
+    chans = volume / "channels"
+    if chans.exists():
+        out += [f"channels/{p.name}" for p in sorted(chans.iterdir()) if (p / "zarr.json").exists()]
+    return out
+
+
+def _levels(group: Path) -> list[Path]:
+    return sorted((p for p in group.iterdir() if p.name.isdigit() and (p / "zarr.json").exists()),
+                  key=lambda p: int(p.name))
+
+
+def audit_volume(folder, *, pixels: bool = True, mapper=None, record: bool = True) -> AuditReport:
+    """Check every plane of a build's volume against its transforms and (with ``pixels``) decode every chunk.
+
+    Parameters
+    ----------
+    folder : BuildFolder
+        The build folder.
+    pixels : bool
+        Decode every chunk of every level (reads the whole volume); without it only
+        the fingerprints are compared.
+    mapper : callable(fn, items), optional
+        Runs the per-plane chunk checks (default: in this process).
+    record : bool
+        Note damaged planes in their pyramid's plane record, so ``render --resume``
+        renders them again.
+
+    Returns
+    -------
+    AuditReport
+
+    Raises
+    ------
+    InputError
+        If the build has no volume.
+    """
+    volume = folder.volume_path
+    pyramids = _pyramids(volume)
+    if not pyramids:
+        raise InputError("no volume to check (run the render stage first)", file=volume)
+    report = AuditReport()
+    jobs: list[tuple[str, _PlaneJob]] = []
+    for pyr in pyramids:
+        group = volume / pyr
+        name = "em" if pyr == "em" else pyr.split("/", 1)[1]
+        doc = read_plane_record(group)
+        if doc is None:
+            report.unrecorded.append(pyr)
+        recorded = (doc or {}).get("fingerprints", {})
+        now = current_fingerprints(folder, array=name)
+        report.planes += len(now)
+        for z, fp in sorted(now.items()):
+            have = recorded.get(str(z))
+            if have != fp:
+                why = "never written, or its rendering was interrupted" if have is None else \
+                    "rendered from other transform records or settings than the current ones"
+                report.findings.append(Finding(pyr, z, "stale", why))
+        if pixels:
+            for level in _levels(group):
+                depth = zarr.open_array(str(level), mode="r").shape[0]
+                jobs += [(pyr, _PlaneJob(str(level), f"volume.zarr/{pyr}/{level.name}", z)) for z in range(depth)]
+    if jobs:
+        run = mapper or (lambda fn, items: [fn(i) for i in items])
+        damaged: dict[str, dict[int, str]] = {}
+        for (pyr, job), (n, problems) in zip(jobs, run(check_plane, [j for _, j in jobs])):
+            report.chunks += n
+            if problems:
+                damaged.setdefault(pyr, {}).setdefault(job.z, problems[0])
+                for p in problems:
+                    report.findings.append(Finding(pyr, job.z, "damaged", p))
+        if record:
+            for pyr, planes in damaged.items():
+                name = "em" if pyr == "em" else pyr.split("/", 1)[1]
+                for z, why in planes.items():
+                    forget_planes(folder, [z], array=name, reason=why)
+    report.findings.sort(key=lambda f: (f.pyramid != "em", f.pyramid, f.plane, f.kind))
+    return report

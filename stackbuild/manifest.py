@@ -27,6 +27,7 @@ from __future__ import annotations
 import csv
 import logging
 import math
+import os
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -43,6 +44,10 @@ CHANNEL_COLUMNS = ("section", "channel", "path", "pixel_size")
 LANDMARK_COLUMNS = ("section", "channel", "tile", "tile_x", "tile_y", "marker_x", "marker_y")
 #: Smallest side (pixels) of a marker image that can be registered.
 MIN_CHANNEL_SIDE = 8
+#: Most pixels one tile or marker image may claim in its header (default 2**30, 1 Gpx: a production
+#: tile is 16.8 Mpx); a larger claim is taken for a damaged header rather than allocated. Set the
+#: environment variable STACKBUILD_MAX_IMAGE_PIXELS to change it.
+MAX_IMAGE_PIXELS = int(os.environ.get("STACKBUILD_MAX_IMAGE_PIXELS", 2 ** 30))
 _NAME_OK = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.\-]*$")
 
 
@@ -269,15 +274,23 @@ def _header(path: Path, manifest: Path | None = None, row: int | None = None):
     the image (a thumbnail first, a stack of frames) cannot be guessed safely.
     """
     where = dict(file=manifest or path, row=row)
+    quiet = logging.getLogger("tifffile")
+    level = quiet.level
+    quiet.setLevel(logging.CRITICAL)  # its complaints about a bad header are said once, below
     try:
         with tifffile.TiffFile(path) as tif:
             page = tif.pages.first
             shape, dtype = tuple(page.shape), page.dtype
+            check_pixel_data(page, Path(path), os.fstat(tif.filehandle.fileno()).st_size, where)
             compression = getattr(page.compression, "name", str(page.compression))
             pages = len(tif.pages)
             sizes = [tuple(p.shape) for p in tif.pages[:4]] if pages > 1 else []
+    except InputError:
+        raise
     except Exception as exc:  # tifffile raises many types for non-TIFF data
         raise InputError(f"{path} is not a readable TIFF image ({type(exc).__name__}: {exc})", **where) from None
+    finally:
+        quiet.setLevel(level)
     if pages > 1:
         listed = ", ".join(f"page {i}: {' x '.join(map(str, s))}" for i, s in enumerate(sizes))
         more = ", ..." if pages > len(sizes) else ""
@@ -289,6 +302,32 @@ def _header(path: Path, manifest: Path | None = None, row: int | None = None):
         raise InputError(f"{path} must be 8- or 16-bit unsigned, is {dtype}", **where)
     return shape[0], shape[1], dtype.str.lstrip("<>|="), (compression if compression in LOSSY_COMPRESSION
                                                           else None)
+
+
+def check_pixel_data(page, path: Path, file_size: int, where: dict) -> None:
+    """Raise :class:`InputError` if a TIFF page's header promises pixels the file cannot hold.
+
+    Checked from the header alone, before any pixel is allocated: the claimed size
+    against :data:`MAX_IMAGE_PIXELS`; every strip or tile of pixel data lying inside
+    the file (a truncated copy fails here); and, for uncompressed data, the stored
+    bytes covering every claimed pixel (a header whose size was damaged).
+    """
+    shape = tuple(page.shape)
+    pixels = math.prod(shape)
+    claim = " x ".join(map(str, shape))
+    if pixels > MAX_IMAGE_PIXELS:
+        raise InputError(f"{path}: header claims {claim} pixels ({pixels / 1e6:.0f} Mpx), more than the "
+                         f"limit of {MAX_IMAGE_PIXELS} per image (a damaged header? the environment "
+                         "variable STACKBUILD_MAX_IMAGE_PIXELS raises the limit)", **where)
+    ends = [o + n for o, n in zip(page.dataoffsets, page.databytecounts)]
+    if ends and max(ends) > file_size:
+        raise InputError(f"{path} is truncated: its header places pixel data up to byte {max(ends)}, "
+                         f"but the file has {file_size} bytes", **where)
+    needed = pixels * page.dtype.itemsize if page.dtype is not None else 0
+    if int(page.compression) == 1 and sum(page.databytecounts) < needed:
+        raise InputError(f"{path}: header claims {claim} pixels ({needed} bytes uncompressed), but the "
+                         f"file stores {sum(page.databytecounts)} bytes of pixel data (a damaged header?)",
+                         **where)
 
 
 def lossy_compression(path: str | Path) -> str | None:

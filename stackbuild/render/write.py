@@ -259,7 +259,7 @@ def _planes_to_do(em: Path, stamp: dict, fingerprints: dict, depth: int, planes,
     if planes is not None:
         bad = [p for p in planes if not 0 <= int(p) < depth]
         if bad:
-            raise InputError(f"planes {bad} are outside the volume (depth {depth})", file=em)
+            raise InputError(f"--planes {bad} are outside the volume (planes 0 to {depth - 1})", file=em)
     chosen = sorted({int(p) for p in planes}) if planes is not None else list(range(depth))
     if overwrite or not (em / "zarr.json").exists():
         return chosen

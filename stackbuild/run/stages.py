@@ -15,6 +15,7 @@ from pathlib import Path
 from ..errors import InputError
 from ..manifest import TileEntry
 from ..stitch.settings import StitchSettings
+from ..transforms.store import atomic_write_text
 from ..folder import BuildFolder
 
 log = logging.getLogger(__name__)
@@ -124,8 +125,15 @@ def report_stage(build: BuildFolder, *, fail_on: list[str] | None = None, progre
     """Measure the result, draw the plots, write ``DIR/qc``; return the verdict."""
     from ..qc.report import run_report
 
+    before = build.state_path.read_bytes()
     build.mark_stage("report", "running")
     t0 = time.monotonic()
-    verdict = run_report(build.root, build.config.report, fail_on=fail_on, progress=progress)
+    try:
+        verdict = run_report(build.root, build.config.report, fail_on=fail_on, progress=progress)
+    except InputError:
+        # The report writes its files only once everything is measured: a refused or failed
+        # report changed nothing, so the build record goes back to what it was, byte for byte.
+        atomic_write_text(build.state_path, before.decode("utf-8"))
+        raise
     build.mark_stage("report", "done", seconds=round(time.monotonic() - t0, 2))
     return verdict

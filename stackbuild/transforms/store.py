@@ -43,11 +43,32 @@ def _now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
 
+def file_mode() -> int:
+    """Return the mode a new file gets from ``open()`` under the process umask (0644 under 022).
+
+    Read from ``/proc/self/status`` where it is available, since setting the umask to
+    read it back (the only portable way) briefly changes it for every thread.
+    """
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("Umask:"):
+                return 0o666 & ~int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    umask = os.umask(0o022)
+    os.umask(umask)
+    return 0o666 & ~umask
+
+
 def atomic_write_text(path: Path, text: str) -> None:
-    """Write ``text`` to ``path`` atomically (temporary file in the same folder, then rename)."""
+    """Write ``text`` to ``path`` atomically (temporary file in the same folder, then rename).
+
+    The file gets the mode the umask gives any new file (``mkstemp`` alone would make it 0600).
+    """
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
     try:
+        os.fchmod(fd, file_mode())
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)
             fh.flush()

@@ -271,10 +271,12 @@ def test_contrast_brings_sections_to_the_median_range(tmp_path):
 
 def test_contrast_range_by_strips_matches_numpy_percentile_of_the_whole_render(tmp_path):
     from stackbuild.render.contrast import measure_range
-    from stackbuild.render.sampler import render_region
+    from stackbuild.sampler import render_region
+    from stackbuild.tiles import SectionTiles
     folder = make_build(tmp_path, n_sections=1, grid=(3, 3), tile=(48, 48), overlap=12)
     stitch = folder.store.load_stitch(0)
-    whole, weight = render_region(stitch, None, 0, 0, 60, 60, scale=2, return_weight=True)
+    whole, weight = render_region(stitch, None, 0, 0, 60, 60, scale=2, return_weight=True,
+                                  tiles=SectionTiles(stitch))
     # Reference: numpy.percentile over every covered pixel of the whole coarse render.
     expect = np.percentile(whole[weight > 0], (1.0, 99.0))
     got = measure_range(stitch, (1.0, 99.0), scale=2, strip=7)

@@ -14,10 +14,11 @@ import tifffile
 
 from stackbuild.config import PipelineConfig
 from stackbuild.folder import BuildFolder
+from stackbuild.tiles import cache_bytes_for
 from stackbuild.transforms import SectionStitch, TilePlacement
 
 TILE, OVERLAP = 1024, 64
-CACHE_MB = 64
+CACHE_MB = cache_bytes_for(TILE, TILE) / 2 ** 20  # the tile cache's bound, sized from these tiles
 
 _CHILD = """
 import json, resource, sys, time
@@ -54,8 +55,7 @@ def _section(root: Path, n: int) -> Path:
 
 
 def _peak(build: Path) -> dict:
-    env = {**os.environ, "STACKBUILD_TILE_CACHE_MB": str(CACHE_MB),
-           "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
     out = subprocess.run([sys.executable, "-c", _CHILD, str(build)], env=env, capture_output=True,
                          text=True, timeout=120, check=True)
     return json.loads(out.stdout.strip().splitlines()[-1])

@@ -9,13 +9,18 @@ import zarr
 from scipy import ndimage, stats
 from skimage import data, measure, transform
 
-from stackbuild.render import tiles as tiles_mod
+from stackbuild import tiles as tiles_mod
 from stackbuild.render.reduce import reduce2x2
-from stackbuild.render.sampler import render_region
+from stackbuild.sampler import render_region as sample_region
 from stackbuild.render.settings import RenderSettings
 from stackbuild.transforms import Affine2D, DisplacementField, SectionAlignment, SectionStitch, TilePlacement
 
 from test_render_build import foam, make_build
+
+
+def render_region(stitch, *args, **kw):
+    """The sampler, with the section's tiles read from their files through the cache."""
+    return sample_region(stitch, *args, tiles=tiles_mod.SectionTiles(stitch), **kw)
 
 
 def _one_tile(tmp_path, img, x=0.0, y=0.0, gain=1.0, offset=0.0, illumination=None):
@@ -212,7 +217,7 @@ def _camera_mosaic(tmp_path, camera, tile=96, overlap=16):
 
 def test_single_tile_shortcut_rectangles_lie_inside_their_tile_and_outside_every_other_footprint(
         tmp_path, camera):
-    from stackbuild.render.sampler import exclusive_boxes, tile_footprints
+    from stackbuild.sampler import exclusive_boxes, tile_footprints
     stitch = _camera_mosaic(tmp_path, camera)
     alignment = SectionAlignment(0, Affine2D.similarity(1.0, 0.05, tx=3.0, ty=-2.0, center=(128, 128)))
     boxes = tile_footprints(stitch, alignment)

@@ -6,7 +6,7 @@ A *source* is a small, picklable object with three methods:
 * ``bbox(z)`` -> ``(x0, y0, x1, y1)``, the section-pixel extent (pixel edges);
 * ``region(z, alignment, x0, y0, width, height, scale)`` -> float32 image of
   the aligned frame (the section frame when ``alignment`` is None), with the
-  pixel-centre convention of :func:`stackbuild.render.sampler.render_region`,
+  pixel-centre convention of :func:`stackbuild.sampler.render_region`,
   and NaN where the section has no data.
 
 :class:`BuildSource` reads stitch records and raw tiles of a build folder;
@@ -75,10 +75,13 @@ class BuildSource:
     def region(self, z: int, alignment: SectionAlignment | None, x0: int, y0: int,
                width: int, height: int, scale: int) -> np.ndarray:
         """Render a region through ``render_region``; uncovered pixels become NaN."""
-        from ..render.sampler import render_region
+        from ..sampler import render_region
+        from ..tiles import SectionTiles
 
-        img, weight = render_region(self._stitch(z), alignment, int(x0), int(y0), int(width),
-                                    int(height), scale=int(scale), order=1, return_weight=True)
+        stitch = self._stitch(z)
+        img, weight = render_region(stitch, alignment, int(x0), int(y0), int(width),
+                                    int(height), scale=int(scale), order=1, return_weight=True,
+                                    tiles=SectionTiles(stitch))
         img = img.astype(np.float32, copy=False)
         img[weight <= 0] = np.nan
         return img

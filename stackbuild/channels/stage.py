@@ -25,7 +25,7 @@ Stored record (``store.save_doc("channels", ..., section=s)``), one per section:
         "flags": ["blank" | "too_small" | "low_mi" | "ambiguous" | "at_search_limit"], "seconds"}}}
 
 Manifest ``x, y`` convention: the section-pixel position of the image's first
-block, as in :func:`stackbuild.render.sampler.render_region`; channel pixel
+block, as in :func:`stackbuild.sampler.render_region`; channel pixel
 ``(c, r)`` is nominally centred at ``(x + rho c + (rho - 1) / 2, y + rho r + (rho - 1) / 2)``
 with ``rho`` the pixel-size ratio.
 """
@@ -41,8 +41,9 @@ import tifffile
 
 from ..errors import InputError
 from ..manifest import ChannelEntry
-from ..render.sampler import render_region
+from ..sampler import render_region
 from ..folder import BuildFolder
+from ..tiles import SectionTiles
 from ..transforms.store import TransformStore
 from ..transforms.types import Affine2D
 from .features import KINDS, whole_block_mean, em_feature, marker_feature
@@ -100,7 +101,8 @@ def _em_at_scale(stitch, k: int, fine: int | None = None):
     X0, Y0 = math.floor(x0 + 0.5), math.floor(y0 + 0.5)
     w = max(1, math.ceil((x1 - 0.5 - X0 + 1) / fine))
     h = max(1, math.ceil((y1 - 0.5 - Y0 + 1) / fine))
-    img, weight = render_region(stitch, None, X0, Y0, w, h, scale=fine, return_weight=True)
+    img, weight = render_region(stitch, None, X0, Y0, w, h, scale=fine, return_weight=True,
+                                tiles=SectionTiles(stitch))
     to_section = Affine2D(np.array([[k, 0.0, X0 + (k - 1) / 2], [0.0, k, Y0 + (k - 1) / 2]]))
     return img, weight > 0, to_section
 

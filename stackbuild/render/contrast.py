@@ -21,7 +21,8 @@ import numpy as np
 from ..errors import InputError
 from ..transforms.records import SectionStitch
 from ..transforms.store import TransformStore
-from .sampler import render_region
+from ..sampler import render_region
+from ..tiles import SectionTiles
 
 DOC_KIND = "contrast"
 
@@ -64,7 +65,7 @@ def measure_range(stitch: SectionStitch, percentiles: tuple[float, float] = (1.0
     for r0 in range(0, h, strip):
         rows = min(strip, h - r0)
         img, weight = render_region(stitch, None, ox, oy + r0 * scale, w, rows, scale=scale,
-                                    return_weight=True)
+                                    return_weight=True, tiles=SectionTiles(stitch))
         vals = img[weight > 0]
         first = (-seen) % step
         kept.append(vals[first::step])

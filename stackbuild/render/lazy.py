@@ -30,7 +30,8 @@ from .canvas import compute_canvas
 from .contrast import DOC_KIND, section_contrast
 from .ngff import AXES, level_transform
 from .reduce import level_shapes, reduce2x2
-from .sampler import interpolation_order, render_region
+from ..sampler import interpolation_order, render_region
+from ..tiles import SectionTiles
 
 
 @dataclass(frozen=True)
@@ -114,7 +115,8 @@ def render_block(plan: RenderPlan, z: int, y0: int, y1: int, x0: int, x1: int) -
     stitch, alignment = section_records(plan.transforms, section)
     contrast = section_contrast(_contrast_doc(plan.transforms), section) if plan.contrast else None
     img = render_region(stitch, alignment, int(plan.origin_x) + x0, int(plan.origin_y) + y0,
-                        x1 - x0, y1 - y0, scale=1, order=plan.order, contrast=contrast)
+                        x1 - x0, y1 - y0, scale=1, order=plan.order, contrast=contrast,
+                        tiles=SectionTiles(stitch))
     return to_pixels(img, dtype)[None]
 
 

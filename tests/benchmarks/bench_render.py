@@ -41,7 +41,7 @@ import zarr
 sys.path[:0] = [str(Path(__file__).resolve().parents[2]), str(Path(__file__).resolve().parents[1])]
 from test_render_build import make_build  # noqa: E402
 
-from stackbuild.render import tiles as tiles_mod  # noqa: E402
+from stackbuild import tiles as tiles_mod  # noqa: E402
 from stackbuild.render.lazy import lazy_volume  # noqa: E402
 from stackbuild.render.settings import RenderSettings  # noqa: E402
 from stackbuild.render.write import _compressors, render_volume  # noqa: E402

@@ -219,6 +219,7 @@ def _cmd_build(args) -> int:
     from .run.progress import ProgressBar
 
     build = _prepare_folder(args)
+    _say_assumed_scale(build)
     show = not args.quiet
     with dask_client(args.workers, args.scheduler) as client:
         stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", show)), resume=args.resume)
@@ -354,6 +355,18 @@ def _cmd_synth(args) -> int:
     path = generate(Path(args.outdir), params)
     _say(f"tiles: {path}")
     return EXIT_OK
+
+
+def _say_assumed_scale(build) -> None:
+    """Say which physical scale values the build assumed because nobody gave them."""
+    assumed = build.load_state().get("assumed_scale") or {}
+    if assumed:
+        names = {"pixel_size": ("pixel size", "--pixel-size NM"),
+                 "section_thickness": ("section thickness", "--section-thickness NM")}
+        what = " and ".join(f"{names[k][0]} {v:g} nm" for k, v in assumed.items())
+        flags = " and ".join(names[k][1] for k in assumed)
+        print(f"stackbuild: warning: assumed {what} (not given); pass {flags} (or set them in [volume] "
+              "of --config) for the true physical scale", file=sys.stderr)
 
 
 def _verdict_status(verdict, fail_on: list[str] | None) -> int:

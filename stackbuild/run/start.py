@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import json
 import shutil
+import tomllib
 from pathlib import Path
 
 from .._version import __version__
@@ -76,6 +77,9 @@ def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel
     record = {"tiles": str(manifest.source), "channels": str(channels) if channels else None,
               "landmarks": str(landmarks) if landmarks else None,
               "config": cfg.to_json(), "stackbuild": __version__}
+    assumed = assumed_scale(cfg, config, pixel_size, section_thickness)
+    if assumed:
+        record["assumed_scale"] = assumed
     if build.exists():
         if resume:
             old = build.load_state()
@@ -109,6 +113,23 @@ def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel
     if facts is not None:
         build.keep_checked_manifest(manifest, facts)
     return build
+
+
+def assumed_scale(cfg, config, pixel_size, section_thickness) -> dict:
+    """Return ``{key: value}`` of the ``[volume]`` scale keys (nm) that nobody gave: neither a flag nor the pipeline file.
+
+    The physical scale of the volume is never silent: ``build`` says which values it
+    assumed, and the build record keeps them (``assumed_scale``) for the report.
+    """
+    given = set()
+    if config is not None:
+        with open(config, "rb") as fh:  # already read and checked by load_config
+            given = set(tomllib.load(fh).get("volume", {}))
+    if pixel_size is not None:
+        given.add("pixel_size")
+    if section_thickness is not None:
+        given.add("section_thickness")
+    return {k: getattr(cfg.volume, k) for k in ("pixel_size", "section_thickness") if k not in given}
 
 
 def _changed_settings(old: dict, new: dict) -> list[str]:

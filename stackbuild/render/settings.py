@@ -20,6 +20,10 @@ class RenderSettings:
         Blosc compressor name: ``"zstd"``, ``"lz4"``, ``"blosclz"`` ...; ``"none"`` for raw.
     clevel : int
         Compression level.
+    shuffle : str
+        How Blosc reorders the bytes before compressing: ``"auto"`` (bit shuffle for 16-bit
+        pixels, none for 8-bit, where byte shuffle is a no-op and bit shuffle was slower and
+        compressed less; see ``tests/benchmarks/bench_codec.py``), ``"bit"``, ``"byte"`` or ``"none"``.
     reducer : str
         How a level is reduced 2x2 from the one above: ``"mean"``, ``"max"``, ``"min"`` or ``"mode"``.
     interpolation : str
@@ -36,12 +40,24 @@ class RenderSettings:
     chunk: int = 1024
     shard: int = 4
     codec: str = "zstd"
-    clevel: int = 3
+    clevel: int = 1
+    shuffle: str = "auto"
     reducer: str = "mean"
     interpolation: str = "linear"
     contrast: bool = False
     contrast_percentiles: tuple[float, float] = (1.0, 99.0)
     contrast_scale: int = 4
+
+
+#: ``shuffle`` values -> Blosc's own names (zarr ``BloscCodec``).
+SHUFFLES = {"bit": "bitshuffle", "byte": "shuffle", "none": "noshuffle"}
+
+
+def blosc_shuffle(settings: RenderSettings, itemsize: int) -> str:
+    """Return Blosc's shuffle name for pixels of ``itemsize`` bytes under ``settings.shuffle``."""
+    if settings.shuffle == "auto":
+        return "bitshuffle" if itemsize > 1 else "noshuffle"
+    return SHUFFLES[settings.shuffle]
 
 
 #: Reducers of the pyramid (see :mod:`stackbuild.render.reduce`).
@@ -72,6 +88,8 @@ def check_settings(settings: RenderSettings) -> None:
         raise InputError(f"{where} contrast_scale must be >= 1, got {settings.contrast_scale}")
     if not 0 <= settings.clevel <= 9:
         raise InputError(f"{where} clevel must be in 0..9, got {settings.clevel!r}")
+    if settings.shuffle != "auto" and settings.shuffle not in SHUFFLES:
+        raise InputError(f"{where} shuffle must be one of auto, {', '.join(SHUFFLES)}, got {settings.shuffle!r}")
     codecs = ["none", *(c.value for c in BloscCname)]
     if settings.codec not in codecs:
         raise InputError(f"{where} codec must be one of {', '.join(codecs)}, got {settings.codec!r}")

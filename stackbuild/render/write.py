@@ -21,6 +21,7 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
+import numpy as np
 import zarr
 from zarr.codecs import BloscCodec
 
@@ -28,14 +29,14 @@ from ..errors import BuildFolderError, InputError
 from ..run.cluster import client_mapper, compute_each
 from ..folder import BuildFolder
 from ..transforms.store import atomic_write_text
-from .canvas import compute_canvas
+from .canvas import compute_canvas, settle_canvas
 from .contrast import DOC_KIND, RangeJob, contrast_record, range_job
 from .fingerprint import PLANE_RECORD, em_fingerprints, read_plane_record, write_plane_record
 from .lazy import RenderPlan, section_records
 from .ngff import multiscales_attrs, root_attrs
 from .pyramid import pyramid_writes
 from .reduce import level_shapes
-from .settings import check_settings
+from .settings import blosc_shuffle, check_settings
 from .swap import incoming_path, recover_swap, swap_in
 
 CHECKPOINT = PLANE_RECORD
@@ -43,10 +44,11 @@ CHECKPOINT = PLANE_RECORD
 BATCH_SHARDS = 32
 
 
-def _compressors(settings):
+def _compressors(settings, dtype):
     if settings.codec == "none":
         return None
-    return [BloscCodec(cname=settings.codec, clevel=settings.clevel, shuffle="shuffle")]
+    return [BloscCodec(cname=settings.codec, clevel=settings.clevel,
+                       shuffle=blosc_shuffle(settings, np.dtype(dtype).itemsize))]
 
 
 def _validate_records(folder: BuildFolder, sections: list[int]) -> None:
@@ -111,7 +113,7 @@ def _create_arrays(em: Path, shapes, depth: int, settings, dtype: str, attrs: di
         chunks = (1, settings.chunk, settings.chunk)
         shards = None if settings.shard == 1 else (1, settings.chunk * settings.shard, settings.chunk * settings.shard)
         arrays.append(group.create_array(str(n), shape=(depth, h, w), dtype=dtype, chunks=chunks, shards=shards,
-                                         compressors=_compressors(settings), fill_value=0,
+                                         compressors=_compressors(settings, dtype), fill_value=0,
                                          dimension_names=["z", "y", "x"], overwrite=True))
     return arrays
 

@@ -16,7 +16,7 @@ import tifffile
 import zarr
 from scipy import ndimage
 
-from stackbuild.channels.render import channel_level, render_channels
+from stackbuild.render.channels import channel_level, render_channels
 from stackbuild.channels.settings import ChannelSettings
 from stackbuild.channels.stage import DOC_KIND, channel_affine, run_channels
 from stackbuild.config import PipelineConfig

@@ -1,6 +1,8 @@
 """Molecular marker channels: registration to the EM by mutual information, and rendering.
 
 ``mutual_info``  the pure kernels (measure, registration);
-``stage``        :func:`run_channels`, one stored ``channels`` record per section;
-``render``       :func:`render_channels`, ``volume.zarr/channels/<name>`` beside the EM.
+``stage``        :func:`run_channels`, one stored ``channels`` record per section.
+
+The marker pyramids (``volume.zarr/channels/<name>``) are written by the render
+stage (:mod:`stackbuild.render.channels`).
 """

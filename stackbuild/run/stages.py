@@ -90,7 +90,7 @@ def channels_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
 
 def render_channels_stage(build: BuildFolder, *, overwrite: bool = False, progress=None) -> dict:
     """Write each marker channel's pyramid beside the EM, in the same physical space (stale planes only, unless ``overwrite``)."""
-    from ..channels.render import render_channels
+    from ..render.channels import render_channels
 
     if not build.load_state().get("channels"):
         return {}

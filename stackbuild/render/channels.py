@@ -32,13 +32,13 @@ from zarr.codecs import BloscCodec
 from ..errors import InputError
 from ..manifest import image_header
 from ..folder import BuildFolder
-from ..render.ngff import multiscales_attrs, root_attrs
-from ..render.reduce import level_shapes, reduce2x2, reduced_size
-from ..render.fingerprint import channel_fingerprints, read_plane_record, write_plane_record
-from ..render.swap import incoming_path, swap_in
-from ..render.settings import check_settings
+from .ngff import multiscales_attrs, root_attrs
+from .reduce import level_shapes, reduce2x2, reduced_size
+from .fingerprint import channel_fingerprints, read_plane_record, write_plane_record
+from .swap import incoming_path, swap_in
+from .settings import check_settings
 from ..transforms.records import Canvas, SectionAlignment
-from .stage import DOC_KIND, channel_affine
+from ..channels.stage import DOC_KIND, channel_affine
 
 _ROWS = 1024  # output rows resampled at a time
 

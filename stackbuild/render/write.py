@@ -158,8 +158,11 @@ def prepare_render(build_dir, settings, *, planes: list[int] | None = None, over
     vol = folder.config.volume
     em = folder.pyramid_path()
     _validate_records(folder, manifest.sections)
-    canvas = compute_canvas(folder.store, manifest.sections, manifest.lost_sections,
-                            vol.pixel_size, vol.section_thickness)
+    # The stored canvas only grows (by whole shards), so re-rendering never moves a plane.
+    canvas, _ = settle_canvas(folder.store.load_canvas(),
+                              compute_canvas(folder.store, manifest.sections, manifest.lost_sections,
+                                             vol.pixel_size, vol.section_thickness),
+                              shard=settings.chunk * settings.shard, chunk=settings.chunk)
     plan = RenderPlan.from_canvas(folder.store.root, canvas, settings)
     shapes = level_shapes(canvas.height, canvas.width, settings.chunk)
     stamp = json.loads(json.dumps({"render": asdict(settings), "canvas": canvas.to_json()}))

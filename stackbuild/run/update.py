@@ -1,36 +1,92 @@
-"""Re-imaged regions: replace the tiles of some sections, then redo only what changed.
+"""Re-imaged tiles and appended sections: an update of a finished build, run as a transaction.
 
-The new tile manifest lists only the sections that were imaged again. Their
-old tiles are replaced (in a new merged manifest kept inside the build
-folder; the user's files are never edited), those sections are stitched
-again, the stack is re-aligned (the global solve couples all sections), the
-marker images are registered again (their maps are relative to the section
-frame), and only the EM planes whose transforms moved are rendered again.
+An update manifest lists tiles imaged again (rows whose ``section`` and
+``tile`` name an existing tile replace it; new tile names are added to their
+section) and, with ``append``, whole new sections. The update
+
+1. checks the manifest and writes its plan (``DIR/updates/NNNN/plan.json``)
+   with hard links to the transform records as they are, before it changes
+   anything (:mod:`stackbuild.run.update_plan`);
+2. stitches the touched sections again, holding every untouched tile where it
+   was (:func:`stackbuild.transforms.hold.hold_tiles`);
+3. aligns the stack again and keeps the old alignment of every section
+   (re-imaged ones included) the re-solve moves by no more than ``hold_within`` pixels
+   (:func:`stackbuild.transforms.hold.hold_alignments`);
+4. registers the marker images again;
+5. writes only the shards whose pixels can change, and the pyramid above them
+   (:mod:`stackbuild.render.dirty`, :mod:`stackbuild.render.patch`), on a
+   canvas that only ever grows (:func:`stackbuild.render.canvas.settle_canvas`);
+6. writes the report.
+
+Every step is recorded in the plan when it finishes. Each step's result depends
+only on the records the earlier steps left and on the ``before`` records, so a
+killed update run again (or ``--resume``) finishes exactly the same volume.
 """
 from __future__ import annotations
 
 import csv
 import io
+import json
 import logging
+import os
+import shutil
+import signal
+from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-
 from ..errors import InputError
-from ..manifest import TileManifest, read_tile_manifest
-from ..transforms.store import atomic_write_text
 from ..folder import BuildFolder, csv_facts
+from ..manifest import TileEntry, TileManifest, read_tile_manifest
+from ..transforms.records import Canvas, SectionStitch, TilePlacement
+from ..transforms.store import TransformStore, atomic_write_text
+from .update_plan import (
+    UpdatePlan, load_plans, next_number, now, plan_dir, save_plan, snapshot_transforms, unfinished,
+)
 
 log = logging.getLogger(__name__)
 
-#: A plane is rendered again when its transform moved a point by more than this (pixels).
-MOVE_TOLERANCE = 0.05
+#: An untouched section keeps its alignment unless the re-solve moves one of its points further (section px).
+HOLD_WITHIN = 0.5
 
 
+@dataclass
+class UpdateOutcome:
+    """What an update did (or, with ``dry_run``, would do).
+
+    Attributes
+    ----------
+    plan : UpdatePlan
+        The update's record.
+    lines : list of str
+        The summary, one line each (the CLI prints them).
+    verdict : object or None
+        The report's verdict (None for a dry run).
+    """
+
+    plan: UpdatePlan
+    lines: list[str] = field(default_factory=list)
+    verdict: object | None = None
+
+
+#: Test hook: ``STACKBUILD_UPDATE_KILL=align|channels|render`` kills the update's process group
+#: part-way through that step (after some of its results are written, before it is recorded),
+#: as a ``kill -9`` would; the fault tests use it to stop at a known place.
+_KILL_ENV = "STACKBUILD_UPDATE_KILL"
+
+
+def _killed_here(step: str) -> None:
+    if os.environ.get(_KILL_ENV) == step:
+        os.killpg(os.getpgid(0), signal.SIGKILL)
+
+
+# --------------------------------------------------------------- manifests
 def merged_manifest(old: TileManifest, new: TileManifest) -> str:
-    """Return the CSV text of ``old`` with every section present in ``new`` replaced by ``new``'s tiles."""
-    replaced = set(new.sections)
-    rows = [t for t in old.tiles if t.section not in replaced] + list(new.tiles)
+    """Return the CSV text of ``old`` with ``new``'s rows merged in by (section, tile).
+
+    A row of ``new`` naming an existing tile of its section replaces it; other rows are added.
+    """
+    incoming = {(t.section, t.tile) for t in new.tiles}
+    rows = [t for t in old.tiles if (t.section, t.tile) not in incoming] + list(new.tiles)
     rows.sort(key=lambda t: t.section)  # stable: manifest order within a section is kept
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
@@ -40,82 +96,532 @@ def merged_manifest(old: TileManifest, new: TileManifest) -> str:
     return buf.getvalue()
 
 
-def _sample_points(build: BuildFolder, section: int) -> np.ndarray | None:
-    stitch = build.store.load_stitch(section)
-    if stitch is None:
-        return None
-    x0, y0, x1, y1 = stitch.bbox()
-    gx, gy = np.meshgrid(np.linspace(x0, x1, 9), np.linspace(y0, y1, 9))
-    return np.column_stack([gx.ravel(), gy.ravel()])
+def _pack(shards) -> list[str]:
+    """Return shards ``(i, j)`` as sorted ``"i,j"`` strings (compact in the plan)."""
+    return [f"{i},{j}" for i, j in sorted(shards)]
 
 
-def _moved_planes(build: BuildFolder, before: dict, first: int) -> list[int]:
-    """Return output planes whose aligned -> section map changed by more than the tolerance."""
-    moved = []
-    for section, (points, old_map) in before.items():
-        new = build.store.load_alignment(section)
-        if new is None or points is None:
-            moved.append(section - first)
+def _unpack(packed) -> set[tuple[int, int]]:
+    return {tuple(int(v) for v in p.split(",")) for p in packed}
+
+
+def _sha256(path: Path) -> str:
+    return csv_facts(path)["sha256"]
+
+
+def _common_size(tiles: list[TileEntry]) -> tuple[int, int]:
+    sizes = [(t.width, t.height) for t in tiles]
+    return max(set(sizes), key=sizes.count)
+
+
+def _check_new_tiles(old: TileManifest, new: TileManifest, append: bool, first: int | None) -> None:
+    """Refuse, in one line, sections not in the build (without ``append``) and tiles of another size."""
+    if new.dtype != old.dtype:
+        raise InputError(f"new tiles are {new.dtype}, the build's are {old.dtype}", file=new.source)
+    have = set(old.sections)
+    unknown = sorted(set(new.sections) - have)
+    if unknown and not append:
+        raise InputError(f"section(s) {unknown} are not in this build; pass --append to add new sections "
+                         "(nothing was changed)", file=new.source, row=new.section_tiles(unknown[0])[0].row)
+    if append and first is not None and unknown and min(unknown) < first:
+        raise InputError(f"section {min(unknown)} comes before the build's first section {first}; "
+                         "only later sections (or lost ones) can be appended", file=new.source,
+                         row=new.section_tiles(min(unknown))[0].row)
+    for s in new.sections:
+        ref = old.section_tiles(s) if s in have else old.tiles
+        w, h = _common_size(ref)
+        for t in new.section_tiles(s):
+            if (t.width, t.height) != (w, h):
+                raise InputError(f"tile {t.tile!r} of section {s} is {t.width} x {t.height} px, the build's "
+                                 f"tiles are {w} x {h}; a region imaged at another pixel size needs a "
+                                 "pixel_size column (nothing was changed)", file=new.source, row=t.row,
+                                 section=s)
+
+
+def _changed_tiles(old: TileManifest, new: TileManifest) -> dict[str, list[str]]:
+    """Return section (text) -> names of tiles of existing sections that the update replaces or adds."""
+    before = {(t.section, t.tile): t for t in old.tiles}
+    have = set(old.sections)
+    out: dict[str, list[str]] = {}
+    for t in new.tiles:
+        if t.section not in have:
             continue
-        if np.abs(new.aligned_to_section(points) - old_map).max() > MOVE_TOLERANCE:
-            moved.append(section - first)
-    return moved
+        o = before.get((t.section, t.tile))
+        if o is None or Path(o.path).resolve() != Path(t.path).resolve() or (o.x, o.y) != (t.x, t.y):
+            out.setdefault(str(t.section), []).append(t.tile)
+    return out
 
 
-def update_build(build: BuildFolder, new_tiles: Path, *, workers=None, scheduler=None,
-                 show_progress: bool = True) -> dict:
-    """Replace re-imaged sections' tiles and redo stitch, align, render and report where needed.
+# -------------------------------------------------------------- prediction
+def _predicted_shards(build: BuildFolder, old: TileManifest, new: TileManifest, changed: dict, added: list[int],
+                      canvas: Canvas | None) -> dict[str, list]:
+    """Return plane (text) -> level-0 shards the update is expected to rewrite (before anything is solved).
 
-    Returns
-    -------
-    dict
-        ``sections`` re-stitched, ``planes`` re-rendered, ``manifest`` written.
+    A replaced or added tile lands near its stage position (placed like its section's other
+    tiles), within the stitch stage's largest stage error; its footprint there and its old
+    one, with the footprints of the tiles they meet, are dirty. New sections dirty their plane.
     """
+    from ..render.dirty import all_shards, changed_boxes, level0_shards
+
+    if canvas is None:
+        return {}
+    settings = build.config.render
+    block = settings.chunk * settings.shard
+    margin = float(getattr(build.config.stitch, "max_stage_error", 50.0))
+    store = build.store
+    out: dict[str, list] = {}
+    for key, names in changed.items():
+        s = int(key)
+        st, al = store.load_stitch(s), store.load_alignment(s)
+        if st is None or not st.tiles:
+            continue
+        shift = sorted(t.x - t.stage_x for t in st.tiles)[len(st.tiles) // 2], \
+            sorted(t.y - t.stage_y for t in st.tiles)[len(st.tiles) // 2]
+        tiles = {t.tile: t for t in st.tiles}
+        for entry in new.section_tiles(s):
+            if entry.tile in names:
+                tiles[entry.tile] = TilePlacement(entry.tile, str(entry.path), entry.width + int(2 * margin),
+                                                  entry.height + int(2 * margin), entry.x, entry.y,
+                                                  entry.x + shift[0] - margin, entry.y + shift[1] - margin)
+        guess = SectionStitch(s, st.dtype, list(tiles.values()), [], st.illumination, st.illumination_step)
+        boxes, _ = changed_boxes((st, al), (guess, al))
+        shards = level0_shards(boxes, canvas, block)
+        out[str(s - canvas.first_section)] = _pack(shards)
+    for s in added:
+        z = s - canvas.first_section
+        if z < canvas.depth:
+            out[str(z)] = _pack(all_shards((canvas.height, canvas.width), block))
+        else:
+            out[str(z)] = "all (new plane)"
+    return out
+
+
+def _totals(build: BuildFolder) -> dict:
+    path = build.qc_dir / "metrics.json"
+    try:
+        return json.loads(path.read_text(encoding="utf-8")).get("totals", {})
+    except (OSError, ValueError):
+        return {}
+
+
+# -------------------------------------------------------------------- plan
+def plan_update(build: BuildFolder, new_tiles: Path, *, append: bool = False,
+                hold_within: float = HOLD_WITHIN) -> tuple[UpdatePlan, TileManifest, str]:
+    """Check an update manifest and return its plan, the merged manifest and its CSV text; nothing is written.
+
+    Raises
+    ------
+    InputError
+        A section not in the build without ``append``, tiles of another size or pixel type,
+        or a bad manifest; one line naming the file and row.
+    """
+    old = build.tile_manifest()
+    new = read_tile_manifest(new_tiles)
+    canvas = build.store.load_canvas()
+    _check_new_tiles(old, new, append, canvas.first_section if canvas else None)
+    text = merged_manifest(old, new)
+    state = build.load_state()
+    changed = _changed_tiles(old, new)
+    added = sorted(set(new.sections) - set(old.sections))
+    number = next_number(build.root)
+    plan = UpdatePlan(number=number, status="planned",
+                      source={"path": str(Path(new_tiles).resolve()), "sha256": _sha256(Path(new_tiles))},
+                      append=append, hold_within=float(hold_within), tiles_before=str(state["tiles"]),
+                      tiles_after=str(build.merged_manifest_path(number).resolve()),
+                      manifests_before=list(state.get("manifests", [])), replaced=changed, added=added,
+                      canvas_before=None if canvas is None else canvas.to_json(),
+                      totals_before=_totals(build), created=now())
+    plan.predicted = _predicted_shards(build, old, new, changed, added, canvas)
+    return plan, new, text
+
+
+def dry_run_lines(plan: UpdatePlan) -> list[str]:
+    """Return what an update would change, one line each, for ``--dry-run``."""
+    lines = [f"update {plan.number:04d} (dry run: nothing written)"]
+    for s in plan.sections:
+        what = "new section" if s in plan.added else "tiles " + ", ".join(plan.replaced[str(s)])
+        lines.append(f"  section {s}: {what}")
+    for z, shards in sorted(plan.predicted.items(), key=lambda kv: int(kv[0])):
+        listed = shards if isinstance(shards, str) else " ".join(shards)
+        lines.append(f"  plane {z}: level-0 shards (row,col) {listed}")
+    lines.append("  untouched sections keep their alignment unless the re-solve moves them more than "
+                 f"{plan.hold_within:g} px; such sections would be rewritten too")
+    return lines
+
+
+# ----------------------------------------------------------------- execute
+def _begin(build: BuildFolder, plan: UpdatePlan, text: str, checked: TileManifest) -> None:
+    """Keep the records as they are, write the plan, then point the build at the merged manifest."""
+    d = plan_dir(build.root, plan.number)
+    shutil.rmtree(d, ignore_errors=True)  # a folder without a plan: an earlier attempt that wrote nothing
+    d.mkdir(parents=True)
+    snapshot_transforms(build.store.root, d / "before")
+    save_plan(build.root, plan)
+    merged = Path(plan.tiles_after)
+    atomic_write_text(merged, text)
+    build.update_state(tiles=str(merged), manifests=plan.manifests_before + [str(merged)])
+    build.keep_checked_manifest(read_tile_manifest(merged), csv_facts(merged))
+
+
+def _before_store(build: BuildFolder, plan: UpdatePlan) -> TransformStore:
+    return TransformStore(plan_dir(build.root, plan.number) / "before")
+
+
+def _stitch(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
+    from ..transforms.hold import hold_tiles
+    from . import stages
+    from .cluster import client_mapper
+    from .progress import ProgressBar
+
+    stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", show)), sections=plan.sections)
+    before, store = _before_store(build, plan), build.store
+    held = {}
+    for key, names in plan.replaced.items():
+        s = int(key)
+        old = before.load_stitch(s)
+        if old is None:
+            continue
+        rec, facts = hold_tiles(old, store.load_stitch(s), set(names))
+        if facts["held"]:
+            store.save_stitch(rec)
+        held[key] = facts
+    plan.facts["stitch"] = {"held": held,
+                            "pairs": sum(len(store.load_stitch(s).pairs) for s in plan.sections)}
+
+
+def _align(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
+    from ..align.sources import BuildSource
+    from ..align.stage import align_sections
+    from ..render.dirty import _same_alignment
+    from ..transforms.hold import hold_alignments
+    from .cluster import client_mapper
+    from .progress import ProgressBar
+
+    scratch = build.scratch_dir("align")
+    try:
+        new = align_sections(BuildSource(build.root), build.config.align,
+                             mapper=client_mapper(client, ProgressBar("align", show)),
+                             progress=ProgressBar("solve", show), scratch=scratch)
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
+    before, store = _before_store(build, plan), build.store
+    old = {s: a for s in new if (a := before.load_alignment(s)) is not None}
+    bboxes = {s: store.load_stitch(s).bbox() for s in new}
+    # Every section that had an alignment keeps it while the re-solve stays within the tolerance: the
+    # re-imaged tiles were placed in their section's old frame, so its old alignment still holds.
+    keep, facts = hold_alignments(old, new, bboxes, set(), plan.hold_within)
+    for s, rec in keep.items():
+        if not _same_alignment(store.load_alignment(s), rec):
+            store.save_alignment(rec)
+            _killed_here("align")
+    moved = facts["moved_px"]
+    plan.facts["align"] = {"realigned": facts["realigned"], "frame_rms_px": facts["frame_rms_px"],
+                           "largest_untouched_move_px": max(moved.values(), default=0.0),
+                           "moved_beyond_tolerance": sorted(s for s, v in moved.items() if v > plan.hold_within),
+                           "links": max(0, len(new) - 1)}
+
+
+def _dirty(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict]:
+    """Return the settled canvas, its facts and plane -> level-0 shards whose pixels can change."""
+    from ..render.canvas import compute_canvas, settle_canvas
+    from ..render.dirty import changed_boxes, level0_shards
+
+    settings = build.config.render
+    block = settings.chunk * settings.shard
+    manifest = build.tile_manifest()
+    vol = build.config.volume
+    fresh = compute_canvas(build.store, manifest.sections, manifest.lost_sections, vol.pixel_size,
+                           vol.section_thickness)
+    previous = None if plan.canvas_before is None else Canvas.from_json(plan.canvas_before)
+    canvas, facts = settle_canvas(previous, fresh, shard=block, chunk=settings.chunk)
+    before, store = _before_store(build, plan), build.store
+    sections = set(store.sections_with("stitch")) | set(before.sections_with("stitch"))
+    dirty = {}
+    for s in sorted(sections):
+        boxes, _ = changed_boxes((before.load_stitch(s), before.load_alignment(s)),
+                                 (store.load_stitch(s), store.load_alignment(s)))
+        shards = level0_shards(boxes, canvas, block)
+        if shards:
+            dirty[str(s - canvas.first_section)] = _pack(shards)
+    return canvas, facts, dirty
+
+
+def _render(build: BuildFolder, plan: UpdatePlan, show: bool) -> None:
+    from ..render.patch import patch_volume
+    from . import stages
+    from .progress import ProgressBar
+
+    if plan.render is None:
+        canvas, facts, dirty = _dirty(build, plan)
+        plan.render = {"canvas": canvas.to_json(), "canvas_facts": facts, "shards": dirty}
+        save_plan(build.root, plan)  # the set to write is fixed before any of it is written
+    canvas = Canvas.from_json(plan.render["canvas"])
+    facts = plan.render["canvas_facts"]
+    previous = None if plan.canvas_before is None else Canvas.from_json(plan.canvas_before)
+    if previous is None or any(facts["moved"]) or facts["first_moved"]:
+        build.store.save_canvas(canvas)
+        done = stages.render_stage(build, overwrite=True, progress=ProgressBar("render", show))
+        plan.facts["render"] = {"planes": done.get("planes", []), "full": True}
+    else:
+        dirty = {int(z): _unpack(v) for z, v in plan.render["shards"].items()}
+        bar = ProgressBar("render", show)
+
+        def progress(done: int, total: int) -> None:
+            bar(done, total)
+            if done:
+                _killed_here("render")
+        done = patch_volume(build.root, build.config.render, canvas, dirty, previous=previous, progress=progress)
+        plan.facts["render"] = {"planes": done["planes"], "shards": done["shards"],
+                                "shards_total": done["shards_total"], "full": False}
+    stages.render_channels_stage(build, progress=ProgressBar("markers", show))
+
+
+def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show: bool, fail_on) -> object:
     from . import stages
     from .cluster import client_mapper, dask_client
     from .progress import ProgressBar
 
-    old = build.tile_manifest()
-    new = read_tile_manifest(new_tiles)
-    if new.dtype != old.dtype:
-        raise InputError(f"new tiles are {new.dtype}, the build's are {old.dtype}", file=new.source)
-    state = build.load_state()
-    n = len(state.get("manifests", [])) + 1
-    merged = build.merged_manifest_path(n)
-    atomic_write_text(merged, merged_manifest(old, new))
-    facts = csv_facts(merged)
-    checked = read_tile_manifest(merged)  # check before switching the build to it
-    canvas = build.store.load_canvas()
-    first = canvas.first_section if canvas else min(old.sections + new.sections)
-    before = {}
-    for s in old.sections:
-        a = build.store.load_alignment(s)
-        pts = _sample_points(build, s)
-        if a is not None and pts is not None:
-            aligned = a.affine.inverse().apply(pts)  # roughly where the section sits in the aligned frame
-            before[s] = (aligned, a.aligned_to_section(aligned))
-    build.update_state(tiles=str(merged), manifests=state.get("manifests", []) + [str(merged)])
-    build.keep_checked_manifest(checked, facts)  # so the stages below do not check every tile again
-    show = show_progress
     with dask_client(workers, scheduler) as client:
-        try:
-            stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", show)), sections=new.sections)
-        except InputError:
-            # A new tile that cannot be read: the build goes back to its old tiles, whose records it still
-            # holds, rather than naming tiles its records were not made from.
-            build.update_state(tiles=state["tiles"], manifests=state.get("manifests", []))
-            build.keep_checked_manifest(old, csv_facts(Path(state["tiles"])))
-            raise
-        stages.align_stage(build, client_mapper(client, ProgressBar("align", show)),
-                           progress=ProgressBar("solve", show))
-        # Marker images are registered to the section frame, which re-stitching moves.
-        stages.channels_stage(build, client_mapper(client, ProgressBar("channels", show)))
-        planes = sorted(set(_moved_planes(build, before, first)) | {s - first for s in new.sections})
-        try:
-            facts = stages.render_stage(build, planes=planes, progress=ProgressBar("render", show))
-        except InputError as exc:  # the canvas grew or shrank: every plane must be rendered again
-            log.info("full re-render: %s", exc)
-            facts = stages.render_stage(build, overwrite=True, progress=ProgressBar("render", show))
+        if not plan.reached("stitched"):
+            _stitch(build, plan, client, show)
+            plan.status = "stitched"
+            save_plan(build.root, plan)
+        if not plan.reached("aligned"):
+            _align(build, plan, client, show)
+            plan.status = "aligned"
+            save_plan(build.root, plan)
+        if not plan.reached("registered"):
+            stages.channels_stage(build, client_mapper(client, ProgressBar("channels", show)))
+            _killed_here("channels")
+            plan.status = "registered"
+            save_plan(build.root, plan)
+        if not plan.reached("rendered"):
+            _render(build, plan, show)
+            plan.status = "rendered"
+            save_plan(build.root, plan)
+    verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
+    plan.facts["totals_after"] = _totals(build)
+    plan.facts["verdict"] = {"passed": verdict.passed, "failures": list(verdict.failures)}
+    plan.status = "done"
+    save_plan(build.root, plan)
+    return verdict
+
+
+def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: bool = False,
+                 dry_run: bool = False, resume: bool = False, hold_within: float = HOLD_WITHIN,
+                 fail_on: list[str] | None = None, workers=None, scheduler=None,
+                 show_progress: bool = True) -> UpdateOutcome:
+    """Apply an update manifest to a finished build (or finish an interrupted update); return the outcome.
+
+    Parameters
+    ----------
+    build : BuildFolder
+        A finished build.
+    new_tiles : Path, optional
+        The update manifest (see the module docstring). Given again after a killed update,
+        it finishes that update; another manifest is refused while one is unfinished.
+    append : bool
+        Allow section numbers the build does not have (after its first section).
+    dry_run : bool
+        Only plan: return the dirty sections, planes and shards; write nothing.
+    resume : bool
+        Finish the unfinished update (``new_tiles`` may be omitted).
+    hold_within : float
+        Tolerance (section pixels) under which an untouched section keeps its alignment.
+    fail_on : list of str, optional
+        ``--fail-on`` bars for the report.
+
+    Raises
+    ------
+    InputError
+        Bad input, or a request that does not fit the state of the build; nothing is changed then.
+    """
+    pending = unfinished(build.root)
+    if pending is not None and pending.status == "rolling_back":
+        raise InputError(f"update {pending.number:04d} is being rolled back; run 'stackbuild update "
+                         f"{build.root} --rollback' again to finish that first", file=build.root)
+    if pending is not None:
+        same = new_tiles is None or _sha256(Path(new_tiles)) == pending.source["sha256"]
+        if not (resume or new_tiles is not None) or not same:
+            raise InputError(f"update {pending.number:04d} ({pending.source['path']}) did not finish; run it "
+                             "again with --resume (or roll it back with --rollback) before another update",
+                             file=build.root)
+        if dry_run:
+            return UpdateOutcome(pending, dry_run_lines(pending))
+        plan = pending
+    else:
+        if new_tiles is None:
+            raise InputError("nothing to resume: every update of this build has finished", file=build.root)
+        plan, new, text = plan_update(build, Path(new_tiles), append=append, hold_within=hold_within)
+        if dry_run:
+            return UpdateOutcome(plan, dry_run_lines(plan))
+        _begin(build, plan, text, new)
+        _stitch_checked(build, plan)
+    verdict = _run_steps(build, plan, workers=workers, scheduler=scheduler, show=show_progress, fail_on=fail_on)
+    return UpdateOutcome(plan, summary_lines(plan, verdict), verdict)
+
+
+def _stitch_checked(build: BuildFolder, plan: UpdatePlan) -> None:
+    """Read every new tile's pixels once before the stitch step, so an unreadable one changes nothing."""
+    from ..tiles import read_tile
+
+    merged = build.tile_manifest()
+    try:
+        for s in plan.sections:
+            names = set(plan.replaced.get(str(s), [])) if s not in plan.added else None
+            for t in merged.section_tiles(s):
+                if names is None or t.tile in names:
+                    read_tile(t.path, t.height, t.width, t.section, dtype=t.dtype, source="update manifest")
+    except InputError:
+        _undo_begin(build, plan)
+        raise
+
+
+def _undo_begin(build: BuildFolder, plan: UpdatePlan) -> None:
+    """Take back what :func:`_begin` did (only records of the build's inputs; no transform was touched)."""
+    build.update_state(tiles=plan.tiles_before, manifests=plan.manifests_before)
+    build.keep_checked_manifest(read_tile_manifest(Path(plan.tiles_before)), csv_facts(Path(plan.tiles_before)))
+    Path(plan.tiles_after).unlink(missing_ok=True)
+    shutil.rmtree(plan_dir(build.root, plan.number), ignore_errors=True)
+
+
+def summary_lines(plan: UpdatePlan, verdict) -> list[str]:
+    """Return the update's summary for the terminal, one line each."""
+    f = plan.facts
+    n_repl = sum(len(v) for v in plan.replaced.values())
+    lines = [f"update {plan.number:04d}: {n_repl} tile(s) replaced or added in section(s) "
+             f"{sorted(int(s) for s in plan.replaced) or '-'}; new section(s) {plan.added or '-'}"]
+    held = f.get("stitch", {}).get("held", {})
+    moved = [v["held_moved_px"] for v in held.values() if v.get("held_moved_px") is not None]
+    lines.append(f"  stitch: {f.get('stitch', {}).get('pairs', 0)} tile pair(s) registered again; untouched "
+                 f"tiles held (a free re-solve would have moved them up to {max(moved, default=0.0):.2f} px)")
+    a = f.get("align", {})
+    lines.append(f"  align: {len(a.get('realigned', []))} section(s) re-aligned {a.get('realigned', [])}; "
+                 f"existing sections moved up to {a.get('largest_untouched_move_px', 0.0):.2f} px "
+                 f"(kept when <= {plan.hold_within:g} px; beyond it: {a.get('moved_beyond_tolerance') or 'none'})")
+    r = f.get("render", {})
+    if r.get("full"):
+        lines.append(f"  render: the canvas origin moved, every plane rendered again ({len(r.get('planes', []))})")
+    elif r:
+        lines.append(f"  render: {r['shards'][0]} of {r['shards_total'][0]} level-0 shards rewritten "
+                     f"({sum(r['shards'])} of {sum(r['shards_total'])} over all levels) in plane(s) {r['planes']}")
+    before, after = plan.totals_before, f.get("totals_after", {})
+    for key in ("stitch.rms", "stitch.p95", "align.rms", "align.p95"):
+        if key in before or key in after:
+            lines.append(f"  {key}: {_num(before.get(key))} -> {_num(after.get(key))} px")
+    if verdict is not None:
+        lines.append("  report: " + ("PASSED" if verdict.passed else "FAILED: " + "; ".join(verdict.failures)))
+    return lines
+
+
+def _num(v) -> str:
+    return "-" if v is None else f"{v:.3g}"
+
+
+# ---------------------------------------------------------------- rollback
+def _record_files(store: TransformStore) -> dict[tuple, Path]:
+    """Return ``(section or None, kind) -> JSON path`` of every current record of a store."""
+    out = {}
+    if store.root.is_dir():
+        for p in store.root.glob("*.json"):
+            out[(None, p.stem)] = p
+    base = store.root / "sections"
+    if base.is_dir():
+        for d in base.iterdir():
+            if d.is_dir() and d.name.isdigit():
+                for p in d.glob("*.json"):
+                    out[(int(d.name), p.stem)] = p
+    return out
+
+
+def _body(path: Path) -> str:
+    doc = json.loads(path.read_text(encoding="utf-8"))
+    doc.pop("written", None)
+    return json.dumps(doc, sort_keys=True)
+
+
+def _restore_records(build: BuildFolder, before: TransformStore) -> list:
+    """Put every record of ``before`` back (the current one goes to history); retire records it lacks."""
+    store = build.store
+    old, cur = _record_files(before), _record_files(store)
+    restored = []
+    for key in sorted(set(old) | set(cur), key=lambda k: (k[0] is None, k[0] or 0, k[1])):
+        section, kind = key
+        if kind == "canvas":
+            continue  # the canvas only grows: planes keep their place
+        if key not in old:
+            store.retire(kind, section)
+            restored.append(key)
+            continue
+        if key in cur and _body(old[key]) == _body(cur[key]):
+            continue
+        if kind == "stitch":
+            store.save_stitch(before.load_stitch(section))
+        elif kind == "align":
+            store.save_alignment(before.load_alignment(section))
+        else:
+            store.save_doc(kind, before.load_doc(kind, section), section)
+        restored.append(key)
+    return restored
+
+
+def rollback_update(build: BuildFolder, *, fail_on: list[str] | None = None, workers=None, scheduler=None,
+                    show_progress: bool = True) -> UpdateOutcome:
+    """Put back the transforms and tile manifest from before the latest update, and the volume with them.
+
+    The shards to rewrite (where the current records and the earlier ones render differently) are
+    recorded before any record is restored, so a killed rollback run again finishes the same work.
+    The canvas keeps its size: planes of sections the update appended become empty (lost) planes.
+    """
+    from ..render.canvas import compute_canvas, settle_canvas
+    from ..render.dirty import changed_boxes, level0_shards
+    from ..render.patch import patch_volume
+    from . import stages
+    from .cluster import dask_client
+    from .progress import ProgressBar
+
+    plans = [p for p in load_plans(build.root) if p.status != "rolled_back"]
+    if not plans:
+        raise InputError("no update to roll back", file=build.root)
+    plan = plans[-1]
+    before = _before_store(build, plan)
+    settings = build.config.render
+    block = settings.chunk * settings.shard
+    show = show_progress
+    if plan.status != "rolling_back":
+        canvas = build.store.load_canvas()
+        dirty: dict[str, set] = {}
+        sections = set(build.store.sections_with("stitch")) | set(before.sections_with("stitch"))
+        for s in sorted(sections):
+            boxes, _ = changed_boxes((build.store.load_stitch(s), build.store.load_alignment(s)),
+                                     (before.load_stitch(s), before.load_alignment(s)))
+            if canvas is not None and boxes:
+                dirty[str(s - canvas.first_section)] = level0_shards(boxes, canvas, block)
+        for z, shards in ((plan.render or {}).get("shards") or {}).items():
+            dirty.setdefault(z, set()).update(_unpack(shards))
+        plan.facts["rollback"] = {"from_status": plan.status,
+                                  "shards": {z: _pack(v) for z, v in dirty.items()}}
+        plan.status = "rolling_back"
+        save_plan(build.root, plan)
+    restored = _restore_records(build, before)
+    build.update_state(tiles=plan.tiles_before, manifests=plan.manifests_before)
+    build.keep_checked_manifest(read_tile_manifest(Path(plan.tiles_before)), csv_facts(Path(plan.tiles_before)))
+    manifest = build.tile_manifest()
+    vol = build.config.volume
+    fresh = compute_canvas(build.store, manifest.sections, manifest.lost_sections, vol.pixel_size,
+                           vol.section_thickness)
+    previous = build.store.load_canvas()
+    canvas, _ = settle_canvas(previous, fresh, shard=block, chunk=settings.chunk)
+    dirty = {int(z): _unpack(v) for z, v in plan.facts["rollback"]["shards"].items()}
+    with dask_client(workers, scheduler):
+        done = patch_volume(build.root, settings, canvas, dirty, previous=previous,
+                            progress=ProgressBar("render", show))
         stages.render_channels_stage(build, progress=ProgressBar("markers", show))
-    stages.report_stage(build, progress=ProgressBar("report", show))
-    return {"sections": new.sections, "planes": facts.get("planes", []), "manifest": str(merged)}
+    verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
+    plan.status = "rolled_back"
+    plan.facts["rollback"].update({"records": len(restored), "rewritten": done["shards"]})
+    save_plan(build.root, plan)
+    lines = [f"update {plan.number:04d} rolled back: {len(restored)} record(s) restored, "
+             f"{done['shards'][0]} of {done['shards_total'][0]} level-0 shards rewritten in plane(s) {done['planes']}",
+             "  report: " + ("PASSED" if verdict.passed else "FAILED: " + "; ".join(verdict.failures))]
+    return UpdateOutcome(plan, lines, verdict)

@@ -209,6 +209,18 @@ class TransformStore:
         env = self._read(kind, section)
         return None if env is None else env["record"]
 
+    def retire(self, kind: str, section: int | None = None) -> bool:
+        """Move the current record of ``kind`` (and its arrays) into ``history/``; return False if there is none.
+
+        For taking back a record an update added (its section did not exist before).
+        """
+        path = self._json_path(kind, section)
+        if not path.exists():
+            return False
+        arrays = {"stitch": {"illumination": None}, "align": {"displacement": None}}.get(kind, {})
+        self._retire(path, arrays)
+        return True
+
     def sections_with(self, kind: str) -> list[int]:
         """Return the sections that have a current record of ``kind``."""
         base = self.root / "sections"

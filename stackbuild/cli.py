@@ -144,14 +144,50 @@ def _add_stages(sub) -> None:
                         "misses each one" "; replaces the build's landmark file from now on")
     _add_common(q)
 
-    u = sub.add_parser("update", help="re-register and re-render sections whose tiles were imaged again",
-                       description="Replace the tiles of the sections listed in NEW_TILES_CSV, then "
-                                   "re-stitch those sections, re-align the stack and re-render what changed.")
+    u = sub.add_parser("update", help="bring re-imaged tiles or new sections into a finished build",
+                       description="Replace the tiles named in NEW_TILES_CSV (same section and tile name) and add "
+                                   "the others, stitch those sections again with untouched tiles held in place, "
+                                   "align the stack again, and rewrite only the shards whose pixels change. "
+                                   "The plan is recorded in DIR/updates/NNNN/ before anything changes; a killed "
+                                   "update run again (or --resume) finishes exactly that plan.")
     u.add_argument("dir", metavar="DIR", help="build folder")
-    u.add_argument("--tiles", required=True, metavar="NEW_TILES_CSV",
-                   help="tile manifest holding only the re-imaged sections")
+    how = u.add_mutually_exclusive_group(required=True)
+    how.add_argument("--tiles", metavar="NEW_TILES_CSV",
+                     help="tile manifest of the re-imaged tiles and new sections (columns section,tile,path,x,y)")
+    how.add_argument("--resume", action="store_true", help="finish the update that was interrupted")
+    how.add_argument("--rollback", action="store_true",
+                     help="put back the transforms and tile manifest from before the latest update and "
+                          "rewrite the shards that changed")
+    u.add_argument("--append", action="store_true",
+                   help="allow section numbers the build does not have yet (later than its first section)")
+    u.add_argument("--dry-run", action="store_true",
+                   help="list the sections, planes and shards the update would rewrite; write nothing")
+    u.add_argument("--hold-within", type=float, default=None, metavar="PX",
+                   help="an untouched section keeps its alignment (and its planes their bytes) unless the "
+                        "re-solve moves it by more than this many pixels (default 0.5)")
+    u.add_argument("--fail-on", action="append", metavar="RULE", default=None,
+                   help="exit with status 3 if the report misses this bar, e.g. 'align.p95>2px' (repeatable)")
     _add_cluster(u)
     _add_common(u)
+
+    lo = sub.add_parser("locate", help="map points between volume, raw tile and stage coordinates",
+                        description="Read points from IN.csv and write OUT.csv with every point in volume "
+                                    "coordinates (z, y, x at level 0), raw tile coordinates (section, tile, tile_x, "
+                                    "tile_y) and stage coordinates (section, stage_x, stage_y), with flags: "
+                                    "lost_section, outside_volume, no_tile, outside_tissue.")
+    lo.add_argument("dir", metavar="DIR", help="build folder (rendered)")
+    lo.add_argument("--points", required=True, metavar="IN.csv",
+                    help="points: columns z,y,x (--from volume; z_nm,y_nm,x_nm with --nm), section,tile,tile_x,"
+                         "tile_y (--from tile) or section,stage_x,stage_y (--from stage); other columns are kept")
+    lo.add_argument("--from", dest="source", required=True, choices=("volume", "tile", "stage"),
+                    help="which coordinates IN.csv holds")
+    lo.add_argument("--out", required=True, metavar="OUT.csv", help="where to write the located points")
+    lo.add_argument("--nm", action="store_true", help="volume coordinates in nanometres (in and out)")
+    lo.add_argument("--from-version", type=int, metavar="N",
+                    help="the points were placed in transform version N (0 = as first built, k = after update k); "
+                         "they are carried to --to-version through the raw tiles and moved_px says how far")
+    lo.add_argument("--to-version", type=int, metavar="N", help="transform version to map into (default current)")
+    _add_common(lo)
 
     k = sub.add_parser("audit", help="check that the volume matches its transforms and every chunk decodes",
                        description="Compare every written plane (EM and markers) with the transform records "
@@ -333,11 +369,54 @@ def _cmd_audit(args) -> int:
 
 
 def _cmd_update(args) -> int:
-    from .run.update import update_build
+    from .run.update import HOLD_WITHIN, rollback_update, update_build
 
     build = _open_build(args.dir)
-    update_build(build, Path(args.tiles), workers=args.workers, scheduler=args.scheduler,
-                 show_progress=not args.quiet)
+    if args.rollback:
+        outcome = rollback_update(build, fail_on=args.fail_on, workers=args.workers, scheduler=args.scheduler,
+                                  show_progress=not args.quiet)
+    else:
+        hold = HOLD_WITHIN if args.hold_within is None else args.hold_within
+        outcome = update_build(build, Path(args.tiles) if args.tiles else None, append=args.append,
+                               dry_run=args.dry_run, resume=args.resume, hold_within=hold,
+                               fail_on=args.fail_on, workers=args.workers, scheduler=args.scheduler,
+                               show_progress=not args.quiet)
+    _say("\n".join(outcome.lines))
+    if outcome.verdict is None:
+        return EXIT_OK
+    return _verdict_status(outcome.verdict, args.fail_on)
+
+
+def _cmd_locate(args) -> int:
+    from .run.locate import locate_file
+
+    build = _open_build(args.dir)
+    n = locate_file(build.root, Path(args.points), Path(args.out), args.source, nm=args.nm,
+                    from_version=args.from_version, to_version=args.to_version)
+    _say(f"located {n} point(s): {args.out}")
+    return EXIT_OK
+
+
+def _cmd_plan(args) -> int:
+    import json
+
+    from .config import load_config
+    from .run.plan import make_plan, plan_text
+    from .run.plan_shape import VolumeShape
+
+    described = (args.sections, args.tiles_per_section, args.tile_size)
+    if args.tiles and any(v is not None for v in described):
+        raise InputError("give a tile manifest or --sections/--tiles-per-section/--tile-size, not both")
+    if args.tiles:
+        shape = VolumeShape.from_manifest(Path(args.tiles))
+    elif all(v is not None for v in described):
+        shape = VolumeShape.described(*described, bits=args.bits)
+    else:
+        raise InputError("give a tile manifest, or all of --sections, --tiles-per-section and --tile-size")
+    if args.cores < 1:
+        raise InputError(f"--cores must be >= 1, got {args.cores}")
+    plan = make_plan(shape, load_config(args.config), cores=args.cores)
+    _say(json.dumps(plan, indent=1) if args.json else plan_text(plan))
     return EXIT_OK
 
 
@@ -384,7 +463,7 @@ def _say(text: str) -> None:
 
 COMMANDS = {"build": _cmd_build, "stitch": _cmd_stitch, "align": _cmd_align, "channels": _cmd_channels,
             "render": _cmd_render,
-            "report": _cmd_report, "update": _cmd_update, "synth": _cmd_synth,
+            "report": _cmd_report, "update": _cmd_update, "locate": _cmd_locate, "synth": _cmd_synth,
             "audit": _cmd_audit}
 
 

@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from ..folder import BuildFolder
 from ..transforms.records import SectionAlignment
 from ..transforms.types import Affine2D, DisplacementField
 from .blockmatch import block_contrast, block_match, filter_vectors, grid_nodes
@@ -319,16 +320,17 @@ def align_sections(source, settings: AlignSettings, *, mapper=map, progress=None
                 p.unlink(missing_ok=True)
 
 
-def run_align(build_dir, settings: AlignSettings, *, mapper=map,
-              progress=None) -> dict[int, SectionAlignment]:
-    """Align all stitched sections of a build folder and store one alignment per section.
+def run(folder, settings: AlignSettings, *, mapper, progress=None) -> dict[int, SectionAlignment]:
+    """Return the alignment of every stitched section of ``folder``, also stored there (the align stage).
 
-    Reads stitch records from ``DIR/transforms``, works through ``mapper``,
-    writes ``SectionAlignment`` records with ``TransformStore.save_alignment``
-    and returns them. Lost sections (gaps in the numbering) get no record.
+    Reads stitch records from the folder's transform store, works through
+    ``mapper``, keeps its temporary files in ``folder.scratch_dir("align")``
+    (removed at the end), writes ``SectionAlignment`` records with
+    ``TransformStore.save_alignment`` and returns them. Lost sections (gaps
+    in the numbering) get no record.
     """
-    source = BuildSource(build_dir)
-    scratch = Path(build_dir) / "scratch" / "align"
+    source = BuildSource(folder.root)
+    scratch = folder.scratch_dir("align")
     try:
         aligns = align_sections(source, settings, mapper=mapper, progress=progress, scratch=scratch)
     finally:
@@ -337,3 +339,9 @@ def run_align(build_dir, settings: AlignSettings, *, mapper=map,
     for rec in aligns.values():
         store.save_alignment(rec)
     return aligns
+
+
+def run_align(build_dir, settings: AlignSettings, *, mapper=map,
+              progress=None) -> dict[int, SectionAlignment]:
+    """Return :func:`run` on the build folder at ``build_dir``."""
+    return run(BuildFolder(build_dir), settings, mapper=mapper, progress=progress)

@@ -212,12 +212,14 @@ def _jobs(folder: BuildFolder, entries: list[ChannelEntry], settings: ChannelSet
     return [_ChannelJob(str(store.root), e, em_px, settings) for e in entries]
 
 
-def run_channels(build_dir, settings: ChannelSettings, *, mapper=map, progress=None) -> dict:
-    """Register every marker image of a build to its section and store one record per section.
+def run(folder: BuildFolder, settings: ChannelSettings, *, mapper, progress=None) -> dict:
+    """Return counts of the marker images of ``folder`` registered to their sections (the channels stage).
+
+    Stores one ``channels`` record per section.
 
     Parameters
     ----------
-    build_dir : str or Path
+    folder : BuildFolder
         The build folder (stitch records and a channel manifest needed).
     settings : ChannelSettings
         Model, histogram bins and search range.
@@ -240,7 +242,6 @@ def run_channels(build_dir, settings: ChannelSettings, *, mapper=map, progress=N
     """
     t0 = time.perf_counter()
     check_settings(settings)
-    folder = BuildFolder(Path(build_dir))
     entries = folder.channel_manifest()
     jobs = _jobs(folder, entries, settings)
     if progress is not None:
@@ -258,3 +259,8 @@ def run_channels(build_dir, settings: ChannelSettings, *, mapper=map, progress=N
             "flagged": sum(bool(r["flags"]) for r in records),
             "channels": sorted({r["channel"] for r in records}), "sections": sorted(by_section),
             "seconds": time.perf_counter() - t0}
+
+
+def run_channels(build_dir, settings: ChannelSettings, *, mapper=map, progress=None) -> dict:
+    """Return :func:`run` on the build folder at ``build_dir``."""
+    return run(BuildFolder(build_dir), settings, mapper=mapper, progress=progress)

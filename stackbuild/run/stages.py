@@ -9,12 +9,8 @@ from __future__ import annotations
 
 import logging
 import time
-from dataclasses import dataclass
-from pathlib import Path
 
 from ..errors import InputError
-from ..manifest import TileEntry
-from ..stitch.settings import StitchSettings
 from ..transforms.store import atomic_write_text
 from ..folder import BuildFolder
 
@@ -23,82 +19,56 @@ log = logging.getLogger(__name__)
 STAGES = ("stitch", "align", "channels", "render", "report")
 
 
-@dataclass(frozen=True)
-class _StitchJob:
-    build: str
-    section: int
-    tiles: tuple[TileEntry, ...]
-    settings: StitchSettings
-
-
-def _stitch_one(job: _StitchJob) -> dict:
-    """Stitch one section and store its record (runs on a worker)."""
-    from ..stitch.section import stitch_section
-
-    rec = stitch_section(list(job.tiles), job.settings, job.section)
-    BuildFolder(Path(job.build)).store.save_stitch(rec)
-    return {"section": job.section, "flags": rec.flags, "stats": rec.stats}
-
-
 def stitch_stage(build: BuildFolder, mapper, *, sections: list[int] | None = None,
                  resume: bool = False) -> list[dict]:
     """Stitch every section (or ``sections``) of the build; return one summary per section.
 
     With ``resume``, sections that already have a stitch record are skipped.
     """
-    manifest = build.tile_manifest()
-    cfg = build.config
-    todo = sections if sections is not None else manifest.sections
-    unknown = sorted(set(todo) - set(manifest.sections))
-    if unknown:
-        raise InputError(f"section(s) {unknown} have no tiles in the manifest", file=manifest.source)
-    if resume:
-        have = set(build.store.sections_with("stitch"))
-        todo = [s for s in todo if s not in have]
+    from ..stitch.stage import run, sections_to_stitch
+
+    todo = sections_to_stitch(build, sections, resume)  # refused before the stage is marked running
     build.mark_stage("stitch", "running")
     t0 = time.monotonic()
-    jobs = [_StitchJob(str(build.root), s, tuple(manifest.section_tiles(s)), cfg.stitch) for s in todo]
-    out = mapper(_stitch_one, jobs)
+    out = run(build, build.config.stitch, mapper=mapper, sections=todo)
     build.mark_stage("stitch", "done", seconds=round(time.monotonic() - t0, 2),
-                     sections=len(manifest.sections))
+                     sections=len(build.tile_manifest().sections))
     return out
 
 
 def align_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
     """Align all stitched sections to each other and store one alignment per section."""
-    from ..align.stage import run_align
+    from ..align.stage import run
 
     build.mark_stage("align", "running")
     t0 = time.monotonic()
-    result = run_align(build.root, build.config.align, mapper=mapper, progress=progress)
+    result = run(build, build.config.align, mapper=mapper, progress=progress)
     build.mark_stage("align", "done", seconds=round(time.monotonic() - t0, 2))
     return result
 
 
 def channels_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
     """Register every marker image to its EM section (nothing to do without a channel manifest)."""
-    from ..channels.stage import run_channels
+    from ..channels.stage import run
 
     if not build.load_state().get("channels"):
         return {}
     build.mark_stage("channels", "running")
     t0 = time.monotonic()
-    result = run_channels(build.root, build.config.channels, mapper=mapper, progress=progress)
+    result = run(build, build.config.channels, mapper=mapper, progress=progress)
     build.mark_stage("channels", "done", seconds=round(time.monotonic() - t0, 2))
     return result
 
 
-def render_channels_stage(build: BuildFolder, *, overwrite: bool = False, progress=None) -> dict:
+def render_channels_stage(build: BuildFolder, *, overwrite: bool = False, progress=None, mapper=None) -> dict:
     """Write each marker channel's pyramid beside the EM, in the same physical space (stale planes only, unless ``overwrite``)."""
-    from ..render.channels import render_channels
+    from ..render.stage import run_markers
 
-    if not build.load_state().get("channels"):
-        return {}
-    return render_channels(build.root, build.config.render, overwrite=overwrite, progress=progress)
+    return run_markers(build, build.config.render, mapper=mapper, overwrite=overwrite, progress=progress)
 
 
 def render_stage(build: BuildFolder, *, planes: list[int] | None = None, resume: bool = False,
-                 overwrite: bool = False, progress=None) -> dict:
+                 overwrite: bool = False, progress=None, mapper=None) -> dict:
     """Write the OME-Zarr pyramid from the raw tiles and the stored transforms.
 
     With ``resume``, only the stale planes are rendered (never written, rendered
@@ -106,16 +76,16 @@ def render_stage(build: BuildFolder, *, planes: list[int] | None = None, resume:
     nothing when there are none. The stage is marked running only once every check
     has passed, so a refused render leaves ``build.json`` as it was.
     """
-    from ..render.write import prepare_render, write_render
+    from ..render.stage import prepare, run
 
-    job = prepare_render(build.root, build.config.render, planes=planes, overwrite=overwrite, resume=resume)
+    job = prepare(build, build.config.render, planes=planes, overwrite=overwrite, resume=resume)
     if not job.todo and not job.overwrite:
         if not build.stage_done("render"):
             build.mark_stage("render", "done", seconds=0.0, planes=0)
         return {"planes": [], "skipped": "every plane matches its transforms"}
     build.mark_stage("render", "running")
     t0 = time.monotonic()
-    facts = write_render(job, progress=progress)
+    facts = run(build, build.config.render, mapper=mapper, progress=progress, job=job)
     build.mark_stage("render", "done", seconds=round(time.monotonic() - t0, 2),
                      planes=len(facts.get("planes", [])))
     return facts
@@ -137,3 +107,26 @@ def report_stage(build: BuildFolder, *, fail_on: list[str] | None = None, progre
         raise
     build.mark_stage("report", "done", seconds=round(time.monotonic() - t0, 2))
     return verdict
+
+
+def run_build(build: BuildFolder, client, *, resume: bool = False, fail_on: list[str] | None = None,
+              show: bool = True):
+    """Run every stage on ``build`` in order (:data:`STAGES`) on ``client``; return the report's verdict.
+
+    With ``resume``, finished stages are kept: stitched sections, a finished align or
+    channels stage, rendered planes that still match their transforms.
+    """
+    from .cluster import client_mapper
+    from .progress import ProgressBar
+
+    def mapper(name: str):
+        return client_mapper(client, ProgressBar(name, show))
+
+    stitch_stage(build, mapper("stitch"), resume=resume)
+    if not (resume and build.stage_done("align")):
+        align_stage(build, mapper("align"), progress=ProgressBar("solve", show))
+    if not (resume and build.stage_done("channels")):
+        channels_stage(build, mapper("channels"))
+    render_stage(build, resume=resume, progress=ProgressBar("render", show), mapper=mapper("render"))
+    render_channels_stage(build, progress=ProgressBar("markers", show), mapper=mapper("markers"))
+    return report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))

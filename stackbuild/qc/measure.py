@@ -2,7 +2,8 @@
 
 Nothing here trusts the numbers the stitcher or the aligner stored: seams are
 re-measured from the raw tiles at their final placements, and alignment is
-re-measured by block matching adjacent planes of the rendered volume.
+estimated from block shifts between nearby planes of the rendered volume
+(:mod:`stackbuild.qc.probe`).
 """
 from __future__ import annotations
 
@@ -13,8 +14,8 @@ import numpy as np
 
 from ..tiles import read_tile
 from ..transforms.records import Canvas, SectionAlignment, SectionStitch
-from .blockmatch import BlockMatches, match_blocks
-from .planes import PlaneSource, data_mask
+from .blockmatch import BlockMatches
+from .planes import PlaneSource
 from .seams import overlap_box, seam_residual
 from .settings import ReportSettings
 
@@ -30,21 +31,11 @@ class SeamBlocks:
 
 
 @dataclass
-class PlanePair:
-    """Re-measured residuals between planes ``za`` and ``zb`` (points in level-0 output pixels,
-    shifts in level-0 pixels)."""
-
-    za: int
-    zb: int
-    blocks: BlockMatches
-
-
-@dataclass
 class Measurements:
     """All block-level measurements of one build, kept in memory for the metrics and plots."""
 
     seams: dict[int, list[SeamBlocks]] = field(default_factory=dict)
-    plane_pairs: list[PlanePair] = field(default_factory=list)
+    probe: list[dict] = field(default_factory=list)
     source: PlaneSource | None = None
     notes: list[str] = field(default_factory=list)
 
@@ -109,38 +100,4 @@ def measure_seams(stitch: SectionStitch, settings: ReportSettings) -> list[SeamB
                           spacing=settings.seam_spacing, min_ncc=settings.min_block_ncc,
                           smooth=settings.seam_smooth)
         out.append(SeamBlocks(a, b, m))
-    return out
-
-
-def plane_neighbours(depth: int, lost: set[int]) -> list[tuple[int, int]]:
-    """Return the ``(za, zb)`` plane pairs to compare: each present plane with the next present one."""
-    present = [z for z in range(depth) if z not in lost]
-    return list(zip(present[:-1], present[1:]))
-
-
-def measure_planes(source: PlaneSource, lost: set[int], settings: ReportSettings,
-                   progress=None) -> list[PlanePair]:
-    """Return block-matching residuals between every pair of adjacent present planes.
-
-    Block sizes in the settings are level-0 pixels; they are divided by the
-    level's factor so the blocks cover the same tissue at any level.
-    """
-    f = source.factor
-    spacing = max(2, int(round(settings.probe_spacing / f)))
-    radius = max(3, int(round(settings.probe_half_size / f)))
-    search = max(2, int(round(settings.probe_max_shift / f)))
-    pairs = plane_neighbours(source.depth, lost)
-    out, cached = [], {}
-    for k, (za, zb) in enumerate(pairs):
-        a = cached.pop(za, None)
-        if a is None:
-            a = source.plane(za)
-        b = source.plane(zb)
-        cached = {zb: b}
-        valid = data_mask(a) & data_mask(b)
-        m = match_blocks(a, b, spacing=spacing, radius=radius, search=search,
-                         min_ncc=settings.min_block_ncc, valid=valid)
-        out.append(PlanePair(za, zb, BlockMatches(source.to_level0(m.points), m.shifts * f, m.ncc)))
-        if progress is not None:
-            progress(k + 1, len(pairs))
     return out

@@ -81,7 +81,9 @@ from ..transforms.records import Canvas
 from ..transforms.types import Affine2D
 from .blockmatch import BlockMatches, summarize
 from .landmarks import landmark_rows, landmark_totals, per_channel_rms
-from .measure import Measurements, measure_planes, measure_seams, section_to_output
+from .measure import Measurements, measure_seams, section_to_output
+from .probe import measure_error
+from .zchain import section_error
 from .planes import open_planes
 from .settings import ReportSettings
 
@@ -166,8 +168,9 @@ def _stitch_rows(section, stitch, seams, align, sc: _Scale):
     for t in stitch.tiles:
         mine = [r["residual"] for r in pairs if t.tile in (r["a"], r["b"]) and r["residual"] is not None]
         centre = (t.x + (t.width - 1) / 2, t.y + (t.height - 1) / 2)
+        flags = list(t.flags) + ([] if Path(t.path).is_file() else ["missing_file"])
         tiles.append({"section": section, "tile": t.tile, "path": t.path, "x": t.x, "y": t.y,
-                      "flags": list(t.flags), "stitch_residual": t.residual,
+                      "flags": flags, "stitch_residual": t.residual,
                       "seam_median": float(np.median(mine)) if mine else None,
                       "seam_max": max(mine, default=None), "seams": len(mine), "at": where(centre)})
     summary = summarize(misfits)
@@ -197,37 +200,74 @@ def _inliers(align) -> dict:
     return out
 
 
-def _plane_summaries(meas: Measurements, sc: _Scale) -> dict[tuple[int, int], dict]:
+def plane_errors(probe: list[dict], depth: int) -> dict[int, dict]:
+    """Return ``{z: {"align_error_px", "align_error_unc_px", "blocks", "max", "at_xy"}}`` from the probe's region sums."""
+    n, sq, noise = np.zeros(depth), np.zeros(depth), np.zeros(depth)
+    top, at = np.full(depth, -1.0), [None] * depth
+    for r in probe:
+        p = r.get("planes")
+        if not p:
+            continue
+        for i, z in enumerate(r["z"]):
+            n[z] += p["n"][i]
+            sq[z] += p["sum_sq"][i]
+            noise[z] += p["sum_noise"][i]
+            if p["max"][i] > top[z]:
+                top[z], at[z] = p["max"][i], p["max_at"][i]
     out = {}
-    for pp in meas.plane_pairs:
-        sec = sc.section(pp.zb)
-        out[(pp.za, pp.zb)] = _summary(pp.blocks, lambda p, s=sec: sc.at(s, p))
+    for z in range(depth):
+        est, unc = section_error(n[z], sq[z], noise[z])
+        out[z] = {"align_error_px": est, "align_error_unc_px": unc, "blocks": int(n[z]),
+                  "max": float(top[z]) if top[z] >= 0 else None, "at_xy": at[z]}
     return out
 
 
-def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale) -> list[dict]:
-    plane = _plane_summaries(meas, sc)
-    prev = {zb: s for (za, zb), s in plane.items()}
-    nxt = {za: s for (za, zb), s in plane.items()}
+def _motion(probe: list[dict]) -> dict[tuple[int, int], dict]:
+    """Return apparent motion per link ``(z_from, z_to)``: blocks and the block-weighted median and p95 (px)."""
+    acc: dict[tuple[int, int], list] = {}
+    for r in probe:
+        for link in r.get("links", []):
+            if link["n"]:
+                acc.setdefault((link["z_from"], link["z_to"]), []).append(link)
+    out = {}
+    for k, rows in acc.items():
+        w = np.array([x["n"] for x in rows], float)
+        out[k] = {"n": int(w.sum()), "median": float(np.average([x["median"] for x in rows], weights=w)),
+                  "p95": float(max(x["p95"] for x in rows))}
+    return out
+
+
+def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, settings) -> list[dict]:
+    depth = sc.canvas.depth if sc.canvas else 0
+    errors = plane_errors(meas.probe, depth) if meas.probe else {}
+    motion = _motion(meas.probe)
+    prev = {zb: v for (za, zb), v in sorted(motion.items(), key=lambda kv: kv[0][1] - kv[0][0], reverse=True)}
     lost = set(sc.canvas.lost_sections) if sc.canvas else set()
     rows = []
     for s in sections:
         st, al, z = stitches.get(s), aligns.get(s), sc.z(s)
-        ap, an = prev.get(z), nxt.get(z)
-        p95s = [x["p95"] for x in (ap, an) if x and x["p95"] is not None]
         flags = list(st.flags if st else []) + list(al.flags if al else [])
         if sc.canvas and s in sc.canvas.flagged_sections:
             extra = sc.canvas.flagged_sections[s]
             flags += [str(f) for f in extra] if isinstance(extra, (list, tuple, dict)) else [str(extra)]
+        err = errors.get(z) or {"align_error_px": None, "align_error_unc_px": None, "blocks": 0, "max": None,
+                                "at_xy": None}
+        if err["align_error_px"] is not None and err["align_error_px"] > settings.align_max:
+            flags.append("error_over_bar")
+        if s not in lost and st is not None and not err["blocks"] and meas.probe:
+            flags.append("not_measured")
         rows.append({
             "section": s, "z": z, "lost": s in lost, "flags": sorted(set(flags)),
+            "align_error_px": err["align_error_px"], "align_error_unc_px": err["align_error_unc_px"],
+            "align_error_blocks": err["blocks"],
+            "align_error_max_px": err["max"],
+            "align_error_at": sc.at(s, err["at_xy"]) if err["at_xy"] is not None else None,
+            "motion_prev": prev.get(z),
             "tiles": len(st.tiles) if st else 0,
             "pairs_accepted": sum(p.accepted for p in st.pairs) if st else 0,
             "pairs_rejected": sum(not p.accepted for p in st.pairs) if st else 0,
             "stitch": seam_sums.get(s) or summarize([]) | {"at": None},
             "stitcher_stats": dict(st.stats) if st else {},
-            "align_prev": ap, "align_next": an,
-            "align_score": float(np.median(p95s)) if p95s else None,
             "inliers": _inliers(al),
             "elastic": _elastic(s, al, sc), "aligner_stats": dict(al.stats) if al else {},
         })
@@ -273,21 +313,28 @@ def _totals(tiles, pairs, sections, channels, meas: Measurements) -> dict:
         vals = [key(r) for r in rows if key(r) is not None]
         return max(vals) if vals else None
 
-    # Planes either side of a lost section are two or more cuts apart: their residuals hold real
-    # change of the tissue, so they are reported per section but kept out of the volume totals.
-    plane = [summarize(pp.blocks.magnitudes) for pp in meas.plane_pairs if pp.zb - pp.za == 1]
+    err = np.array([r["align_error_px"] for r in sections if r["align_error_px"] is not None])
+    # apparent motion between adjacent planes only (across a lost section the tissue itself changed twice)
+    motion = [r["motion_prev"]["p95"] for r in sections
+              if r["motion_prev"] and r["z"] is not None and not r["lost"]]
     n_pairs = sum(r["accepted"] is not None for r in pairs)
     rejected = sum(r["accepted"] is False for r in pairs)
     fs = sum(bool(r["flags"]) for r in sections)
     ft = sum(bool(r["flags"]) for r in tiles)
     fc = sum(bool(r["flags"]) or r["registered"] is False for r in channels)
+    blank = sum(1 for r in sections if "blank_section" in r["flags"])
+    missing = sum(1 for r in tiles if "missing_file" in r["flags"])
     return {
+        "align.rms": float(np.sqrt(np.mean(err ** 2))) if err.size else None,
+        "align.p95": float(np.percentile(err, 95)) if err.size else None,
+        "align.max": float(err.max()) if err.size else None,
         "stitch.rms": top(sections, lambda r: r["stitch"]["rms"]),
         "stitch.p95": top(sections, lambda r: r["stitch"]["p95"]),
         "stitch.max": top(sections, lambda r: r["stitch"]["max"]),
-        "align.rms": top(plane, lambda r: r["rms"]), "align.p95": top(plane, lambda r: r["p95"]),
-        "align.max": top(plane, lambda r: r["max"]),
+        "motion.p95": max(motion) if motion else None,
         "elastic.max": top(sections, lambda r: r["elastic"]["max"]),
+        "sections.blank": blank, "tiles.missing": missing,
+        "channels.failed": sum(r["registered"] is False for r in channels),
         "flagged": fs + ft, "flagged.sections": fs, "flagged.tiles": ft,
         "lost": sum(r["lost"] for r in sections), "rejected": rejected,
         "rejected.fraction": rejected / n_pairs if n_pairs else None,
@@ -296,7 +343,20 @@ def _totals(tiles, pairs, sections, channels, meas: Measurements) -> dict:
     }
 
 
-def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> tuple[dict, Measurements]:
+def measure_factor(settings: ReportSettings) -> float:
+    """Return the coarsest pixel (level-0 px) the probe may read: ``measure_scale``, at most a quarter of the bar."""
+    return float(max(1.0, min(settings.measure_scale, settings.align_p95 / 4.0)))
+
+
+def _mark_blank(sections: list[dict], stitches: dict) -> None:
+    """Flag ``blank_section`` where every tile of a section was found blank (imaged resin or nothing)."""
+    for r in sections:
+        st = stitches.get(r["section"])
+        if st is not None and st.tiles and all("blank" in t.flags for t in st.tiles):
+            r["flags"] = sorted(set(r["flags"]) | {"blank_section"})
+
+
+def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapper=None) -> tuple[dict, Measurements]:
     """Return the metrics document of a build and the block-level measurements behind it.
 
     Parameters
@@ -325,18 +385,18 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
         pairs += p
         if progress:
             progress(k + 1, len(stitches))
-    meas.source = open_planes(build_dir, max_factor=settings.measure_scale, max_px=settings.measure_max_px)
+    factor = measure_factor(settings)
+    meas.source = open_planes(build_dir, max_factor=factor)
+    written = meas.source is not None and meas.source.origin == "volume.zarr"
     if meas.source is None:
-        meas.notes.append("no rendered volume yet: section-to-section residuals were not measured")
+        meas.notes.append("no rendered volume yet: the alignment error was not estimated")
     else:
         lost = {sc.z(s) for s in canvas.lost_sections} if canvas else set()
-        meas.plane_pairs = measure_planes(meas.source, lost, settings, progress)
-        gaps = [f"{pp.za}-{pp.zb}" for pp in meas.plane_pairs if pp.zb - pp.za > 1]
-        if gaps:
-            meas.notes.append("plane pairs across a lost section (" + ", ".join(gaps) + ") compare tissue "
-                              "two or more sections apart; they are listed per section but not counted "
-                              "in the align.* totals")
-    sections = _section_rows(secs, stitches, aligns, seam_sums, meas, sc)
+        present = [z for z in range(meas.source.depth) if z not in lost]
+        meas.probe = measure_error(build_dir, meas.source, present, settings, written=written,
+                                   max_factor=factor, mapper=mapper or map)
+    sections = _section_rows(secs, stitches, aligns, seam_sums, meas, sc, settings)
+    _mark_blank(sections, stitches)
     channels = _channel_rows(store, secs, aligns, sc)
     landmarks, notes = landmark_rows(folder, stitches, aligns, sc)
     meas.notes += notes
@@ -359,7 +419,7 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None) -> t
         "worst": {"tile": _worst(tiles, lambda r: r["seam_median"]),
                   "pair": _worst(pairs, lambda r: r["residual"]),
                   "section_stitch": _worst(sections, lambda r: r["stitch"]["rms"]),
-                  "section_align": _worst(sections, lambda r: r["align_score"]),
+                  "section_align": _worst(sections, lambda r: r["align_error_px"]),
                   "channel": _worst(channels, lambda r: None if r["measure_after"] is None
                                     else -r["measure_after"]),
                   "landmark": _worst(landmarks, lambda r: r["residual"])},
@@ -407,15 +467,8 @@ def _jsonable(x):
 
 
 def block_rows(meas: Measurements) -> list[dict]:
-    """Return one row per section-to-section block: planes, level-0 place, residual (px), NCC."""
-    rows = []
-    for pp in meas.plane_pairs:
-        b = pp.blocks
-        for (x, y), (dx, dy), c in zip(b.points, b.shifts, b.ncc):
-            rows.append({"z_from": pp.za, "z_to": pp.zb, "x_px": round(float(x), 2), "y_px": round(float(y), 2),
-                         "dx": round(float(dx), 4), "dy": round(float(dy), 4),
-                         "residual": round(float(np.hypot(dx, dy)), 4), "ncc": round(float(c), 4)})
-    return rows
+    """Return the sampled probe blocks: plane, level-0 place, estimated error and apparent motion (px)."""
+    return [row for r in meas.probe for row in r.get("sample", [])]
 
 
 def write_metrics(doc: dict, qc_dir: str | Path, meas: Measurements | None = None) -> list[Path]:

@@ -60,6 +60,21 @@ class PlaneSource:
             p = p[:h, :w].reshape(h // b, b, w // b, b).mean(axis=(1, 3), dtype=np.float32)
         return p
 
+    def window(self, z: int, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
+        """Return rows ``y0:y1``, columns ``x0:x1`` (this level's pixels, after binning) of plane ``z`` as float32.
+
+        Only the chunks under the window are read (or rendered, for the lazy volume).
+        """
+        b = self.bin
+        p = self.data[int(z), y0 * b:y1 * b, x0 * b:x1 * b]
+        if hasattr(p, "compute"):
+            p = p.compute()
+        p = np.asarray(p, dtype=np.float32)
+        if b > 1:
+            h, w = (p.shape[0] // b) * b, (p.shape[1] // b) * b
+            p = p[:h, :w].reshape(h // b, b, w // b, b).mean(axis=(1, 3), dtype=np.float32)
+        return p
+
     def to_level0(self, points: np.ndarray) -> np.ndarray:
         """Map ``(N, 2)`` ``(x, y)`` pixels of this level to level-0 output pixels."""
         return np.asarray(points, float) * self.factor + np.asarray(self.offset, float)

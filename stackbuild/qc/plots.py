@@ -19,6 +19,41 @@ from matplotlib.patches import Rectangle  # noqa: E402
 # Our palette: a sequential map for magnitudes and a few accents.
 SEQ = "cividis"
 INK, GOOD, BAD, WARN, LOST = "#22313f", "#2a9d8f", "#c8553d", "#e9a23b", "#b8b8b8"
+#: cells without data: a hatched pale magenta, a colour the sequential map never takes
+NO_DATA = "#f4c6e8"
+
+
+def nice_length(span_nm: float) -> float:
+    """Return a round length (1, 2 or 5 times a power of ten, nm) of about a fifth of ``span_nm``."""
+    target = max(span_nm / 5.0, 1e-9)
+    base = 10 ** np.floor(np.log10(target))
+    return float(max((m * base for m in (1, 2, 5) if m * base <= target), default=base))
+
+
+def scale_text(nm: float) -> str:
+    """Return ``nm`` as text in nm or um."""
+    return f"{nm / 1000:g} \u00b5m" if nm >= 1000 else f"{nm:g} nm"
+
+
+def scale_bar(ax, nm_per_unit: float, extent_units: float, *, colour: str = "white") -> float:
+    """Draw a scale bar (length in nm) in the lower-left corner of an image axis; return its length in nm.
+
+    ``nm_per_unit`` is the size of one axis unit (a displayed pixel, or a level-0 pixel when the
+    axis is in level-0 pixels); ``extent_units`` the axis width in those units.
+    """
+    from matplotlib.patches import Rectangle as _R
+    from matplotlib import patheffects
+
+    length = nice_length(extent_units * nm_per_unit)
+    units = length / nm_per_unit
+    x0, x1 = ax.get_xlim()
+    y0, y1 = ax.get_ylim()
+    w, h = x1 - x0, y1 - y0
+    bx, by = x0 + 0.05 * w, y0 + 0.07 * h
+    ax.add_patch(_R((bx, by), units, 0.018 * abs(h) * np.sign(h), color=colour, ec=INK, lw=0.6, zorder=5))
+    ax.text(bx + units / 2, by + 0.045 * h, scale_text(length), color=colour, ha="center", va="center",
+            fontsize=8, zorder=6, path_effects=[patheffects.withStroke(linewidth=2, foreground=INK)])
+    return length
 
 
 def save(fig, path: str | Path, dpi: int = 110) -> Path:
@@ -36,7 +71,8 @@ def _note(ax, text: str) -> None:
     ax.set_yticks([])
 
 
-def tile_maps(stitches: dict, tile_rows: list[dict], pair_rows: list[dict], sections: list[int]):
+def tile_maps(stitches: dict, tile_rows: list[dict], pair_rows: list[dict], sections: list[int],
+              px_nm: float = 1.0):
     """Return maps of tile positions coloured by seam residual, one panel per section.
 
     Accepted pairs are solid lines between tile centres, rejected pairs dashed.
@@ -56,7 +92,7 @@ def tile_maps(stitches: dict, tile_rows: list[dict], pair_rows: list[dict], sect
         st = stitches[s]
         res = {r["tile"]: r["seam_median"] for r in tile_rows if r["section"] == s}
         rects = [Rectangle((t.x - 0.5, t.y - 0.5), t.width, t.height) for t in st.tiles]
-        colours = [cmap(norm(res[t.tile])) if res.get(t.tile) is not None else LOST for t in st.tiles]
+        colours = [cmap(norm(res[t.tile])) if res.get(t.tile) is not None else NO_DATA for t in st.tiles]
         # faces opaque (overlaps show the later tile), outlines drawn on top so every tile stays visible
         ax.add_collection(PatchCollection(rects, facecolors=colours, edgecolors="none"))
         ax.add_collection(PatchCollection([Rectangle(r.get_xy(), r.get_width(), r.get_height()) for r in rects],
@@ -71,45 +107,20 @@ def tile_maps(stitches: dict, tile_rows: list[dict], pair_rows: list[dict], sect
         ax.set_xlim(x0 - 10, x1 + 10)
         ax.set_ylim(y1 + 10, y0 - 10)
         ax.set_aspect("equal")
+        if len(st.tiles) <= 400:  # labels stay readable up to about 20 x 20 tiles
+            for t in st.tiles:
+                ax.text(t.x + t.width / 2, t.y + t.height / 2, t.tile, ha="center", va="center",
+                        fontsize=max(4, 9 - len(st.tiles) // 50), color="white",
+                        bbox=dict(boxstyle="round,pad=0.15", fc=INK, ec="none", alpha=0.7))
+        scale_bar(ax, px_nm, x1 - x0, colour="white")
         ax.set_title(f"section {s}", color=INK)
         ax.set_xlabel("x (section px)")
         ax.set_ylabel("y (section px)")
     sm = matplotlib.cm.ScalarMappable(norm=norm, cmap=cmap)
     fig.colorbar(sm, ax=axes.ravel().tolist(), shrink=0.8, label="tile seam residual, median (px)")
-    fig.suptitle("Tile placement: colour = seam residual; solid = accepted pair, dashed = rejected",
+    fig.suptitle("Tile placement: colour = seam misfit (pink = not measured); solid = accepted pair, "
+                 "dashed = rejected",
                  color=INK, fontsize=11)
-    return fig
-
-
-def residual_vs_z(section_rows: list[dict]):
-    """Return median, p95 and max of the residual to the previous plane against z.
-
-    Flagged sections get a triangle on the axis, lost sections a grey band.
-    """
-    fig, ax = plt.subplots(figsize=(9, 3.8))
-    rows = [r for r in section_rows if r["z"] is not None]
-    pts = [(r["z"], r["align_prev"]) for r in rows if r["align_prev"] and r["align_prev"]["n"]]
-    if pts:
-        z = np.array([p[0] for p in pts])
-        for key, col, mk in (("median", GOOD, "o"), ("p95", WARN, "s"), ("max", BAD, "^")):
-            ax.plot(z, [p[1][key] for p in pts], marker=mk, color=col, label=key, lw=1.4, ms=4)
-        ax.set_ylim(0, 1.08 * max(p[1]["max"] for p in pts) + 1e-6)
-    else:
-        _note(ax, "no section-to-section residuals measured")
-    for r in rows:
-        if r["lost"]:
-            ax.axvspan(r["z"] - 0.5, r["z"] + 0.5, color=LOST, alpha=0.5, lw=0)
-    fz = [r["z"] for r in rows if r["flags"] and not r["lost"]]
-    if fz:
-        ax.plot(fz, np.zeros(len(fz)), "v", color=BAD, ms=9, clip_on=False, label="flagged", ls="none")
-    if any(r["lost"] for r in rows):
-        ax.plot([], [], "s", color=LOST, ms=9, label="lost")
-    ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
-    ax.set_xlabel("z (plane, each compared with the plane before)")
-    ax.set_ylabel("residual (full-res px)")
-    ax.grid(alpha=0.3)
-    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.18), fontsize=8, ncols=5, frameon=False)
-    ax.set_title("Section-to-section residual after the final transforms", color=INK)
     return fig
 
 
@@ -136,42 +147,8 @@ def displacement_field(section: int, field, origin_out=(0.0, 0.0)):
     return fig
 
 
-def residual_heatmap(plane_pairs, width: float | None = None, bins: int = 24):
-    """Return the largest residual in each x band, for every pair of adjacent planes."""
-    fig, ax = plt.subplots(figsize=(9, 4))
-    pairs = [p for p in plane_pairs if len(p.blocks.ncc)]
-    if not pairs:
-        _note(ax, "no section-to-section residuals measured")
-        return fig
-    xmax = width or max(float(p.blocks.points[:, 0].max()) for p in pairs) + 1
-    xs = np.unique(np.concatenate([p.blocks.points[:, 0] for p in pairs]))
-    if len(xs) <= bins:  # blocks lie on a regular grid: one column per grid column
-        mid = (xs[:-1] + xs[1:]) / 2
-        edges = np.concatenate([[0.0], mid, [xmax]]) if len(xs) > 1 else np.array([0.0, xmax])
-        bins = len(xs)
-    else:
-        edges = np.linspace(0, xmax, bins + 1)
-    grid = np.full((len(pairs), bins), np.nan)
-    for i, p in enumerate(pairs):
-        k = np.clip(np.digitize(p.blocks.points[:, 0], edges) - 1, 0, bins - 1)
-        for j, m in zip(k, p.blocks.magnitudes):
-            grid[i, j] = m if np.isnan(grid[i, j]) else max(grid[i, j], m)
-    zs = [p.zb for p in pairs]
-    cmap = plt.get_cmap(SEQ).with_extremes(bad="#e6e1d6")
-    ax.pcolormesh(edges, np.arange(len(zs) + 1) - 0.5, np.ma.masked_invalid(grid), cmap=cmap, shading="flat")
-    im = ax.collections[-1]
-    ax.set_ylim(len(zs) - 0.5, -0.5)
-    ax.set_yticks(np.arange(len(zs)), [str(z) for z in zs] if len(zs) <= 40 else None)
-    if len(zs) > 40:
-        ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
-    fig.colorbar(im, ax=ax, label="largest residual in band (px)")
-    ax.set_xlabel("x (output px)")
-    ax.set_ylabel("z (plane vs the one before)")
-    ax.set_title("Residual over the stack (light grey = no block measured)", color=INK)
-    return fig
-
-
-def reslice(xz: np.ndarray, yz: np.ndarray, z_aspect: float, at: tuple[float, float], factor: float):
+def reslice(xz: np.ndarray, yz: np.ndarray, z_aspect: float, at: tuple[float, float], factor: float,
+            px_nm: float = 1.0):
     """Return the x-z and y-z re-slices, stretched in z by ``z_aspect`` (section thickness over pixel)."""
     panel = [float(np.clip(9.0 * img.shape[0] * z_aspect / max(img.shape[1] * factor, 1), 0.6, 4.5))
              for img in (xz, yz)]
@@ -185,6 +162,7 @@ def reslice(xz: np.ndarray, yz: np.ndarray, z_aspect: float, at: tuple[float, fl
         ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(nbins=4, integer=True))
         ax.set_xlabel(f"{name} (output px)")
         ax.set_ylabel("z (plane)")
+        scale_bar(ax, px_nm, n)
         ax.set_title(f"{name}-z re-slice at {pos} (z stretched by {z_aspect:.1f}: physical proportions)",
                      color=INK, fontsize=10)
     return fig
@@ -281,7 +259,7 @@ def landmark_residuals(rows: list[dict], marker_px: dict[str, float]):
     return fig
 
 
-def channel_overlays(panels: list[tuple[str, int, np.ndarray, np.ndarray]]):
+def channel_overlays(panels: list[tuple[str, int, np.ndarray, np.ndarray]], nm_per_px: dict | None = None):
     """Return the EM plane in grey with each registered marker over it in green, one panel per channel.
 
     ``panels`` holds ``(channel, section, em, marker)``, both images on the same grid (the
@@ -302,6 +280,101 @@ def channel_overlays(panels: list[tuple[str, int, np.ndarray, np.ndarray]]):
         rgb = np.dstack([0.85 * g, 0.85 * g + 0.6 * m, 0.85 * g]).clip(0, 1)
         ax.imshow(rgb, interpolation="nearest")
         ax.set_title(f"{name} (green) on section {section}", color=INK, fontsize=10)
+        if nm_per_px and nm_per_px.get(name):
+            scale_bar(ax, nm_per_px[name], g.shape[1])
         ax.set_xticks([])
         ax.set_yticks([])
     return fig
+
+
+def error_vs_z(section_rows: list[dict], bar: float):
+    """Return the estimated alignment error of every plane (with its uncertainty) against z, and the bar."""
+    fig, ax = plt.subplots(figsize=(9, 3.6))
+    rows = [r for r in section_rows if r["z"] is not None]
+    have = [r for r in rows if r["align_error_px"] is not None]
+    if have:
+        z = np.array([r["z"] for r in have])
+        e = np.array([r["align_error_px"] for r in have])
+        u = np.array([r["align_error_unc_px"] or 0.0 for r in have])
+        over = e > bar
+        ax.errorbar(z[~over], e[~over], yerr=u[~over], fmt="o", color=GOOD, ms=4, capsize=2, label="under the bar")
+        ax.errorbar(z[over], e[over], yerr=u[over], fmt="^", color=BAD, ms=6, capsize=2, label="over the bar")
+        ax.axhline(bar, color=BAD, ls="--", lw=1, label=f"bar {bar:g} px")
+        ax.set_ylim(0, max(1.15 * float((e + u).max()), 1.1 * bar))
+    else:
+        _note(ax, "alignment error not estimated")
+    for r in rows:
+        if r["lost"]:
+            ax.axvspan(r["z"] - 0.5, r["z"] + 0.5, color=NO_DATA, alpha=0.8, lw=0)
+    if any(r["lost"] for r in rows):
+        ax.plot([], [], "s", color=NO_DATA, ms=9, label="lost section")
+    ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
+    ax.set_xlabel("z (plane)")
+    ax.set_ylabel("estimated error (level-0 px)")
+    ax.grid(alpha=0.3)
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.2), fontsize=8, ncols=4, frameon=False)
+    ax.set_title("Estimated alignment error per plane (deviation from where its neighbours put it)",
+                 color=INK, fontsize=10)
+    return fig
+
+
+def region_map(grid: np.ndarray, zs: list[int], bar: float):
+    """Return a planes x regions map of the estimated error; cells without data in :data:`NO_DATA`."""
+    fig, ax = plt.subplots(figsize=(9, max(2.5, min(0.18 * len(zs) + 1.5, 12))))
+    cmap = plt.get_cmap(SEQ).with_extremes(bad=NO_DATA)
+    vmax = max(float(np.nanmax(grid)) if np.isfinite(grid).any() else 0.0, bar)
+    im = ax.imshow(np.ma.masked_invalid(grid), cmap=cmap, vmin=0, vmax=vmax, aspect="auto",
+                   interpolation="nearest", extent=(-0.5, grid.shape[1] - 0.5, len(zs) - 0.5, -0.5))
+    ax.set_yticks(np.arange(len(zs)), [str(z) for z in zs] if len(zs) <= 40 else None)
+    if len(zs) > 40:
+        ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
+    fig.colorbar(im, ax=ax, label="estimated error (px)")
+    ax.set_xlabel("region (row by row over the plane)")
+    ax.set_ylabel("z (plane)")
+    ax.set_title("Estimated error by region and plane (pink = not measured)", color=INK, fontsize=10)
+    return fig
+
+
+def neighbour_panels(windows: list[tuple[int, np.ndarray]], centre: tuple[float, float], px_nm: float,
+                     factor: float, title: str):
+    """Return side-by-side crops of planes around a spot (same place), each with a scale bar."""
+    fig, axes = plt.subplots(1, max(len(windows), 1), figsize=(3.6 * max(len(windows), 1), 4), squeeze=False,
+                             layout="constrained")
+    for ax, (z, img) in zip(axes[0], windows):
+        lo, hi = np.percentile(img, [1, 99]) if img.size else (0, 1)
+        ax.imshow(img, cmap="gray", vmin=lo, vmax=hi, interpolation="nearest")
+        ax.plot([img.shape[1] / 2], [img.shape[0] / 2], "+", color=WARN, ms=14, mew=1.5)
+        ax.set_title(f"z {z}", color=INK, fontsize=10)
+        ax.set_xticks([])
+        ax.set_yticks([])
+        scale_bar(ax, px_nm * factor, img.shape[1])
+    fig.suptitle(f"{title} (around x = {centre[0]:.0f}, y = {centre[1]:.0f} level-0 px; + marks the spot)",
+                 color=INK, fontsize=10)
+    return fig
+
+
+def thumbnail_png(plane: np.ndarray, nm_per_px: float, bar_nm: float, height: int = 56) -> bytes:
+    """Return a small grey PNG of a plane with a white scale bar of ``bar_nm`` burned in (no-data pixels pink)."""
+    import io
+
+    import cv2
+
+    img = np.asarray(plane, np.float32)
+    if img.size == 0:
+        img = np.zeros((height, height), np.float32)
+    scale = height / img.shape[0]
+    w = max(8, int(round(img.shape[1] * scale)))
+    small = cv2.resize(img, (w, height), interpolation=cv2.INTER_AREA)
+    empty = cv2.resize((img == 0).astype(np.float32), (w, height), interpolation=cv2.INTER_AREA) > 0.5
+    data = small[~empty]
+    lo, hi = (np.percentile(data, [1, 99]) if data.size else (0.0, 1.0))
+    g = np.clip((small - lo) / max(hi - lo, 1e-6) * 255, 0, 255).astype(np.uint8)
+    rgb = np.dstack([g, g, g])
+    rgb[empty] = (244, 198, 232)
+    px = bar_nm / (nm_per_px / scale)
+    x0, y0 = 3, height - 6
+    x1 = int(min(w - 2, x0 + max(2, round(px))))
+    rgb[y0 - 1:y0 + 3, x0 - 1:x1 + 1] = (34, 49, 63)
+    rgb[y0:y0 + 2, x0:x1] = (255, 255, 255)
+    ok, buf = cv2.imencode(".png", rgb[..., ::-1])
+    return buf.tobytes() if ok else b""

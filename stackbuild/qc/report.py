@@ -10,6 +10,7 @@ from __future__ import annotations
 import base64
 import datetime as _dt
 import html
+import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -19,10 +20,12 @@ from ..errors import InputError
 from ..folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from . import plots
+from .glossary import FLAGS, TOTALS, flag_meaning
 from .metrics import collect, write_metrics
 from .planes import open_planes, reslice_planes, window
 from .settings import ReportSettings
 from .thresholds import Threshold, default_thresholds, parse_fail_on_list
+from .zchain import section_error
 
 
 @dataclass
@@ -62,29 +65,26 @@ def judge(doc: dict, thresholds: list[Threshold]) -> tuple[bool, list[str], list
     failures, rows = [], []
     for t in thresholds:
         failed, got = t.fails(doc["totals"], px)
-        rows.append({"condition": t.describe(), "measured": got, "failed": failed, "text": t.text})
+        rows.append({"condition": t.describe(), "measure": t.measure, "measured": got, "failed": failed,
+                     "text": t.text})
         if failed:
             failures.append(f"{t.describe()}: measured {got:.3g}")
     return not failures, failures, rows
 
 
 def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> list[tuple[str, Path]]:
-    """Draw every figure into ``DIR/qc``; return ``(caption, path)`` pairs."""
+    """Draw every figure into ``DIR/qc``; return ``(caption, path)`` pairs (the failing ones first)."""
     qc, store, out = folder.qc_dir, folder.store, []
-    stitches = {s: store.load_stitch(s) for s in meas.seams}
-    ranked = sorted((r for r in doc["sections"] if r["section"] in stitches and r["stitch"]["rms"] is not None),
-                    key=lambda r: -r["stitch"]["rms"])[:min(settings.worst, 6)]
-    if ranked:
-        secs = [r["section"] for r in ranked]
-        fig = plots.tile_maps(stitches, doc["tiles"], doc["pairs"], secs)
-        out.append(("Tile positions of the sections with the worst seams", plots.save(fig, qc / "tiles.png")))
-    out.append(("Section-to-section residual against z",
-                plots.save(plots.residual_vs_z(doc["sections"]), qc / "residual_z.png")))
-    out.append(("Residual over the stack, by x band",
-                plots.save(plots.residual_heatmap(meas.plane_pairs, doc["volume"]["width"]),
-                           qc / "residual_map.png")))
+    px = doc["volume"]["pixel_size_nm"]
+    out += _failing_figures(folder, doc, meas, settings)
+    out.append(("Estimated alignment error per plane, with its uncertainty (1 sigma)",
+                plots.save(plots.error_vs_z(doc["sections"], settings.align_max), qc / "error_z.png")))
+    grid, zs = _region_grid(meas, doc)
+    if grid is not None:
+        out.append(("Estimated alignment error by region and plane",
+                    plots.save(plots.region_map(grid, zs, settings.align_max), qc / "error_regions.png")))
     el = [r for r in doc["sections"] if r["elastic"]["max"] is not None]
-    pick = max(el, key=lambda r: r["elastic"]["max"]) if el else doc["worst"]["section_align"]
+    pick = max(el, key=lambda r: r["elastic"]["max"]) if el else None
     if settings.field_section >= 0:
         pick = next((r for r in doc["sections"] if r["section"] == settings.field_section), pick)
     if pick is not None:
@@ -93,20 +93,73 @@ def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> 
         org = (canvas.origin_x, canvas.origin_y) if canvas else (0.0, 0.0)
         fig = plots.displacement_field(pick["section"], al.displacement if al else None, org)
         out.append((f"Elastic displacement of section {pick['section']}", plots.save(fig, qc / "displacement.png")))
-    out += _volume_figures(folder, doc, meas, settings)
+    src = open_planes(folder.root, max_px=settings.reslice_px)
+    worst = doc["worst"]["section_align"]
+    at = worst["align_error_at"] if worst else None
+    if src is not None:
+        vol = doc["volume"]
+        h, w = src.data.shape[-2] // src.bin * src.factor, src.data.shape[-1] // src.bin * src.factor
+        x, y = (at["x_px"], at["y_px"]) if at else (w / 2, h / 2)
+        xz, yz = reslice_planes(src, x, y)
+        aspect = vol["section_thickness_nm"] / vol["pixel_size_nm"]
+        out.append(("Orthogonal re-slices through the worst spot of the worst section",
+                    plots.save(plots.reslice(xz, yz, aspect, (x, y), src.factor, px), qc / "reslice.png")))
     panels = _channel_panels(folder, doc)
     if panels:
+        nm = {c.channel: c.pixel_size for c in folder.channel_manifest()}
         out.append(("Marker channels over the EM, as registered",
-                    plots.save(plots.channel_overlays(panels), qc / "channels.png")))
+                    plots.save(plots.channel_overlays(panels, nm), qc / "channels.png")))
     if doc.get("landmarks"):
-        px = doc["volume"]["pixel_size_nm"]
         marker_px = {c.channel: c.pixel_size / px for c in folder.channel_manifest()}
         out.append(("Landmark residuals of the marker registrations (marker spot as registered minus the EM spot)",
                     plots.save(plots.landmark_residuals(doc["landmarks"], marker_px), qc / "landmarks.png")))
-    seam = np.array([r["residual"] for r in doc["pairs"] if r["residual"] is not None])
-    plane = np.concatenate([p.blocks.magnitudes for p in meas.plane_pairs] or [np.zeros(0)])
-    out.append(("Distributions of pair confidence and residuals",
-                plots.save(plots.histograms(doc["pairs"], seam, plane), qc / "histograms.png")))
+    return out
+
+
+def _region_grid(meas, doc) -> tuple[np.ndarray | None, list[int]]:
+    """Return the planes x regions grid of estimated error (NaN where unmeasured) and the plane numbers."""
+    depth = doc["volume"]["depth"] or 0
+    regs = [r for r in meas.probe if r.get("planes")]
+    if not regs or not depth:
+        return None, []
+    grid = np.full((depth, len(regs)), np.nan)
+    for j, r in enumerate(regs):
+        p = r["planes"]
+        for i, z in enumerate(r["z"]):
+            est, _ = section_error(p["n"][i], p["sum_sq"][i], p["sum_noise"][i])
+            if est is not None:
+                grid[z, j] = est
+    return grid, list(range(depth))
+
+
+def _failing_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> list[tuple[str, Path]]:
+    """Return the figures of the section and the tile pair that fail (or come closest to failing) each bar."""
+    out, qc = [], folder.qc_dir
+    px = doc["volume"]["pixel_size_nm"]
+    worst = doc["worst"]["section_align"]
+    if worst is not None and worst["align_error_at"] and meas.source is not None:
+        at, z = worst["align_error_at"], worst["z"]
+        lost = set(doc["volume"]["lost_sections"])
+        first = doc["volume"]["first_section"] or 0
+        present = [k for k in range(meas.source.depth) if k + first not in lost]
+        i = present.index(z) if z in present else None
+        picks = [present[k] for k in (i - 1, i, i + 1) if i is not None and 0 <= k < len(present)]
+        half = int(max(64, 3 * settings.probe_half_size) / meas.source.factor)
+        wins = [(k, window(meas.source, k, at["x_px"], at["y_px"], half)) for k in picks]
+        fig = plots.neighbour_panels(wins, (at["x_px"], at["y_px"]), px, meas.source.factor,
+                                     f"Section {worst['section']} (z {z}) between its neighbours, at its largest "
+                                     f"estimated error ({worst['align_error_max_px']:.2f} px)")
+        out.append((f"The worst-aligned section, {worst['section']}: estimated error "
+                    f"{worst['align_error_px']:.2f} px; its largest block {worst['align_error_max_px']:.2f} px",
+                    plots.save(fig, qc / "worst_section.png")))
+    stitches = {s: folder.store.load_stitch(s) for s in meas.seams}
+    ranked = sorted((r for r in doc["sections"] if r["section"] in stitches and r["stitch"]["rms"] is not None),
+                    key=lambda r: -r["stitch"]["rms"])[:min(settings.worst, 3)]
+    if ranked:
+        secs = [r["section"] for r in ranked]
+        fig = plots.tile_maps(stitches, doc["tiles"], doc["pairs"], secs, px)
+        out.append(("Tile maps of the sections with the worst seams (labels = tile names)",
+                    plots.save(fig, qc / "tiles.png")))
     return out
 
 
@@ -150,34 +203,6 @@ def _channel_panels(folder: BuildFolder, doc: dict, size: int = 384) -> list:
     return panels
 
 
-def _volume_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> list[tuple[str, Path]]:
-    out = []
-    worst = doc["worst"]["section_align"]
-    at = None
-    if worst is not None:
-        cand = [s for s in (worst["align_prev"], worst["align_next"]) if s and s["at"]]
-        at = max(cand, key=lambda s: s["max"])["at"] if cand else None
-    src = open_planes(folder.root, max_px=settings.reslice_px)
-    if src is not None:
-        vol = doc["volume"]
-        h, w = src.data.shape[-2] // src.bin * src.factor, src.data.shape[-1] // src.bin * src.factor
-        x, y = (at["x_px"], at["y_px"]) if at else (w / 2, h / 2)
-        xz, yz = reslice_planes(src, x, y)
-        aspect = vol["section_thickness_nm"] / vol["pixel_size_nm"]
-        out.append(("Orthogonal re-slices through the worst spot",
-                    plots.save(plots.reslice(xz, yz, aspect, (x, y), src.factor), folder.qc_dir / "reslice.png")))
-    if at is not None and meas.source is not None:
-        zb = at["z"]
-        pair = next((p for p in meas.plane_pairs if p.zb == zb), None)
-        if pair is not None:
-            half = 128
-            a = window(meas.source, pair.za, at["x_px"], at["y_px"], half)
-            b = window(meas.source, pair.zb, at["x_px"], at["y_px"], half)
-            fig = plots.overlay(a, b, pair.za, pair.zb, (at["x_px"], at["y_px"]))
-            out.append(("Adjacent planes at the worst residual", plots.save(fig, folder.qc_dir / "overlay.png")))
-    return out
-
-
 _CSS = """
 body{font-family:Helvetica,Arial,sans-serif;margin:24px 32px;color:#22313f;background:#fbfaf7}
 h1{font-size:22px;margin:0 0 4px} h2{font-size:17px;margin:28px 0 8px;border-bottom:1px solid #d8d2c4}
@@ -186,6 +211,9 @@ h1{font-size:22px;margin:0 0 4px} h2{font-size:17px;margin:28px 0 8px;border-bot
 table{border-collapse:collapse;font-size:13px;margin:6px 0}
 td,th{border:1px solid #d8d2c4;padding:3px 8px;text-align:right} th{background:#efe9dc}
 td.t{text-align:left} tr.bad td{background:#f6d9d0}
+.thumb{display:block;height:56px} .ebar{display:inline-block;height:10px;background:#2a9d8f;vertical-align:middle}
+.ebar.over{background:#c8553d} .flag{display:inline-block;background:#efe9dc;border-radius:3px;padding:0 4px;
+margin:1px;font-size:11px} ul.why{color:#c8553d;font-weight:bold} table.strip td{padding:1px 6px}
 figure{margin:14px 0} figure img{max-width:100%;border:1px solid #d8d2c4;background:#fff}
 figcaption{font-size:13px;margin-top:4px} .small{font-size:12px;color:#5b6770}
 """
@@ -222,50 +250,64 @@ def _loc(at: dict | None) -> list:
 _LOC = ["at section", "x, y (px)", "x, y (nm)"]
 
 
+def _flag_cell(flags: list[str]) -> str:
+    """Return flags as text; each explained in the glossary and in a hover title."""
+    return "; ".join(flags)
+
+
 def _tables(doc: dict, settings: ReportSettings) -> str:
     n, amax = settings.worst, settings.align_max
-    secs = sorted((r for r in doc["sections"] if r["align_score"] is not None), key=lambda r: -r["align_score"])[:n]
-    worst_at = lambda r: max((s for s in (r["align_prev"], r["align_next"]) if s and s["n"]),  # noqa: E731
-                             key=lambda s: s["max"])
-    a_rows = [[r["section"], r["align_score"], (r["align_prev"] or {}).get("p95"), (r["align_next"] or {}).get("p95"),
-               worst_at(r)["max"], min(r["inliers"].values(), default=None), r["elastic"]["max"],
-               *_loc(worst_at(r)["at"]), "; ".join(r["flags"])] for r in secs]
-    a_bad = [worst_at(r)["max"] > amax for r in secs]
+    secs = sorted((r for r in doc["sections"] if r["align_error_px"] is not None),
+                  key=lambda r: -r["align_error_px"])[:n]
+    motion = lambda r: (r["motion_prev"] or {}).get("p95")  # noqa: E731
+    a_rows = [[r["section"], r["z"], r["align_error_px"], r["align_error_unc_px"], r["align_error_max_px"],
+               r["align_error_blocks"], motion(r), min(r["inliers"].values(), default=None), r["elastic"]["max"],
+               *_loc(r["align_error_at"]), _flag_cell(r["flags"])] for r in secs]
+    a_bad = [r["align_error_px"] > amax for r in secs]
     st = sorted((r for r in doc["sections"] if r["stitch"]["rms"] is not None), key=lambda r: -r["stitch"]["rms"])[:n]
     s_rows = [[r["section"], r["stitch"]["rms"], r["stitch"]["p95"], r["stitch"]["max"], r["pairs_rejected"],
                *_loc(r["stitch"]["at"])] for r in st]
+    s_bad = [r["stitch"]["rms"] > settings.stitch_rms for r in st]
     pr = sorted((r for r in doc["pairs"] if r["residual"] is not None), key=lambda r: -r["residual"])[:n]
     vec = lambda v: f"{v[0]:.2f}, {v[1]:.2f}"  # noqa: E731
     p_rows = [[r["section"], r["a"], r["b"], r["residual"], vec(r["misfit"]), r["blocks"]["n"], r["ncc"],
                r["accepted"], r["reason"], *_loc(r["at"])] for r in pr]
-    tl = sorted((r for r in doc["tiles"] if r["seam_median"] is not None), key=lambda r: -r["seam_median"])[:n]
-    t_rows = [[r["section"], r["tile"], r["seam_median"], r["seam_max"], r["stitch_residual"], "; ".join(r["flags"]),
+    tl = sorted((r for r in doc["tiles"] if r["seam_median"] is not None or r["flags"]),
+                key=lambda r: (-len(r["flags"]), -(r["seam_median"] or 0)))[:n]
+    t_rows = [[r["section"], r["tile"], r["seam_median"], r["seam_max"], r["stitch_residual"], _flag_cell(r["flags"]),
                *_loc(r["at"]), r["path"]] for r in tl]
+    t_bad = [bool(r["flags"]) for r in tl]
     ch = sorted(doc["channels"], key=lambda c: (c["measure_after"] is not None, c["measure_after"] or 0))[:n]
     shift = lambda v: None if not v else f"{v[0]:.1f}, {v[1]:.1f}"  # noqa: E731
     c_rows = [[c["channel"], c["section"], c["registered"], c["measure_before"], c["measure_after"],
-               shift(c["shift_from_given"]), c["rotation_deg"], c["landmark_residual"], "; ".join(c["flags"]),
+               shift(c["shift_from_given"]), c["rotation_deg"], c["landmark_residual"], _flag_cell(c["flags"]),
                *_loc(c["at"])] for c in ch]
     c_bad = [bool(c["flags"]) or c["registered"] is False for c in ch]
     return "".join([
         "<h2>Worst sections: alignment</h2>",
-        '<p class="small">score = median over both neighbours of the 95th-percentile residual; '
-        f"rows over {amax:g} px (largest residual) are shaded.</p>",
-        _table(["section", "score (px)", "p95 to z-1", "p95 to z+1", "max (px)", "fewest inliers",
-                "elastic max (px)", *_LOC, "flags"], a_rows, a_bad, (10,)),
+        '<p class="small">Sorted and shaded by the same number: the estimated error (RMS over the section\'s probe '
+        f"blocks of how far the plane deviates from where its neighbours put it, level-0 px); shaded over the "
+        f"align_max bar, {amax:g} px. Apparent motion (block shift to the plane before, tissue change included) "
+        "is shown for comparison only.</p>",
+        _table(["section", "z", "estimated error (px)", "&plusmn; (px)", "largest block (px)", "blocks",
+                "apparent motion p95 (px)", "fewest inliers", "elastic max (px)", *_LOC, "flags"],
+               a_rows, a_bad, (12,)),
         "<h2>Worst sections: stitching</h2>",
-        _table(["section", "seam RMS (px)", "p95", "max", "rejected pairs", *_LOC], s_rows),
+        f'<p class="small">Sorted and shaded by seam RMS (shaded over the stitch_rms bar, {settings.stitch_rms:g} '
+        "px).</p>",
+        _table(["section", "seam RMS (px)", "p95 (px)", "max (px)", "rejected pairs", *_LOC], s_rows, s_bad),
         "<h2>Worst seams</h2>",
         '<p class="small">residual = length of the misplacement of tile b relative to tile a, re-measured '
         "over their overlap (median over blocks); NCC and accepted are the stitcher's.</p>",
         _table(["section", "tile a", "tile b", "residual (px)", "dx, dy (px)", "blocks", "NCC", "accepted",
                 "reason", *_LOC], p_rows, text_cols=(1, 2, 8)),
-        "<h2>Worst tiles</h2>",
-        _table(["section", "tile", "seam median (px)", "seam max", "stitcher residual", "flags", *_LOC, "path"],
-               t_rows, text_cols=(1, 5, 9)),
+        "<h2>Flagged and worst tiles</h2>",
+        '<p class="small">Flagged tiles first (shaded), then by seam misfit.</p>',
+        _table(["section", "tile", "seam median (px)", "seam max (px)", "stitcher residual (px)", "flags", *_LOC,
+                "path"], t_rows, t_bad, (1, 5, 9)),
         "<h2>Channels</h2>",
         '<p class="small">registration measure: normalised mutual information (1 unrelated .. 2 identical); '
-        "lowest after registration first.</p>" +
+        "lowest after registration first; flagged or unregistered rows shaded.</p>" +
         _table(["channel", "section", "registered", "measure before", "measure after", "shift from given (px)",
                 "rotation (deg)", "landmark residual (px)", "flags", *_LOC], c_rows, c_bad, (0, 8))
         if c_rows else '<p class="small">no marker channels in this build</p>',
@@ -294,37 +336,163 @@ def _img(path: Path) -> str:
     return "data:image/png;base64," + base64.b64encode(Path(path).read_bytes()).decode("ascii")
 
 
-def render_html(doc: dict, verdict_rows: list[dict], passed: bool, figures, settings: ReportSettings) -> str:
-    """Return the report as one HTML document."""
+def _strip(doc: dict, thumbs: dict[int, str], bar_nm: float | None, settings: ReportSettings) -> str:
+    """Return the stack strip: one row per plane, in z order, shaded when the plane fails a bar or is lost."""
+    rows = sorted((r for r in doc["sections"] if r["z"] is not None), key=lambda r: r["z"])
+    top = max([r["align_error_px"] or 0 for r in rows] + [settings.align_max])
+    out = []
+    for r in rows:
+        e = r["align_error_px"]
+        bad = r["lost"] or (e is not None and e > settings.align_max) or "blank_section" in r["flags"] or \
+            (r["stitch"]["rms"] is not None and r["stitch"]["rms"] > settings.stitch_rms)
+        img = thumbs.get(r["z"])
+        pic = f'<img class=thumb src="{img}" alt="plane {r["z"]}">' if img else '<span class=small>no image</span>'
+        if r["lost"]:
+            err = "lost section"
+        elif e is None:
+            err = "not measured"
+        else:
+            width = int(160 * e / top) if top > 0 else 0
+            err = (f'<span class="ebar{" over" if e > settings.align_max else ""}" style="width:{width}px"></span> '
+                   f"{e:.2f} &plusmn; {r['align_error_unc_px'] or 0:.2f} px")
+        flags = " ".join(f'<span class=flag title="{html.escape(flag_meaning(f))}">{html.escape(f)}</span>'
+                         for f in r["flags"])
+        stitch = "-" if r["stitch"]["rms"] is None else f"{r['stitch']['rms']:.2f}"
+        out.append(f'<tr{" class=bad" if bad else ""}><td>{r["z"]}</td><td>{r["section"]}</td><td>{pic}</td>'
+                   f"<td class=t>{err}</td><td>{stitch}</td><td class=t>{flags}</td></tr>")
+    scale = f" (white bar = {plots.scale_text(bar_nm)})" if bar_nm else ""
+    return ("<h2>The stack, plane by plane</h2>"
+            f'<p class="small">One row per plane in z order; shaded rows fail a bar or are lost. Thumbnail{scale}; '
+            "estimated alignment error with its uncertainty (bar length to scale, red over the align_max bar "
+            f"of {settings.align_max:g} px); seam RMS; flags (hover or see the glossary).</p>"
+            "<table class=strip><tr><th>z</th><th>section</th><th>plane</th><th>estimated error</th>"
+            f"<th>seam RMS (px)</th><th>flags</th></tr>{''.join(out)}</table>")
+
+
+def _glossary(doc: dict) -> str:
+    """Return the meaning of every flag that appears in this report."""
+    seen = set()
+    for key in ("sections", "tiles", "channels"):
+        for r in doc.get(key) or []:
+            seen |= set(r.get("flags") or [])
+    if not seen:
+        return "<h2>Flags</h2><p class=small>no flags were raised</p>"
+    rows = [[f, FLAGS.get(f, ("", ""))[0], flag_meaning(f)] for f in sorted(seen)]
+    return "<h2>Flags</h2>" + _table(["flag", "set on", "meaning"], rows, text_cols=(0, 1, 2))
+
+
+def _provenance(doc: dict) -> str:
+    """Return version, settings, inputs with their hashes and stage times."""
+    prov = doc.get("provenance") or {}
+    inputs = [[k, v.get("path"), v.get("sha256"), v.get("bytes")] for k, v in (prov.get("inputs") or {}).items()]
+    stages = [[k, v.get("status"), v.get("seconds")] for k, v in (prov.get("stages") or {}).items()]
+    settings = html.escape(json.dumps(prov.get("settings") or {}, indent=1, sort_keys=True))
+    return ("<h2>Provenance</h2>"
+            f"<p class=small>stackbuild {html.escape(str(prov.get('version')))}; report written "
+            f"{html.escape(str(prov.get('written')))}; measured on {html.escape(str(prov.get('measured_on')))}</p>"
+            + _table(["input", "path", "sha256", "bytes"], inputs, text_cols=(0, 1, 2))
+            + _table(["stage", "status", "seconds"], stages, text_cols=(0, 1))
+            + f"<details><summary class=small>settings of this build</summary><pre class=small>{settings}</pre>"
+              "</details>")
+
+
+def render_html(doc: dict, verdict_rows: list[dict], passed: bool, figures, settings: ReportSettings,
+                thumbs: dict[int, str] | None = None, bar_nm: float | None = None) -> str:
+    """Return the report as one HTML document: verdict, stack strip, totals, figures, tables, provenance."""
     tot = doc["totals"]
     vol = doc["volume"]
     badge = '<span class="verdict pass">PASSED</span>' if passed else '<span class="verdict fail">FAILED</span>'
+    failed = [r for r in verdict_rows if r["failed"]]
+    why = "".join(f"<li>{html.escape(r['condition'])}: measured {_fmt(r['measured'])} "
+                  f"{html.escape(TOTALS.get(r['measure'], ('', ''))[0])} &mdash; "
+                  f"{html.escape(TOTALS.get(r['measure'], ('', r['measure']))[1])}</li>" for r in failed)
     th = _table(["condition", "measured", "result"],
                 [[r["condition"], r["measured"], "FAIL" if r["failed"] else "ok"] for r in verdict_rows],
                 [r["failed"] for r in verdict_rows], (0,))
     keys = [k for k in tot if tot[k] is not None]
-    totals = _table(["measure", "value"], [[k, tot[k]] for k in keys], text_cols=(0,))
+    totals = _table(["measure", "value", "unit", "meaning"],
+                    [[k, tot[k], *TOTALS.get(k, ("", ""))] for k in keys], text_cols=(0, 2, 3))
     src = vol["measured_on"]
-    measured = ("section residuals measured on " + html.escape(f"{src['origin']} level {src['level']} "
-                                                             f"({src['factor']:g} px per pixel)") if src else
-                "section residuals not measured")
+    measured = ("alignment error measured on " + html.escape(f"{src['origin']} level {src['level']} "
+                                                             f"({src['factor']:g} level-0 px per pixel)") if src else
+                "alignment error not measured")
     notes = "".join(f"<li>{html.escape(n)}</li>" for n in doc["notes"]) or "<li>none</li>"
     figs = "".join(f'<figure><img src="{_img(p)}" alt="{html.escape(c)}"><figcaption>{html.escape(c)}'
                    "</figcaption></figure>" for c, p in figures)
     when = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     return (f"<!DOCTYPE html><html lang=en><head><meta charset=utf-8><title>stackbuild quality report</title>"
             f"<style>{_CSS}</style></head><body>"
-            f"<h1>Volume quality report</h1><div class=small>{html.escape(doc['build'])} &middot; {when} &middot; "
+            f"<h1>Volume quality report</h1>{badge}"
+            + (f"<ul class=why>{why}</ul>" if why else "<p class=small>every bar is met</p>") +
+            f"<div class=small>{html.escape(doc['build'])} &middot; {when} &middot; "
             f"{vol['depth'] or '-'} planes of {vol['width'] or '-'} x {vol['height'] or '-'} px, "
             f"{_fmt(vol['pixel_size_nm'])} nm/px, {_fmt(vol['section_thickness_nm'])} nm sections &middot; "
-            f"{measured}</div>{badge}<h2>Thresholds</h2>{th}<h2>Totals</h2>{totals}"
-            f"<h2>Notes</h2><ul class=small>{notes}</ul>{_tables(doc, settings)}<h2>Figures</h2>{figs}"
-            "<p class=small>Residuals are full-resolution pixels; coordinates are output pixels of level 0 "
-            "and nanometres (pixel x pixel size).</p></body></html>")
+            f"{measured}</div>"
+            f"{_strip(doc, thumbs or {}, bar_nm, settings)}"
+            f"<h2>Bars</h2>{th}<h2>Totals</h2>{totals}<h2>Figures</h2>{figs}"
+            f"{_tables(doc, settings)}{_glossary(doc)}"
+            f"<h2>Notes</h2><ul class=small>{notes}</ul>"
+            "<p class=small>Errors and residuals are level-0 (full-resolution) pixels; coordinates are output "
+            "pixels of level 0 and nanometres (pixel x pixel size). The estimated alignment error cannot see "
+            "what no image can show: a steady slant or slow bend of the whole stack, or oblique structure "
+            "straightened by the aligner.</p>"
+            f"{_provenance(doc)}</body></html>")
+
+
+def _sha256(path: Path) -> str | None:
+    import hashlib
+
+    try:
+        h = hashlib.sha256()
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+        return h.hexdigest()
+    except OSError:
+        return None
+
+
+def provenance(folder: BuildFolder, settings: ReportSettings, doc: dict) -> dict:
+    """Return version, settings, input manifests (path, sha256, bytes) and stage times of the build."""
+    from dataclasses import asdict
+
+    from .. import __version__
+
+    state = {}
+    try:
+        state = folder.load_state()
+    except Exception:  # a hand-made folder without build.json still gets a report
+        pass
+    inputs = {}
+    for key in ("tiles", "channels", "landmarks"):
+        path = state.get(key)
+        if path:
+            p = Path(path)
+            inputs[key] = {"path": str(p), "sha256": _sha256(p), "bytes": p.stat().st_size if p.is_file() else None}
+    src = doc["volume"]["measured_on"]
+    return {"version": __version__, "written": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+            "settings": {**(state.get("config") or {}), "report": asdict(settings)}, "inputs": inputs,
+            "stages": state.get("stages") or {},
+            "measured_on": None if src is None else f"{src['origin']} level {src['level']}"}
+
+
+def _thumbnails(folder: BuildFolder, doc: dict, height: int = 56) -> tuple[dict[int, str], float | None]:
+    """Return ``{z: data URI}`` of a small PNG per plane (read from a coarse level) and the scale bar length (nm)."""
+    src = open_planes(folder.root, max_px=4 * height)
+    if src is None:
+        return {}, None
+    px = doc["volume"]["pixel_size_nm"] * src.factor
+    w = src.data.shape[-1] // src.bin
+    bar = plots.nice_length(w * px)
+    out = {}
+    for z in range(src.depth):
+        png = plots.thumbnail_png(src.plane(z), px, bar, height)
+        out[z] = "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+    return out, bar
 
 
 def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None = None,
-               progress=None) -> Verdict:
+               progress=None, mapper=None) -> Verdict:
     """Measure a build, write ``DIR/qc`` (metrics.json, CSV tables, PNG figures, report.html).
 
     Parameters
@@ -338,6 +506,9 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
         one naming the same measure as a setting replaces it.
     progress : callable, optional
         ``progress(done, total)`` while measuring.
+    mapper : callable, optional
+        ``mapper(fn, items)`` that runs the region tasks (the build's Dask mapper); in this process
+        when omitted.
 
     Returns
     -------
@@ -353,14 +524,65 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
         folder.qc_dir.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise InputError(f"cannot write the report folder ({exc.strerror})", file=folder.qc_dir) from None
-    doc, meas = collect(build_dir, settings, progress)
+    doc, meas = collect(build_dir, settings, progress, mapper=mapper)
     passed, failures, rows = judge(doc, thresholds)
     doc["verdict"] = {"passed": passed, "failures": failures, "thresholds": rows}
+    doc["provenance"] = provenance(folder, settings, doc)
     figures = _figures(folder, doc, meas, settings)
+    thumbs, bar_nm = _thumbnails(folder, doc)
     paths = write_metrics(doc, folder.qc_dir, meas) + [p for _, p in figures]
-    page = folder.report_path
-    atomic_write_text(page, render_html(doc, rows, passed, figures, settings))
+    page = folder.qc_dir / "report.html"
+    atomic_write_text(page, render_html(doc, rows, passed, figures, settings, thumbs, bar_nm))
     asked = set(parse_fail_on_list([t for t in (fail_on or []) if not isinstance(t, Threshold)])
                 + [t for t in (fail_on or []) if isinstance(t, Threshold)])
     _, missed, _ = judge(doc, [t for t in thresholds if t in asked])
     return Verdict(passed, failures, paths + [page], missed)
+
+
+def stored_metrics_stale(build_dir) -> str | None:
+    """Return why ``DIR/qc/metrics.json`` no longer describes the build (or None when it still does).
+
+    Stale when missing, or older than any transform record, the volume's metadata or ``build.json``.
+    """
+    folder = BuildFolder(build_dir)
+    path = folder.qc_dir / "metrics.json"
+    if not path.is_file():
+        return "no stored metrics"
+    when = path.stat().st_mtime_ns
+    newer = [p for p in [folder.root / "build.json", *sorted((folder.root / "transforms").rglob("*.json"))]
+             if p.is_file() and p.stat().st_mtime_ns > when]
+    for zj in (folder.root / "volume.zarr").glob("*/zarr.json"):
+        if zj.stat().st_mtime_ns > when:
+            newer.append(zj)
+    if newer:
+        return f"{newer[0]} changed after the metrics were measured"
+    return None
+
+
+def recheck(build_dir, settings: ReportSettings, fail_on: list[str] | None) -> Verdict:
+    """Return the verdict of the bars against the stored ``DIR/qc/metrics.json``, without measuring or writing.
+
+    Raises
+    ------
+    InputError
+        When there are no stored metrics, or they are of another schema version.
+    """
+    from .metrics import SCHEMA_VERSION
+
+    folder = BuildFolder(build_dir)
+    thresholds = _thresholds(settings, fail_on)
+    path = folder.qc_dir / "metrics.json"
+    if not path.is_file():
+        raise InputError("no stored metrics to check; run the report without --fail-on first, or add "
+                         "--measure-again", file=path)
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError) as exc:
+        raise InputError(f"stored metrics cannot be read ({exc}); add --measure-again", file=path) from None
+    if doc.get("schema_version") != SCHEMA_VERSION:
+        raise InputError(f"stored metrics are schema {doc.get('schema_version')}, this version reads "
+                         f"{SCHEMA_VERSION}; add --measure-again", file=path)
+    passed, failures, _ = judge(doc, thresholds)
+    asked = set(parse_fail_on_list([t for t in (fail_on or []) if not isinstance(t, Threshold)]))
+    _, missed, _ = judge(doc, [t for t in thresholds if t in asked])
+    return Verdict(passed, failures, [], missed)

@@ -15,22 +15,46 @@ class ReportSettings:
     stitch_rms : float
         A section passes stitching if its seam residual RMS (pixels) is at most this.
     align_p95 : float
-        A section passes alignment if its 95th-percentile residual (pixels) is at most this.
+        The volume passes alignment if the 95th percentile of the sections' estimated alignment
+        error (``align_error_px``, level-0 pixels) is at most this.
     align_max : float
-        Residuals above this (pixels) are listed as hot spots.
+        Sections whose estimated alignment error (pixels) exceeds this are flagged ``error_over_bar``,
+        and the verdict fails.
     worst : int
         How many worst sections, seams and channels the report lists.
     measure_scale : int
-        Section-to-section residuals are measured on the coarsest pyramid level
-        whose pixel is at most this many full-resolution pixels.
+        The alignment-error probe reads the coarsest pyramid level whose pixel is at most
+        this many full-resolution pixels, and never one coarser than a quarter of ``align_p95``
+        (so it resolves the bar it checks).
     measure_max_px : int
-        ... but never a level whose plane side exceeds this many pixels (memory bound).
+        Figures read the finest level whose plane side fits in this many pixels.
     probe_spacing : int
-        Grid step of the section-to-section block matching, full-resolution pixels.
+        Smallest grid step of the alignment-error probe's blocks, full-resolution pixels.
+    probe_blocks : int
+        The probe's grid step grows so that a plane holds about this many blocks (bounds the
+        work on large sections).
     probe_half_size : int
         Template half size of that block matching, full-resolution pixels.
     probe_max_shift : int
         Largest shift that block matching searches, full-resolution pixels.
+    probe_fine_sigma : float
+        Band-pass of the probe, fine side: Gaussian sigma (full-resolution pixels) that removes
+        what does not persist between sections (noise, vesicle-sized dots, cytoplasm texture).
+    probe_coarse_sigma : float
+        Band-pass of the probe, coarse side: sigma of the shading removed (full-resolution pixels).
+    probe_min_confidence : float
+        Probe blocks whose refined match has a lower correlation (0..1) are refused.
+    probe_spans : int
+        Each plane is matched with the next ``probe_spans`` planes (2: the redundancy measures
+        the matching noise).
+    slow_window : int
+        Planes of the local straight-line fit that defines slow change along z; what a plane
+        deviates from it is its estimated error.
+    region_size : int
+        Edge of the region one probe task follows down the stack, full-resolution pixels
+        (bounds the task's memory).
+    blocks_per_region : int
+        Probe blocks per region written to ``blocks.csv`` (a sample; -1 writes all).
     min_block_ncc : float
         Blocks (seams and sections) with a weaker correlation peak are not counted.
     seam_spacing : int
@@ -55,8 +79,16 @@ class ReportSettings:
     measure_scale: int = 2
     measure_max_px: int = 8192
     probe_spacing: int = 96
-    probe_half_size: int = 24
-    probe_max_shift: int = 16
+    probe_blocks: int = 4000
+    probe_half_size: int = 48
+    probe_max_shift: int = 12
+    probe_fine_sigma: float = 2.0
+    probe_coarse_sigma: float = 16.0
+    probe_min_confidence: float = 0.5
+    probe_spans: int = 2
+    slow_window: int = 9
+    region_size: int = 2048
+    blocks_per_region: int = 4
     min_block_ncc: float = 0.3
     seam_spacing: int = 16
     seam_half_size: int = 12

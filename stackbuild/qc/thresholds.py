@@ -30,9 +30,13 @@ MEASURES = {
     "stitch.rms": ("distance", "worst section's seam residual RMS"),
     "stitch.p95": ("distance", "worst section's seam residual 95th percentile"),
     "stitch.max": ("distance", "largest seam residual anywhere"),
-    "align.rms": ("distance", "worst plane pair's residual RMS"),
-    "align.p95": ("distance", "worst adjacent plane pair's residual 95th percentile"),
-    "align.max": ("distance", "largest section-to-section residual anywhere"),
+    "align.rms": ("distance", "RMS over sections of the estimated alignment error"),
+    "align.p95": ("distance", "95th percentile over sections of the estimated alignment error"),
+    "align.max": ("distance", "largest estimated alignment error of any section"),
+    "motion.p95": ("distance", "largest apparent motion (95th percentile) between adjacent planes"),
+    "sections.blank": ("count", "sections whose tiles are all blank"),
+    "tiles.missing": ("count", "tiles whose files are missing at report time"),
+    "channels.failed": ("count", "marker images that could not be registered"),
     "elastic.max": ("distance", "largest elastic displacement"),
     "flagged": ("count", "flagged sections plus flagged tiles"),
     "flagged.sections": ("count", "flagged sections"),
@@ -137,5 +141,11 @@ def parse_fail_on_list(texts) -> list[Threshold]:
 
 def default_thresholds(settings) -> list[Threshold]:
     """Return the bars set in :class:`~stackbuild.qc.settings.ReportSettings`."""
+    # nothing lost or unreadable passes silently: blank sections, missing tiles and failed channels
+    # fail the verdict by default
     return [Threshold("stitch.rms", ">", float(settings.stitch_rms), "px", f"stitch.rms>{settings.stitch_rms}px"),
-            Threshold("align.p95", ">", float(settings.align_p95), "px", f"align.p95>{settings.align_p95}px")]
+            Threshold("align.p95", ">", float(settings.align_p95), "px", f"align.p95>{settings.align_p95}px"),
+            Threshold("align.max", ">", float(settings.align_max), "px", f"align.max>{settings.align_max}px"),
+            Threshold("sections.blank", ">", 0.0, "", "sections.blank>0"),
+            Threshold("tiles.missing", ">", 0.0, "", "tiles.missing>0"),
+            Threshold("channels.failed", ">", 0.0, "", "channels.failed>0")]

@@ -1,0 +1,174 @@
+"""The alignment-error probe as region tasks: each task follows one region of the output down the stack.
+
+One task holds one region (``region_size`` level-0 px square, plus a margin)
+of at most ``spans + 1`` planes at a time, band-passed float32: at the
+defaults (region 2048 px, 2 spans, measured at level 0) about 3 x 2.2k x 2.2k
+x 4 B = 60 MB, whatever the section's size. It returns per-plane sums (see
+:func:`stackbuild.qc.zchain.plane_summary`), per-link apparent-motion figures
+and a few sampled block rows, never block data of the whole region stack.
+The driver adds the sums per plane and keeps one row per region.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .planes import PlaneSource, data_mask, open_planes
+from .settings import ReportSettings
+from .subpixel import bandpass, match_points
+from .zchain import block_jitter, plane_summary
+
+
+@dataclass(frozen=True)
+class RegionJob:
+    """What one probe task needs (small and picklable)."""
+
+    build: str
+    written: bool
+    max_factor: float
+    box: tuple[int, int, int, int]          # x0, y0, x1, y1 of block centres, level pixels
+    z: tuple[int, ...]                      # present planes, increasing
+    settings: ReportSettings
+
+
+def probe_geometry(source: PlaneSource, settings: ReportSettings, width0: float, height0: float):
+    """Return ``(spacing, half, search, margin)`` in level pixels for a plane of ``width0 x height0`` level-0 px."""
+    f = source.factor
+    spacing = settings.probe_spacing
+    if spacing <= 0:  # automatic: about probe_blocks blocks per plane, never denser than 64 px
+        spacing = max(64.0, float(np.sqrt(width0 * height0 / max(settings.probe_blocks, 1))))
+    half = max(4, int(round(settings.probe_half_size / f)))
+    search = max(2, int(round(settings.probe_max_shift / f)))
+    margin = half + search + 3 + int(np.ceil(3 * settings.probe_coarse_sigma / f))
+    return max(2, int(round(spacing / f))), half, search, margin
+
+
+def regions(source: PlaneSource, settings: ReportSettings, present: list[int]) -> list[tuple[int, int, int, int]]:
+    """Return the block-centre boxes ``(x0, y0, x1, y1)`` (level px, half-open) of the probe tasks."""
+    h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
+    spacing, half, search, margin = probe_geometry(source, settings, w * source.factor, h * source.factor)
+    inner = half + search + 3
+    xs = np.arange(inner + spacing // 2, w - inner, spacing)
+    ys = np.arange(inner + spacing // 2, h - inner, spacing)
+    if not len(xs) or not len(ys):
+        return []
+    step = max(1, int(round(settings.region_size / source.factor / spacing)))  # blocks per region edge
+    out = []
+    for i in range(0, len(ys), step):
+        for j in range(0, len(xs), step):
+            gy, gx = ys[i:i + step], xs[j:j + step]
+            out.append((int(gx[0]), int(gy[0]), int(gx[-1]) + 1, int(gy[-1]) + 1))
+    return out
+
+
+def _read(source: PlaneSource, z: int, box, margin: int, settings: ReportSettings):
+    """Return the band-passed window (NaN where there is no data) and its top-left level pixel."""
+    x0, y0, x1, y1 = box
+    h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
+    wx0, wy0 = max(0, x0 - margin), max(0, y0 - margin)
+    wx1, wy1 = min(w, x1 + margin), min(h, y1 + margin)
+    img = source.window(z, wy0, wy1, wx0, wx1)
+    valid = data_mask(img)
+    if not valid.any():
+        return None, (wx0, wy0)
+    fill = float(img[valid].mean())
+    f = source.factor
+    band = bandpass(np.where(valid, img, fill), settings.probe_fine_sigma / f, settings.probe_coarse_sigma / f)
+    band[~valid] = np.nan
+    return band, (wx0, wy0)
+
+
+def probe_region(job: RegionJob) -> dict:
+    """Measure one region down the stack; return per-plane sums, link figures and sampled blocks (runs on a worker)."""
+    st = job.settings
+    source = open_planes(job.build, max_factor=job.max_factor, written=job.written)
+    h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
+    spacing, half, search, margin = probe_geometry(source, st, w * source.factor, h * source.factor)
+    x0, y0, x1, y1 = job.box
+    gx, gy = np.meshgrid(np.arange(x0, x1, spacing), np.arange(y0, y1, spacing))
+    pts = np.column_stack([gx.ravel(), gy.ravel()])
+    zs = list(job.z)
+    recent: dict[int, tuple] = {}
+    la, lb, shifts, conf = [], [], [], []
+    for i, z in enumerate(zs):
+        band, corner = _read(source, z, job.box, margin, st)
+        recent[i] = (band, corner)
+        recent.pop(i - st.probe_spans - 1, None)
+        for k in range(1, st.probe_spans + 1):
+            if i - k < 0:
+                continue
+            fa, ca = recent[i - k]
+            la.append(i - k)
+            lb.append(i)
+            if fa is None or band is None:
+                shifts.append(np.full((len(pts), 2), np.nan))
+                conf.append(np.full(len(pts), np.nan))
+                continue
+            local = pts - np.asarray(corner)
+            s, c = match_points(fa, band, local, half=half, search=search, min_ncc=st.probe_min_confidence)
+            shifts.append(s * source.factor)
+            conf.append(c)
+    nz = len(zs)
+    if not la:
+        shifts_arr = np.zeros((0, len(pts), 2))
+    else:
+        shifts_arr = np.stack(shifts)
+    jit = block_jitter(np.asarray(zs, float), np.asarray(la, int), np.asarray(lb, int), shifts_arr,
+                       window=st.slow_window) if la else None
+    pts0 = source.to_level0(pts)
+    out = {"box": [float(v) for v in (*source.to_level0([[x0, y0]])[0], *source.to_level0([[x1 - 1, y1 - 1]])[0])],
+           "z": zs, "blocks": len(pts), "sigma": None if jit is None or not np.isfinite(jit.sigma) else jit.sigma}
+    if jit is None:
+        out["planes"] = None
+    else:
+        s = plane_summary(jit)
+        out["planes"] = {"n": s["n"].tolist(), "sum_sq": s["sum_sq"].tolist(), "sum_noise": s["sum_noise"].tolist(),
+                         "max": s["max"].tolist(),
+                         "max_at": [pts0[k].tolist() for k in s["argmax"]]}
+    out["links"] = _link_rows(la, lb, zs, shifts_arr, conf)
+    out["sample"] = _sample_rows(zs, pts0, jit, shifts_arr, la, lb, st.blocks_per_region)
+    return out
+
+
+def _link_rows(la, lb, zs, shifts, conf) -> list[dict]:
+    """Return apparent motion per link: blocks matched, median and 95th percentile of the shift length."""
+    rows = []
+    for k, (a, b) in enumerate(zip(la, lb)):
+        mag = np.hypot(shifts[k, :, 0], shifts[k, :, 1])
+        ok = np.isfinite(mag)
+        rows.append({"z_from": zs[a], "z_to": zs[b], "n": int(ok.sum()), "tried": int(np.isfinite(conf[k]).sum()),
+                     "median": float(np.median(mag[ok])) if ok.any() else None,
+                     "p95": float(np.percentile(mag[ok], 95)) if ok.any() else None})
+    return rows
+
+
+def _sample_rows(zs, pts0, jit, shifts, la, lb, count: int) -> list[dict]:
+    """Return block rows of a deterministic sample of blocks (all blocks when ``count < 0``)."""
+    if jit is None or not len(pts0):
+        return []
+    nb = len(pts0)
+    pick = np.arange(nb) if count < 0 or count >= nb else np.linspace(0, nb - 1, count).round().astype(int)
+    rows = []
+    span1 = {b: k for k, (a, b) in enumerate(zip(la, lb)) if b - a == 1}
+    for k in np.unique(pick):
+        for i, z in enumerate(zs):
+            jx, jy = jit.jitter[i, k]
+            if not np.isfinite(jx):
+                continue
+            link = span1.get(i)
+            dx, dy = (shifts[link, k] if link is not None else (np.nan, np.nan))
+            rows.append({"z": z, "x_px": round(float(pts0[k, 0]), 1), "y_px": round(float(pts0[k, 1]), 1),
+                         "error_dx": round(float(jx), 3), "error_dy": round(float(jy), 3),
+                         "error": round(float(np.hypot(jx, jy)), 3),
+                         "motion_dx": None if not np.isfinite(dx) else round(float(dx), 3),
+                         "motion_dy": None if not np.isfinite(dy) else round(float(dy), 3)})
+    return rows
+
+
+def measure_error(build_dir, source: PlaneSource, present: list[int], settings: ReportSettings, *,
+                  written: bool, max_factor: float, mapper=map) -> list[dict]:
+    """Run the probe over every region through ``mapper``; return the task results."""
+    jobs = [RegionJob(str(build_dir), written, max_factor, box, tuple(present), settings)
+            for box in regions(source, settings, present)]
+    return list(mapper(probe_region, jobs))

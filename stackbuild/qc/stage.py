@@ -1,0 +1,27 @@
+"""The report stage entry: ``run(folder, settings, *, mapper, progress)``.
+
+Measures the build (seams in this process, the alignment-error probe as
+region tasks through ``mapper``), writes ``DIR/qc`` and returns the
+:class:`~stackbuild.qc.report.Verdict`. :func:`check_bars` re-evaluates bars
+against the stored metrics without measuring or writing anything.
+"""
+from __future__ import annotations
+
+from .report import Verdict, recheck, run_report, stored_metrics_stale
+from .settings import ReportSettings
+
+
+def run(folder, settings: ReportSettings, *, mapper=None, progress=None, fail_on=None) -> Verdict:
+    """Measure the build in ``folder`` and write its report; return the verdict."""
+    root = getattr(folder, "root", folder)
+    return run_report(root, settings, fail_on=fail_on, progress=progress, mapper=mapper)
+
+
+def check_bars(folder, settings: ReportSettings, fail_on) -> Verdict:
+    """Return the verdict of ``fail_on`` and the default bars against ``DIR/qc/metrics.json`` (no writing)."""
+    return recheck(getattr(folder, "root", folder), settings, fail_on)
+
+
+def stale_reason(folder) -> str | None:
+    """Return why the stored metrics cannot be re-used for a bar check (None when they can)."""
+    return stored_metrics_stale(getattr(folder, "root", folder))

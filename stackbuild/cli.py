@@ -313,13 +313,14 @@ def _cmd_channels(args) -> int:
 
 def _cmd_render(args) -> int:
     from .run import stages
-    from .run.cluster import dask_client
+    from .run.cluster import client_mapper, dask_client
     from .run.progress import ProgressBar
 
     build = _open_build(args.dir)
-    with dask_client(args.workers, args.scheduler):
+    with dask_client(args.workers, args.scheduler) as client:
         stages.render_stage(build, planes=args.planes, resume=args.resume, overwrite=args.overwrite,
-                            progress=ProgressBar("render", not args.quiet))
+                            progress=ProgressBar("render", not args.quiet),
+                            mapper=client_mapper(client, ProgressBar("contrast", not args.quiet)))
         stages.render_channels_stage(build, overwrite=args.overwrite,
                                      progress=ProgressBar("markers", not args.quiet))
     _say(f"volume: {build.volume_path}")

@@ -27,7 +27,6 @@ import zarr
 from dask.base import tokenize
 from dask.delayed import Delayed
 
-from ..run.cluster import compute_each
 from ..folder import BuildFolder
 from ..transforms.records import Canvas
 from .dirty import all_shards, pyramid_shards
@@ -124,7 +123,7 @@ def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reduce
 
 
 def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *, previous: Canvas | None = None,
-                 progress=None) -> dict:
+                 progress=None, mapper=None) -> dict:
     """Rewrite the dirty level-0 shards ``dirty0`` (``{z: {(i, j)}}``) and the pyramid above them; return facts.
 
     Parameters
@@ -190,7 +189,7 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
             progress(finished[0], len(order))
 
     if tasks:
-        compute_each(tasks, finish)
+        compute_each(mapper)(tasks, finish)
     counts = [sum(len(v[n]) for v in dirty.values()) for n in range(len(shapes))]
     totals = [len(all_shards(s, block)) * canvas.depth for s in shapes]
     return {"planes": order, "shards": counts, "shards_total": totals, "seconds": time.perf_counter() - t0}

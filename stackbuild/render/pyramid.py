@@ -110,3 +110,33 @@ def pyramid_writes(plan: RenderPlan, targets: list, shapes: list[tuple[int, int]
         dsk[final] = (_plane_done, *[key for key in tops if key[1] == k])
         finals.append(final)
     return [Delayed(final, dsk) for final in finals]
+
+
+def compute_locally(items: list, on_done) -> None:
+    """Compute dask collections ``items`` on this process's dask scheduler, calling ``on_done(i)`` as item ``i`` finishes.
+
+    ``on_done`` runs in the calling thread's callback, so it may write files (the plane
+    records). The first task error is re-raised in the caller. A mapper that runs on a
+    cluster brings its own ``compute_each`` (see :func:`compute_each`).
+    """
+    import dask
+    from dask.callbacks import Callback
+
+    keys = {item.key: i for i, item in enumerate(items)}
+
+    class _Finished(Callback):
+        def _posttask(self, key, result, dsk, state, worker_id):
+            if key in keys:
+                on_done(keys[key])
+
+    with _Finished():
+        dask.compute(*items)
+
+
+def compute_each(mapper):
+    """Return ``mapper``'s way to compute dask collections with a per-item callback, or :func:`compute_locally`.
+
+    A mapper made by :func:`stackbuild.run.cluster.client_mapper` computes on its own
+    client (never on a global default one); any other mapper, or None, computes here.
+    """
+    return getattr(mapper, "compute_each", None) or compute_locally

@@ -26,7 +26,6 @@ import zarr
 from zarr.codecs import BloscCodec
 
 from ..errors import BuildFolderError, InputError
-from ..run.cluster import client_mapper, compute_each
 from ..folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from .canvas import compute_canvas, settle_canvas
@@ -34,7 +33,7 @@ from .contrast import DOC_KIND, RangeJob, contrast_record, range_job
 from .fingerprint import PLANE_RECORD, em_fingerprints, read_plane_record, write_plane_record
 from .lazy import RenderPlan, section_records
 from .ngff import multiscales_attrs, root_attrs
-from .pyramid import pyramid_writes
+from .pyramid import compute_each, pyramid_writes
 from .reduce import level_shapes
 from .settings import blosc_shuffle, check_settings
 from .swap import incoming_path, recover_swap, swap_in
@@ -75,19 +74,10 @@ def check_tiles(folder: BuildFolder, sections: list[int]) -> None:
             raise InputError(f"tile {tile!r} is gone; restore it (nothing was written)", file=path, section=s)
 
 
-def _default_mapper():
-    """Return a mapper onto the running Dask client, else onto a thread pool of this process."""
-    try:
-        from distributed import default_client
-
-        return client_mapper(default_client())
-    except (ImportError, ValueError):  # no distributed, or no client
-        from concurrent.futures import ThreadPoolExecutor
-
-        def mapper(fn, items):
-            with ThreadPoolExecutor() as pool:
-                return list(pool.map(fn, items))
-        return mapper
+def _thread_mapper(fn, items) -> list:
+    """Run ``fn`` on every item on a thread pool of this process (when the caller gave no mapper)."""
+    with ThreadPoolExecutor() as pool:
+        return list(pool.map(fn, items))
 
 
 def _prepare_contrast(folder, settings, sections, planes_sections, mapper=None) -> None:
@@ -99,7 +89,7 @@ def _prepare_contrast(folder, settings, sections, planes_sections, mapper=None) 
               and old.get("scale") == settings.contrast_scale}
     jobs = [RangeJob(str(store.root), s, tuple(settings.contrast_percentiles), settings.contrast_scale)
             for s in sections if s in planes_sections or s not in ranges]
-    for s, lo, hi in (mapper or _default_mapper())(range_job, jobs):
+    for s, lo, hi in (mapper or _thread_mapper)(range_job, jobs):
         ranges[s] = (lo, hi)
     ranges = {s: r for s, r in ranges.items() if s in sections}
     store.save_doc(DOC_KIND, contrast_record(ranges, tuple(settings.contrast_percentiles),
@@ -248,7 +238,7 @@ def write_render(job: RenderJob, *, progress=None, mapper=None) -> dict:
     damaged = {k: v for k, v in ckpt["damaged"].items() if int(k) not in set(todo)}
     write_plane_record(target, stamp, done, damaged)
     _write_planes(job.plan, arrays, shapes, todo, settings, done, damaged, target, stamp, job.fingerprints,
-                  progress)
+                  progress, mapper)
     if job.overwrite:
         swap_in(folder, "em")
         if folder.store.load_canvas() != canvas:
@@ -293,7 +283,7 @@ def _same_arrays(a: dict, b: dict) -> bool:
 
 
 def _write_planes(plan, arrays, shapes, todo, settings, done, damaged, target, stamp, fingerprints,
-                  progress) -> None:
+                  progress, mapper=None) -> None:
     block = settings.chunk * settings.shard
     per_plane = math.ceil(shapes[0][0] / block) * math.ceil(shapes[0][1] / block)
     # Enough shards per graph that the upper levels of one plane overlap other planes' work;
@@ -311,4 +301,4 @@ def _write_planes(plan, arrays, shapes, todo, settings, done, damaged, target, s
             if progress is not None:
                 progress(finished, total)
 
-        compute_each(pyramid_writes(plan, arrays, shapes, group, settings.reducer, block), finish)
+        compute_each(mapper)(pyramid_writes(plan, arrays, shapes, group, settings.reducer, block), finish)

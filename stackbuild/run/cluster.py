@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Callable, Iterable
 
 from ..errors import InputError
+from ..render.pyramid import compute_locally
 
 log = logging.getLogger(__name__)
 
@@ -163,6 +164,8 @@ def client_mapper(client, progress: Callable[[int, int], None] | None = None):
                 progress(done, len(futures))
         return results
 
+    # Dask collections (the render's pyramid graph) go to the same client.
+    mapper.compute_each = lambda items, on_done: _compute_on(client, items, on_done)
     return mapper
 
 
@@ -177,43 +180,38 @@ def serial_mapper(progress: Callable[[int, int], None] | None = None):
                 progress(i, len(items))
         return out
 
+    mapper.compute_each = compute_locally
     return mapper
 
 
 def compute_each(items: list, on_done: Callable[[int], None]) -> None:
-    """Compute dask collections ``items`` in one go, calling ``on_done(i)`` as soon as item ``i`` is finished.
+    """Compute dask collections ``items``, calling ``on_done(i)`` as soon as item ``i`` is finished.
 
-    With a ``distributed`` client as the default scheduler the items are submitted
-    together and reported through ``as_completed``; otherwise they run on dask's
-    local scheduler, reported by a callback after each item's last task. Either
-    way ``on_done`` runs in the calling thread, so it may write files. The first
-    task error is re-raised in the caller.
+    On the running ``distributed`` client if there is one, else on the local
+    scheduler. Stages do not call this: they use their mapper's ``compute_each``
+    (:func:`client_mapper`), so the cluster is a parameter; it remains for callers
+    outside a stage.
     """
-    import dask
-    from dask.callbacks import Callback
-
-    client = None
     try:
         from distributed import default_client
 
         client = default_client()
     except (ImportError, ValueError):  # no distributed, or no client: the local scheduler
-        pass
+        client = None
+    import dask
+
     if client is not None and dask.config.get("scheduler", None) in (None, "dask.distributed"):
-        from distributed import as_completed
+        _compute_on(client, items, on_done)
+    else:
+        compute_locally(items, on_done)
 
-        futures = client.compute(items)
-        index = {f.key: i for i, f in enumerate(futures)}
-        for fut in as_completed(futures):
-            fut.result()
-            on_done(index[fut.key])
-        return
-    keys = {item.key: i for i, item in enumerate(items)}
 
-    class _Finished(Callback):
-        def _posttask(self, key, result, dsk, state, worker_id):
-            if key in keys:
-                on_done(keys[key])
+def _compute_on(client, items: list, on_done: Callable[[int], None]) -> None:
+    """Compute ``items`` on ``client``, calling ``on_done(i)`` in this thread as each one finishes."""
+    from distributed import as_completed
 
-    with _Finished():
-        dask.compute(*items)
+    futures = client.compute(items)
+    index = {f.key: i for i, f in enumerate(futures)}
+    for fut in as_completed(futures):
+        fut.result()
+        on_done(index[fut.key])

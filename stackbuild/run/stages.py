@@ -127,6 +127,6 @@ def run_build(build: BuildFolder, client, *, resume: bool = False, fail_on: list
         align_stage(build, mapper("align"), progress=ProgressBar("solve", show))
     if not (resume and build.stage_done("channels")):
         channels_stage(build, mapper("channels"))
-    render_stage(build, resume=resume, progress=ProgressBar("render", show), mapper=mapper("render"))
+    render_stage(build, resume=resume, progress=ProgressBar("render", show), mapper=mapper("contrast"))
     render_channels_stage(build, progress=ProgressBar("markers", show), mapper=mapper("markers"))
     return report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))

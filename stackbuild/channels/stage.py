@@ -264,3 +264,26 @@ def run(folder: BuildFolder, settings: ChannelSettings, *, mapper, progress=None
 def run_channels(build_dir, settings: ChannelSettings, *, mapper=map, progress=None) -> dict:
     """Return :func:`run` on the build folder at ``build_dir``."""
     return run(BuildFolder(build_dir), settings, mapper=mapper, progress=progress)
+
+
+def channel_level(channel_pixel_size: float, em_pixel_size: float) -> int:
+    """Return the EM pyramid level whose pixel is closest (in log scale) to the channel pixel, >= 0."""
+    return max(0, int(round(math.log2(channel_pixel_size / em_pixel_size))))
+
+
+def channel_table(folder: BuildFolder) -> dict[str, dict[int, dict]]:
+    """Return ``name -> {section: record}`` of every stored channel registration."""
+    table: dict[str, dict[int, dict]] = {}
+    for s in folder.store.sections_with(DOC_KIND):
+        doc = folder.store.load_doc(DOC_KIND, section=s) or {}
+        for name, rec in doc.get("channels", {}).items():
+            table.setdefault(name, {})[s] = rec
+    return table
+
+
+def channel_records(folder: BuildFolder, name: str, canvas) -> tuple[int, dict[int, dict]]:
+    """Return ``(level, {section: record})`` of channel ``name``: its EM level and its registrations."""
+    recs = channel_table(folder).get(name, {})
+    if not recs:
+        return 0, {}
+    return channel_level(min(r["pixel_size_nm"] for r in recs.values()), canvas.pixel_size_nm), recs

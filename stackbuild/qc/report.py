@@ -456,7 +456,7 @@ def provenance(folder: BuildFolder, settings: ReportSettings, doc: dict) -> dict
     """Return version, settings, input manifests (path, sha256, bytes) and stage times of the build."""
     from dataclasses import asdict
 
-    from .. import __version__
+    from .._version import __version__
 
     state = {}
     try:

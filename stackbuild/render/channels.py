@@ -18,7 +18,6 @@ point means the same place in both images.
 """
 from __future__ import annotations
 
-import math
 import shutil
 import time
 from pathlib import Path
@@ -38,7 +37,7 @@ from .fingerprint import channel_fingerprints, read_plane_record, write_plane_re
 from .swap import incoming_path, swap_in
 from .settings import check_settings
 from ..transforms.records import Canvas, SectionAlignment
-from ..channels.stage import DOC_KIND, channel_affine
+from ..channels.stage import DOC_KIND, channel_affine, channel_level, channel_records, channel_table
 
 _ROWS = 1024  # output rows resampled at a time
 
@@ -48,11 +47,6 @@ def _compressors(settings):
     if settings.codec == "none":
         return None
     return [BloscCodec(cname=settings.codec, clevel=settings.clevel, shuffle="shuffle")]
-
-
-def channel_level(channel_pixel_size: float, em_pixel_size: float) -> int:
-    """Return the EM pyramid level whose pixel is closest (in log scale) to the channel pixel, >= 0."""
-    return max(0, int(round(math.log2(channel_pixel_size / em_pixel_size))))
 
 
 def resample_channel(image: np.ndarray, to_section_inv, alignment: SectionAlignment | None,
@@ -97,29 +91,11 @@ def resample_channel(image: np.ndarray, to_section_inv, alignment: SectionAlignm
     return out
 
 
-def _channel_table(folder: BuildFolder) -> dict[str, dict[int, dict]]:
-    """Return ``name -> {section: record}`` of every stored channel registration."""
-    table: dict[str, dict[int, dict]] = {}
-    for s in folder.store.sections_with(DOC_KIND):
-        doc = folder.store.load_doc(DOC_KIND, section=s) or {}
-        for name, rec in doc.get("channels", {}).items():
-            table.setdefault(name, {})[s] = rec
-    return table
-
-
 def _level0_shape(canvas: Canvas, level: int) -> tuple[int, int]:
     h, w = canvas.height, canvas.width
     for _ in range(level):
         h, w = reduced_size(h), reduced_size(w)
     return h, w
-
-
-def channel_records(folder: BuildFolder, name: str, canvas: Canvas) -> tuple[int, dict[int, dict]]:
-    """Return ``(level, {section: record})`` of channel ``name``: its EM level and its registrations."""
-    recs = _channel_table(folder).get(name, {})
-    if not recs:
-        return 0, {}
-    return channel_level(min(r["pixel_size_nm"] for r in recs.values()), canvas.pixel_size_nm), recs
 
 
 def _write_channel(folder, name, recs, canvas, settings, progress, done_before, total,
@@ -238,7 +214,7 @@ def render_channels(build_dir, render_settings, *, overwrite: bool = False, prog
     if canvas is None:
         raise InputError("no canvas stored; run the render stage before rendering channels",
                          file=folder.store.root)
-    table = _channel_table(folder)
+    table = channel_table(folder)
     for name, recs in table.items():  # every input checked before any output is touched
         for s, rec in recs.items():
             if not {"blank", "too_small"} & set(rec["flags"]):

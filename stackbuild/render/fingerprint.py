@@ -225,7 +225,7 @@ def current_fingerprints(folder, planes=None, array: str = "em") -> dict[int, st
     settings = folder.config.render
     if array == "em":
         return em_fingerprints(store, canvas, settings, planes)
-    from .channels import channel_records
+    from ..channels.stage import channel_records
 
     level, records = channel_records(folder, array, canvas)
     return channel_fingerprints(store, canvas, settings, array, level, records, planes)

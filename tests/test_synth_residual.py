@@ -151,8 +151,9 @@ def test_the_chain_of_transforms_predicts_the_rendered_pixels(sample, builds):
     from skimage.filters import window
     from skimage.registration import phase_cross_correlation
 
-    from stackbuild.render.sampler import render_region
+    from stackbuild.sampler import render_region
     from stackbuild.synth.residual import _section_to_truth_section
+    from stackbuild.tiles import SectionTiles
 
     root, truth = sample
     s, x0, y0, n = 2, 280, 300, 128
@@ -169,7 +170,7 @@ def test_the_chain_of_transforms_predicts_the_rendered_pixels(sample, builds):
     for name, bound in (("exact", 0.06), ("misplaced", 0.25)):
         store = TransformStore(builds[name] / "transforms")
         stitch, align = store.load_stitch(s), store.load_alignment(s)
-        image = render_region(stitch, align, x0, y0, n, n)
+        image = render_region(stitch, align, x0, y0, n, n, tiles=SectionTiles(stitch))
         q = align.aligned_to_section(np.column_stack([gx.ravel(), gy.ravel()]))
         q_true, covered = _section_to_truth_section(stitch, truth.tile_positions(s), q)
         assert covered.all()

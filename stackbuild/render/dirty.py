@@ -7,7 +7,7 @@ its illumination profile, its alignment (affine and elastic field) and, with
 lie inside the aligned-frame footprints of those tiles, old and new, and of
 the tiles that overlap them (an overlapping neighbour's blending and its
 exclusive fast-path rectangle are cut by the changed tile's footprint; see
-:func:`stackbuild.render.sampler.exclusive_boxes`). Any other change makes the
+:func:`stackbuild.sampler.exclusive_boxes`). Any other change makes the
 whole section dirty.
 
 Shards are addressed ``(i, j)`` = (row, column) of the shard grid of a level;
@@ -21,7 +21,7 @@ import math
 import numpy as np
 
 from ..transforms.records import Canvas, SectionAlignment, SectionStitch
-from .sampler import tile_footprints
+from ..sampler import tile_footprints
 
 _TILE_KEYS = ("path", "width", "height", "x", "y", "gain", "offset")
 

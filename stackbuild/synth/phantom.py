@@ -22,15 +22,14 @@ import math
 
 import cv2
 import numpy as np
-from scipy.spatial import cKDTree
 
 from .layout import rng, true_shape
 from .params import SynthParams
+from .space import BLOCK, ZBLOCK, KEY as _KEY, blocks as _blocks, draw as _draw, membranes as _membranes, \
+    noise_slab, sixteenths as _fx
+from .tissue import realistic_layers
 
-BLOCK = 256
-ZBLOCK = 16
 _TAG_CELLS, _TAG_MITO, _TAG_VES, _TAG_CLUSTER, _TAG_TEX, _TAG_SLANT = 21, 22, 23, 24, 25, 26
-_KEY = 1 << 20  # shifts block indices to non-negative seeds
 _TEX_SLAB = 2.0  # sections over which the texture decorrelates
 _MITO_RZ, _VES_RZ = 12.0, 0.9
 FILL_FRACTION = 0.3  # share of cells that carry the fill marker
@@ -103,12 +102,6 @@ def slant_at(model: dict, points: np.ndarray) -> np.ndarray:
 
 # -- objects per block ----------------------------------------------------------
 
-def _blocks(x0, x1, y0, y1):
-    for by in range(math.floor(y0 / BLOCK), math.floor(y1 / BLOCK) + 1):
-        for bx in range(math.floor(x0 / BLOCK), math.floor(x1 / BLOCK) + 1):
-            yield bx, by
-
-
 def _cells(params, x0, x1, y0, y1):
     """Seeds (x, y, vx, vy, brightness, fill flag) of all cells in blocks touching the box."""
     out = []
@@ -162,70 +155,15 @@ def _cluster_members(cluster):
 
 # -- rendering ----------------------------------------------------------------------
 
-def _membranes(seeds, ox, oy, h, w):
-    """Distance to the nearest cell boundary, and which seed's cell each pixel is in, on the box.
-
-    The two nearest seeds are found at half resolution; the distance to their
-    bisector is linear in (x, y), so its coefficients are carried to full
-    resolution and the distance evaluated there exactly (wrong only within a
-    pixel or two of junctions of three cells).
-    """
-    tree = cKDTree(seeds[:, :2])
-    gx, gy = np.meshgrid(ox + np.arange(0, w, 2) + 0.5, oy + np.arange(0, h, 2) + 0.5)
-    _, idx = tree.query(np.column_stack([gx.ravel(), gy.ravel()]), k=2, workers=2)
-    i1, i2 = idx[:, 0].reshape(gx.shape), idx[:, 1].reshape(gx.shape)
-    s1, s2 = seeds[i1, :2], seeds[i2, :2]
-    n = s2 - s1
-    n /= np.maximum(np.sqrt((n ** 2).sum(-1, keepdims=True)), 1e-3)
-    c = -((0.5 * (s1 + s2)) * n).sum(-1)
-
-    def full(a):
-        return np.repeat(np.repeat(a.astype(np.float32), 2, 0), 2, 1)[:h, :w]
-
-    xs = (ox + np.arange(w, dtype=np.float32))[None, :]
-    ys = (oy + np.arange(h, dtype=np.float32))[:, None]
-    t = full(n[..., 0]) * xs + full(n[..., 1]) * ys + full(c)
-    nearer_second = t > 0
-    return np.abs(t), lambda column: np.where(nearer_second, full(seeds[i2, column]), full(seeds[i1, column]))
-
-
 def _texture(params, z, ox, oy, h, w):
     """Band-pass noise, unit variance, that blends between slabs of a few sections."""
     j = math.floor(z / _TEX_SLAB)
     f = z / _TEX_SLAB - j
-    a = _noise_slab(params, j, ox, oy, h, w)
+    a = noise_slab(params, _TAG_TEX, j, ox, oy, h, w)
     if f == 0:
         return a
-    b = _noise_slab(params, j + 1, ox, oy, h, w)
+    b = noise_slab(params, _TAG_TEX, j + 1, ox, oy, h, w)
     return ((1 - f) * a + f * b) / math.sqrt((1 - f) ** 2 + f ** 2)
-
-
-def _noise_slab(params, j, ox, oy, h, w, s1=1.2, s2=3.5, pad=16, tag=_TAG_TEX):
-    bx0, by0 = math.floor((ox - pad) / BLOCK), math.floor((oy - pad) / BLOCK)
-    bx1, by1 = math.floor((ox + w + pad) / BLOCK), math.floor((oy + h + pad) / BLOCK)
-    big = np.empty(((by1 - by0 + 1) * BLOCK, (bx1 - bx0 + 1) * BLOCK), np.float32)
-    for by in range(by0, by1 + 1):
-        for bx in range(bx0, bx1 + 1):
-            g = rng(params, tag, j + _KEY, bx + _KEY, by + _KEY)
-            big[(by - by0) * BLOCK:(by - by0 + 1) * BLOCK, (bx - bx0) * BLOCK:(bx - bx0 + 1) * BLOCK] = \
-                g.standard_normal((BLOCK, BLOCK), dtype=np.float32)
-    r0, c0 = oy - pad - by0 * BLOCK, ox - pad - bx0 * BLOCK
-    crop = big[r0:r0 + h + 2 * pad, c0:c0 + w + 2 * pad]
-    dog = cv2.GaussianBlur(crop, (0, 0), s1) - cv2.GaussianBlur(crop, (0, 0), s2)
-    # variance of a difference of Gaussians applied to unit white noise (continuous approximation)
-    var = 1 / (4 * math.pi * s1 ** 2) + 1 / (4 * math.pi * s2 ** 2) - 1 / (math.pi * (s1 ** 2 + s2 ** 2))
-    return dog[pad:pad + h, pad:pad + w] / np.float32(math.sqrt(var))
-
-
-def _draw(shape, ox, oy, items, draw):
-    canvas = np.zeros(shape, np.uint8)
-    for it in items:
-        draw(canvas, it, ox, oy)
-    return canvas.astype(np.float32) / 255.0
-
-
-def _fx(v):
-    return int(round(v * 16))  # cv2 drawing with shift=4: sixteenth-pixel positions
 
 
 def _base_layers(params, z, ox, oy, h, w, markers):
@@ -294,8 +232,6 @@ def phantom_layers(params: SynthParams, z: int, shape: tuple[int, int] | None = 
     """
     h, w = true_shape(params) if shape is None else shape
     if params.content == "realistic":
-        from .tissue import realistic_layers  # the other family builds on this module's helpers
-
         return realistic_layers(params, z, (h, w), markers)
     model = slant_model(params)
     xs, ys = np.arange(w, dtype=np.float64), np.arange(h, dtype=np.float64)

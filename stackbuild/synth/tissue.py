@@ -30,7 +30,8 @@ import numpy as np
 
 from .layout import rng
 from .params import SynthParams
-from .phantom import BLOCK, ZBLOCK, _KEY, _blocks, _draw, _fx, _membranes, _noise_slab
+from .space import BLOCK, ZBLOCK, KEY as _KEY, blocks as _blocks, draw as _draw, membranes as _membranes, \
+    noise_slab, sixteenths as _fx
 
 _TAG_CELLS, _TAG_ORG, _TAG_DOTS, _TAG_CLUSTER, _TAG_TEX, _TAG_DRIFT = 41, 42, 43, 44, 45, 46
 SPEED = (0.5, 2.5)  # px per section, each cell's own sideways motion
@@ -182,7 +183,7 @@ def realistic_layers(params: SynthParams, z: int, shape: tuple[int, int],
     box = (-BLOCK / 2, w + BLOCK / 2, -BLOCK / 2, h + BLOCK / 2)
     cells = _cells(params, z, *box)
     dist, per_cell = _membranes(cells, 0, 0, h, w)
-    tex = _noise_slab(params, z, 0, 0, h, w, tag=_TAG_TEX)
+    tex = noise_slab(params, _TAG_TEX, z, 0, 0, h, w)
     org = _organelles(params, z, box)
     clusters = _clusters(params, z, box)
     dots = _dots(params, z, (0, w, 0, h), clusters)

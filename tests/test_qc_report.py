@@ -30,7 +30,7 @@ _IMG_SRC = re.compile(r'<img[^>]*\ssrc="([^"]*)"', re.S)
 def report(tmp_path_factory):
     # No volume.zarr: the report must measure the renderer's lazy volume.
     root = make_build(tmp_path_factory.mktemp("qcr") / "build", volume=False, odd_name=True)
-    verdict = run_report(root, ReportSettings(), fail_on=["flagged>0"])
+    verdict = run_report(root, ReportSettings(probe_half_size=32, probe_spacing=64), fail_on=["flagged>0"])
     return root, verdict
 
 
@@ -50,7 +50,7 @@ def test_files_and_verdict(report):
     assert any(f.startswith("fail if align.p95 > 2 px") for f in v.failures)
     assert any(f.startswith("fail if flagged > 0") for f in v.failures)
     doc = json.loads((qc / "metrics.json").read_text())
-    assert doc["schema_version"] == 1 and doc["volume"]["measured_on"]["origin"] == "lazy"
+    assert doc["schema_version"] == 2 and doc["volume"]["measured_on"]["origin"] == "lazy"
     assert doc["verdict"]["passed"] is False
     with open(qc / "sections.csv", newline="") as fh:
         rows = list(csv.DictReader(fh))

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from itertools import combinations
+from pathlib import Path
 
 import numpy as np
 
@@ -40,23 +41,15 @@ class Measurements:
     notes: list[str] = field(default_factory=list)
 
 
-def section_to_output(points: np.ndarray, alignment: SectionAlignment | None, canvas: Canvas | None,
-                      iterations: int = 8) -> np.ndarray:
+def section_to_output(points: np.ndarray, alignment: SectionAlignment | None, canvas: Canvas | None) -> np.ndarray:
     """Map ``(N, 2)`` section-pixel ``(x, y)`` points to level-0 output pixels.
 
-    The stored alignment maps aligned -> section (pull-back); it is inverted
-    here: exactly for the affine, by fixed-point iteration for the
-    displacement field (which converges because the field is smooth and
-    small against its grid spacing).
+    The stored alignment maps aligned -> section (pull-back); it is inverted by
+    :meth:`~stackbuild.transforms.records.SectionAlignment.section_to_aligned`.
     """
     p = np.asarray(points, float).reshape(-1, 2)
     if alignment is not None:
-        coarse = alignment.affine.inverse().apply(p)
-        q = coarse.copy()
-        if alignment.displacement is not None:
-            for _ in range(iterations):
-                q = coarse - alignment.displacement.displacement(q)
-        p = q
+        p = alignment.section_to_aligned(p)
     if canvas is not None:
         p = p - np.array([canvas.origin_x, canvas.origin_y])
     return p
@@ -73,31 +66,68 @@ def _seam_pairs(stitch: SectionStitch, min_side: int) -> list[tuple[str, str]]:
     return out
 
 
-def measure_seams(stitch: SectionStitch, settings: ReportSettings) -> list[SeamBlocks]:
-    """Return re-measured residuals of every tile pair of one section, at the final placements."""
+def _pair_order(stitch: SectionStitch, pairs: list[tuple[str, str]]) -> list[tuple[str, str]]:
+    """Return the pairs row by row (by tile a's position), so consecutive pairs share tiles."""
+    pos = {t.tile: (t.y, t.x) for t in stitch.tiles}
+    return sorted(pairs, key=lambda ab: (pos.get(ab[0], (0, 0)), pos.get(ab[1], (0, 0))))
+
+
+def measure_seams(stitch: SectionStitch, settings: ReportSettings, *, keep_tiles: int = 4,
+                  blocks_per_seam: int = 48) -> list[SeamBlocks]:
+    """Return re-measured residuals of every tile pair of one section, at the final placements.
+
+    Holds at most ``keep_tiles`` tiles at a time (pairs are visited row by row, so a tile is read
+    about twice), never the section; the block grid of a long overlap is thinned to about
+    ``blocks_per_seam`` blocks.
+    """
+    from collections import OrderedDict
+
     r, s = settings.seam_half_size, settings.seam_max_shift
-    cache: dict[str, np.ndarray | str] = {}
+    cache: OrderedDict[str, np.ndarray | str] = OrderedDict()
 
     def tile(name: str):
-        if name not in cache:
-            try:
-                t = stitch.tile(name)
-                cache[name] = read_tile(t.path, t.height, t.width, stitch.section,
-                                        dtype=stitch.dtype).astype(np.float32)
-            except Exception as exc:  # an unreadable tile leaves its seams unmeasured, not the report
-                cache[name] = f"{name}: {type(exc).__name__}: {exc}"
-        return cache[name]
+        if name in cache:
+            cache.move_to_end(name)
+            return cache[name]
+        try:
+            t = stitch.tile(name)
+            img = read_tile(t.path, t.height, t.width, stitch.section, dtype=stitch.dtype).astype(np.float32)
+        except Exception as exc:  # an unreadable tile leaves its seams unmeasured, not the report
+            img = f"{name}: {type(exc).__name__}: {exc}"
+        cache[name] = img
+        while len(cache) > keep_tiles:
+            cache.popitem(last=False)
+        return img
 
     out = []
-    for a, b in _seam_pairs(stitch, 2 * (r + s) + 1):
+    for a, b in _pair_order(stitch, _seam_pairs(stitch, 2 * (r + s) + 1)):
         ia, ib = tile(a), tile(b)
         if isinstance(ia, str) or isinstance(ib, str):
             err = ia if isinstance(ia, str) else ib
             out.append(SeamBlocks(a, b, BlockMatches(np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0)), err))
             continue
         ta, tb = stitch.tile(a), stitch.tile(b)
+        box = overlap_box((ta.x, ta.y), ia.shape, (tb.x, tb.y), ib.shape)
+        area = 0.0 if box is None else (box[2] - box[0]) * (box[3] - box[1])
+        spacing = max(settings.seam_spacing, int(np.sqrt(area / max(blocks_per_seam, 1))))
         m = seam_residual(ia, (ta.x, ta.y), ib, (tb.x, tb.y), radius=r, search=s,
-                          spacing=settings.seam_spacing, min_ncc=settings.min_block_ncc,
-                          smooth=settings.seam_smooth)
+                          spacing=spacing, min_ncc=settings.min_block_ncc, smooth=settings.seam_smooth)
         out.append(SeamBlocks(a, b, m))
     return out
+
+
+@dataclass(frozen=True)
+class SeamJob:
+    """One section's seam measurement (small and picklable)."""
+
+    build: str
+    section: int
+    settings: ReportSettings
+
+
+def seam_job(job: SeamJob) -> list[SeamBlocks]:
+    """Measure one section's seams from its stored placement (runs on a worker)."""
+    from ..transforms.store import TransformStore
+
+    store = TransformStore(Path(job.build) / "transforms")
+    return measure_seams(store.load_stitch(job.section), job.settings)

@@ -1,70 +1,67 @@
 """Quality metrics of one build: ``DIR/qc/metrics.json`` and its CSV tables.
 
-Schema of ``metrics.json`` (``schema_version`` 1)
+Schema of ``metrics.json`` (``schema_version`` 2)
 ------------------------------------------------
-All residuals are in full-resolution (level-0) pixels. Every place is given
-as a *location*: ``{"section", "z", "x_px", "y_px", "x_nm", "y_nm", "z_nm"}``
-where ``x_px, y_px`` are level-0 output pixels (column, row of a plane of the
-volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
-``z_nm = z * section_thickness_nm``. A residual summary is
-``{"n", "rms", "median", "p95", "max", "at"}`` over block residual magnitudes,
-``at`` the location of the largest (all ``None`` when nothing was measured).
+All errors and residuals are in full-resolution (level-0) pixels. Every place
+is given as a *location*: ``{"section", "z", "x_px", "y_px", "x_nm", "y_nm",
+"z_nm"}`` where ``x_px, y_px`` are level-0 output pixels (column, row of a
+plane of the volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
+``z_nm = z * section_thickness_nm``. A residual summary is ``{"n", "rms",
+"median", "p95", "max", "at"}`` (all ``None`` when nothing was measured).
 
-``schema_version``  int, 1.
+``schema_version``  int, 2.
 ``build``           the build folder.
 ``volume``          ``pixel_size_nm``, ``section_thickness_nm``, ``width``,
                     ``height``, ``depth``, ``first_section``, ``lost_sections``,
                     ``measured_on`` (``{"origin", "level", "factor"}`` of the planes
-                    the section residuals were measured on, or ``None``).
-``tiles``           one per tile: ``section``, ``tile``, ``path``, ``x``, ``y``
-                    (solved section-pixel position), ``flags``, ``stitch_residual``
-                    (the stitcher's own number), ``seam_median`` / ``seam_max``
-                    (median / largest ``residual`` of the tile's seams), ``seams``,
-                    ``at`` (tile centre).
-``pairs``           one per tile pair: ``section``, ``a``, ``b``, ``dx``, ``dy``,
-                    ``stage_dx``, ``stage_dy``, ``ncc``, ``peak_ratio``, ``accepted``,
-                    ``reason``, ``stitch_residual`` (the stitcher's), ``misfit``
-                    (``[dx, dy]``: re-measured misplacement of ``b`` relative to ``a``,
-                    the component-wise median over the overlap's blocks), ``residual``
-                    (its length), ``at`` (overlap centre), ``blocks`` (summary of the
-                    single blocks, whose spread is mostly image noise), ``error``.
+                    the alignment error was estimated on, or ``None``).
 ``sections``        one per section: ``section``, ``z``, ``lost``, ``flags``,
-                    ``tiles``, ``pairs_accepted``, ``pairs_rejected``, ``stitch``
-                    (summary over the section's pair ``residual`` values), ``stitcher_stats``,
-                    ``align_prev`` / ``align_next`` (summaries against the nearest
-                    present plane before / after), ``align_score`` (median of the
-                    available ``p95`` of the two; a section is blamed only as far
-                    as it disagrees with both neighbours), ``inliers``
-                    (``{neighbour section: RANSAC inliers}`` of the coarse stage), ``elastic``
-                    (``{"rms", "max", "at"}`` of the stored field), ``aligner_stats``.
+                    ``align_error_px`` (estimated alignment error: RMS over the probe
+                    blocks of how far the plane deviates from where its neighbours put
+                    it, see :mod:`stackbuild.qc.zchain`), ``align_error_unc_px`` (its
+                    1-sigma uncertainty), ``align_error_blocks``, ``align_error_max_px``
+                    and ``align_error_at`` (largest block), ``motion_prev`` (apparent
+                    motion to the plane before: ``n``, ``median``, ``p95``, ``tried``,
+                    ``beyond``; tissue change included, for information), ``tiles``,
+                    ``pairs_accepted``, ``pairs_rejected``, ``stitch`` (summary over the
+                    section's pair ``residual`` values), ``stitcher_stats``, ``inliers``
+                    (``{neighbour section: RANSAC inliers}``), ``elastic`` (``{"rms",
+                    "max", "at"}`` of the stored field), ``aligner_stats``.
+``flagged_tiles``   tiles that carry a flag (at most :data:`FLAGGED_TILES_IN_JSON`),
+                    as rows of ``tiles.csv``.
+``tables``          row counts of ``tiles.csv`` and ``pairs.csv``.
 ``channels``        one per (section, marker channel) registration: ``section``,
                     ``channel``, ``path``, ``registered``, ``measure`` (its name),
                     ``measure_before``, ``measure_after``, ``shift_from_given``
                     (section px), ``rotation_deg``, ``scale_ratio``, ``flags``,
                     ``landmark_residual`` (RMS over its landmarks, EM px; ``None``
-                    without landmarks), ``at`` (the image centre). Empty when the build
-                    has no channels.
+                    without landmarks), ``at`` (the image centre).
 ``landmarks``       one per row of the build's landmark file (see
-                    :mod:`stackbuild.qc.landmarks`): ``section``, ``channel``, ``name``,
-                    ``tile``, ``em`` / ``marker`` (the spot, section px / marker px),
-                    ``dx``, ``dy``, ``residual`` (EM px), ``residual_nm``, ``row``, ``at``.
-                    Empty without a landmark file.
+                    :mod:`stackbuild.qc.landmarks`).
 ``totals``          the measures that ``--fail-on`` can test, see
-                    :data:`stackbuild.qc.thresholds.MEASURES`; ``align.*`` are
-                    over adjacent plane pairs only (pairs across a lost section
-                    are in ``sections`` and ``blocks.csv``, and named in ``notes``).
+                    :data:`stackbuild.qc.thresholds.MEASURES` and their meanings in
+                    :data:`stackbuild.qc.glossary.TOTALS`.
 ``worst``           ``tile``, ``pair``, ``section_stitch``, ``section_align``,
-                    ``channel`` (lowest ``measure_after``), ``landmark`` (largest
-                    ``residual``): the worst row of each (or ``None``).
-``notes``           what could not be measured or was left out of the totals, and why.
+                    ``channel``, ``landmark``: the worst row of each (or ``None``).
+``notes``           what could not be measured or was left out, and why.
+``verdict``         ``passed``, ``failures``, ``thresholds``.
+``provenance``      ``version``, ``written``, ``settings``, ``inputs`` (path, sha256,
+                    bytes of each manifest), ``stages`` (status and seconds).
 
-``blocks.csv`` beside it lists every section-to-section block (``z_from``,
-``z_to``, ``x_px``, ``y_px``, ``dx``, ``dy``, ``residual``, ``ncc``) so any
-summary can be recomputed; a summary's ``at`` lies on plane ``z_to``.
+CSV tables beside it
+--------------------
+``sections.csv`` (the ``sections`` rows flattened; ``align_error_px`` is a kept
+column name), ``tiles.csv`` (one per tile: ``section``, ``tile``, ``path``, ``x``,
+``y``, ``flags``, ``stitch_residual``, ``seam_median``, ``seam_max``, ``seams``,
+``at``), ``pairs.csv`` (one per tile pair: stitcher's ``dx``, ``dy``, ``ncc``,
+``accepted``, ``reason``; re-measured ``misfit`` and ``residual``), ``regions.csv``
+(one per probe region), ``blocks.csv`` (a sample of probe blocks: ``z``, ``x_px``,
+``y_px``, ``error_dx``, ``error_dy``, ``error``, ``motion_dx``, ``motion_dy``),
+``channels.csv`` and ``landmarks.csv`` when there are any.
 
-Section-to-section residuals are an independent measurement of the output
-(NCC block matching of adjacent rendered planes), not a copy of the aligner's
-statistics, which are kept apart under ``aligner_stats``.
+Everything is an independent measurement of the output, not a copy of the
+stitcher's or aligner's statistics, which are kept apart (``stitcher_stats``,
+``aligner_stats``).
 """
 from __future__ import annotations
 
@@ -81,13 +78,13 @@ from ..transforms.records import Canvas
 from ..transforms.types import Affine2D
 from .blockmatch import BlockMatches, summarize
 from .landmarks import landmark_rows, landmark_totals, per_channel_rms
-from .measure import Measurements, measure_seams, section_to_output
+from .measure import Measurements, SeamJob, seam_job, section_to_output
 from .probe import measure_error
 from .zchain import section_error
 from .planes import open_planes
 from .settings import ReportSettings
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 
 
 def location(section: int, z: int | None, xy, canvas: Canvas | None, px_nm: float, dz_nm: float) -> dict:
@@ -223,25 +220,39 @@ def plane_errors(probe: list[dict], depth: int) -> dict[int, dict]:
 
 
 def _motion(probe: list[dict]) -> dict[tuple[int, int], dict]:
-    """Return apparent motion per link ``(z_from, z_to)``: blocks and the block-weighted median and p95 (px)."""
+    """Return per link ``(z_from, z_to)``: blocks matched, tried and beyond the search, apparent motion median, p95 (px)."""
     acc: dict[tuple[int, int], list] = {}
     for r in probe:
         for link in r.get("links", []):
-            if link["n"]:
+            if link.get("tried"):
                 acc.setdefault((link["z_from"], link["z_to"]), []).append(link)
     out = {}
     for k, rows in acc.items():
-        w = np.array([x["n"] for x in rows], float)
-        out[k] = {"n": int(w.sum()), "median": float(np.average([x["median"] for x in rows], weights=w)),
-                  "p95": float(max(x["p95"] for x in rows))}
+        got = [x for x in rows if x["n"]]
+        w = np.array([x["n"] for x in got], float)
+        out[k] = {"n": int(w.sum()),
+                  "median": float(np.average([x["median"] for x in got], weights=w)) if got else None,
+                  "p95": float(max(x["p95"] for x in got)) if got else None,
+                  "tried": int(sum(x["tried"] for x in rows)), "beyond": int(sum(x.get("beyond", 0) for x in rows))}
     return out
+
+
+def _beyond_reach(motion: dict, z) -> float:
+    """Return the share of tried blocks whose match lay beyond the search, over the span-1 links touching ``z``.
+
+    Only when both such links (or the only one) are beyond reach is the plane itself blamed.
+    """
+    shares = [v["beyond"] / v["tried"] for (a, b), v in motion.items()
+              if z in (a, b) and v["tried"] and b - a == 1]
+    return min(shares) if shares else 0.0
 
 
 def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, settings) -> list[dict]:
     depth = sc.canvas.depth if sc.canvas else 0
     errors = plane_errors(meas.probe, depth) if meas.probe else {}
     motion = _motion(meas.probe)
-    prev = {zb: v for (za, zb), v in sorted(motion.items(), key=lambda kv: kv[0][1] - kv[0][0], reverse=True)}
+    prev = {zb: v for (za, zb), v in sorted(motion.items(), key=lambda kv: kv[0][1] - kv[0][0], reverse=True)
+            if v["n"]}
     lost = set(sc.canvas.lost_sections) if sc.canvas else set()
     rows = []
     for s in sections:
@@ -252,6 +263,13 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, setti
             flags += [str(f) for f in extra] if isinstance(extra, (list, tuple, dict)) else [str(extra)]
         err = errors.get(z) or {"align_error_px": None, "align_error_unc_px": None, "blocks": 0, "max": None,
                                 "at_xy": None}
+        reach = _beyond_reach(motion, z)
+        if reach > 0.25:
+            # a quarter of the blocks found their match only at the edge of the search: the plane is off
+            # by more than the probe can see, so its error is at least the search range
+            flags.append("beyond_probe_reach")
+            err = {**err, "align_error_px": max(err["align_error_px"] or 0.0, float(settings.probe_max_shift)),
+                   "align_error_unc_px": None}
         if err["align_error_px"] is not None and err["align_error_px"] > settings.align_max:
             flags.append("error_over_bar")
         if s not in lost and st is not None and not err["blocks"] and meas.probe:
@@ -378,9 +396,11 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
     aligns = {s: store.load_alignment(s) for s in store.sections_with("align")}
     meas = Measurements()
     tiles, pairs, seam_sums = [], [], {}
-    for k, (s, st) in enumerate(stitches.items()):
-        meas.seams[s] = measure_seams(st, settings)
-        t, p, seam_sums[s] = _stitch_rows(s, st, meas.seams[s], aligns.get(s), sc)
+    run = mapper or map
+    seams = run(seam_job, [SeamJob(str(build_dir), s, settings) for s in stitches])
+    for k, ((s, st), found) in enumerate(zip(stitches.items(), seams)):
+        t, p, seam_sums[s] = _stitch_rows(s, st, found, aligns.get(s), sc)
+        meas.seams[s] = len(found)  # the driver keeps per-pair rows, not blocks
         tiles += t
         pairs += p
         if progress:
@@ -471,21 +491,53 @@ def block_rows(meas: Measurements) -> list[dict]:
     return [row for r in meas.probe for row in r.get("sample", [])]
 
 
+def region_rows(meas: Measurements) -> list[dict]:
+    """Return one row per probe region: its box (level-0 px), blocks, matching noise, error over the stack, worst plane."""
+    rows = []
+    for r in meas.probe:
+        p = r.get("planes")
+        row = {"x0_px": round(r["box"][0], 1), "y0_px": round(r["box"][1], 1), "x1_px": round(r["box"][2], 1),
+               "y1_px": round(r["box"][3], 1), "blocks": r["blocks"], "noise_px": r["sigma"],
+               "error_px": None, "worst_z": None, "worst_error_px": None}
+        if p and sum(p["n"]):
+            est, _ = section_error(sum(p["n"]), sum(p["sum_sq"]), sum(p["sum_noise"]))
+            per = [section_error(n, q, w)[0] for n, q, w in zip(p["n"], p["sum_sq"], p["sum_noise"])]
+            k = int(np.argmax([-1 if v is None else v for v in per]))
+            row.update(error_px=est, worst_z=r["z"][k], worst_error_px=per[k])
+        rows.append(row)
+    return rows
+
+
+#: at most this many flagged tiles are listed in metrics.json (all of them are in tiles.csv)
+FLAGGED_TILES_IN_JSON = 1000
+
+
 def write_metrics(doc: dict, qc_dir: str | Path, meas: Measurements | None = None) -> list[Path]:
     """Write ``metrics.json`` and the CSV tables (``channels.csv``, ``landmarks.csv`` only if there are any).
 
-    With ``meas``, also ``blocks.csv``: every section-to-section block behind the summaries.
+    ``metrics.json`` holds the per-section rows, totals, worst rows and verdict; per-tile and
+    per-pair rows go to ``tiles.csv`` and ``pairs.csv`` only (plus up to
+    :data:`FLAGGED_TILES_IN_JSON` flagged tiles), so its size grows with sections, not tiles:
+    about 3 kB per section, under 2 MB for 400 sections whatever their tile count (measured
+    by ``tests/benchmarks/bench_qc.py --json-size``). With ``meas``, also ``regions.csv``
+    (one row per probe region) and ``blocks.csv`` (a sample of probe blocks, see
+    ``blocks_per_region``).
     """
     from ..transforms.store import atomic_write_text
 
     qc_dir = Path(qc_dir)
     qc_dir.mkdir(parents=True, exist_ok=True)
     path = qc_dir / "metrics.json"
-    atomic_write_text(path, json.dumps(_jsonable(doc), indent=1, allow_nan=False) + "\n")
+    flagged = [t for t in doc.get("tiles") or [] if t["flags"]]
+    slim = {k: v for k, v in doc.items() if k not in ("tiles", "pairs")}
+    slim["flagged_tiles"] = flagged[:FLAGGED_TILES_IN_JSON]
+    slim["tables"] = {"tiles.csv": len(doc.get("tiles") or []), "pairs.csv": len(doc.get("pairs") or [])}
+    atomic_write_text(path, json.dumps(_jsonable(slim), indent=1, allow_nan=False) + "\n")
     paths = [path]
     for name in ("tiles", "pairs", "sections", "channels", "landmarks"):
         if doc.get(name) or name not in ("channels", "landmarks"):
             paths.append(_write_csv(qc_dir / f"{name}.csv", doc[name]))
     if meas is not None:
+        paths.append(_write_csv(qc_dir / "regions.csv", region_rows(meas)))
         paths.append(_write_csv(qc_dir / "blocks.csv", block_rows(meas)))
     return paths

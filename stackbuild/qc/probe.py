@@ -137,7 +137,8 @@ def _link_rows(la, lb, zs, shifts, conf) -> list[dict]:
     for k, (a, b) in enumerate(zip(la, lb)):
         mag = np.hypot(shifts[k, :, 0], shifts[k, :, 1])
         ok = np.isfinite(mag)
-        rows.append({"z_from": zs[a], "z_to": zs[b], "n": int(ok.sum()), "tried": int(np.isfinite(conf[k]).sum()),
+        rows.append({"z_from": zs[a], "z_to": zs[b], "n": int(ok.sum()),
+                     "tried": int((~np.isnan(conf[k])).sum()), "beyond": int(np.isneginf(conf[k]).sum()),
                      "median": float(np.median(mag[ok])) if ok.any() else None,
                      "p95": float(np.percentile(mag[ok], 95)) if ok.any() else None})
     return rows

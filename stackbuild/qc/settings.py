@@ -78,11 +78,11 @@ class ReportSettings:
     worst: int = 10
     measure_scale: int = 2
     measure_max_px: int = 8192
-    probe_spacing: int = 96
+    probe_spacing: int = 128
     probe_blocks: int = 4000
-    probe_half_size: int = 48
+    probe_half_size: int = 64
     probe_max_shift: int = 12
-    probe_fine_sigma: float = 2.0
+    probe_fine_sigma: float = 3.0
     probe_coarse_sigma: float = 16.0
     probe_min_confidence: float = 0.5
     probe_spans: int = 2

@@ -129,6 +129,8 @@ def match_points(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
         ``(dx, dy)``, NaN where refused.
     confidence : ndarray, shape (N,)
         NCC after refinement (NaN where not measured); below ``min_ncc`` counts as refused.
+        ``-inf`` marks a block whose best whole-pixel match lay on the edge of the search range
+        (the shift is probably larger than ``search``).
     """
     if fixed.shape != moving.shape or fixed.ndim != 2:
         raise ValueError(f"fixed and moving must be 2-D of one shape, got {fixed.shape} and {moving.shape}")
@@ -152,6 +154,8 @@ def match_points(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
         score = cv2.matchTemplate(np.ascontiguousarray(inner), np.ascontiguousarray(tpl), cv2.TM_CCOEFF_NORMED)
         r, c = np.unravel_index(int(np.argmax(score)), score.shape)
         if r in (0, score.shape[0] - 1) or c in (0, score.shape[1] - 1):
+            if float(score.max()) >= min_ncc:
+                conf[i] = -np.inf
             continue
         d, ncc = refine_shift(tpl, win, (c - search, r - search))
         conf[i] = ncc

@@ -125,9 +125,16 @@ def test_focus_measure_is_variance_of_scipy_laplacian():
 
 
 def test_robust_contrast_uses_normal_scaled_mad():
-    # Reference library: scipy.stats.median_abs_deviation(scale="normal") on the band-passed blocks.
+    # Reference library: scipy.stats.median_abs_deviation(scale="normal") on the band-passed
+    # blocks; the quadratic removed with numpy.polynomial.polynomial.polyvander2d + lstsq.
     img = data.camera().astype(np.float32)
     small = cv2.resize(img, (64, 64), interpolation=cv2.INTER_AREA)
+    c = (2 * np.arange(64) + 1) / 64 - 1.0
+    vv, uu = np.meshgrid(c, c, indexing="ij")
+    full = np.polynomial.polynomial.polyvander2d(uu.ravel(), vv.ravel(), [2, 2])
+    quad = full[:, [0, 1, 2, 3, 4, 6]]  # 1, v, v^2, u, uv, u^2 (total degree <= 2)
+    fit = quad @ np.linalg.lstsq(quad, small.ravel().astype(np.float64), rcond=None)[0]
+    small = (small - fit.reshape(64, 64)).astype(np.float32)
     band = small - cv2.GaussianBlur(small, (0, 0), 4.0, borderType=cv2.BORDER_REFLECT)
     want = scipy.stats.median_abs_deviation(band, axis=None, scale="normal")
     assert robust_contrast(img) == pytest.approx(float(want), rel=1e-3)

@@ -16,16 +16,30 @@ QUANTISATION_NOISE = float(1.0 / np.sqrt(12.0))
 PILE_UP_FACTOR = 4.0
 
 
+def _minus_quadratic(values: np.ndarray) -> np.ndarray:
+    """Return ``values`` minus their least-squares 2-D quadratic (the shape of a vignetting bowl)."""
+    h, w = values.shape
+    if h < 3 or w < 3:
+        return values - values.mean()
+    yy, xx = np.mgrid[:h, :w]
+    u, v = (2 * xx + 1) / w - 1.0, (2 * yy + 1) / h - 1.0
+    basis = np.stack([np.ones_like(u), u, v, u * u, u * v, v * v], axis=-1).reshape(-1, 6)
+    coef = np.linalg.lstsq(basis, values.ravel().astype(np.float64), rcond=None)[0]
+    return (values - (basis @ coef).reshape(h, w)).astype(np.float32)
+
+
 def robust_contrast(image: np.ndarray) -> float:
     """Return the structure contrast of a tile: robust std of its band-passed block means.
 
     Notes
     -----
     The tile is averaged over ``CONTRAST_BLOCK``-pixel blocks (pixel noise
-    drops by that factor), then a Gaussian blur of ``CONTRAST_SHADING_SIGMA``
-    blocks is subtracted (illumination shading goes), and the spread is
-    ``1.4826 * MAD`` (the median absolute deviation scaled to a Gaussian
-    standard deviation; Hampel, J. Am. Stat. Assoc. 69:383 (1974),
+    drops by that factor); its least-squares quadratic is subtracted (a
+    vignetting bowl goes, edges included, where a blur reflected at the
+    border would leave it), then a Gaussian blur of
+    ``CONTRAST_SHADING_SIGMA`` blocks (the remaining slow shading goes); the
+    spread is ``1.4826 * MAD`` (the median absolute deviation scaled to a
+    Gaussian standard deviation; Hampel, J. Am. Stat. Assoc. 69:383 (1974),
     doi:10.1080/01621459.1974.10482962). A tile of empty resin or a blanked
     beam keeps noise and shading but loses this measure.
     """
@@ -33,6 +47,7 @@ def robust_contrast(image: np.ndarray) -> float:
     h, w = img.shape
     small = cv2.resize(img, (max(1, w // CONTRAST_BLOCK), max(1, h // CONTRAST_BLOCK)),
                        interpolation=cv2.INTER_AREA)
+    small = _minus_quadratic(small)
     band = small - cv2.GaussianBlur(small, (0, 0), CONTRAST_SHADING_SIGMA, borderType=cv2.BORDER_REFLECT)
     return float(1.4826 * np.median(np.abs(band - np.median(band))))
 

@@ -122,8 +122,12 @@ def solve_gain_offset(pairs: np.ndarray, mean_a: np.ndarray, std_a: np.ndarray,
         so they can never anchor the solve.
     levels : ndarray, shape (n_tiles,), optional
         Each tile's typical raw grey (its median). When given, each connected
-        group's offsets are shifted so that the median of its corrected levels
-        equals the median of its raw ones: a group keeps its own raw intensity.
+        group's offsets are shifted so that, on average over its tiles, the
+        correction leaves that level unchanged (``mean((g - 1) level + o) =
+        0``): a group keeps its own raw intensity. Averaging the change, not
+        matching a median of levels, keeps the other tiles' output steady when
+        one tile drops out of the group (its level depends on the specimen,
+        its change only on how it was imaged).
     max_gain_change : float, optional
         Gains are clipped to ``[1 / (1 + m), 1 + m]`` and offsets to ``m``
         times the section's typical grey.
@@ -181,8 +185,7 @@ def solve_gain_offset(pairs: np.ndarray, mean_a: np.ndarray, std_a: np.ndarray,
     if levels is not None:
         lev = np.asarray(levels, np.float64).reshape(-1)
         for members in _groups(n, pairs, ok):
-            shift = np.median(lev[members]) - np.median(gain[members] * lev[members] + offset[members])
-            offset[members] += shift
+            offset[members] -= np.mean((gain[members] - 1.0) * lev[members] + offset[members])
     if max_gain_change is not None:
         offset = np.clip(offset, -max_gain_change * scale, max_gain_change * scale)
     offset[~ok] = 0.0

@@ -14,7 +14,7 @@ from .phasecorr import phase_correlate, taper_window
 #: Overlaps narrower than this (pixels) after re-cutting cannot be scored.
 MIN_SCORED = 8
 #: Width (pixels) of the cosine ramp at the edges of the coarse-pass strips.
-COARSE_TAPER = 12
+COARSE_TAPER = 4
 #: Search radius (pixels) per bin of the coarse pass, and the largest binning.
 COARSE_PIXELS_PER_BIN = 24
 MAX_COARSE_BIN = 4
@@ -99,20 +99,24 @@ def coarse_bin(search: float) -> int:
     return int(max(1, min(MAX_COARSE_BIN, search // COARSE_PIXELS_PER_BIN)))
 
 
-def _coarse_canvases(strip_a, strip_b, ov: Overlap, nominal, binning: int = 1) -> tuple[np.ndarray, np.ndarray]:
+def _coarse_canvases(strip_a, strip_b, ov: Overlap, nominal, binning: int = 1,
+                     reach: int = 0) -> tuple[np.ndarray, np.ndarray]:
     """Return both kept strips, tapered, on one zero canvas laid out in tile-a pixels, binned by ``binning``.
 
     Each strip reaches ``margin`` pixels into its own tile beyond the
     nominal overlap, so whatever the stage error (up to the margin), the
     whole true overlap is on both canvases. Binning averages ``binning``
     x ``binning`` blocks (``cv2.resize`` with ``INTER_AREA``, exact block
-    means since the canvas is a whole number of blocks).
+    means since the canvas is a whole number of blocks). The canvas extends
+    ``reach`` pixels beyond the strips, so that a circular correlation
+    cannot alias a shift of up to ``reach`` onto the opposite sign.
     """
     nx, ny = nominal
     pa, pb = ov.pad_a, (ov.pad_b[0] + nx, ov.pad_b[1] + ny, ov.pad_b[2] + nx, ov.pad_b[3] + ny)
     ux0, uy0 = min(pa[0], pb[0]), min(pa[1], pb[1])
-    w = binning * scipy.fft.next_fast_len(-(-(max(pa[2], pb[2]) - ux0) // binning), real=True)
-    h = binning * scipy.fft.next_fast_len(-(-(max(pa[3], pb[3]) - uy0) // binning), real=True)
+    # Room for the whole search beyond the strips, so that no shift within it wraps around.
+    w = binning * scipy.fft.next_fast_len(-(-(max(pa[2], pb[2]) - ux0 + reach) // binning), real=True)
+    h = binning * scipy.fft.next_fast_len(-(-(max(pa[3], pb[3]) - uy0 + reach) // binning), real=True)
     out = []
     for strip, p in ((strip_a, pa), (strip_b, pb)):
         c = np.zeros((h, w), np.float32)
@@ -181,12 +185,14 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
     spectral = dict(spectral_exponent=spectral_exponent,
                     lowpass=spectrum_sigma if spectrum_sigma > 0 else None)
     b = coarse_bin(search)
-    fa, fb = _coarse_canvases(strip_a, strip_b, ov, nominal, b)
+    # Two bins of slack: a shift just inside the search must not fall on the coarse edge.
+    limit = search + 2 * b
+    fa, fb = _coarse_canvases(strip_a, strip_b, ov, nominal, b, int(math.ceil(limit)))
     # Low-pass on the binned canvases would cut b times more of the band; the bins already average noise.
-    (sx, sy), ratio = phase_correlate(fa, fb, upsample=1, max_shift=search / b, window=False,
+    (sx, sy), ratio = phase_correlate(fa, fb, upsample=1, max_shift=limit / b, window=False,
                                       spectral_exponent=spectral_exponent)
     d = nom - b * np.array([sx, sy])
-    if max(abs(sx), abs(sy)) >= search / b - 1:
+    if max(abs(sx), abs(sy)) >= limit / b - 1:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
     up = 1 if b > 1 else upsample  # a binned estimate is first brought to the whole pixel
     for _ in range(4):
@@ -202,9 +208,11 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
             break
         if max(abs(sx), abs(sy)) <= 1.0:
             up = upsample
-    if np.max(np.abs(d - nom)) > search:
+    if np.max(np.abs(d - nom)) > limit:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
-    ncc, ia, ib = ncc_after_shift(ca, cb, (sx, sy))
+    ncc, _, _ = ncc_after_shift(ca, cb, (sx, sy))
     reason = "weak_peak" if ratio < min_peak_margin else ("low_ncc" if ncc < min_ncc else "")
+    # Intensity statistics from the two cuts as they are (the same area to within a pixel):
+    # the resampled one is smoothed by the interpolation, which would bias its spread low.
     return PairResult(float(d[0]), float(d[1]), ncc, ratio, reason,
-                      float(ia.mean()), float(ia.std()), float(ib.mean()), float(ib.std()), int(ca.size))
+                      float(ca.mean()), float(ca.std()), float(cb.mean()), float(cb.std()), int(ca.size))

@@ -157,9 +157,12 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
     if settings.intensity and kept.any():
         kr = [results[k] for k in np.flatnonzero(kept)]
         eligible = np.array([not NO_INTENSITY_ANCHOR & set(f) for f in flags], bool)
+        noise = np.array([st["noise"] for st in stats])
+        kp = pairs[kept]
         gain, offset = solve_gain_offset(
-            pairs[kept], [r.mean_a for r in kr], [r.std_a for r in kr], [r.mean_b for r in kr],
-            [r.std_b for r in kr], n, settings.intensity_pull, eligible=eligible,
+            kp, [r.mean_a for r in kr], _structure_spread([r.std_a for r in kr], noise[kp[:, 0]]),
+            [r.mean_b for r in kr], _structure_spread([r.std_b for r in kr], noise[kp[:, 1]]),
+            n, settings.intensity_pull, eligible=eligible,
             levels=np.array([st["median"] for st in stats]), max_gain_change=settings.max_gain_change)
     placements = []
     for i, t in enumerate(tiles):
@@ -187,6 +190,18 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
         section=section, dtype=tiles[0].dtype, tiles=placements, pairs=matches,
         illumination=profile, illumination_step=settings.illumination_step,
         flags=sec_flags, stats=_section_stats(residual[kept], results, kept, flags, rounds))
+
+
+def _structure_spread(std, noise) -> np.ndarray:
+    """Return the spread of the specimen in an overlap: its pixel spread with the tile's noise taken out.
+
+    Noise adds in quadrature to the specimen's spread and does not scale
+    with a tile's gain, so the raw spread would pull the gains of noisy
+    tiles (``sqrt(std^2 - noise^2)``, floored at a tenth of ``std``).
+    """
+    std = np.asarray(std, np.float64)
+    noise = np.asarray(noise, np.float64)
+    return np.sqrt(np.maximum(std ** 2 - noise ** 2, (0.1 * std) ** 2))
 
 
 def _section_stats(res: np.ndarray, results, kept, flags, rounds) -> dict:

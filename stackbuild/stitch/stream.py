@@ -26,6 +26,8 @@ MIN_ILLUMINATION_TILES = 3
 #: per-pixel median over a few dozen tiles is stable (common practice, no source),
 #: and it keeps the first pass short for sections of a thousand tiles.
 MAX_PROFILE_TILES = 32
+#: Below this many tiles the profile is a quadratic, from it on a quartic.
+FEW_PROFILE_TILES = 16
 
 
 def read_tile(entry: TileEntry, section: int) -> np.ndarray:
@@ -87,7 +89,10 @@ def sample_profile(tiles: list[TileEntry], order: np.ndarray, settings: StitchSe
             thumbs.append(tile_thumbnail(img, settings.illumination_step))
     if len(thumbs) < MIN_ILLUMINATION_TILES:
         return None, ["illumination_too_few_tiles"]
-    return illumination_profile(np.stack(thumbs)), []
+    # A median over few tiles still carries specimen; a quadratic (the shape of a
+    # vignetting bowl) follows it less than a quartic (common practice, no source).
+    degree = 2 if len(thumbs) < FEW_PROFILE_TILES else 4
+    return illumination_profile(np.stack(thumbs), degree), []
 
 
 def _slice(box):

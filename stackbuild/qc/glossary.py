@@ -23,7 +23,7 @@ FLAGS = {
     # sections (report)
     "error_over_bar": ("section", "its estimated alignment error is over the align_max bar"),
     "beyond_probe_reach": ("section", "over a quarter of its blocks moved more than the probe searches "
-                                      "(probe_max_shift) from a neighbour: its error is at least that large"),
+                                      "(probe_reach) from a neighbour: its error is at least that large"),
     "not_measured": ("section", "no probe block could be measured on it: its alignment error is unknown"),
     "blank_section": ("section", "every tile is blank: the section holds no image"),
     # channels

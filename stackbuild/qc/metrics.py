@@ -268,7 +268,7 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, setti
             # a quarter of the blocks found their match only at the edge of the search: the plane is off
             # by more than the probe can see, so its error is at least the search range
             flags.append("beyond_probe_reach")
-            err = {**err, "align_error_px": max(err["align_error_px"] or 0.0, float(settings.probe_max_shift)),
+            err = {**err, "align_error_px": max(err["align_error_px"] or 0.0, float(settings.probe_reach)),
                    "align_error_unc_px": None}
         if err["align_error_px"] is not None and err["align_error_px"] > settings.align_max:
             flags.append("error_over_bar")

@@ -40,7 +40,7 @@ def probe_geometry(source: PlaneSource, settings: ReportSettings, width0: float,
         spacing = max(64.0, float(np.sqrt(width0 * height0 / max(settings.probe_blocks, 1))))
     half = max(4, int(round(settings.probe_half_size / f)))
     search = max(2, int(round(settings.probe_max_shift / f)))
-    margin = half + search + 3 + int(np.ceil(3 * settings.probe_coarse_sigma / f))
+    margin = half + search + 3 + int(np.ceil((settings.probe_reach + 3 * settings.probe_coarse_sigma) / f))
     return max(2, int(round(spacing / f))), half, search, margin
 
 
@@ -106,7 +106,9 @@ def probe_region(job: RegionJob) -> dict:
                 conf.append(np.full(len(pts), np.nan))
                 continue
             local = pts - np.asarray(corner)
-            s, c = match_points(fa, band, local, half=half, search=search, min_ncc=st.probe_min_confidence)
+            start = _coarse_offsets(fa, band, local, half, st.probe_reach / source.factor, st.probe_min_confidence)
+            s, c = match_points(fa, band, local, half=half, search=search, min_ncc=st.probe_min_confidence,
+                                offsets=start)
             shifts.append(s * source.factor)
             conf.append(c)
     nz = len(zs)
@@ -129,6 +131,30 @@ def probe_region(job: RegionJob) -> dict:
     out["links"] = _link_rows(la, lb, zs, shifts_arr, conf)
     out["sample"] = _sample_rows(zs, pts0, jit, shifts_arr, la, lb, st.blocks_per_region)
     return out
+
+
+def _coarse_offsets(fixed, moving, pts, half: int, reach: float, min_ncc: float, factor: int = 4) -> np.ndarray:
+    """Return whole-pixel starting shifts from a ``factor``-times reduced match reaching ``reach`` pixels.
+
+    Planes off by more than the fine search (a rotated or badly warped section) are still found;
+    blocks without a trustworthy coarse match start from zero.
+    """
+    import cv2
+
+    if reach <= 0:
+        return np.zeros_like(pts)
+    h, w = fixed.shape
+    size = (max(1, w // factor), max(1, h // factor))
+    small = [cv2.resize(np.nan_to_num(a, nan=0.0), size, interpolation=cv2.INTER_AREA) for a in (fixed, moving)]
+    valid = [cv2.resize(np.isfinite(a).astype(np.float32), size, interpolation=cv2.INTER_AREA) > 0.999
+             for a in (fixed, moving)]
+    for s_, v_ in zip(small, valid):
+        s_[~v_] = np.nan
+    c_pts = np.round(pts / factor).astype(int)
+    d, _ = match_points(small[0], small[1], c_pts, half=max(4, half // factor),
+                        search=max(2, int(np.ceil(reach / factor))), min_ncc=min_ncc)
+    out = np.where(np.isfinite(d), np.round(d * factor), 0.0)
+    return out.astype(int)
 
 
 def _link_rows(la, lb, zs, shifts, conf) -> list[dict]:

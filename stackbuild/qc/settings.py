@@ -37,6 +37,9 @@ class ReportSettings:
         Template half size of that block matching, full-resolution pixels.
     probe_max_shift : int
         Largest shift that block matching searches, full-resolution pixels.
+    probe_reach : int
+        A first pass on 4x reduced blocks finds shifts up to this (full-resolution pixels);
+        the fine match then searches ``probe_max_shift`` around it.
     probe_fine_sigma : float
         Band-pass of the probe, fine side: Gaussian sigma (full-resolution pixels) that removes
         what does not persist between sections (noise, vesicle-sized dots, cytoplasm texture).
@@ -82,6 +85,7 @@ class ReportSettings:
     probe_blocks: int = 4000
     probe_half_size: int = 64
     probe_max_shift: int = 12
+    probe_reach: int = 64
     probe_fine_sigma: float = 3.0
     probe_coarse_sigma: float = 16.0
     probe_min_confidence: float = 0.5

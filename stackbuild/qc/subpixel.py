@@ -103,7 +103,8 @@ def refine_shift(template: np.ndarray, window: np.ndarray, start: tuple[float, f
 
 
 def match_points(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, half: int, search: int,
-                 min_ncc: float = 0.5, min_std: float = 1e-3) -> tuple[np.ndarray, np.ndarray]:
+                 min_ncc: float = 0.5, min_std: float = 1e-3,
+                 offsets: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Return the shift and match confidence of every point (NaN where no trustworthy match).
 
     Parameters
@@ -122,6 +123,9 @@ def match_points(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
     min_ncc : float
         The confidence of a match is the NCC of the refined, resampled block; weaker
         ones are refused.
+    offsets : ndarray of int, shape (N, 2), optional
+        Whole-pixel ``(dx, dy)`` around which to search each block (from a coarser pass);
+        the returned shifts include them.
 
     Returns
     -------
@@ -137,15 +141,18 @@ def match_points(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
     if half < 2 or search < 1:
         raise ValueError(f"half must be >= 2 and search >= 1, got {half} and {search}")
     pts = np.asarray(points, int).reshape(-1, 2)
+    off = np.zeros_like(pts) if offsets is None else np.asarray(offsets, int).reshape(-1, 2)
     shifts = np.full((len(pts), 2), np.nan)
     conf = np.full(len(pts), np.nan)
     h, w = fixed.shape
     reach = half + search + 2
     for i, (x, y) in enumerate(pts):
-        if x - reach < 0 or y - reach < 0 or x + reach >= w or y + reach >= h:
+        mx, my = x + off[i, 0], y + off[i, 1]
+        if min(x - half, y - half, mx - reach, my - reach) < 0 or max(x + half, mx + reach) >= w \
+                or max(y + half, my + reach) >= h:
             continue
         tpl = fixed[y - half:y + half + 1, x - half:x + half + 1]
-        win = moving[y - reach:y + reach + 1, x - reach:x + reach + 1]
+        win = moving[my - reach:my + reach + 1, mx - reach:mx + reach + 1]
         if not (np.isfinite(tpl).all() and np.isfinite(win).all()):
             continue
         if tpl.std() < min_std or win.std() < min_std:
@@ -160,5 +167,5 @@ def match_points(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
         d, ncc = refine_shift(tpl, win, (c - search, r - search))
         conf[i] = ncc
         if np.isfinite(ncc) and ncc >= min_ncc:
-            shifts[i] = d
+            shifts[i] = d + off[i]
     return shifts, conf

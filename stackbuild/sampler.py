@@ -123,15 +123,6 @@ def _cut_away(r: list, others: np.ndarray):
     return r
 
 
-def _section_coords(alignment: SectionAlignment, xs: np.ndarray, ys: np.ndarray):
-    """Return section-frame ``(sx, sy)`` (float64, ``len(ys) x len(xs)``) of aligned grid points, through the field."""
-    m = alignment.affine.matrix
-    d = alignment.displacement.displacement_grid(xs, ys).astype(np.float64)
-    cx = xs[None, :] + d[..., 0]
-    cy = ys[:, None] + d[..., 1]
-    return m[0, 0] * cx + m[0, 1] * cy + m[0, 2], m[1, 0] * cx + m[1, 1] * cy + m[1, 2]
-
-
 def _remap(img: np.ndarray, mx: np.ndarray, my: np.ndarray, flag: int) -> np.ndarray:
     out = np.empty(mx.shape, np.float32)
     for r0 in range(0, mx.shape[0], _MAX_MAP):
@@ -221,7 +212,7 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
             r_a, r_b = _index_range(sub[:, 1].min(), sub[:, 3].max(), cy0, scale, height)
             xs = cx0 + scale * np.arange(c_a, c_b, dtype=np.float64)
             ys = cy0 + scale * np.arange(r_a, r_b, dtype=np.float64)
-            sx, sy = _section_coords(alignment, xs, ys)
+            sx, sy = alignment.aligned_to_section_grid(xs, ys)
             for i in hits:
                 _blend_tile(tiles, stitch.tiles[i], boxes[i], sx, sy, (c_a, r_a, cx0, cy0),
                             scale, _INTERP[order], acc[:, r_a:r_b, c_a:c_b])

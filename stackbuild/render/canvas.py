@@ -23,18 +23,11 @@ def section_footprint(stitch: SectionStitch, alignment: SectionAlignment | None)
     Notes
     -----
     Points along the border of the section's tile bounding box are mapped
-    ``section -> coarse`` by the inverse affine, then ``coarse -> aligned`` by
-    inverting the pull-back field ``q = p + d(p)`` with the fixed-point
-    iteration ``p <- q - d(p)`` (converges for smooth fields with ``|grad d| < 1``).
+    ``section -> aligned`` (:meth:`SectionAlignment.section_to_aligned`).
     """
     pts = _border_points(*stitch.bbox())
     if alignment is not None:
-        q = alignment.affine.inverse().apply(pts)
-        p = q.copy()
-        if alignment.displacement is not None:
-            for _ in range(8):
-                p = q - alignment.displacement.displacement(p)
-        pts = p
+        pts = alignment.section_to_aligned(pts)
     return float(pts[:, 0].min()), float(pts[:, 1].min()), float(pts[:, 0].max()), float(pts[:, 1].max())
 
 

@@ -123,19 +123,9 @@ def hold_tiles(old: SectionStitch, new: SectionStitch, changed: set[str]) -> tup
     return out, {"held": len(held), "placed": len(free), "held_moved_px": moved}
 
 
-def section_to_aligned(alignment: SectionAlignment, points: np.ndarray, iterations: int = 12) -> np.ndarray:
-    """Return the aligned-frame points that ``alignment`` maps to section points ``points`` (``(N, 2)`` x, y).
-
-    Inverts ``p -> affine(p + d(p))``: the affine exactly, the field by the fixed-point
-    iteration ``p <- q - d(p)`` (converges for smooth fields with ``|grad d| < 1``).
-    """
-    q = alignment.affine.inverse().apply(np.asarray(points, np.float64))
-    if alignment.displacement is None:
-        return q
-    p = q.copy()
-    for _ in range(iterations):
-        p = q - alignment.displacement.displacement(p)
-    return p
+def section_to_aligned(alignment: SectionAlignment, points: np.ndarray, iterations: int | None = None) -> np.ndarray:
+    """Return :meth:`SectionAlignment.section_to_aligned` of ``points`` (kept for callers of this name)."""
+    return alignment.section_to_aligned(points)
 
 
 def _grid(bbox, n: int = 9) -> np.ndarray:

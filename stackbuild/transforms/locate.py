@@ -18,7 +18,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .hold import section_to_aligned
 from .records import Canvas, SectionAlignment, SectionStitch
 
 #: Flags a located point may carry.
@@ -75,7 +74,7 @@ def _fill_tile(out: Located, stitch: SectionStitch, k: int, p: np.ndarray, cover
 
 
 def _fill_volume(out: Located, canvas: Canvas, alignment: SectionAlignment | None, p: np.ndarray) -> None:
-    a = p if alignment is None else section_to_aligned(alignment, p[None], iterations=30)[0]
+    a = p if alignment is None else alignment.section_to_aligned(p[None])[0]
     out.z = float(out.section - canvas.first_section)
     out.x, out.y = float(a[0] - canvas.origin_x), float(a[1] - canvas.origin_y)
     if not (-0.5 <= out.x < canvas.width - 0.5 and -0.5 <= out.y < canvas.height - 0.5

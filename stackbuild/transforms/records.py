@@ -176,6 +176,45 @@ class SectionAlignment:
             p = self.displacement.apply(p)
         return self.affine.apply(p)
 
+    def section_to_aligned(self, points: np.ndarray, *, tol: float = 1e-4, max_iterations: int = 100) -> np.ndarray:
+        """Return the aligned-frame ``(N, 2)`` ``(x, y)`` points that this alignment maps to section ``points``.
+
+        Inverts ``p -> affine(p + d(p))``: the affine exactly, the field by the
+        fixed-point iteration ``p <- q - d(p)`` until a step moves no point by
+        more than ``tol`` pixels. It converges when the field is a contraction
+        (``|grad d| < 1``, true of smooth fields small against their grid spacing).
+
+        Raises
+        ------
+        ValueError
+            If ``max_iterations`` steps do not converge (a field too steep to invert).
+        """
+        q = self.affine.inverse().apply(np.asarray(points, dtype=np.float64))
+        if self.displacement is None:
+            return q
+        p = q.copy()
+        step = 0.0
+        for _ in range(max_iterations):
+            nxt = q - self.displacement.displacement(p)
+            step = float(np.abs(nxt - p).max(initial=0.0))
+            p = nxt
+            if step <= tol:
+                return p
+        raise ValueError(f"section {self.section}: the section -> aligned inverse moved points by {step:.3g} px "
+                         f"after {max_iterations} iterations (tolerance {tol:g} px); the field is too steep")
+
+    def aligned_to_section_grid(self, xs: np.ndarray, ys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Return section-frame ``(sx, sy)`` (float64, ``len(ys) x len(xs)``) of the aligned grid ``xs`` x ``ys``."""
+        xs, ys = np.asarray(xs, dtype=np.float64), np.asarray(ys, dtype=np.float64)
+        m = self.affine.matrix
+        if self.displacement is None:
+            cx, cy = np.broadcast_to(xs[None, :], (len(ys), len(xs))), np.broadcast_to(ys[:, None], (len(ys), len(xs)))
+        else:
+            d = self.displacement.displacement_grid(xs, ys).astype(np.float64)
+            cx = xs[None, :] + d[..., 0]
+            cy = ys[:, None] + d[..., 1]
+        return m[0, 0] * cx + m[0, 1] * cy + m[0, 2], m[1, 0] * cx + m[1, 1] * cy + m[1, 2]
+
     def to_json(self) -> dict:
         """Return a JSON-ready dict (the displacement array is stored apart)."""
         rec = {"section": self.section, "flags": list(self.flags), "stats": self.stats,

@@ -37,6 +37,7 @@ class Measurements:
 
     seams: dict[int, list[SeamBlocks]] = field(default_factory=dict)
     probe: list[dict] = field(default_factory=list)
+    straightened: dict[int, float] = field(default_factory=dict)
     source: PlaneSource | None = None
     notes: list[str] = field(default_factory=list)
 

@@ -80,6 +80,7 @@ from .blockmatch import BlockMatches, summarize
 from .landmarks import landmark_rows, landmark_totals, per_channel_rms
 from .measure import Measurements, SeamJob, seam_job, section_to_output
 from .probe import measure_error
+from .straighten import section_positions, straightening
 from .zchain import section_error
 from .planes import open_planes
 from .settings import ReportSettings
@@ -270,6 +271,17 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, setti
             flags.append("beyond_probe_reach")
             err = {**err, "align_error_px": max(err["align_error_px"] or 0.0, float(settings.probe_reach)),
                    "align_error_unc_px": None}
+        jitter = err["align_error_px"]
+        bent = meas.straightened.get(z)
+        if jitter is not None:
+            # the two parts are independent by construction (one non-linear in z, one linear)
+            total = float(np.hypot(jitter, bent or 0.0))
+            unc = err["align_error_unc_px"]
+            if unc is not None:
+                # add the model error seen against ground truth on the phantoms (bench_qc.py --agreement):
+                # about 0.1 px plus 15 % of the estimate (an empirical term, not a derived one)
+                unc = float(np.hypot(unc, 0.1 + 0.15 * total))
+            err = {**err, "align_error_px": total, "align_error_unc_px": unc}
         if err["align_error_px"] is not None and err["align_error_px"] > settings.align_max:
             flags.append("error_over_bar")
         if s not in lost and st is not None and not err["blocks"] and meas.probe:
@@ -277,7 +289,7 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, setti
         rows.append({
             "section": s, "z": z, "lost": s in lost, "flags": sorted(set(flags)),
             "align_error_px": err["align_error_px"], "align_error_unc_px": err["align_error_unc_px"],
-            "align_error_blocks": err["blocks"],
+            "align_error_blocks": err["blocks"], "jitter_px": jitter, "straightened_px": bent,
             "align_error_max_px": err["max"],
             "align_error_at": sc.at(s, err["at_xy"]) if err["at_xy"] is not None else None,
             "motion_prev": prev.get(z),
@@ -361,6 +373,24 @@ def _totals(tiles, pairs, sections, channels, meas: Measurements) -> dict:
     }
 
 
+def _straightened(aligns: dict, canvas, present: list[int], settings: ReportSettings) -> dict[int, float]:
+    """Return ``{z: px}``: oblique structure straightened by the aligner, read from its stored transforms.
+
+    On a grid of at most about ``probe_blocks`` points per plane (see :mod:`stackbuild.qc.straighten`).
+    """
+    if canvas is None or len(present) < 3:
+        return {}
+    step = max(float(settings.probe_spacing), float(np.sqrt(canvas.width * canvas.height / max(settings.probe_blocks, 1))))
+    xs = np.arange(step / 2, canvas.width, step)
+    ys = np.arange(step / 2, canvas.height, step)
+    gx, gy = np.meshgrid(xs, ys)
+    pts = np.column_stack([gx.ravel(), gy.ravel()])
+    secs = [canvas.first_section + z for z in present]
+    mapped = np.stack([section_positions(aligns.get(s), canvas, pts) for s in secs])
+    vals = straightening(pts, mapped, np.asarray(present, float))
+    return {z: float(v) for z, v in zip(present, vals) if np.isfinite(v)}
+
+
 def measure_factor(settings: ReportSettings) -> float:
     """Return the coarsest pixel (level-0 px) the probe may read: ``measure_scale``, at most a quarter of the bar."""
     return float(max(1.0, min(settings.measure_scale, settings.align_p95 / 4.0)))
@@ -415,6 +445,7 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
         present = [z for z in range(meas.source.depth) if z not in lost]
         meas.probe = measure_error(build_dir, meas.source, present, settings, written=written,
                                    max_factor=factor, mapper=mapper or map)
+        meas.straightened = _straightened(aligns, canvas, present, settings)
     sections = _section_rows(secs, stitches, aligns, seam_sums, meas, sc, settings)
     _mark_blank(sections, stitches)
     channels = _channel_rows(store, secs, aligns, sc)

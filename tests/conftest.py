@@ -20,3 +20,33 @@ def tiny_data(tmp_path_factory) -> Path:
     out = tmp_path_factory.mktemp("tiny")
     generate(out, TINY)
     return out
+
+
+#: A stack for update and locate tests: 7 sections (section 2 lost) of 3 x 3 tiles; the build holds
+#: sections 0-4 (``first.csv``), ``later.csv`` has sections 5 and 6 to append.
+GRID = SynthParams(seed=5, sections=7, grid=(3, 3), tile_size=256, offset=12.0, warp=3.0, channels=0,
+                   lost_sections="2", compress=False)
+
+
+@pytest.fixture(scope="session")
+def grid_data(tmp_path_factory) -> Path:
+    """Return the folder of the GRID stack with ``first.csv``, ``later.csv`` and ``small.toml`` (64 px chunks)."""
+    out = tmp_path_factory.mktemp("grid")
+    generate(out, GRID)
+    lines = (out / "tiles.csv").read_text().splitlines()
+    for name, keep in (("first.csv", lambda s: s <= 4), ("later.csv", lambda s: s >= 5)):
+        rows = [lines[0]] + [ln for ln in lines[1:] if keep(int(ln.split(",")[0]))]
+        (out / name).write_text("\n".join(rows) + "\n")
+    (out / "small.toml").write_text("[render]\nchunk = 64\nshard = 1\n")
+    return out
+
+
+@pytest.fixture(scope="session")
+def grid_build(grid_data, tmp_path_factory) -> Path:
+    """Return a finished build of ``grid_data/first.csv`` (treat as read-only: copy it to change it)."""
+    from stackbuild.cli import main
+
+    out = tmp_path_factory.mktemp("grid_build") / "b"
+    assert main(["build", str(grid_data / "first.csv"), "--out", str(out), "--config", str(grid_data / "small.toml"),
+                 "--pixel-size", "4", "--section-thickness", "40", "--workers", "2", "--quiet"]) == 0
+    return out

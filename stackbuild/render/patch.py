@@ -33,7 +33,7 @@ from .dirty import all_shards, pyramid_shards
 from .fingerprint import em_fingerprints, read_plane_record, write_plane_record
 from .lazy import RenderPlan, block_edges
 from .ngff import multiscales_attrs, root_attrs
-from .pyramid import join_shard, render_shard
+from .pyramid import compute_each, join_shard, render_shard
 from .reduce import level_shapes, reduce2x2
 
 

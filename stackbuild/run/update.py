@@ -313,7 +313,7 @@ def _align(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
     for s, rec in keep.items():
         if not _same_alignment(store.load_alignment(s), rec):
             store.save_alignment(rec)
-            _killed_here("align")
+    _killed_here("align")
     moved = facts["moved_px"]
     plan.facts["align"] = {"realigned": facts["realigned"], "frame_rms_px": facts["frame_rms_px"],
                            "largest_untouched_move_px": max(moved.values(), default=0.0),
@@ -346,9 +346,10 @@ def _dirty(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict]:
     return canvas, facts, dirty
 
 
-def _render(build: BuildFolder, plan: UpdatePlan, show: bool) -> None:
+def _render(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
     from ..render.patch import patch_volume
     from . import stages
+    from .cluster import client_mapper
     from .progress import ProgressBar
 
     if plan.render is None:
@@ -360,7 +361,8 @@ def _render(build: BuildFolder, plan: UpdatePlan, show: bool) -> None:
     previous = None if plan.canvas_before is None else Canvas.from_json(plan.canvas_before)
     if previous is None or any(facts["moved"]) or facts["first_moved"]:
         build.store.save_canvas(canvas)
-        done = stages.render_stage(build, overwrite=True, progress=ProgressBar("render", show))
+        done = stages.render_stage(build, overwrite=True, progress=ProgressBar("render", show),
+                                   mapper=client_mapper(client))
         plan.facts["render"] = {"planes": done.get("planes", []), "full": True}
     else:
         dirty = {int(z): _unpack(v) for z, v in plan.render["shards"].items()}
@@ -370,10 +372,11 @@ def _render(build: BuildFolder, plan: UpdatePlan, show: bool) -> None:
             bar(done, total)
             if done:
                 _killed_here("render")
-        done = patch_volume(build.root, build.config.render, canvas, dirty, previous=previous, progress=progress)
+        done = patch_volume(build.root, build.config.render, canvas, dirty, previous=previous, progress=progress,
+                            mapper=client_mapper(client))
         plan.facts["render"] = {"planes": done["planes"], "shards": done["shards"],
                                 "shards_total": done["shards_total"], "full": False}
-    stages.render_channels_stage(build, progress=ProgressBar("markers", show))
+    stages.render_channels_stage(build, progress=ProgressBar("markers", show), mapper=client_mapper(client))
 
 
 def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show: bool, fail_on) -> object:
@@ -396,10 +399,10 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
             plan.status = "registered"
             save_plan(build.root, plan)
         if not plan.reached("rendered"):
-            _render(build, plan, show)
+            _render(build, plan, client, show)
             plan.status = "rendered"
             save_plan(build.root, plan)
-    verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
+        verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
     plan.facts["totals_after"] = _totals(build)
     plan.facts["verdict"] = {"passed": verdict.passed, "failures": list(verdict.failures)}
     plan.status = "done"
@@ -577,7 +580,7 @@ def rollback_update(build: BuildFolder, *, fail_on: list[str] | None = None, wor
     from ..render.dirty import changed_boxes, level0_shards
     from ..render.patch import patch_volume
     from . import stages
-    from .cluster import dask_client
+    from .cluster import client_mapper, dask_client
     from .progress import ProgressBar
 
     plans = [p for p in load_plans(build.root) if p.status != "rolled_back"]
@@ -613,11 +616,11 @@ def rollback_update(build: BuildFolder, *, fail_on: list[str] | None = None, wor
     previous = build.store.load_canvas()
     canvas, _ = settle_canvas(previous, fresh, shard=block, chunk=settings.chunk)
     dirty = {int(z): _unpack(v) for z, v in plan.facts["rollback"]["shards"].items()}
-    with dask_client(workers, scheduler):
+    with dask_client(workers, scheduler) as client:
         done = patch_volume(build.root, settings, canvas, dirty, previous=previous,
-                            progress=ProgressBar("render", show))
-        stages.render_channels_stage(build, progress=ProgressBar("markers", show))
-    verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
+                            progress=ProgressBar("render", show), mapper=client_mapper(client))
+        stages.render_channels_stage(build, progress=ProgressBar("markers", show), mapper=client_mapper(client))
+        verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
     plan.status = "rolled_back"
     plan.facts["rollback"].update({"records": len(restored), "rewritten": done["shards"]})
     save_plan(build.root, plan)

@@ -1,0 +1,226 @@
+"""``update``: re-imaged tiles and appended sections rewrite only what changes, as a transaction.
+
+Ground truth for "what changed" is the build itself: a volume rendered from scratch
+through the updated transforms (the lazy renderer) and the shard files before the
+update (bytes and modification times). The OME-Zarr check uses the specification
+0.5 through the ome-zarr-models package.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+import zarr
+
+import stackbuild
+from stackbuild.cli import main
+
+#: Longer cases (append, rollback, kills at align and channels) run with STACKBUILD_SLOW_TESTS=1.
+slow = pytest.mark.skipif(not os.environ.get("STACKBUILD_SLOW_TESTS"),
+                          reason="slow: set STACKBUILD_SLOW_TESTS=1 to run")
+from stackbuild.transforms.hold import section_to_aligned
+
+def _files(em: Path) -> dict[str, tuple[str, int]]:
+    """Return ``{level/c/z/row/col: (sha256, mtime_ns)}`` of every stored chunk under ``em``."""
+    return {str(p.relative_to(em)): (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns)
+            for p in sorted(em.glob("*/c/**/*")) if p.is_file()}
+
+
+def _reimaged(data: Path, out: Path, section: int, tiles: list[str], *, size=None) -> Path:
+    """Write an update manifest: ``tiles`` of ``section`` imaged again (new noise, stage read 1-2 px off)."""
+    out.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(3)
+    rows = ["section,tile,path,x,y"]
+    for line in (data / "tiles.csv").read_text().splitlines()[1:]:
+        s, t, p, x, y = line.split(",")
+        if int(s) != section or t not in tiles:
+            continue
+        img = tifffile.imread(data / p).astype(np.float32)
+        img = np.clip(img + rng.normal(0, 4, img.shape), 0, 255).astype(np.uint8)
+        if size is not None:
+            img = np.zeros(size, np.uint8) + img[: size[0], : size[1]].mean().astype(np.uint8)
+        dst = out / f"{s}_{t}.tif"
+        tifffile.imwrite(dst, img)
+        rows.append(f"{s},{t},{dst},{float(x) + 1.5},{float(y) - 2.0}")
+    (out / "tiles.csv").write_text("\n".join(rows) + "\n")
+    return out / "tiles.csv"
+
+
+@pytest.fixture(scope="module")
+def updated(grid_build, grid_data, tmp_path_factory) -> tuple[Path, Path]:
+    work = tmp_path_factory.mktemp("u") / "b"
+    shutil.copytree(grid_build, work)
+    manifest = _reimaged(grid_data, work.parent / "again", 3, ["r0c0", "r0c1"])
+    assert main(["update", str(work), "--tiles", str(manifest), "--workers", "2", "--quiet"]) == 0
+    return work, manifest
+
+
+def _copy(src: Path, tmp_path: Path) -> Path:
+    dst = tmp_path / "b"
+    shutil.copytree(src, dst)
+    return dst
+
+
+def _tree(folder: Path) -> dict[str, str]:
+    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file() and p.name != ".stackbuild.lock"}
+
+
+# ------------------------------------------------------------------- 2 tiles
+def test_two_replaced_tiles_rewrite_only_their_shards(grid_build, updated):
+    work, _ = updated
+    before, after = _files(grid_build / "volume.zarr" / "em"), _files(work / "volume.zarr" / "em")
+    plan = json.loads((work / "updates" / "0001" / "plan.json").read_text())
+    assert plan["status"] == "done" and plan["replaced"] == {"3": ["r0c0", "r0c1"]}
+    dirty = {int(z): {tuple(int(v) for v in p.split(",")) for p in shards}
+             for z, shards in plan["render"]["shards"].items()}
+    moved = set(plan["facts"]["align"]["moved_beyond_tolerance"])
+    assert 3 in dirty and set(dirty) - {3} == moved - {3}  # plane = section here
+    changed = {k for k in before.keys() | after.keys() if before.get(k) != after.get(k)}  # all-zero chunks are not stored
+    for key in changed:  # level/c/z/row/col
+        level, _, z, i, j = key.split(os.sep)
+        assert int(z) in dirty, key  # no chunk of another section was touched (bytes or mtime)
+        if level == "0":
+            assert (int(i), int(j)) in dirty[int(z)], key
+    if 3 in moved:
+        return
+    # The section kept its alignment, so only the re-imaged tiles (top row) and the tiles they overlap
+    # (middle row) can change: every chunk wholly below the middle row keeps its bytes and mtime.
+    store = stackbuild.transforms.TransformStore(work / "transforms")
+    canvas, st, al = store.load_canvas(), store.load_stitch(3), store.load_alignment(3)
+    corners = [(t.x + dx, t.y + dy) for t in st.tiles if t.tile[:2] in ("r0", "r1")
+               for dx in (-0.5, t.width - 0.5) for dy in (-0.5, t.height - 0.5)]
+    below = section_to_aligned(al, np.array(corners))[:, 1].max() - canvas.origin_y + 2  # bilinear reach
+    far = {k for k in before if k.split(os.sep)[:3] == ["0", "c", "3"] and int(k.split(os.sep)[3]) * 64 > below}
+    assert far and not far & changed
+
+
+def test_update_equals_a_render_from_scratch_of_the_new_transforms(updated):
+    work, _ = updated
+    for level in (0, 2):
+        written = stackbuild.open_volume(work, level=level, lazy=False)[3].compute()
+        fresh = stackbuild.open_volume(work, level=level, lazy=True)[3].compute()
+        np.testing.assert_array_equal(written, fresh)
+
+
+def test_updated_volume_is_still_ome_zarr_0_5(updated):
+    from ome_zarr_models.v05.image import Image
+
+    work, _ = updated
+    # Standard: OME-Zarr specification 0.5, validated by the ome-zarr-models package (v05.Image).
+    image = Image.from_zarr(zarr.open_group(str(work / "volume.zarr" / "em"), mode="r"))
+    assert len(image.attributes.ome.multiscales[0].datasets) >= 3
+
+
+def test_dry_run_lists_dirty_shards_and_writes_nothing(grid_build, grid_data, tmp_path, capsys):
+    work = _copy(grid_build, tmp_path)
+    manifest = _reimaged(grid_data, tmp_path / "again", 3, ["r2c2"])
+    before = _tree(work)
+    assert main(["update", str(work), "--tiles", str(manifest), "--dry-run", "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "section 3: tiles r2c2" in out and "plane 3: level-0 shards" in out
+    assert _tree(work) == before
+
+
+def test_unknown_section_without_append_is_refused_and_nothing_changes(grid_build, grid_data, tmp_path, capsys):
+    work = _copy(grid_build, tmp_path)
+    before = _tree(work)
+    assert main(["update", str(work), "--tiles", str(grid_data / "later.csv"), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--append" in err[0] and "later.csv" in err[0]
+    assert _tree(work) == before
+
+
+def test_tiles_of_another_size_are_refused(grid_build, grid_data, tmp_path, capsys):
+    work = _copy(grid_build, tmp_path)
+    manifest = _reimaged(grid_data, tmp_path / "big", 3, ["r1c1"], size=(96, 96))
+    before = _tree(work)
+    assert main(["update", str(work), "--tiles", str(manifest), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "pixel_size" in err[0] and "96 x 96" in err[0]
+    assert _tree(work) == before
+
+
+# -------------------------------------------------------------- kill, rerun
+def test_update_killed_in_render_then_run_again_is_byte_identical(grid_build, grid_data, updated, tmp_path,
+                                                                  capsys):
+    work = _copy(grid_build, tmp_path)
+    _, manifest = updated
+    cmd = [sys.executable, "-m", "stackbuild.cli", "update", str(work), "--tiles", str(manifest),
+           "--workers", "1", "--quiet"]
+    env = {**os.environ, "STACKBUILD_UPDATE_KILL": "render"}
+    proc = subprocess.run(cmd, env=env, start_new_session=True, timeout=300)
+    assert proc.returncode == -signal.SIGKILL
+    plan = json.loads((work / "updates" / "0001" / "plan.json").read_text())
+    assert plan["status"] == "registered" and plan["render"] is not None  # killed inside the render step
+    # Another update is refused while this one is unfinished, and changes nothing.
+    other = _reimaged(grid_data, tmp_path / "other", 4, ["r0c0"])
+    state = (work / "build.json").read_bytes()
+    assert main(["update", str(work), "--tiles", str(other), "--quiet"]) == 2
+    assert "--resume" in capsys.readouterr().err and (work / "build.json").read_bytes() == state
+    # The same update again finishes the plan; a missed --fail-on bar gives status 3.
+    assert main(["update", str(work), "--tiles", str(manifest), "--fail-on", "align.p95>0.001px",
+                 "--workers", "1", "--quiet"]) == 3
+    out = capsys.readouterr()
+    assert "report: FAILED" in out.out and "quality bar missed" in out.err
+    done, reference = updated[0] / "volume.zarr" / "em", work / "volume.zarr" / "em"
+    assert {k: v[0] for k, v in _files(done).items()} == {k: v[0] for k, v in _files(reference).items()}
+
+
+@slow
+@pytest.mark.parametrize("step", ["align", "channels"])
+def test_update_killed_in_align_or_channels_then_run_again_is_byte_identical(grid_build, updated, tmp_path,
+                                                                            step):
+    work = _copy(grid_build, tmp_path)
+    _, manifest = updated
+    cmd = [sys.executable, "-m", "stackbuild.cli", "update", str(work), "--tiles", str(manifest),
+           "--workers", "1", "--quiet"]
+    proc = subprocess.run(cmd, env={**os.environ, "STACKBUILD_UPDATE_KILL": step}, start_new_session=True,
+                          timeout=300)
+    assert proc.returncode == -signal.SIGKILL
+    assert main(["update", str(work), "--resume", "--workers", "1", "--quiet"]) == 0
+    done, reference = updated[0] / "volume.zarr" / "em", work / "volume.zarr" / "em"
+    assert {k: v[0] for k, v in _files(done).items()} == {k: v[0] for k, v in _files(reference).items()}
+
+
+# ------------------------------------------------------------------ rollback
+@slow
+def test_rollback_restores_the_volume_and_the_records(grid_build, updated, tmp_path, capsys):
+    work = _copy(updated[0], tmp_path)
+    assert main(["update", str(work), "--rollback", "--workers", "1", "--quiet"]) == 0
+    assert "rolled back" in capsys.readouterr().out
+    before, after = _files(grid_build / "volume.zarr" / "em"), _files(work / "volume.zarr" / "em")
+    assert {k: v[0] for k, v in after.items()} == {k: v[0] for k, v in before.items()}
+    state = json.loads((work / "build.json").read_text())
+    assert state["tiles"] == json.loads((grid_build / "build.json").read_text())["tiles"]
+    store, old = stackbuild.transforms.TransformStore(work / "transforms"), \
+        stackbuild.transforms.TransformStore(grid_build / "transforms")
+    assert [t.path for t in store.load_stitch(3).tiles] == [t.path for t in old.load_stitch(3).tiles]
+
+
+# -------------------------------------------------------------------- append
+@slow
+def test_appending_sections_keeps_existing_planes(grid_build, grid_data, tmp_path, capsys):
+    work = _copy(grid_build, tmp_path)
+    before = _files(work / "volume.zarr" / "em")
+    assert main(["update", str(work), "--tiles", str(grid_data / "later.csv"), "--append", "--workers", "1",
+                 "--quiet"]) == 0
+    plan = json.loads((work / "updates" / "0001" / "plan.json").read_text())
+    assert plan["added"] == [5, 6]
+    after = _files(work / "volume.zarr" / "em")
+    kept = [z for z in range(5) if z not in plan["facts"]["align"]["realigned"]]
+    for key, value in before.items():
+        level, _, z, _, _ = key.split(os.sep)
+        if int(z) in kept:
+            assert after[key] == value, key  # bytes and modification time
+    vol = stackbuild.open_volume(work, level=0, lazy=False)
+    assert vol.shape[0] == 7 and np.count_nonzero(vol[6].compute()) > 0

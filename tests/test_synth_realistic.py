@@ -2,6 +2,8 @@
 scikit-image / NumPy routines (band-pass filters, windowed phase correlation, Pearson correlation)."""
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 from scipy import ndimage
@@ -100,6 +102,22 @@ def test_a_small_realistic_sample_is_written_with_its_truth(tmp_path):
     assert truth.params.content == "realistic" and truth.sections == [0, 1, 2]
     assert truth.slant(np.array([[10.0, 20.0]])) == pytest.approx(np.array([common_drift(params)]))
     assert truth.undistorted(1).shape == truth.true_shape
+
+
+def test_twelve_bit_tiles_hold_12_bit_values_in_16_bit_files(tmp_path):
+    import tifffile
+
+    params = variant_params("realistic", "bits12", seed=1, sections=1, tile_size=128, grid=(1, 2))
+    generate(tmp_path / "b12", params)
+    generate(tmp_path / "b8", dataclasses.replace(params, dtype="uint8", bit_depth=0))
+    t12 = tifffile.imread(tmp_path / "b12" / "tiles" / "0" / "r0c0.tif")
+    t8 = tifffile.imread(tmp_path / "b8" / "tiles" / "0" / "r0c0.tif")
+    # an unsigned 12-bit value lies in 0 .. 2**12 - 1 = 4095 (definition of the bit depth)
+    assert t12.dtype == np.uint16 and t12.max() <= 4095 and t12.max() > 2048
+    assert len(np.unique(t12)) > 256  # finer than 8 bits
+    # the same scene: 12-bit values are the 8-bit ones times 16, up to rounding of each
+    assert np.abs(t12 / 16.0 - t8).max() <= 0.5 + 1 / 32
+    assert load_truth(tmp_path / "b12").record["intensity_scale"] == 16
 
 
 def test_variants_are_named_and_checked():

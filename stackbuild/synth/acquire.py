@@ -104,8 +104,17 @@ def tile_signal(undistorted, px, py, xs, ys, blank, fold, repeat):
     return _apply_defects(clean_tile(undistorted, px, py), xs, ys, fold, repeat)
 
 
-def quantise(values: np.ndarray, dtype: str) -> np.ndarray:
-    """Return ``values`` (8-bit grey scale) rounded and clipped into ``dtype`` (uint16 = x256)."""
-    if dtype == "uint16":
-        return np.clip(np.rint(values * 256.0), 0, 65535).astype(np.uint16)
-    return np.clip(np.rint(values), 0, 255).astype(np.uint8)
+def intensity_scale(dtype: str, bit_depth: int = 0) -> int:
+    """Return the factor from the 8-bit model grey scale to stored values (1, 16 for 12 bits, 256 for 16)."""
+    bits = bit_depth or (16 if dtype == "uint16" else 8)
+    return 2 ** (bits - 8)
+
+
+def quantise(values: np.ndarray, dtype: str, bit_depth: int = 0) -> np.ndarray:
+    """Return ``values`` (8-bit grey scale) scaled to ``bit_depth`` bits, rounded and clipped into ``dtype``.
+
+    ``bit_depth`` 0 is the pixel type's full range (uint16 = x256); 12 in uint16 is x16, values 0..4095.
+    """
+    scale = intensity_scale(dtype, bit_depth)
+    top = 2 ** (bit_depth or (16 if dtype == "uint16" else 8)) - 1
+    return np.clip(np.rint(values * float(scale)), 0, top).astype(np.uint16 if dtype == "uint16" else np.uint8)

@@ -10,8 +10,8 @@ import numpy as np
 import tifffile
 
 from ..errors import InputError
-from .acquire import (expose, fold_record, quantise, repeat_record, tile_gain_offset, tile_signal,
-                      vignetting_profile)
+from .acquire import (expose, fold_record, intensity_scale, quantise, repeat_record, tile_gain_offset,
+                      tile_signal, vignetting_profile)
 from .channels import CHANNEL_LAYERS, CHANNEL_NAMES, channel_affine, channel_shape, render_channel
 from .distort import section_affine, section_field, section_to_true, section_to_true_grid
 from .layout import TAG_NOISE, rng, section_shape, tile_layout, true_shape
@@ -52,7 +52,7 @@ def _tiles(params, out, section, affine, field, em, extras):
         r, c = tile_index(name)
         noisy = image + sigma * rng(params, TAG_NOISE, section, r, c).standard_normal(image.shape, dtype=np.float32)
         rel = Path("tiles") / str(section) / f"{name}.tif"
-        _write_tiff(out / rel, quantise(noisy, params.dtype), params.compress)
+        _write_tiff(out / rel, quantise(noisy, params.dtype, params.bit_depth), params.compress)
         rows.append([section, name, rel.as_posix(), f"{info[name]['stage_x']:.3f}", f"{info[name]['stage_y']:.3f}"])
     return rows, info, sigma
 
@@ -170,7 +170,7 @@ def generate(outdir, params: SynthParams = SynthParams()) -> Path:
     record = {"params": params.to_json(), "pixel_size": params.pixel_size,
               "section_thickness": params.section_thickness, "true_shape": list(true_shape(params)),
               "section_shape": list(section_shape(params)), "tile_shape": [params.tile_size] * 2,
-              "vignetting": params.vignetting, "intensity_scale": 256 if params.dtype == "uint16" else 1,
+              "vignetting": params.vignetting, "intensity_scale": intensity_scale(params.dtype, params.bit_depth),
               "slant": motion_record(params) if params.content == "realistic" else slant_model(params),
               "lost_sections": sorted(lost), "defects": defects,
               "sections": sections}

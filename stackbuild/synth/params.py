@@ -71,6 +71,10 @@ class SynthParams:
         Signal-to-noise ratio: std of the clean tile signal / std of the Gaussian noise.
     dtype : str
         Pixel type of the tiles: uint8 or uint16 (uint16 = 8-bit scale times 256).
+    bit_depth : int
+        Significant bits of the tile values: 0 uses the pixel type's full range; 12 with
+        uint16 writes 12-bit values (0..4095, 8-bit scale times 16) in 16-bit files, as
+        many detectors do.
     compress : bool
         Write zlib-compressed TIFFs.
     pixel_size : float
@@ -125,6 +129,7 @@ class SynthParams:
     offset_spread: float = 8.0
     snr: float = 5.0
     dtype: str = "uint8"
+    bit_depth: int = 0
     compress: bool = True
     pixel_size: float = 4.0
     section_thickness: float = 40.0
@@ -190,6 +195,8 @@ class SynthParams:
             (0.0 <= self.overlap < 0.5, "overlap must be in [0, 0.5)"),
             (self.snr > 0 and self.channel_snr > 0, "snr and channel_snr must be > 0"),
             (self.dtype in ("uint8", "uint16"), "dtype must be uint8 or uint16"),
+            (self.bit_depth == 0 or 8 <= self.bit_depth <= (8 if self.dtype == "uint8" else 16),
+             "bit_depth must be 0, or 8 .. the pixel type's bits"),
             (self.content in CONTENTS, f"content must be one of {', '.join(CONTENTS)}"),
             (0 <= self.channels <= 2, "channels must be 0, 1 or 2"),
             (self.landmarks >= 0, "landmarks must be >= 0"),

@@ -8,7 +8,8 @@ Layout of ``OUTDIR/truth/``
 * ``params``: every :class:`SynthParams` field (tuples as lists);
 * ``pixel_size``, ``section_thickness`` (nm); ``true_shape``, ``section_shape``,
   ``tile_shape`` as ``[height, width]``; ``vignetting`` (corner darkening);
-  ``intensity_scale`` (1 for uint8 tiles, 256 for uint16: stored grey = scale x model grey);
+  ``intensity_scale`` (1 for uint8 tiles, 256 for uint16, 16 for 12-bit values in uint16:
+  stored grey = scale x model grey);
 * ``slant``: the slant field (plane waves minus affine part, ``z_ref``, ``drift``;
   see :func:`stackbuild.synth.phantom.slant_model`);
 * ``lost_sections``; ``defects`` = ``{"blank_tiles": [[section, tile], ...],

@@ -22,6 +22,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
+from scipy.sparse.csgraph import connected_components
 
 from ..transforms.types import Affine2D
 from .coarse import MODELS, PairResult
@@ -65,19 +66,18 @@ def _param_map(model: str) -> np.ndarray:
 
 
 def _components(sections: list[int], pairs: list[PairResult]) -> list[list[int]]:
-    parent = {z: z for z in sections}
+    """Return ``sections`` in groups that ``pairs`` link, each group and the groups in section order.
 
-    def root(z):
-        while parent[z] != z:
-            parent[z] = parent[parent[z]]
-            z = parent[z]
-        return z
-
-    for pr in pairs:
-        parent[root(pr.a)] = root(pr.b)
+    Connected components of the pair graph (``scipy.sparse.csgraph.connected_components``).
+    """
+    index = {z: i for i, z in enumerate(sections)}
+    a = [index[pr.a] for pr in pairs]
+    b = [index[pr.b] for pr in pairs]
+    graph = sp.coo_matrix((np.ones(len(a)), (a, b)), shape=(len(sections), len(sections)))
+    _, labels = connected_components(graph, directed=False)
     groups: dict[int, list[int]] = {}
-    for z in sections:
-        groups.setdefault(root(z), []).append(z)
+    for z, label in zip(sections, labels):
+        groups.setdefault(int(label), []).append(z)
     return list(groups.values())
 
 

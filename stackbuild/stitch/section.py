@@ -5,6 +5,8 @@ import math
 from collections import Counter
 
 import numpy as np
+import scipy.sparse as sp
+from scipy.sparse.csgraph import connected_components
 
 from ..errors import InputError
 from ..manifest import TileEntry
@@ -57,17 +59,11 @@ def _place_unplaced(pos, stage, placed, near):
 
 
 def _components(n, pairs, nodes) -> int:
-    parent = list(range(n))
-
-    def root(i):
-        while parent[i] != i:
-            parent[i] = parent[parent[i]]
-            i = parent[i]
-        return i
-
-    for a, b in pairs:
-        parent[root(a)] = root(b)
-    return len({root(i) for i in nodes})
+    """Return how many groups the tiles ``nodes`` form, linked by ``pairs`` (``scipy.sparse.csgraph``)."""
+    pairs = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)
+    graph = sp.coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
+    _, labels = connected_components(graph, directed=False)
+    return len({int(labels[i]) for i in nodes})
 
 
 def stitch_section(tiles: list[TileEntry], settings: StitchSettings, section: int) -> SectionStitch:

@@ -20,9 +20,13 @@ import scipy.fft
 PEAK_EXCLUSION = 3
 #: Peak ratios are capped here so that records stay finite.
 MAX_PEAK_RATIO = 1000.0
+#: Windows and spectral weights kept per shape. Few: a strip of a 4096 px tile is
+#: ~10 MB of float32, and cut sizes vary with each pair's offset, so a long
+#: cache would hold hundreds of MB while saving little (they are cheap to make).
+WINDOW_CACHE = 4
 
 
-@lru_cache(maxsize=64)
+@lru_cache(maxsize=WINDOW_CACHE)
 def hann_window(height: int, width: int) -> np.ndarray:
     """Return a separable 2-D Hann window of shape ``(height, width)``, float32, read-only.
 
@@ -42,8 +46,7 @@ def hann_window(height: int, width: int) -> np.ndarray:
     return w
 
 
-@lru_cache(maxsize=256)
-@lru_cache(maxsize=64)
+@lru_cache(maxsize=WINDOW_CACHE)
 def taper_window(height: int, width: int, taper: int) -> np.ndarray:
     """Return a separable 2-D Tukey window: flat, with a ``taper``-pixel cosine ramp at each edge; read-only.
 
@@ -78,7 +81,7 @@ def _pad_fast(img: np.ndarray) -> np.ndarray:
     return out
 
 
-@lru_cache(maxsize=64)
+@lru_cache(maxsize=WINDOW_CACHE)
 def _gaussian_weight(m: int, n: int, sigma: float) -> np.ndarray:
     """Return ``exp(-|f|^2 / (2 sigma^2))`` on the ``rfft2`` frequency grid (cycles per pixel), float32."""
     fy = np.fft.fftfreq(m)[:, None]

@@ -12,11 +12,19 @@ against the known offsets.
     python tests/benchmarks/bench_stitch.py            # 4x4 tiles of 2048 px
     python tests/benchmarks/bench_stitch.py --full     # 10x10 tiles of 2048 px
     python tests/benchmarks/bench_stitch.py --grid 3 --tile 1024
+    python tests/benchmarks/bench_stitch.py --memory   # peak RSS of a stitch task, 3x3 vs 7x7 tiles of 1024 px
+
+``--memory`` runs each stitch task in a fresh process (multiprocessing,
+spawn) and reports its peak resident set size (``VmHWM``) beside the same
+process's peak right before the task, so the interpreter and libraries are
+told apart from what the task itself holds.
 """
 from __future__ import annotations
 
 import argparse
+import multiprocessing
 import os
+import resource
 import sys
 import tempfile
 import time
@@ -125,6 +133,51 @@ def compare_pairwise(strips, settings: StitchSettings, repeat: int = 3):
     return t_ours, t_ref, np.array(e_ours), np.array(e_ref)
 
 
+def _peak_rss_mib() -> float:
+    """Return this process's peak resident set size, MiB (Linux ``VmHWM``; else ``ru_maxrss``).
+
+    ``VmHWM`` belongs to the process's own address space; ``ru_maxrss`` is
+    carried over from the parent through fork and exec, so a child started
+    by a parent holding a big synthetic scene would report the parent's peak.
+    """
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def _task_peak(tiles) -> tuple[float, float, float]:
+    """Stitch one section in this (fresh) process; return peak RSS before and after (MiB) and wall seconds."""
+    before = _peak_rss_mib()
+    t0 = time.perf_counter()
+    stitch_section(tiles, StitchSettings(), 0)
+    wall = time.perf_counter() - t0
+    return before, _peak_rss_mib(), wall
+
+
+def memory(tile: int, grids=(3, 7)) -> None:
+    """Print the peak RSS of a stitch task for each grid size, and their ratio."""
+    peaks = {}
+    ctx = multiprocessing.get_context("spawn")
+    with tempfile.TemporaryDirectory() as tmp:
+        for n in grids:
+            folder = Path(tmp) / str(n)
+            folder.mkdir()
+            tiles, _ = make_tiles(folder, n, tile, 0.1, 20.0, seed=n)
+            with ctx.Pool(1) as pool:
+                before, after, wall = pool.apply(_task_peak, (tiles,))
+            peaks[n] = after
+            tile_mib = tile * tile * 2 / 2 ** 20
+            print(f"{n}x{n} tiles of {tile} px: peak RSS {after:.0f} MiB ({before:.0f} MiB before the task, "
+                  f"task adds {after - before:.0f} MiB = {(after - before) / tile_mib:.1f} uint16 tiles); "
+                  f"{wall:.1f} s")
+    a, b = grids
+    print(f"peak ratio {b}x{b} / {a}x{a}: {peaks[b] / peaks[a]:.2f}")
+
+
 def main(argv=None) -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--grid", type=int, default=4, help="tiles per side (default 4)")
@@ -134,7 +187,12 @@ def main(argv=None) -> None:
     p.add_argument("--full", action="store_true", help="10x10 tiles of 2048 px")
     p.add_argument("--skimage-strip-warnings", action="store_true",
                    help="show skimage's float32 overflow warnings (hidden by default)")
+    p.add_argument("--memory", action="store_true",
+                   help="peak RSS of a stitch task at 3x3 and 7x7 tiles of 1024 px, each in a fresh process")
     args = p.parse_args(argv)
+    if args.memory:
+        memory(1024 if args.tile == 2048 else args.tile)
+        return
     n, tile = (10, 2048) if args.full else (args.grid, args.tile)
     settings = StitchSettings()
     if not args.skimage_strip_warnings:

@@ -316,11 +316,16 @@ def _cmd_render(args) -> int:
     from .run.cluster import client_mapper, dask_client
     from .run.progress import ProgressBar
 
+    from .render.stage import prepare
+
     build = _open_build(args.dir)
-    with dask_client(args.workers, args.scheduler) as client:
-        stages.render_stage(build, planes=args.planes, resume=args.resume, overwrite=args.overwrite,
-                            progress=ProgressBar("render", not args.quiet),
-                            mapper=client_mapper(client, ProgressBar("contrast", not args.quiet)))
+    # Every check first: a refused render starts no cluster and changes nothing.
+    job = prepare(build, build.config.render, planes=args.planes, resume=args.resume, overwrite=args.overwrite)
+    with dask_client(args.workers, args.scheduler) if job.todo or job.overwrite \
+            else contextlib.nullcontext() as client:
+        stages.render_stage(build, job=job, progress=ProgressBar("render", not args.quiet),
+                            mapper=client_mapper(client, ProgressBar("contrast", not args.quiet))
+                            if client is not None else None)
         stages.render_channels_stage(build, overwrite=args.overwrite,
                                      progress=ProgressBar("markers", not args.quiet))
     _say(f"volume: {build.volume_path}")
@@ -468,18 +473,31 @@ COMMANDS = {"build": _cmd_build, "stitch": _cmd_stitch, "align": _cmd_align, "ch
             "audit": _cmd_audit}
 
 
+def _say_disk_full(exc: BaseException, folder) -> bool:
+    """Print the one line for a full disk and return True, or return False if ``exc`` is something else."""
+    from .folder import BuildFolder
+    from .run.faults import disk_full_line
+
+    line = disk_full_line(exc, BuildFolder(Path(folder)) if folder else None)
+    if line:
+        print(f"stackbuild: error: {line}", file=sys.stderr)
+    return bool(line)
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; return the exit status."""
     args = _parser().parse_args(argv)
     logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
                         format="%(levelname)s %(name)s: %(message)s")
+    folder = args.out if args.command == "build" else getattr(args, "dir", None)
     try:
-        folder = args.out if args.command == "build" else getattr(args, "dir", None)
         with build_lock(folder) if folder else contextlib.nullcontext():
             return COMMANDS[args.command](args)
     except InputError as exc:
         if args.debug:
             raise
+        if _say_disk_full(exc, folder):
+            return EXIT_ERROR
         print(f"stackbuild: error: {exc.one_line()}", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
@@ -488,6 +506,8 @@ def main(argv: list[str] | None = None) -> int:
     except Exception as exc:  # an unexpected failure: short line unless --debug
         if args.debug:
             raise
+        if _say_disk_full(exc, folder):
+            return EXIT_ERROR
         print(f"stackbuild: internal error: {type(exc).__name__}: {exc} (rerun with --debug for details)",
               file=sys.stderr)
         return EXIT_ERROR

@@ -12,6 +12,7 @@ What one task holds: one plane of one level, read chunk by chunk (one
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -72,7 +73,7 @@ def check_plane(job: _PlaneJob) -> tuple[int, list[str]]:
             try:
                 arr[job.z, y0:y0 + ch, x0:x0 + cw]
             except Exception as exc:  # codecs raise many types for corrupt bytes
-                problems.append(f"{job.label} chunk (z={job.z}, row {i}, col {j}) cannot be decoded "
+                problems.append(f"{job.label} chunk (plane {job.z}, row {i}, col {j}) cannot be decoded "
                                 f"({type(exc).__name__}: {exc})")
     return n, problems
 
@@ -156,3 +157,66 @@ def audit_volume(folder, *, pixels: bool = True, mapper=None, record: bool = Tru
                     forget_planes(folder, [z], array=name, reason=why)
     report.findings.sort(key=lambda f: (f.pyramid != "em", f.pyramid, f.plane, f.kind))
     return report
+
+
+def chunk_error(label: str, path, z: int, row: int, col: int, exc: BaseException) -> InputError:
+    """Return the error for a volume chunk that cannot be decoded, naming array, plane and chunk."""
+    return InputError(f"{label}: chunk (plane {z}, row {row}, col {col}) cannot be decoded "
+                      f"({type(exc).__name__}: {exc}); 'stackbuild audit' lists every damaged chunk and "
+                      "'stackbuild render --resume' renders damaged planes again", file=path)
+
+
+class CheckedArray:
+    """A read-only view of a zarr array whose failed reads name the array, plane and chunk.
+
+    Wraps reads of ``volume.zarr`` levels: when a selection cannot be decoded, its
+    chunks are read one by one to find the first damaged one, and an
+    :class:`~stackbuild.errors.InputError` names it (see :func:`chunk_error`).
+    Anything else is passed through to the array.
+
+    Parameters
+    ----------
+    array : zarr.Array
+        A 3-D ``(z, y, x)`` level array.
+    label : str
+        How messages name it, e.g. ``"volume.zarr/em/2"``.
+    """
+
+    def __init__(self, array, label: str):
+        self._array = array
+        self._label = label
+
+    def __getattr__(self, name):
+        return getattr(self._array, name)
+
+    def __getitem__(self, key):
+        try:
+            return self._array[key]
+        except (IndexError, TypeError, KeyError):
+            raise
+        except Exception as exc:  # codecs raise many types for damaged bytes
+            raise self._locate(key, exc) from None
+
+    def _locate(self, key, exc: BaseException) -> InputError:
+        key = key if isinstance(key, tuple) else (key,)
+        key = key + (slice(None),) * (3 - len(key))
+        ranges = []
+        for k, n in zip(key[:3], self._array.shape):
+            if isinstance(k, slice):
+                a, b, _ = k.indices(n)
+                ranges.append((a, b))
+            else:
+                i = int(k) % n
+                ranges.append((i, i + 1))
+        (z0, z1), (y0, y1), (x0, x1) = ranges
+        _, ch, cw = self._array.chunks
+        store = getattr(self._array, "store_path", None)
+        for z in range(z0, z1):
+            for i in range(y0 // ch, max(y0 // ch + 1, math.ceil(y1 / ch))):
+                for j in range(x0 // cw, max(x0 // cw + 1, math.ceil(x1 / cw))):
+                    try:
+                        self._array[z, i * ch:(i + 1) * ch, j * cw:(j + 1) * cw]
+                    except Exception as inner:  # the damaged chunk
+                        return chunk_error(self._label, store, z, i, j, inner)
+        return InputError(f"{self._label}: planes {z0}-{z1 - 1} cannot be read ({type(exc).__name__}: {exc})",
+                          file=store)

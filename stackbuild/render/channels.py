@@ -33,7 +33,7 @@ from ..manifest import image_header
 from ..folder import BuildFolder
 from .ngff import multiscales_attrs, root_attrs
 from .reduce import level_shapes, reduce2x2, reduced_size
-from .fingerprint import channel_fingerprints, read_plane_record, write_plane_record
+from .fingerprint import channel_fingerprints, discard_plane, read_plane_record, write_plane_record
 from .swap import incoming_path, swap_in
 from .settings import check_settings
 from ..transforms.records import Canvas, SectionAlignment
@@ -141,6 +141,9 @@ def _write_channel(folder, name, recs, canvas, settings, progress, done_before, 
                 or doc["fingerprints"].get(str(z)) != fps[z]]
         done = {int(z): fp for z, fp in doc["fingerprints"].items() if int(z) not in set(todo)}
         damaged = {k: v for k, v in doc["damaged"].items() if int(k) not in set(todo)}
+        for z in todo:
+            if str(z) in doc["damaged"]:
+                discard_plane(target, z)
     write_plane_record(target, stamp, done, damaged)
     info = np.iinfo(dtype)
     for i, z in enumerate(todo):

@@ -278,3 +278,16 @@ def forget_planes(folder, planes, array: str = "em", reason: str | None = None) 
     if reason is not None:
         damaged.update({str(int(p)): reason for p in planes})
     write_plane_record(group, doc["stamp"], fps if reason is None else doc["fingerprints"], damaged)
+
+
+def discard_plane(group: Path, z: int) -> None:
+    """Delete the stored chunks of plane ``z`` at every level of an array group (zarr v3 keys ``c/<z>/...``).
+
+    Only for a plane found damaged and about to be rendered again: writing part of a
+    shard reads the shard first, which a damaged one would fail.
+    """
+    import shutil
+
+    for level in Path(group).iterdir():
+        if level.name.isdigit():
+            shutil.rmtree(level / "c" / str(int(z)), ignore_errors=True)

@@ -31,6 +31,18 @@ def swap_in(folder, rel: str) -> None:
         os.replace(dest, old)
     os.replace(new, dest)
     shutil.rmtree(old, ignore_errors=True)
+    _prune(folder.incoming_dir)
+
+
+def _prune(base: Path) -> None:
+    """Remove the empty folders under ``base``, and ``base`` itself if it ends up empty."""
+    if not base.exists():
+        return
+    for d in sorted((p for p in base.rglob("*") if p.is_dir()), key=lambda p: len(p.parts), reverse=True):
+        if not any(d.iterdir()):
+            d.rmdir()
+    if not any(base.iterdir()):
+        base.rmdir()
 
 
 def recover_swap(folder) -> list[str]:

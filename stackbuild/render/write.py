@@ -30,7 +30,7 @@ from ..folder import BuildFolder
 from ..transforms.store import atomic_write_text
 from .canvas import compute_canvas, settle_canvas
 from .contrast import DOC_KIND, RangeJob, contrast_record, range_job
-from .fingerprint import PLANE_RECORD, em_fingerprints, read_plane_record, write_plane_record
+from .fingerprint import PLANE_RECORD, discard_plane, em_fingerprints, read_plane_record, write_plane_record
 from .lazy import RenderPlan, section_records
 from .ngff import multiscales_attrs, root_attrs
 from .pyramid import compute_each, pyramid_writes
@@ -237,6 +237,9 @@ def write_render(job: RenderJob, *, progress=None, mapper=None) -> dict:
     done = {int(z): fp for z, fp in ckpt["fingerprints"].items() if int(z) not in set(todo)}
     damaged = {k: v for k, v in ckpt["damaged"].items() if int(k) not in set(todo)}
     write_plane_record(target, stamp, done, damaged)
+    for z in todo:
+        if str(z) in ckpt["damaged"]:  # a shard is read before it is partly rewritten: drop the damaged bytes
+            discard_plane(target, z)
     _write_planes(job.plan, arrays, shapes, todo, settings, done, damaged, target, stamp, job.fingerprints,
                   progress, mapper)
     if job.overwrite:
@@ -302,3 +305,8 @@ def _write_planes(plan, arrays, shapes, todo, settings, done, damaged, target, s
                 progress(finished, total)
 
         compute_each(mapper)(pyramid_writes(plan, arrays, shapes, group, settings.reducer, block), finish)
+        # Returned without error: every plane of the group is written, whether or not the scheduler
+        # called back for each (a local callback is not called when the graph runs on a cluster).
+        for k, z in enumerate(group):
+            if z not in done:
+                finish(k)

@@ -63,10 +63,13 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
     """
     from distributed import Client, LocalCluster
 
-    if not logging.getLogger().isEnabledFor(logging.DEBUG):
-        # Importing distributed configures its loggers at INFO; its start/stop chatter is not news.
+    quiet = not logging.getLogger().isEnabledFor(logging.DEBUG)
+    if quiet:
+        # Importing distributed configures its loggers at INFO; its start/stop chatter is not news, and
+        # a failed task's traceback or a lost worker is said once, in our words (the CLI's error line,
+        # WorkerWatch), not as a multi-line dump before it. --debug shows everything.
         for name in ("distributed", "tornado"):
-            logging.getLogger(name).setLevel(logging.ERROR)
+            logging.getLogger(name).setLevel(logging.CRITICAL)
 
     cluster = None
     if scheduler:
@@ -89,7 +92,7 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
             warnings.filterwarnings("ignore", message="Port .* is already in use")
             cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
                                    memory_limit=memory_limit, dashboard_address=None,
-                                   silence_logs=logging.ERROR)
+                                   silence_logs=logging.CRITICAL if quiet else logging.INFO)
         client = Client(cluster)
     _pin_worker_threads(client)
     watch = WorkerWatch(client)  # a scheduler's workers, or local ones, that all die are worth a word

@@ -68,17 +68,19 @@ def render_channels_stage(build: BuildFolder, *, overwrite: bool = False, progre
 
 
 def render_stage(build: BuildFolder, *, planes: list[int] | None = None, resume: bool = False,
-                 overwrite: bool = False, progress=None, mapper=None) -> dict:
+                 overwrite: bool = False, progress=None, mapper=None, job=None) -> dict:
     """Write the OME-Zarr pyramid from the raw tiles and the stored transforms.
 
     With ``resume``, only the stale planes are rendered (never written, rendered
     from other transforms or settings, or found damaged by ``stackbuild audit``);
     nothing when there are none. The stage is marked running only once every check
-    has passed, so a refused render leaves ``build.json`` as it was.
+    has passed, so a refused render leaves ``build.json`` as it was. ``job``: a
+    :func:`stackbuild.render.stage.prepare` result to use instead of preparing here.
     """
     from ..render.stage import prepare, run
 
-    job = prepare(build, build.config.render, planes=planes, overwrite=overwrite, resume=resume)
+    if job is None:
+        job = prepare(build, build.config.render, planes=planes, overwrite=overwrite, resume=resume)
     if not job.todo and not job.overwrite:
         if not build.stage_done("render"):
             build.mark_stage("render", "done", seconds=0.0, planes=0)

@@ -26,6 +26,22 @@ def _plain(cls, rec: dict):
 #: Largest coordinate (pixels) a record may hold: far beyond any real mosaic (4 m at 4 nm),
 #: yet small enough that float64 positions keep sub-pixel precision.
 MAX_COORDINATE = 1e9
+#: Largest scale factor (absolute matrix entry) and smallest |determinant| of a stored section affine:
+#: sections are cut from one block and imaged at one pixel size, so their maps scale by about 1;
+#: anything beyond is a damaged or hand-edited record (common practice, no source).
+MAX_AFFINE_SCALE = 100.0
+MIN_AFFINE_DETERMINANT = 1e-4
+
+
+def check_section_affine(affine, what: str) -> None:
+    """Raise ValueError if a stored section affine is finite but absurd (see :data:`MAX_AFFINE_SCALE`)."""
+    m = affine.matrix
+    if np.abs(m[:, :2]).max() > MAX_AFFINE_SCALE:
+        raise ValueError(f"{what} scales by up to {np.abs(m[:, :2]).max():g}, beyond +-{MAX_AFFINE_SCALE:g}")
+    if abs(np.linalg.det(m[:, :2])) < MIN_AFFINE_DETERMINANT:
+        raise ValueError(f"{what} is (nearly) singular: determinant {np.linalg.det(m[:, :2]):g}")
+    if np.abs(m[:, 2]).max() > MAX_COORDINATE:
+        raise ValueError(f"{what} translates by {np.abs(m[:, 2]).max():g}, beyond +-{MAX_COORDINATE:g} pixels")
 
 
 def _require_finite(obj, names: tuple[str, ...], what: str, limit: float | None = None) -> None:
@@ -240,10 +256,15 @@ class SectionAlignment:
         for t in rec["transforms"]["transformations"]:
             if t["type"] == "affine":
                 affine = Affine2D.from_json(t)
+                check_section_affine(affine, "the coarse -> section affine")
             elif t["type"] == "displacements":
                 if vectors is None:
                     raise ValueError("record refers to a displacement field but none was given")
                 fld = DisplacementField(vectors, tuple(t["origin"]), t["spacing"])
+                big = float(np.abs(fld.vectors).max(initial=0.0))
+                if big > MAX_COORDINATE or max(map(abs, fld.origin)) > MAX_COORDINATE:
+                    raise ValueError(f"displacement field holds a vector or origin beyond +-{MAX_COORDINATE:g} "
+                                     f"pixels (largest vector {big:g})")
             else:
                 raise ValueError(f"unknown transform type {t['type']!r}")
         return cls(int(rec["section"]), affine, fld, list(rec.get("flags", [])), dict(rec.get("stats", {})))

@@ -13,7 +13,7 @@ Run::
 
     python tests/benchmarks/bench_accuracy.py                        # both families, base variant, seed 0
     python tests/benchmarks/bench_accuracy.py --family realistic --variant base dense small long --seeds 0 1 2
-    python tests/benchmarks/bench_accuracy.py --sections 6 --json /tmp/x/acc.json
+    python tests/benchmarks/bench_accuracy.py --sections 6 --json /tmp/x/acc.json --config my.toml --keep
 
 ``--full`` is every family x variant on seeds 0, 1, 2 (the bars of the alignment issue).
 """
@@ -79,7 +79,7 @@ def read_estimate(build: Path) -> dict[int, float] | None:
     return out
 
 
-def run_case(family, variant, seed, work: Path, sections=None, workers=None, keep=False) -> dict:
+def run_case(family, variant, seed, work: Path, sections=None, workers=None, keep=False, config=None) -> dict:
     """Synthesise, build and measure one stack; return its row of results."""
     over = {} if sections is None else {"sections": sections}
     params = variant_params(family, variant, seed, **over)
@@ -94,6 +94,8 @@ def run_case(family, variant, seed, work: Path, sections=None, workers=None, kee
            "build", str(data / "tiles.csv"), "--out", str(build), "--quiet"]
     if workers:
         cmd += ["--workers", str(workers)]
+    if config:
+        cmd += ["--config", str(config)]
     t0 = time.perf_counter()
     proc = subprocess.run(cmd, capture_output=True, text=True)
     row = {"case": name, "family": family, "variant": variant, "seed": seed, "sections": params.sections,
@@ -141,6 +143,7 @@ def main(argv=None) -> int:
     ap.add_argument("--seeds", nargs="+", type=int, default=[0])
     ap.add_argument("--sections", type=int, default=None, help="override the variant's section count")
     ap.add_argument("--workers", type=int, default=None, help="passed to stackbuild build")
+    ap.add_argument("--config", type=Path, default=None, help="pipeline TOML passed to stackbuild build")
     ap.add_argument("--work", type=Path, default=Path("/tmp/bench_accuracy"), help="scratch folder")
     ap.add_argument("--keep", action="store_true", help="keep each case's sample and build folder")
     ap.add_argument("--json", type=Path, default=None, help="also write every row to this JSON file")
@@ -153,7 +156,8 @@ def main(argv=None) -> int:
         for variant in args.variant:
             for seed in args.seeds:
                 try:
-                    row = run_case(family, variant, seed, args.work, args.sections, args.workers, args.keep)
+                    row = run_case(family, variant, seed, args.work, args.sections, args.workers, args.keep,
+                                   args.config)
                 except InputError as exc:
                     row = {"case": f"{family}-{variant}-s{seed}", "build_exit": None, "build_error": [],
                            "error": str(exc)}

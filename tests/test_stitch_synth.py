@@ -214,3 +214,23 @@ def test_section_split_into_two_groups_keeps_each_groups_level(tmp_path):
         raw = np.median(np.concatenate([tifffile.imread(tmp_path / f"tiles/0/{n}.tif").ravel() for n in names]))
         got = np.median(np.concatenate([fixed[n].ravel() for n in names]))
         assert abs(got / raw - 1) <= 0.05, group
+
+
+def test_section_with_a_blank_middle_tile_aligns_normally(tmp_path):
+    # Issue #12: the section is aligned like its neighbours, not flagged damaged
+    # or interpolated. Checked once by hand that this can fail: the same stack
+    # with section 1's gains set as the issue reports them (8.3 on the blank
+    # tile, 0.08 elsewhere) comes out of alignment flagged interpolated and damaged.
+    from stackbuild.align.stage import run_align
+    from stackbuild.transforms import TransformStore
+    from test_align_support import small_settings
+
+    params = SynthParams(seed=2, sections=3, grid=(3, 3), tile_size=256, offset=12.0, warp=3.0, channels=0,
+                         landmarks=0, blank_tiles="1:r1c1", compress=False)
+    manifest = read_tile_manifest(generate(tmp_path / "sample", params))
+    store = TransformStore(tmp_path / "build" / "transforms")
+    for z in manifest.sections:
+        store.save_stitch(stitch_section(manifest.section_tiles(z), StitchSettings(), z))
+    aligned = run_align(tmp_path / "build", small_settings(), mapper=map)
+    assert "blank" in next(t for t in store.load_stitch(1).tiles if t.tile == "r1c1").flags
+    assert {z: a.flags for z, a in aligned.items()} == {0: [], 1: [], 2: []}

@@ -46,11 +46,20 @@ def _one_line(capsys) -> str:
 def tiny_build(tiny_data, tmp_path_factory) -> Path:
     """Return a finished build of the tiny stack (one marker channel), made under umask 022
     without --pixel-size or --section-thickness."""
+    from stackbuild.run import stages
+    from stackbuild.run.cluster import serial_mapper
+    from stackbuild.run.start import start_build
+
     out = tmp_path_factory.mktemp("safety") / "build"
     old = os.umask(0o022)
-    try:
-        assert main(["build", str(tiny_data / "tiles.csv"), "--channels", str(tiny_data / "channels.csv"),
-                     "--out", str(out), "--workers", "1", "--quiet"]) == 0
+    try:  # the stages 'build' runs, in this process (no cluster to start: a faster fixture)
+        build = start_build(out, tiny_data / "tiles.csv", channels=tiny_data / "channels.csv")
+        stages.stitch_stage(build, serial_mapper())
+        stages.align_stage(build, serial_mapper())
+        stages.channels_stage(build, serial_mapper())
+        stages.render_stage(build)
+        stages.render_channels_stage(build)
+        stages.report_stage(build)
     finally:
         os.umask(old)
     return out
@@ -311,10 +320,11 @@ def test_disk_full_is_one_line_and_resume_completes_once_space_is_freed(small_di
     line = _one_line(capsys)
     assert f"no space left on the file system holding {out}" in line and "--resume" in line
     subprocess.run(["mount", "-o", "remount,size=20m", str(small_disk)], check=True, timeout=20)
-    assert main(["render", str(out), "--resume", "--quiet", "--workers", "1"]) == 0
     from stackbuild.folder import BuildFolder
     from stackbuild.render.audit import audit_volume
+    from stackbuild.run import stages
 
+    stages.render_stage(BuildFolder(out), resume=True)  # what 'render --resume' runs
     assert audit_volume(BuildFolder(out)).ok
     render_volume(folder.root, raw)  # the same volume rendered where there is room
     for n in range(3):

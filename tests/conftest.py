@@ -50,3 +50,20 @@ def grid_build(grid_data, tmp_path_factory) -> Path:
     assert main(["build", str(grid_data / "first.csv"), "--out", str(out), "--config", str(grid_data / "small.toml"),
                  "--pixel-size", "4", "--section-thickness", "40", "--workers", "2", "--quiet"]) == 0
     return out
+
+
+@pytest.fixture(scope="session")
+def tiny_build(tiny_data, tmp_path_factory) -> Path:
+    """Return a finished build of the tiny stack: its marker channel and landmarks, 128 px chunks in shards of 2.
+
+    Shared by every test that only reads a finished build (treat as read-only: copy it to change it).
+    """
+    from stackbuild.cli import main
+
+    out = tmp_path_factory.mktemp("tiny_build") / "b"
+    config = out.parent / "small.toml"
+    config.write_text("[render]\nchunk = 128\nshard = 2\n")
+    assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(out), "--channels", str(tiny_data / "channels.csv"),
+                 "--landmarks", str(tiny_data / "landmarks.csv"), "--config", str(config), "--workers", "2",
+                 "--quiet"]) == 0
+    return out

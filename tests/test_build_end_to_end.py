@@ -34,14 +34,10 @@ def _small_chunks(folder: Path) -> Path:
     return path
 
 
-@pytest.fixture(scope="module")
-def built(tiny_data, tmp_path_factory):
-    out = tmp_path_factory.mktemp("build") / "b"
-    status = main(["build", str(tiny_data / "tiles.csv"), "--out", str(out), "--channels",
-                   str(tiny_data / "channels.csv"), "--config", str(_small_chunks(out.parent)),
-                   "--workers", "2", "--quiet"])
-    assert status == 0
-    return out
+@pytest.fixture
+def built(tiny_build):
+    """The session's finished tiny build (conftest.py), with channels and 128 px chunks."""
+    return tiny_build
 
 
 def test_build_writes_volume_transforms_and_report(built):
@@ -83,12 +79,18 @@ def test_killed_build_resumes_to_the_same_volume(built, tiny_data, tmp_path):
            "--workers", "1", "--quiet"]
     proc = subprocess.Popen(cmd, start_new_session=True)
     deadline = time.monotonic() + 120
+    killed = False
     while time.monotonic() < deadline and proc.poll() is None:
         if (out / "transforms" / "sections").exists() and any((out / "transforms" / "sections").iterdir()):
             os.killpg(proc.pid, signal.SIGKILL)  # the whole process group: CLI and its Dask workers
+            killed = True
             break
         time.sleep(0.05)
     proc.wait(timeout=60)
+    # The kill really landed mid-build: the process died of SIGKILL and the render never finished.
+    assert killed and proc.returncode == -signal.SIGKILL, proc.returncode
+    stages = json.loads((out / "build.json").read_text()).get("stages", {})
+    assert stages.get("render", {}).get("status") != "done", stages
     status = main(["build", str(tiny_data / "tiles.csv"), "--out", str(out), "--resume", "--workers", "2",
                    "--quiet"])
     assert status == 0

@@ -22,13 +22,10 @@ from stackbuild.synth import load_truth
 from stackbuild.transforms import Affine2D
 
 
-@pytest.fixture(scope="module")
-def built(tiny_data, tmp_path_factory):
-    out = tmp_path_factory.mktemp("lm") / "build"
-    assert main(["build", str(tiny_data / "tiles.csv"), "--channels", str(tiny_data / "channels.csv"),
-                 "--landmarks", str(tiny_data / "landmarks.csv"), "--out", str(out), "--quiet",
-                 "--workers", "2"]) == 0
-    return out
+@pytest.fixture
+def built(tiny_build):
+    """The session's finished tiny build (conftest.py): channels and landmarks."""
+    return tiny_build
 
 
 def _metrics(folder):

@@ -172,15 +172,6 @@ def make_build(root, *, volume: bool = True, odd_name: bool = False):
     return root
 
 
-def test_volume_metadata_is_valid_ome_zarr_05(tmp_path):
-    # Source: the OME-Zarr 0.5 specification, checked by the ome-zarr-models package.
-    from ome_zarr_models.v05.image import Image
-
-    root = make_build(tmp_path / "b")
-    grp = zarr.open_group(str(root / "volume.zarr" / "em"), mode="r")
-    Image.from_zarr(grp)
-
-
 def test_planted_rotation_is_in_the_rendered_plane(tmp_path):
     # Ground truth: a 1 degree rotation about the centre moves a point at radius r by 2 r sin(0.5 deg).
     st, al = _stitch(PLANT_ROT_SECTION, tmp_path), _alignment(PLANT_ROT_SECTION)

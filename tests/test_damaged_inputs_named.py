@@ -1,4 +1,4 @@
-"""Hardening: a build whose records or tiles are spoiled after the fact.
+"""A build whose records or tiles are spoiled after the fact.
 
 A transform record edited by hand to hold NaN or infinity, a tile replaced by a
 broken file or one of another size: each must give one line naming the file

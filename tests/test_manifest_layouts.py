@@ -1,4 +1,4 @@
-"""Hardening: tile layouts that pass the manifest columns but are odd.
+"""Tile layouts that pass the manifest columns but are odd.
 
 Awkward yet valid layouts (one tile, a blank section, gaps in the section
 numbers, 16-bit tiles using the full range, a huge common stage offset) must

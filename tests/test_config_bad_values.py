@@ -1,4 +1,4 @@
-"""Hardening: pipeline files whose values pass the type check but cannot work.
+"""Pipeline files whose values pass the type check but cannot work.
 
 Every bad value must be refused when the file is read, naming the file and the
 key, before a build folder exists (not when its stage starts, as a traceback).

@@ -22,20 +22,23 @@ def tiny_data(tmp_path_factory) -> Path:
     return out
 
 
-#: A stack for update and locate tests: 7 sections (section 2 lost) of 3 x 3 tiles; the build holds
-#: sections 0-4 (``first.csv``), ``later.csv`` has sections 5 and 6 to append.
-GRID = SynthParams(seed=5, sections=7, grid=(3, 3), tile_size=256, offset=12.0, warp=3.0, channels=0,
+#: A stack for update and locate tests: 7 sections (section 2 lost) of 3 x 3 tiles and one marker; the
+#: build holds sections 0-4 (``first.csv``, no markers), ``later.csv`` has sections 5 and 6 to append,
+#: ``markers.csv`` the marker images of sections 0-4 (to add to the build).
+GRID = SynthParams(seed=5, sections=7, grid=(3, 3), tile_size=256, offset=12.0, warp=3.0, channels=1,
                    lost_sections="2", compress=False)
 
 
 @pytest.fixture(scope="session")
 def grid_data(tmp_path_factory) -> Path:
-    """Return the folder of the GRID stack with ``first.csv``, ``later.csv`` and ``small.toml`` (64 px chunks)."""
+    """Return the folder of the GRID stack with ``first.csv``, ``later.csv``, ``markers.csv``, ``small.toml`` (64 px chunks)."""
     out = tmp_path_factory.mktemp("grid")
     generate(out, GRID)
     lines = (out / "tiles.csv").read_text().splitlines()
-    for name, keep in (("first.csv", lambda s: s <= 4), ("later.csv", lambda s: s >= 5)):
-        rows = [lines[0]] + [ln for ln in lines[1:] if keep(int(ln.split(",")[0]))]
+    marks = (out / "channels.csv").read_text().splitlines()
+    for src, name, keep in ((lines, "first.csv", lambda s: s <= 4), (lines, "later.csv", lambda s: s >= 5),
+                            (marks, "markers.csv", lambda s: s <= 4)):
+        rows = [src[0]] + [ln for ln in src[1:] if keep(int(ln.split(",")[0]))]
         (out / name).write_text("\n".join(rows) + "\n")
     (out / "small.toml").write_text("[render]\nchunk = 64\nshard = 1\n")
     return out

@@ -290,7 +290,6 @@ def _stitch(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
 
 
 def _align(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
-    from ..align.sources import BuildSource
     from ..align.stage import align_sections
     from ..render.dirty import _same_alignment
     from ..transforms.hold import hold_alignments
@@ -298,8 +297,10 @@ def _align(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
     from .progress import ProgressBar
 
     scratch = build.scratch_dir("align")
+    source = _Window(build.root, _window(build.store.sections_with("stitch"), plan.sections,
+                                         build.config.align.neighbours))
     try:
-        new = align_sections(BuildSource(build.root), build.config.align,
+        new = align_sections(source, build.config.align,
                              mapper=client_mapper(client, ProgressBar("align", show)),
                              progress=ProgressBar("solve", show), scratch=scratch)
     finally:
@@ -318,7 +319,42 @@ def _align(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
     plan.facts["align"] = {"realigned": facts["realigned"], "frame_rms_px": facts["frame_rms_px"],
                            "largest_untouched_move_px": max(moved.values(), default=0.0),
                            "moved_beyond_tolerance": sorted(s for s, v in moved.items() if v > plan.hold_within),
-                           "links": max(0, len(new) - 1)}
+                           "window": sorted(new)}
+
+
+def _window(sections: list[int], changed: list[int], neighbours: int) -> list[int]:
+    """Return the sections aligned again: each changed one and ``neighbours + 1`` stitched sections each side.
+
+    The sections around a changed one anchor it (their alignments are held; see
+    :func:`stackbuild.transforms.hold.hold_alignments`), so the rest of the stack is not solved again.
+    """
+    have = sorted(sections)
+    reach = max(2, neighbours + 1)
+    keep = set()
+    for s in changed:
+        if s not in have:
+            continue
+        k = have.index(s)
+        keep.update(have[max(0, k - reach):k + reach + 1])
+    return sorted(keep)
+
+
+class _Window:
+    """A build's sections restricted to ``sections`` (an align source: see :mod:`stackbuild.align.sources`)."""
+
+    def __init__(self, root, sections: list[int]):
+        from ..align.sources import BuildSource
+
+        self._source = BuildSource(root)
+        self._sections = list(sections)
+
+    def sections(self) -> list[int]:
+        return list(self._sections)
+
+    def __getattr__(self, name):
+        if name.startswith("__") or name in ("_source", "_sections"):
+            raise AttributeError(name)  # not delegated (pickling looks these up before __dict__ is set)
+        return getattr(self._source, name)
 
 
 def _dirty(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict]:
@@ -499,7 +535,8 @@ def summary_lines(plan: UpdatePlan, verdict) -> list[str]:
     lines.append(f"  stitch: {f.get('stitch', {}).get('pairs', 0)} tile pair(s) registered again; untouched "
                  f"tiles held (a free re-solve would have moved them up to {max(moved, default=0.0):.2f} px)")
     a = f.get("align", {})
-    lines.append(f"  align: {len(a.get('realigned', []))} section(s) re-aligned {a.get('realigned', [])}; "
+    lines.append(f"  align: sections {a.get('window', [])} solved again, {len(a.get('realigned', []))} re-aligned "
+                 f"{a.get('realigned', [])}; "
                  f"existing sections moved up to {a.get('largest_untouched_move_px', 0.0):.2f} px "
                  f"(kept when <= {plan.hold_within:g} px; beyond it: {a.get('moved_beyond_tolerance') or 'none'})")
     r = f.get("render", {})

@@ -1,0 +1,188 @@
+"""Benchmark ``update`` against a full build (not collected by pytest).
+
+    python tests/benchmarks/bench_update.py                 # 20 sections of 3 x 3 tiles of 384 px
+    python tests/benchmarks/bench_update.py --sections 10 --kills
+
+Measured side by side in one run, on one synthetic stack (``stackbuild.synth``, ground truth
+unused here):
+
+1. a full build of the first N sections (wall time, CLI, 2 workers);
+2. ``update`` replacing 2 tiles of the middle section (wall time): the ratio build / update, the
+   chunks rewritten of all chunks, that no chunk of another plane changed (bytes and mtime), and
+   that the updated plane equals a render from scratch of the updated transforms (lazy renderer);
+3. a second full build of the merged manifest: where the re-imaged tiles' pixels land in the
+   updated volume and in that fresh build, after removing the frame change between the two
+   builds (an affine fitted on the untouched sections' tiles): RMS and max, level-0 pixels;
+4. ``update --append`` of sections N and N+1: planes of existing sections whose bytes changed,
+   and how far the local re-solve would have moved the existing sections (the tolerance);
+5. with ``--kills``: the update killed in its align, channels and render steps, run again, and
+   compared byte for byte with the uninterrupted update.
+"""
+from __future__ import annotations
+
+import argparse
+import hashlib
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import tifffile
+
+
+def _cli(*args, env=None, check=True) -> tuple[float, int]:
+    t0 = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-m", "stackbuild.cli", *map(str, args), "--quiet"],
+                          env={**os.environ, **(env or {})}, start_new_session=True,
+                          stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    if check and proc.returncode not in (0, 3):
+        raise SystemExit(f"stackbuild {' '.join(map(str, args))} failed:\n{proc.stderr}")
+    return time.perf_counter() - t0, proc.returncode
+
+
+def _files(em: Path) -> dict[str, tuple[str, int]]:
+    return {str(p.relative_to(em)): (hashlib.sha256(p.read_bytes()).hexdigest(), p.stat().st_mtime_ns)
+            for p in sorted(em.glob("*/c/**/*")) if p.is_file()}
+
+
+def _subset(src: Path, dst: Path, keep) -> Path:
+    lines = src.read_text().splitlines()
+    dst.write_text("\n".join([lines[0]] + [ln for ln in lines[1:] if keep(int(ln.split(",")[0]))]) + "\n")
+    return dst
+
+
+def _reimage(data: Path, out: Path, section: int, tiles: list[str]) -> Path:
+    out.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(3)
+    rows = ["section,tile,path,x,y"]
+    for line in (data / "tiles.csv").read_text().splitlines()[1:]:
+        s, t, p, x, y = line.split(",")
+        if int(s) == section and t in tiles:
+            img = tifffile.imread(data / p).astype(np.float32) + rng.normal(0, 4, (1,))
+            img = np.clip(img + rng.normal(0, 4, img.shape), 0, 255).astype(np.uint8)
+            dst = out / f"{s}_{t}.tif"
+            tifffile.imwrite(dst, img)
+            rows.append(f"{s},{t},{dst},{float(x) + 1.5},{float(y) - 2.0}")
+    (out / "tiles.csv").write_text("\n".join(rows) + "\n")
+    return out / "tiles.csv"
+
+
+def _landing(build: Path, section: int, tiles: list[str], others: list[int]) -> tuple[np.ndarray, np.ndarray]:
+    """Return volume points of a grid of pixels of ``tiles`` of ``section``, and of every tile of ``others``."""
+    from stackbuild.run.locate import locate_points
+    from stackbuild.transforms import TransformStore
+
+    store = TransformStore(build / "transforms")
+
+    def grid(s, names):
+        st = store.load_stitch(s)
+        pts = []
+        for t in st.tiles:
+            if names is None or t.tile in names:
+                g = np.linspace(8, min(t.width, t.height) - 9, 6)
+                pts += [{"section": s, "tile": t.tile, "tile_x": float(a), "tile_y": float(b)} for a in g for b in g]
+        return pts
+
+    moved = locate_points(build, grid(section, set(tiles)), "tile")
+    anchor = locate_points(build, [p for s in others for p in grid(s, None)], "tile")
+    as_xyz = lambda rows: np.array([[r["x"], r["y"], r["z"]] for r in rows])  # noqa: E731
+    return as_xyz(moved), as_xyz(anchor)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--sections", type=int, default=20)
+    ap.add_argument("--grid", type=int, default=3)
+    ap.add_argument("--tile", type=int, default=384)
+    ap.add_argument("--kills", action="store_true", help="also kill the update in align, channels, render")
+    ap.add_argument("--keep", metavar="DIR", help="work here and keep it (default: a temporary folder)")
+    args = ap.parse_args()
+
+    from stackbuild.synth import SynthParams, generate
+
+    root = Path(args.keep or tempfile.mkdtemp(prefix="bench-update-"))
+    root.mkdir(parents=True, exist_ok=True)
+    n = args.sections
+    data = root / "data"
+    if not (data / "tiles.csv").exists():
+        generate(data, SynthParams(seed=21, sections=n + 2, grid=(args.grid, args.grid), tile_size=args.tile,
+                                   offset=20.0, warp=4.0, channels=0, compress=False))
+    first = _subset(data / "tiles.csv", data / "first.csv", lambda s: s < n)
+    later = _subset(data / "tiles.csv", data / "later.csv", lambda s: s >= n)
+    scale = ["--pixel-size", "4", "--section-thickness", "40", "--workers", "2"]
+    base, upd = root / "build", root / "updated"
+    for d in (base, upd, root / "fresh", root / "appended"):
+        shutil.rmtree(d, ignore_errors=True)
+    t_build, _ = _cli("build", first, "--out", base, *scale)
+    shutil.copytree(base, upd)
+    section, tiles = n // 2, ["r0c0", "r0c1"]
+    again = _reimage(data, root / "again", section, tiles)
+    t_update, status = _cli("update", upd, "--tiles", again, "--workers", "2")
+    plan = json.loads((upd / "updates" / "0001" / "plan.json").read_text())
+    before, after = _files(base / "volume.zarr" / "em"), _files(upd / "volume.zarr" / "em")
+    changed = {k for k in before.keys() | after.keys() if before.get(k) != after.get(k)}
+    planes = sorted({int(k.split(os.sep)[2]) for k in changed})
+    level0 = [k for k in changed if k.startswith("0" + os.sep)]
+    total0 = sum(1 for k in after if k.startswith("0" + os.sep))
+
+    import stackbuild
+
+    z = section - plan["render"]["canvas"]["first_section"]
+    same = np.array_equal(stackbuild.open_volume(upd, level=0, lazy=False)[z].compute(),
+                          stackbuild.open_volume(upd, level=0, lazy=True)[z].compute())
+    print(f"full build of {n} sections: {t_build:.1f} s; update of 2 tiles: {t_update:.1f} s "
+          f"(ratio {t_build / t_update:.1f}x; exit {status})")
+    print(f"  planes with changed chunks: {planes} (re-imaged section's plane {z}; realigned "
+          f"{plan['facts']['align']['realigned']}, existing sections moved up to "
+          f"{plan['facts']['align']['largest_untouched_move_px']:.2f} px)")
+    print(f"  level-0 chunk files changed: {len(level0)} of {total0}; shards rewritten per level "
+          f"{plan['facts']['render']['shards']} of {plan['facts']['render']['shards_total']}")
+    print(f"  updated plane equals a render from scratch of the updated transforms: {same}")
+
+    merged = Path(plan["tiles_after"])
+    t_fresh, _ = _cli("build", merged, "--out", root / "fresh", *scale)
+    others = [s for s in range(n) if s != section]
+    mu, au = _landing(upd, section, tiles, others)
+    mf, af = _landing(root / "fresh", section, tiles, others)
+    a = np.column_stack([af[:, :2], np.ones(len(af))])
+    m = np.linalg.lstsq(a, au[:, :2], rcond=None)[0]  # fresh build's frame -> updated build's frame
+    frame = np.sqrt(np.mean(np.sum((a @ m - au[:, :2]) ** 2, 1)))
+    d = np.hypot(*(np.column_stack([mf[:, :2], np.ones(len(mf))]) @ m - mu[:, :2]).T)
+    print(f"second full build (merged manifest): {t_fresh:.1f} s; re-imaged tiles land within RMS "
+          f"{np.sqrt(np.mean(d ** 2)):.3f} px, max {d.max():.3f} px of the fresh build "
+          f"(frame fit on {len(au)} points of untouched sections: RMS {frame:.3f} px)")
+
+    app = root / "appended"
+    shutil.copytree(base, app)
+    t_app, _ = _cli("update", app, "--tiles", later, "--append", "--workers", "2")
+    aplan = json.loads((app / "updates" / "0001" / "plan.json").read_text())
+    a_after = _files(app / "volume.zarr" / "em")
+    touched = sorted({int(k.split(os.sep)[2]) for k in before if a_after.get(k) != before[k]})
+    print(f"append 2 sections to {n}: {t_app:.1f} s; existing planes with changed chunks: {touched or 'none'} "
+          f"(local re-solve moved existing sections up to {aplan['facts']['align']['largest_untouched_move_px']:.2f} "
+          f"px; tolerance {aplan['hold_within']} px; beyond it: {aplan['facts']['align']['moved_beyond_tolerance']})")
+
+    if args.kills:
+        ref = {k: v[0] for k, v in after.items()}
+        for step in ("align", "channels", "render"):
+            work = root / f"killed-{step}"
+            shutil.rmtree(work, ignore_errors=True)
+            shutil.copytree(base, work)
+            _, rc = _cli("update", work, "--tiles", again, "--workers", "2",
+                         env={"STACKBUILD_UPDATE_KILL": step}, check=False)
+            _cli("update", work, "--resume", "--workers", "2")
+            got = {k: v[0] for k, v in _files(work / "volume.zarr" / "em").items()}
+            print(f"killed in {step} (exit {rc}, SIGKILL is {-signal.SIGKILL}), then --resume: "
+                  f"byte-identical to the uninterrupted update: {got == ref}")
+    if not args.keep:
+        shutil.rmtree(root, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()

@@ -115,7 +115,11 @@ def _add_stages(sub) -> None:
     c = sub.add_parser("channels", help="register the molecular marker images of a build folder",
                        description="Co-register each marker image with its EM section by mutual "
                                    "information; results go to DIR/transforms.")
-    c.add_argument("dir", metavar="DIR", help="build folder (made with --channels)")
+    c.add_argument("dir", metavar="DIR", help="build folder (made with --channels, or given --merge)")
+    c.add_argument("--merge", metavar="CHANNELS_CSV",
+                   help="channel manifest of markers probed again or new: a row for a section and channel the "
+                        "build has replaces that image, other rows are added; only the channel stage and the "
+                        "marker pyramids run (EM transforms and pixels are untouched)")
     _add_cluster(c)
     _add_common(c)
 
@@ -303,8 +307,17 @@ def _cmd_channels(args) -> int:
     from .run.progress import ProgressBar
 
     build = _open_build(args.dir)
+    if args.merge:
+        from .run.markers import add_channels
+
+        facts = add_channels(build, Path(args.merge), workers=args.workers, scheduler=args.scheduler,
+                             show_progress=not args.quiet)
+        _say(f"channels {', '.join(facts['channels'])}: {facts['added']} image(s) added, {facts['replaced']} "
+             f"replaced; manifest {facts['manifest']}; run 'stackbuild report {args.dir}' to measure them")
+        return EXIT_OK
     if not build.load_state().get("channels"):
-        raise InputError("this build has no channel manifest (build it with --channels)", file=build.root)
+        raise InputError("this build has no channel manifest (build it with --channels, or pass --merge "
+                         "CHANNELS_CSV)", file=build.root)
     with dask_client(args.workers, args.scheduler) as client:
         out = stages.channels_stage(build, client_mapper(client, ProgressBar("channels", not args.quiet)))
     _say(f"registered {len(out)} channel image(s) into {build.store.root}")

@@ -11,7 +11,7 @@ from stackbuild.align.stage import run_align
 from stackbuild.manifest import read_tile_manifest
 from stackbuild.synth import SynthParams, generate, load_truth
 from stackbuild.transforms import SectionStitch, TilePlacement, TransformStore
-from test_align_support import p95, rms, small_settings, split_linear
+from align_builders import p95, rms, small_settings, split_linear
 
 
 @pytest.fixture(scope="module")

@@ -1,4 +1,4 @@
-"""Stack-level accuracy of the align stage on ground-truth stacks (invented data, see test_align_support).
+"""Stack-level accuracy of the align stage on ground-truth stacks (invented data, see align_builders).
 
 Residuals follow the brief: for aligned points p, r = section_to_true(aligned_to_section(p)) - p,
 minus the per-point mean over sections (one common warp).
@@ -12,7 +12,7 @@ from skimage import data
 from stackbuild.align.sources import ArraySource
 from stackbuild.align.stage import align_sections
 from stackbuild.errors import InputError
-from test_align_support import Stack, make_stack, p95, residuals, rms, small_settings, split_linear
+from align_builders import Stack, make_stack, p95, residuals, rms, small_settings, split_linear
 
 
 @pytest.fixture(scope="module")

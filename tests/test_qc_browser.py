@@ -14,7 +14,7 @@ from skimage import data
 from stackbuild.qc import plots
 from stackbuild.qc.report import run_report
 from stackbuild.qc.settings import ReportSettings
-from test_qc_synthbuild import make_build
+from qc_builders import make_build
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 _BAR = re.compile(r"^[\d.]+ (nm|\u00b5m)$")

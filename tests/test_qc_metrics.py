@@ -15,8 +15,8 @@ from stackbuild.qc.subpixel import bandpass, match_points
 from stackbuild.qc.zchain import block_jitter, plane_summary, section_error
 from stackbuild.qc.metrics import SCHEMA_VERSION, collect
 from stackbuild.qc.settings import ReportSettings
-from test_qc_synthbuild import (CENTRE, PLANT_ANGLE, PLANT_ROT_SECTION, PLANT_SHIFT, PLANT_TILE,
-                                PLANT_TILE_SECTION, make_build)
+from qc_builders import (CENTRE, PLANT_ANGLE, PLANT_ROT_SECTION, PLANT_SHIFT, PLANT_TILE,
+                         PLANT_TILE_SECTION, SIZE, _alignment, _stitch, make_build, render_plane)
 
 
 @pytest.fixture(scope="module")
@@ -203,3 +203,11 @@ def test_a_build_without_channels_or_volume_still_measures_seams(tmp_path):
     assert doc["channels"] == [] and doc["worst"]["tile"]["tile"] == PLANT_TILE
     names = {p.name for p in write_metrics(doc, tmp_path / "qc", meas)}
     assert "channels.csv" not in names and "sections.csv" in names
+
+
+def test_planted_rotation_is_in_the_rendered_plane(tmp_path):
+    # Ground truth: a 1 degree rotation about the centre moves a point at radius r by 2 r sin(0.5 deg).
+    st, al = _stitch(PLANT_ROT_SECTION, tmp_path), _alignment(PLANT_ROT_SECTION)
+    corner = al.affine.apply([[CENTRE[0] + 200, CENTRE[1]]])[0] - [CENTRE[0] + 200, CENTRE[1]]
+    assert np.hypot(*corner) == pytest.approx(2 * 200 * np.sin(PLANT_ANGLE / 2), rel=1e-9)
+    assert render_plane(st, al).shape == (SIZE, SIZE)

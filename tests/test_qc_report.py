@@ -20,7 +20,7 @@ from stackbuild.errors import InputError
 from stackbuild.qc.report import judge, run_report
 from stackbuild.qc.settings import ReportSettings
 from stackbuild.qc.thresholds import parse_fail_on_list
-from test_qc_synthbuild import ODD_NAME, PLANT_ROT_SECTION, PLANT_TILE, PLANT_TILE_SECTION, make_build
+from qc_builders import ODD_NAME, PLANT_ROT_SECTION, PLANT_TILE, PLANT_TILE_SECTION, make_build
 
 CHROMIUM = "/usr/bin/chromium"
 _IMG_SRC = re.compile(r'<img[^>]*\ssrc="([^"]*)"', re.S)

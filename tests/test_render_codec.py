@@ -11,7 +11,7 @@ from stackbuild.errors import InputError
 from stackbuild.render.settings import RenderSettings, check_settings
 from stackbuild.render.write import render_volume
 
-from test_render_build import make_build
+from render_builders import make_build
 
 
 @pytest.mark.parametrize("dtype, shuffle", [(np.uint8, "noshuffle"), (np.uint16, "bitshuffle")])

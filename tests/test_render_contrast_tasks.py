@@ -7,7 +7,7 @@ from stackbuild.render.contrast import DOC_KIND, RangeJob, measure_range
 from stackbuild.render.settings import RenderSettings
 from stackbuild.render.write import render_volume
 
-from test_render_build import make_build
+from render_builders import make_build
 
 
 def test_contrast_ranges_are_one_task_per_section_through_the_mapper(tmp_path):

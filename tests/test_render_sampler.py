@@ -15,7 +15,7 @@ from stackbuild.sampler import render_region as sample_region
 from stackbuild.render.settings import RenderSettings
 from stackbuild.transforms import Affine2D, DisplacementField, SectionAlignment, SectionStitch, TilePlacement
 
-from test_render_build import foam, make_build
+from render_builders import foam, make_build
 
 
 def render_region(stitch, *args, **kw):

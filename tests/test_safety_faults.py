@@ -24,7 +24,7 @@ import zarr
 
 from stackbuild.cli import main
 
-from test_render_build import SMALL, make_build
+from render_builders import SMALL, make_build
 
 
 # ------------------------------------------------------------------ helpers

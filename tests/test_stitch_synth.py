@@ -223,7 +223,7 @@ def test_section_with_a_blank_middle_tile_aligns_normally(tmp_path):
     # tile, 0.08 elsewhere) comes out of alignment flagged interpolated and damaged.
     from stackbuild.align.stage import run_align
     from stackbuild.transforms import TransformStore
-    from test_align_support import small_settings
+    from align_builders import small_settings
 
     params = SynthParams(seed=2, sections=3, grid=(3, 3), tile_size=256, offset=12.0, warp=3.0, channels=0,
                          landmarks=0, blank_tiles="1:r1c1", compress=False)

@@ -89,7 +89,7 @@ def tradeoff(weights=(0.0, 0.01, 0.02, 0.03, 0.1)):
     from dataclasses import replace
     from pathlib import Path
     sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-    from test_align_support import make_stack, p95, residuals, rms, small_settings
+    from align_builders import make_stack, p95, residuals, rms, small_settings
     from stackbuild.align.sources import ArraySource
     from stackbuild.align.stage import align_sections
     stacks = {"random": (make_stack(n=20, size=768, seed=0, offset=40.0), 150),

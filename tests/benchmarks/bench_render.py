@@ -39,7 +39,7 @@ import tifffile
 import zarr
 
 sys.path[:0] = [str(Path(__file__).resolve().parents[2]), str(Path(__file__).resolve().parents[1])]
-from test_render_build import make_build  # noqa: E402
+from render_builders import make_build  # noqa: E402
 
 from stackbuild import tiles as tiles_mod  # noqa: E402
 from stackbuild.render.lazy import lazy_volume  # noqa: E402

@@ -1,4 +1,4 @@
-"""Ground-truth stacks for the align tests (invented data; no tests in this file).
+"""Ground-truth stacks for the align tests (invented data; a helper module, not a test module).
 
 The invented specimen: a block of packed cells with dark granules, whose
 outlines may drift steadily sideways through the block ("slant"). Each

@@ -17,7 +17,7 @@ from .overlaps import Overlap, find_overlaps, neighbours
 from .pairs import PairResult
 from .placement import solve_translations
 from .settings import StitchSettings, check_settings
-from .stream import read_tile, reading_order, sample_profile, stream_pairs
+from .stream import read_tile, reading_order, sample_profile, stream_pairs, widen_search
 
 __all__ = ["check_settings", "read_tile", "stitch_section"]
 
@@ -97,8 +97,14 @@ def stitch_section(tiles: list[TileEntry], settings: StitchSettings, section: in
     for the pairs (plus at most ``MAX_PROFILE_TILES`` once more for the
     illumination profile), each pair is registered as soon as its second
     tile is read and its strips dropped, so a task's memory does not grow
-    with the number of tiles in the section. Tiles stored with lossy
-    compression are flagged ``lossy_compression`` (section flag ``lossy_tiles``).
+    with the number of tiles in the section. When the registered pairs show
+    stage errors reaching the outer half of the search, pairs lost to its
+    edge are searched again twice as far (:func:`~stackbuild.stitch.stream.widen_search`;
+    ``stats["pairs_widened"]`` counts those found). ``stats["stage_error_p95"]``
+    is the measured stage error: the 95th percentile of the placed tiles'
+    distance (each axis, common shift removed) from their stage positions.
+    Tiles stored with lossy compression are flagged ``lossy_compression``
+    (section flag ``lossy_tiles``).
     """
     if not tiles:
         raise InputError("section has no tiles", section=section)
@@ -110,13 +116,16 @@ def stitch_section(tiles: list[TileEntry], settings: StitchSettings, section: in
     cache: dict = {}
     profile, sec_flags = sample_profile(tiles, order, settings, section, cache)
     results, stats, lossy = stream_pairs(tiles, overlaps, order, profile, settings, section, cache)
+    widened = widen_search(tiles, overlaps, results, profile, settings, section)
     flags = flag_tiles(stats, settings.blank_contrast_to_noise, settings.focus_min, settings.saturated_max)
     for f, name in zip(flags, lossy):
         if name:
             f.append("lossy_compression")
     if any(lossy):
         sec_flags = [*sec_flags, "lossy_tiles"]
-    return _assemble(tiles, section, settings, stage, overlaps, results, stats, flags, profile, sec_flags)
+    rec = _assemble(tiles, section, settings, stage, overlaps, results, stats, flags, profile, sec_flags)
+    rec.stats["pairs_widened"] = widened
+    return rec
 
 
 def _place(tiles, settings, stage, overlaps: list[Overlap], results: list[PairResult], flags):
@@ -185,7 +194,8 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
     return SectionStitch(
         section=section, dtype=tiles[0].dtype, tiles=placements, pairs=matches,
         illumination=profile, illumination_step=settings.illumination_step,
-        flags=sec_flags, stats=_section_stats(residual[kept], results, kept, flags, rounds))
+        flags=sec_flags, stats={**_section_stats(residual[kept], results, kept, flags, rounds),
+                                "stage_error_p95": _stage_error_p95(pos, stage, placed)})
 
 
 def _structure_spread(std, noise) -> np.ndarray:
@@ -213,3 +223,12 @@ def _section_stats(res: np.ndarray, results, kept, flags, rounds) -> dict:
         "tiles_flagged": dict(Counter(f for fl in flags for f in fl)),
         "solve_rounds": int(rounds),
     }
+
+
+def _stage_error_p95(pos: np.ndarray, stage: np.ndarray, placed: np.ndarray) -> float | None:
+    """Return the 95th percentile of the placed tiles' distance from their stage positions (common shift removed)."""
+    if placed.sum() < 2:
+        return None
+    off = pos[placed] - stage[placed]
+    off -= np.median(off, axis=0)
+    return float(np.percentile(np.max(np.abs(off), axis=1), 95))

@@ -16,7 +16,7 @@ from ..manifest import TileEntry, lossy_compression
 from ..tiles import read_tile as read_raw_tile
 from .inspect import tile_stats
 from .intensity import illumination_at_tile_size, illumination_profile, tile_thumbnail
-from .overlaps import Overlap
+from .overlaps import Overlap, find_overlaps
 from .pairs import PairResult, register_pair
 from .settings import StitchSettings
 
@@ -28,6 +28,11 @@ MIN_ILLUMINATION_TILES = 3
 MAX_PROFILE_TILES = 32
 #: Below this many tiles the profile is a quadratic, from it on a quartic.
 FEW_PROFILE_TILES = 16
+#: Pairs lost to the edge of the search are searched again, twice as far, when the
+#: section's registered pairs already sit this far out in the search (95th percentile).
+WIDEN_WHEN = 0.5
+#: Rejections a too narrow search gives: the peak at its edge, or the best peak inside it, a wrong one.
+RETRY_REASONS = frozenset({"far_from_stage", "weak_peak", "low_ncc", "small_overlap"})
 
 
 def read_tile(entry: TileEntry, section: int) -> np.ndarray:
@@ -168,3 +173,50 @@ def stream_pairs(tiles: list[TileEntry], overlaps: list[Overlap], order: np.ndar
                 settings.min_peak_margin, settings.spectral_exponent, settings.spectrum_sigma)
         del img
     return results, stats, lossy
+
+
+def widen_search(tiles: list[TileEntry], overlaps: list[Overlap], results: list[PairResult],
+                 profile: np.ndarray | None, settings: StitchSettings, section: int) -> int:
+    """Register again, searching two and then four times as far, pairs the search may have been too narrow for.
+
+    Returns how many of them now match.
+
+    Only when the section's registered pairs show that stage errors reach
+    into the outer part of the search (their 95th-percentile distance from
+    the nominal offset above ``WIDEN_WHEN`` of it): then a pair rejected
+    for a reason a too narrow search gives (``RETRY_REASONS``) is likely a
+    real overlap the stage put too far off, not a pair of featureless strips. Both tiles of each such
+    pair are read again (one pair at a time), with strips grown to the wider
+    search. ``results`` is updated in place; a pair that still fails keeps
+    its first result. Four times is the limit: beyond it, a larger
+    ``max_stage_error`` is the honest setting.
+    """
+    search = 2.0 * settings.max_stage_error
+    dev = [max(abs(r.dx - (tiles[ov.b].x - tiles[ov.a].x)), abs(r.dy - (tiles[ov.b].y - tiles[ov.a].y)))
+           for ov, r in zip(overlaps, results) if r.reason == ""]
+    if not dev or float(np.percentile(dev, 95)) <= WIDEN_WHEN * search:
+        return 0
+    found = 0
+    correct = _Corrector(profile)
+    todo = [(k, wide) for wide in (2 * search, 4 * search)
+            for k, r in enumerate(results) if r.reason in RETRY_REASONS]
+    for k, wide in todo:
+        ov = overlaps[k]
+        if results[k].reason not in RETRY_REASONS:
+            continue
+        a, b = tiles[ov.a], tiles[ov.b]
+        grown = find_overlaps(np.array([(a.x, a.y), (b.x, b.y)]), np.array([(a.width, a.height),
+                              (b.width, b.height)]), settings.min_overlap, int(np.ceil(wide)))
+        if not grown:
+            continue
+        g = grown[0]
+        sa = read_tile(a, section)[_slice(g.pad_a)]
+        sb = read_tile(b, section)[_slice(g.pad_b)]
+        again = register_pair(
+            correct(sa, g.pad_a, a), correct(sb, g.pad_b, b), g, (a.width, a.height), (b.width, b.height),
+            (g.box_a[0] - g.box_b[0], g.box_a[1] - g.box_b[1]), wide, settings.upsample, settings.min_ncc,
+            settings.min_peak_margin, settings.spectral_exponent, settings.spectrum_sigma)
+        if again.reason == "":
+            results[k] = again
+            found += 1
+    return found

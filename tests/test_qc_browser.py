@@ -23,7 +23,7 @@ _BAR = re.compile(r"^[\d.]+ (nm|\u00b5m)$")
 @pytest.fixture(scope="module")
 def page(tmp_path_factory):
     root = make_build(tmp_path_factory.mktemp("browser") / "build")
-    run_report(root, ReportSettings(probe_half_size=32, probe_spacing=64))
+    run_report(root, ReportSettings(probe_half_size=32, probe_spacing=64, probe_neighbourhood=1))
     return root / "qc" / "report.html"
 
 

@@ -22,8 +22,10 @@ from qc_builders import (CENTRE, PLANT_ANGLE, PLANT_ROT_SECTION, PLANT_SHIFT, PL
 @pytest.fixture(scope="module")
 def planted(tmp_path_factory):
     root = make_build(tmp_path_factory.mktemp("qc") / "build")
-    # a 512 px plane holds only a few default-sized probe blocks (129 px): smaller ones here
-    doc, meas = collect(root, ReportSettings(probe_half_size=32, probe_spacing=64))
+    # a 512 px plane holds only a few default-sized probe blocks (129 px): smaller ones here, and no
+    # 3 x 3 block median (its 200 px tiles hold about 2 x 2 blocks, so the median would erase a
+    # tile-sized error; production tiles hold tens of blocks across)
+    doc, meas = collect(root, ReportSettings(probe_half_size=32, probe_spacing=64, probe_neighbourhood=1))
     return root, doc, meas
 
 

@@ -30,7 +30,7 @@ _IMG_SRC = re.compile(r'<img[^>]*\ssrc="([^"]*)"', re.S)
 def report(tmp_path_factory):
     # No volume.zarr: the report must measure the renderer's lazy volume.
     root = make_build(tmp_path_factory.mktemp("qcr") / "build", volume=False, odd_name=True)
-    verdict = run_report(root, ReportSettings(probe_half_size=32, probe_spacing=64), fail_on=["flagged>0"])
+    verdict = run_report(root, ReportSettings(probe_half_size=32, probe_spacing=64, probe_neighbourhood=1), fail_on=["flagged>0"])
     return root, verdict
 
 

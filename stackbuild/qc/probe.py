@@ -118,6 +118,8 @@ def probe_region(job: RegionJob) -> dict:
         shifts_arr = np.stack(shifts)
     jit = block_jitter(np.asarray(zs, float), np.asarray(la, int), np.asarray(lb, int), shifts_arr,
                        window=st.slow_window) if la else None
+    if jit is not None and st.probe_neighbourhood > 1:
+        jit.jitter = _spatial_median(jit.jitter, gx.shape, st.probe_neighbourhood)
     pts0 = source.to_level0(pts)
     out = {"box": [float(v) for v in (*source.to_level0([[x0, y0]])[0], *source.to_level0([[x1 - 1, y1 - 1]])[0])],
            "z": zs, "blocks": len(pts), "sigma": None if jit is None or not np.isfinite(jit.sigma) else jit.sigma}
@@ -131,6 +133,29 @@ def probe_region(job: RegionJob) -> dict:
     out["links"] = _link_rows(la, lb, zs, shifts_arr, conf)
     out["sample"] = _sample_rows(zs, pts0, jit, shifts_arr, la, lb, st.blocks_per_region)
     return out
+
+
+def _spatial_median(jitter: np.ndarray, grid: tuple[int, int], size: int) -> np.ndarray:
+    """Return the jitter with each block replaced by the component-wise median of its ``size x size`` neighbours.
+
+    Alignment errors are smooth over several blocks (and a misplaced tile covers several); a
+    single block that follows content of its own (an organelle ending, a false match that the
+    chain could not reject) is not an alignment error. NaN (unmeasured) blocks are skipped.
+    """
+    import warnings
+
+    from scipy import ndimage
+
+    z, b, _ = jitter.shape
+    cube = jitter.reshape(z, grid[0], grid[1], 2)
+    out = np.empty_like(cube)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # an all-NaN neighbourhood gives NaN, as it should
+        for c in range(2):
+            out[..., c] = ndimage.generic_filter(cube[..., c], np.nanmedian, size=(1, size, size),
+                                                 mode="constant", cval=np.nan)
+    out[np.isnan(cube)] = np.nan
+    return out.reshape(z, b, 2)
 
 
 def _coarse_offsets(fixed, moving, pts, half: int, reach: float, min_ncc: float, factor: int = 4) -> np.ndarray:

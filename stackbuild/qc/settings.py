@@ -40,6 +40,10 @@ class ReportSettings:
     probe_reach : int
         A first pass on 4x reduced blocks finds shifts up to this (full-resolution pixels);
         the fine match then searches ``probe_max_shift`` around it.
+    probe_neighbourhood : int
+        Each block's estimated error is the median over this many x this many neighbouring
+        blocks (1: none): errors of the alignment are smooth over several blocks, a block
+        following content of its own is not.
     probe_fine_sigma : float
         Band-pass of the probe, fine side: Gaussian sigma (full-resolution pixels) that removes
         what does not persist between sections (noise, vesicle-sized dots, cytoplasm texture).
@@ -86,6 +90,7 @@ class ReportSettings:
     probe_half_size: int = 64
     probe_max_shift: int = 12
     probe_reach: int = 64
+    probe_neighbourhood: int = 3
     probe_fine_sigma: float = 3.0
     probe_coarse_sigma: float = 16.0
     probe_min_confidence: float = 0.5

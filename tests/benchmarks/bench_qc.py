@@ -1,17 +1,28 @@
-"""Speed of the quality measurements, as ratios measured side by side in one run.
+"""Quality control measured side by side: agreement with ground truth, memory, CPU, size of metrics.json.
 
-* NCC block matching (``stackbuild.qc.blockmatch.match_blocks``) against
-  scikit-image's ``phase_cross_correlation`` (upsample 20) on the same blocks;
-* the whole report on the planted test build (volume.zarr, then lazy volume).
+``--agreement``  per-section ``align_error_px`` against the identifiable residual
+                 (:func:`stackbuild.synth.residual.identifiable_residual`) on 3 seeds of
+                 each phantom family; pass = within 30 % or 0.3 px (the larger) for
+                 >= 90 % of sections, and the truly worst section among the two worst
+                 estimates (issue 14).
+``--memory``     peak memory and CPU of the report stage on sections of 3 x 3 and 7 x 7
+                 tiles of 1024 px (same stack otherwise), and the render stage's CPU
+                 on the same volumes, each in its own process.
+``--json-size``  metrics.json of 400 sections x 1000 tiles, from a real document's
+                 per-section rows (tiles and pairs go to CSV only).
+(no option)      the probe matcher beside skimage's phase_cross_correlation.
 
-Run: ``python tests/benchmarks/bench_qc.py`` (modest size) or ``--full``
-(a 4096 px plane pair).
+Run: ``python tests/benchmarks/bench_qc.py --agreement --memory --json-size``
+(``--sections N`` and ``--seeds K`` shrink or grow the agreement stacks; builds are
+kept under ``--work``).
 """
 from __future__ import annotations
 
 import argparse
+import json
+import resource
+import subprocess
 import sys
-import tempfile
 import time
 from pathlib import Path
 
@@ -21,59 +32,148 @@ from skimage import data
 from skimage.registration import phase_cross_correlation
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from stackbuild.qc.blockmatch import match_blocks  # noqa: E402
-from stackbuild.qc.report import run_report  # noqa: E402
-from stackbuild.qc.settings import ReportSettings  # noqa: E402
-from test_qc_synthbuild import make_build  # noqa: E402
+from stackbuild.qc.subpixel import bandpass, match_points  # noqa: E402
 
 
-def _planes(size: int) -> tuple[np.ndarray, np.ndarray]:
-    base = data.gravel().astype(np.float32)
-    reps = -(-size // base.shape[0])
-    big = np.tile(base, (reps, reps))[:size, :size]
-    return big, ndimage.shift(big, (0.7, -1.4), order=1, mode="nearest")
-
-
-def bench_blocks(size: int) -> None:
-    a, b = _planes(size)
-    radius, search, spacing = 24, 16, 96
+def bench_matcher() -> None:
+    """Probe matcher vs skimage phase_cross_correlation (upsample 20) on shifted skimage.data.camera."""
+    img = data.camera().astype(np.float32)
+    true = np.array([1.3, -0.6])
+    moved = ndimage.shift(img, (true[1], true[0]), order=3, mode="reflect")
+    pts = np.array([(x, y) for x in range(96, 430, 32) for y in range(96, 430, 32)])
     t0 = time.perf_counter()
-    m = match_blocks(a, b, spacing=spacing, radius=radius, search=search)
-    t_ncc = time.perf_counter() - t0
+    s, _ = match_points(bandpass(img, 1.5, 12), bandpass(moved, 1.5, 12), pts, half=24, search=6, min_ncc=0.3)
+    t_ours = time.perf_counter() - t0
     t0 = time.perf_counter()
-    for x, y in m.points.astype(int):
-        phase_cross_correlation(a[y - radius:y + radius + 1, x - radius:x + radius + 1],
-                                b[y - radius:y + radius + 1, x - radius:x + radius + 1], upsample_factor=20)
-    t_pcc = time.perf_counter() - t0
-    n = len(m.ncc)
-    print(f"blocks: {n} on a {size} px plane pair")
-    print(f"  match_blocks (NCC, search +-{search}px): {n / t_ncc:8.0f} blocks/s")
-    print(f"  skimage phase_cross_correlation       : {n / t_pcc:8.0f} blocks/s")
-    print(f"  ratio NCC / PCC speed                 : {t_pcc / t_ncc:8.2f}")
-    err = np.median(np.abs(m.shifts - [-1.4, 0.7]), axis=0)
-    print(f"  median |error| of NCC shifts (x, y)   : {err[0]:.3f}, {err[1]:.3f} px")
+    ref = []
+    for x, y in pts:
+        sh, _, _ = phase_cross_correlation(img[y - 24:y + 25, x - 24:x + 25], moved[y - 24:y + 25, x - 24:x + 25],
+                                           upsample_factor=20)
+        ref.append((-sh[1], -sh[0]))
+    t_ref = time.perf_counter() - t0
+    ok = np.isfinite(s[:, 0])
+    print(f"matcher: {len(pts)} blocks; ours {len(pts) / t_ours:.0f} blocks/s, RMS error "
+          f"{np.sqrt(((s[ok] - true) ** 2).sum(1).mean()):.3f} px; phase_cross_correlation "
+          f"{len(pts) / t_ref:.0f} blocks/s, RMS error {np.sqrt(((np.array(ref) - true) ** 2).sum(1).mean()):.3f} px")
 
 
-def bench_report() -> None:
-    with tempfile.TemporaryDirectory() as tmp:
-        written = make_build(Path(tmp) / "w")
-        lazy = make_build(Path(tmp) / "l", volume=False)
-        t0 = time.perf_counter()
-        run_report(written, ReportSettings())
-        t_w = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        run_report(lazy, ReportSettings())
-        t_l = time.perf_counter() - t0
-    print(f"report, 5 x 512 px planes: written volume {t_w:.2f} s, lazy volume {t_l:.2f} s "
-          f"(ratio {t_l / t_w:.2f})")
+def _run(cmd: list[str]) -> tuple[float, float, int]:
+    """Run a command in a child; return wall s, CPU s (user + sys of it and its children) and peak RSS (kB)."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    t0 = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True)
+    wall = time.perf_counter() - t0
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if proc.returncode not in (0, 3):
+        raise RuntimeError(f"{' '.join(cmd)} failed: {proc.stderr[-2000:]}")
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return wall, cpu, after.ru_maxrss
+
+
+def _build(work: Path, params) -> Path:
+    from stackbuild.synth import generate
+
+    data_dir, out = work / "data", work / "build"
+    if not (out / "volume.zarr").exists():
+        generate(data_dir, params)
+        subprocess.run(["stackbuild", "build", str(data_dir / "tiles.csv"), "--out", str(out), "--quiet",
+                        "--workers", "1", "--overwrite"], capture_output=True)
+    if not (out / "volume.zarr").exists():
+        raise RuntimeError(f"build of {work} wrote no volume")
+    return out
+
+
+_REPORT = ("import sys, resource; from stackbuild.qc.report import run_report; "
+           "from stackbuild.config import load_config; from stackbuild.folder import BuildFolder; "
+           "b = BuildFolder(sys.argv[1]); run_report(b.root, b.config.report); "
+           "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)")
+
+
+def bench_memory(work: Path, sections: int) -> None:
+    """Report peak RSS and CPU at 3 x 3 and 7 x 7 tiles of 1024 px, beside render CPU on the same volume."""
+    from stackbuild.synth.variants import variant_params
+
+    rows = []
+    for grid in (3, 7):
+        out = _build(work / f"mem{grid}", variant_params("standard", "base", 0, sections=sections,
+                                                         grid=(grid, grid), tile_size=1024))
+        # the report in one process (its region and seam tasks run in it): its peak is the largest task
+        # plus the driver
+        proc = subprocess.run([sys.executable, "-c", _REPORT, str(out)], capture_output=True, text=True)
+        if proc.returncode:
+            raise RuntimeError(proc.stderr[-2000:])
+        rss = int(proc.stdout.split()[-1])
+        _, cpu_report, _ = _run([sys.executable, "-c", _REPORT, str(out)])
+        _, cpu_render, _ = _run(["stackbuild", "render", str(out), "--overwrite", "--workers", "1", "--quiet"])
+        rows.append((grid, rss / 1024, cpu_report, cpu_render))
+    for grid, mb, rep, ren in rows:
+        print(f"{grid} x {grid} tiles of 1024 px, {sections} sections: report peak {mb:.0f} MB, report CPU "
+              f"{rep:.1f} s, render CPU {ren:.1f} s, ratio report/render {rep / ren:.2f}")
+    print(f"peak memory 7x7 / 3x3: {rows[1][1] / rows[0][1]:.2f} (bar: <= 1.3)")
+
+
+def bench_json_size(work: Path) -> None:
+    """Estimate metrics.json for 400 sections x 1000 tiles from a real document's per-section rows."""
+    docs = sorted(work.glob("*/build/qc/metrics.json")) or sorted(Path("/tmp").glob("**/qc/metrics.json"))
+    if not docs:
+        print("json size: no metrics.json found; run --agreement first")
+        return
+    doc = json.loads(docs[0].read_text())
+    per_section = np.mean([len(json.dumps(r, indent=1)) for r in doc["sections"]])
+    fixed = len(json.dumps({k: v for k, v in doc.items() if k not in ("sections", "flagged_tiles")}, indent=1))
+    flagged = 1000 * 600  # the flagged-tile list is capped at 1000 rows of about 600 bytes
+    total = 400 * per_section + fixed + flagged
+    print(f"metrics.json: {per_section:.0f} B per section (from {docs[0]}); 400 sections x 1000 tiles -> "
+          f"{total / 1e6:.1f} MB (bar < 50 MB; tiles and pairs are in CSV only)")
+
+
+def bench_agreement(work: Path, sections: int, seeds: int) -> None:
+    from stackbuild.qc.metrics import collect
+    from stackbuild.qc.settings import ReportSettings
+    from stackbuild.synth.residual import identifiable_residual
+    from stackbuild.synth.variants import variant_params
+
+    for family in ("standard", "realistic"):
+        agree = total = top2 = 0
+        for seed in range(seeds):
+            root = work / f"{family}-base-{seed}"
+            out = _build(root, variant_params(family, "base", seed, sections=sections))
+            truth = identifiable_residual(out, root / "data")
+            doc, _ = collect(out, ReportSettings())
+            est = {r["section"]: r["align_error_px"] for r in doc["sections"]}
+            pairs = [(s, v["rms"], est.get(s)) for s, v in truth.per_section.items()]
+            ok = [e is not None and abs(e - t) <= max(0.3 * t, 0.3) for s, t, e in pairs]
+            worst = max(pairs, key=lambda p: p[1])[0]
+            ranked = [p[0] for p in sorted((p for p in pairs if p[2] is not None), key=lambda p: -p[2])[:2]]
+            agree += sum(ok)
+            total += len(ok)
+            top2 += worst in ranked
+            print(f"{family} seed {seed}: truth RMS {truth.rms:.2f} px; within tolerance {sum(ok)}/{len(ok)}; "
+                  f"truly worst section {worst} among the estimate's two worst: {worst in ranked}")
+            print("   section: true / estimated px  " + "  ".join(
+                f"{s}: {t:.2f}/{'-' if e is None else f'{e:.2f}'}" for s, t, e in pairs))
+        print(f"{family}: {agree}/{total} sections within tolerance ({100 * agree / max(total, 1):.0f} %, bar 90 %); "
+              f"worst in top two on {top2}/{seeds} seeds")
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--full", action="store_true", help="use a 4096 px plane pair")
+    ap.add_argument("--agreement", action="store_true")
+    ap.add_argument("--memory", action="store_true")
+    ap.add_argument("--json-size", action="store_true")
+    ap.add_argument("--sections", type=int, default=8)
+    ap.add_argument("--seeds", type=int, default=3)
+    ap.add_argument("--work", default="/tmp/bench_qc")
     args = ap.parse_args()
-    bench_blocks(4096 if args.full else 1024)
-    bench_report()
+    work = Path(args.work)
+    work.mkdir(parents=True, exist_ok=True)
+    bench_matcher()
+    if args.agreement:
+        bench_agreement(work, args.sections, args.seeds)
+    if args.memory:
+        bench_memory(work, 4)
+    if args.json_size:
+        bench_json_size(work)
 
 
 if __name__ == "__main__":

@@ -308,28 +308,35 @@ def _align(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
     before, store = _before_store(build, plan), build.store
     old = {s: a for s in new if (a := before.load_alignment(s)) is not None}
     bboxes = {s: store.load_stitch(s).bbox() for s in new}
-    # Every section that had an alignment keeps it while the re-solve stays within the tolerance: the
-    # re-imaged tiles were placed in their section's old frame, so its old alignment still holds.
-    keep, facts = hold_alignments(old, new, bboxes, set(), plan.hold_within)
+    # Re-imaged tiles were placed in their section's old frame, so its old alignment still holds unless
+    # the re-solve moves it beyond the tolerance; untouched sections are held (no pixel of theirs may
+    # change), except, when sections are appended, the existing ones the new ones are matched to.
+    changed = {int(k) for k in plan.replaced}
+    untouched = {s for s in old if s not in changed}
+    near_new = {s for s in old if any(0 < a - s <= build.config.align.neighbours for a in plan.added)}
+    keep, facts = hold_alignments(old, new, bboxes, fit_on=untouched or set(old),
+                                  movable=changed | near_new, tolerance=plan.hold_within)
     for s, rec in keep.items():
         if not _same_alignment(store.load_alignment(s), rec):
             store.save_alignment(rec)
     _killed_here("align")
-    moved = facts["moved_px"]
+    moved = {s: v for s, v in facts["moved_px"].items() if s not in changed}
     plan.facts["align"] = {"realigned": facts["realigned"], "frame_rms_px": facts["frame_rms_px"],
                            "largest_untouched_move_px": max(moved.values(), default=0.0),
-                           "moved_beyond_tolerance": sorted(s for s, v in moved.items() if v > plan.hold_within),
+                           "moved_px": {str(s): round(v, 3) for s, v in sorted(facts["moved_px"].items())},
+                           "moved_beyond_tolerance": sorted(s for s, v in facts["moved_px"].items()
+                                                            if v > plan.hold_within),
                            "window": sorted(new)}
 
 
 def _window(sections: list[int], changed: list[int], neighbours: int) -> list[int]:
-    """Return the sections aligned again: each changed one and ``neighbours + 1`` stitched sections each side.
+    """Return the sections solved again: each changed one and ``neighbours + 1`` stitched sections each side.
 
     The sections around a changed one anchor it (their alignments are held; see
     :func:`stackbuild.transforms.hold.hold_alignments`), so the rest of the stack is not solved again.
     """
     have = sorted(sections)
-    reach = max(2, neighbours + 1)
+    reach = neighbours + 1
     keep = set()
     for s in changed:
         if s not in have:
@@ -536,9 +543,9 @@ def summary_lines(plan: UpdatePlan, verdict) -> list[str]:
                  f"tiles held (a free re-solve would have moved them up to {max(moved, default=0.0):.2f} px)")
     a = f.get("align", {})
     lines.append(f"  align: sections {a.get('window', [])} solved again, {len(a.get('realigned', []))} re-aligned "
-                 f"{a.get('realigned', [])}; "
-                 f"existing sections moved up to {a.get('largest_untouched_move_px', 0.0):.2f} px "
-                 f"(kept when <= {plan.hold_within:g} px; beyond it: {a.get('moved_beyond_tolerance') or 'none'})")
+                 f"{a.get('realigned', [])}; the re-solve would move untouched sections up to "
+                 f"{a.get('largest_untouched_move_px', 0.0):.2f} px (held; re-imaged"
+                 f"{' and neighbouring' if plan.added else ''} sections re-aligned beyond {plan.hold_within:g} px)")
     r = f.get("render", {})
     if r.get("full"):
         lines.append(f"  render: the canvas origin moved, every plane rendered again ({len(r.get('planes', []))})")

@@ -160,7 +160,8 @@ def reframe(alignment: SectionAlignment, to_new: Affine2D) -> SectionAlignment:
 
 
 def hold_alignments(old: dict[int, SectionAlignment], new: dict[int, SectionAlignment],
-                    bboxes: dict[int, tuple], changed: set[int], tolerance: float) -> tuple[dict, dict]:
+                    bboxes: dict[int, tuple], *, fit_on: set[int], movable: set[int],
+                    tolerance: float) -> tuple[dict, dict]:
     """Return the alignments to keep after a re-solve, in the old aligned frame, and facts.
 
     Parameters
@@ -168,24 +169,28 @@ def hold_alignments(old: dict[int, SectionAlignment], new: dict[int, SectionAlig
     old : dict
         Section -> alignment before the update (sections without one are new).
     new : dict
-        Section -> alignment from the re-solve of the whole stack.
+        Section -> alignment from the re-solve (of the stack, or of a window of it).
     bboxes : dict
         Section -> section-frame extent ``(x0, y0, x1, y1)`` (where to compare the maps).
-    changed : set of int
-        Sections whose tiles changed or that are new: always take the re-solved alignment.
+    fit_on : set of int
+        Sections whose old and new alignments define the frame change (an affine, least squares).
+    movable : set of int
+        Sections with an old alignment that take the re-solved one when it moves one of their
+        points by more than ``tolerance``; every other section with an old alignment keeps it.
+        New sections (no old alignment) always take the re-solved one.
     tolerance : float
-        An untouched section keeps its old record unless the re-expressed re-solve moves one
-        of its points by more than this many section pixels.
+        Section pixels.
 
     Returns
     -------
     alignments : dict
         Section -> alignment to store (the old record object itself for held sections).
     facts : dict
-        ``moved_px`` per untouched section (after removing the frame change), ``realigned``
-        (sections whose record changes), ``frame_rms_px`` (fit residual of the frame change).
+        ``moved_px``: per section with an old alignment, how far the re-solve (in the old frame)
+        would move it; ``realigned``: sections whose record changes; ``frame_rms_px``: residual of
+        the frame-change fit.
     """
-    anchors = [s for s in new if s in old and s not in changed]
+    anchors = [s for s in new if s in old and s in fit_on]
     to_new = Affine2D.identity()
     fit_rms = 0.0
     if anchors:
@@ -200,11 +205,11 @@ def hold_alignments(old: dict[int, SectionAlignment], new: dict[int, SectionAlig
     out, moved, realigned = {}, {}, []
     for s, rec in new.items():
         framed = reframe(rec, to_new)
-        if s in anchors:
+        if s in old:
             pts = section_to_aligned(old[s], _grid(bboxes[s]))
             dist = float(np.hypot(*(framed.aligned_to_section(pts) - old[s].aligned_to_section(pts)).T).max())
             moved[s] = dist
-            if dist <= tolerance:
+            if s not in movable or dist <= tolerance:
                 out[s] = old[s]
                 continue
         out[s] = framed

@@ -213,7 +213,7 @@ def test_section_split_into_two_groups_keeps_each_groups_level(tmp_path):
     # every pair across the split is registered and rejected, so the section
     # falls into two groups no accepted pair joins. Issue #12: neither group's
     # median grey moves by more than 5 % from its raw tiles'.
-    grid = {**BASE, "grid": (2, 3), "dtype": "uint16"}
+    grid = {**BASE, "grid": (2, 3), "dtype": "uint16", "tile_size": 384}
     generate(tmp_path / "a", SynthParams(**grid, seed=4))
     generate(tmp_path / "b", SynthParams(**grid, seed=9))
     for r in range(2):

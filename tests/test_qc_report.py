@@ -146,3 +146,13 @@ def test_report_renders_in_headless_chromium(report, tmp_path):
         assert std > 5
     assert "FAILED" in dom and "Worst sections" in dom
     shutil.copy(shot, root / "qc" / "browser_shot.png")  # kept for a human look
+
+
+def test_lossy_tiles_and_unmeasured_sections_are_warned_about():
+    from stackbuild.qc.report import warnings_of
+
+    doc = {"flagged_tiles": [{"section": 4, "tile": "r0c0", "flags": ["lossy_compression"]}],
+           "sections": [{"section": 4, "flags": ["lossy_tiles"]}, {"section": 5, "flags": ["not_measured"]}]}
+    got = warnings_of(doc)
+    assert any("lossy-compressed tiles in section(s) 4" in w for w in got)
+    assert any("not measured on section(s) 5" in w for w in got)

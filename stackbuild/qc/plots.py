@@ -124,7 +124,7 @@ def tile_maps(stitches: dict, tile_rows: list[dict], pair_rows: list[dict], sect
     return fig
 
 
-def displacement_field(section: int, field, origin_out=(0.0, 0.0)):
+def displacement_field(section: int, field, origin_out=(0.0, 0.0), px_nm: float | None = None):
     """Return the magnitude map and arrows of a section's elastic displacement field."""
     fig, ax = plt.subplots(figsize=(6.5, 5.2))
     if field is None:
@@ -141,6 +141,8 @@ def displacement_field(section: int, field, origin_out=(0.0, 0.0)):
     ax.quiver(*np.meshgrid(xs, ys), v[..., 0], v[..., 1], color="white", angles="xy",
               scale_units="xy", scale=max(float(mag.max()), 1e-6) / (0.8 * field.spacing), width=0.004)
     fig.colorbar(im, ax=ax, label="displacement (px)")
+    if px_nm:
+        scale_bar(ax, px_nm, xs[-1] - xs[0] + field.spacing)
     ax.set_xlabel("x (output px)")
     ax.set_ylabel("y (output px)")
     ax.set_title(f"Elastic displacement, section {section} (arrows to scale of the largest)", color=INK)

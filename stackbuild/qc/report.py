@@ -43,12 +43,15 @@ class Verdict:
     missed_bars : list of str
         The failures among the ``fail_on`` expressions alone (what a batch
         script asked to be checked; the CLI's exit status follows these).
+    warnings : list of str
+        What a reader must know although no bar fails (lossy-compressed tiles, unmeasured sections).
     """
 
     passed: bool
     failures: list[str] = field(default_factory=list)
     paths: list[Path] = field(default_factory=list)
     missed_bars: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
 
 
 def _thresholds(settings: ReportSettings, fail_on) -> list[Threshold]:
@@ -91,7 +94,7 @@ def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> 
         al = store.load_alignment(pick["section"])
         canvas = store.load_canvas()
         org = (canvas.origin_x, canvas.origin_y) if canvas else (0.0, 0.0)
-        fig = plots.displacement_field(pick["section"], al.displacement if al else None, org)
+        fig = plots.displacement_field(pick["section"], al.displacement if al else None, org, px)
         out.append((f"Elastic displacement of section {pick['section']}", plots.save(fig, qc / "displacement.png")))
     src = open_planes(folder.root, max_px=settings.reslice_px)
     worst = doc["worst"]["section_align"]
@@ -213,7 +216,8 @@ td,th{border:1px solid #d8d2c4;padding:3px 8px;text-align:right} th{background:#
 td.t{text-align:left} tr.bad td{background:#f6d9d0}
 .thumb{display:block;height:56px} .ebar{display:inline-block;height:10px;background:#2a9d8f;vertical-align:middle}
 .ebar.over{background:#c8553d} .flag{display:inline-block;background:#efe9dc;border-radius:3px;padding:0 4px;
-margin:1px;font-size:11px} ul.why{color:#c8553d;font-weight:bold} table.strip td{padding:1px 6px}
+margin:1px;font-size:11px} ul.why{color:#c8553d;font-weight:bold}
+p.warn{color:#8a5a00;background:#fbecc8;padding:4px 8px;border-radius:3px;display:inline-block;margin:2px 0} table.strip td{padding:1px 6px}
 figure{margin:14px 0} figure img{max-width:100%;border:1px solid #d8d2c4;background:#fff}
 figcaption{font-size:13px;margin-top:4px} .small{font-size:12px;color:#5b6770}
 """
@@ -423,7 +427,8 @@ def render_html(doc: dict, verdict_rows: list[dict], passed: bool, figures, sett
     return (f"<!DOCTYPE html><html lang=en><head><meta charset=utf-8><title>stackbuild quality report</title>"
             f"<style>{_CSS}</style></head><body>"
             f"<h1>Volume quality report</h1>{badge}"
-            + (f"<ul class=why>{why}</ul>" if why else "<p class=small>every bar is met</p>") +
+            + (f"<ul class=why>{why}</ul>" if why else "<p class=small>every bar is met</p>")
+            + "".join(f"<p class=warn>warning: {html.escape(w)}</p>" for w in doc.get("warnings") or []) +
             f"<div class=small>{html.escape(doc['build'])} &middot; {when} &middot; "
             f"{vol['depth'] or '-'} planes of {vol['width'] or '-'} x {vol['height'] or '-'} px, "
             f"{_fmt(vol['pixel_size_nm'])} nm/px, {_fmt(vol['section_thickness_nm'])} nm sections &middot; "
@@ -437,6 +442,25 @@ def render_html(doc: dict, verdict_rows: list[dict], passed: bool, figures, sett
             "what no image can show: a steady slant or slow bend of the whole stack, or oblique structure "
             "straightened by the aligner.</p>"
             f"{_provenance(doc)}</body></html>")
+
+
+def warnings_of(doc: dict) -> list[str]:
+    """Return the warnings shown under the verdict and on the terminal (no bar needed to raise them)."""
+    out = []
+    lossy = [t for t in doc.get("flagged_tiles") or doc.get("tiles") or [] if "lossy_compression" in t["flags"]]
+    lossy_secs = sorted({r["section"] for r in doc["sections"] if "lossy_tiles" in r["flags"]}
+                        | {t["section"] for t in lossy})
+    if lossy_secs:
+        out.append(f"lossy-compressed tiles in section(s) {', '.join(map(str, lossy_secs[:20]))}"
+                   f"{' ...' if len(lossy_secs) > 20 else ''}: fine detail may be altered by the compression")
+    unmeasured = [r["section"] for r in doc["sections"] if "not_measured" in r["flags"]]
+    if unmeasured:
+        out.append(f"alignment error not measured on section(s) {', '.join(map(str, unmeasured[:20]))}")
+    beyond = [r["section"] for r in doc["sections"] if "beyond_probe_reach" in r["flags"]]
+    if beyond:
+        out.append(f"section(s) {', '.join(map(str, beyond[:20]))} moved beyond the probe's reach: "
+                   "their error is only known to be at least probe_reach")
+    return out
 
 
 def _sha256(path: Path) -> str | None:
@@ -528,6 +552,7 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     passed, failures, rows = judge(doc, thresholds)
     doc["verdict"] = {"passed": passed, "failures": failures, "thresholds": rows}
     doc["provenance"] = provenance(folder, settings, doc)
+    doc["warnings"] = warnings_of(doc)
     figures = _figures(folder, doc, meas, settings)
     thumbs, bar_nm = _thumbnails(folder, doc)
     paths = write_metrics(doc, folder.qc_dir, meas) + [p for _, p in figures]
@@ -536,7 +561,7 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     asked = set(parse_fail_on_list([t for t in (fail_on or []) if not isinstance(t, Threshold)])
                 + [t for t in (fail_on or []) if isinstance(t, Threshold)])
     _, missed, _ = judge(doc, [t for t in thresholds if t in asked])
-    return Verdict(passed, failures, paths + [page], missed)
+    return Verdict(passed, failures, paths + [page], missed, doc["warnings"])
 
 
 def stored_metrics_stale(build_dir) -> str | None:
@@ -585,4 +610,4 @@ def recheck(build_dir, settings: ReportSettings, fail_on: list[str] | None) -> V
     passed, failures, _ = judge(doc, thresholds)
     asked = set(parse_fail_on_list([t for t in (fail_on or []) if not isinstance(t, Threshold)]))
     _, missed, _ = judge(doc, [t for t in thresholds if t in asked])
-    return Verdict(passed, failures, [], missed)
+    return Verdict(passed, failures, [], missed, list(doc.get("warnings") or []))

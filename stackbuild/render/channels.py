@@ -20,13 +20,14 @@ from __future__ import annotations
 
 import shutil
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 import cv2
 import numpy as np
 import tifffile
 import zarr
-from zarr.codecs import BloscCodec
+from dask import delayed
 
 from ..errors import InputError
 from ..manifest import image_header
@@ -35,18 +36,14 @@ from .ngff import multiscales_attrs, root_attrs
 from .reduce import level_shapes, reduce2x2, reduced_size
 from .fingerprint import channel_fingerprints, discard_plane, read_plane_record, write_plane_record
 from .swap import incoming_path, swap_in
+from .pyramid import compute_each
 from .settings import check_settings
+from .write import _create_arrays
 from ..transforms.records import Canvas, SectionAlignment
+from ..transforms.store import TransformStore
 from ..channels.stage import DOC_KIND, channel_affine, channel_level, channel_records, channel_table
 
 _ROWS = 1024  # output rows resampled at a time
-
-
-def _compressors(settings):
-    """Return the EM's codec chain (Blosc, as :mod:`stackbuild.render.write` uses), or None."""
-    if settings.codec == "none":
-        return None
-    return [BloscCodec(cname=settings.codec, clevel=settings.clevel, shuffle="shuffle")]
 
 
 def resample_channel(image: np.ndarray, to_section_inv, alignment: SectionAlignment | None,
@@ -98,8 +95,50 @@ def _level0_shape(canvas: Canvas, level: int) -> tuple[int, int]:
     return h, w
 
 
+@dataclass(frozen=True)
+class _PlaneJob:
+    """One marker plane to write at every level (small: paths, a record, the canvas)."""
+
+    target: str
+    z: int
+    rec: dict | None
+    store: str
+    canvas: Canvas
+    level: int
+    shapes: tuple
+    dtype: str
+    reducer: str
+    fresh: bool
+
+
+def write_marker_plane(job: _PlaneJob) -> int:
+    """Resample one section's marker image and write its plane at every level of the pyramid; return ``z``.
+
+    A task holds one plane of the channel at its level 0 (EM level ``job.level``).
+    """
+    arrays = [zarr.open_array(str(Path(job.target) / str(n)), mode="r+") for n in range(len(job.shapes))]
+    dtype = np.dtype(job.dtype)
+    s = job.canvas.first_section + job.z
+    rec = job.rec
+    if rec is None or {"blank", "too_small"} & set(rec["flags"]):
+        if not job.fresh:  # a new array already reads as zeros
+            for n, arr in enumerate(arrays):
+                arr[job.z] = np.zeros(job.shapes[n], dtype)
+        return job.z
+    alignment = TransformStore(job.store).load_alignment(s)
+    img = resample_channel(read_marker(rec["path"], s), channel_affine(rec).inverse(), alignment,
+                           job.canvas, job.level, job.shapes[0])
+    info = np.iinfo(dtype)
+    plane = np.clip(np.rint(img), info.min, info.max).astype(dtype)
+    for n, arr in enumerate(arrays):
+        if n:
+            plane = reduce2x2(plane, job.reducer)
+        arr[job.z] = plane
+    return job.z
+
+
 def _write_channel(folder, name, recs, canvas, settings, progress, done_before, total,
-                   overwrite: bool = False) -> dict:
+                   overwrite: bool = False, mapper=None) -> dict:
     """Write the stale planes of one channel's pyramid (all of them into a new pyramid if its layout changed)."""
     level, _ = channel_records(folder, name, canvas)
     shapes = level_shapes(*_level0_shape(canvas, level), settings.chunk)
@@ -122,21 +161,11 @@ def _write_channel(folder, name, recs, canvas, settings, progress, done_before, 
     target = incoming_path(folder, f"channels/{name}") if fresh and (path / "zarr.json").exists() else path
     if fresh:
         shutil.rmtree(target, ignore_errors=True)
-        group = zarr.open_group(str(target), mode="w", zarr_format=3, attributes=attrs)
-        arrays = []
-        for n, (h, w) in enumerate(shapes):
-            shards = None if settings.shard == 1 else (1, settings.chunk * settings.shard,
-                                                        settings.chunk * settings.shard)
-            arrays.append(group.create_array(str(n), shape=(canvas.depth, h, w), dtype=dtype,
-                                             chunks=(1, settings.chunk, settings.chunk), shards=shards,
-                                             compressors=_compressors(settings), fill_value=0,
-                                             dimension_names=["z", "y", "x"]))
+        _create_arrays(target, shapes, canvas.depth, settings, dtype.name, attrs)
         done, damaged = {}, {}
         todo = list(range(canvas.depth))
     else:
-        group = zarr.open_group(str(target), mode="r+")
-        group.update_attributes(attrs)
-        arrays = [group[str(n)] for n in range(len(shapes))]
+        zarr.open_group(str(target), mode="r+").update_attributes(attrs)
         todo = [z for z in range(canvas.depth) if str(z) in doc["damaged"]
                 or doc["fingerprints"].get(str(z)) != fps[z]]
         done = {int(z): fp for z, fp in doc["fingerprints"].items() if int(z) not in set(todo)}
@@ -145,25 +174,14 @@ def _write_channel(folder, name, recs, canvas, settings, progress, done_before, 
             if str(z) in doc["damaged"]:
                 discard_plane(target, z)
     write_plane_record(target, stamp, done, damaged)
-    info = np.iinfo(dtype)
-    for i, z in enumerate(todo):
-        s = canvas.first_section + z
-        rec = recs.get(s)
-        if rec is None or {"blank", "too_small"} & set(rec["flags"]):
-            if not fresh:  # a new array already reads as zeros
-                for n, arr in enumerate(arrays):
-                    arr[z] = np.zeros(shapes[n], dtype)
-        else:
-            alignment = folder.store.load_alignment(s)
-            img = resample_channel(read_marker(rec["path"], s), channel_affine(rec).inverse(), alignment,
-                                   canvas, level, shapes[0])
-            plane = np.clip(np.rint(img), info.min, info.max).astype(dtype)
-            for n, arr in enumerate(arrays):
-                if n:
-                    plane = reduce2x2(plane, settings.reducer)
-                arr[z] = plane
-        done[z] = fps[z]
+    jobs = [_PlaneJob(str(target), z, recs.get(canvas.first_section + z), str(folder.store.root), canvas, level,
+                      tuple(shapes), dtype.name, settings.reducer, fresh) for z in todo]
+
+    def finish(i: int) -> None:
+        done[todo[i]] = fps[todo[i]]
         write_plane_record(target, stamp, done, damaged)
+
+    compute_each(mapper)([delayed(write_marker_plane, pure=False)(j) for j in jobs], finish)
     if progress is not None:
         progress(done_before + 1, total)
     if target != path:
@@ -181,7 +199,7 @@ def read_marker(path: str, section: int) -> np.ndarray:
                          section=section) from None
 
 
-def render_channels(build_dir, render_settings, *, overwrite: bool = False, progress=None) -> dict:
+def render_channels(build_dir, render_settings, *, overwrite: bool = False, progress=None, mapper=None) -> dict:
     """Write every registered marker channel of a build as OME-Zarr 0.5 beside the EM; return facts.
 
     Parameters
@@ -197,6 +215,9 @@ def render_channels(build_dir, render_settings, *, overwrite: bool = False, prog
         and a pyramid whose layout changed is rendered anew and swapped in.
     progress : callable(done, total), optional
         Called after each channel.
+    mapper : optional
+        The caller's mapper: each plane is one Dask task on its ``compute_each`` (see
+        :func:`stackbuild.render.pyramid.compute_each`); without one, on this process.
 
     Returns
     -------
@@ -231,5 +252,5 @@ def render_channels(build_dir, render_settings, *, overwrite: bool = False, prog
     facts = {}
     for k, (name, recs) in enumerate(sorted(table.items())):
         facts[name] = _write_channel(folder, name, recs, canvas, render_settings, progress, k, total,
-                                     overwrite=overwrite)
+                                     overwrite=overwrite, mapper=mapper)
     return {"channels": facts, "seconds": time.perf_counter() - t0}

@@ -38,4 +38,4 @@ def run_markers(folder: BuildFolder, settings: RenderSettings, *, mapper=None, p
     """Return the facts of the marker-channel pyramids written into ``folder`` (``{}`` for a build without markers)."""
     if not folder.load_state().get("channels"):
         return {}
-    return render_channels(folder.root, settings, overwrite=overwrite, progress=progress)
+    return render_channels(folder.root, settings, overwrite=overwrite, progress=progress, mapper=mapper)

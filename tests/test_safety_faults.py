@@ -195,6 +195,13 @@ def test_refused_render_leaves_build_json_and_build_resume_succeeds(build_copy, 
     line = _one_line(capsys)
     assert "--overwrite" in line and "overwrite=" not in line  # flags as the user types them
     assert (build_copy / "build.json").read_bytes() == state
+    from stackbuild.errors import InputError
+    from stackbuild.folder import BuildFolder
+    from stackbuild.run import stages
+
+    with pytest.raises(InputError, match="--overwrite"):  # the stage itself, as update and build call it
+        stages.render_stage(BuildFolder(build_copy))
+    assert (build_copy / "build.json").read_bytes() == state
     assert main(["render", str(build_copy), "--planes", "99", "--quiet", "--workers", "1"]) == 2
     assert "--planes" in _one_line(capsys)
     assert (build_copy / "build.json").read_bytes() == state
@@ -330,3 +337,24 @@ def test_disk_full_is_one_line_and_resume_completes_once_space_is_freed(small_di
     for n in range(3):
         np.testing.assert_array_equal(zarr.open_array(str(out / "volume.zarr" / "em" / str(n)), mode="r")[...],
                                       zarr.open_array(str(folder.volume_path / "em" / str(n)), mode="r")[...])
+
+
+def test_a_lost_worker_is_one_warning_line(caplog):
+    import time
+
+    from stackbuild.run.cluster import WorkerWatch
+
+    class Scheduler:  # a worker is replaced between two looks, as a nanny restarts a killed one
+        looks = 0
+
+        def scheduler_info(self):
+            self.looks += 1
+            return {"workers": {"tcp://a": {}, "tcp://b": {}} if self.looks < 3 else {"tcp://a": {}, "tcp://c": {}}}
+
+    with caplog.at_level("WARNING", logger="stackbuild.run.cluster"):
+        watch = WorkerWatch(Scheduler(), every=0.01)
+        time.sleep(0.3)
+        watch.stop()
+    assert watch.lost == ["tcp://b"]
+    lines = [r.getMessage() for r in caplog.records]
+    assert len(lines) == 1 and "tcp://b left or was lost" in lines[0]

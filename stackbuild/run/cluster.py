@@ -111,23 +111,37 @@ class WorkerWatch:
     Tasks on a scheduler without workers simply wait, which is right while a cluster's job
     scheduler brings new workers (see ``pipelines/slurm_workers.py``), but looks like a hang
     to whoever watches the build. The warning says so, once per outage.
+
+    A worker that leaves (killed, out of memory, its node lost, its job's walltime over) is
+    one warning line naming it: Dask runs its unfinished tasks again on the others, so the
+    stage carries on; Dask's own multi-line report of it is silenced (see :func:`dask_client`).
     """
 
     def __init__(self, client, patience: float = 60.0, every: float = 5.0):
         self._client, self._patience, self._every = client, patience, every
         self._stop = threading.Event()
         self.warnings = 0
+        self.lost: list[str] = []
         self._thread = threading.Thread(target=self._run, name="stackbuild-worker-watch", daemon=True)
         self._thread.start()
 
     def _run(self) -> None:
         empty_since = None
         warned = False
+        known: set[str] | None = None
         while not self._stop.wait(self._every):
             try:
-                n = len(self._client.scheduler_info().get("workers", {}))
+                workers = set(self._client.scheduler_info().get("workers", {}))
             except Exception:  # the client is closing, or the scheduler is gone: nothing to say here
                 continue
+            for address in sorted((known or set()) - workers):
+                if self._stop.is_set():
+                    break
+                log.warning("Dask worker %s left or was lost; Dask runs its unfinished tasks again on the "
+                            "other workers", address)
+                self.lost.append(address)
+            known = workers
+            n = len(workers)
             if n:
                 empty_since, warned = None, False
                 continue

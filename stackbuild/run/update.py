@@ -55,15 +55,15 @@ class UpdateOutcome:
 
     Attributes
     ----------
-    plan : UpdatePlan
-        The update's record.
+    plan : UpdatePlan or None
+        The update's record (None for an inset, which is added beside the volume).
     lines : list of str
         The summary, one line each (the CLI prints them).
     verdict : object or None
         The report's verdict (None for a dry run).
     """
 
-    plan: UpdatePlan
+    plan: UpdatePlan | None
     lines: list[str] = field(default_factory=list)
     verdict: object | None = None
 
@@ -498,6 +498,14 @@ def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: b
     else:
         if new_tiles is None:
             raise InputError("nothing to resume: every update of this build has finished", file=build.root)
+        from .insets import add_inset, is_inset
+
+        if is_inset(Path(new_tiles), build.config.volume.pixel_size):
+            if dry_run:
+                return UpdateOutcome(None, [f"{new_tiles}: finer tiles; they would be stitched, registered to their "
+                                            "section and written as an inset under volume.zarr/insets/ "
+                                            "(dry run: nothing written)"])
+            return UpdateOutcome(None, add_inset(build, Path(new_tiles)))
         plan, new, text = plan_update(build, Path(new_tiles), append=append, hold_within=hold_within)
         if dry_run:
             return UpdateOutcome(plan, dry_run_lines(plan))

@@ -58,8 +58,30 @@ def _parser() -> argparse.ArgumentParser:
     sub = top.add_subparsers(dest="command", metavar="COMMAND", required=True)
     _add_build(sub)
     _add_stages(sub)
+    _add_plan(sub)
     _add_synth(sub)
     return top
+
+
+def _add_plan(sub) -> None:
+    p = sub.add_parser("plan", help="estimate what a build will cost before starting it (nothing is written)",
+                       description="Print, per stage, the number of tasks, the memory of one task and of the "
+                                   "driver, CPU-hours and bytes read and written, then the output's size and "
+                                   "file count and the wall time on --cores cores. Give a tile manifest, or "
+                                   "describe the volume with --sections, --tiles-per-section and --tile-size. "
+                                   "Costs come from the stages' task graphs and rates measured on a small "
+                                   "build (stackbuild/run/plan_rates.json says where and when).")
+    p.add_argument("tiles", metavar="TILES_CSV", nargs="?",
+                   help="tile manifest (only the CSV and one tile header are read)")
+    p.add_argument("--sections", type=int, metavar="N", help="number of sections (without TILES_CSV)")
+    p.add_argument("--tiles-per-section", type=int, metavar="N", help="tiles per section (without TILES_CSV)")
+    p.add_argument("--tile-size", type=int, metavar="PX", help="tile side in pixels (without TILES_CSV)")
+    p.add_argument("--bits", type=int, choices=(8, 16), default=8, help="bits per pixel (default 8)")
+    p.add_argument("--config", metavar="PIPELINE.toml", help="pipeline settings the build will use")
+    p.add_argument("--cores", type=int, default=2, metavar="N",
+                   help="cores the build will run on, for the wall time (default 2)")
+    p.add_argument("--json", action="store_true", help="write the plan as JSON instead of a table")
+    _add_common(p)
 
 
 def _add_build(sub) -> None:
@@ -482,7 +504,7 @@ def _say(text: str) -> None:
 
 COMMANDS = {"build": _cmd_build, "stitch": _cmd_stitch, "align": _cmd_align, "channels": _cmd_channels,
             "render": _cmd_render,
-            "report": _cmd_report, "update": _cmd_update, "locate": _cmd_locate, "synth": _cmd_synth,
+            "report": _cmd_report, "update": _cmd_update, "locate": _cmd_locate, "synth": _cmd_synth, "plan": _cmd_plan,
             "audit": _cmd_audit}
 
 

@@ -1,0 +1,283 @@
+"""What each stage's tasks hold and do, read off the stages' current code and settings.
+
+For every kind of task a stage runs (one kind per task function), a model gives
+
+* ``count``: how many such tasks the stage's graph has for a :class:`VolumeShape`;
+* ``held``: the bytes of the arrays the task's code keeps at its peak, from the
+  same sizes the stage uses (strips, coarse renders, shards, chunks, caches);
+* ``work``: the quantity its CPU time is proportional to (usually megapixels).
+
+Measured factors (:mod:`stackbuild.run.plan_rates`) turn ``held`` into memory and
+``work`` into CPU seconds. Where a stage runs work in the driver, a kind named
+``<stage>.driver`` models it. A model describes the code as it is: a kind whose
+memory grows with the section says so through its ``held``, and the plan reports it.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+from ..render.reduce import level_shapes
+from .plan_shape import VolumeShape
+
+MB = 1e6
+
+
+@dataclass(frozen=True)
+class Kind:
+    """One kind of task of a stage: how many, what one holds, how much work one does."""
+
+    name: str
+    count: int
+    held: float
+    work: float
+    reads: float = 0.0
+    writes: float = 0.0
+    driver: bool = False
+    fixed: float = 0.0  # bytes held whatever the measured factor (a cache of known size)
+    note: str = ""
+    items: float = 0.0  # things a task handles at a cost each whatever their size (pairs of a section)
+
+
+def _get(settings, name, default):
+    return getattr(settings, name, default)
+
+
+# ----------------------------------------------------------------------- stitch
+def stitch_kinds(shape: VolumeShape, cfg) -> list[Kind]:
+    """One task per section (``stitch/stage.py: _stitch_one``), tiles streamed (``stitch/stream.py``).
+
+    A task holds the strips of the pairs whose second tile is not read yet (tiles are read
+    in bands along the longer side, so about one band of tiles plus one), one tile with its
+    float copies, the strips of the pair being registered, and the illumination thumbnails
+    of at most ``MAX_PROFILE_TILES`` tiles.
+    """
+    from ..stitch.stream import MAX_PROFILE_TILES
+
+    st = cfg.stitch
+    margin = math.ceil(2 * _get(st, "max_stage_error", 50.0))  # pairs are searched to twice the error
+    th, tw, b = shape.tile_height, shape.tile_width, shape.itemsize
+    strip_lr = min(tw, shape.overlap_x + 2 * margin) * min(th + 2 * margin, th)  # one side of a left-right pair
+    strip_tb = min(th, shape.overlap_y + 2 * margin) * tw
+    band = max(shape.rows, shape.cols) + 1
+    pending = band * max(strip_lr, strip_tb) * b
+    pairing = 2 * max(strip_lr, strip_tb) * 4 * 3          # both strips as float32 and their spectra
+    step = max(1, int(_get(st, "illumination_step", 16)))
+    thumbs = min(shape.tiles_per_section, MAX_PROFILE_TILES) * math.ceil(th / step) * math.ceil(tw / step) * 4 \
+        if _get(st, "illumination", True) else 0
+    one_tile = th * tw * (b + 4)
+    tile_mpx = shape.tiles_per_section * th * tw / MB
+    return [Kind("stitch.section", shape.imaged, pending + pairing + thumbs + one_tile, tile_mpx,
+                 reads=shape.tiles_per_section * shape.tile_bytes,
+                 writes=shape.tiles_per_section * 600,
+                 note="holds one band of pending overlap strips", items=shape.pairs_per_section),
+            Kind("stitch.driver", 1, shape.tiles * 1000.0, shape.tiles, driver=True,
+                 note="the checked manifest and one job per section")]
+
+
+# ------------------------------------------------------------------------ align
+def _grid(shape: VolumeShape, a) -> tuple[int, int, int]:
+    """Return (elastic grid nodes, pixels of the rendered grid region at elastic scale, scale)."""
+    es = max(1, int(_get(a, "elastic_scale", 2)))
+    spacing = max(es, es * round(_get(a, "grid_spacing", 128.0) / es))
+    ny = int(shape.section_height // spacing) + 1
+    nx = int(shape.section_width // spacing) + 1
+    margin = es * (_get(a, "match_half_size", 24) + _get(a, "match_max_shift", 12) + 2)
+    region = ((shape.section_height + 2 * margin) // es + 1) * ((shape.section_width + 2 * margin) // es + 1)
+    return ny * nx, int(region), es
+
+
+def align_kinds(shape: VolumeShape, cfg) -> list[Kind]:
+    """The align stage's own model of its task graph (``align/budget.py``) when it has one, else :func:`_align_whole_sections`."""
+    try:
+        from ..align.budget import align_budget
+
+        budget = align_budget(max(shape.section_height, shape.section_width), shape.imaged,
+                              tile_px=max(shape.tile_height, shape.tile_width), tile_bytes=shape.itemsize,
+                              settings=cfg.align, tile_cache_bytes=_cache_filled(shape))
+        from ..align.budget import PROCESS_BYTES
+    except (ImportError, TypeError, AttributeError):
+        return _align_whole_sections(shape, cfg)
+    a = cfg.align
+    tile_mpx = shape.tiles_per_section * shape.tile_height * shape.tile_width / MB
+    es = max(1, int(_get(a, "elastic_scale", 2)))
+    held_images = int(_get(a, "region_sections", 8)) + int(_get(a, "neighbours", 2))
+    nodes = budget.get("grid_nodes", 1)
+    spacing = max(es, es * round(_get(a, "grid_spacing", 128.0) / es))
+    region_side = (int(_get(a, "region_nodes", 16)) - 1) * spacing  # level-0 px
+    # Matching compares every feature of one section with every one of the other: work grows with the
+    # square of the features kept, about one per 500 overview pixels up to max_features (on the
+    # project's phantom; common practice puts SIFT at some hundreds to thousands per megapixel, no source).
+    scale = max(int(_get(a, "work_scale", 4)), math.ceil(max(shape.section_height, shape.section_width)
+                                                          / max(1, int(_get(a, "overview_size", 2048)))))
+    feats = min(int(_get(a, "max_features", 4000)), shape.section_height * shape.section_width / scale ** 2 / 500)
+    work = {"align.features": tile_mpx, "align.pair": feats ** 2 / MB,
+            "align.region": held_images * region_side ** 2 / MB,
+            "align.solve": (int(_get(a, "region_nodes", 16)) ** 2) * shape.imaged / MB}
+    links = sum(max(0, shape.imaged - k) for k in range(1, int(_get(a, "neighbours", 2)) + 1))
+    count = {"align.pair": links}  # the pairs align/stage.py matches: (z, z + k) with both present
+    kinds = [Kind(t.name, count.get(t.name, t.count), max(0.0, t.bytes_each - PROCESS_BYTES), work.get(t.name, 0.0),
+                  note=t.note,
+                  reads=shape.tiles_per_section * shape.tile_bytes if t.name == "align.features" else 0.0)
+             for t in budget["tasks"]]
+    kinds.append(Kind("align.driver", 1, max(0.0, budget["driver_bytes"] - PROCESS_BYTES),
+                      shape.imaged * nodes * nodes / MB, driver=True, note="every section's field on the grid"))
+    return kinds
+
+
+def _align_whole_sections(shape: VolumeShape, cfg) -> list[Kind]:
+    """Features per section, matching per pair, a render per section and round, block matching per link, the solve in the driver."""
+    a = cfg.align
+    ws = max(1, int(_get(a, "work_scale", 4)))
+    sec_px = shape.section_height * shape.section_width
+    tile_mpx = shape.tiles_per_section * shape.tile_height * shape.tile_width / MB
+    sec_bytes = shape.tiles_per_section * shape.tile_bytes
+    links = sum(max(0, shape.imaged - k) for k in range(1, int(_get(a, "neighbours", 2)) + 1))
+    feats = int(_get(a, "max_features", 4000))
+    kinds = [Kind("align.features", shape.imaged, sec_px / ws ** 2 * 8, tile_mpx, reads=sec_bytes,
+                  writes=feats * 140, note="renders its whole section at work_scale"),
+             Kind("align.pair", links, 2 * feats * 140, 1.0, reads=2 * feats * 140)]
+    nodes, region, es = _grid(shape, a)
+    rounds = int(_get(a, "elastic_rounds", 2)) if _get(a, "elastic", True) and shape.imaged >= 3 else 0
+    renders = shape.imaged * (rounds + 1)
+    block_links = links * rounds + max(0, shape.imaged - 1)
+    kinds += [Kind("align.render", renders, region * 8, tile_mpx, reads=sec_bytes, writes=region * 4,
+                   note="renders the whole grid region at elastic_scale"),
+              Kind("align.blocks", block_links, region * 8, nodes / MB, reads=2 * region * 4,
+                   note="loads two whole grid-region renders"),
+              Kind("align.driver", 1, shape.imaged * nodes * 2 * 8, shape.imaged * nodes / MB, driver=True,
+                   note="solves every section's field at once")]
+    return kinds
+
+
+# ----------------------------------------------------------------------- render
+def tile_cache_bytes(shape: VolumeShape) -> int:
+    """Return the per-process cache of prepared tiles the renderer will use for this tile size."""
+    from .. import tiles
+
+    return int(tiles.cache_bytes_for(shape.tile_height, shape.tile_width))
+
+
+def _cache_filled(shape: VolumeShape) -> int:
+    """Return the bytes the tile cache holds once a task has read a whole section: its bound, or all its tiles."""
+    prepared = (shape.tile_height + 2) * (shape.tile_width + 2) * 4
+    return min(tile_cache_bytes(shape), shape.tiles_per_section * prepared)
+
+
+def _touching(n_out: int, block: int, step: float, size: int, n_tiles: int) -> list[int]:
+    """Return, for each block ``[a, a+block)`` of an axis, how many tiles (at ``k*step``, ``size`` long) touch it."""
+    out = []
+    for a in range(0, n_out, block):
+        b = min(a + block, n_out)
+        lo = max(0, math.floor((a - 1 - size) / step) + 1)
+        hi = min(n_tiles - 1, math.floor((b + 1) / step))
+        out.append(max(0, hi - lo + 1))
+    return out
+
+
+def render_kinds(shape: VolumeShape, cfg) -> list[Kind]:
+    """One task per shard and level (``render/pyramid.py``), plus the contrast pass when it is on."""
+    r = cfg.render
+    chunk, per = int(r.chunk), int(r.shard)
+    block = chunk * per
+    h, w = shape.section_height, shape.section_width
+    shapes = level_shapes(h, w, chunk)
+    b = shape.itemsize
+    n0 = math.ceil(h / block) * math.ceil(w / block)
+    upper = sum(math.ceil(hh / block) * math.ceil(ww / block) for hh, ww in shapes[1:])
+    sy, sx = shape.tile_height - shape.overlap_y, shape.tile_width - shape.overlap_x
+    ty = _touching(h, block, sy, shape.tile_height, shape.rows)
+    tx = _touching(w, block, sx, shape.tile_width, shape.cols)
+    cy = _touching(h, chunk, sy, shape.tile_height, shape.rows)
+    cx = _touching(w, chunk, sx, shape.tile_width, shape.cols)
+    prepared = (shape.tile_height + 2) * (shape.tile_width + 2) * 4
+    cache = tile_cache_bytes(shape)
+    per_shard = max(ty) * max(tx)
+    per_row = max(cy) * max(tx)  # chunks are rendered row by row across a shard
+    if per_row * prepared <= cache:  # a row's tiles stay cached: each shard reads each of its tiles once
+        reads = sum(ty) * sum(tx)
+    else:  # they do not: every chunk reads its own tiles again
+        reads = sum(cy) * sum(cx)
+    kept = min(cache, per_shard * prepared)
+    records = shape.tiles_per_section * 400 + _grid(shape, cfg.align)[0] * 2 * 8
+    shard_px = min(block, h) * min(block, w)
+    planes_px = shape.imaged * h * w
+    kinds = [Kind("render.shard", shape.imaged * n0, shard_px * b * 1.25 + chunk * chunk * 4 * 4 + records,
+                  shard_px / MB, reads=reads * shape.tile_bytes / max(1, n0), fixed=kept,
+                  note=f"each tile read {reads / max(1, shape.tiles_per_section):.1f} times "
+                       f"(cache {cache / MB:.0f} MB, {per_shard} prepared tiles of "
+                       f"{prepared / MB:.0f} MB touch a shard)"),
+             Kind("render.join", shape.imaged * upper, shard_px * b * 1.5, shard_px / MB / 4),
+             Kind("render.driver", 1, 3000.0 * min(shape.imaged, max(1, 32 // max(1, n0))) * (n0 + upper),
+                  shape.imaged * (n0 + upper) / 1e3, driver=True,
+                  note="one graph per batch of planes; work in thousands of tasks")]
+    if r.contrast:
+        cs = max(1, int(r.contrast_scale))
+        strip = 2 * 256 * (w / cs) * 4
+        kinds.append(Kind("render.contrast", shape.imaged, strip + (1 << 20) * 4 + prepared / cs ** 2 * shape.cols,
+                          shape.tiles_per_section * shape.tile_height * shape.tile_width / MB,
+                          reads=shape.tiles_per_section * shape.tile_bytes))
+    return kinds
+
+
+# ----------------------------------------------------------------------- report
+def _probe_factor(q) -> int:
+    """Return the pyramid factor the alignment-error probe reads (a power of two, 1 = level 0)."""
+    try:
+        from ..qc.metrics import measure_factor
+
+        limit = float(measure_factor(q))
+    except ImportError:
+        limit = float(_get(q, "measure_scale", 2))
+    f = 1
+    while f * 2 <= limit:
+        f *= 2
+    return f
+
+
+def report_kinds(shape: VolumeShape, cfg) -> list[Kind]:
+    """Seams re-measured from raw tiles, one task per section (``qc/measure.py: seam_job``); the
+    alignment-error probe as region tasks (``qc/probe.py``); the driver keeps the seams' sampled blocks."""
+    q = cfg.report
+    tile_px = shape.tile_height * shape.tile_width
+    keep, per_seam = 4, 48  # measure_seams' keep_tiles and blocks_per_seam defaults
+    kinds = [Kind("report.seams", shape.imaged, (keep + 1) * tile_px * 4,
+                  2 * shape.tiles_per_section * tile_px / MB, items=shape.pairs_per_section,
+                  reads=2 * shape.tiles_per_section * shape.tile_bytes,
+                  note=f"holds {keep} tiles as float32 and its seams' blocks"),
+             Kind("report.driver", 1, shape.imaged * shape.pairs_per_section * per_seam * 5 * 8,
+                  shape.imaged * shape.pairs_per_section / MB, driver=True,
+                  note="keeps every seam's sampled blocks")]
+    region = int(_get(q, "region_size", 0))
+    if region > 0:
+        f = _probe_factor(q)
+        spans = int(_get(q, "probe_spans", 2))
+        margin = _get(q, "probe_half_size", 48) + _get(q, "probe_max_shift", 12) + 4 * _get(q, "probe_coarse_sigma", 16)
+        side = (region + 2 * margin) / f
+        n = math.ceil(shape.section_height / region) * math.ceil(shape.section_width / region)
+        kinds.append(Kind("report.probe", n, (spans + 1) * side * side * 4 * 2, shape.imaged * (region / f) ** 2 / MB,
+                          reads=shape.imaged * side * side * shape.itemsize,
+                          note="follows one region down the stack"))
+    return kinds
+
+
+def manifest_kinds(shape: VolumeShape, cfg) -> list[Kind]:
+    """The check of the tile manifest before the build starts: one header read per tile, in the driver."""
+    return [Kind("manifest.driver", 1, shape.tiles * 1000.0, shape.tiles, driver=True,
+                 reads=shape.tiles * 4096)]
+
+
+STAGES = {"manifest": manifest_kinds, "stitch": stitch_kinds, "align": align_kinds,
+          "render": render_kinds, "report": report_kinds}
+
+
+def output_layout(shape: VolumeShape, cfg) -> dict:
+    """Return pixel count, shard files and metadata files of the written EM pyramid (uncompressed bytes too)."""
+    r = cfg.render
+    block = int(r.chunk) * int(r.shard)
+    shapes = level_shapes(shape.section_height, shape.section_width, int(r.chunk))
+    shards = sum(math.ceil(h / block) * math.ceil(w / block) for h, w in shapes) * shape.planes
+    px = sum(h * w for h, w in shapes) * shape.planes
+    return {"levels": len(shapes), "level0": [shape.planes, *shapes[0]], "pixels": px,
+            "raw_bytes": px * shape.itemsize, "shards": shards, "metadata_files": 2 + len(shapes),
+            "shard_edge_px": block, "chunk_edge_px": int(r.chunk)}

@@ -1,0 +1,224 @@
+"""The whole pipeline end to end, stage by stage, beside its I/O floor; marginal cost between two sizes.
+
+For each size, synthesises a stack of the project's invented phantom, runs
+``stackbuild build`` in a fresh process on a local cluster (``--workers``),
+and samples every process of the build (psutil, every 0.2 s) to attribute CPU
+time to the stage then running (from ``build.json``). Printed side by side:
+
+* per stage: wall seconds (``build.json``), CPU seconds of all processes, and
+  megapixels of tiles per CPU-second (per core);
+* the peak memory of the largest process (``ru_maxrss`` of the build's process
+  tree, which counts every worker: Linux reports the largest descendant);
+* the I/O floor: read every tile once (tifffile) and write level 0 once with the
+  build's default codec (zarr, same chunks and shards), on as many threads as
+  workers, and the build's wall time over it.
+
+Between the two sizes the *marginal* cost (extra wall / extra floor, and extra
+CPU / extra floor CPU) cancels start-up costs (cluster start, imports, the
+report's fixed work). With
+``--memory`` it also builds sections of 3 x 3 and 7 x 7 tiles and compares the
+peak memory of the largest process.
+
+    python tests/benchmarks/bench_pipeline.py                      # 3 and 6 sections of 4 x 4 tiles of 1024 px
+    python tests/benchmarks/bench_pipeline.py --sizes 5,10 --grid 5 --memory
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import numpy as np
+import psutil
+import tifffile
+
+REPO = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(REPO))
+
+from stackbuild.config import PipelineConfig  # noqa: E402
+from stackbuild.synth import SynthParams, generate  # noqa: E402
+
+STAGES = ("stitch", "align", "channels", "render", "report")
+
+
+def synth(folder: Path, sections: int, grid: int, tile: int) -> Path:
+    """Write a synthetic stack; return its tile manifest."""
+    return generate(folder, SynthParams(seed=7, sections=sections, grid=(grid, grid), tile_size=tile,
+                                        channels=0, compress=False))
+
+
+def _running_stage(build: Path) -> str:
+    try:
+        stages = json.loads((build / "build.json").read_text()).get("stages", {})
+    except (OSError, ValueError):
+        return "start"
+    running = [k for k, v in stages.items() if v.get("status") == "running"]
+    return running[-1] if running else ("end" if stages else "start")
+
+
+def run_build(tiles: Path, out: Path, workers: int) -> dict:
+    """Run ``stackbuild build`` in a child process; return wall and CPU per stage and the largest process's peak."""
+    cmd = [sys.executable, "-m", "stackbuild.cli", "build", str(tiles), "--out", str(out), "--quiet",
+           "--workers", str(workers)]
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    top = psutil.Process(proc.pid)
+    cpu_by_stage: dict[str, float] = {}
+    seen: dict[int, float] = {}
+    rss_max = 0
+    while proc.poll() is None:
+        stage = _running_stage(out)
+        try:
+            procs = [top, *top.children(recursive=True)]
+        except psutil.NoSuchProcess:
+            break
+        for p in procs:
+            try:
+                t = p.cpu_times()
+                total = t.user + t.system
+                rss_max = max(rss_max, p.memory_info().rss)
+            except psutil.NoSuchProcess:
+                continue
+            cpu_by_stage[stage] = cpu_by_stage.get(stage, 0.0) + total - seen.get(p.pid, 0.0)
+            seen[p.pid] = total
+        time.sleep(0.2)
+    wall = time.perf_counter() - t0
+    err = proc.stderr.read()
+    if proc.returncode not in (0, 3):  # 3: the report missed a default bar, not a failure of the build
+        raise RuntimeError(f"build failed ({proc.returncode}): {err[-2000:]}")
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    state = json.loads((out / "build.json").read_text())
+    return {"wall": wall, "cpu_total": (after.ru_utime + after.ru_stime) - (before.ru_utime + before.ru_stime),
+            "stage_wall": {k: v.get("seconds") for k, v in state.get("stages", {}).items()},
+            "stage_cpu": cpu_by_stage, "peak_rss": max(after.ru_maxrss * 1024, rss_max)}
+
+
+def io_floor(tiles: Path, out: Path, threads: int) -> dict:
+    """Return the seconds to read every tile once and to write level 0 once with the default codec."""
+    import zarr
+    from zarr.codecs import BloscCodec
+
+    from stackbuild.render.settings import blosc_shuffle
+
+    paths = sorted((tiles.parent / "tiles").rglob("*.tif"))
+    os.sync()
+    c0 = time.process_time()
+    t0 = time.perf_counter()
+    with ThreadPoolExecutor(threads) as pool:
+        imgs = list(pool.map(tifffile.imread, paths))
+    read = time.perf_counter() - t0
+    # Level 0 of this build: one plane per section, the canvas the build wrote.
+    level0 = zarr.open_array(str(out / "volume.zarr" / "em" / "0"), mode="r")
+    depth, h, w = level0.shape
+    r = PipelineConfig().render
+    block = r.chunk * r.shard
+    dtype = imgs[0].dtype
+    codec = BloscCodec(cname=r.codec, clevel=r.clevel, shuffle=blosc_shuffle(r, dtype.itemsize))
+    arr = zarr.open_group(str(out / "floor.zarr"), mode="w", zarr_format=3).create_array(
+        "0", shape=(depth, h, w), dtype=dtype, chunks=(1, r.chunk, r.chunk), shards=(1, block, block),
+        compressors=[codec], fill_value=0)
+    plane = np.ascontiguousarray(level0[0])  # real rendered content, written to every plane
+    jobs = [(z, a, b) for z in range(depth) for a in range(0, h, block) for b in range(0, w, block)]
+
+    def write(job):
+        z, a, b = job
+        arr[z, a:a + block, b:b + block] = plane[a:a + block, b:b + block]
+
+    t0 = time.perf_counter()
+    with ThreadPoolExecutor(threads) as pool:
+        list(pool.map(write, jobs))
+    written = time.perf_counter() - t0
+    cpu = time.process_time() - c0
+    tile_mpx = sum(im.size for im in imgs) / 1e6
+    codec_name = f"Blosc {r.codec} level {r.clevel} {blosc_shuffle(r, dtype.itemsize)}"
+    return {"read": read, "write": written, "floor": read + written, "floor_cpu": cpu, "tile_mpx": tile_mpx,
+            "level0_mpx": depth * h * w / 1e6, "codec": codec_name}
+
+
+def one_size(tmp: Path, sections: int, grid: int, tile: int, workers: int) -> dict:
+    """Build one size and measure its floor."""
+    tiles = synth(tmp / f"data-{sections}-{grid}", sections, grid, tile)
+    out = tmp / f"build-{sections}-{grid}"
+    res = run_build(tiles, out, workers)
+    res.update(io_floor(tiles, out, workers))
+    res["sections"] = sections
+    return res
+
+
+def report(a: dict, b: dict | None, workers: int) -> None:
+    """Print the sizes side by side, and the marginal cost between them."""
+    rows = [a] if b is None else [a, b]
+    print(f"\n{'':<28}" + "".join(f"{str(r['sections']) + ' sections':>18}" for r in rows)
+          + ("" if b is None else f"{'marginal':>14}"))
+    for stage in STAGES:
+        if not any(r["stage_wall"].get(stage) for r in rows):
+            continue
+        walls = [r["stage_wall"].get(stage) or 0.0 for r in rows]
+        cpus = [r["stage_cpu"].get(stage, 0.0) for r in rows]
+        line = f"{stage + ' wall / CPU s':<28}" + "".join(f"{w:>9.1f} /{c:>6.1f}" for w, c in zip(walls, cpus))
+        if b is not None:
+            dt = cpus[1] - cpus[0]
+            dm = b["tile_mpx"] - a["tile_mpx"]
+            line += f"{(dm / dt if dt > 0 else float('nan')):>9.1f} Mpx/CPU-s"
+        print(line)
+    print(f"{'build wall / CPU s':<28}" + "".join(f"{r['wall']:>9.1f} /{r['cpu_total']:>6.1f}" for r in rows))
+    print(f"{'tiles Mpx':<28}" + "".join(f"{r['tile_mpx']:>18.0f}" for r in rows))
+    print(f"{'Mpx per s per core':<28}" + "".join(f"{r['tile_mpx'] / r['wall'] / workers:>18.2f}" for r in rows))
+    print(f"{'largest process peak MB':<28}" + "".join(f"{r['peak_rss'] / 1e6:>18.0f}" for r in rows))
+    print(f"{'I/O floor s (read + write)':<28}" + "".join(f"{r['floor']:>10.2f} ({r['read']:.2f}+{r['write']:.2f})"[-18:].rjust(18) for r in rows))
+    print(f"{'build / floor':<28}" + "".join(f"{r['wall'] / r['floor']:>18.1f}" for r in rows), end="")
+    if b is not None:
+        extra_wall = b["wall"] - a["wall"]
+        extra_floor = b["floor"] - a["floor"]
+        print(f"{extra_wall / extra_floor:>14.1f}  (extra wall {extra_wall:.1f} s / extra floor {extra_floor:.2f} s)")
+    else:
+        print()
+    print(f"{'CPU s: build / floor':<28}" + "".join(f"{r['cpu_total']:>8.1f} /{r['floor_cpu']:>6.2f}".rjust(18)
+                                                   for r in rows), end="")
+    if b is not None:
+        extra_cpu = b["cpu_total"] - a["cpu_total"]
+        extra_fcpu = b["floor_cpu"] - a["floor_cpu"]
+        print(f"{extra_cpu / extra_fcpu:>14.1f}  (extra CPU {extra_cpu:.1f} s / extra floor CPU {extra_fcpu:.2f} s; "
+              "CPU is what a shared machine disturbs least)")
+    else:
+        print()
+    print(f"floor codec: {a['codec']}; tiles read with tifffile on {workers} threads from the page cache "
+          "(just written), level 0 written once with zarr on the same threads")
+
+
+def main(argv=None) -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--sizes", default="3,6", help="two section counts for the marginal cost (default 3,6)")
+    ap.add_argument("--grid", type=int, default=4, help="tiles per side of a section (default 4)")
+    ap.add_argument("--tile", type=int, default=1024, help="tile side, px (default 1024)")
+    ap.add_argument("--workers", type=int, default=2, help="local worker processes (default 2)")
+    ap.add_argument("--memory", action="store_true",
+                    help="also compare the largest process's peak at 3 x 3 and 7 x 7 tiles per section")
+    args = ap.parse_args(argv)
+    n1, n2 = (int(v) for v in args.sizes.split(","))
+    with tempfile.TemporaryDirectory(prefix="bench_pipeline_", dir=os.environ.get("TMPDIR")) as tmp:
+        tmp = Path(tmp)
+        a = one_size(tmp, n1, args.grid, args.tile, args.workers)
+        b = one_size(tmp, n2, args.grid, args.tile, args.workers)
+        print(f"{args.grid} x {args.grid} tiles of {args.tile} px per section, {args.workers} workers, "
+              f"{os.cpu_count()} cores")
+        report(a, b, args.workers)
+        if args.memory:
+            small = run_build(synth(tmp / "m3", 3, 3, 1024), tmp / "mb3", args.workers)
+            big = run_build(synth(tmp / "m7", 3, 7, 1024), tmp / "mb7", args.workers)
+            print(f"\nlargest process peak, 3 sections of 3 x 3 vs 7 x 7 tiles of 1024 px: "
+                  f"{small['peak_rss'] / 1e6:.0f} MB vs {big['peak_rss'] / 1e6:.0f} MB "
+                  f"(ratio {big['peak_rss'] / small['peak_rss']:.2f})")
+
+
+if __name__ == "__main__":
+    main()

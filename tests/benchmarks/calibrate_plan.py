@@ -1,0 +1,201 @@
+"""Measure the plan's per-task factors on this machine and write stackbuild/run/plan_rates.json.
+
+Synthesises two small stacks (the project's invented phantom), builds each in
+one process with one thread (:func:`stackbuild.run.plan_measure.measure_build`),
+and for every kind of task fits a line through the two measurements against
+what the plan's model says that task holds and does at each shape: memory =
+fixed + slope x modelled bytes (tracemalloc peak, minus the model's cache), CPU
+per task = fixed + slope x modelled work. Two sizes, so per-task start-up costs
+do not scale up with the volume.
+
+Also measured: the memory of an idle worker process (a fresh interpreter that
+imports what a worker imports; its resident size) and the compression ratio of the
+written level 0 with the default codec.
+
+    python tests/benchmarks/calibrate_plan.py                # 3 x (3 x 3 x 384 px) and 4 x (2 x 2 x 1024 px)
+    python tests/benchmarks/calibrate_plan.py --small 3,2,512 --large 5,4,1024 --dry-run
+"""
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import json
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+REPO = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(REPO))
+
+from stackbuild.config import PipelineConfig  # noqa: E402
+from stackbuild.run.plan import RATES_PATH  # noqa: E402
+from stackbuild.run.plan_measure import measure_build  # noqa: E402
+from stackbuild.run.plan_models import STAGES  # noqa: E402
+from stackbuild.run.plan_shape import VolumeShape  # noqa: E402
+from stackbuild.synth import SynthParams, generate  # noqa: E402
+
+# Resident memory after the imports (psutil), not ru_maxrss: Linux carries a forked child's
+# maxrss over from its parent, so the child would report this script's own peak.
+WORKER_IMPORTS = ("import psutil, numpy, cv2, dask, distributed, zarr, stackbuild.render.write, "
+                  "stackbuild.align.stage, stackbuild.stitch.section; "
+                  "print(psutil.Process().memory_info().rss)")
+
+
+def machine() -> str:
+    """Return a one-line description of this machine."""
+    model = ""
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                model = line.split(":", 1)[1].strip()
+                break
+        mem = next(int(line.split()[1]) for line in Path("/proc/meminfo").read_text().splitlines()
+                   if line.startswith("MemTotal"))
+    except (OSError, StopIteration):
+        mem = 0
+    return (f"{os.cpu_count()} cores ({model or platform.processor()}), {mem / 2 ** 20:.0f} GiB RAM, "
+            f"{platform.system()} {platform.release()}, Python {platform.python_version()}; shared with other work")
+
+
+def stored_ratio(volume: Path) -> float:
+    """Return raw bytes / stored bytes of level 0 of the written EM pyramid."""
+    import zarr
+
+    arr = zarr.open_array(str(volume / "em" / "0"), mode="r")
+    raw = arr.nbytes
+    stored = sum(p.stat().st_size for p in (volume / "em" / "0").rglob("*") if p.is_file() and p.name != "zarr.json")
+    return raw / max(1, stored)
+
+
+def _line(x1: float, y1: float, x2: float, y2: float, flat_slope: float) -> tuple[float, float]:
+    """Return ``(intercept, slope)`` of a line through two measurements ``(x, y)``.
+
+    When the two sizes do not differ enough in ``x`` (1.5x) or ``y`` does not grow with it,
+    the cost is taken as fixed at the larger measurement, plus ``flat_slope`` per unit of ``x``
+    (1 for memory: the modelled bytes at face value; 0 for CPU).
+    """
+    (xa, ya), (xb, yb) = sorted([(x1, y1), (x2, y2)])
+    if xb > 1.5 * xa and yb > ya:
+        slope = (yb - ya) / (xb - xa)
+        return max(0.0, yb - slope * xb), slope
+    return max(ya, yb), flat_slope
+
+
+def _two_terms(k1, c1: float, k2, c2: float) -> tuple[float, float] | None:
+    """Return ``(per work, per item)`` solving CPU = work x a + items x b at both sizes, if both are positive."""
+    if not (k1.items and k2.items):
+        return None
+    det = k1.work * k2.items - k2.work * k1.items
+    if abs(det) < 1e-12:
+        return None
+    a = (c1 * k2.items - c2 * k1.items) / det
+    b = (k1.work * c2 - k2.work * c1) / det
+    return (a, b) if a > 0 and b > 0 else None
+
+
+def factors(small: dict, large: dict, shapes: tuple, cfg) -> dict:
+    """Return per kind the fixed part and the slope of memory and CPU, fitted through two measured builds.
+
+    Memory of a task = ``memory_fixed_bytes + memory_per_held * held`` (plus the model's fixed cache);
+    CPU of a task = ``cpu_fixed_s + cpu_s_per_work * work``.
+    """
+    out = {}
+    for name, fn in STAGES.items():
+        for k1, k2 in zip(fn(shapes[0], cfg), fn(shapes[1], cfg)):
+            m1, m2 = small["kinds"].get(k1.name), large["kinds"].get(k2.name)
+            if m1 is None or m2 is None or not m1["tasks"] or not m2["tasks"]:
+                continue
+            mem_a, mem_b = _line(k1.held, max(0.0, m1["peak_bytes"] - k1.fixed),
+                                 k2.held, max(0.0, m2["peak_bytes"] - k2.fixed), 1.0)
+            c1, c2 = m1["cpu_robust_s"] / m1["tasks"], m2["cpu_robust_s"] / m2["tasks"]  # median task
+            per_item = _two_terms(k1, c1, k2, c2)
+            if per_item is not None:  # CPU = work x rate + items x rate, no fixed part
+                cpu_a, cpu_b, cpu_c = 0.0, per_item[0], per_item[1]
+            else:
+                (cpu_a, cpu_b), cpu_c = _line(k1.work, c1, k2.work, c2, 0.0), 0.0
+            out[k1.name] = {
+                "memory_fixed_bytes": round(mem_a), "memory_per_held": round(mem_b, 4),
+                "cpu_fixed_s": round(cpu_a, 5), "cpu_s_per_work": cpu_b, "cpu_s_per_item": cpu_c,
+                "measured": [{"tasks": m["tasks"], "modelled_tasks": k.count, "held_mb": round(k.held / 1e6, 3),
+                              "peak_mb": round(m["peak_bytes"] / 1e6, 3), "work": round(k.work, 4),
+                              "items": k.items, "cpu_s": round(m["cpu_s"], 3),
+                              "cpu_median_task_s": round(m["cpu_robust_s"] / m["tasks"], 4)}
+                             for m, k in ((m1, k1), (m2, k2))]}
+    return out
+
+
+def measure_size(tmp: Path, name: str, sections: int, grid: int, tile: int) -> tuple[dict, VolumeShape, Path]:
+    """Synthesise and build one size in a fresh process; return the measurements, the shape and the build folder.
+
+    A fresh process for each size, so neither build pays (or skips) first-call costs for the other.
+    """
+    params = SynthParams(seed=5, sections=sections, grid=(grid, grid), tile_size=tile, channels=0, compress=False)
+    tiles = generate(tmp / f"data-{name}", params)
+    out = tmp / f"measured-{name}.json"
+    code = ("import json, sys; from stackbuild.run.plan_measure import measure_build; "
+            "m = measure_build(sys.argv[1], sys.argv[2]); open(sys.argv[3], 'w').write(json.dumps(m))")
+    subprocess.run([sys.executable, "-c", code, str(tiles), str(tmp / f"build-{name}"), str(out)], check=True,
+                   cwd=str(REPO))
+    measured = json.loads(out.read_text())
+    for stage, err in measured["errors"].items():
+        print(f"NOT MEASURED ({name}): {stage} failed: {err}", file=sys.stderr)
+    return measured, VolumeShape.from_manifest(tiles), tmp / f"build-{name}"
+
+
+def _size(text: str) -> tuple[int, int, int]:
+    sections, grid, tile = (int(v) for v in text.split(","))
+    return sections, grid, tile
+
+
+def main(argv=None) -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--small", type=_size, default=(3, 3, 384), metavar="S,G,T",
+                    help="smaller build: sections, tiles per side, tile side (default 3,3,384)")
+    ap.add_argument("--large", type=_size, default=(4, 2, 1024), metavar="S,G,T",
+                    help="larger build (default 4,2,1024)")
+    ap.add_argument("--dry-run", action="store_true", help="print, do not write plan_rates.json")
+    args = ap.parse_args(argv)
+    cfg = PipelineConfig()
+    with tempfile.TemporaryDirectory(prefix="calibrate_plan_") as tmp:
+        tmp = Path(tmp)
+        small, shape1, _ = measure_size(tmp, "small", *args.small)
+        large, shape2, folder = measure_size(tmp, "large", *args.large)
+        ratio = stored_ratio(folder / "volume.zarr")
+    baseline = int(subprocess.run([sys.executable, "-c", WORKER_IMPORTS], capture_output=True, text=True,
+                                  check=True).stdout.strip())
+    commit = subprocess.run(["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"], capture_output=True,
+                            text=True).stdout.strip()
+    doc = {
+        "format": "stackbuild.plan-rates", "version": 1,
+        "measured": dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
+        "machine": machine(), "commit": commit,
+        "how": ("tests/benchmarks/calibrate_plan.py: two synthetic stacks (sections, tiles per side, tile px: "
+                f"{args.small} and {args.large}) built in one process, one thread; per task: process CPU "
+                "time and the tracemalloc peak above the task's start; per kind a line (fixed + slope) "
+                "through the two, against what stackbuild/run/plan_models.py says the task holds and does"),
+        "calibration_shapes": [shape1.to_json(), shape2.to_json()],
+        "worker_baseline_bytes": baseline, "driver_baseline_bytes": baseline,
+        "compression_ratio": {f"{cfg.render.codec} level {cfg.render.clevel}": round(ratio, 3)},
+        "kinds": factors(small, large, (shape1, shape2), cfg),
+        "stage_cpu_s": [{k: round(v, 3) for k, v in m["stage_cpu_s"].items()} for m in (small, large)],
+        "not_measured": {**large["errors"], **small["errors"]},
+    }
+    try:  # a kind this run could not measure (its stage failed) keeps its last measurement, marked so
+        old = json.loads(RATES_PATH.read_text(encoding="utf-8"))
+        for name, entry in old.get("kinds", {}).items():
+            if name not in doc["kinds"]:
+                doc["kinds"][name] = {**entry, "carried_from": entry.get("carried_from", old.get("measured"))}
+    except (OSError, ValueError):
+        pass
+    text = json.dumps(doc, indent=1) + "\n"
+    print(text)
+    if not args.dry_run:
+        RATES_PATH.write_text(text, encoding="utf-8")
+        print(f"wrote {RATES_PATH}")
+
+
+if __name__ == "__main__":
+    main()

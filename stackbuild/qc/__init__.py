@@ -1,11 +1,22 @@
 """Quality control: independent measurements of a build, the pass/fail verdict and the HTML report.
 
-``blockmatch``  NCC block matching on a grid (pure kernel)
-``seams``       residual of two placed tiles over their overlap (pure kernel)
-``planes``      planes of the written or lazy volume at a chosen level
-``measure``     seam and section-to-section measurements of a build
+Pure kernels (layer 1):
+
+``blockmatch``  NCC block matching on a grid (seams)
+``seams``       residual of two placed tiles over their overlap
+``subpixel``    band-pass and sub-pixel block shifts without peak locking (the probe's matcher)
+``zchain``      per-block chain solve along z; each plane's deviation from where its neighbours put it
+``straighten``  oblique structure straightened by the aligner, from its stored transforms
+``glossary``    one-line meanings of every flag and total
+
+Stage (layer 4):
+
+``planes``      planes of the written or lazy volume at a chosen level, read by window
+``probe``       the alignment-error probe as region tasks (one region down the stack per task)
+``measure``     seam measurements per section (at most a few tiles held) and the frame conversions
 ``metrics``     the metrics document (``DIR/qc/metrics.json``, schema in its docstring) and CSV tables
-``thresholds``  the ``--fail-on`` syntax
-``plots``       the figures
-``report``      :func:`~stackbuild.qc.report.run_report`, the stage entry point
+``thresholds``  the ``--fail-on`` syntax and the default bars
+``plots``       the figures (scale bars in nm on image panels)
+``report``      the HTML report, the stored-metrics re-check
+``stage``       :func:`~stackbuild.qc.stage.run`, the stage entry point
 """

@@ -93,15 +93,18 @@ def render_stage(build: BuildFolder, *, planes: list[int] | None = None, resume:
     return facts
 
 
-def report_stage(build: BuildFolder, *, fail_on: list[str] | None = None, progress=None):
-    """Measure the result, draw the plots, write ``DIR/qc``; return the verdict."""
-    from ..qc.report import run_report
+def report_stage(build: BuildFolder, *, fail_on: list[str] | None = None, progress=None, mapper=None):
+    """Measure the result, draw the plots, write ``DIR/qc``; return the verdict.
+
+    ``mapper`` runs the report's region tasks (in this process when omitted).
+    """
+    from ..qc.stage import run as run_report
 
     before = build.state_path.read_bytes()
     build.mark_stage("report", "running")
     t0 = time.monotonic()
     try:
-        verdict = run_report(build.root, build.config.report, fail_on=fail_on, progress=progress)
+        verdict = run_report(build, build.config.report, fail_on=fail_on, progress=progress, mapper=mapper)
     except InputError:
         # The report writes its files only once everything is measured: a refused or failed
         # report changed nothing, so the build record goes back to what it was, byte for byte.
@@ -131,4 +134,4 @@ def run_build(build: BuildFolder, client, *, resume: bool = False, fail_on: list
         channels_stage(build, mapper("channels"))
     render_stage(build, resume=resume, progress=ProgressBar("render", show), mapper=mapper("contrast"))
     render_channels_stage(build, progress=ProgressBar("markers", show), mapper=mapper("markers"))
-    return report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
+    return report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show), mapper=mapper("report"))

@@ -31,6 +31,7 @@ import logging
 import os
 import shutil
 import signal
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -427,25 +428,34 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
     from .cluster import client_mapper, dask_client
     from .progress import ProgressBar
 
+    seconds = plan.facts.setdefault("seconds", {})
+    t0 = time.monotonic()
     with dask_client(workers, scheduler) as client:
+        seconds["cluster"] = round(time.monotonic() - t0, 2)
         if not plan.reached("stitched"):
+            t0 = time.monotonic()
             _stitch(build, plan, client, show)
-            plan.status = "stitched"
+            plan.status, seconds["stitch"] = "stitched", round(time.monotonic() - t0, 2)
             save_plan(build.root, plan)
         if not plan.reached("aligned"):
+            t0 = time.monotonic()
             _align(build, plan, client, show)
-            plan.status = "aligned"
+            plan.status, seconds["align"] = "aligned", round(time.monotonic() - t0, 2)
             save_plan(build.root, plan)
         if not plan.reached("registered"):
+            t0 = time.monotonic()
             stages.channels_stage(build, client_mapper(client, ProgressBar("channels", show)))
             _killed_here("channels")
-            plan.status = "registered"
+            plan.status, seconds["channels"] = "registered", round(time.monotonic() - t0, 2)
             save_plan(build.root, plan)
         if not plan.reached("rendered"):
+            t0 = time.monotonic()
             _render(build, plan, client, show)
-            plan.status = "rendered"
+            plan.status, seconds["render"] = "rendered", round(time.monotonic() - t0, 2)
             save_plan(build.root, plan)
+        t0 = time.monotonic()
         verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
+        seconds["report"] = round(time.monotonic() - t0, 2)
     plan.facts["totals_after"] = _totals(build)
     plan.facts["verdict"] = {"passed": verdict.passed, "failures": list(verdict.failures)}
     plan.status = "done"

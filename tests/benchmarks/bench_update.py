@@ -144,6 +144,11 @@ def main() -> None:
     print(f"  level-0 chunk files changed: {len(level0)} of {total0}; shards rewritten per level "
           f"{plan['facts']['render']['shards']} of {plan['facts']['render']['shards_total']}")
     print(f"  updated plane equals a render from scratch of the updated transforms: {same}")
+    secs = plan["facts"].get("seconds", {})
+    print(f"  update steps (s): {secs}; without the report {t_update - secs.get('report', 0):.1f} s "
+          f"(ratio {t_build / max(1e-9, t_update - secs.get('report', 0)):.1f}x)")
+    state = json.loads((base / "build.json").read_text())["stages"]
+    print(f"  full build stages (s): { {k: v.get('seconds') for k, v in state.items()} }")
 
     merged = Path(plan["tiles_after"])
     t_fresh, _ = _cli("build", merged, "--out", root / "fresh", *scale)

@@ -35,6 +35,7 @@ def with_markers(grid_build, grid_data, tmp_path_factory):
     return work, em, transforms
 
 
+@pytest.mark.skipif(not os.environ.get("STACKBUILD_SLOW_TESTS"), reason="slow: set STACKBUILD_SLOW_TESTS=1")
 def test_a_marker_is_added_to_a_finished_build(with_markers):
     from ome_zarr_models.v05.image import Image
 

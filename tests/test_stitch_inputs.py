@@ -62,3 +62,22 @@ def test_jpeg_tiles_are_accepted_with_a_warning(tmp_path, caplog):
     assert len(warned) == 1 and "1 tile(s)" in warned[0] and "JPEG" in warned[0] and "a.tif" in warned[0]
     assert lossy_compression(tmp_path / "a.tif") == "JPEG"
     assert lossy_compression(tmp_path / "b.tif") is None  # zlib (deflate) is lossless
+
+
+def test_jpeg_tiles_are_flagged_in_the_stitch_record(tmp_path):
+    # Two overlapping crops of skimage.data.camera() (shipped by scikit-image),
+    # stored as JPEG: the record names each lossy tile, and the section.
+    from skimage import data
+
+    from stackbuild.stitch.section import stitch_section
+    from stackbuild.stitch.settings import StitchSettings
+
+    cam = data.camera()
+    tifffile.imwrite(tmp_path / "a.tif", cam[100:356, 0:256], compression="jpeg")
+    tifffile.imwrite(tmp_path / "b.tif", cam[100:356, 200:456], compression="zlib")
+    manifest = _write_manifest(tmp_path, [(0, "a", "a.tif", 0, 0), (0, "b", "b.tif", 200, 0)])
+    res = stitch_section(read_tile_manifest(manifest).section_tiles(0), StitchSettings(illumination=False), 0)
+    flags = {t.tile: t.flags for t in res.tiles}
+    assert "lossy_compression" in flags["a"] and "lossy_compression" not in flags["b"]
+    assert "lossy_tiles" in res.flags
+    assert res.pairs[0].accepted and abs(res.pairs[0].dx - 200) < 0.2  # the true offset of the crops

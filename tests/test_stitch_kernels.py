@@ -171,3 +171,31 @@ def test_ncc_after_shift_matches_pearson_for_zero_shift():
     b = (a + rng.normal(size=a.shape)).astype(np.float32)
     ncc, ia, ib = ncc_after_shift(a, b, (0.0, 0.0))
     assert ncc == pytest.approx(scipy.stats.pearsonr(ia.ravel(), ib.ravel())[0], abs=1e-5)
+
+
+def test_clipping_is_seen_at_the_tiles_own_top_value():
+    # 12-bit data in a 16-bit file clip at 4095, far below the type's 65535:
+    # skimage.data.camera() (shipped by scikit-image) scaled to 12 bits, its top
+    # 100 rows driven into the clip.
+    cam12 = data.camera().astype(np.uint16) * 16
+    clipped = cam12.copy()
+    clipped[:100] = 4095
+    ok, bad = tile_stats(cam12), tile_stats(clipped)
+    assert ok["saturated_fraction"] == 0.0
+    assert bad["saturated_fraction"] == pytest.approx(100 / 512, abs=0.01)
+    assert flag_tiles([ok, bad], 3.0, 0.2, 0.05) == [[], ["saturated"]]
+
+
+def test_gains_are_bounded_and_flagged_tiles_keep_their_intensity():
+    # Closed form: two tiles whose overlap spreads differ 3-fold ask for gains
+    # 0.5 and 1.5 (mean 1); bounded at 1.3 and 1/1.3. A third, ineligible tile
+    # (blank) in the same pairs keeps gain 1 and offset 0 and changes nothing.
+    pairs = np.array([[0, 1], [1, 2]])
+    ma, sa = np.array([100.0, 100.0]), np.array([30.0, 10.0])
+    mb, sb = np.array([100.0, 100.0]), np.array([10.0, 10.0])
+    free, _ = solve_gain_offset(pairs[:1], ma[:1], sa[:1], mb[:1], sb[:1], 2, 1e-6)
+    np.testing.assert_allclose(free, [0.5, 1.5], atol=1e-3)
+    gain, offset = solve_gain_offset(pairs, ma, sa, mb, sb, 3, 1e-6, eligible=np.array([True, True, False]),
+                                     max_gain_change=0.3)
+    np.testing.assert_allclose(gain, [1 / 1.3, 1.3, 1.0], atol=1e-3)
+    assert offset[2] == 0.0

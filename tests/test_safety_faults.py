@@ -235,6 +235,8 @@ def test_assumed_scale_is_said_and_recorded(tiny_build, tiny_data, tmp_path, cap
     _say_assumed_scale(BuildFolder(tiny_build))
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "assumed pixel size 4 nm and section thickness 40 nm" in err[0]
+    assert "physical scale assumed, not given: pixel size 4 nm and section thickness 40 nm" in \
+        (tiny_build / "qc" / "report.html").read_text()
     assert "--pixel-size NM and --section-thickness NM" in err[0]
     given = start_build(tmp_path / "b", tiny_data / "tiles.csv", pixel_size=5.0)
     assert given.load_state()["assumed_scale"] == {"section_thickness": 40.0}

@@ -447,6 +447,12 @@ def render_html(doc: dict, verdict_rows: list[dict], passed: bool, figures, sett
 def warnings_of(doc: dict) -> list[str]:
     """Return the warnings shown under the verdict and on the terminal (no bar needed to raise them)."""
     out = []
+    assumed = doc["volume"].get("assumed") or {}
+    if assumed:
+        out.append("physical scale assumed, not given: " + " and ".join(
+            f"{k.replace('_', ' ')} {v:g} nm" for k, v in sorted(assumed.items()))
+            + "; nanometre values in this report are only as right as these (build with --pixel-size and "
+              "--section-thickness)")
     lossy = [t for t in doc.get("flagged_tiles") or doc.get("tiles") or [] if "lossy_compression" in t["flags"]]
     lossy_secs = sorted({r["section"] for r in doc["sections"] if "lossy_tiles" in r["flags"]}
                         | {t["section"] for t in lossy})
@@ -552,6 +558,7 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     passed, failures, rows = judge(doc, thresholds)
     doc["verdict"] = {"passed": passed, "failures": failures, "thresholds": rows}
     doc["provenance"] = provenance(folder, settings, doc)
+    doc["volume"]["assumed"] = folder.load_state().get("assumed_scale") or {}  # scale nobody gave (run/start.py)
     doc["warnings"] = warnings_of(doc)
     figures = _figures(folder, doc, meas, settings)
     thumbs, bar_nm = _thumbnails(folder, doc)

@@ -119,8 +119,8 @@ def settle_canvas(previous: Canvas | None, fresh: Canvas, *, shard: int, chunk: 
     Returns
     -------
     canvas : Canvas
-        Without ``previous``: ``fresh`` widened by :data:`MARGIN_FRACTION` on every side and
-        padded so every reduced level has even sides. With it: ``previous``'s origin and size,
+        Without ``previous``: ``fresh`` widened by :data:`MARGIN_FRACTION` on every side (rounded up
+        to whole top-level pixels) and padded so every reduced level has even sides. With it: ``previous``'s origin and size,
         grown on the high side by whole shards where content leaves it; section range, lost and
         flagged sections, dtype and scale from ``fresh``.
     facts : dict
@@ -134,7 +134,12 @@ def settle_canvas(previous: Canvas | None, fresh: Canvas, *, shard: int, chunk: 
     origin, an update never moves an existing plane.
     """
     if previous is None:
+        from .reduce import level_shapes
+
         m = math.ceil(MARGIN_FRACTION * max(fresh.width, fresh.height))
+        # A whole number of top-level pixels: every level's pixel grid keeps its phase to the content.
+        step = 2 ** (len(level_shapes(fresh.height + 2 * m, fresh.width + 2 * m, chunk)) - 1)
+        m = -(-m // step) * step
         h, w = _even_levels(fresh.height + 2 * m, fresh.width + 2 * m, chunk)
         return _replace_geometry(fresh, fresh.origin_x - m, fresh.origin_y - m, w, h,
                                  fresh.first_section, fresh.last_section), \

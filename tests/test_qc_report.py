@@ -151,7 +151,7 @@ def test_report_renders_in_headless_chromium(report, tmp_path):
 def test_lossy_tiles_and_unmeasured_sections_are_warned_about():
     from stackbuild.qc.report import warnings_of
 
-    doc = {"flagged_tiles": [{"section": 4, "tile": "r0c0", "flags": ["lossy_compression"]}],
+    doc = {"volume": {}, "flagged_tiles": [{"section": 4, "tile": "r0c0", "flags": ["lossy_compression"]}],
            "sections": [{"section": 4, "flags": ["lossy_tiles"]}, {"section": 5, "flags": ["not_measured"]}]}
     got = warnings_of(doc)
     assert any("lossy-compressed tiles in section(s) 4" in w for w in got)

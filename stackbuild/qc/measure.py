@@ -13,6 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..folder import BuildFolder
 from ..tiles import read_tile
 from ..transforms.records import Canvas, SectionAlignment, SectionStitch
 from .blockmatch import BlockMatches
@@ -128,7 +129,5 @@ class SeamJob:
 
 def seam_job(job: SeamJob) -> list[SeamBlocks]:
     """Measure one section's seams from its stored placement (runs on a worker)."""
-    from ..transforms.store import TransformStore
-
-    store = TransformStore(Path(job.build) / "transforms")
+    store = BuildFolder(job.build).store
     return measure_seams(store.load_stitch(job.section), job.settings)

@@ -85,7 +85,7 @@ from .zchain import section_error
 from .planes import open_planes
 from .settings import ReportSettings
 
-SCHEMA_VERSION = 2
+from .bars import SCHEMA_VERSION  # noqa: E402,F401 (one number for writer and reader)
 
 
 def location(section: int, z: int | None, xy, canvas: Canvas | None, px_nm: float, dz_nm: float) -> dict:

@@ -14,6 +14,8 @@ import cv2
 import numpy as np
 import zarr
 
+from ..folder import BuildFolder
+
 
 @dataclass
 class PlaneSource:
@@ -146,7 +148,7 @@ def open_planes(build_dir: str | Path, *, max_factor: float | None = None,
         Prefer the written ``volume.zarr``; False goes straight to the lazy volume.
     """
     build_dir = Path(build_dir)
-    found = _ome_levels(build_dir / "volume.zarr") if written else None
+    found = _ome_levels(BuildFolder(build_dir).volume_path) if written else None
     if found is not None:
         grp, datasets = found
         st = [_scale_translation(d) for d in datasets]

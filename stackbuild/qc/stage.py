@@ -7,12 +7,14 @@ against the stored metrics without measuring or writing anything.
 """
 from __future__ import annotations
 
-from .report import Verdict, recheck, run_report, stored_metrics_stale
+from .bars import Verdict, recheck, stored_metrics_stale
 from .settings import ReportSettings
 
 
 def run(folder, settings: ReportSettings, *, mapper=None, progress=None, fail_on=None) -> Verdict:
     """Measure the build in ``folder`` and write its report; return the verdict."""
+    from .report import run_report  # plotting is imported only when a report is written
+
     root = getattr(folder, "root", folder)
     return run_report(root, settings, fail_on=fail_on, progress=progress, mapper=mapper)
 

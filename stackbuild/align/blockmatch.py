@@ -1,88 +1,398 @@
-"""Block matching between two coarse-aligned images on a regular grid.
+"""Block matching between two coarse-aligned images on a regular grid, with sub-pixel shifts.
 
 Pure functions of arrays. Grid nodes and shifts are ``(x, y)`` in the
 images' (working) pixels; a shift ``v`` at node ``p`` means the content of
 ``fixed`` around ``p`` is found in ``moving`` around ``p + v``.
+
+All blocks of one call are matched at once: patches are cut out as one
+``(N, P, P)`` stack and every Fourier transform, peak search and sub-pixel
+refinement is a batched array operation (in slices of a few hundred blocks,
+so memory stays bounded).
 """
 from __future__ import annotations
 
 import warnings
+from dataclasses import dataclass
 
-import cv2
 import numpy as np
+from scipy import fft as sfft
+
+#: blocks handled per batch; bounds the working memory of one call (common practice, no source)
+_BATCH = 256
+#: sub-pixel refinement: upsampling factor and half-width (pixels) of the refined neighbourhood
+_UPSAMPLE = 16
+_REFINE_HALF = 0.75
+#: extra pixels cut around a block before it is moved by a sub-pixel Fourier shift (the wrap-around
+#: of the shift stays in this rim, which is cropped away)
+_RIM = 8
 
 
-def _parabola(lo: float, mid: float, hi: float) -> float:
-    den = lo - 2.0 * mid + hi
-    return 0.0 if den >= 0 else float(np.clip(0.5 * (lo - hi) / den, -0.5, 0.5))
+@dataclass
+class BlockMatches:
+    """What block matching found at every node.
+
+    Attributes
+    ----------
+    shifts : ndarray, shape (N, 2)
+        ``(dx, dy)`` working pixels; NaN where no match was made.
+    peak : ndarray, shape (N,)
+        Height of the band-limited phase-correlation peak, relative to a
+        perfect match (1): the share of the band's structure that moved
+        together. NaN where unmatched.
+    ncc : ndarray, shape (N,)
+        Normalised cross-correlation of the band-passed blocks at the match
+        (in [-1, 1]); NaN where unmatched.
+    margin : ndarray, shape (N,)
+        ``1 - second / best``: how far the best correlation peak stands above
+        the best other local peak in the search window (0 = an equal rival, a
+        match that repeating or fresh texture could have made). NaN where
+        unmatched.
+
+    isotropy : ndarray, shape (N,)
+        Smaller over larger eigenvalue of the template's gradient structure
+        tensor (0 = a straight edge or stripes, whose shift along the edge
+        the block cannot tell; 1 = structure in every direction). NaN where
+        unmatched.
+    """
+
+    shifts: np.ndarray
+    peak: np.ndarray
+    ncc: np.ndarray
+    margin: np.ndarray
+    isotropy: np.ndarray
+
+    @property
+    def confidence(self) -> np.ndarray:
+        """Return ``peak * margin * sqrt(isotropy)`` in [0, 1] (0 where unmatched).
+
+        High only for a strong, unrivalled phase-correlation peak of a block
+        with structure in more than one direction: most of the band's
+        structure moved together, nothing else in the search window looked
+        alike, and the block is not a lone straight edge.
+        """
+        c = np.clip(self.peak, 0, 1) * np.clip(self.margin, 0, 1) * np.sqrt(np.clip(self.isotropy, 0, 1))
+        return np.nan_to_num(c)
 
 
-def block_match(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_size: int,
-                max_shift: int, min_std: float = 1e-3) -> tuple[np.ndarray, np.ndarray]:
-    """Return the shift and correlation peak of every grid node.
+def _taper(n: int, flat: float, radius: float) -> np.ndarray:
+    """Return a 1-D window of length ``n`` about its centre: 1 within ``flat``, cosine to 0 at ``radius``."""
+    x = np.abs(np.arange(n) - (n - 1) / 2.0)
+    ramp = np.clip((x - flat) / max(radius - flat, 1e-6), 0, 1)
+    return (0.5 * (1 + np.cos(np.pi * ramp))).astype(np.float32)
+
+
+def _patches(img: np.ndarray, xs: np.ndarray, ys: np.ndarray, p: int) -> np.ndarray:
+    """Return the ``(N, p, p)`` patches whose top-left pixels are ``(xs, ys)`` (a copy)."""
+    view = np.lib.stride_tricks.sliding_window_view(img, (p, p))
+    return view[ys, xs]
+
+
+def _upsampled(spec: np.ndarray, p: int) -> np.ndarray:
+    """Return the inverse real FFT of ``spec`` (``(n, p, p // 2 + 1)``) on a fine grid about shift 0.
+
+    The signal is evaluated exactly, as the trigonometric sum of its
+    spectrum: ``(n, k, k)`` samples ``1 / _UPSAMPLE`` pixel apart over
+    ``+- _REFINE_HALF`` (the matrix-multiply DFT of Guizar-Sicairos et al.
+    2008), as two matrix products over the whole batch.
+    """
+    n, _, q = spec.shape
+    k = int(round(2 * _REFINE_HALF * _UPSAMPLE)) + 1
+    off = (np.arange(k) - (k - 1) / 2.0) / _UPSAMPLE
+    wx = np.full(q, 2.0)                           # the Hermitian half stands for both halves
+    wx[0] = 1.0
+    if p % 2 == 0:
+        wx[-1] = 1.0
+    ey = np.exp(2j * np.pi / p * np.outer(off, sfft.fftfreq(p) * p)).astype(np.complex64)               # (k, p)
+    ex = (np.exp(2j * np.pi / p * np.outer(off, sfft.rfftfreq(p) * p)) * wx / (p * p)).astype(np.complex64)
+    rows = ey @ spec.astype(np.complex64).transpose(1, 0, 2).reshape(p, n * q)   # (k, n * q)
+    rows = rows.reshape(k, n, q).transpose(1, 0, 2).reshape(n * k, q)
+    return np.real(rows @ ex.T).reshape(n, k, k)
+
+
+def _refine(cross: np.ndarray, p: int) -> tuple[np.ndarray, np.ndarray]:
+    """Return the ``(n, 2)`` ``(dy, dx)`` maxima near shift 0 of the inverse FFT of ``cross``, and their heights.
+
+    The surface is sampled on the upsampled grid (:func:`_upsampled`); a
+    parabola through the best sample and its neighbours, per axis, places
+    the peak between samples (1/16 pixel apart, so what is left of the
+    parabola's own bias is negligible).
+    """
+    n = len(cross)
+    k = int(round(2 * _REFINE_HALF * _UPSAMPLE)) + 1
+    off = (np.arange(k) - (k - 1) / 2.0) / _UPSAMPLE
+    up = _upsampled(cross, p)
+    r, c = np.divmod(up.reshape(n, -1).argmax(1), k)
+    r, c = np.clip(r, 1, k - 2), np.clip(c, 1, k - 2)
+    idx = np.arange(n)
+
+    def vertex(lo, mid, hi):
+        den = lo - 2 * mid + hi
+        with np.errstate(divide="ignore", invalid="ignore"):
+            t = np.where(den < 0, 0.5 * (lo - hi) / den, 0.0)
+        return np.clip(t, -1.0, 1.0)
+
+    fy = vertex(up[idx, r - 1, c], up[idx, r, c], up[idx, r + 1, c])
+    fx = vertex(up[idx, r, c - 1], up[idx, r, c], up[idx, r, c + 1])
+    pos = np.column_stack([off[r] + fy / _UPSAMPLE, off[c] + fx / _UPSAMPLE])
+    return pos, up[idx, r, c]
+
+
+def _rival(score: np.ndarray, r: np.ndarray, c: np.ndarray) -> np.ndarray:
+    """Return, per block, the highest local maximum of ``score`` other than the peak at ``(r, c)``.
+
+    A local maximum is a sample at least as high as its 8 neighbours, inside
+    the window's rim; a smooth hill with no second top has no rival (0).
+    """
+    n, k, _ = score.shape
+    s = np.nan_to_num(score, nan=-2.0)
+    pad = np.pad(s, ((0, 0), (1, 1), (1, 1)), constant_values=-2.0)
+    top = np.ones_like(s, dtype=bool)
+    for dy in (-1, 0, 1):
+        for dx in (-1, 0, 1):
+            if dy or dx:
+                top &= s >= pad[:, 1 + dy:1 + dy + k, 1 + dx:1 + dx + k]
+    top[:, [0, -1], :] = False
+    top[:, :, [0, -1]] = False
+    yy, xx = np.mgrid[0:k, 0:k]
+    near = (np.abs(yy[None] - r[:, None, None]) <= 1) & (np.abs(xx[None] - c[:, None, None]) <= 1)
+    return np.where(top & ~near, s, 0.0).reshape(n, -1).max(1)
+
+
+def _dot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Return ``sum(x * y)`` of the real blocks whose real FFTs are ``a``, ``b`` (Parseval; up to a common factor)."""
+    w = np.full(a.shape[-1], 2.0)        # the Hermitian half stands for both halves
+    w[0] = 1.0
+    if a.shape[-2] % 2 == 0:
+        w[-1] = 1.0
+    return (np.real(a * np.conj(b)) * w).sum(axis=(1, 2))
+
+
+def _isotropy(spec: np.ndarray, p: int) -> np.ndarray:
+    """Return ``lambda_min / lambda_max`` of the gradient structure tensor of each block, from its real FFT.
+
+    The structure tensor (Harris & Stephens, "A combined corner and edge
+    detector", Alvey Vision Conference 1988, doi:10.5244/C.2.23) sums the
+    outer products of the gradient; a small ratio means a straight edge,
+    along which a block cannot be placed. The sums are taken in the Fourier
+    domain (Parseval), where the gradient is a product with ``2 pi i k``.
+    """
+    ky = sfft.fftfreq(p)[None, :, None]
+    kx = sfft.rfftfreq(p)[None, None, :]
+    gx, gy = spec * kx, spec * ky
+    jxx, jyy, jxy = _dot(gx, gx), _dot(gy, gy), _dot(gx, gy)
+    tr, det = jxx + jyy, jxx * jyy - jxy * jxy
+    disc = np.sqrt(np.maximum(tr * tr / 4 - det, 0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.nan_to_num((tr / 2 - disc) / (tr / 2 + disc))
+
+
+def _band(p: int, fine_sigma: float, coarse_sigma: float) -> np.ndarray:
+    """Return ``(p, p // 2 + 1)`` real-FFT weights: Gaussian low-pass (``fine_sigma``) times Gaussian high-pass."""
+    k2 = sfft.fftfreq(p)[:, None] ** 2 + sfft.rfftfreq(p)[None, :] ** 2
+    g = np.exp(-2 * np.pi ** 2 * fine_sigma ** 2 * k2)
+    if coarse_sigma > 0:
+        g = g * (1 - np.exp(-2 * np.pi ** 2 * coarse_sigma ** 2 * k2))
+    return g
+
+
+def _whiten(x: np.ndarray, power: float) -> np.ndarray:
+    """Return ``x / |x| ** power`` (0 where ``x`` is 0), per block."""
+    mag = np.abs(x)
+    floor = 1e-9 * mag.reshape(len(x), -1).max(1)[:, None, None] + 1e-30
+    return x / np.maximum(mag, floor) ** power
+
+
+class _Batch:
+    """The windowed spectra of one batch of blocks (fixed side) and what matching needs with them."""
+
+    def __init__(self, f, win, band, power):
+        self.win, self.band, self.power = win, band, power
+        self.p = f.shape[1]
+        self.f_spec = self.spectrum(f)
+        # peak height of a perfect match: the band's own inverse transform at 0
+        self.norm = float(sfft.irfft2(band, s=(self.p, self.p))[0, 0])
+
+    def spectrum(self, x):
+        return sfft.rfft2((x - x.mean(axis=(1, 2), keepdims=True)) * self.win)
+
+    def cross(self, m_spec):
+        return _whiten(np.conj(self.f_spec) * m_spec, self.power) * self.band
+
+
+def _filled(x: np.ndarray) -> np.ndarray:
+    """Return blocks ``x`` with NaN pixels set to their block's mean of the rest (0 if none)."""
+    bad = ~np.isfinite(x)
+    if not bad.any():
+        return x
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        mean = np.nan_to_num(np.nanmean(x, axis=(1, 2)))
+    return np.where(bad, mean[:, None, None], x).astype(np.float32)
+
+
+def _subpixel_moved(x: np.ndarray, shift: np.ndarray) -> np.ndarray:
+    """Return blocks ``x`` (``(n, q, q)``) resampled at ``p + shift`` (``shift`` ``(n, 2)`` ``(dy, dx)``) by a Fourier phase ramp."""
+    q = x.shape[1]
+    ky = sfft.fftfreq(q)[None, :, None]
+    kx = sfft.rfftfreq(q)[None, None, :]
+    ramp = np.exp(2j * np.pi * (ky * shift[:, 0, None, None] + kx * shift[:, 1, None, None]))
+    return sfft.irfft2(sfft.rfft2(x) * ramp, s=(q, q))
+
+
+def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power):
+    """Match the blocks at integer nodes ``xy`` (all inside); return shifts (dx, dy), peak, ncc, margin, isotropy."""
+    n = len(xy)
+    half = p // 2
+    f = _patches(f_img, xy[:, 0] - half, xy[:, 1] - half, p)
+    m = _patches(m_img, xy[:, 0] - half, xy[:, 1] - half, p)
+    # the window's flat centre must hold data in both; beyond it, missing pixels (a section's
+    # edge) take the block's mean, which the taper then fades out
+    core = np.s_[:, half - hs:half + hs + 1, half - hs:half + hs + 1]
+    good = np.isfinite(f[core]).all(axis=(1, 2)) & np.isfinite(m[core]).all(axis=(1, 2))
+    out = [np.full((n, 2), np.nan)] + [np.full(n, np.nan) for _ in range(4)]
+    if not good.any():
+        return out
+    f, m, xy = _filled(f[good]), _filled(m[good]), xy[good]
+    b = _Batch(f, win, band, power)
+    # pass 1: whole-pixel peak of the band-limited phase correlation within +- max_shift
+    surf = sfft.irfft2(b.cross(b.spectrum(m)), s=(p, p)) / b.norm
+    surf = np.roll(surf, (ms, ms), axis=(1, 2))[:, :2 * ms + 1, :2 * ms + 1]
+    k = 2 * ms + 1
+    r, c = np.divmod(surf.reshape(len(f), -1).argmax(1), k)
+    top = surf.reshape(len(f), -1).max(1)
+    rival = _rival(surf, r, c)
+    ok = (r > 0) & (r < k - 1) & (c > 0) & (c < k - 1)                 # an edge peak may lie beyond
+    # pass 2: cut the moving block again at the whole-pixel shift, so the window (the same on both
+    # sides) sees nearly the same content, then refine the peak by upsampled DFT
+    dy, dx = r - ms, c - ms
+    m2 = _filled(_patches(m_img, xy[:, 0] - half + dx, xy[:, 1] - half + dy, p))
+    m2_spec = b.spectrum(m2)
+    sub, height = _refine(b.cross(m2_spec), p)
+    # pass 3: move the moving block back by that sub-pixel shift too (Fourier shift of a wider cut,
+    # cropped) and measure what is left: the window's small pull toward no shift, removed
+    wide = _patches(m_img, xy[:, 0] - half + dx - _RIM, xy[:, 1] - half + dy - _RIM, p + 2 * _RIM)
+    m3 = _subpixel_moved(_filled(wide), sub)[:, _RIM:_RIM + p, _RIM:_RIM + p]
+    rest, height = _refine(b.cross(b.spectrum(m3)), p)
+    sub = sub + rest
+    # NCC of the band-limited, windowed blocks at the whole-pixel shift (for the trust threshold),
+    # by Parseval's theorem straight from the spectra
+    fg, mg = b.f_spec * b.band, m2_spec * b.band
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ncc = _dot(fg, mg) / np.sqrt(_dot(fg, fg) * _dot(mg, mg))
+        margin = np.clip(1.0 - np.maximum(rival, 0.0) / top, 0.0, 1.0)
+    ok &= np.isfinite(ncc) & (np.abs(sub) < 1.0).all(axis=1)
+    idx = np.flatnonzero(good)[ok]
+    out[0][idx] = np.column_stack([dx + sub[:, 1], dy + sub[:, 0]])[ok]
+    out[1][idx] = (height / b.norm)[ok]
+    out[2][idx] = ncc[ok]
+    out[3][idx] = margin[ok]
+    out[4][idx] = _isotropy(fg[ok], p)
+    return out
+
+
+def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_size: int,
+                 max_shift: int, *, fine_sigma: float = 1.0, coarse_sigma: float | None = None,
+                 power: float = 1.0) -> BlockMatches:
+    """Return the sub-pixel shift, peak height, correlation and peak margin of every grid node.
 
     Parameters
     ----------
     fixed, moving : ndarray, shape (H, W)
-        Images of the same frame and size. NaN marks pixels without data.
+        Images of the same frame and size. NaN marks pixels without data;
+        a block that meets any is left unmatched.
     nodes : ndarray, shape (N, 2)
-        Node positions ``(x, y)``; rounded to the nearest pixel.
+        Node positions ``(x, y)``; rounded to the nearest pixel. A node is
+        matched when ``half_size + 2 * max_shift + 1`` pixels around it lie
+        inside the images (:func:`block_reach`).
     half_size : int
-        The template is ``2 * half_size + 1`` pixels square.
+        Each block is ``2 * (half_size + max_shift) + 2`` pixels square under
+        a window that is flat out to ``half_size`` and falls to zero at the
+        block's edge.
     max_shift : int
         Shifts up to this many pixels in x and y are searched.
-    min_std : float
-        Templates whose standard deviation (relative to the image's) is below
-        this are left unmatched (blank areas).
+    fine_sigma : float
+        Structure finer than about this (Gaussian sigma, pixels of these
+        images) has little say: texture and dots that change from section to
+        section must not drive the match.
+    coarse_sigma : float, optional
+        Variations coarser than this have little say either (shading);
+        ``half_size`` by default.
+    power : float
+        Spectral whitening: the cross-power spectrum is divided by its
+        magnitude to this power (1 = phase correlation, 0 = plain
+        cross-correlation).
 
     Returns
     -------
-    shifts : ndarray, shape (N, 2), float64
-        ``(dx, dy)``; NaN where no match was made.
-    peaks : ndarray, shape (N,), float64
-        The normalised cross-correlation at the peak; NaN where unmatched.
+    BlockMatches
 
     Notes
     -----
-    The score is OpenCV's ``TM_CCOEFF_NORMED`` (zero-mean normalised
-    cross-correlation, [1]_). The integer peak is refined to sub-pixel
-    precision by a parabola through the peak and its two neighbours, per
-    axis (common practice, no source). Peaks on the edge of the search
-    window are rejected, since the true shift may lie beyond it.
+    Band-limited phase correlation [1]_: the whitened cross-power spectrum
+    of the two windowed blocks, weighted by a Gaussian band-pass, is
+    transformed back; its whole-pixel peak within ``+- max_shift`` gives a
+    first shift. The moving block is then cut again at that shift (so the
+    window, the same on both sides, sees nearly the same content and pulls
+    the answer toward no shift by a negligible amount) and the peak is
+    refined by evaluating the surface exactly between pixels, 1/16 pixel
+    apart, with the matrix-multiply DFT of Guizar-Sicairos et al. [2]_,
+    then a parabola through the best sample. Because the surface is
+    evaluated exactly between pixels there is no pull toward whole-pixel
+    shifts (peak locking), which an integer peak plus a parabola has.
+    Peaks on the edge of the search window are rejected, since the true
+    shift may lie beyond it. ``ncc`` is the zero-mean normalised
+    cross-correlation [3]_ of the band-passed, windowed blocks at the
+    whole-pixel shift.
 
     References
     ----------
-    .. [1] Lewis, J. P. "Fast normalized cross-correlation", Vision Interface
+    .. [1] Kuglin, C. D. & Hines, D. C. "The phase correlation image
+           alignment method", Proc. IEEE Int. Conf. on Cybernetics and
+           Society (1975) 163-165.
+    .. [2] Guizar-Sicairos, M., Thurman, S. T. & Fienup, J. R. "Efficient
+           subpixel image registration algorithms", Optics Letters 33:156-158
+           (2008). doi:10.1364/OL.33.000156
+    .. [3] Lewis, J. P. "Fast normalized cross-correlation", Vision Interface
            (1995) 120-123.
     """
     if fixed.shape != moving.shape or fixed.ndim != 2:
         raise ValueError(f"fixed and moving must be 2-D of one shape, got {fixed.shape}, {moving.shape}")
-    br, sr = int(half_size), int(max_shift)
-    if br < 2 or sr < 1:
-        raise ValueError(f"half_size must be >= 2 and max_shift >= 1, got {br}, {sr}")
-    f = np.asarray(fixed, np.float32)
-    m = np.asarray(moving, np.float32)
-    scale = float(np.nanstd(f)) or 1.0
+    hs, ms = int(half_size), int(max_shift)
+    if hs < 2 or ms < 1:
+        raise ValueError(f"half_size must be >= 2 and max_shift >= 1, got {hs}, {ms}")
+    f_img = np.asarray(fixed, np.float32)
+    m_img = np.asarray(moving, np.float32)
+    nodes = np.asarray(nodes, float).reshape(-1, 2)
     n = len(nodes)
-    shifts = np.full((n, 2), np.nan)
-    peaks = np.full(n, np.nan)
-    h, w = f.shape
-    for i, (x, y) in enumerate(np.rint(np.asarray(nodes, float)).astype(int)):
-        if x - br - sr < 0 or y - br - sr < 0 or x + br + sr >= w or y + br + sr >= h:
-            continue
-        tpl = f[y - br:y + br + 1, x - br:x + br + 1]
-        win = m[y - br - sr:y + br + sr + 1, x - br - sr:x + br + sr + 1]
-        if not (np.isfinite(tpl).all() and np.isfinite(win).all()) or tpl.std() < min_std * scale:
-            continue
-        score = cv2.matchTemplate(win, tpl, cv2.TM_CCOEFF_NORMED)
-        r, c = np.unravel_index(int(np.argmax(score)), score.shape)
-        if r in (0, 2 * sr) or c in (0, 2 * sr) or not np.isfinite(score[r, c]):
-            continue
-        dx = c - sr + _parabola(score[r, c - 1], score[r, c], score[r, c + 1])
-        dy = r - sr + _parabola(score[r - 1, c], score[r, c], score[r + 1, c])
-        shifts[i] = dx, dy
-        peaks[i] = score[r, c]
-    return shifts, peaks
+    out = BlockMatches(np.full((n, 2), np.nan), *(np.full(n, np.nan) for _ in range(4)))
+    p = 2 * (hs + ms) + 2
+    reach = block_reach(hs, ms)
+    h, w = f_img.shape
+    xy = np.rint(nodes).astype(int)
+    inside = np.flatnonzero((xy[:, 0] >= reach) & (xy[:, 1] >= reach) & (xy[:, 0] + reach < w)
+                            & (xy[:, 1] + reach < h))
+    if not inside.size:
+        return out
+    band = _band(p, float(fine_sigma), float(hs if coarse_sigma is None else coarse_sigma))
+    taper = _taper(p, hs, p / 2.0)
+    win = np.outer(taper, taper)
+    for a in range(0, inside.size, _BATCH):
+        sel = inside[a:a + _BATCH]
+        s, pk, c, g, i = _match_batch(f_img, m_img, xy[sel], p, hs, ms, win, band, float(power))
+        out.shifts[sel], out.peak[sel], out.ncc[sel], out.margin[sel], out.isotropy[sel] = s, pk, c, g, i
+    return out
+
+
+def block_reach(half_size: int, max_shift: int) -> int:
+    """Return how far (pixels) from a node :func:`match_blocks` reads: nodes need this much array around them."""
+    return (int(half_size) + int(max_shift) + 1) + int(max_shift) + 1 + _RIM
+
+
+def block_match(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_size: int,
+                max_shift: int, **kw) -> tuple[np.ndarray, np.ndarray]:
+    """Return ``(shifts, ncc)`` of :func:`match_blocks` (see there)."""
+    res = match_blocks(fixed, moving, nodes, half_size, max_shift, **kw)
+    return res.shifts, res.ncc
 
 
 def filter_vectors(shifts: np.ndarray, peaks: np.ndarray, min_ncc: float,
@@ -151,10 +461,14 @@ def block_contrast(image: np.ndarray, nodes: np.ndarray, half_size: int) -> np.n
     h, w = img.shape
     br = int(half_size)
     out = np.full(len(nodes), np.nan)
-    for i, (x, y) in enumerate(np.rint(np.asarray(nodes, float)).astype(int)):
-        if x - br < 0 or y - br < 0 or x + br >= w or y + br >= h:
-            continue
-        blk = img[y - br:y + br + 1, x - br:x + br + 1]
-        if np.isfinite(blk).all():
-            out[i] = float(blk.std())
+    xy = np.rint(np.asarray(nodes, float).reshape(-1, 2)).astype(int)
+    inside = np.flatnonzero((xy[:, 0] - br >= 0) & (xy[:, 1] - br >= 0) & (xy[:, 0] + br < w)
+                            & (xy[:, 1] + br < h))
+    for a in range(0, inside.size, _BATCH):
+        sel = inside[a:a + _BATCH]
+        blk = _patches(img, xy[sel, 0] - br, xy[sel, 1] - br, 2 * br + 1)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            sd = blk.std(axis=(1, 2))
+        out[sel] = np.where(np.isfinite(blk).all(axis=(1, 2)), sd, np.nan)
     return out

@@ -173,11 +173,19 @@ def match_pair(fa: FeatureSet, fb: FeatureSet, a: int, b: int, *, model: str, ra
     half = (scale - 1) / 2.0
     pa = fa.xy[ia] * scale + np.asarray(offset_a, float) + half
     pb = fb.xy[ib] * scale + np.asarray(offset_b, float) + half
-    fitted, inl = estimate_model(pb, pa, model, threshold * scale)
+    return pair_from_points(pa, pb, a, b, model=model, threshold=threshold * scale,
+                            min_inliers=min_inliers, stats=stats)
+
+
+def pair_from_points(pa: np.ndarray, pb: np.ndarray, a: int, b: int, *, model: str, threshold: float,
+                     min_inliers: int, stats: dict) -> PairResult:
+    """Return the pair's RANSAC model ``b -> a`` and inliers from candidate correspondences (full-res px)."""
+    empty = np.zeros((0, 2))
+    fitted, inl = estimate_model(pb, pa, model, threshold)
     stats["inliers"] = int(inl.sum())
-    stats["inlier_ratio"] = float(inl.sum() / len(ia))
+    stats["inlier_ratio"] = float(inl.sum() / max(1, len(pa)))
     if fitted is None or inl.sum() < min_inliers:
-        return fail("few_inliers")
+        return PairResult(a, b, empty, empty, None, stats, "few_inliers")
     err = np.linalg.norm(fitted.apply(pb[inl]) - pa[inl], axis=1)
     stats["residual_rms"] = float(np.sqrt(np.mean(err ** 2)))
     stats["residual_max"] = float(err.max())

@@ -13,13 +13,21 @@ class AlignSettings:
     Attributes
     ----------
     work_scale : int
-        Coarse alignment works on mosaics downsampled by this integer factor.
+        Coarse alignment detects features on overviews of the sections
+        reduced by at least this integer factor.
+    overview_size : int
+        ... and by enough that the overview's longer side is at most this
+        many pixels, so the feature task's memory does not grow with the
+        section (a small section keeps ``work_scale``).
     model : str
         ``"rigid"``, ``"similarity"`` or ``"affine"``: the section model of the coarse stage.
     neighbours : int
         Each section is matched to the next ``neighbours`` sections (1 = z+1 only; 2 = z+1, z+2).
     detector : str
-        ``"sift"``, ``"akaze"`` or ``"orb"``.
+        How section pairs are matched on the overviews: ``"correlation"``
+        (blocks matched by phase correlation, coarse to fine: for content
+        whose local features all look alike) or local features ``"sift"``,
+        ``"akaze"``, ``"orb"`` (with ``ratio`` and ``max_features``).
     ratio : float
         Largest nearest / second-nearest descriptor distance ratio of a kept feature match.
     ransac_threshold : float
@@ -42,7 +50,24 @@ class AlignSettings:
         relative to the block-match data; its effect grows with ``grid_spacing``
         squared, since the term penalises differences between neighbouring nodes.
     min_block_ncc : float
-        Block matches with a lower correlation peak are discarded.
+        Block matches with a lower correlation (of the band-passed blocks)
+        are discarded.
+    min_match_confidence : float
+        Block matches with a lower confidence (phase-correlation peak x peak
+        margin x square root of the block's isotropy, each in [0, 1]) are
+        discarded; the confidence is also the match's weight in the solve.
+    match_blur : float
+        Structure finer than about this (Gaussian sigma, full-resolution
+        pixels) has little say in block matching: vesicle-sized dots and
+        texture that change from section to section must not drive it.
+    region_nodes : int
+        Elastic region tasks cover square blocks of this many grid nodes on a
+        side (a task's memory is bounded by this, not by the section).
+    region_sections : int
+        ... and runs of this many sections (plus the ``neighbours`` after).
+    solve_halo : int
+        Each node block is solved with this many nodes of its neighbours
+        around it (the overlap of the block-by-block elastic solve).
     max_features : int
         Keep at most this many of the strongest features per section.
     max_neighbour_deviation : float
@@ -74,10 +99,11 @@ class AlignSettings:
         of its blocks damaged is flagged ``"damaged"``.
     """
 
-    work_scale: int = 4
+    work_scale: int = 2
+    overview_size: int = 2048
     model: str = "affine"
     neighbours: int = 2
-    detector: str = "sift"
+    detector: str = "correlation"
     ratio: float = 0.8
     ransac_threshold: float = 3.0
     min_inliers: int = 12
@@ -88,6 +114,11 @@ class AlignSettings:
     elastic_scale: int = 2
     smoothness_weight: float = 0.002
     min_block_ncc: float = 0.4
+    min_match_confidence: float = 0.05
+    match_blur: float = 3.0
+    region_nodes: int = 16
+    region_sections: int = 8
+    solve_halo: int = 4
     max_features: int = 4000
     max_neighbour_deviation: float = 6.0
     elastic_pull: float = 1e-3
@@ -101,7 +132,7 @@ class AlignSettings:
 #: Section models of the coarse stage.
 MODELS = ("rigid", "similarity", "affine")
 #: Feature detectors (OpenCV).
-DETECTORS = ("sift", "akaze", "orb")
+DETECTORS = ("correlation", "sift", "akaze", "orb")
 
 
 def check_settings(settings: AlignSettings) -> None:
@@ -121,6 +152,10 @@ def check_settings(settings: AlignSettings) -> None:
         raise InputError("[align] work_scale and elastic_scale must be >= 1")
     if settings.neighbours < 1:
         raise InputError("[align] neighbours must be >= 1")
+    if settings.overview_size < 64 or settings.region_nodes < 1 or settings.region_sections < 1:
+        raise InputError("[align] overview_size must be >= 64, region_nodes and region_sections >= 1")
+    if settings.solve_halo < 0 or settings.match_blur < 0 or not 0 <= settings.min_match_confidence < 1:
+        raise InputError("[align] solve_halo and match_blur must be >= 0, min_match_confidence in [0, 1)")
     if settings.elastic_rounds < 1:
         raise InputError("[align] elastic_rounds must be >= 1")
     if settings.grid_spacing < 2 * settings.elastic_scale:

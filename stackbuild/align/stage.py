@@ -10,42 +10,25 @@ from __future__ import annotations
 
 import shutil
 import tempfile
-from dataclasses import dataclass
+from dataclasses import replace
 from pathlib import Path
 
+import cv2
 import numpy as np
 
 from ..errors import InputError
 from ..folder import BuildFolder
 from ..transforms.records import SectionAlignment
 from ..transforms.types import Affine2D, DisplacementField
-from .blockmatch import block_contrast, block_match, filter_vectors, grid_nodes
-from .coarse import MODELS, PairResult, match_pair
-from .elastic import solve_fields
+from .fields import SolveTask, solve_block_job
+from .regions import (Grid, RegionTask, crop_alignment, make_grid, region_job, residual_job, residual_stats,
+                      window_links, windows)
+from .coarse import PairResult, match_pair, pair_from_points
+from .correlate import correlate_overviews
 from .features import DETECTORS, FeatureSet, detect_features
 from .settings import AlignSettings, check_settings
 from .solve import solve_affines
 from .sources import BuildSource
-
-
-@dataclass(frozen=True)
-class Grid:
-    """The elastic grid in the aligned frame, and the region rendered around it."""
-
-    origin: tuple[float, float]
-    spacing: float
-    shape: tuple[int, int]
-    x0: int
-    y0: int
-    width: int
-    height: int
-    scale: int
-
-    def node_pixels(self) -> np.ndarray:
-        """Return node positions ``(x, y)`` in working pixels of the rendered region."""
-        half = (self.scale - 1) / 2.0
-        full = grid_nodes(self.origin, self.spacing, self.shape)
-        return (full - np.array([self.x0, self.y0]) - half) / self.scale
 
 
 # ----------------------------------------------------------------- workers
@@ -54,59 +37,90 @@ def _origin(bbox) -> tuple[int, int]:
     return int(np.ceil(bbox[0] + 0.5)), int(np.ceil(bbox[1] + 0.5))
 
 
+def overview_scale(bbox, settings: AlignSettings) -> int:
+    """Return the reduction factor of a section's overview: at least ``work_scale``, and fine enough
+    that the overview's longer side is at most ``overview_size`` pixels.
+
+    The overview is what features are detected on, so its size bounds the
+    feature task's memory whatever the section's size (a 130k px section at
+    2048 px: scale 64), while a small section is never reduced below
+    ``work_scale`` (a 1024 px section keeps its 512 px at scale 2).
+    """
+    side = max(bbox[2] - bbox[0], bbox[3] - bbox[1])
+    return max(int(settings.work_scale), int(np.ceil(side / settings.overview_size)))
+
+
+def _structured_blocks(img: np.ndarray, size: int = 16) -> int:
+    """Return how many ``size`` px blocks of an overview hold data with some contrast (a blank section: 0)."""
+    h, w = (img.shape[0] // size) * size, (img.shape[1] // size) * size
+    if not h or not w:
+        return 0
+    blocks = img[:h, :w].reshape(h // size, size, w // size, size)
+    with np.errstate(invalid="ignore"):
+        sd = blocks.std(axis=(1, 3))
+        mean = np.abs(blocks.mean(axis=(1, 3)))
+    return int((np.isfinite(sd) & (sd > 1e-6 * (mean + 1.0))).sum())
+
+
 def features_job(item) -> dict:
-    """Detect one section's features at ``work_scale`` and save them to the scratch folder."""
+    """Render one section's overview; save its features (or, for ``correlation``, the overview) to scratch.
+
+    Feature positions are stored in full-resolution section pixels.
+    """
     source, z, settings, scratch = item
     bbox = source.bbox(z)
     x0, y0 = _origin(bbox)
-    s = settings.work_scale
+    s = overview_scale(bbox, settings)
     w = int((bbox[2] - 0.5 - x0) // s) + 1
     h = int((bbox[3] - 0.5 - y0) // s) + 1
     img = source.region(z, None, x0, y0, w, h, s)
+    if settings.detector == "correlation":
+        np.save(Path(scratch) / f"overview_{z}.npy", img)
+        return {"section": z, "features": _structured_blocks(img), "bbox": bbox, "scale": s,
+                "offset": (x0, y0)}
     fs = detect_features(img, settings.detector, settings.max_features)
-    np.savez(Path(scratch) / f"features_{z}.npz", xy=fs.xy, desc=fs.descriptors,
-             binary=fs.binary, offset=(x0, y0))
-    return {"section": z, "features": len(fs), "bbox": bbox}
+    xy = fs.xy * s + np.array([x0, y0]) + (s - 1) / 2.0
+    np.savez(Path(scratch) / f"features_{z}.npz", xy=xy, desc=fs.descriptors, binary=fs.binary, scale=s)
+    return {"section": z, "features": len(fs), "bbox": bbox, "scale": s}
 
 
 def _load_features(scratch, z):
     with np.load(Path(scratch) / f"features_{z}.npz") as f:
-        return FeatureSet(f["xy"], f["desc"], bool(f["binary"])), tuple(f["offset"])
+        return FeatureSet(f["xy"], f["desc"], bool(f["binary"])), int(f["scale"])
+
+
+def _overview_at(scratch, fact, scale):
+    """Return a section's stored overview resampled to ``scale`` (block means), and its full-res offset."""
+    img = np.load(Path(scratch) / f"overview_{fact['section']}.npy")
+    if fact["scale"] != scale:
+        f = fact["scale"] / scale
+        img = cv2.resize(img, (max(1, round(img.shape[1] * f)), max(1, round(img.shape[0] * f))),
+                         interpolation=cv2.INTER_AREA)
+    return img, np.asarray(fact["offset"], float)
 
 
 def pair_job(item) -> PairResult:
-    """Match the stored features of sections ``a`` and ``b`` and fit the coarse model."""
-    scratch, a, b, settings = item
-    fa, oa = _load_features(scratch, a)
-    fb, ob = _load_features(scratch, b)
-    return match_pair(fa, fb, a, b, model=settings.model, ratio=settings.ratio,
-                      threshold=settings.ransac_threshold, min_inliers=settings.min_inliers,
-                      scale=settings.work_scale, offset_a=oa, offset_b=ob)
-
-
-def render_job(item) -> np.ndarray:
-    """Render one section over the grid region through ``alignment``, save it, return its block contrast."""
-    source, alignment, grid, scratch, tag, radius = item
-    img = source.region(alignment.section, alignment, grid.x0, grid.y0, grid.width,
-                        grid.height, grid.scale)
-    np.save(Path(scratch) / f"{tag}_{alignment.section}.npy", img)
-    return block_contrast(img, grid.node_pixels(), radius).reshape(grid.shape)
-
-
-def block_job(item) -> tuple:
-    """Block-match two rendered sections on the grid; return full-res shifts, weights, peaks."""
-    scratch, a, b, grid, settings, tag = item
-    fa = np.load(Path(scratch) / f"{tag}_{a}.npy")
-    fb = np.load(Path(scratch) / f"{tag}_{b}.npy")
-    shifts, peaks = block_match(fa, fb, grid.node_pixels(), settings.match_half_size,
-                                settings.match_max_shift)
-    ny, nx = grid.shape
-    shifts = shifts.reshape(ny, nx, 2) * grid.scale
-    peaks = peaks.reshape(ny, nx)
-    ok = filter_vectors(shifts, peaks, settings.min_block_ncc, settings.max_neighbour_deviation)
-    tried = np.isfinite(peaks)
-    weights = np.where(ok, np.nan_to_num(peaks), 0.0)
-    return np.where(ok[..., None], shifts, np.nan), weights, int(tried.sum()), int(ok.sum())
+    """Match sections ``a`` and ``b`` (stored features, or overviews by correlation) and fit the coarse model."""
+    scratch, fa_, fb_, settings = item
+    a, b = fa_["section"], fb_["section"]
+    if settings.detector != "correlation":
+        fa, sa = _load_features(scratch, a)
+        fb, sb = _load_features(scratch, b)
+        return match_pair(fa, fb, a, b, model=settings.model, ratio=settings.ratio,
+                          threshold=settings.ransac_threshold * max(sa, sb), min_inliers=settings.min_inliers)
+    s = max(fa_["scale"], fb_["scale"])
+    stats = {"features_a": fa_["features"], "features_b": fb_["features"], "matches": 0, "inliers": 0,
+             "inlier_ratio": 0.0, "residual_rms": None, "residual_max": None}
+    empty = np.zeros((0, 2))
+    if min(fa_["features"], fb_["features"]) < settings.min_inliers:
+        return PairResult(a, b, empty, empty, None, stats, "few_features")
+    (ia, oa), (ib, ob) = _overview_at(scratch, fa_, s), _overview_at(scratch, fb_, s)
+    pa, pb, facts = correlate_overviews(ia, ib, threshold=settings.ransac_threshold,
+                                        min_confidence=settings.min_match_confidence)
+    # overview pixel j has its centre at section pixel offset + (j + 0.5) * s - 0.5 (block means)
+    pa, pb = oa + (pa + 0.5) * s - 0.5, ob + (pb + 0.5) * s - 0.5
+    return pair_from_points(pa, pb, a, b, model=settings.model, threshold=settings.ransac_threshold * s,
+                            min_inliers=settings.min_inliers, stats={**stats, "matches": facts["matches"]})
 
 
 # ------------------------------------------------------------------ stages
@@ -118,94 +132,130 @@ def _pairs(sections: list[int], neighbours: int) -> list[tuple[int, int]]:
 def _coarse(source, sections, settings, scratch, mapper, tick):
     facts = list(mapper(features_job, [(source, z, settings, scratch) for z in sections]))
     tick(len(sections))
-    pairs = list(mapper(pair_job, [(scratch, a, b, settings) for a, b in _pairs(sections, settings.neighbours)]))
+    by = {f["section"]: f for f in facts}
+    pairs = list(mapper(pair_job, [(scratch, by[a], by[b], settings)
+                                   for a, b in _pairs(sections, settings.neighbours)]))
     tick(len(pairs))
     solved = solve_affines(sections, pairs, settings.model,
-                           outlier_floor=settings.ransac_threshold * settings.work_scale)
+                           outlier_floor=settings.ransac_threshold * max(f["scale"] for f in facts))
     return {f["section"]: f for f in facts}, pairs, solved
 
 
-def _make_grid(source, affines: dict[int, Affine2D], settings: AlignSettings) -> Grid:
-    """Return the grid over the union of all sections' coarse footprints."""
-    corners = []
+def _grid(source, affines: dict[int, Affine2D], settings: AlignSettings) -> Grid:
+    """Return the elastic grid over the union of all sections' coarse footprints."""
+    boxes = []
     for z, aff in affines.items():
         x0, y0, x1, y1 = source.bbox(z)
-        box = np.array([[x0, y0], [x1, y0], [x0, y1], [x1, y1]])
-        corners.append(aff.inverse().apply(box))
-    c = np.concatenate(corners)
-    s = settings.elastic_scale
-    spacing = max(s, s * round(settings.grid_spacing / s))
-    lo, hi = np.floor(c.min(0) + 0.5), np.ceil(c.max(0) - 0.5)
-    shape = tuple(int(v) for v in np.maximum(1, np.floor((hi - lo) / spacing) + 1)[::-1])
-    span = (np.array(shape[::-1]) - 1) * spacing
-    origin = lo + ((hi - lo) - span) / 2.0
-    origin = np.round(origin)
-    margin = s * (settings.match_half_size + settings.match_max_shift + 2)
-    x0, y0 = int(origin[0] - (s - 1) / 2.0 - margin), int(origin[1] - (s - 1) / 2.0 - margin)
-    origin = (x0 + margin + (s - 1) / 2.0, y0 + margin + (s - 1) / 2.0)
-    width = int((span[0] + 2 * margin) // s) + 1
-    height = int((span[1] + 2 * margin) // s) + 1
-    return Grid(origin, float(spacing), shape, x0, y0, width, height, s)
+        boxes.append(aff.inverse().apply(np.array([[x0, y0], [x1, y0], [x0, y1], [x1, y1]])))
+    return make_grid(boxes, settings)
 
 
-def _measure(source, aligns, grid, settings, scratch, mapper, tag, links):
-    zs = sorted(aligns)
-    items = [(source, aligns[z], grid, scratch, tag, settings.match_half_size) for z in zs]
-    contrast = dict(zip(zs, mapper(render_job, items)))
-    out = list(mapper(block_job, [(scratch, a, b, grid, settings, tag) for a, b in links]))
-    for z in zs:   # a round's images are not needed again; keep the scratch folder small
-        (Path(scratch) / f"{tag}_{z}.npy").unlink(missing_ok=True)
-    return dict(zip(links, out)), contrast
+class _Plan:
+    """The node blocks and section windows of one align run, and the tasks built from them."""
 
+    def __init__(self, source, grid: Grid, sections, settings, scratch):
+        self.source, self.grid, self.sections, self.settings = source, grid, sections, settings
+        self.scratch = Path(scratch)
+        self.blocks = grid.block_slices(settings.region_nodes)
+        self.halo = max(2, settings.solve_halo)
 
-def _low_contrast(contrast: dict, settings: AlignSettings) -> dict[int, np.ndarray]:
-    """Return, per section, the grid nodes whose contrast is far below the stack's at that place."""
-    import warnings
-    stack = np.stack([contrast[z] for z in sorted(contrast)])
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)   # all-NaN nodes outside every section
-        med = np.nanmedian(stack, axis=0)
-    return {z: np.nan_to_num(contrast[z], nan=np.inf) < settings.damaged_contrast * med
-            for z in contrast}
+    def region_tasks(self, aligns, tag, neighbours, consecutive=False):
+        """Return one :class:`RegionTask` per node block x window."""
+        s = self.settings
+        wins = windows(self.sections, s.region_sections, neighbours)
+        tasks = []
+        for b, (rows, cols) in enumerate(self.blocks):
+            for w, (own, seen) in enumerate(wins):
+                if consecutive:   # each section with the next present one, across lost ones
+                    links = [(a, seen[i + 1]) for i, a in enumerate(seen[:-1]) if a in own]
+                else:
+                    links = window_links(own, seen, neighbours)
+                als = tuple(crop_alignment(aligns[z], self.grid, rows, cols, self.halo) for z in seen)
+                tasks.append(RegionTask(self.source, self.grid, b, rows, cols, als, tuple(links), tuple(own),
+                                        s, str(self.scratch / f"{tag}_b{b}_w{w}.npz")))
+        return tasks, len(wins)
+
+    def solve_tasks(self, tag, n_windows, fields):
+        """Return one :class:`SolveTask` per node block; writes each block's prior fields to scratch."""
+        ny, nx = self.grid.shape
+        h = self.halo
+        tasks = []
+        for b, (rows, cols) in enumerate(self.blocks):
+            hr = slice(max(0, rows.start - h), min(ny, rows.stop + h))
+            hc = slice(max(0, cols.start - h), min(nx, cols.stop + h))
+            meets = tuple((i, r, c) for i, (r, c) in enumerate(self.blocks)
+                          if r.start < hr.stop and r.stop > hr.start and c.start < hc.stop and c.stop > hc.start)
+            prior = None
+            if fields is not None:
+                prior = str(self.scratch / f"{tag}_prior_b{b}.npy")
+                np.save(prior, np.stack([fields[z][hr, hc] for z in self.sections]))
+            tasks.append(SolveTask(str(self.scratch), tag, b, rows, cols, meets, n_windows,
+                                   tuple(self.sections), prior, self.settings, hr, hc))
+        return tasks
+
+    def add_steps(self, tag, fields: dict | None) -> dict:
+        """Return ``fields`` (zeros if None) plus the blocks' increments, added in place (one copy in memory)."""
+        ny, nx = self.grid.shape
+        if fields is None:
+            fields = {z: np.zeros((ny, nx, 2), np.float32) for z in self.sections}
+        for b, (rows, cols) in enumerate(self.blocks):
+            arr = np.load(self.scratch / f"{tag}_step_b{b}.npy")
+            for k, z in enumerate(self.sections):
+                fields[z][rows, cols] += arr[k]
+        return fields
+
+    def clean(self, tag):
+        for p in self.scratch.glob(f"{tag}_*"):
+            p.unlink(missing_ok=True)
 
 
 def _elastic(source, sections, affines, settings, scratch, mapper, tick):
-    """Return the grid, every section's field, and the first round's block matches.
+    """Return the grid, every section's field, the first round's match counts and low-contrast shares.
 
-    Each round renders the sections through the current fields, measures what
-    is left by block matching, and solves for an increment; later rounds
-    remove the error of the first-order relation ``v_ab ~ u_b - u_a``.
+    Each round renders the sections through the current fields, region by
+    region, measures what is left by block matching, and solves for an
+    increment block by block; later rounds remove the error of the
+    first-order relation ``v_ab ~ u_b - u_a``.
     """
-    grid = _make_grid(source, affines, settings)
-    links = _pairs(sections, settings.neighbours)
+    grid = _grid(source, affines, settings)
+    plan = _Plan(source, grid, sections, settings, scratch)
     fields = None
-    first, low, share = {}, {}, {}
+    found, share = {}, {}
     for rnd in range(settings.elastic_rounds):
+        tag = f"round{rnd}"
         aligns = {z: SectionAlignment(z, affines[z], None if fields is None else
                                       DisplacementField(fields[z], grid.origin, grid.spacing))
                   for z in sections}
-        found, contrast = _measure(source, aligns, grid, settings, scratch, mapper, f"round{rnd}", links)
-        tick(len(links))
-        if not first:
-            first, low = found, _low_contrast(contrast, settings)
-            share = {z: float(low[z].sum() / max(1, np.isfinite(contrast[z]).sum())) for z in sections}
-        # damaged regions keep a tenth of their say (common practice, no source)
-        matches = {(a, b): (v[0], v[1] * np.where(low[a] | low[b], 0.1, 1.0)) for (a, b), v in found.items()}
-        step = solve_fields(sections, grid.shape, matches, smoothness_weight=settings.smoothness_weight,
-                            pull=settings.elastic_pull, max_gap=settings.neighbours, prior=fields,
-                            chain=settings.elastic_chain,
-                            affine_chain=settings.elastic_affine_chain)
-        fields = step if fields is None else {z: fields[z] + step[z] for z in sections}
-    return grid, fields, first, low, share
+        tasks, n_windows = plan.region_tasks(aligns, tag, settings.neighbours)
+        counts = list(mapper(region_job, tasks))
+        tick(len(_pairs(sections, settings.neighbours)))
+        solved = list(mapper(solve_block_job, plan.solve_tasks(tag, n_windows, fields)))
+        if rnd == 0:
+            for c in counts:
+                for key, (tried, ok) in c["counts"].items():
+                    t0, o0 = found.get(key, (0, 0))
+                    found[key] = (t0 + tried, o0 + ok)
+            low = {z: [0, 0] for z in sections}
+            for r in solved:
+                for z, (n_low, n) in r["low"].items():
+                    low[z][0] += n_low
+                    low[z][1] += n
+            share = {z: low[z][0] / max(1, low[z][1]) for z in sections}
+        fields = plan.add_steps(tag, fields)
+        plan.clean(tag)
+    return grid, plan, fields, found, share
 
 
-def _residual_stats(shifts: np.ndarray) -> dict:
-    mag = np.hypot(shifts[..., 0], shifts[..., 1])
-    mag = mag[np.isfinite(mag)]
-    if not mag.size:
-        return {"n": 0, "rms": None, "p95": None, "max": None}
-    return {"n": int(mag.size), "rms": float(np.sqrt(np.mean(mag ** 2))),
-            "p95": float(np.percentile(mag, 95)), "max": float(mag.max())}
+def _final_residuals(plan, aligns, mapper) -> dict:
+    """Return ``{(a, b): stats}`` of the block matches left between each section and the next present one."""
+    tasks, _ = plan.region_tasks(aligns, "final", 1, consecutive=True)
+    tasks = [replace(t, out="") for t in tasks]
+    hist = {}
+    for res in mapper(residual_job, tasks):
+        for key, (h, sq, mx) in res.items():
+            h0, sq0, mx0 = hist.get(key, (0, 0.0, 0.0))
+            hist[key] = (h0 + h, sq0 + sq, max(mx0, mx))
+    return {key: residual_stats(*v) for key, v in hist.items()}
 
 
 def _flags(sections, facts, solved, found, share, settings) -> dict[int, list[str]]:
@@ -223,8 +273,8 @@ def _flags(sections, facts, solved, found, share, settings) -> dict[int, list[st
     if found:
         frac = {}
         for z in sections:
-            tried = sum(v[2] for k, v in found.items() if z in k)
-            ok = sum(v[3] for k, v in found.items() if z in k)
+            tried = sum(v[0] for k, v in found.items() if z in k)
+            ok = sum(v[1] for k, v in found.items() if z in k)
             frac[z] = ok / tried if tried else None
         known = [f for f in frac.values() if f is not None]
         med = float(np.median(known)) if known else 0.0
@@ -290,27 +340,27 @@ def align_sections(source, settings: AlignSettings, *, mapper=map, progress=None
         facts, pairs, solved = _coarse(source, sections, settings, scratch, mapper, tick)
         fields, found, grid, share = {}, {}, None, {}
         if settings.elastic and len(sections) >= 3:
-            grid, fields, found, _, share = _elastic(source, sections, solved.affines, settings, scratch,
-                                           mapper, tick)
+            grid, plan, fields, found, share = _elastic(source, sections, solved.affines, settings, scratch,
+                                                        mapper, tick)
+        else:
+            grid = _grid(source, solved.affines, settings)
+            plan = _Plan(source, grid, sections, settings, scratch)
         flags = _flags(sections, facts, solved, found, share, settings)
         aligns = {}
         for z in sections:
             disp = None
-            if grid is not None:
+            if fields:
                 disp = DisplacementField(fields[z], grid.origin, grid.spacing)
             stats = {"coarse": _coarse_stats(z, facts, pairs, solved)}
             if disp is not None:
                 stats["elastic"] = disp.magnitude_stats()
                 stats["elastic"]["low_contrast_fraction"] = share[z]
             aligns[z] = SectionAlignment(z, solved.affines[z], disp, flags[z], stats)
-        if grid is None:
-            grid = _make_grid(source, solved.affines, settings)
-        links = list(zip(sections[:-1], sections[1:]))
-        final, _ = _measure(source, aligns, grid, settings, scratch, mapper, "final", links)
-        tick(len(links))
-        for (a, b), v in final.items():
-            aligns[a].stats["residual_next"] = {"section": b, **_residual_stats(v[0])}
-            aligns[b].stats["residual_previous"] = {"section": a, **_residual_stats(v[0])}
+        final = _final_residuals(plan, aligns, mapper)
+        tick(len(sections) - 1)
+        for (a, b), st in final.items():
+            aligns[a].stats["residual_next"] = {"section": b, **st}
+            aligns[b].stats["residual_previous"] = {"section": a, **st}
         return aligns
     finally:
         if own:

@@ -4,12 +4,17 @@ Run: ``python tests/benchmarks/bench_align.py`` (1024 px working size) or ``--fu
 (4096 px, the size the brief names). Everything is measured in one run and
 printed side by side. ``--tradeoff`` instead sweeps ``elastic_chain`` over the
 ground-truth stacks of the align tests (invented data; about two minutes):
-random-warp residual against slant kept.
+random-warp residual against slant kept. ``--memory`` builds standard stacks of 3x3 and
+7x7 tiles of 1024 px and prints the align process's peak memory and CPU beside render's
+on the same volume, then the modelled production size (``--production`` alone).
+``--accuracy [FAMILY/VARIANT ...] --seeds 0,1,2`` prints the identifiable residual
+(stackbuild.synth.residual) of align on the named synthetic stacks.
 """
 from __future__ import annotations
 
 import argparse
 import time
+from pathlib import Path
 
 import cv2
 import numpy as np
@@ -106,13 +111,147 @@ def tradeoff(weights=(0.0, 0.01, 0.02, 0.03, 0.1)):
         print(f"  {c:5.3f}   {out[0][0]:10.3f}  {out[0][1]:5.3f}  {out[1]:12.3f}  {out[2]:17.3f}")
 
 
+def _true_stitch(sample: Path, build: Path) -> None:
+    """Write stitch records with the TRUE tile positions (isolates alignment from stitching)."""
+    from stackbuild.manifest import read_tile_manifest
+    from stackbuild.synth import load_truth
+    from stackbuild.transforms import SectionStitch, TilePlacement, TransformStore
+    manifest = read_tile_manifest(sample / "tiles.csv")
+    truth = load_truth(sample)
+    store = TransformStore(build / "transforms")
+    for z in manifest.sections:
+        pos = truth.tile_positions(z)
+        tiles = [TilePlacement(t.tile, str(t.path), t.width, t.height, t.x, t.y, *pos[t.tile])
+                 for t in manifest.section_tiles(z)]
+        store.save_stitch(SectionStitch(z, manifest.section_tiles(z)[0].dtype, tiles))
+
+
+def _child(fn, *args):
+    """Run ``fn(*args)`` in a fresh process; return (its result, CPU seconds, peak RSS bytes)."""
+    import multiprocessing as mp
+    ctx = mp.get_context("spawn")
+    with ctx.Pool(1, maxtasksperchild=1) as pool:
+        return pool.apply(_measured, (fn, args))
+
+
+def _measured(fn, args):
+    import resource
+    r0 = resource.getrusage(resource.RUSAGE_SELF)
+    out = fn(*args)
+    r1 = resource.getrusage(resource.RUSAGE_SELF)
+    cpu = (r1.ru_utime - r0.ru_utime) + (r1.ru_stime - r0.ru_stime)
+    return out, cpu, r1.ru_maxrss * 1024
+
+
+def _align_only(build):
+    from stackbuild.align.stage import run_align
+    al = run_align(build, AlignSettings())
+    return {z: a.flags for z, a in al.items() if a.flags}
+
+
+def _render_only(build):
+    """Render level 0 of every plane from the tiles (the render stage's pixel work), in this process."""
+    from stackbuild.render.canvas import compute_canvas
+    from stackbuild.render.lazy import RenderPlan, level0
+    from stackbuild.render.settings import RenderSettings
+    from stackbuild.transforms import TransformStore
+    store = TransformStore(Path(build) / "transforms")
+    zs = store.sections_with("stitch")
+    canvas = compute_canvas(store, zs, [], 4.0, 40.0)
+    vol = level0(RenderPlan.from_canvas(store.root, canvas, RenderSettings()))
+    for z in range(vol.shape[0]):           # plane by plane, as the writer goes
+        vol[z].compute(scheduler="synchronous")
+    return list(vol.shape)
+
+
+def memory(grids=((3, 3), (7, 7)), tile=1024, sections=4, root="/tmp/bench_align_memory"):
+    """Print the align process's peak memory and CPU beside render's, for sections of ``grids`` tiles."""
+    from stackbuild.synth import generate
+    from stackbuild.synth.variants import variant_params
+    rows = []
+    for g in grids:
+        base = Path(root) / f"{g[0]}x{g[1]}"
+        if not (base / "sample" / "tiles.csv").exists():
+            generate(base / "sample", variant_params("standard", "base", 0, grid=g, tile_size=tile,
+                                                     sections=sections))
+        import shutil
+        shutil.rmtree(base / "build", ignore_errors=True)
+        _true_stitch(base / "sample", base / "build")
+        flags, a_cpu, a_rss = _child(_align_only, str(base / "build"))
+        shape, r_cpu, r_rss = _child(_render_only, str(base / "build"))
+        rows.append((g, a_rss, a_cpu, r_rss, r_cpu, shape, flags))
+    print(f"sections of n x n tiles of {tile} px, {sections} sections, standard phantom, true tile positions;"
+          " every stage in its own process (mapper = map: the whole stage in one process)")
+    print("  tiles   align peak MB  align CPU s   render peak MB  render CPU s   align/render CPU")
+    for g, a_rss, a_cpu, r_rss, r_cpu, shape, flags in rows:
+        print(f"  {g[0]}x{g[1]}   {a_rss / 1e6:13.0f}  {a_cpu:11.1f}   {r_rss / 1e6:14.0f}  {r_cpu:12.1f}"
+              f"   {a_cpu / r_cpu:16.2f}   {flags or ''}")
+    print(f"  align peak memory {grids[-1][0]}x{grids[-1][1]} / {grids[0][0]}x{grids[0][1]}: "
+          f"{rows[-1][1] / rows[0][1]:.2f} (issue target <= 1.3)")
+
+
+def production(section_px=130_000, n_sections=400, tile=4096):
+    """Print the modelled task kinds of align at production size (stackbuild.align.budget)."""
+    from stackbuild.align.budget import align_budget
+    r = align_budget(section_px, n_sections, tile)
+    print(f"production: {n_sections} sections of {section_px} px (tiles {tile} px, 16-bit); "
+          f"grid {r['grid_nodes']} x {r['grid_nodes']} nodes, {r['node_blocks']} node blocks x "
+          f"{r['windows']} section windows")
+    print("  task kind        count     GB each   holds")
+    for t in r["tasks"]:
+        print(f"  {t.name:15s} {t.count:8d}  {t.bytes_each / 1e9:8.2f}   {t.note}")
+    print(f"  largest task {r['largest_task_bytes'] / 1e9:.2f} GB (target < 4); "
+          f"driver {r['driver_bytes'] / 1e9:.2f} GB (target < 8)")
+
+
+def accuracy(cases, seeds, root="/tmp/bench_align_accuracy"):
+    """Print the identifiable residual (stackbuild.synth.residual) of align on named synthetic stacks."""
+    import shutil
+    from stackbuild.align.stage import run_align
+    from stackbuild.synth import generate
+    from stackbuild.synth.residual import identifiable_residual
+    from stackbuild.synth.variants import variant_params
+    print("  case                     rms    p95    max   last   flags   (px; true tile positions)")
+    for family, variant in cases:
+        for seed in seeds:
+            base = Path(root) / f"{family}-{variant}-{seed}"
+            if not (base / "sample" / "tiles.csv").exists():
+                generate(base / "sample", variant_params(family, variant, seed))
+            shutil.rmtree(base / "build", ignore_errors=True)
+            _true_stitch(base / "sample", base / "build")
+            al = run_align(base / "build", AlignSettings())
+            r = identifiable_residual(base / "build", base / "sample")
+            last = r.per_section[max(r.per_section)]["rms"]
+            flags = {z: a.flags for z, a in al.items() if set(a.flags) & {"damaged", "interpolated"}}
+            print(f"  {family + '/' + variant + '/' + str(seed):22s} {r.rms:6.2f} {r.p95:6.2f} {r.max:6.2f} "
+                  f"{last:6.2f}   {flags or ''}", flush=True)
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--full", action="store_true", help="4096 px working size (default 1024)")
     ap.add_argument("--tradeoff", action="store_true", help="sweep elastic_chain on ground-truth stacks")
+    ap.add_argument("--memory", action="store_true",
+                    help="align peak memory and CPU beside render's, 3x3 and 7x7 tiles of 1024 px")
+    ap.add_argument("--production", action="store_true", help="modelled task memory at production size")
+    ap.add_argument("--accuracy", nargs="*", metavar="FAMILY/VARIANT",
+                    help="identifiable residual on synthetic stacks (default: every family and variant)")
+    ap.add_argument("--seeds", default="0,1,2", help="seeds for --accuracy")
     args = ap.parse_args()
     if args.tradeoff:
         tradeoff()
+        return
+    if args.memory:
+        memory()
+        production()
+        return
+    if args.production:
+        production()
+        return
+    if args.accuracy is not None:
+        cases = [tuple(c.split("/")) for c in args.accuracy] or [
+            (f, v) for f in ("standard", "realistic") for v in ("base", "dense", "small", "long")]
+        accuracy(cases, [int(x) for x in args.seeds.split(",")])
         return
     n = 4096 if args.full else 1024
     s = AlignSettings()

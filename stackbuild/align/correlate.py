@@ -1,0 +1,147 @@
+"""Coarse correspondences of two section overviews by correlation, coarse to fine (no local features).
+
+Pure functions of arrays. Where local feature descriptors fail (content that
+repeats itself, such as packed cell profiles whose junctions all look alike,
+and dots that are new in every section), correlation of whole blocks still
+finds the structure that persists. The overviews are reduced 2x at a time
+until the coarsest is about ``coarsest`` pixels across; there the whole-image
+phase correlation gives the shift, and at every level from the coarsest to
+the overview itself, blocks on a grid are matched through the model so far
+(:func:`.blockmatch.match_blocks`), and RANSAC fits a new model to the trusted
+matches. The answer is the last level's inlier correspondences.
+"""
+from __future__ import annotations
+
+import cv2
+import numpy as np
+
+from .blockmatch import block_reach, match_blocks
+from .coarse import estimate_model
+
+
+def _filled(img: np.ndarray) -> np.ndarray:
+    """Return ``img`` with NaN set to the mean of the rest (0 if all NaN)."""
+    ok = np.isfinite(img)
+    return np.where(ok, img, float(img[ok].mean()) if ok.any() else 0.0).astype(np.float32)
+
+
+def _halve(img: np.ndarray) -> np.ndarray:
+    """Return the 2x2 block mean of ``img`` (NaN where any of the four is NaN; odd edge dropped)."""
+    h, w = img.shape[0] // 2 * 2, img.shape[1] // 2 * 2
+    x = img[:h, :w]
+    return 0.25 * (x[0::2, 0::2] + x[1::2, 0::2] + x[0::2, 1::2] + x[1::2, 1::2])
+
+
+def global_shift(a: np.ndarray, b: np.ndarray, blur: float = 1.0) -> tuple[np.ndarray, float]:
+    """Return ``(dx, dy)`` such that ``b(p + d) ~ a(p)``, and the phase-correlation peak height.
+
+    Both images are filled (NaN -> mean), tapered at their edges, zero-padded
+    to a common size, and phase-correlated with a Gaussian low-pass of sigma
+    ``blur`` pixels [1]_.
+
+    References
+    ----------
+    .. [1] Kuglin, C. D. & Hines, D. C. "The phase correlation image
+           alignment method", Proc. IEEE Int. Conf. on Cybernetics and
+           Society (1975) 163-165.
+    """
+    h = max(a.shape[0], b.shape[0]) * 2
+    w = max(a.shape[1], b.shape[1]) * 2
+
+    def prep(x):
+        x = _filled(x)
+        x = x - x.mean()
+        wy = np.hanning(x.shape[0])[:, None]
+        wx = np.hanning(x.shape[1])[None, :]
+        out = np.zeros((h, w), np.float32)
+        out[:x.shape[0], :x.shape[1]] = x * wy * wx
+        return np.fft.rfft2(out)
+
+    fa, fb = prep(a), prep(b)
+    cross = np.conj(fa) * fb
+    cross /= np.maximum(np.abs(cross), 1e-12 * np.abs(cross).max() + 1e-30)
+    ky = np.fft.fftfreq(h)[:, None]
+    kx = np.fft.rfftfreq(w)[None, :]
+    cross *= np.exp(-2 * np.pi ** 2 * blur ** 2 * (kx ** 2 + ky ** 2))
+    surf = np.fft.irfft2(cross, s=(h, w))
+    r, c = np.unravel_index(int(np.argmax(surf)), surf.shape)
+    dy = r if r < h // 2 else r - h
+    dx = c if c < w // 2 else c - w
+    norm = float(np.fft.irfft2(np.exp(-2 * np.pi ** 2 * blur ** 2 * (kx ** 2 + ky ** 2)), s=(h, w))[0, 0])
+    return np.array([dx, dy], float), float(surf[r, c] / norm)
+
+
+def _grid(shape, spacing, reach):
+    h, w = shape
+    xs = np.arange(reach, w - reach, spacing, dtype=float)
+    ys = np.arange(reach, h - reach, spacing, dtype=float)
+    gx, gy = np.meshgrid(xs, ys)
+    return np.column_stack([gx.ravel(), gy.ravel()])
+
+
+def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, max_shift: int = 8,
+                        coarsest: int = 192, threshold: float = 2.0, min_confidence: float = 0.15,
+                        blur: float = 1.0) -> tuple[np.ndarray, np.ndarray, dict]:
+    """Return corresponding points ``(pa, pb)`` (overview pixels ``(x, y)``) of two overviews, and facts.
+
+    Parameters
+    ----------
+    a, b : ndarray
+        Overviews of two sections at the same scale (NaN outside the sections).
+    half_size, max_shift : int
+        Block matching at every level (pixels of that level).
+    coarsest : int
+        The coarsest level is the first whose longer side is at most this.
+    threshold : float
+        RANSAC inlier threshold, pixels of each level.
+    min_confidence : float
+        Block matches below this confidence are not used.
+    blur : float
+        Low-pass of the correlations (sigma, pixels of each level).
+
+    Returns
+    -------
+    pa, pb : ndarray, shape (N, 2)
+        Inlier correspondences of the finest level (``b`` shows at ``pb``
+        what ``a`` shows at ``pa``); empty when no level gave a model.
+    facts : dict
+        ``levels``, ``shift_peak`` (global phase-correlation peak), ``matches``
+        and ``inliers`` of the finest level reached.
+    """
+    pyr_a, pyr_b = [np.asarray(a, np.float32)], [np.asarray(b, np.float32)]
+    while max(pyr_a[-1].shape) > coarsest and min(pyr_a[-1].shape) > 32 and min(pyr_b[-1].shape) > 32:
+        pyr_a.append(_halve(pyr_a[-1]))
+        pyr_b.append(_halve(pyr_b[-1]))
+    shift, peak = global_shift(pyr_a[-1], pyr_b[-1], blur)
+    model = np.array([[1.0, 0.0, shift[0]], [0.0, 1.0, shift[1]]])      # a-level px -> b-level px
+    facts = {"levels": len(pyr_a), "shift_peak": peak, "matches": 0, "inliers": 0}
+    empty = np.zeros((0, 2))
+    pa = pb = empty
+    reach = block_reach(half_size, max_shift)
+    for lvl in range(len(pyr_a) - 1, -1, -1):
+        la, lb = pyr_a[lvl], pyr_b[lvl]
+        # b seen through the model in a's frame: warped(p) = b(model p)
+        warped = cv2.warpAffine(lb, model.astype(np.float64), (la.shape[1], la.shape[0]),
+                                flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP, borderMode=cv2.BORDER_CONSTANT,
+                                borderValue=float("nan"))
+        nodes = _grid(la.shape, max(half_size, 8), reach)
+        if not len(nodes):
+            continue
+        res = match_blocks(la, warped, nodes, half_size, max_shift, fine_sigma=blur)
+        ok = res.confidence >= min_confidence
+        facts["matches"] = int(ok.sum())
+        if ok.sum() < 6:
+            continue
+        p = nodes[ok]
+        q = (p + res.shifts[ok]) @ model[:, :2].T + model[:, 2]
+        fitted, inl = estimate_model(p, q, "affine", threshold)
+        if fitted is None or inl.sum() < 6:
+            continue
+        facts["inliers"] = int(inl.sum())
+        pa, pb = p[inl], q[inl]
+        model = fitted.matrix.copy()
+        if lvl:
+            model[:, 2] *= 2.0      # the same map one level finer: p' = 2 p + 0.5 on both sides
+            model[:, 2] += 0.5 * (1.0 - model[:, :2].sum(axis=1))
+            pa, pb = empty, empty
+    return pa, pb, facts

@@ -1,0 +1,217 @@
+"""Region tasks of the elastic step: one block of grid nodes x one run of consecutive sections.
+
+The elastic grid (one grid in the aligned frame, shared by all sections) is
+cut into square blocks of nodes; the present sections into runs ("windows")
+of ``window`` sections plus the ``neighbours`` that follow, so that every
+section link ``(a, b)`` with ``b - a <= neighbours`` lies in exactly one
+window (the one whose first ``window`` sections hold ``a``). One task renders
+each section of its window over its node block (plus the margin block
+matching reads), at ``elastic_scale``, through the sampler the volume is
+rendered with, and matches its links there. It holds ``window + neighbours``
+images of one region, never a section; it writes its matches to one small
+file in the scratch folder and returns only counts.
+
+Production size (grid spacing 128 px, elastic scale 2, blocks of 16 x 16
+nodes, match half size 24 and max shift 12 working px): a region is
+``16 * 64 + 2 * 70`` = 1164 working px square, 5.4 MB as float32; a window of
+8 + 2 sections holds 10 of them plus the sampler's tile cache.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+import numpy as np
+
+from ..transforms.records import SectionAlignment
+from ..transforms.types import DisplacementField
+from .blockmatch import block_contrast, block_reach, filter_vectors, grid_nodes, match_blocks
+
+
+@dataclass(frozen=True)
+class Grid:
+    """The elastic grid in the aligned frame: node ``[j, i]`` sits at ``origin + spacing * (i, j)``."""
+
+    origin: tuple[float, float]
+    spacing: float
+    shape: tuple[int, int]
+    scale: int
+    reach: int
+
+    def block_slices(self, size: int) -> list[tuple[slice, slice]]:
+        """Return the ``(rows, cols)`` node slices of square blocks of ``size`` nodes covering the grid."""
+        ny, nx = self.shape
+        return [(slice(r, min(r + size, ny)), slice(c, min(c + size, nx)))
+                for r in range(0, ny, size) for c in range(0, nx, size)]
+
+    def region(self, rows: slice, cols: slice) -> tuple[int, int, int, int]:
+        """Return ``(x0, y0, width, height)``: the working-pixel region a node block needs (``x0, y0`` full-res)."""
+        s = self.scale
+        half = (s - 1) / 2.0
+        gx0 = self.origin[0] + self.spacing * cols.start
+        gy0 = self.origin[1] + self.spacing * rows.start
+        margin = s * (self.reach + 1)
+        x0 = int(np.floor(gx0 - half - margin))
+        y0 = int(np.floor(gy0 - half - margin))
+        width = int(np.ceil((self.spacing * (cols.stop - cols.start - 1) + 2 * margin) / s)) + 2
+        height = int(np.ceil((self.spacing * (rows.stop - rows.start - 1) + 2 * margin) / s)) + 2
+        return x0, y0, width, height
+
+    def node_pixels(self, rows: slice, cols: slice, x0: int, y0: int) -> np.ndarray:
+        """Return the block's node positions ``(x, y)`` in working pixels of the region starting at ``(x0, y0)``."""
+        half = (self.scale - 1) / 2.0
+        o = (self.origin[0] + self.spacing * cols.start, self.origin[1] + self.spacing * rows.start)
+        full = grid_nodes(o, self.spacing, (rows.stop - rows.start, cols.stop - cols.start))
+        return (full - np.array([x0, y0]) - half) / self.scale
+
+
+def make_grid(boxes: list[np.ndarray], settings) -> Grid:
+    """Return the grid over the union of the sections' coarse footprints (``(4, 2)`` corner arrays)."""
+    c = np.concatenate(boxes)
+    s = settings.elastic_scale
+    spacing = max(s, s * round(settings.grid_spacing / s))
+    lo, hi = np.floor(c.min(0) + 0.5), np.ceil(c.max(0) - 0.5)
+    shape = tuple(int(v) for v in np.maximum(1, np.floor((hi - lo) / spacing) + 1)[::-1])
+    span = (np.array(shape[::-1]) - 1) * spacing
+    origin = np.round(lo + ((hi - lo) - span) / 2.0)
+    return Grid((float(origin[0]), float(origin[1])), float(spacing), shape, s,
+                block_reach(settings.match_half_size, settings.match_max_shift))
+
+
+def windows(sections: list[int], size: int, neighbours: int) -> list[tuple[list[int], list[int]]]:
+    """Return ``(own, seen)`` section lists: runs of ``size`` sections and the ``neighbours`` after each."""
+    return [(sections[i:i + size], sections[i:i + size + neighbours]) for i in range(0, len(sections), size)]
+
+
+def window_links(own: list[int], seen: list[int], neighbours: int) -> list[tuple[int, int]]:
+    """Return the links ``(a, b)``, ``a`` in ``own``, ``b`` in ``seen``, ``0 < b - a <= neighbours``."""
+    present = set(seen)
+    return [(a, a + k) for a in own for k in range(1, neighbours + 1) if a + k in present]
+
+
+def crop_alignment(al: SectionAlignment, grid: Grid, rows: slice, cols: slice, halo: int = 2) -> SectionAlignment:
+    """Return ``al`` with its field cut to the node block and ``halo`` nodes around it (small to pickle).
+
+    Outside the cut the field is held at its edge nodes; the region a task
+    renders lies within ``reach`` working pixels of the block, so the halo
+    must cover that (``halo`` nodes of ``spacing``).
+    """
+    if al.displacement is None:
+        return al
+    d = al.displacement
+    ny, nx = d.vectors.shape[:2]
+    r0, r1 = max(0, rows.start - halo), min(ny, rows.stop + halo)
+    c0, c1 = max(0, cols.start - halo), min(nx, cols.stop + halo)
+    origin = (d.origin[0] + d.spacing * c0, d.origin[1] + d.spacing * r0)
+    return replace(al, displacement=DisplacementField(d.vectors[r0:r1, c0:c1], origin, d.spacing))
+
+
+@dataclass(frozen=True)
+class RegionTask:
+    """One node block x one window of sections (small and picklable)."""
+
+    source: object
+    grid: Grid
+    block: int
+    rows: slice
+    cols: slice
+    alignments: tuple
+    links: tuple
+    own: tuple
+    settings: object
+    out: str
+
+
+def _match_links(task: RegionTask):
+    """Yield ``(link, shifts (by, bx, 2) full-res px with NaN = untrusted, weights, tried, contrast)``."""
+    s = task.settings
+    g = task.grid
+    x0, y0, w, h = g.region(task.rows, task.cols)
+    images = {al.section: task.source.region(al.section, al, x0, y0, w, h, g.scale) for al in task.alignments}
+    nodes = g.node_pixels(task.rows, task.cols, x0, y0)
+    by, bx = task.rows.stop - task.rows.start, task.cols.stop - task.cols.start
+    contrast = np.stack([block_contrast(images[z], nodes, s.match_half_size).reshape(by, bx)
+                         for z in task.own]) if task.own else np.zeros((0, by, bx))
+    for a, b in task.links:
+        res = match_blocks(images[a], images[b], nodes, s.match_half_size, s.match_max_shift,
+                           fine_sigma=s.match_blur / g.scale)
+        sh = res.shifts.reshape(by, bx, 2) * g.scale
+        conf = res.confidence.reshape(by, bx)
+        ok = filter_vectors(sh, res.ncc.reshape(by, bx), s.min_block_ncc, s.max_neighbour_deviation)
+        ok &= conf >= s.min_match_confidence
+        yield (a, b), np.where(ok[..., None], sh, np.nan), np.where(ok, res.ncc.reshape(by, bx), 0.0), \
+            int(np.isfinite(res.peak).sum()), contrast
+
+
+def region_job(task: RegionTask) -> dict:
+    """Render a window's sections over one node block, match its links, save them; return counts.
+
+    The file ``task.out`` holds ``shifts`` ``(L, by, bx, 2)`` full-res px (NaN
+    = untrusted), ``weights`` ``(L, by, bx)``, ``links`` ``(L, 2)``,
+    ``contrast`` ``(S, by, bx)`` of the ``own`` sections, ``sections``.
+    """
+    by, bx = task.rows.stop - task.rows.start, task.cols.stop - task.cols.start
+    shifts = np.full((len(task.links), by, bx, 2), np.nan, np.float32)
+    weights = np.zeros((len(task.links), by, bx), np.float32)
+    contrast = np.zeros((0, by, bx))
+    counts = {}
+    for k, (link, sh, wt, tried, contrast) in enumerate(_match_links(task)):
+        shifts[k], weights[k] = sh, wt
+        counts[link] = (tried, int(np.isfinite(sh[..., 0]).sum()))
+    if not task.links and task.own:
+        contrast = _contrast_only(task)
+    np.savez(task.out, shifts=shifts, weights=weights, links=np.array(task.links, int).reshape(-1, 2),
+             contrast=np.asarray(contrast, np.float32), sections=np.array(task.own, int))
+    return {"block": task.block, "counts": counts}
+
+
+def _contrast_only(task: RegionTask) -> np.ndarray:
+    """Return the block contrast of the ``own`` sections when a window has no links."""
+    s, g = task.settings, task.grid
+    x0, y0, w, h = g.region(task.rows, task.cols)
+    nodes = g.node_pixels(task.rows, task.cols, x0, y0)
+    by, bx = task.rows.stop - task.rows.start, task.cols.stop - task.cols.start
+    al = {a.section: a for a in task.alignments}
+    return np.stack([block_contrast(task.source.region(z, al[z], x0, y0, w, h, g.scale), nodes,
+                                    s.match_half_size).reshape(by, bx) for z in task.own])
+
+
+#: residual histograms: bin width and count (full-res px); lengths beyond the last bin land in it
+_BIN = 0.02
+_NBINS = 5000
+
+
+def residual_job(task: RegionTask) -> dict:
+    """Return ``{link: (histogram, sum of squares, max)}`` of the trusted block-match lengths of one region."""
+    out = {}
+    for link, sh, _, _, _ in _match_links(replace(task, own=())):
+        mag = np.hypot(sh[..., 0], sh[..., 1])
+        mag = mag[np.isfinite(mag)]
+        hist = np.bincount(np.minimum((mag / _BIN).astype(int), _NBINS - 1), minlength=_NBINS)
+        out[link] = (hist, float((mag ** 2).sum()), float(mag.max()) if mag.size else 0.0)
+    return out
+
+
+def residual_stats(hist: np.ndarray, sumsq: float, largest: float) -> dict:
+    """Return ``n``, ``rms``, ``p95`` (to the histogram's bin width) and ``max`` of merged residual lengths."""
+    hist = np.asarray(hist)
+    n = int(hist.sum())
+    if not n:
+        return {"n": 0, "rms": None, "p95": None, "max": None}
+    k = int(np.searchsorted(np.cumsum(hist), 0.95 * n))
+    return {"n": n, "rms": float(np.sqrt(sumsq / n)), "p95": float((k + 0.5) * _BIN), "max": float(largest)}
+
+
+def load_block(scratch: Path, tag: str, block: int, n_windows: int):
+    """Return ``(matches, contrast)`` of one node block from all windows' files.
+
+    ``matches`` is ``{(a, b): (shifts, weights)}``, ``contrast`` ``{z: (by, bx)}``.
+    """
+    matches, contrast = {}, {}
+    for wdw in range(n_windows):
+        with np.load(Path(scratch) / f"{tag}_b{block}_w{wdw}.npz") as f:
+            for k, (a, b) in enumerate(f["links"]):
+                matches[(int(a), int(b))] = (f["shifts"][k], f["weights"][k])
+            for k, z in enumerate(f["sections"]):
+                contrast[int(z)] = f["contrast"][k]
+    return matches, contrast

@@ -7,6 +7,7 @@ a parameter, not a decision buried in a stage.
 """
 from __future__ import annotations
 
+import contextlib
 import logging
 import time
 
@@ -36,13 +37,44 @@ def stitch_stage(build: BuildFolder, mapper, *, sections: list[int] | None = Non
     return out
 
 
+def _record_stamps(build: BuildFolder, kind: str) -> dict[str, int]:
+    """Return ``path -> mtime_ns`` of every section's current ``kind`` record."""
+    base = build.store.root / "sections"
+    out = {}
+    for p in base.glob(f"*/{kind}.json") if base.exists() else []:
+        try:
+            out[str(p)] = p.stat().st_mtime_ns
+        except OSError:
+            pass
+    return out
+
+
+@contextlib.contextmanager
+def _marked_running(build: BuildFolder, stage: str, kind: str):
+    """Mark ``stage`` running for the ``with`` body; a refusal that wrote no ``kind`` record is taken back.
+
+    A stage refused before it wrote anything (no stitched sections, a channel row for a
+    section without tiles, bad settings) leaves ``build.json`` byte-identical; one that
+    failed after writing records stays marked running, so ``build --resume`` runs it again.
+    """
+    before = build.state_path.read_bytes()
+    stamps = _record_stamps(build, kind)
+    build.mark_stage(stage, "running")
+    try:
+        yield
+    except InputError:
+        if _record_stamps(build, kind) == stamps:
+            atomic_write_text(build.state_path, before.decode("utf-8"))
+        raise
+
+
 def align_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
     """Align all stitched sections to each other and store one alignment per section."""
     from ..align.stage import run
 
-    build.mark_stage("align", "running")
     t0 = time.monotonic()
-    result = run(build, build.config.align, mapper=mapper, progress=progress)
+    with _marked_running(build, "align", "align"):
+        result = run(build, build.config.align, mapper=mapper, progress=progress)
     build.mark_stage("align", "done", seconds=round(time.monotonic() - t0, 2))
     return result
 
@@ -53,9 +85,9 @@ def channels_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
 
     if not build.load_state().get("channels"):
         return {}
-    build.mark_stage("channels", "running")
     t0 = time.monotonic()
-    result = run(build, build.config.channels, mapper=mapper, progress=progress)
+    with _marked_running(build, "channels", "channels"):
+        result = run(build, build.config.channels, mapper=mapper, progress=progress)
     build.mark_stage("channels", "done", seconds=round(time.monotonic() - t0, 2))
     return result
 

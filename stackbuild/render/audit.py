@@ -66,15 +66,26 @@ def check_plane(job: _PlaneJob) -> tuple[int, list[str]]:
         return 0, [f"{job.label}: array metadata unreadable ({type(exc).__name__}: {exc})"]
     _, h, w = arr.shape
     _, ch, cw = arr.chunks
+    _, sh, sw = arr.shards or arr.chunks
     problems, n = [], 0
-    for i, y0 in enumerate(range(0, h, ch)):
-        for j, x0 in enumerate(range(0, w, cw)):
-            n += 1
+    # One read per shard (one index read, its chunks decoded together); chunk by chunk only
+    # inside a shard that fails, to name the damaged chunks.
+    for y1 in range(0, h, sh):
+        for x1 in range(0, w, sw):
             try:
-                arr[job.z, y0:y0 + ch, x0:x0 + cw]
-            except Exception as exc:  # codecs raise many types for corrupt bytes
-                problems.append(f"{job.label} chunk (plane {job.z}, row {i}, col {j}) cannot be decoded "
-                                f"({type(exc).__name__}: {exc})")
+                arr[job.z, y1:y1 + sh, x1:x1 + sw]
+                n += len(range(y1, min(h, y1 + sh), ch)) * len(range(x1, min(w, x1 + sw), cw))
+                continue
+            except Exception:  # codecs raise many types for corrupt bytes: look chunk by chunk
+                pass
+            for y0 in range(y1, min(h, y1 + sh), ch):
+                for x0 in range(x1, min(w, x1 + sw), cw):
+                    n += 1
+                    try:
+                        arr[job.z, y0:y0 + ch, x0:x0 + cw]
+                    except Exception as exc:  # codecs raise many types for corrupt bytes
+                        problems.append(f"{job.label} chunk (plane {job.z}, row {y0 // ch}, col {x0 // cw}) "
+                                        f"cannot be decoded ({type(exc).__name__}: {exc})")
     return n, problems
 
 

@@ -206,8 +206,8 @@ def _totals(build: BuildFolder) -> dict:
 
 
 # -------------------------------------------------------------------- plan
-def plan_update(build: BuildFolder, new_tiles: Path, *, append: bool = False,
-                hold_within: float = HOLD_WITHIN) -> tuple[UpdatePlan, TileManifest, str]:
+def plan_update(build: BuildFolder, new_tiles: Path, *, append: bool = False, hold_within: float = HOLD_WITHIN,
+                realign_neighbours: bool = False) -> tuple[UpdatePlan, TileManifest, str]:
     """Check an update manifest and return its plan, the merged manifest and its CSV text; nothing is written.
 
     Raises
@@ -231,7 +231,7 @@ def plan_update(build: BuildFolder, new_tiles: Path, *, append: bool = False,
                       tiles_after=str(build.merged_manifest_path(number).resolve()),
                       manifests_before=list(state.get("manifests", [])), replaced=changed, added=added,
                       canvas_before=None if canvas is None else canvas.to_json(),
-                      totals_before=_totals(build), created=now())
+                      totals_before=_totals(build), created=now(), realign_neighbours=realign_neighbours)
     plan.predicted = _predicted_shards(build, old, new, changed, added, canvas)
     return plan, new, text
 
@@ -314,7 +314,8 @@ def _align(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
     # change), except, when sections are appended, the existing ones the new ones are matched to.
     changed = {int(k) for k in plan.replaced}
     untouched = {s for s in old if s not in changed}
-    near_new = {s for s in old if any(0 < a - s <= build.config.align.neighbours for a in plan.added)}
+    near_new = {s for s in old if plan.realign_neighbours
+                and any(0 < a - s <= build.config.align.neighbours for a in plan.added)}
     keep, facts = hold_alignments(old, new, bboxes, fit_on=untouched or set(old),
                                   movable=changed | near_new, tolerance=plan.hold_within)
     for s, rec in keep.items():
@@ -465,8 +466,8 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
 
 def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: bool = False,
                  dry_run: bool = False, resume: bool = False, hold_within: float = HOLD_WITHIN,
-                 fail_on: list[str] | None = None, workers=None, scheduler=None,
-                 show_progress: bool = True) -> UpdateOutcome:
+                 realign_neighbours: bool = False, fail_on: list[str] | None = None, workers=None,
+                 scheduler=None, show_progress: bool = True) -> UpdateOutcome:
     """Apply an update manifest to a finished build (or finish an interrupted update); return the outcome.
 
     Parameters
@@ -483,7 +484,10 @@ def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: b
     resume : bool
         Finish the unfinished update (``new_tiles`` may be omitted).
     hold_within : float
-        Tolerance (section pixels) under which an untouched section keeps its alignment.
+        Tolerance (section pixels) under which a re-imaged section keeps its alignment.
+    realign_neighbours : bool
+        With ``append``: existing sections matched to the new ones are re-aligned when the
+        re-solve moves them beyond ``hold_within`` (by default every existing section is held).
     fail_on : list of str, optional
         ``--fail-on`` bars for the report.
 
@@ -516,7 +520,8 @@ def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: b
                                             "section and written as an inset under volume.zarr/insets/ "
                                             "(dry run: nothing written)"])
             return UpdateOutcome(None, add_inset(build, Path(new_tiles)))
-        plan, new, text = plan_update(build, Path(new_tiles), append=append, hold_within=hold_within)
+        plan, new, text = plan_update(build, Path(new_tiles), append=append, hold_within=hold_within,
+                                      realign_neighbours=realign_neighbours)
         if dry_run:
             return UpdateOutcome(plan, dry_run_lines(plan))
         _begin(build, plan, text, new)
@@ -563,7 +568,8 @@ def summary_lines(plan: UpdatePlan, verdict) -> list[str]:
     lines.append(f"  align: sections {a.get('window', [])} solved again, {len(a.get('realigned', []))} re-aligned "
                  f"{a.get('realigned', [])}; the re-solve would move untouched sections up to "
                  f"{a.get('largest_untouched_move_px', 0.0):.2f} px (held; re-imaged"
-                 f"{' and neighbouring' if plan.added else ''} sections re-aligned beyond {plan.hold_within:g} px)")
+                 f"{' and neighbouring' if plan.realign_neighbours else ''} sections re-aligned beyond "
+                 f"{plan.hold_within:g} px)")
     r = f.get("render", {})
     if r.get("full"):
         lines.append(f"  render: the canvas origin moved, every plane rendered again ({len(r.get('planes', []))})")

@@ -62,6 +62,9 @@ class UpdatePlan:
         The report's totals before the update (``qc/metrics.json``).
     facts : dict
         What each step found (counts, movements), filled in as the update goes.
+    realign_neighbours : bool
+        With appended sections: existing sections matched to the new ones take the re-solved
+        alignment when it moves them beyond ``hold_within`` (by default every existing section is held).
     """
 
     number: int
@@ -80,6 +83,7 @@ class UpdatePlan:
     totals_before: dict = field(default_factory=dict)
     facts: dict = field(default_factory=dict)
     created: str = ""
+    realign_neighbours: bool = False
 
     @property
     def sections(self) -> list[int]:

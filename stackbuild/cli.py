@@ -189,8 +189,12 @@ def _add_stages(sub) -> None:
     u.add_argument("--dry-run", action="store_true",
                    help="list the sections, planes and shards the update would rewrite; write nothing")
     u.add_argument("--hold-within", type=float, default=None, metavar="PX",
-                   help="an untouched section keeps its alignment (and its planes their bytes) unless the "
-                        "re-solve moves it by more than this many pixels (default 0.5)")
+                   help="a re-imaged section keeps its alignment (and its plane its bytes outside the new "
+                        "tiles) unless the re-solve moves it by more than this many pixels (default 0.5); "
+                        "untouched sections are always held")
+    u.add_argument("--realign-neighbours", action="store_true",
+                   help="with --append: existing sections matched to the new ones take the re-solved alignment "
+                        "when it moves them beyond --hold-within (by default every existing plane keeps its bytes)")
     u.add_argument("--fail-on", action="append", metavar="RULE", default=None,
                    help="exit with status 3 if the report misses this bar, e.g. 'align.p95>2px' (repeatable)")
     _add_cluster(u)
@@ -420,6 +424,7 @@ def _cmd_update(args) -> int:
         hold = HOLD_WITHIN if args.hold_within is None else args.hold_within
         outcome = update_build(build, Path(args.tiles) if args.tiles else None, append=args.append,
                                dry_run=args.dry_run, resume=args.resume, hold_within=hold,
+                               realign_neighbours=args.realign_neighbours,
                                fail_on=args.fail_on, workers=args.workers, scheduler=args.scheduler,
                                show_progress=not args.quiet)
     _say("\n".join(outcome.lines))

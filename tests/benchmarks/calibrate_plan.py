@@ -70,17 +70,20 @@ def stored_ratio(volume: Path) -> float:
     return raw / max(1, stored)
 
 
-def _line(x1: float, y1: float, x2: float, y2: float, flat_slope: float) -> tuple[float, float]:
+def _line(x1: float, y1: float, x2: float, y2: float, flat_slope: float | None) -> tuple[float, float]:
     """Return ``(intercept, slope)`` of a line through two measurements ``(x, y)``.
 
     When the two sizes do not differ enough in ``x`` (1.5x) or ``y`` does not grow with it,
     the cost is taken as fixed at the larger measurement, plus ``flat_slope`` per unit of ``x``
-    (1 for memory: the modelled bytes at face value; 0 for CPU).
+    (1 for memory: the modelled bytes at face value; 0 for a driver's CPU); with ``flat_slope``
+    None, the cost is proportional to ``x`` at the larger of the two rates.
     """
     (xa, ya), (xb, yb) = sorted([(x1, y1), (x2, y2)])
     if xb > 1.5 * xa and yb > ya:
         slope = (yb - ya) / (xb - xa)
         return max(0.0, yb - slope * xb), slope
+    if flat_slope is None:  # proportional: the larger measurement's cost per unit
+        return 0.0, max(ya / max(xa, 1e-12), yb / max(xb, 1e-12)) if xb > 0 else 0.0
     return max(ya, yb), flat_slope
 
 
@@ -108,14 +111,18 @@ def factors(small: dict, large: dict, shapes: tuple, cfg) -> dict:
             m1, m2 = small["kinds"].get(k1.name), large["kinds"].get(k2.name)
             if m1 is None or m2 is None or not m1["tasks"] or not m2["tasks"]:
                 continue
+            # Without a clear line: a driver's memory is fixed plus the modelled bytes at face value,
+            # a task's is proportional to what the model says it holds (at the larger measured ratio).
             mem_a, mem_b = _line(k1.held, max(0.0, m1["peak_bytes"] - k1.fixed),
-                                 k2.held, max(0.0, m2["peak_bytes"] - k2.fixed), 1.0)
+                                 k2.held, max(0.0, m2["peak_bytes"] - k2.fixed), 1.0 if k1.driver else None)
             c1, c2 = m1["cpu_robust_s"] / m1["tasks"], m2["cpu_robust_s"] / m2["tasks"]  # median task
             per_item = _two_terms(k1, c1, k2, c2)
             if per_item is not None:  # CPU = work x rate + items x rate, no fixed part
                 cpu_a, cpu_b, cpu_c = 0.0, per_item[0], per_item[1]
-            else:
+            elif k1.driver:  # a driver's CPU that does not grow measurably is taken as fixed
                 (cpu_a, cpu_b), cpu_c = _line(k1.work, c1, k2.work, c2, 0.0), 0.0
+            else:  # a task's CPU grows with its pixels: without a clear line, proportional to the larger
+                (cpu_a, cpu_b), cpu_c = _line(k1.work, c1, k2.work, c2, None), 0.0
             out[k1.name] = {
                 "memory_fixed_bytes": round(mem_a), "memory_per_held": round(mem_b, 4),
                 "cpu_fixed_s": round(cpu_a, 5), "cpu_s_per_work": cpu_b, "cpu_s_per_item": cpu_c,
@@ -125,6 +132,21 @@ def factors(small: dict, large: dict, shapes: tuple, cfg) -> dict:
                               "cpu_median_task_s": round(m["cpu_robust_s"] / m["tasks"], 4)}
                              for m, k in ((m1, k1), (m2, k2))]}
     return out
+
+
+def refit(doc: dict, cfg) -> dict:
+    """Return new factors from the measurements kept in a rates document (no build is run).
+
+    For a change of the models (what a task is said to hold or do) that needs no new measurement.
+    """
+    shapes = tuple(VolumeShape(**{k: v for k, v in sh.items() if k in VolumeShape.__dataclass_fields__})
+                   for sh in doc["calibration_shapes"])
+    runs = ({"kinds": {}}, {"kinds": {}})
+    for name, entry in doc["kinds"].items():
+        for run, m in zip(runs, entry.get("measured", [])):
+            run["kinds"][name] = {"tasks": m["tasks"], "peak_bytes": m["peak_mb"] * 1e6,
+                                  "cpu_robust_s": m["cpu_median_task_s"] * m["tasks"], "cpu_s": m["cpu_s"]}
+    return factors(runs[0], runs[1], shapes, cfg)
 
 
 def measure_size(tmp: Path, name: str, sections: int, grid: int, tile: int) -> tuple[dict, VolumeShape, Path]:
@@ -157,8 +179,19 @@ def main(argv=None) -> None:
     ap.add_argument("--large", type=_size, default=(4, 2, 1024), metavar="S,G,T",
                     help="larger build (default 4,2,1024)")
     ap.add_argument("--dry-run", action="store_true", help="print, do not write plan_rates.json")
+    ap.add_argument("--refit", action="store_true",
+                    help="no builds: refit the factors from the measurements kept in plan_rates.json")
     args = ap.parse_args(argv)
     cfg = PipelineConfig()
+    if args.refit:
+        doc = json.loads(RATES_PATH.read_text(encoding="utf-8"))
+        doc["kinds"].update(refit(doc, cfg))
+        doc["how"] = doc["how"].rstrip(".") + "; factors refitted from the kept measurements (--refit)"
+        text = json.dumps(doc, indent=1) + "\n"
+        print(text)
+        if not args.dry_run:
+            RATES_PATH.write_text(text, encoding="utf-8")
+        return
     with tempfile.TemporaryDirectory(prefix="calibrate_plan_") as tmp:
         tmp = Path(tmp)
         small, shape1, _ = measure_size(tmp, "small", *args.small)

@@ -80,6 +80,10 @@ class BuildFolder:
         """``DIR/volume.zarr/channels``, the group holding the marker-channel pyramids."""
         return self.volume_path / "channels"
 
+    def inset_path(self, name: str) -> Path:
+        """``DIR/volume.zarr/insets/<name>``: a finer-pixel inset image."""
+        return self.volume_path / "insets" / name
+
     @property
     def qc_dir(self) -> Path:
         """``DIR/qc``."""

@@ -19,6 +19,7 @@ from pathlib import Path
 import cv2
 import numpy as np
 
+from ..folder import BuildFolder
 from ..transforms.records import SectionAlignment
 from ..transforms.store import TransformStore
 
@@ -56,7 +57,7 @@ class BuildSource:
     @property
     def store(self) -> TransformStore:
         """The build's transform store."""
-        return TransformStore(Path(self.build_dir) / "transforms")
+        return BuildFolder(self.build_dir).store
 
     def sections(self) -> list[int]:
         """Return the sections that have a stitch record."""

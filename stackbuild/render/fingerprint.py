@@ -195,7 +195,7 @@ def write_plane_record(group: Path, stamp: dict, fingerprints: dict, damaged: di
 
 
 def _group(folder, array: str) -> Path:
-    return folder.volume_path / ("em" if array == "em" else f"channels/{array}")
+    return folder.pyramid_path(None if array == "em" else array)
 
 
 def plane_fingerprint(folder, z: int, array: str = "em") -> str | None:

@@ -148,7 +148,7 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
     """
     t0 = time.perf_counter()
     folder = BuildFolder(Path(build_dir))
-    em = folder.volume_path / "em"
+    em = folder.pyramid_path()
     store = folder.store
     block = settings.chunk * settings.shard
     shapes = level_shapes(canvas.height, canvas.width, settings.chunk)

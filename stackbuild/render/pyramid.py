@@ -129,8 +129,8 @@ def compute_locally(items: list, on_done) -> None:
             if key in keys:
                 on_done(keys[key])
 
-    with _Finished():
-        dask.compute(*items)
+    with _Finished():  # the threaded scheduler here, even with a distributed client as the default
+        dask.compute(*items, scheduler="threads")
 
 
 def compute_each(mapper):

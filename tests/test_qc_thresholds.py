@@ -62,5 +62,6 @@ def test_defaults_come_from_the_settings():
     ts = default_thresholds(ReportSettings(stitch_rms=0.7, align_p95=3.0))
     assert {(t.measure, t.value) for t in ts} == {("stitch.rms", 0.7), ("align.p95", 3.0), ("align.max", 5.0),
                                                   ("sections.blank", 0.0), ("tiles.missing", 0.0),
+                                                  ("sections.unmeasured", 0.0),
                                                   ("channels.failed", 0.0)}
     assert all(isinstance(t, Threshold) and t.measure in MEASURES for t in ts)

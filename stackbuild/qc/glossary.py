@@ -47,6 +47,7 @@ TOTALS = {
     "elastic.max": ("px", "largest elastic correction the aligner applied anywhere"),
     "sections.blank": ("sections", "sections whose tiles are all blank"),
     "tiles.missing": ("tiles", "tiles whose files are missing or unreadable at report time"),
+    "sections.unmeasured": ("sections", "present sections whose alignment error could not be measured at all"),
     "channels.failed": ("registrations", "marker images that could not be registered"),
     "flagged": ("items", "flagged sections plus flagged tiles"),
     "flagged.sections": ("sections", "sections carrying at least one flag"),

@@ -364,6 +364,7 @@ def _totals(tiles, pairs, sections, channels, meas: Measurements) -> dict:
         "motion.p95": max(motion) if motion else None,
         "elastic.max": top(sections, lambda r: r["elastic"]["max"]),
         "sections.blank": blank, "tiles.missing": missing,
+        "sections.unmeasured": sum(1 for r in sections if "not_measured" in r["flags"]),
         "channels.failed": sum(r["registered"] is False for r in channels),
         "flagged": fs + ft, "flagged.sections": fs, "flagged.tiles": ft,
         "lost": sum(r["lost"] for r in sections), "rejected": rejected,

@@ -177,7 +177,7 @@ def _coarse_offsets(fixed, moving, pts, half: int, reach: float, min_ncc: float,
         s_[~v_] = np.nan
     c_pts = np.round(pts / factor).astype(int)
     d, _ = match_points(small[0], small[1], c_pts, half=max(4, half // factor),
-                        search=max(2, int(np.ceil(reach / factor))), min_ncc=min_ncc)
+                        search=max(2, int(np.ceil(reach / factor))), min_ncc=min_ncc, refine=False)
     out = np.where(np.isfinite(d), np.round(d * factor), 0.0)
     return out.astype(int)
 

@@ -36,6 +36,7 @@ MEASURES = {
     "motion.p95": ("distance", "largest apparent motion (95th percentile) between adjacent planes"),
     "sections.blank": ("count", "sections whose tiles are all blank"),
     "tiles.missing": ("count", "tiles whose files are missing at report time"),
+    "sections.unmeasured": ("count", "present sections on which no probe block could be measured"),
     "channels.failed": ("count", "marker images that could not be registered"),
     "elastic.max": ("distance", "largest elastic displacement"),
     "flagged": ("count", "flagged sections plus flagged tiles"),
@@ -148,4 +149,5 @@ def default_thresholds(settings) -> list[Threshold]:
             Threshold("align.max", ">", float(settings.align_max), "px", f"align.max>{settings.align_max}px"),
             Threshold("sections.blank", ">", 0.0, "", "sections.blank>0"),
             Threshold("tiles.missing", ">", 0.0, "", "tiles.missing>0"),
+            Threshold("sections.unmeasured", ">", 0.0, "", "sections.unmeasured>0"),
             Threshold("channels.failed", ">", 0.0, "", "channels.failed>0")]

@@ -116,13 +116,10 @@ class ArraySource:
         if scale > 1:
             img = _box(img, int(scale))
         xs, ys = _centres(x0, y0, width, height, scale)
-        gx, gy = np.meshgrid(xs, ys)
         if alignment is not None:
-            if alignment.displacement is not None:
-                d = alignment.displacement.displacement_grid(xs, ys)
-                gx, gy = gx + d[..., 0], gy + d[..., 1]
-            (a, b, tx), (c, e, ty) = alignment.affine.matrix
-            gx, gy = a * gx + b * gy + tx, c * gx + e * gy + ty
+            gx, gy = alignment.aligned_to_section_grid(xs, ys)
+        else:
+            gx, gy = np.meshgrid(xs, ys)
         mx, my = gx.astype(np.float32), gy.astype(np.float32)
         out = cv2.remap(img, mx, my, cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT,
                         borderValue=float("nan"))

@@ -216,9 +216,13 @@ def reslice_planes(source: PlaneSource, x: float, y: float) -> tuple[np.ndarray,
 
 
 def window(source: PlaneSource, z: int, x: float, y: float, half: int) -> np.ndarray:
-    """Return a ``2 * half`` square of plane ``z`` around level-0 point ``(x, y)`` (clipped to the plane)."""
-    p = source.plane(z)
+    """Return a ``2 * half`` square of plane ``z`` around level-0 point ``(x, y)`` (clipped to the plane).
+
+    Only the chunks under the square are read, never the whole plane.
+    """
+    h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
     cx = int(round((x - source.offset[0]) / source.factor))
     cy = int(round((y - source.offset[1]) / source.factor))
     y0, x0 = max(0, cy - half), max(0, cx - half)
-    return p[y0:cy + half, x0:cx + half]
+    y1, x1 = min(h, max(y0, cy + half)), min(w, max(x0, cx + half))
+    return source.window(z, y0, y1, x0, x1)

@@ -45,6 +45,7 @@ from ..sampler import render_region
 from ..folder import BuildFolder
 from ..tiles import SectionTiles
 from ..transforms.store import TransformStore
+from ..transforms.records import ChannelRegistration
 from ..transforms.types import Affine2D
 from .features import KINDS, whole_block_mean, em_feature, marker_feature
 from .mutual_info import MODELS, register_mutual_information
@@ -194,8 +195,8 @@ def _frames(affine: Affine2D) -> dict:
 
 
 def channel_affine(rec: dict) -> Affine2D:
-    """Return the stored ``channel pixel -> section pixel`` map of one channel record."""
-    return Affine2D.from_json(rec["transform"])
+    """Return the stored ``channel pixel -> section pixel`` map of one channel record (frames checked)."""
+    return ChannelRegistration.from_json(rec).to_section
 
 
 def _jobs(folder: BuildFolder, entries: list[ChannelEntry], settings: ChannelSettings) -> list[_ChannelJob]:

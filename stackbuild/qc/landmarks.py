@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from ..manifest import read_landmarks
-from ..transforms.types import Affine2D
+from ..transforms.records import ChannelRegistration
 from .measure import section_to_output
 
 
@@ -49,7 +49,8 @@ def landmark_rows(folder, stitches: dict, aligns: dict, scale) -> tuple[list[dic
                "dx": None, "dy": None, "residual": None, "residual_nm": None, "row": e.row,
                "at": scale.at(e.section, section_to_output(em, aligns.get(e.section), scale.canvas)[0])}
         if ch.get("transform") and ch.get("registered") is not False:
-            d = Affine2D.from_json(ch["transform"]).apply([[e.marker_x, e.marker_y]])[0] - em[0]
+            to_section = ChannelRegistration.from_json(ch, section=e.section, channel=e.channel).to_section
+            d = to_section.apply([[e.marker_x, e.marker_y]])[0] - em[0]
             res = float(np.hypot(*d))
             row.update(dx=float(d[0]), dy=float(d[1]), residual=res, residual_nm=res * scale.px_nm)
         else:

@@ -74,8 +74,7 @@ import numpy as np
 from ..errors import InputError
 from ..manifest import image_header
 from ..folder import BuildFolder
-from ..transforms.records import Canvas
-from ..transforms.types import Affine2D
+from ..transforms.records import Canvas, ChannelRegistration
 from .blockmatch import BlockMatches, summarize
 from .landmarks import landmark_rows, landmark_totals, per_channel_rms
 from .measure import Measurements, SeamJob, seam_job, section_to_output
@@ -322,7 +321,8 @@ def _channel_rows(store, sections, aligns, sc: _Scale) -> list[dict]:
             size = _image_size(ch.get("path", ""))
             at = None
             if size is not None and ch.get("transform"):
-                c = Affine2D.from_json(ch["transform"]).apply([[(size[0] - 1) / 2, (size[1] - 1) / 2]])
+                to_section = ChannelRegistration.from_json(ch, section=s, channel=name).to_section
+                c = to_section.apply([[(size[0] - 1) / 2, (size[1] - 1) / 2]])
                 at = sc.at(s, section_to_output(c, aligns.get(s), sc.canvas)[0])
             rows.append({"section": s, "channel": name, "path": ch.get("path"),
                          "registered": ch.get("registered"), "measure": ch.get("measure"),

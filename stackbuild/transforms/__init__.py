@@ -26,11 +26,11 @@ Conventions
 """
 from .types import Affine2D, DisplacementField
 from .records import (
-    FORMAT_VERSION, Canvas, PairMatch, SectionAlignment, SectionStitch, TilePlacement,
+    FORMAT_VERSION, Canvas, ChannelRegistration, PairMatch, SectionAlignment, SectionStitch, TilePlacement,
 )
 from .store import TransformStore
 
 __all__ = [
-    "Affine2D", "DisplacementField", "FORMAT_VERSION", "Canvas", "PairMatch",
+    "Affine2D", "ChannelRegistration", "DisplacementField", "FORMAT_VERSION", "Canvas", "PairMatch",
     "SectionAlignment", "SectionStitch", "TilePlacement", "TransformStore",
 ]

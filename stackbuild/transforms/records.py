@@ -313,3 +313,55 @@ class Canvas:
             raise ValueError("canvas width, height, pixel_size_nm and section_thickness_nm must be > 0 "
                              "and last_section >= first_section")
         return c
+
+
+#: The frames every channel registration maps between: marker-image pixels -> section pixels.
+CHANNEL_FRAMES = ("channel", "section")
+
+
+@dataclass
+class ChannelRegistration:
+    """One marker image registered to its EM section: the ``channel pixel -> section pixel`` affine and its facts.
+
+    The typed form of a record of the channels stage (``transforms/sections/N/channels.json``,
+    one per marker under ``"channels"``). Its maps say which frames they join
+    (``"input": "channel", "output": "section"``); :meth:`from_json` refuses any other.
+    ``facts`` keeps the whole stored record (measures, flags, timings) as written.
+    """
+
+    section: int
+    channel: str
+    path: str
+    registered: bool
+    to_section: Affine2D
+    flags: list[str] = field(default_factory=list)
+    facts: dict = field(default_factory=dict)
+
+    @classmethod
+    def from_json(cls, rec: dict, *, section: int | None = None, channel: str | None = None) -> "ChannelRegistration":
+        """Return the registration stored as ``rec`` (``section``, ``channel``: where the record omits them).
+
+        Raises
+        ------
+        ValueError
+            If a stored map joins other frames than channel -> section, or there is no map.
+        """
+        for key in ("transform", "initial"):
+            t = rec.get(key)
+            if isinstance(t, dict) and ("input" in t or "output" in t) \
+                    and (t.get("input"), t.get("output")) != CHANNEL_FRAMES:
+                raise ValueError(f"channel record's {key} maps {t.get('input')} -> {t.get('output')}, "
+                                 f"expected {CHANNEL_FRAMES[0]} -> {CHANNEL_FRAMES[1]}")
+        if not isinstance(rec.get("transform"), dict):
+            raise ValueError("channel record holds no transform")
+        return cls(section=int(rec.get("section", section)), channel=str(rec.get("channel", channel)),
+                   path=str(rec.get("path", "")), registered=rec.get("registered") is not False,
+                   to_section=Affine2D.from_json(rec["transform"]), flags=list(rec.get("flags", [])),
+                   facts=dict(rec))
+
+    def to_json(self) -> dict:
+        """Return the record as stored (its facts, with the map and its frames)."""
+        frames = dict(zip(("input", "output"), CHANNEL_FRAMES))
+        return {**self.facts, "section": self.section, "channel": self.channel, "path": self.path,
+                "registered": self.registered, "transform": {**self.to_section.to_json(), **frames},
+                "flags": list(self.flags)}

@@ -124,7 +124,8 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         warped = cv2.warpAffine(lb, model.astype(np.float64), (la.shape[1], la.shape[0]),
                                 flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP, borderMode=cv2.BORDER_CONSTANT,
                                 borderValue=float("nan"))
-        nodes = _grid(la.shape, max(half_size, 8), reach)
+        # a few hundred blocks per level are plenty for an affine; more only cost time
+        nodes = _grid(la.shape, max(half_size, int(np.sqrt(la.size / 400.0))), reach)
         if not len(nodes):
             continue
         res = match_blocks(la, warped, nodes, half_size, max_shift, fine_sigma=blur)

@@ -35,9 +35,8 @@ class RegionJob:
 def probe_geometry(source: PlaneSource, settings: ReportSettings, width0: float, height0: float):
     """Return ``(spacing, half, search, margin)`` in level pixels for a plane of ``width0 x height0`` level-0 px."""
     f = source.factor
-    spacing = settings.probe_spacing
-    if spacing <= 0:  # automatic: about probe_blocks blocks per plane, never denser than 64 px
-        spacing = max(64.0, float(np.sqrt(width0 * height0 / max(settings.probe_blocks, 1))))
+    # probe_spacing apart, wider on large planes so that a plane holds about probe_blocks blocks
+    spacing = max(float(settings.probe_spacing), float(np.sqrt(width0 * height0 / max(settings.probe_blocks, 1))))
     half = max(4, int(round(settings.probe_half_size / f)))
     search = max(2, int(round(settings.probe_max_shift / f)))
     margin = half + search + 3 + int(np.ceil((settings.probe_reach + 3 * settings.probe_coarse_sigma) / f))

@@ -86,7 +86,7 @@ class ReportSettings:
     measure_scale: int = 2
     measure_max_px: int = 8192
     probe_spacing: int = 128
-    probe_blocks: int = 4000
+    probe_blocks: int = 1000
     probe_half_size: int = 64
     probe_max_shift: int = 12
     probe_reach: int = 64

@@ -1,9 +1,11 @@
 """Measure a small build in this process, task by task: what the plan's factors are made from and checked against.
 
 Every stage runs here with one thread: mapped stages through a mapper that
-times each task (process CPU time) and takes its memory peak from
-:mod:`tracemalloc` (numpy reports its buffers to it, so this is the arrays a
-task holds above what the process held before it); the render graph runs on
+times each task (process CPU time) and takes its memory peak as the larger of
+:mod:`tracemalloc`'s (numpy reports its buffers to it: the arrays a task holds
+above what the process held before it) and the growth of the resident size
+(Linux ``VmHWM`` after ``clear_refs``, which also sees OpenCV's own buffers);
+the render graph runs on
 dask's synchronous scheduler under a callback that does the same per task.
 Work outside tasks is the driver's: its CPU is the stage's CPU minus its
 tasks', its memory the peak outside tasks above the stage's start, less what
@@ -25,6 +27,34 @@ KIND_OF = {"_stitch_one": "stitch.section", "features_job": "align.features", "p
            "region_job": "align.region", "solve_block_job": "align.solve", "residual_job": "align.residual", "render_shard": "render.shard",
            "join_shard": "render.join", "range_job": "render.contrast", "probe_region": "report.probe",
            "seam_job": "report.seams"}
+
+
+def _status(field: str) -> int:
+    """Return a ``/proc/self/status`` size field (``VmRSS``, ``VmHWM``) in bytes, or 0 where there is none."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith(field + ":"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 0
+
+
+def _reset_resident_peak() -> int:
+    """Reset the process's peak resident size to its current size (Linux ``clear_refs``); return that size.
+
+    Resident size sees what tracemalloc does not: buffers OpenCV allocates inside a call
+    (a feature detector's scale space, for one). Memory freed by earlier tasks and kept by
+    the allocator is reused without growing it, so it is a lower bound too; a task's peak is
+    the larger of the two.
+    """
+    try:
+        with open("/proc/self/clear_refs", "w", encoding="ascii") as fh:
+            fh.write("5")
+    except OSError:
+        return 0
+    return _status("VmRSS")
 
 
 class TaskMeter:
@@ -49,9 +79,10 @@ class TaskMeter:
         """Note the driver's memory at a peak seen outside tasks."""
         self._outside = max(self._outside, peak - self._base - self._left)
 
-    def _task_done(self, kind: str, cur: int, c0: float, result) -> None:
+    def _task_done(self, kind: str, cur: int, c0: float, result, rss0: int = 0) -> None:
         cpu = time.process_time() - c0
         self._task_cpu += cpu
+        resident = _status("VmHWM") - rss0 if rss0 else 0
         now, peak = tracemalloc.get_traced_memory()
         try:
             sent = len(pickle.dumps(result, protocol=pickle.HIGHEST_PROTOCOL))
@@ -63,7 +94,7 @@ class TaskMeter:
         k["cpu_s"] += cpu
         k["cpu_each"].append(cpu)
         k["cpu_max_s"] = max(k["cpu_max_s"], cpu)
-        k["peak_bytes"] = max(k["peak_bytes"], peak - cur)
+        k["peak_bytes"] = max(k["peak_bytes"], peak - cur, resident)
         tracemalloc.reset_peak()
 
     def end_stage(self, driver_kind: str) -> None:
@@ -78,13 +109,14 @@ class TaskMeter:
         cur, peak = tracemalloc.get_traced_memory()
         self._driver_point(peak)
         tracemalloc.reset_peak()
+        rss0 = _reset_resident_peak()
         c0 = time.process_time()
         result = None
         try:
             result = fn(*args)
             return result
         finally:
-            self._task_done(kind, cur, c0, result)
+            self._task_done(kind, cur, c0, result, rss0)
 
     def mapper(self, fn, items):
         """A serial mapper that measures every item as one task."""
@@ -109,11 +141,13 @@ def _dask_meter(meter: TaskMeter):
                 cur, peak = tracemalloc.get_traced_memory()
                 meter._driver_point(peak)
                 tracemalloc.reset_peak()
-                state[key] = (KIND_OF[name], cur, time.process_time())
+                rss0 = _reset_resident_peak()
+                state[key] = (KIND_OF[name], cur, time.process_time(), rss0)
 
         def _posttask(self, key, result, dsk, st, worker_id):
             if key in state:  # results stay on workers (quarters handed up), not in the driver
-                meter._task_done(*state.pop(key), None)
+                kind, cur, c0, rss0 = state.pop(key)
+                meter._task_done(kind, cur, c0, None, rss0)
 
     return _Meter()
 

@@ -7,8 +7,8 @@ time to the stage then running (from ``build.json``). Printed side by side:
 
 * per stage: wall seconds (``build.json``), CPU seconds of all processes, and
   megapixels of tiles per CPU-second (per core);
-* the peak memory of the largest process (``ru_maxrss`` of the build's process
-  tree, which counts every worker: Linux reports the largest descendant);
+* the peak memory of the largest process (the resident size of every process of
+  the build, sampled; also per stage, to see which stage holds it);
 * the I/O floor: read every tile once (tifffile) and write level 0 once with the
   build's default codec (zarr, same chunks and shards), on as many threads as
   workers, and the build's wall time over it.
@@ -75,6 +75,7 @@ def run_build(tiles: Path, out: Path, workers: int) -> dict:
     cpu_by_stage: dict[str, float] = {}
     seen: dict[int, float] = {}
     rss_max = 0
+    rss_by_stage: dict[str, int] = {}
     while proc.poll() is None:
         stage = _running_stage(out)
         try:
@@ -85,7 +86,9 @@ def run_build(tiles: Path, out: Path, workers: int) -> dict:
             try:
                 t = p.cpu_times()
                 total = t.user + t.system
-                rss_max = max(rss_max, p.memory_info().rss)
+                rss = p.memory_info().rss
+                rss_max = max(rss_max, rss)
+                rss_by_stage[stage] = max(rss_by_stage.get(stage, 0), rss)
             except psutil.NoSuchProcess:
                 continue
             cpu_by_stage[stage] = cpu_by_stage.get(stage, 0.0) + total - seen.get(p.pid, 0.0)
@@ -99,7 +102,7 @@ def run_build(tiles: Path, out: Path, workers: int) -> dict:
     state = json.loads((out / "build.json").read_text())
     return {"wall": wall, "cpu_total": (after.ru_utime + after.ru_stime) - (before.ru_utime + before.ru_stime),
             "stage_wall": {k: v.get("seconds") for k, v in state.get("stages", {}).items()},
-            "stage_cpu": cpu_by_stage, "peak_rss": max(after.ru_maxrss * 1024, rss_max)}
+            "stage_cpu": cpu_by_stage, "peak_rss": rss_max, "stage_rss": rss_by_stage}
 
 
 def io_floor(tiles: Path, out: Path, threads: int) -> dict:
@@ -174,6 +177,8 @@ def report(a: dict, b: dict | None, workers: int) -> None:
     print(f"{'tiles Mpx':<28}" + "".join(f"{r['tile_mpx']:>18.0f}" for r in rows))
     print(f"{'Mpx per s per core':<28}" + "".join(f"{r['tile_mpx'] / r['wall'] / workers:>18.2f}" for r in rows))
     print(f"{'largest process peak MB':<28}" + "".join(f"{r['peak_rss'] / 1e6:>18.0f}" for r in rows))
+    print(f"{'  by stage (MB)':<28}" + "".join(
+        (" ".join(f"{k[:2]}{v / 1e6:.0f}" for k, v in r["stage_rss"].items() if k in STAGES)).rjust(18) for r in rows))
     print(f"{'I/O floor s (read + write)':<28}" + "".join(f"{r['floor']:>10.2f} ({r['read']:.2f}+{r['write']:.2f})"[-18:].rjust(18) for r in rows))
     print(f"{'build / floor':<28}" + "".join(f"{r['wall'] / r['floor']:>18.1f}" for r in rows), end="")
     if b is not None:
@@ -218,6 +223,10 @@ def main(argv=None) -> None:
             print(f"\nlargest process peak, 3 sections of 3 x 3 vs 7 x 7 tiles of 1024 px: "
                   f"{small['peak_rss'] / 1e6:.0f} MB vs {big['peak_rss'] / 1e6:.0f} MB "
                   f"(ratio {big['peak_rss'] / small['peak_rss']:.2f})")
+            for stage in STAGES:
+                if stage in small["stage_rss"] or stage in big["stage_rss"]:
+                    a, b = small["stage_rss"].get(stage, 0), big["stage_rss"].get(stage, 0)
+                    print(f"  while {stage:<9} {a / 1e6:6.0f} MB vs {b / 1e6:6.0f} MB")
 
 
 if __name__ == "__main__":

@@ -40,9 +40,12 @@ def _write(path: Path, rows: list[dict]) -> None:
 def _grid_manifest(folder: Path, spread: float, offset: float = 0.0) -> Path:
     """Write a 2 x 2 grid of 64-pixel tiles at ``spread`` times their 56-pixel pitch."""
     folder.mkdir(parents=True, exist_ok=True)
-    tifffile.imwrite(folder / "t.tif", np.zeros((64, 64), np.uint8))
-    rows = [{"section": 0, "tile": f"r{r}c{c}", "path": "t.tif", "x": offset + 56 * c * spread,
-             "y": offset + 56 * r * spread} for r in range(2) for c in range(2)]
+    rows = []
+    for r in range(2):
+        for c in range(2):  # each tile its own file: one file on two lines is refused
+            tifffile.imwrite(folder / f"t{r}{c}.tif", np.zeros((64, 64), np.uint8))
+            rows.append({"section": 0, "tile": f"r{r}c{c}", "path": f"t{r}{c}.tif",
+                         "x": offset + 56 * c * spread, "y": offset + 56 * r * spread})
     _write(folder / "tiles.csv", rows)
     return folder / "tiles.csv"
 

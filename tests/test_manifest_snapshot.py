@@ -203,7 +203,8 @@ def test_the_snapshot_follows_updates_merged_manifest(build, tmp_path, monkeypat
     build.update_state(tiles=str(merged), manifests=[str(merged)])
     got = build.tile_manifest()
     _same(got, read_tile_manifest(merged))
-    assert [t.tile for t in got.section_tiles(5)] == ["r1", "r2"] and len(got.section_tiles(3)) == 2
+    # update merges by (section, tile): the new tiles join section 5's untouched one
+    assert [t.tile for t in got.section_tiles(5)] == ["s1", "r1", "r2"] and len(got.section_tiles(3)) == 2
     assert json.loads(build.snapshot_path.read_text())["csv"]["path"] == str(merged.resolve())
     _no_tiff(monkeypatch)
     _same(build.tile_manifest(), got)

@@ -19,6 +19,7 @@ from pathlib import Path
 import zarr
 
 from ..errors import InputError
+from ..folder import BuildFolder
 from .fingerprint import current_fingerprints, forget_planes, read_plane_record
 
 
@@ -89,9 +90,9 @@ def check_plane(job: _PlaneJob) -> tuple[int, list[str]]:
     return n, problems
 
 
-def _pyramids(volume: Path) -> list[str]:
-    out = ["em"] if (volume / "em" / "zarr.json").exists() else []
-    chans = volume / "channels"
+def _pyramids(folder: BuildFolder) -> list[str]:
+    out = ["em"] if (folder.pyramid_path() / "zarr.json").exists() else []
+    chans = folder.channels_path
     if chans.exists():
         out += [f"channels/{p.name}" for p in sorted(chans.iterdir()) if (p / "zarr.json").exists()]
     return out
@@ -128,7 +129,7 @@ def audit_volume(folder, *, pixels: bool = True, mapper=None, record: bool = Tru
         If the build has no volume.
     """
     volume = folder.volume_path
-    pyramids = _pyramids(volume)
+    pyramids = _pyramids(folder)
     if not pyramids:
         raise InputError("no volume to check (run the render stage first)", file=volume)
     report = AuditReport()

@@ -7,6 +7,8 @@ from pathlib import Path
 import pytest
 from threadpoolctl import threadpool_limits
 
+import stackbuild.manifest as manifest_mod
+
 # One BLAS thread per process: the tests' small matrix products run several times slower when
 # OpenBLAS spreads them over threads on a 2-core machine (measured on the stitch tests: 122 s
 # against 70 s). numpy is already imported by pytest plugins here, so the environment variables
@@ -80,3 +82,17 @@ def tiny_build(tiny_data, tmp_path_factory) -> Path:
                  "--landmarks", str(tiny_data / "landmarks.csv"), "--config", str(config), "--workers", "2",
                  "--quiet"]) == 0
     return out
+
+
+@pytest.fixture
+def header_calls(monkeypatch) -> list:
+    """Count the tile headers opened through ``stackbuild.manifest._header``."""
+    calls = []
+    real = manifest_mod._header
+
+    def counting(path, *args, **kw):
+        calls.append(Path(path).stem)
+        return real(path, *args, **kw)
+
+    monkeypatch.setattr(manifest_mod, "_header", counting)
+    return calls

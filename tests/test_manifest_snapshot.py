@@ -51,20 +51,6 @@ def build(tmp_path) -> BuildFolder:
     return b
 
 
-@pytest.fixture
-def header_calls(monkeypatch) -> list:
-    """Count the tile headers opened through ``stackbuild.manifest._header``."""
-    calls = []
-    real = manifest_mod._header
-
-    def counting(path, *args, **kw):
-        calls.append(Path(path).stem)
-        return real(path, *args, **kw)
-
-    monkeypatch.setattr(manifest_mod, "_header", counting)
-    return calls
-
-
 def _no_tiff(monkeypatch) -> None:
     """Make any attempt to open a TIFF header fail the test."""
     def refuse(*args, **kw):

@@ -25,18 +25,15 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..transforms.bumps import bump_basis
+
 
 def bumps_and_affine(points: np.ndarray, n: int = 4) -> np.ndarray:
     """Return ``(G, n*n + 3)``: Gaussian bumps on an ``n x n`` grid over the points' box, then ``x, y, 1``."""
     p = np.asarray(points, np.float64).reshape(-1, 2)
     lo, hi = p.min(0), p.max(0)
     span = np.maximum(hi - lo, 1.0)
-    t = (np.arange(n) + 0.5) / n
-    cx, cy = np.meshgrid(lo[0] + t * span[0], lo[1] + t * span[1])
-    sx, sy = span / n
-    dx = (p[:, :1] - cx.ravel()[None, :]) / sx
-    dy = (p[:, 1:] - cy.ravel()[None, :]) / sy
-    return np.column_stack([np.exp(-0.5 * (dx ** 2 + dy ** 2)), (p - lo) / span, np.ones(len(p))])
+    return np.column_stack([bump_basis(p, n), (p - lo) / span, np.ones(len(p))])
 
 
 def straightening(points: np.ndarray, mapped: np.ndarray, z: np.ndarray, bumps: int = 4) -> np.ndarray:

@@ -35,6 +35,7 @@ import numpy as np
 
 from ..errors import InputError
 from ..transforms import TransformStore
+from ..transforms.bumps import bump_basis
 from .truth import Truth, load_truth
 
 _SAMPLES = 4  # samples per block side
@@ -84,23 +85,6 @@ class ResidualReport:
 
 
 # -- the pure kernel -----------------------------------------------------------------
-
-def bump_basis(points: np.ndarray, n: int = 4) -> np.ndarray:
-    """Return ``(G, n*n)`` Gaussian bumps on an ``n x n`` grid over the points' bounding box.
-
-    Centres sit at ``(i + 0.5) / n`` of the box in x and y; each bump's sigma
-    is the centre spacing along that axis.
-    """
-    p = np.asarray(points, np.float64).reshape(-1, 2)
-    lo, hi = p.min(0), p.max(0)
-    span = np.maximum(hi - lo, 1.0)
-    t = (np.arange(n) + 0.5) / n
-    cx, cy = np.meshgrid(lo[0] + t * span[0], lo[1] + t * span[1])
-    sx, sy = span / n
-    dx = (p[:, :1] - cx.ravel()[None, :]) / sx
-    dy = (p[:, 1:] - cy.ravel()[None, :]) / sy
-    return np.exp(-0.5 * (dx ** 2 + dy ** 2))
-
 
 def identifiable_vectors(points, mapped, zs, fit=None, bumps: int = 4) -> np.ndarray:
     """Return the identifiable residual ``(Z, G, 2)`` of true-frame positions of output blocks.

@@ -112,14 +112,23 @@ def align_kinds(shape: VolumeShape, cfg) -> list[Kind]:
                                                           / max(1, int(_get(a, "overview_size", 2048)))))
     feats = min(int(_get(a, "max_features", 4000)), shape.section_height * shape.section_width / scale ** 2 / 500)
     work = {"align.features": tile_mpx, "align.pair": feats ** 2 / MB,
-            "align.region": held_images * region_side ** 2 / MB,
+            # the pixels a region task renders and matches: its images, clipped to the section
+            "align.region": min(held_images, shape.imaged) * min(region_side, shape.section_height)
+            * min(region_side, shape.section_width) / MB,
             "align.solve": (int(_get(a, "region_nodes", 16)) ** 2) * shape.imaged / MB}
     links = sum(max(0, shape.imaged - k) for k in range(1, int(_get(a, "neighbours", 2)) + 1))
     count = {"align.pair": links}  # the pairs align/stage.py matches: (z, z + k) with both present
-    kinds = [Kind(t.name, count.get(t.name, t.count), max(0.0, t.bytes_each - PROCESS_BYTES), work.get(t.name, 0.0),
-                  note=t.note,
-                  reads=shape.tiles_per_section * shape.tile_bytes if t.name == "align.features" else 0.0)
-             for t in budget["tasks"]]
+    rounds = int(_get(a, "elastic_rounds", 2)) if _get(a, "elastic", True) else 0
+    kinds = []
+    for t in budget["tasks"]:
+        held = max(0.0, t.bytes_each - PROCESS_BYTES)
+        n = count.get(t.name, t.count)
+        if t.name == "align.region" and rounds:
+            # the budget counts the final residual pass with the rounds; it runs as residual_job
+            n, final = n * rounds // (rounds + 1), n // (rounds + 1)
+            kinds.append(Kind("align.residual", final, held, work["align.region"], note="the final residual pass"))
+        kinds.append(Kind(t.name, n, held, work.get(t.name, 0.0), note=t.note,
+                          reads=shape.tiles_per_section * shape.tile_bytes if t.name == "align.features" else 0.0))
     kinds.append(Kind("align.driver", 1, max(0.0, budget["driver_bytes"] - PROCESS_BYTES),
                       shape.imaged * nodes * nodes / MB, driver=True, note="every section's field on the grid"))
     return kinds
@@ -253,10 +262,13 @@ def report_kinds(shape: VolumeShape, cfg) -> list[Kind]:
         f = _probe_factor(q)
         spans = int(_get(q, "probe_spans", 2))
         margin = _get(q, "probe_half_size", 48) + _get(q, "probe_max_shift", 12) + 4 * _get(q, "probe_coarse_sigma", 16)
-        side = (region + 2 * margin) / f
+        # a region is clipped to the section: small sections make small regions
+        sy = (min(region, shape.section_height) + 2 * margin) / f
+        sx = (min(region, shape.section_width) + 2 * margin) / f
         n = math.ceil(shape.section_height / region) * math.ceil(shape.section_width / region)
-        kinds.append(Kind("report.probe", n, (spans + 1) * side * side * 4 * 2, shape.imaged * (region / f) ** 2 / MB,
-                          reads=shape.imaged * side * side * shape.itemsize,
+        kinds.append(Kind("report.probe", n, (spans + 1) * sy * sx * 4 * 2,
+                          shape.imaged * min(region, shape.section_height) * min(region, shape.section_width) / f ** 2 / MB,
+                          reads=shape.imaged * sy * sx * shape.itemsize,
                           note="follows one region down the stack"))
     return kinds
 

@@ -141,9 +141,15 @@ class VolumeShape:
 
 
 def _axis(pos: np.ndarray, size: int) -> tuple[int, float]:
-    """Return the number of distinct tile positions along one axis and the median step between them."""
-    u = np.unique(np.round(pos / (size / 4.0)))  # positions closer than a quarter tile are one column
-    centres = np.sort(np.array([pos[np.round(pos / (size / 4.0)) == v].mean() for v in u]))
+    """Return the number of tile columns (or rows) along one axis and the median step between them.
+
+    Positions closer than half a tile belong to one column (stage positions jitter by tens of pixels).
+    """
+    xs = np.sort(np.asarray(pos, np.float64))
+    if len(xs) == 0:
+        return 1, float(size)
+    breaks = np.flatnonzero(np.diff(xs) > size / 2.0) + 1
+    centres = np.array([g.mean() for g in np.split(xs, breaks)])
     if len(centres) < 2:
         return 1, float(size)
     return len(centres), float(np.median(np.diff(centres)))

@@ -6,6 +6,7 @@ block measurements, arrays) and returns a :class:`matplotlib.figure.Figure`;
 """
 from __future__ import annotations
 
+import textwrap
 from pathlib import Path
 
 import matplotlib
@@ -350,8 +351,10 @@ def neighbour_panels(windows: list[tuple[int, np.ndarray]], centre: tuple[float,
         ax.set_xticks([])
         ax.set_yticks([])
         scale_bar(ax, px_nm * factor, img.shape[1])
-    fig.suptitle(f"{title} (around x = {centre[0]:.0f}, y = {centre[1]:.0f} level-0 px; + marks the spot)",
-                 color=INK, fontsize=10)
+    # Wrapped to the figure's width: a long title on a two- or three-panel figure ran off both edges.
+    text = f"{title} (around x = {centre[0]:.0f}, y = {centre[1]:.0f} level-0 px; + marks the spot)"
+    width = max(40, int(fig.get_figwidth() * 12))  # about 12 characters per inch at 10 pt
+    fig.suptitle(textwrap.fill(text, width), color=INK, fontsize=10)
     return fig
 
 

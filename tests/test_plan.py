@@ -3,6 +3,8 @@ from __future__ import annotations
 
 import json
 import math
+import multiprocessing
+from concurrent.futures import ProcessPoolExecutor
 
 import numpy as np
 import pytest
@@ -79,6 +81,11 @@ def test_cli_json_has_the_documented_keys(capsys):
     assert doc["output_bytes"] > 0 and doc["output_files"] > 0
 
 
+def _measure_twice(tiles, folder):
+    """Measure two builds of ``tiles`` in this process; per kind the least CPU and the largest peak."""
+    return fastest(measure_build(tiles, folder / "build1"), measure_build(tiles, folder / "build2"))
+
+
 def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
     """Per stage: the largest task's memory and the stage's CPU, plan versus this very build measured.
 
@@ -91,7 +98,10 @@ def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
     tiles = generate(tmp_path / "data", SynthParams(seed=3, sections=3, grid=(2, 3), tile_size=384, channels=0,
                                                      compress=False))
     # The faster of two builds per kind: other work on a shared machine only adds CPU time.
-    measured = fastest(measure_build(tiles, tmp_path / "build1"), measure_build(tiles, tmp_path / "build2"))
+    # Both builds in one fresh process: memory is the growth of the resident size, which a process that
+    # has already run other tests (its heap grown) under-counts (seen: 4 MB against 32 MB planned).
+    with ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn")) as pool:
+        measured = pool.submit(_measure_twice, tiles, tmp_path).result()
     plan = make_plan(VolumeShape.from_manifest(tiles), PipelineConfig(), cores=1)
     planned_total = real_total = 0.0
     for stage in ("stitch", "align", "render", "report"):

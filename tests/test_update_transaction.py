@@ -27,7 +27,6 @@ from stackbuild.cli import main
 #: Longer cases (append, rollback, kills at align and channels) run with STACKBUILD_SLOW_TESTS=1.
 slow = pytest.mark.skipif(not os.environ.get("STACKBUILD_SLOW_TESTS"),
                           reason="slow: set STACKBUILD_SLOW_TESTS=1 to run")
-from stackbuild.transforms.hold import section_to_aligned
 
 def _files(em: Path) -> dict[str, tuple[str, int]]:
     """Return ``{level/c/z/row/col: (sha256, mtime_ns)}`` of every stored chunk under ``em``."""
@@ -100,7 +99,7 @@ def test_two_replaced_tiles_rewrite_only_their_shards(grid_build, updated):
     canvas, st, al = store.load_canvas(), store.load_stitch(3), store.load_alignment(3)
     corners = [(t.x + dx, t.y + dy) for t in st.tiles if t.tile[:2] in ("r0", "r1")
                for dx in (-0.5, t.width - 0.5) for dy in (-0.5, t.height - 0.5)]
-    below = section_to_aligned(al, np.array(corners))[:, 1].max() - canvas.origin_y + 2  # bilinear reach
+    below = al.section_to_aligned(np.array(corners))[:, 1].max() - canvas.origin_y + 2  # bilinear reach
     far = {k for k in before if k.split(os.sep)[:3] == ["0", "c", "3"] and int(k.split(os.sep)[3]) * 64 > below}
     assert far and not far & changed
 

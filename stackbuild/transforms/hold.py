@@ -123,11 +123,6 @@ def hold_tiles(old: SectionStitch, new: SectionStitch, changed: set[str]) -> tup
     return out, {"held": len(held), "placed": len(free), "held_moved_px": moved}
 
 
-def section_to_aligned(alignment: SectionAlignment, points: np.ndarray, iterations: int | None = None) -> np.ndarray:
-    """Return :meth:`SectionAlignment.section_to_aligned` of ``points`` (kept for callers of this name)."""
-    return alignment.section_to_aligned(points)
-
-
 def _grid(bbox, n: int = 9) -> np.ndarray:
     x0, y0, x1, y1 = bbox
     gx, gy = np.meshgrid(np.linspace(x0 + 1, x1 - 1, n), np.linspace(y0 + 1, y1 - 1, n))
@@ -197,8 +192,8 @@ def hold_alignments(old: dict[int, SectionAlignment], new: dict[int, SectionAlig
         src, dst = [], []
         for s in anchors:
             pts = _grid(bboxes[s])
-            src.append(section_to_aligned(old[s], pts))
-            dst.append(section_to_aligned(new[s], pts))
+            src.append(old[s].section_to_aligned(pts))
+            dst.append(new[s].section_to_aligned(pts))
         src, dst = np.concatenate(src), np.concatenate(dst)
         to_new = fit_affine(src, dst)
         fit_rms = float(np.sqrt(np.mean(np.sum((to_new.apply(src) - dst) ** 2, axis=1))))
@@ -206,7 +201,7 @@ def hold_alignments(old: dict[int, SectionAlignment], new: dict[int, SectionAlig
     for s, rec in new.items():
         framed = reframe(rec, to_new)
         if s in old:
-            pts = section_to_aligned(old[s], _grid(bboxes[s]))
+            pts = old[s].section_to_aligned(_grid(bboxes[s]))
             dist = float(np.hypot(*(framed.aligned_to_section(pts) - old[s].aligned_to_section(pts)).T).max())
             moved[s] = dist
             if s not in movable or dist <= tolerance:

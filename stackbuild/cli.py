@@ -31,6 +31,11 @@ def _add_cluster(p: argparse.ArgumentParser) -> None:
                         "or the path of a scheduler file (e.g. from dask-jobqueue on Slurm)")
 
 
+def _add_fail_on(p: argparse.ArgumentParser, examples: str = "'align.p95>2px'") -> None:
+    p.add_argument("--fail-on", action="append", metavar="RULE", default=None,
+                   help=f"exit with status 3 if the report misses this bar, e.g. {examples} (repeatable)")
+
+
 def _add_common(p: argparse.ArgumentParser) -> None:
     p.add_argument("--debug", action="store_true", help="show full tracebacks and debug logging")
     p.add_argument("--quiet", action="store_true", help="draw no progress bars")
@@ -110,8 +115,7 @@ def _add_build(sub) -> None:
     g.add_argument("--overwrite", action="store_true",
                    help="delete the outputs of an earlier build in DIR (build.json, transforms/, "
                         "volume.zarr, qc/) and start again; raw tiles are never touched")
-    b.add_argument("--fail-on", action="append", metavar="RULE", default=None,
-                   help="exit with status 3 if the report misses this bar, e.g. 'align.p95>2px' (repeatable)")
+    _add_fail_on(b)
     _add_cluster(b)
     _add_common(b)
 
@@ -161,9 +165,7 @@ def _add_stages(sub) -> None:
                        description="Compute residual metrics, draw the plots and write a self-contained "
                                    "HTML report.")
     q.add_argument("dir", metavar="DIR", help="build folder")
-    q.add_argument("--fail-on", action="append", metavar="RULE", default=None,
-                   help="exit with status 3 if the volume misses this bar, e.g. 'align.p95>2px', "
-                        "'stitch.rms>0.5px', 'flagged>0' (repeatable)")
+    _add_fail_on(q, "'align.p95>2px', 'stitch.rms>0.5px', 'flagged>0'")
     q.add_argument("--landmarks", metavar="LANDMARKS_CSV",
                    help="landmark file: the same spot on a raw tile and on a marker image (columns section,channel,tile,"
                         "tile_x,tile_y,marker_x,marker_y[,name]); the report lists how far the marker registration "
@@ -198,8 +200,7 @@ def _add_stages(sub) -> None:
     u.add_argument("--realign-neighbours", action="store_true",
                    help="with --append: existing sections matched to the new ones take the re-solved alignment "
                         "when it moves them beyond --hold-within (by default every existing plane keeps its bytes)")
-    u.add_argument("--fail-on", action="append", metavar="RULE", default=None,
-                   help="exit with status 3 if the report misses this bar, e.g. 'align.p95>2px' (repeatable)")
+    _add_fail_on(u)
     _add_cluster(u)
     _add_common(u)
 

@@ -433,27 +433,18 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
     t0 = time.monotonic()
     with dask_client(workers, scheduler) as client:
         seconds["cluster"] = round(time.monotonic() - t0, 2)
-        if not plan.reached("stitched"):
-            t0 = time.monotonic()
-            _stitch(build, plan, client, show)
-            plan.status, seconds["stitch"] = "stitched", round(time.monotonic() - t0, 2)
-            save_plan(build.root, plan)
-        if not plan.reached("aligned"):
-            t0 = time.monotonic()
-            _align(build, plan, client, show)
-            plan.status, seconds["align"] = "aligned", round(time.monotonic() - t0, 2)
-            save_plan(build.root, plan)
-        if not plan.reached("registered"):
-            t0 = time.monotonic()
+        def channels(build, plan, client, show):
             stages.channels_stage(build, client_mapper(client, ProgressBar("channels", show)))
             _killed_here("channels")
-            plan.status, seconds["channels"] = "registered", round(time.monotonic() - t0, 2)
-            save_plan(build.root, plan)
-        if not plan.reached("rendered"):
-            t0 = time.monotonic()
-            _render(build, plan, client, show)
-            plan.status, seconds["render"] = "rendered", round(time.monotonic() - t0, 2)
-            save_plan(build.root, plan)
+
+        # Each step records its status once done, so a re-run resumes after the last finished one.
+        for step, status, run in (("stitch", "stitched", _stitch), ("align", "aligned", _align),
+                                  ("channels", "registered", channels), ("render", "rendered", _render)):
+            if not plan.reached(status):
+                t0 = time.monotonic()
+                run(build, plan, client, show)
+                plan.status, seconds[step] = status, round(time.monotonic() - t0, 2)
+                save_plan(build.root, plan)
         t0 = time.monotonic()
         verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
         seconds["report"] = round(time.monotonic() - t0, 2)

@@ -261,7 +261,8 @@ def _begin(build: BuildFolder, plan: UpdatePlan, text: str, checked: TileManifes
     merged = Path(plan.tiles_after)
     atomic_write_text(merged, text)
     build.update_state(tiles=str(merged), manifests=plan.manifests_before + [str(merged)])
-    build.keep_checked_manifest(read_tile_manifest(merged), csv_facts(merged))
+    # Files the kept snapshot already checked (unchanged size and mtime) are not opened again.
+    build.keep_checked_manifest(read_tile_manifest(merged, known=build.checked_headers()), csv_facts(merged))
 
 
 def _before_store(build: BuildFolder, plan: UpdatePlan) -> TransformStore:
@@ -540,7 +541,9 @@ def _stitch_checked(build: BuildFolder, plan: UpdatePlan) -> None:
 def _undo_begin(build: BuildFolder, plan: UpdatePlan) -> None:
     """Take back what :func:`_begin` did (only records of the build's inputs; no transform was touched)."""
     build.update_state(tiles=plan.tiles_before, manifests=plan.manifests_before)
-    build.keep_checked_manifest(read_tile_manifest(Path(plan.tiles_before)), csv_facts(Path(plan.tiles_before)))
+    tiles_before = Path(plan.tiles_before)
+    build.keep_checked_manifest(read_tile_manifest(tiles_before, known=build.checked_headers()),
+                                csv_facts(tiles_before))
     Path(plan.tiles_after).unlink(missing_ok=True)
     shutil.rmtree(plan_dir(build.root, plan.number), ignore_errors=True)
 
@@ -667,7 +670,9 @@ def rollback_update(build: BuildFolder, *, fail_on: list[str] | None = None, wor
         save_plan(build.root, plan)
     restored = _restore_records(build, before)
     build.update_state(tiles=plan.tiles_before, manifests=plan.manifests_before)
-    build.keep_checked_manifest(read_tile_manifest(Path(plan.tiles_before)), csv_facts(Path(plan.tiles_before)))
+    tiles_before = Path(plan.tiles_before)
+    build.keep_checked_manifest(read_tile_manifest(tiles_before, known=build.checked_headers()),
+                                csv_facts(tiles_before))
     manifest = build.tile_manifest()
     vol = build.config.volume
     fresh = compute_canvas(build.store, manifest.sections, manifest.lost_sections, vol.pixel_size,

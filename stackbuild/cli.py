@@ -85,6 +85,9 @@ def _add_plan(sub) -> None:
     p.add_argument("--config", metavar="PIPELINE.toml", help="pipeline settings the build will use")
     p.add_argument("--cores", type=int, default=2, metavar="N",
                    help="cores the build will run on, for the wall time (default 2)")
+    p.add_argument("--this-machine", action="store_true",
+                   help="scale CPU and wall time to this machine's cores: times a fixed reference workload "
+                        "here (about a second) against the calibration machine's time for it")
     p.add_argument("--json", action="store_true", help="write the plan as JSON instead of a table")
     _add_common(p)
 
@@ -463,7 +466,12 @@ def _cmd_plan(args) -> int:
         raise InputError("give a tile manifest, or all of --sections, --tiles-per-section and --tile-size")
     if args.cores < 1:
         raise InputError(f"--cores must be >= 1, got {args.cores}")
-    plan = make_plan(shape, load_config(args.config), cores=args.cores)
+    speed = 1.0
+    if args.this_machine:
+        from .run.plan import load_rates
+        from .run.plan_speed import speed_factor
+        speed = speed_factor(load_rates())
+    plan = make_plan(shape, load_config(args.config), cores=args.cores, speed=speed)
     _say(json.dumps(plan, indent=1) if args.json else plan_text(plan))
     return EXIT_OK
 

@@ -35,8 +35,8 @@ def load_rates(path: str | Path | None = None) -> dict:
     return doc
 
 
-def _apply(kind: Kind, rates: dict, baseline: float) -> dict:
-    """Return one kind's figures: factors applied to what it holds and does."""
+def _apply(kind: Kind, rates: dict, baseline: float, speed: float) -> dict:
+    """Return one kind's figures: factors applied to what it holds and does, CPU scaled by ``speed``."""
     r = rates["kinds"].get(kind.name)
     if r is None:  # not measured: the modelled arrays alone, no CPU
         r, measured = {"memory_fixed_bytes": 0, "memory_per_held": 1.0, "cpu_fixed_s": 0.0,
@@ -44,7 +44,8 @@ def _apply(kind: Kind, rates: dict, baseline: float) -> dict:
     else:
         measured = True
     working = r["memory_fixed_bytes"] + kind.held * r["memory_per_held"] + kind.fixed
-    each = r["cpu_fixed_s"] + kind.work * r["cpu_s_per_work"] + kind.items * r.get("cpu_s_per_item", 0.0)
+    each = speed * max(0.0, r["cpu_fixed_s"] + kind.work * r["cpu_s_per_work"]
+                       + kind.items * r.get("cpu_s_per_item", 0.0))
     return {"kind": kind.name, "tasks": kind.count, "working_bytes": working,
             "memory_bytes": working + (0 if kind.driver else baseline),
             "cpu_seconds_each": each, "cpu_seconds": kind.count * each,
@@ -52,10 +53,10 @@ def _apply(kind: Kind, rates: dict, baseline: float) -> dict:
             "driver": kind.driver, "measured": measured, "note": kind.note}
 
 
-def plan_stage(name: str, kinds: list[Kind], rates: dict, cores: int) -> dict:
+def plan_stage(name: str, kinds: list[Kind], rates: dict, cores: int, speed: float = 1.0) -> dict:
     """Return a stage's plan: its kinds, task and driver memory, CPU, bytes and wall time on ``cores``."""
     baseline = rates.get("worker_baseline_bytes", 0.0)
-    rows = [_apply(k, rates, baseline) for k in kinds if k.count > 0]
+    rows = [_apply(k, rates, baseline, speed) for k in kinds if k.count > 0]
     tasks = [r for r in rows if not r["driver"]]
     drivers = [r for r in rows if r["driver"]]
     task_mem = max((r["memory_bytes"] for r in tasks), default=0.0)
@@ -84,8 +85,11 @@ def plan_stage(name: str, kinds: list[Kind], rates: dict, cores: int) -> dict:
     }
 
 
-def make_plan(shape: VolumeShape, cfg, *, cores: int = 2, rates: dict | None = None) -> dict:
+def make_plan(shape: VolumeShape, cfg, *, cores: int = 2, rates: dict | None = None, speed: float = 1.0) -> dict:
     """Return the whole plan of a build of ``shape`` with settings ``cfg`` on ``cores`` cores.
+
+    ``speed`` scales every CPU figure: a core's CPU seconds for a fixed workload over the
+    calibration machine's (:func:`stackbuild.run.plan_speed.speed_factor`; 1.0 = as measured there).
 
     Returns
     -------
@@ -93,12 +97,15 @@ def make_plan(shape: VolumeShape, cfg, *, cores: int = 2, rates: dict | None = N
         ``shape``; ``stages.<name>`` with ``tasks``, ``task_memory_mb``, ``driver_memory_mb``,
         ``cpu_hours``, ``bytes_read``, ``bytes_written``, ``wall_hours``, ``bounded``, ``unbounded``;
         ``output_bytes``, ``output_files``, ``output`` (levels, shards, codec, ratio);
-        ``cpu_hours``, ``wall_hours`` (on ``cores``), ``bounded``; ``rates`` (where the factors come from).
+        ``cpu_hours``, ``wall_hours`` (on ``cores``), ``bounded``; ``rates`` (where the factors come from);
+        ``speed_factor``.
     """
     if cores < 1:
         raise ValueError(f"cores must be >= 1, got {cores}")
     rates = rates or load_rates()
-    stages = {name: plan_stage(name, fn(shape, cfg), rates, cores) for name, fn in STAGES.items()}
+    if not speed > 0:
+        raise ValueError(f"speed must be > 0, got {speed}")
+    stages = {name: plan_stage(name, fn(shape, cfg), rates, cores, speed) for name, fn in STAGES.items()}
     out = output_layout(shape, cfg)
     codec = f"{cfg.render.codec}" + ("" if cfg.render.codec == "none" else f" level {cfg.render.clevel}")
     ratio = rates.get("compression_ratio", {}).get(codec, 1.0) if cfg.render.codec != "none" else 1.0
@@ -116,6 +123,7 @@ def make_plan(shape: VolumeShape, cfg, *, cores: int = 2, rates: dict | None = N
         "bounded": all(s["bounded"] for s in stages.values()),
         "limits": {"task_memory_mb": TASK_LIMIT / MB, "driver_memory_mb": DRIVER_LIMIT / MB},
         "rates": {k: rates.get(k) for k in ("measured", "machine", "commit", "how")},
+        "speed_factor": speed,
     }
 
 
@@ -162,4 +170,9 @@ def plan_text(plan: dict) -> str:
             lines.append(f"{name}: no measured rate for {', '.join(s['unmeasured'])} (CPU counted as 0)")
     r = plan["rates"]
     lines.append(f"rates measured {r['measured']} on {r['machine']} (code {r['commit']})")
+    if plan["speed_factor"] == 1.0:
+        lines.append("CPU and wall time as on that machine (--this-machine scales them to this one)")
+    else:
+        lines.append(f"CPU and wall time scaled to this machine: {plan['speed_factor']:.2f}x the calibration "
+                     "machine's time for the same reference workload")
     return "\n".join(lines)

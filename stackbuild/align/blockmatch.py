@@ -22,9 +22,20 @@ _BATCH = 256
 #: sub-pixel refinement: upsampling factor and half-width (pixels) of the refined neighbourhood
 _UPSAMPLE = 16
 _REFINE_HALF = 0.75
-#: extra pixels cut around a block before it is moved by a sub-pixel Fourier shift (the wrap-around
-#: of the shift stays in this rim, which is cropped away)
+#: at least this many extra pixels are cut around a block before it is moved by a sub-pixel Fourier
+#: shift (the wrap-around of the shift stays in this rim, which is cropped away)
 _RIM = 8
+
+
+def _sizes(half_size: int, max_shift: int) -> tuple[int, int, int]:
+    """Return ``(p, q, rim)``: the block side, the side of the wider cut moved by a Fourier shift, its rim before.
+
+    Both sides are the next sizes whose prime factors are 2, 3 and 5 (fast
+    for the FFT; a side of 74 = 2 x 37 costs about 1.4x one of 75).
+    """
+    p = sfft.next_fast_len(2 * (int(half_size) + int(max_shift)) + 2, real=True)
+    q = sfft.next_fast_len(p + 2 * _RIM, real=True)
+    return p, q, (q - p) // 2
 
 
 @dataclass
@@ -158,17 +169,41 @@ def _rival(score: np.ndarray, r: np.ndarray, c: np.ndarray) -> np.ndarray:
     return np.where(top & ~near, s, 0.0).reshape(n, -1).max(1)
 
 
+def _half_weights(p: int, q: int) -> np.ndarray:
+    """Return the ``(q,)`` weights of a real FFT's columns: the Hermitian half stands for both halves."""
+    w = np.full(q, 2.0, np.float32)
+    w[0] = 1.0
+    if p % 2 == 0:
+        w[-1] = 1.0
+    return w
+
+
 def _dot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Return ``sum(x * y)`` of the real blocks whose real FFTs are ``a``, ``b`` (Parseval; up to a common factor)."""
-    w = np.full(a.shape[-1], 2.0)        # the Hermitian half stands for both halves
-    w[0] = 1.0
-    if a.shape[-2] % 2 == 0:
-        w[-1] = 1.0
-    return (np.real(a * np.conj(b)) * w).sum(axis=(1, 2))
+    prod = a.real * b.real
+    prod += a.imag * b.imag
+    return prod.sum(axis=1).astype(np.float64) @ _half_weights(*a.shape[-2:]).astype(np.float64)
 
 
-def _isotropy(spec: np.ndarray, p: int) -> np.ndarray:
-    """Return ``lambda_min / lambda_max`` of the gradient structure tensor of each block, from its real FFT.
+def _power_sums(spec: np.ndarray) -> np.ndarray:
+    """Return ``(n, 4)``: each block's energy and its gradient structure tensor ``jxx, jyy, jxy``, from its real FFT.
+
+    By Parseval's theorem all four are weighted sums of the power spectrum
+    ``|S|^2`` (the gradient is a product with ``2 pi i k``, up to a common
+    factor), so they come out of one matrix product.
+    """
+    n, p, q = spec.shape
+    ky = sfft.fftfreq(p)[:, None]
+    kx = sfft.rfftfreq(p)[None, :]
+    w = _half_weights(p, q)[None, :].astype(np.float64)
+    weights = np.stack([np.broadcast_to(x, (p, q)) for x in (w, kx * kx * w, ky * ky * w, kx * ky * w)], axis=-1)
+    power = spec.real * spec.real
+    power += spec.imag * spec.imag
+    return power.reshape(n, -1).astype(np.float64) @ weights.reshape(-1, 4)
+
+
+def _isotropy(sums: np.ndarray) -> np.ndarray:
+    """Return ``lambda_min / lambda_max`` of the gradient structure tensor of each block (from :func:`_power_sums`).
 
     The structure tensor (Harris & Stephens, "A combined corner and edge
     detector", Alvey Vision Conference 1988, doi:10.5244/C.2.23) sums the
@@ -176,10 +211,7 @@ def _isotropy(spec: np.ndarray, p: int) -> np.ndarray:
     along which a block cannot be placed. The sums are taken in the Fourier
     domain (Parseval), where the gradient is a product with ``2 pi i k``.
     """
-    ky = sfft.fftfreq(p)[None, :, None]
-    kx = sfft.rfftfreq(p)[None, None, :]
-    gx, gy = spec * kx, spec * ky
-    jxx, jyy, jxy = _dot(gx, gx), _dot(gy, gy), _dot(gx, gy)
+    jxx, jyy, jxy = sums[:, 1], sums[:, 2], sums[:, 3]
     tr, det = jxx + jyy, jxx * jyy - jxy * jxy
     disc = np.sqrt(np.maximum(tr * tr / 4 - det, 0))
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -192,7 +224,7 @@ def _band(p: int, fine_sigma: float, coarse_sigma: float) -> np.ndarray:
     g = np.exp(-2 * np.pi ** 2 * fine_sigma ** 2 * k2)
     if coarse_sigma > 0:
         g = g * (1 - np.exp(-2 * np.pi ** 2 * coarse_sigma ** 2 * k2))
-    return g
+    return g.astype(np.float32)
 
 
 def _whiten(x: np.ndarray, power: float) -> np.ndarray:
@@ -230,16 +262,29 @@ def _filled(x: np.ndarray) -> np.ndarray:
     return np.where(bad, mean[:, None, None], x).astype(np.float32)
 
 
+def _ramps(shift: np.ndarray, q: int) -> tuple[np.ndarray, np.ndarray]:
+    """Return the separable Fourier phase ramps ``(n, q, 1)`` and ``(n, 1, q // 2 + 1)`` of ``shift`` ``(n, 2)`` ``(dy, dx)``.
+
+    Their product times a block's real FFT is the spectrum of the block
+    resampled at ``p + shift`` (circularly); one complex exponential per row
+    and per column instead of one per frequency.
+    """
+    ey = np.exp(2j * np.pi * sfft.fftfreq(q)[None, :] * shift[:, 0, None]).astype(np.complex64)
+    ex = np.exp(2j * np.pi * sfft.rfftfreq(q)[None, :] * shift[:, 1, None]).astype(np.complex64)
+    return ey[:, :, None], ex[:, None, :]
+
+
 def _subpixel_moved(x: np.ndarray, shift: np.ndarray) -> np.ndarray:
     """Return blocks ``x`` (``(n, q, q)``) resampled at ``p + shift`` (``shift`` ``(n, 2)`` ``(dy, dx)``) by a Fourier phase ramp."""
     q = x.shape[1]
-    ky = sfft.fftfreq(q)[None, :, None]
-    kx = sfft.rfftfreq(q)[None, None, :]
-    ramp = np.exp(2j * np.pi * (ky * shift[:, 0, None, None] + kx * shift[:, 1, None, None]))
-    return sfft.irfft2(sfft.rfft2(x) * ramp, s=(q, q))
+    ey, ex = _ramps(shift, q)
+    spec = sfft.rfft2(x)
+    spec *= ey
+    spec *= ex
+    return sfft.irfft2(spec, s=(q, q))
 
 
-def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power):
+def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power, subpixel=True):
     """Match the blocks at integer nodes ``xy`` (all inside); return shifts (dx, dy), peak, ncc, margin, isotropy."""
     n = len(xy)
     half = p // 2
@@ -255,44 +300,57 @@ def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power):
     f, m, xy = _filled(f[good]), _filled(m[good]), xy[good]
     b = _Batch(f, win, band, power)
     # pass 1: whole-pixel peak of the band-limited phase correlation within +- max_shift
-    surf = sfft.irfft2(b.cross(b.spectrum(m)), s=(p, p)) / b.norm
+    m_spec = b.spectrum(m)
+    cross = b.cross(m_spec)
+    surf = sfft.irfft2(cross, s=(p, p)) / b.norm
     surf = np.roll(surf, (ms, ms), axis=(1, 2))[:, :2 * ms + 1, :2 * ms + 1]
     k = 2 * ms + 1
     r, c = np.divmod(surf.reshape(len(f), -1).argmax(1), k)
     top = surf.reshape(len(f), -1).max(1)
     rival = _rival(surf, r, c)
     ok = (r > 0) & (r < k - 1) & (c > 0) & (c < k - 1)                 # an edge peak may lie beyond
-    # pass 2: cut the moving block again at the whole-pixel shift, so the window (the same on both
-    # sides) sees nearly the same content, then refine the peak by upsampled DFT
-    dy, dx = r - ms, c - ms
-    m2 = _filled(_patches(m_img, xy[:, 0] - half + dx, xy[:, 1] - half + dy, p))
-    m2_spec = b.spectrum(m2)
-    sub, height = _refine(b.cross(m2_spec), p)
-    # pass 3: move the moving block back by that sub-pixel shift too (Fourier shift of a wider cut,
-    # cropped) and measure what is left: the window's small pull toward no shift, removed
-    wide = _patches(m_img, xy[:, 0] - half + dx - _RIM, xy[:, 1] - half + dy - _RIM, p + 2 * _RIM)
-    m3 = _subpixel_moved(_filled(wide), sub)[:, _RIM:_RIM + p, _RIM:_RIM + p]
-    rest, height = _refine(b.cross(b.spectrum(m3)), p)
-    sub = sub + rest
-    # NCC of the band-limited, windowed blocks at the whole-pixel shift (for the trust threshold),
-    # by Parseval's theorem straight from the spectra
-    fg, mg = b.f_spec * b.band, m2_spec * b.band
+    # pass 2: the same surface evaluated between pixels about that peak (upsampled DFT of the
+    # cross-power spectrum moved by the whole-pixel shift); no new transform
+    whole = np.column_stack([r - ms, c - ms]).astype(float)          # (dy, dx)
+    ey, ex = _ramps(whole, p)
+    sub, height = _refine(cross * ey * ex, p)
+    est = whole + sub
+    if subpixel:
+        # pass 3: cut the moving block again at that shift (whole pixels by the cut, the rest by a
+        # Fourier shift of a wider cut, cropped) so the window, the same on both sides, sees the
+        # same content; the small shift measured there is free of the window's pull toward zero
+        cut = np.rint(est).astype(int)
+        _, q, rim = _sizes(hs, ms)
+        wide = _patches(m_img, xy[:, 0] - half + cut[:, 1] - rim, xy[:, 1] - half + cut[:, 0] - rim, q)
+        m3 = _subpixel_moved(_filled(wide), est - cut)[:, rim:rim + p, rim:rim + p]
+        m_spec = b.spectrum(m3)
+        rest, height = _refine(b.cross(m_spec), p)
+        est = est + rest
+        ok &= (np.abs(rest) < 1.0).all(axis=1)
+        mg = m_spec * b.band
+    else:
+        # the moving block's spectrum brought to the whole-pixel shift (circularly) for the NCC
+        mg = m_spec * b.band * ey * ex
+    # NCC of the band-limited, windowed blocks at the match (for the trust threshold), by
+    # Parseval's theorem straight from the spectra
+    fg = b.f_spec * b.band
+    f_sums = _power_sums(fg)
     with np.errstate(divide="ignore", invalid="ignore"):
-        ncc = _dot(fg, mg) / np.sqrt(_dot(fg, fg) * _dot(mg, mg))
+        ncc = _dot(fg, mg) / np.sqrt(f_sums[:, 0] * _dot(mg, mg))
         margin = np.clip(1.0 - np.maximum(rival, 0.0) / top, 0.0, 1.0)
     ok &= np.isfinite(ncc) & (np.abs(sub) < 1.0).all(axis=1)
     idx = np.flatnonzero(good)[ok]
-    out[0][idx] = np.column_stack([dx + sub[:, 1], dy + sub[:, 0]])[ok]
+    out[0][idx] = est[ok][:, ::-1]
     out[1][idx] = (height / b.norm)[ok]
     out[2][idx] = ncc[ok]
     out[3][idx] = margin[ok]
-    out[4][idx] = _isotropy(fg[ok], p)
+    out[4][idx] = _isotropy(f_sums[ok])
     return out
 
 
 def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_size: int,
                  max_shift: int, *, fine_sigma: float = 1.0, coarse_sigma: float | None = None,
-                 power: float = 1.0) -> BlockMatches:
+                 power: float = 1.0, subpixel: bool = True) -> BlockMatches:
     """Return the sub-pixel shift, peak height, correlation and peak margin of every grid node.
 
     Parameters
@@ -305,7 +363,8 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
         matched when ``half_size + 2 * max_shift + 1`` pixels around it lie
         inside the images (:func:`block_reach`).
     half_size : int
-        Each block is ``2 * (half_size + max_shift) + 2`` pixels square under
+        Each block is ``2 * (half_size + max_shift) + 2`` pixels square (or
+        the next size fast for the FFT) under
         a window that is flat out to ``half_size`` and falls to zero at the
         block's edge.
     max_shift : int
@@ -321,6 +380,11 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
         Spectral whitening: the cross-power spectrum is divided by its
         magnitude to this power (1 = phase correlation, 0 = plain
         cross-correlation).
+    subpixel : bool
+        False skips the third pass (the moving block cut again at the
+        match): the shift keeps the window's small pull toward zero, at
+        about half the cost; for coarse levels whose answer a finer level
+        refines.
 
     Returns
     -------
@@ -365,7 +429,7 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
     nodes = np.asarray(nodes, float).reshape(-1, 2)
     n = len(nodes)
     out = BlockMatches(np.full((n, 2), np.nan), *(np.full(n, np.nan) for _ in range(4)))
-    p = 2 * (hs + ms) + 2
+    p = _sizes(hs, ms)[0]
     reach = block_reach(hs, ms)
     h, w = f_img.shape
     xy = np.rint(nodes).astype(int)
@@ -378,14 +442,16 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
     win = np.outer(taper, taper)
     for a in range(0, inside.size, _BATCH):
         sel = inside[a:a + _BATCH]
-        s, pk, c, g, i = _match_batch(f_img, m_img, xy[sel], p, hs, ms, win, band, float(power))
+        s, pk, c, g, i = _match_batch(f_img, m_img, xy[sel], p, hs, ms, win, band, float(power), bool(subpixel))
         out.shifts[sel], out.peak[sel], out.ncc[sel], out.margin[sel], out.isotropy[sel] = s, pk, c, g, i
     return out
 
 
 def block_reach(half_size: int, max_shift: int) -> int:
     """Return how far (pixels) from a node :func:`match_blocks` reads: nodes need this much array around them."""
-    return (int(half_size) + int(max_shift) + 1) + int(max_shift) + 1 + _RIM
+    p, q, rim = _sizes(half_size, max_shift)
+    # the wide cut of the third pass, at a shift of up to max_shift, reaches farthest
+    return max(p // 2 + rim, q - rim - 1 - p // 2) + int(max_shift) + 1
 
 
 def block_match(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_size: int,

@@ -236,7 +236,8 @@ def _coarse_search(level: _Level, make, n_par, initial, max_offset, max_rotation
     med = np.median(values)
     mad = 1.4826 * np.median(np.abs(values - med))
     distinct = float((values[0] - med) / mad) if mad > 0 else 0.0
-    return [t for _, t in scored[:3]], shifts[-1] if len(shifts) else 0.0, distinct
+    gain = float(values[0] - med)
+    return [t for _, t in scored[:3]], shifts[-1] if len(shifts) else 0.0, distinct, gain
 
 
 def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: Affine2D | None = None,
@@ -275,7 +276,13 @@ def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: 
         optimum or the result lies at the edge of the search range) and
         ``"distinctness"``: how far the best grid value stands above the
         others, ``(max - median) / (1.4826 MAD)`` (a robust z-score; a
-        unique, well-defined optimum scores high, a flat landscape low).
+        unique, well-defined optimum scores high, a flat landscape low);
+        ``"gain"``: how much the best grid value exceeds the median of the
+        grid, ``max - median`` in normalised-MI units (the information the
+        best placement shares beyond a chance placement of the same images;
+        each pair's own chance level is subtracted, so gains of different
+        feature images can be compared, while distinctness scales with each
+        landscape's own spread and cannot).
 
     Notes
     -----
@@ -318,7 +325,7 @@ def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: 
     make, n_par = _param_map(model, centre, radius)
     coarse = _search_level(pyr, max_offset, max_rotation)
     pyr = pyr[:pyr.index(coarse) + 1]
-    starts, edge, distinct = _coarse_search(coarse, make, n_par, initial, max_offset, max_rotation, radius)
+    starts, edge, distinct, gain = _coarse_search(coarse, make, n_par, initial, max_offset, max_rotation, radius)
     bounds = _bounds(n_par, max_offset, max_rotation, radius, margin=2.0 * coarse.factor)
     refined = [_refine(coarse, make, initial, t, float(coarse.factor), bounds) for t in starts]
     best_theta = max(refined, key=lambda t: coarse.measure(initial.then(make(t))))
@@ -331,7 +338,7 @@ def register_mutual_information(fixed: np.ndarray, moving: np.ndarray, initial: 
     limit = edge > 0 and (bool(np.any(np.abs(shift) >= max_offset + 0.5 * pyr[-1].factor))
                           or bool(np.any(np.abs(starts[0][:2]) >= edge)))
     return result, {"before": before, "after": after, "shift": [float(shift[0]), float(shift[1])],
-                    "at_limit": limit, "distinctness": distinct}
+                    "at_limit": limit, "distinctness": distinct, "gain": gain}
 
 
 def _bounds(n_par: int, max_offset: float, max_rotation: float, radius: float, margin: float):

@@ -111,6 +111,11 @@ class _PlaneJob:
     fresh: bool
 
 
+def _renders(rec: dict) -> bool:
+    """Return whether a channel record's image is drawn: registered (blank, too small and rejected ones are not)."""
+    return rec.get("registered") is not False and not {"blank", "too_small"} & set(rec.get("flags") or [])
+
+
 def write_marker_plane(job: _PlaneJob) -> int:
     """Resample one section's marker image and write its plane at every level of the pyramid; return ``z``.
 
@@ -120,7 +125,7 @@ def write_marker_plane(job: _PlaneJob) -> int:
     dtype = np.dtype(job.dtype)
     s = job.canvas.first_section + job.z
     rec = job.rec
-    if rec is None or {"blank", "too_small"} & set(rec["flags"]):
+    if rec is None or not _renders(rec):
         if not job.fresh:  # a new array already reads as zeros
             for n, arr in enumerate(arrays):
                 arr[job.z] = np.zeros(job.shapes[n], dtype)
@@ -246,7 +251,7 @@ def render_channels(build_dir, render_settings, *, overwrite: bool = False, prog
     table = channel_table(folder)
     for name, recs in table.items():  # every input checked before any output is touched
         for s, rec in recs.items():
-            if not {"blank", "too_small"} & set(rec["flags"]):
+            if _renders(rec):
                 image_header(Path(rec["path"]))
     zarr.open_group(str(folder.volume_path), mode="a", zarr_format=3).update_attributes(root_attrs())
     if table:

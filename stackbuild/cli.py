@@ -116,8 +116,9 @@ def _add_build(sub) -> None:
                    help="continue an interrupted build in DIR, keeping every finished section and plane; "
                         "the build's own settings are used (settings given again must match)")
     g.add_argument("--overwrite", action="store_true",
-                   help="delete the outputs of an earlier build in DIR (build.json, transforms/, "
-                        "volume.zarr, qc/) and start again; raw tiles are never touched")
+                   help="replace the build in DIR: the new one is made in DIR/.build-incoming and takes the "
+                        "old one's place (build.json, transforms/, volume.zarr, qc/) only when it is complete; "
+                        "until then the old build stays whole. Raw tiles are never touched")
     _add_fail_on(b)
     _add_cluster(b)
     _add_common(b)
@@ -288,11 +289,13 @@ def _open_build(path: str):
 def _cmd_build(args) -> int:
     from .run import stages
     from .run.cluster import dask_client
+    from .run.start import finish_build
 
     build = _prepare_folder(args)
     _say_assumed_scale(build)
     with dask_client(args.workers, args.scheduler) as client:
         verdict = stages.run_build(build, client, resume=args.resume, fail_on=args.fail_on, show=not args.quiet)
+    build = finish_build(build)  # a replacement (--overwrite) takes the old build's place only now
     _say(f"volume: {build.volume_path}\nreport: {build.report_path}")
     return _verdict_status(verdict, args.fail_on)
 

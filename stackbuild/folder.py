@@ -10,6 +10,8 @@ Layout::
                           tiles.checked.json, the checked tile manifest (a cache)
     DIR/scratch/<stage>/  a stage's temporary files, removed when it ends
     DIR/.stackbuild.lock  held while a command works in the folder
+    DIR/.build-incoming/  a whole build made by ``build --overwrite`` beside the one it replaces
+                          (a build folder of its own), swapped in when it is complete
 
 Raw tiles are only ever read, never written. Every path inside the folder is
 named here and nowhere else: stages ask the :class:`BuildFolder` for it.
@@ -37,6 +39,10 @@ SNAPSHOT_VERSION = 1
 LOCK_NAME = ".stackbuild.lock"
 #: What a build writes at the top of its folder (``--overwrite`` removes these).
 OUTPUTS = ("build.json", "transforms", "volume.zarr", "qc")
+#: Where ``build --overwrite`` makes the replacing build, inside the folder it replaces.
+REPLACEMENT_NAME = ".build-incoming"
+#: What a finished replacement swaps in for the old build's (``build.json`` last), relative to the folder.
+REPLACED = ("transforms", "volume.zarr", "qc", "updates", "manifests/tiles.checked.json", "build.json")
 
 log = logging.getLogger(__name__)
 
@@ -112,6 +118,24 @@ class BuildFolder:
     def incoming_dir(self) -> Path:
         """``DIR/.render-incoming``: pyramids rendered to replace others, swapped in when complete."""
         return self.root / ".render-incoming"
+
+    @property
+    def home(self) -> Path:
+        """The folder this build is for: :attr:`root`, or ``DIR`` for a replacement made in ``DIR/.build-incoming``.
+
+        What reports and messages name: a replacement is swapped into ``DIR`` when it is complete.
+        """
+        return self.root.parent if self.root.name == REPLACEMENT_NAME else self.root
+
+    @property
+    def replacement(self) -> "BuildFolder":
+        """The build ``build --overwrite`` makes beside this one (``DIR/.build-incoming``), swapped in when complete."""
+        return BuildFolder(self.root / REPLACEMENT_NAME)
+
+    @property
+    def replaced_dir(self) -> Path:
+        """``DIR/.build-replaced``: the old build's outputs, set aside for the moment of a swap."""
+        return self.root / ".build-replaced"
 
     def scratch_dir(self, stage: str) -> Path:
         """``DIR/scratch/<stage>``: a stage's temporary files (the stage removes them)."""

@@ -458,7 +458,7 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
     meas.notes += [f"section {r['section']} tile pair {r['a']}-{r['b']}: {r['error']}" for r in pairs if r["error"]]
     src = meas.source
     doc = {
-        "schema_version": SCHEMA_VERSION, "build": str(build_dir),
+        "schema_version": SCHEMA_VERSION, "build": str(folder.home),
         "volume": {"pixel_size_nm": sc.px_nm, "section_thickness_nm": sc.dz_nm,
                    "width": canvas.width if canvas else None, "height": canvas.height if canvas else None,
                    "depth": canvas.depth if canvas else None,

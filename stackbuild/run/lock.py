@@ -15,6 +15,10 @@ the message. POSIX record locks also work on NFS with a lock daemon; on file
 systems without working locks the lock cannot protect the folder (say so to your
 cluster's administrators if ``stackbuild`` reports the lock as unsupported).
 
+Whoever takes the lock first finishes a swap of a replacing build that a killed
+``build --overwrite`` left halfway (:func:`stackbuild.run.start.complete_replacement`),
+so no command ever sees half of one build and half of another.
+
 Dask workers never take the lock: they only read the folder's records and write
 their own pixels, on behalf of the command that holds it.
 """
@@ -31,7 +35,8 @@ from contextlib import contextmanager
 from pathlib import Path
 
 from ..errors import BuildFolderError
-from ..folder import LOCK_NAME
+from ..folder import LOCK_NAME, BuildFolder
+from .start import complete_replacement
 
 
 
@@ -78,6 +83,7 @@ def build_lock(folder: str | Path, command: str | None = None):
         os.ftruncate(fd, 0)
         os.pwrite(fd, (json.dumps(info) + "\n").encode(), 0)
         try:
+            complete_replacement(BuildFolder(folder))
             yield path
         finally:
             fcntl.lockf(fd, fcntl.LOCK_UN)

@@ -1,11 +1,19 @@
-"""Starting a build: check every input, then create, resume or empty the build folder.
+"""Starting a build: check every input, then create or resume the build folder, or begin its replacement.
 
-Raw tiles, channel images and manifests are only read. ``overwrite`` deletes
-exactly :data:`OUR_OUTPUTS` inside the build folder, nothing else.
+Raw tiles, channel images and manifests are only read. ``overwrite`` never
+deletes the old build before its replacement exists: the new build is made in
+``DIR/.build-incoming`` (a build folder of its own, :attr:`BuildFolder.replacement`)
+while the old one stays whole, and :func:`finish_build` swaps it in when every
+stage is done. A failed or killed ``build --overwrite`` leaves the old build
+byte-identical; ``build --resume`` continues the replacement, ``build --overwrite``
+starts it again. The swap is a handful of renames inside the folder, recorded
+first (:func:`complete_replacement`), so one killed halfway is finished by the next
+command that takes the folder's lock (:mod:`stackbuild.run.lock`).
 """
 from __future__ import annotations
 
 import json
+import os
 import shutil
 import tomllib
 from pathlib import Path
@@ -14,10 +22,13 @@ from .._version import __version__
 from ..config import load_config
 from ..errors import InputError
 from ..manifest import read_channel_manifest, read_landmarks, read_tile_manifest
-from ..folder import LOCK_NAME, OUTPUTS, BuildFolder, csv_facts
+from ..folder import LOCK_NAME, OUTPUTS, REPLACED, BuildFolder, csv_facts
+from ..transforms.store import atomic_write_text
 
-#: What an earlier build wrote into its folder, and all that ``overwrite`` deletes.
+#: What an earlier build wrote at the top of its folder.
 OUR_OUTPUTS = OUTPUTS
+#: Written into a finished replacement before the swap: the names it brings (the swap is then rolled forward).
+SWAP_RECORD = "swap.json"
 
 
 def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel_size=None,
@@ -39,7 +50,8 @@ def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel
     resume : bool
         Continue the build in ``out`` with its own settings; settings given again must match.
     overwrite : bool
-        Delete the outputs of an earlier build in ``out`` (:data:`OUR_OUTPUTS`; nothing else).
+        Replace the build in ``out``: the returned folder is its replacement
+        (``out/.build-incoming``), which :func:`finish_build` swaps in when complete.
 
     Raises
     ------
@@ -48,6 +60,9 @@ def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel
         ``overwrite``), a non-empty folder that holds none, or settings that differ on resume.
     """
     build = BuildFolder(Path(out))
+    complete_replacement(build)
+    if resume and build.replacement.exists():  # an interrupted --overwrite: its build is the one to continue
+        build = build.replacement
     tiles = Path(tiles)
     # Hashed before the check, so the kept snapshot never claims content it was not made from.
     facts = csv_facts(tiles) if tiles.is_file() else None
@@ -99,12 +114,10 @@ def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel
         if not overwrite:
             raise InputError("already holds a build; pass --resume to continue it or --overwrite "
                              "to replace it", file=build.root)
-        for name in OUR_OUTPUTS:
-            target = build.root / name
-            if target.is_dir():
-                shutil.rmtree(target)
-            elif target.exists():
-                target.unlink()
+        # The old build stays whole until its replacement is complete (see finish_build);
+        # an unfinished replacement from an earlier --overwrite is ours to drop.
+        build = build.replacement
+        shutil.rmtree(build.root, ignore_errors=True)
     elif build.root.exists() and any(p.name != LOCK_NAME for p in build.root.iterdir()) and not overwrite:
         raise InputError("exists, is not empty and holds no build; choose an empty or new folder",
                          file=build.root)
@@ -113,6 +126,61 @@ def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel
     if facts is not None:
         build.keep_checked_manifest(manifest, facts)
     return build
+
+
+def finish_build(build: BuildFolder) -> BuildFolder:
+    """Return the build folder after its build finished: a replacement (``--overwrite``) is swapped in first.
+
+    The replacement's outputs (:data:`stackbuild.folder.REPLACED`) take the old ones' places, the
+    old ones are deleted, and the folder the build now lives in is returned; any other build is
+    returned as it is.
+    """
+    if build.home == build.root:
+        return build
+    home = BuildFolder(build.home)
+    names = [n for n in REPLACED if (build.root / n).exists()]
+    atomic_write_text(build.root / SWAP_RECORD, json.dumps({"bring": names}) + "\n")
+    complete_replacement(home)
+    return home
+
+
+def complete_replacement(folder: BuildFolder) -> bool:
+    """Finish a swap of a finished replacement into ``folder``; return True if there was one to finish.
+
+    Rolled forward from any point: every name the swap record lists that is still in the
+    replacement is moved in (the old one moved aside first), every other output of the old
+    build is moved aside, then what was set aside and the replacement's leftovers (its scratch)
+    are deleted. A replacement without a swap record is unfinished and left alone (for
+    ``build --resume``, or for ``build --overwrite`` to drop).
+    """
+    new_root = folder.replacement.root
+    try:
+        bring = json.loads((new_root / SWAP_RECORD).read_text(encoding="utf-8"))["bring"]
+    except (OSError, ValueError, KeyError, TypeError):
+        return False
+    aside = folder.replaced_dir
+    for name in REPLACED:
+        new, dest = new_root / name, folder.root / name
+        if name in bring and not new.exists():
+            continue  # moved in before a kill
+        if dest.exists():
+            old = aside / name
+            _remove(old)
+            old.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(dest, old)
+        if name in bring:
+            dest.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(new, dest)
+    _remove(aside)
+    _remove(new_root)
+    return True
+
+
+def _remove(path: Path) -> None:
+    if path.is_dir() and not path.is_symlink():
+        shutil.rmtree(path)
+    elif path.exists() or path.is_symlink():
+        path.unlink()
 
 
 def assumed_scale(cfg, config, pixel_size, section_thickness) -> dict:

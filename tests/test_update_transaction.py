@@ -85,6 +85,12 @@ def test_two_replaced_tiles_rewrite_only_their_shards(grid_build, updated):
     assert set(dirty) == {3}  # plane = section here; untouched sections are held
     realigned = plan["facts"]["align"]["realigned"]
     assert set(realigned) <= {3}
+    assert plan["facts"]["ran"] == "in this process"  # 2 tiles: no cluster is started
+    # The re-imaged tiles show their old content where it was (fresh noise only), so the section keeps
+    # its alignment without a re-solve: no window of sections is solved again.
+    checked = plan["facts"]["align"]["checked"]["3"]
+    assert checked["kept_without_solve"] and plan["facts"]["align"]["window"] == [], checked
+    assert all(t["blocks"] > 0 and t["max_shift_px"] <= 0.5 for t in checked["tiles"].values())
     changed = {k for k in before.keys() | after.keys() if before.get(k) != after.get(k)}  # all-zero chunks are not stored
     for key in changed:  # level/c/z/row/col
         level, _, z, i, j = key.split(os.sep)
@@ -119,6 +125,23 @@ def test_updated_volume_is_still_ome_zarr_0_5(updated):
     # Standard: OME-Zarr specification 0.5, validated by the ome-zarr-models package (v05.Image).
     image = Image.from_zarr(zarr.open_group(str(work / "volume.zarr" / "em"), mode="r"))
     assert len(image.attributes.ome.multiscales[0].datasets) >= 3
+
+
+def test_a_tile_whose_content_changed_has_its_section_solved_again(grid_build, grid_data, tmp_path):
+    # A tile that was out of focus before (here: the new one is, a Gaussian blur of 5 px from
+    # scipy.ndimage) no longer shows the old content, so the update cannot keep the alignment on
+    # the strength of the pixels: it solves the window around the section again.
+    from scipy import ndimage
+
+    work = _copy(grid_build, tmp_path)
+    manifest = _reimaged(grid_data, tmp_path / "again", 3, ["r1c1"])
+    path = Path(manifest.read_text().splitlines()[1].split(",")[2])
+    tifffile.imwrite(path, ndimage.gaussian_filter(tifffile.imread(path).astype(np.float32), 5).astype(np.uint8))
+    assert main(["update", str(work), "--tiles", str(manifest), "--quiet"]) == 0
+    plan = json.loads((work / "updates" / "0001" / "plan.json").read_text())
+    checked = plan["facts"]["align"]["checked"]["3"]
+    assert not checked["kept_without_solve"] and "content changed" in checked["why"], checked
+    assert 3 in plan["facts"]["align"]["window"]
 
 
 def test_dry_run_lists_dirty_shards_and_writes_nothing(grid_build, grid_data, tmp_path, capsys):

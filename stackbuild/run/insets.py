@@ -129,33 +129,90 @@ def _fine_map(alignment: SectionAlignment | None, to_inset: Affine2D, ox: float,
     return SectionAlignment(-1, Affine2D.identity(), DisplacementField(field, (0.0, 0.0), float(spacing)))
 
 
-def _write_pyramid(group_path: Path, plane: np.ndarray, z_nm: float, thickness: float, pixel_nm: float,
-                   x0_nm: float, y0_nm: float, reducer: str, chunk: int, extra: dict) -> list:
-    from ..render.reduce import reduce2x2
-
-    levels = [plane[None]]
-    while max(levels[-1].shape[1:]) > chunk:
-        levels.append(reduce2x2(levels[-1], reducer))
+def _inset_attrs(name: str, n_levels: int, z_nm: float, thickness: float, pixel_nm: float, x0_nm: float,
+                 y0_nm: float, extra: dict) -> dict:
+    """Return the OME-Zarr 0.5 group attributes of an inset pyramid of ``n_levels`` levels."""
     datasets = []
-    for n, _ in enumerate(levels):
+    for n in range(n_levels):
         f = 2 ** n
         datasets.append({"path": str(n), "coordinateTransformations": [
             {"type": "scale", "scale": [thickness, pixel_nm * f, pixel_nm * f]},
             {"type": "translation", "translation": [z_nm, y0_nm + (f - 1) / 2 * pixel_nm,
                                                     x0_nm + (f - 1) / 2 * pixel_nm]}]})
-    attrs = {"ome": {"version": "0.5", "multiscales": [{
-        "name": group_path.name, "axes": [{"name": a, "type": "space", "unit": "nanometer"} for a in "zyx"],
+    return {"ome": {"version": "0.5", "multiscales": [{
+        "name": name, "axes": [{"name": a, "type": "space", "unit": "nanometer"} for a in "zyx"],
         "datasets": datasets}]}, "stackbuild": extra}
+
+
+def inset_shapes(height: int, width: int, chunk: int) -> list[tuple[int, int]]:
+    """Return ``(height, width)`` of every level: halved (rounded up) until one chunk holds the level."""
+    shapes = [(height, width)]
+    while max(shapes[-1]) > chunk:
+        h, w = shapes[-1]
+        shapes.append(((h + 1) // 2, (w + 1) // 2))
+    return shapes
+
+
+def _blocks(shape: tuple[int, int], chunk: int) -> list[tuple[int, int, int, int]]:
+    h, w = shape
+    return [(y, min(h, y + chunk), x, min(w, x + chunk)) for y in range(0, h, chunk) for x in range(0, w, chunk)]
+
+
+def render_inset_block(job: tuple) -> int:
+    """Render one chunk of an inset's level 0 from its records and write it; return its pixel count.
+
+    ``job`` is ``(transforms root, inset name, y0, y1, x0, x1, level-0 array path)``. The task
+    holds one chunk and the fine tiles it reads (through the per-process tile cache): the output
+    grid's map to the inset mosaic is made for this chunk only (see :func:`_fine_map`).
+    """
+    from ..render.lazy import to_pixels
+    from ..sampler import render_region
+    from ..tiles import SectionTiles
+
+    root, name, y0, y1, x0, x1, array = job
+    store = TransformStore(Path(root))
+    istore = TransformStore(Path(root) / "insets" / name)
+    rec = istore.load_doc("inset")
+    fine = istore.load_stitch(rec["section"])
+    alignment = store.load_alignment(rec["section"])
+    to_inset = Affine2D.from_json(rec["inset_to_section"]).inverse()
+    k = rec["base_over_inset"]
+    ox, oy = rec["grid_origin"]
+    # Output pixel (x0 + c) is aligned point ox - 0.5 + (x0 + c + 0.5) / k: a chunk's own origin.
+    fmap = _fine_map(alignment, to_inset, ox + x0 / k, oy + y0 / k, k, x1 - x0, y1 - y0)
+    img = render_region(fine, fmap, 0, 0, x1 - x0, y1 - y0, tiles=SectionTiles(fine))
+    zarr.open_array(array, mode="r+")[0:1, y0:y1, x0:x1] = to_pixels(img, np.dtype(fine.dtype))[None]
+    return (y1 - y0) * (x1 - x0)
+
+
+def reduce_inset_block(job: tuple) -> int:
+    """Write one chunk of an inset level from the 2 x 2 block below it (``reducer``); return its pixel count."""
+    from ..render.reduce import reduce2x2
+
+    below, above, y0, y1, x0, x1, reducer = job
+    src = zarr.open_array(below, mode="r")
+    part = np.asarray(src[0:1, 2 * y0:min(src.shape[1], 2 * y1), 2 * x0:min(src.shape[2], 2 * x1)])
+    zarr.open_array(above, mode="r+")[0:1, y0:y1, x0:x1] = reduce2x2(part, reducer)
+    return (y1 - y0) * (x1 - x0)
+
+
+def _write_pyramid(group_path: Path, root: Path, name: str, shapes: list, dtype, chunk: int, reducer: str,
+                   attrs: dict, mapper) -> None:
+    """Write an inset's pyramid chunk by chunk through ``mapper``: level 0 rendered, each level above reduced."""
     group = zarr.open_group(str(group_path), mode="w", zarr_format=3, attributes=attrs)
-    for n, arr in enumerate(levels):
-        a = group.create_array(str(n), shape=arr.shape, dtype=arr.dtype, chunks=(1, chunk, chunk), fill_value=0,
-                               dimension_names=["z", "y", "x"])
-        a[...] = arr
-    return [a.shape for a in levels]
+    arrays = [group.create_array(str(n), shape=(1, h, w), dtype=dtype, chunks=(1, chunk, chunk), fill_value=0,
+                                 dimension_names=["z", "y", "x"]) for n, (h, w) in enumerate(shapes)]
+    paths = [str(group_path / str(n)) for n in range(len(arrays))]
+    mapper(render_inset_block, [(str(root), name, *b, paths[0]) for b in _blocks(shapes[0], chunk)])
+    for n in range(1, len(shapes)):  # each level waits for the one below (the mapper returns when all are done)
+        mapper(reduce_inset_block, [(paths[n - 1], paths[n], *b, reducer) for b in _blocks(shapes[n], chunk)])
 
 
-def add_inset(build: BuildFolder, path: Path) -> list[str]:
+def add_inset(build: BuildFolder, path: Path, mapper=None) -> list[str]:
     """Stitch, register and write an inset from a manifest of finer tiles; return summary lines.
+
+    The pyramid is written one chunk per task through ``mapper`` (``mapper(fn, items)``; in this
+    process when omitted), so no task holds more than a chunk of the inset.
 
     Raises
     ------
@@ -213,7 +270,6 @@ def add_inset(build: BuildFolder, path: Path) -> list[str]:
               "offset": [tx, ty], "ncc": ncc, "inset_to_section": to_section.to_json()}
     istore = TransformStore(store.root / "insets" / name)
     istore.save_stitch(fine)
-    istore.save_doc("inset", record)
     # Output grid: the inset's aligned footprint, in inset pixels.
     corners = np.array([[fx0, fy0], [fx1, fy0], [fx0, fy1], [fx1, fy1]])
     sec = to_section.apply(corners)
@@ -221,18 +277,19 @@ def add_inset(build: BuildFolder, path: Path) -> list[str]:
     ox, oy = math.floor(al[:, 0].min()), math.floor(al[:, 1].min())
     width = int(math.ceil((al[:, 0].max() - ox + 1) * k))
     height = int(math.ceil((al[:, 1].max() - oy + 1) * k))
-    fmap = _fine_map(alignment, to_section.inverse(), ox, oy, k, width, height)
-    img = render_region(fine, fmap, 0, 0, width, height, tiles=SectionTiles(fine))
-    from ..render.lazy import to_pixels
-
-    plane = to_pixels(img, np.dtype(fine.dtype))
+    record.update({"base_over_inset": k, "grid_origin": [ox, oy], "shape": [height, width]})
+    istore.save_doc("inset", record)
     x0_nm = (ox - canvas.origin_x - 0.5) * vol.pixel_size + 0.5 * px
     y0_nm = (oy - canvas.origin_y - 0.5) * vol.pixel_size + 0.5 * px
     z_nm = (s - canvas.first_section) * canvas.section_thickness_nm
     out = build.volume_path / "insets" / name
     zarr.open_group(str(build.volume_path / "insets"), mode="a", zarr_format=3)
-    shapes = _write_pyramid(out, plane, z_nm, canvas.section_thickness_nm, px, x0_nm, y0_nm,
-                            cfg.render.reducer, cfg.render.chunk, {"inset": record})
+    shapes = inset_shapes(height, width, cfg.render.chunk)
+    attrs = _inset_attrs(name, len(shapes), z_nm, canvas.section_thickness_nm, px, x0_nm, y0_nm,
+                         {"inset": record})
+    _write_pyramid(out, store.root, name, shapes, np.dtype(fine.dtype), cfg.render.chunk, cfg.render.reducer,
+                   attrs, mapper or (lambda fn, items: [fn(i) for i in items]))
+    shapes = [(1, h, w) for h, w in shapes]
     stitch_rms = fine.stats.get("seam_residual_rms")
     _table(build, record, stitch_rms, shapes)
     return [f"inset {name}: {len(fine.tiles)} tile(s) at {px:g} nm on section {s}, written to {out}",

@@ -24,6 +24,7 @@ killed update run again (or ``--resume``) finishes exactly the same volume.
 """
 from __future__ import annotations
 
+import contextlib
 import csv
 import io
 import json
@@ -48,6 +49,8 @@ log = logging.getLogger(__name__)
 
 #: An untouched section keeps its alignment unless the re-solve moves one of its points further (section px).
 HOLD_WITHIN = 0.5
+#: An update replacing or adding at most this many tiles (and appending no section) runs in this process.
+IN_PROCESS_TILES = 16
 
 
 @dataclass
@@ -269,13 +272,11 @@ def _before_store(build: BuildFolder, plan: UpdatePlan) -> TransformStore:
     return TransformStore(plan_dir(build.root, plan.number) / "before")
 
 
-def _stitch(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
+def _stitch(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
     from ..transforms.hold import hold_tiles
     from . import stages
-    from .cluster import client_mapper
-    from .progress import ProgressBar
 
-    stages.stitch_stage(build, client_mapper(client, ProgressBar("stitch", show)), sections=plan.sections)
+    stages.stitch_stage(build, mappers("stitch"), sections=plan.sections)
     before, store = _before_store(build, plan), build.store
     held = {}
     for key, names in plan.replaced.items():
@@ -291,29 +292,38 @@ def _stitch(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
                             "pairs": sum(len(store.load_stitch(s).pairs) for s in plan.sections)}
 
 
-def _align(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
+def _align(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
     from ..align.stage import align_sections
     from ..render.dirty import _same_alignment
     from ..transforms.hold import hold_alignments
-    from .cluster import client_mapper
-    from .progress import ProgressBar
+    from .update_reach import alignment_reach
 
+    before, store = _before_store(build, plan), build.store
+    # A re-imaged section whose new pixels show its old content where it was keeps its alignment
+    # without a re-solve (the re-solve could move it only by its own noise, which the hold discards).
+    reach = alignment_reach(build, before, plan.replaced, plan.hold_within, mappers("compare"))
+    same = {s for s, r in reach.items() if r["same"]}
+    resolve = sorted(set(plan.sections) - same)
+    checked = {str(s): {"kept_without_solve": r["same"], "why": r["why"], "tiles": r["tiles"]}
+               for s, r in sorted(reach.items())}
+    if not resolve:
+        _killed_here("align")
+        plan.facts["align"] = {"realigned": [], "frame_rms_px": None, "largest_untouched_move_px": 0.0,
+                               "moved_px": {}, "moved_beyond_tolerance": [], "window": [], "checked": checked}
+        return
     scratch = build.scratch_dir("align")
-    source = _Window(build.root, _window(build.store.sections_with("stitch"), plan.sections,
-                                         build.config.align.neighbours))
+    source = _Window(build.root, _window(store.sections_with("stitch"), resolve, build.config.align.neighbours))
     try:
         new = align_sections(source, build.config.align,
-                             mapper=client_mapper(client, ProgressBar("align", show)),
-                             progress=ProgressBar("solve", show), scratch=scratch)
+                             mapper=mappers("align"), progress=mappers.bar("solve"), scratch=scratch)
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
-    before, store = _before_store(build, plan), build.store
     old = {s: a for s in new if (a := before.load_alignment(s)) is not None}
     bboxes = {s: store.load_stitch(s).bbox() for s in new}
     # Re-imaged tiles were placed in their section's old frame, so its old alignment still holds unless
     # the re-solve moves it beyond the tolerance; untouched sections are held (no pixel of theirs may
     # change), except, when sections are appended, the existing ones the new ones are matched to.
-    changed = {int(k) for k in plan.replaced}
+    changed = {int(k) for k in plan.replaced} - same
     untouched = {s for s in old if s not in changed}
     near_new = {s for s in old if plan.realign_neighbours
                 and any(0 < a - s <= build.config.align.neighbours for a in plan.added)}
@@ -329,7 +339,7 @@ def _align(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
                            "moved_px": {str(s): round(v, 3) for s, v in sorted(facts["moved_px"].items())},
                            "moved_beyond_tolerance": sorted(s for s, v in facts["moved_px"].items()
                                                             if v > plan.hold_within),
-                           "window": sorted(new)}
+                           "window": sorted(new), "checked": checked}
 
 
 def _window(sections: list[int], changed: list[int], neighbours: int) -> list[int]:
@@ -384,6 +394,8 @@ def _dirty(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict]:
     sections = set(store.sections_with("stitch")) | set(before.sections_with("stitch"))
     dirty = {}
     for s in sorted(sections):
+        if _untouched(before, store, s):
+            continue
         boxes, _ = changed_boxes((before.load_stitch(s), before.load_alignment(s)),
                                  (store.load_stitch(s), store.load_alignment(s)))
         shards = level0_shards(boxes, canvas, block)
@@ -392,11 +404,25 @@ def _dirty(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict]:
     return canvas, facts, dirty
 
 
-def _render(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
+def _untouched(before: TransformStore, store: TransformStore, section: int) -> bool:
+    """Return True if a section's stitch and align records are the very files kept before the update.
+
+    The kept records are hard links and a record is only ever replaced by renaming a new file
+    into place, so the same file (inode) means the same record, arrays included.
+    """
+    for kind in ("stitch", "align"):
+        a, b = before.section_dir(section) / f"{kind}.json", store.section_dir(section) / f"{kind}.json"
+        try:
+            if not os.path.samefile(a, b):
+                return False
+        except OSError:  # missing on one side (or both): let the records be compared
+            return False
+    return True
+
+
+def _render(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
     from ..render.patch import patch_volume
     from . import stages
-    from .cluster import client_mapper
-    from .progress import ProgressBar
 
     if plan.render is None:
         canvas, facts, dirty = _dirty(build, plan)
@@ -407,47 +433,94 @@ def _render(build: BuildFolder, plan: UpdatePlan, client, show: bool) -> None:
     previous = None if plan.canvas_before is None else Canvas.from_json(plan.canvas_before)
     if previous is None or any(facts["moved"]) or facts["first_moved"]:
         build.store.save_canvas(canvas)
-        done = stages.render_stage(build, overwrite=True, progress=ProgressBar("render", show),
-                                   mapper=client_mapper(client))
+        done = stages.render_stage(build, overwrite=True, progress=mappers.bar("render"), mapper=mappers())
         plan.facts["render"] = {"planes": done.get("planes", []), "full": True}
     else:
         dirty = {int(z): _unpack(v) for z, v in plan.render["shards"].items()}
-        bar = ProgressBar("render", show)
+        bar = mappers.bar("render")
 
         def progress(done: int, total: int) -> None:
             bar(done, total)
             if done:
                 _killed_here("render")
         done = patch_volume(build.root, build.config.render, canvas, dirty, previous=previous, progress=progress,
-                            mapper=client_mapper(client))
+                            mapper=mappers())
         plan.facts["render"] = {"planes": done["planes"], "shards": done["shards"],
                                 "shards_total": done["shards_total"], "full": False}
-    stages.render_channels_stage(build, progress=ProgressBar("markers", show), mapper=client_mapper(client))
+    stages.render_channels_stage(build, progress=mappers.bar("markers"), mapper=mappers())
+
+
+class _Mappers:
+    """Mappers and progress bars for an update's steps: on a Dask cluster, or in this process.
+
+    ``mappers(name)`` returns a mapper whose progress shows as ``name`` (none without a name);
+    ``mappers.bar(name)`` a progress bar. ``where`` says which, for the summary.
+    """
+
+    def __init__(self, client, show: bool):
+        self.client, self.show = client, show
+        self.where = "in this process" if client is None else "on the Dask cluster"
+
+    def bar(self, name: str):
+        from .progress import ProgressBar
+
+        return ProgressBar(name, self.show)
+
+    def __call__(self, name: str | None = None):
+        from .cluster import client_mapper, serial_mapper
+
+        bar = self.bar(name) if name else None
+        return serial_mapper(bar) if self.client is None else client_mapper(self.client, bar)
+
+
+def in_process(plan: UpdatePlan, scheduler) -> bool:
+    """Return True if the update is small enough to run in this process (no cluster is started).
+
+    Small: no appended section and at most :data:`IN_PROCESS_TILES` replaced or added tiles, so its
+    work is a few sections' stitch, a window of the alignment and a few shards, which take less
+    time than starting worker processes. A given ``scheduler`` is always used.
+    """
+    return scheduler is None and not plan.added and \
+        sum(len(v) for v in plan.replaced.values()) <= IN_PROCESS_TILES
+
+
+@contextlib.contextmanager
+def _mappers_for(plan: UpdatePlan, workers, scheduler, show: bool):
+    """Yield the :class:`_Mappers` of an update: this process when it is small, else a cluster."""
+    from .cluster import dask_client
+
+    if in_process(plan, scheduler):
+        yield _Mappers(None, show)
+        return
+    with dask_client(workers, scheduler) as client:
+        yield _Mappers(client, show)
+
+
+def _channels(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
+    from . import stages
+
+    stages.channels_stage(build, mappers("channels"))
+    _killed_here("channels")
 
 
 def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show: bool, fail_on) -> object:
     from . import stages
-    from .cluster import client_mapper, dask_client
-    from .progress import ProgressBar
 
     seconds = plan.facts.setdefault("seconds", {})
     t0 = time.monotonic()
-    with dask_client(workers, scheduler) as client:
+    with _mappers_for(plan, workers, scheduler, show) as mappers:
         seconds["cluster"] = round(time.monotonic() - t0, 2)
-        def channels(build, plan, client, show):
-            stages.channels_stage(build, client_mapper(client, ProgressBar("channels", show)))
-            _killed_here("channels")
-
+        plan.facts["ran"] = mappers.where
         # Each step records its status once done, so a re-run resumes after the last finished one.
         for step, status, run in (("stitch", "stitched", _stitch), ("align", "aligned", _align),
-                                  ("channels", "registered", channels), ("render", "rendered", _render)):
+                                  ("channels", "registered", _channels), ("render", "rendered", _render)):
             if not plan.reached(status):
                 t0 = time.monotonic()
-                run(build, plan, client, show)
+                run(build, plan, mappers)
                 plan.status, seconds[step] = status, round(time.monotonic() - t0, 2)
                 save_plan(build.root, plan)
         t0 = time.monotonic()
-        verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
+        verdict = stages.report_stage(build, fail_on=fail_on, progress=mappers.bar("report"))
         seconds["report"] = round(time.monotonic() - t0, 2)
     plan.facts["totals_after"] = _totals(build)
     plan.facts["verdict"] = {"passed": verdict.passed, "failures": list(verdict.failures)}
@@ -504,14 +577,14 @@ def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: b
     else:
         if new_tiles is None:
             raise InputError("nothing to resume: every update of this build has finished", file=build.root)
-        from .insets import add_inset, is_inset
+        from .insets import is_inset
 
         if is_inset(Path(new_tiles), build.config.volume.pixel_size):
             if dry_run:
                 return UpdateOutcome(None, [f"{new_tiles}: finer tiles; they would be stitched, registered to their "
                                             "section and written as an inset under volume.zarr/insets/ "
                                             "(dry run: nothing written)"])
-            return UpdateOutcome(None, add_inset(build, Path(new_tiles)))
+            return UpdateOutcome(None, _inset(build, Path(new_tiles), workers, scheduler, show_progress))
         plan, new, text = plan_update(build, Path(new_tiles), append=append, hold_within=hold_within,
                                       realign_neighbours=realign_neighbours)
         if dry_run:
@@ -520,6 +593,19 @@ def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: b
         _stitch_checked(build, plan)
     verdict = _run_steps(build, plan, workers=workers, scheduler=scheduler, show=show_progress, fail_on=fail_on)
     return UpdateOutcome(plan, summary_lines(plan, verdict), verdict)
+
+
+def _inset(build: BuildFolder, path: Path, workers, scheduler, show: bool) -> list[str]:
+    """Add an inset (:func:`stackbuild.run.insets.add_inset`): in this process when it has at most
+    :data:`IN_PROCESS_TILES` tiles and no scheduler is given, else on a Dask cluster; one task per chunk."""
+    from .cluster import dask_client
+    from .insets import add_inset
+
+    n_tiles = len(read_tile_manifest(path).tiles)
+    if scheduler is None and n_tiles <= IN_PROCESS_TILES:
+        return add_inset(build, path, mapper=_Mappers(None, show)("inset"))
+    with dask_client(workers, scheduler) as client:
+        return add_inset(build, path, mapper=_Mappers(client, show)("inset"))
 
 
 def _stitch_checked(build: BuildFolder, plan: UpdatePlan) -> None:
@@ -553,17 +639,22 @@ def summary_lines(plan: UpdatePlan, verdict) -> list[str]:
     f = plan.facts
     n_repl = sum(len(v) for v in plan.replaced.values())
     lines = [f"update {plan.number:04d}: {n_repl} tile(s) replaced or added in section(s) "
-             f"{sorted(int(s) for s in plan.replaced) or '-'}; new section(s) {plan.added or '-'}"]
+             f"{sorted(int(s) for s in plan.replaced) or '-'}; new section(s) {plan.added or '-'}; "
+             f"ran {f.get('ran', 'on the Dask cluster')}"]
     held = f.get("stitch", {}).get("held", {})
     moved = [v["held_moved_px"] for v in held.values() if v.get("held_moved_px") is not None]
     lines.append(f"  stitch: {f.get('stitch', {}).get('pairs', 0)} tile pair(s) registered again; untouched "
                  f"tiles held (a free re-solve would have moved them up to {max(moved, default=0.0):.2f} px)")
     a = f.get("align", {})
-    lines.append(f"  align: sections {a.get('window', [])} solved again, {len(a.get('realigned', []))} re-aligned "
-                 f"{a.get('realigned', [])}; the re-solve would move untouched sections up to "
-                 f"{a.get('largest_untouched_move_px', 0.0):.2f} px (held; re-imaged"
-                 f"{' and neighbouring' if plan.realign_neighbours else ''} sections re-aligned beyond "
-                 f"{plan.hold_within:g} px)")
+    for s, c in a.get("checked", {}).items():
+        lines.append(f"  align: section {s} " + ("keeps its alignment without a re-solve: " if c["kept_without_solve"]
+                                                  else "solved again: ") + c["why"])
+    if a.get("window"):
+        lines.append(f"  align: sections {a['window']} solved again, {len(a.get('realigned', []))} re-aligned "
+                     f"{a.get('realigned', [])}; the re-solve would move untouched sections up to "
+                     f"{a.get('largest_untouched_move_px', 0.0):.2f} px (held; re-imaged"
+                     f"{' and neighbouring' if plan.realign_neighbours else ''} sections re-aligned beyond "
+                     f"{plan.hold_within:g} px)")
     r = f.get("render", {})
     if r.get("full"):
         lines.append(f"  render: the canvas origin moved, every plane rendered again ({len(r.get('planes', []))})")
@@ -642,9 +733,6 @@ def rollback_update(build: BuildFolder, *, fail_on: list[str] | None = None, wor
     from ..render.dirty import changed_boxes, level0_shards
     from ..render.patch import patch_volume
     from . import stages
-    from .cluster import client_mapper, dask_client
-    from .progress import ProgressBar
-
     plans = [p for p in load_plans(build.root) if p.status != "rolled_back"]
     if not plans:
         raise InputError("no update to roll back", file=build.root)
@@ -652,7 +740,6 @@ def rollback_update(build: BuildFolder, *, fail_on: list[str] | None = None, wor
     before = _before_store(build, plan)
     settings = build.config.render
     block = settings.chunk * settings.shard
-    show = show_progress
     if plan.status != "rolling_back":
         canvas = build.store.load_canvas()
         dirty: dict[str, set] = {}
@@ -680,11 +767,11 @@ def rollback_update(build: BuildFolder, *, fail_on: list[str] | None = None, wor
     previous = build.store.load_canvas()
     canvas, _ = settle_canvas(previous, fresh, shard=block, chunk=settings.chunk)
     dirty = {int(z): _unpack(v) for z, v in plan.facts["rollback"]["shards"].items()}
-    with dask_client(workers, scheduler) as client:
+    with _mappers_for(plan, workers, scheduler, show_progress) as mappers:
         done = patch_volume(build.root, settings, canvas, dirty, previous=previous,
-                            progress=ProgressBar("render", show), mapper=client_mapper(client))
-        stages.render_channels_stage(build, progress=ProgressBar("markers", show), mapper=client_mapper(client))
-        verdict = stages.report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show))
+                            progress=mappers.bar("render"), mapper=mappers())
+        stages.render_channels_stage(build, progress=mappers.bar("markers"), mapper=mappers())
+        verdict = stages.report_stage(build, fail_on=fail_on, progress=mappers.bar("report"))
     plan.status = "rolled_back"
     plan.facts["rollback"].update({"records": len(restored), "rewritten": done["shards"]})
     save_plan(build.root, plan)

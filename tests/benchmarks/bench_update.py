@@ -7,7 +7,9 @@ Measured side by side in one run, on one synthetic stack (``stackbuild.synth``, 
 unused here):
 
 1. a full build of the first N sections (wall time, CLI, 2 workers);
-2. ``update`` replacing 2 tiles of the middle section (wall time): the ratio build / update, the
+2. ``update`` replacing 2 tiles of the middle section (wall time; in-process, as any update of a few
+   tiles runs, and without re-solving the section when its new pixels show the old content): the
+   ratio build / update, the
    chunks rewritten of all chunks, that no chunk of another plane changed (bytes and mtime), and
    that the updated plane equals a render from scratch of the updated transforms (lazy renderer);
 3. a second full build of the merged manifest: where the re-imaged tiles' pixels land in the
@@ -138,6 +140,10 @@ def main() -> None:
                           stackbuild.open_volume(upd, level=0, lazy=True)[z].compute())
     print(f"full build of {n} sections: {t_build:.1f} s; update of 2 tiles: {t_update:.1f} s "
           f"(ratio {t_build / t_update:.1f}x; exit {status})")
+    checked = plan["facts"]["align"].get("checked", {})
+    print(f"  update ran {plan['facts'].get('ran', '?')}; sections solved again {plan['facts']['align']['window']}; "
+          + "; ".join(f"section {s}: {'kept' if c['kept_without_solve'] else 're-solved'} ({c['why']})"
+                      for s, c in checked.items()))
     print(f"  planes with changed chunks: {planes} (re-imaged section's plane {z}; realigned "
           f"{plan['facts']['align']['realigned']}, existing sections moved up to "
           f"{plan['facts']['align']['largest_untouched_move_px']:.2f} px)")

@@ -144,6 +144,24 @@ def test_a_tile_whose_content_changed_has_its_section_solved_again(grid_build, g
     assert 3 in plan["facts"]["align"]["window"]
 
 
+@slow
+def test_a_tile_imaged_again_in_place_is_taken_up(grid_build, grid_data, tmp_path):
+    # The same path, new pixels: the manifest's size and modification time tell the update, which
+    # renders the tile's footprint again although its placement is unchanged.
+    work = _copy(grid_build, tmp_path)
+    manifest = _reimaged(grid_data, tmp_path / "again", 3, ["r2c2"])
+    assert main(["update", str(work), "--tiles", str(manifest), "--quiet"]) == 0
+    path = Path(manifest.read_text().splitlines()[1].split(",")[2])
+    img = tifffile.imread(path)
+    tifffile.imwrite(path, np.clip(img.astype(np.int16) + 9, 0, 255).astype(np.uint8))  # brighter, same size
+    os.utime(path, ns=(path.stat().st_atime_ns, path.stat().st_mtime_ns + 10**9))
+    assert main(["update", str(work), "--tiles", str(manifest), "--quiet"]) == 0
+    plan = json.loads((work / "updates" / "0002" / "plan.json").read_text())
+    assert plan["replaced"] == {"3": ["r2c2"]} and plan["render"]["shards"].get("3")
+    written = stackbuild.open_volume(work, level=0, lazy=False)[3].compute()
+    np.testing.assert_array_equal(written, stackbuild.open_volume(work, level=0, lazy=True)[3].compute())
+
+
 def test_dry_run_lists_dirty_shards_and_writes_nothing(grid_build, grid_data, tmp_path, capsys):
     work = _copy(grid_build, tmp_path)
     manifest = _reimaged(grid_data, tmp_path / "again", 3, ["r2c2"])

@@ -36,6 +36,8 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
+
 from ..errors import InputError
 from ..folder import BuildFolder, csv_facts
 from ..manifest import TileEntry, TileManifest, read_tile_manifest
@@ -143,7 +145,11 @@ def _check_new_tiles(old: TileManifest, new: TileManifest, append: bool, first: 
 
 
 def _changed_tiles(old: TileManifest, new: TileManifest) -> dict[str, list[str]]:
-    """Return section (text) -> names of tiles of existing sections that the update replaces or adds."""
+    """Return section (text) -> names of tiles of existing sections that the update replaces or adds.
+
+    A row naming an existing tile counts when its file, stage position or the file's size or
+    modification time (a tile imaged again in place, under the same path) differs.
+    """
     before = {(t.section, t.tile): t for t in old.tiles}
     have = set(old.sections)
     out: dict[str, list[str]] = {}
@@ -151,7 +157,10 @@ def _changed_tiles(old: TileManifest, new: TileManifest) -> dict[str, list[str]]
         if t.section not in have:
             continue
         o = before.get((t.section, t.tile))
-        if o is None or Path(o.path).resolve() != Path(t.path).resolve() or (o.x, o.y) != (t.x, t.y):
+        # A tile imaged again in place keeps its path; its file's size or modification time tells.
+        same_file = o is not None and Path(o.path).resolve() == Path(t.path).resolve() and \
+            old.files.get(str(o.path), ())[:2] == new.files.get(str(t.path), ())[:2]
+        if o is None or not same_file or (o.x, o.y) != (t.x, t.y):
             out.setdefault(str(t.section), []).append(t.tile)
     return out
 
@@ -398,10 +407,30 @@ def _dirty(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict]:
             continue
         boxes, _ = changed_boxes((before.load_stitch(s), before.load_alignment(s)),
                                  (store.load_stitch(s), store.load_alignment(s)))
+        boxes += _replaced_boxes(store, s, plan.replaced.get(str(s), []))
         shards = level0_shards(boxes, canvas, block)
         if shards:
             dirty[str(s - canvas.first_section)] = _pack(shards)
     return canvas, facts, dirty
+
+
+def _replaced_boxes(store: TransformStore, section: int, names: list[str]) -> list:
+    """Return the aligned-frame footprints of replaced tiles and of the tiles they overlap.
+
+    A tile imaged again in place (same path, same placement) leaves its records as they were,
+    so the record comparison finds nothing; its pixels changed all the same.
+    """
+    from ..sampler import tile_footprints
+
+    st, al = store.load_stitch(section), store.load_alignment(section)
+    if not names or st is None or not st.tiles:
+        return []
+    fb = tile_footprints(st, al)
+    core = [fb[i] for i, t in enumerate(st.tiles) if t.tile in names]
+    hit = np.zeros(len(fb), bool)
+    for b in core:
+        hit |= (fb[:, 0] <= b[2]) & (fb[:, 2] >= b[0]) & (fb[:, 1] <= b[3]) & (fb[:, 3] >= b[1])
+    return [tuple(map(float, b)) for b in fb[hit]]
 
 
 def _untouched(before: TransformStore, store: TransformStore, section: int) -> bool:

@@ -104,6 +104,8 @@ def main() -> None:
     ap.add_argument("--tile", type=int, default=384)
     ap.add_argument("--kills", action="store_true", help="also kill the update in align, channels, render")
     ap.add_argument("--keep", metavar="DIR", help="work here and keep it (default: a temporary folder)")
+    ap.add_argument("--speed-only", action="store_true",
+                    help="only steps 1-2: the full build and the update side by side, and their ratio")
     args = ap.parse_args()
 
     from stackbuild.synth import SynthParams, generate
@@ -156,6 +158,10 @@ def main() -> None:
     state = json.loads((base / "build.json").read_text())["stages"]
     print(f"  full build stages (s): { {k: v.get('seconds') for k, v in state.items()} }")
 
+    if args.speed_only:
+        if not args.keep:
+            shutil.rmtree(root, ignore_errors=True)
+        return
     merged = Path(plan["tiles_after"])
     t_fresh, _ = _cli("build", merged, "--out", root / "fresh", *scale)
     others = [s for s in range(n) if s != section]

@@ -168,7 +168,10 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
     tiles : callable
         The tile provider: ``tiles(tile, scale)`` returns the tile (a ``TilePlacement``
         of ``stitch``) corrected and reduced by ``scale``, and its feather weight, both
-        with a one-pixel ring (see :func:`stackbuild.tiles.prepared_tile`).
+        with a one-pixel ring (see :func:`stackbuild.tiles.prepared_tile`). A provider with a
+        true ``windows`` attribute is asked only for the part a region reads,
+        ``tiles(tile, scale, window=(r0, r1, c0, c1))`` (rows and columns of the ringed tile),
+        so a large tile need not be read whole for each region it meets.
 
     Returns
     -------
@@ -278,13 +281,23 @@ def _warp_tile(tiles, t, box, m, grid, scale, flag, acc, only=None):
     c, d = _index_range(box[1], box[3], cy0, scale, height)
     if a >= b or c >= d:
         return None, []
-    val_img, w_img = tiles(t, scale)
     half = (scale - 1) / 2.0
     # Output pixel (a + i, c + j) -> reduced tile pixel, as a 2x3 map on (i, j).
     x, y = cx0 + scale * a, cy0 + scale * c
     u = (m[0, 0] * x + m[0, 1] * y + m[0, 2] - t.x - half) / scale + 1  # + 1: the tile's ring
     v = (m[1, 0] * x + m[1, 1] * y + m[1, 2] - t.y - half) / scale + 1
     inv = np.array([[m[0, 0], m[0, 1], u], [m[1, 0], m[1, 1], v]])
+    if getattr(tiles, "windows", False):
+        corners = np.array([[0, 0, 1], [b - a - 1, 0, 1], [0, d - c - 1, 1], [b - a - 1, d - c - 1, 1]], float)
+        src = corners @ inv.T  # (col, row) of the ringed tile
+        window = _window(src[:, 1].min(), src[:, 1].max(), src[:, 0].min(), src[:, 0].max(), t, scale)
+        if window is None:
+            return None, []
+        val_img, w_img = tiles(t, scale, window=window)
+        inv[0, 2] -= window[2]
+        inv[1, 2] -= window[0]
+    else:
+        val_img, w_img = tiles(t, scale)
     e0 = e1 = f0 = f1 = 0
     if only is not None:
         e0, e1 = _index_range(only[0], only[2], cx0, scale, width)
@@ -329,6 +342,30 @@ def _warp_rect(src: np.ndarray, inv: np.ndarray, rect, flag: int, out: np.ndarra
     return out
 
 
+#: Ringed-tile pixels kept beyond the mapped extent of a region on each side: the taps of
+#: bicubic interpolation reach 1 below and 2 above a source point, plus OpenCV's rounding.
+_WINDOW_MARGIN = 3
+
+
+def _window(r_lo: float, r_hi: float, c_lo: float, c_hi: float, t, scale: int):
+    """Return the window ``(r0, r1, c0, c1)`` of the ringed, reduced tile that source points in the given ranges read, or None.
+
+    The ranges are the least and greatest (row, column) a region maps to; the window adds
+    :data:`_WINDOW_MARGIN` pixels on each side and is clipped to the ringed tile, so
+    resampling the window gives the same pixels as resampling the whole tile.
+    """
+    if not all(map(math.isfinite, (r_lo, r_hi, c_lo, c_hi))):
+        return None
+    hh, ww = -(-t.height // scale) + 2, -(-t.width // scale) + 2
+    r0 = max(0, math.floor(r_lo) - _WINDOW_MARGIN)
+    r1 = min(hh, math.floor(r_hi) + _WINDOW_MARGIN + 1)
+    c0 = max(0, math.floor(c_lo) - _WINDOW_MARGIN)
+    c1 = min(ww, math.floor(c_hi) + _WINDOW_MARGIN + 1)
+    if r0 >= r1 or c0 >= c1:
+        return None
+    return r0, r1, c0, c1
+
+
 def _accumulate(acc: np.ndarray, val: np.ndarray, w: np.ndarray) -> None:
     """Add ``weight * value`` and ``weight`` of resampled values and weights to ``acc``."""
     acc[0] += val * w
@@ -343,13 +380,24 @@ def _blend_tile(tiles, t, box, sx, sy, grid, scale, flag, acc) -> None:
     c, d = _index_range(box[1], box[3], cy0 + scale * r_a, scale, n_r)
     if a >= b or c >= d:
         return
-    img = tiles(t, scale)
     half = (scale - 1) / 2.0
+    bx, by = sx[c:d, a:b], sy[c:d, a:b]
+    r0 = c0 = 0
+    if getattr(tiles, "windows", False):
+        # + 1 after dividing: element [j + 1, k + 1] of the prepared tile is its pixel (k, j).
+        window = _window((by.min() - t.y - half) / scale + 1, (by.max() - t.y - half) / scale + 1,
+                         (bx.min() - t.x - half) / scale + 1, (bx.max() - t.x - half) / scale + 1, t, scale)
+        if window is None:
+            return
+        r0, c0 = window[0], window[2]
+        img = tiles(t, scale, window=window)
+    else:
+        img = tiles(t, scale)
     mx = np.empty((d - c, b - a), np.float32)
     my = np.empty((d - c, b - a), np.float32)
     # + scale before dividing: element [j + 1, k + 1] of the prepared tile is its pixel (k, j).
-    np.subtract(sx[c:d, a:b], t.x + half - scale, out=mx, casting="unsafe")
-    np.subtract(sy[c:d, a:b], t.y + half - scale, out=my, casting="unsafe")
+    np.subtract(bx, t.x + half - scale + c0 * scale, out=mx, casting="unsafe")
+    np.subtract(by, t.y + half - scale + r0 * scale, out=my, casting="unsafe")
     if scale != 1:
         mx /= np.float32(scale)
         my /= np.float32(scale)

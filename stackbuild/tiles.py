@@ -21,7 +21,7 @@ import functools
 import hashlib
 import math
 import threading
-from collections import OrderedDict
+from collections import Counter, OrderedDict
 from pathlib import Path
 
 import cv2
@@ -61,12 +61,83 @@ def read_tile(path: str | Path, height: int, width: int, section: int | None = N
     except Exception as exc:  # tifffile and the codecs raise many exception types
         raise InputError(f"cannot read the pixels of {what}: {type(exc).__name__}: {exc}",
                          file=path, section=section) from None
-    kind = img.dtype.str.lstrip("<>|=")
-    if img.shape != (height, width) or (dtype is not None and img.dtype != np.dtype(dtype)):
-        expected = f"({height}, {width})" + (f" {dtype}" if dtype is not None else "")
-        raise InputError(f"{what} has shape {img.shape} {kind}, but its {source} said {expected}",
-                         file=path, section=section)
+    _check_pixels(img.shape, img.dtype, path, height, width, section, dtype, what, source)
+    _count_read(path, img.size)
     return img
+
+
+@functools.lru_cache(maxsize=4096)
+def _plain_layout(path: str, size: int, mtime_ns: int):
+    """Return ``(offset, shape, dtype)`` of the first page's pixels when they lie uncompressed in one run, else None.
+
+    Such a tile (the usual output of an acquisition system) can have any window of it
+    read without decoding the rest (``tifffile``'s ``is_memmappable``). Keyed by size and
+    modification time, so a rewritten file is looked at again.
+    """
+    try:
+        with tifffile.TiffFile(path) as tf:
+            page = tf.pages[0]
+            if not page.is_memmappable or page.ndim != 2 or len(tf.pages) < 1:
+                return None
+            dt = np.dtype(tf.byteorder + page.dtype.str[1:])
+            offset = int(page.dataoffsets[0])
+            shape = tuple(int(n) for n in page.shape)
+    except Exception:  # any trouble: the whole-tile reader names it
+        return None
+    if offset + shape[0] * shape[1] * dt.itemsize > size:
+        return None
+    return offset, shape, dt
+
+
+def read_window(path: str | Path, height: int, width: int, rows: tuple[int, int], cols: tuple[int, int],
+                section: int | None = None, *, dtype: str | None = None, what: str = "tile",
+                source: str = "stitch record") -> np.ndarray | None:
+    """Return pixels ``[r0:r1, c0:c1]`` of a tile read without the rest of it, or None if its file does not allow that.
+
+    Only tiles stored uncompressed in one run (see :func:`_plain_layout`) are read this way;
+    for others the caller reads the whole tile (:func:`read_tile`). The recorded size and
+    type are checked as :func:`read_tile` checks them.
+    """
+    p = Path(path)
+    try:
+        st = p.stat()
+    except OSError:
+        return None
+    layout = _plain_layout(str(p), st.st_size, st.st_mtime_ns)
+    if layout is None:
+        return None
+    offset, shape, dt = layout
+    _check_pixels(shape, dt.newbyteorder("="), p, height, width, section, dtype, what, source)
+    (r0, r1), (c0, c1) = rows, cols
+    try:
+        mm = np.memmap(p, dtype=dt, mode="r", offset=offset, shape=shape)
+        out = np.array(mm[r0:r1, c0:c1], dtype=dt.newbyteorder("="))
+        del mm
+    except (OSError, ValueError):
+        return None
+    _count_read(p, out.size)
+    return out
+
+
+#: Pixels decoded per tile file by this process (path -> count), whole tiles and windows alike:
+#: ``sum / (tiles x tile pixels)`` is how many times each tile was read (see ``bench_render.py --reads``).
+PIXELS_READ: Counter = Counter()
+_COUNT_LOCK = threading.Lock()
+
+
+def _count_read(path, pixels: int) -> None:
+    with _COUNT_LOCK:
+        PIXELS_READ[str(path)] += int(pixels)
+
+
+def _check_pixels(shape, dt: np.dtype, path, height: int, width: int, section, dtype, what: str,
+                  source: str) -> None:
+    """Raise :class:`InputError` naming ``path`` unless ``shape`` and ``dt`` are what was recorded."""
+    if tuple(shape) != (height, width) or (dtype is not None and dt != np.dtype(dtype)):
+        expected = f"({height}, {width})" + (f" {dtype}" if dtype is not None else "")
+        kind = dt.str.lstrip("<>|=")
+        raise InputError(f"{what} has shape {tuple(shape)} {kind}, but its {source} said {expected}",
+                         file=path, section=section)
 
 
 def _nbytes(value) -> int:
@@ -265,17 +336,60 @@ def correct_tile(raw: np.ndarray, tile, illumination: np.ndarray | None, scale: 
         # written straight into the ring's interior, in one or two passes instead of
         # converting, dividing, scaling and padding one after the other (about 4x faster).
         value = np.empty((tile.height + 2, tile.width + 2), np.float32)
-        inner = value[1:-1, 1:-1]
-        if illumination is not None:
-            np.divide(raw, illumination, out=inner, dtype=np.float32)
-            if tile.gain != 1.0:
-                inner *= np.float32(tile.gain)
-        else:
-            np.multiply(raw, np.float32(tile.gain), out=inner, dtype=np.float32)
-        if tile.offset != 0.0:
-            inner += np.float32(tile.offset)
-        value[0, 1:-1], value[-1, 1:-1] = value[1, 1:-1], value[-2, 1:-1]
-        value[:, 0], value[:, -1] = value[:, 1], value[:, -2]
+        _correct_into(value[1:-1, 1:-1], raw, tile, illumination)
+        _repeat_edges(value, True, True, True, True)
+    value.setflags(write=False)
+    return value
+
+
+def _correct_into(inner: np.ndarray, raw: np.ndarray, tile, illumination: np.ndarray | None) -> None:
+    """Write ``gain * raw / illumination + offset`` (float32) into ``inner``, pixel by pixel."""
+    if illumination is not None:
+        np.divide(raw, illumination, out=inner, dtype=np.float32)
+        if tile.gain != 1.0:
+            inner *= np.float32(tile.gain)
+    else:
+        np.multiply(raw, np.float32(tile.gain), out=inner, dtype=np.float32)
+    if tile.offset != 0.0:
+        inner += np.float32(tile.offset)
+
+
+def _repeat_edges(value: np.ndarray, top: bool, bottom: bool, left: bool, right: bool) -> None:
+    """Fill the named outer rows and columns of ``value`` with the row or column next to them."""
+    if top:
+        value[0] = value[1]
+    if bottom:
+        value[-1] = value[-2]
+    if left:
+        value[:, 0] = value[:, 1]
+    if right:
+        value[:, -1] = value[:, -2]
+
+
+def prepared_window(tile, profile: np.ndarray | None, window: tuple[int, int, int, int],
+                    section: int | None = None, dtype: str | None = None) -> np.ndarray | None:
+    """Return rows ``r0:r1``, columns ``c0:c1`` of the full-resolution prepared tile, reading only that window.
+
+    Equal, pixel for pixel, to the same slice of ``prepared_tile(tile, profile, key, 1)[0]``
+    (the ring included), but only the raw pixels under the window are read and corrected, so a
+    render task reads each tile about once however large the tiles and whatever the order of
+    the tasks. Returns None when the tile's file cannot be read by window (compressed or
+    scattered pixels; see :func:`read_window`) or the window holds no interior pixel: the caller
+    then prepares the whole tile through the cache.
+    """
+    r0, r1, c0, c1 = window
+    h, w = tile.height, tile.width
+    a, b, c, d = max(r0 - 1, 0), min(r1 - 1, h), max(c0 - 1, 0), min(c1 - 1, w)
+    if a >= b or c >= d:
+        return None
+    raw = read_window(tile.path, h, w, (a, b), (c, d), section, dtype=dtype)
+    if raw is None:
+        return None
+    illum = None if profile is None else _illumination(profile, h, w)[a:b, c:d]
+    top, left = int(r0 == 0), int(c0 == 0)
+    value = np.empty((r1 - r0, c1 - c0), np.float32)
+    _correct_into(value[top:top + b - a, left:left + d - c], raw, tile, illum)
+    _repeat_edges(value, bool(top), r1 == h + 2, bool(left), c1 == w + 2)
     value.setflags(write=False)
     return value
 
@@ -324,10 +438,30 @@ class SectionTiles:
     the per-process cache.
     """
 
+    #: The sampler may ask for a window (rows ``r0:r1``, columns ``c0:c1`` of the ringed tile).
+    windows = True
+
     def __init__(self, stitch):
         self.stitch = stitch
         self._key = profile_digest(stitch.illumination)
 
-    def __call__(self, tile, scale: int) -> tuple[np.ndarray, np.ndarray]:
+    def __call__(self, tile, scale: int, window: tuple[int, int, int, int] | None = None
+                 ) -> tuple[np.ndarray, np.ndarray]:
+        """Return ``(value, weight)`` of ``tile`` reduced by ``scale``, whole or only ``window``.
+
+        At full resolution a window is read by itself when the file allows it
+        (:func:`prepared_window`), and is not cached: neighbouring regions read
+        neighbouring windows, so each tile is read about once. Otherwise the whole
+        prepared tile comes from the cache and is sliced.
+        """
         s = self.stitch
-        return prepared_tile(tile, s.illumination, self._key, scale, s.section, s.dtype)
+        if window is not None and scale == 1:
+            value = prepared_window(tile, s.illumination, window, s.section, s.dtype)
+            if value is not None:
+                r0, r1, c0, c1 = window
+                return value, _padded_weight(tile.height, tile.width, 1)[r0:r1, c0:c1]
+        value, weight = prepared_tile(tile, s.illumination, self._key, scale, s.section, s.dtype)
+        if window is None:
+            return value, weight
+        r0, r1, c0, c1 = window
+        return value[r0:r1, c0:c1], weight[r0:r1, c0:c1]

@@ -119,6 +119,15 @@ def test_reduced_render_is_the_block_mean(tmp_path):
 def test_only_tiles_meeting_the_region_are_read(tmp_path, monkeypatch):
     folder = make_build(tmp_path, n_sections=1, grid=(3, 3), tile=(48, 48), overlap=12)
     stitch = folder.store.load_stitch(0)
+    tiles_mod.PIXELS_READ.clear()
+    render_region(stitch, None, 2, 2, 20, 20)
+    # An uncompressed tile is read by window: only the one tile, and only about the region's pixels.
+    assert set(tiles_mod.PIXELS_READ) == {str(stitch.tiles[0].path)}
+    assert tiles_mod.PIXELS_READ[str(stitch.tiles[0].path)] <= 27 * 27 < 48 * 48
+    # A compressed tile cannot be read by window: it is read whole once, then served from the cache.
+    folder = make_build(tmp_path / "z", n_sections=1, grid=(3, 3), tile=(48, 48), overlap=12,
+                        tiff_kwargs={"compression": "zlib"})
+    stitch = folder.store.load_stitch(0)
     read = []
     real = tiles_mod.read_tile
     monkeypatch.setattr(tiles_mod, "read_tile", lambda p, *a, **k: read.append(p.name) or real(p, *a, **k))
@@ -127,6 +136,39 @@ def test_only_tiles_meeting_the_region_are_read(tmp_path, monkeypatch):
     assert read == ["s0_r0_c0.tif"]
     render_region(stitch, None, 2, 2, 20, 20)  # served from the cache
     assert read == ["s0_r0_c0.tif"]
+
+
+class _WholeTiles:
+    """A provider that always hands over whole prepared tiles (no ``windows``): the sampler's other path."""
+
+    def __init__(self, stitch):
+        self.inner = tiles_mod.SectionTiles(stitch)
+
+    def __call__(self, tile, scale):
+        return self.inner(tile, scale)
+
+
+@pytest.mark.parametrize("elastic", [False, True])
+@pytest.mark.parametrize("order", [1, 3])
+def test_windows_give_the_same_pixels_as_whole_tiles(tmp_path, camera, elastic, order):
+    stitch = _camera_mosaic(tmp_path, camera)
+    stitch.illumination = np.array([[0.9, 1.0, 1.1], [1.05, 0.95, 1.0]], np.float32)
+    pull = Affine2D.similarity(1.01, 0.04, tx=5.0, ty=-3.0, center=(128, 128))
+    field = None
+    if elastic:
+        yy, xx = np.mgrid[0:9, 0:9].astype(np.float32)
+        vec = np.stack([1.5 * np.sin(xx / 3.0), 1.2 * np.cos(yy / 4.0)], -1).astype(np.float32)
+        field = DisplacementField(vec, origin=(0.0, 0.0), spacing=32.0)
+    alignment = SectionAlignment(0, pull, field)
+    for x0, y0, n in [(0, 0, 256), (37, 61, 90), (150, 3, 64)]:
+        tiles_mod.TILE_CACHE.clear()
+        whole = sample_region(stitch, alignment, x0, y0, n, n, order=order, tiles=_WholeTiles(stitch))
+        tiles_mod.PIXELS_READ.clear()
+        part = sample_region(stitch, alignment, x0, y0, n, n, order=order, tiles=tiles_mod.SectionTiles(stitch))
+        assert sum(tiles_mod.PIXELS_READ.values()) > 0  # windows were read (not the cached whole tiles)
+        # Same warp of the same pixels; only the map's float rounding differs (OpenCV's 1/32-pixel grid).
+        np.testing.assert_allclose(part, whole, atol=0.5 if elastic else 1e-3)
+        assert np.mean(np.abs(part - whole)) < 1e-2
 
 
 def test_tile_cache_is_bounded_in_bytes():

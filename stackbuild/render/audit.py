@@ -147,7 +147,7 @@ def audit_volume(folder, *, pixels: bool = True, mapper=None, record: bool = Tru
             have = recorded.get(str(z))
             if have != fp:
                 why = "never written, or its rendering was interrupted" if have is None else \
-                    "rendered from other transform records or settings than the current ones"
+                    "rendered from other transform records, tile files or settings than the current ones"
                 report.findings.append(Finding(pyr, z, "stale", why))
         if pixels:
             for level in _levels(group):

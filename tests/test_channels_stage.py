@@ -64,7 +64,9 @@ def _grid(width: int, height: int) -> np.ndarray:
 def test_fill_marker_map_matches_truth(sample):
     raw, folder, facts = sample
     truth = load_truth(raw)
-    assert facts["registered"] == 4
+    # Every image is registered or rejected with its one line (the punctate marker's smooth density map
+    # drifts in scale on these small sections and is rejected; see test_sparse_marker_is_right_or_rejected).
+    assert facts["registered"] + len(facts["failed"]) == 4
     for s in truth.sections:
         rec = folder.store.load_doc(DOC_KIND, section=s)["channels"]["ambrin"]
         h, w = tifffile.imread(rec["path"]).shape
@@ -84,10 +86,10 @@ def test_fill_marker_map_matches_truth(sample):
         assert np.allclose(rec["shift_from_given"], true_shift, atol=0.5 * BINNING)
 
 
-def test_sparse_marker_is_right_or_flagged(sample):
-    # The puncta marker shares little with the EM at its resolution: the stage must
-    # either find it (within 1 channel px) or say it could not ("low_mi" / "ambiguous"), never pass a
-    # wrong map silently.
+def test_sparse_marker_is_right_or_rejected(sample):
+    # The puncta marker shares little with the EM at its resolution: the stage must either find it
+    # (within 1.5 channel px of the truth everywhere) or reject it (registered false), never store a
+    # wrong map; being flagged "ambiguous" is no excuse (it was, and hid a 5.8 px miss on the sample).
     raw, folder, _ = sample
     truth = load_truth(raw)
     for s in truth.sections:
@@ -95,8 +97,8 @@ def test_sparse_marker_is_right_or_flagged(sample):
         h, w = tifffile.imread(rec["path"]).shape
         pts = _grid(w, h)
         err = np.hypot(*(channel_affine(rec).apply(pts) - truth.channel_to_section(s, "stippolin", pts)).T) / BINNING
-        assert err.max() <= 1.0 or {"low_mi", "ambiguous"} & set(rec["flags"]), f"section {s}: {err.max():.2f} px"
-        assert rec["registered"] and rec["feature"] in ("edges", "density")
+        assert rec["registered"] is False or err.max() <= 1.5, f"section {s}: {err.max():.2f} px"
+        assert rec["feature"] in ("edges", "density")
 
 
 def test_channel_pyramid_shares_the_em_physical_frame(sample, tmp_path):

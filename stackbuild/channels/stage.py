@@ -24,10 +24,11 @@ Stored record (``store.save_doc("channels", ..., section=s)``), one per section:
         "shift_from_given": [dx, dy] section px at the image centre, or null when x, y are absent,
         "rotation_deg", "scale_ratio" (found scale / pixel-size ratio),
         "flags": ["blank" | "too_small" | "low_mi" | "wild_scale" | "ambiguous" | "at_search_limit"],
-        "failure": one line (only when "low_mi" or "wild_scale" rejected the found map), "seconds"}}}
+        "failure": one line (only when a registration was rejected), "seconds"}}}
 
 A rejected registration (``"low_mi"``: too little mutual information at the
-optimum; ``"wild_scale"``: a scale far from the pixel-size ratio) keeps
+optimum; ``"wild_scale"``: a scale far from the pixel-size ratio;
+``"at_search_limit"``: an optimum at the edge of the searched range) keeps
 ``registered: false`` and the first guess as its ``transform``, like a blank
 image: the marker pyramid leaves its plane empty and landmarks are not
 measured against it. Its measures (``measure_after``, ``scale_ratio``, ...)
@@ -162,7 +163,7 @@ def _register_features(em_fine, mask_fine, moving, start: Affine2D, fine: int, k
     return (*best, tried)
 
 
-def rejection(a: np.ndarray, rho: float, measure_after: float, st: ChannelSettings):
+def rejection(a: np.ndarray, rho: float, info: dict, st: ChannelSettings):
     """Return ``(flag, reason)`` if a found registration must not be used, else ``None``.
 
     Parameters
@@ -171,19 +172,31 @@ def rejection(a: np.ndarray, rho: float, measure_after: float, st: ChannelSettin
         Linear part of the found ``channel pixel -> section pixel`` map.
     rho : float
         The pixel-size ratio (marker / EM), the expected scale.
-    measure_after : float
-        Normalised mutual information at the found map.
+    info : dict
+        What :func:`register_mutual_information` says of it: ``"after"`` (NMI at
+        the found map), ``"gain"`` (NMI of the best searched placement over the
+        search's median) and ``"at_limit"`` (the optimum lies at the edge of the
+        searched shifts). The initial guess has no rotation, so the found
+        rotation is measured from zero.
     st : ChannelSettings
-        ``min_measure`` and ``max_scale_change``.
+        ``min_measure``, ``min_gain``, ``max_scale_change``, ``max_offset`` and ``max_rotation``.
     """
-    if not measure_after >= st.min_measure:
-        return "low_mi", (f"normalised mutual information {measure_after:.4f} at the best placement is below "
+    if not info["after"] >= st.min_measure:
+        return "low_mi", (f"normalised mutual information {info['after']:.4f} at the best placement is below "
                           f"min_measure {st.min_measure:g}")
+    if not info["gain"] >= st.min_gain:
+        return "low_mi", (f"the best placement shares only {info['gain']:.4f} more normalised mutual information "
+                          f"than a chance placement (min_gain {st.min_gain:g})")
     scales = np.linalg.svd(a, compute_uv=False) / rho
     worst = float(scales[np.argmax(np.abs(scales - 1))])
     if not abs(worst - 1) <= st.max_scale_change or np.linalg.det(a) <= 0:
         return "wild_scale", (f"found scale is {worst:.3f} x the pixel-size ratio {rho:g} (more than "
                               f"max_scale_change {st.max_scale_change:g} away)")
+    turn = math.degrees(math.atan2(a[1, 0] - a[0, 1], a[0, 0] + a[1, 1]))
+    if info["at_limit"] or abs(turn) >= st.max_rotation:
+        return "at_search_limit", (f"the best placement lies at the edge of the searched range (max_offset "
+                                   f"{st.max_offset:g} section px, max_rotation {st.max_rotation:g} degrees; "
+                                   f"found {turn:.1f} degrees), so the true one may lie beyond it")
     return None
 
 
@@ -220,7 +233,7 @@ def register_channel(job: _ChannelJob) -> dict:
     rho = e.pixel_size / job.em_pixel_size
 
     def judge(found, info):
-        return rejection(found.then(to_section).matrix[:, :2], rho, info["after"], st)
+        return rejection(found.then(to_section).matrix[:, :2], rho, info, st)
 
     kind, found, info, rejected, tried = _register_features(em_fine, mask_fine, moving, start, fine, k, st, judge)
     result = found.then(to_section)
@@ -242,7 +255,7 @@ def register_channel(job: _ChannelJob) -> dict:
         rec["failure"] = failure_line(e, rejected[1])
     if info["distinctness"] < st.min_distinctness:
         rec["flags"].append("ambiguous")
-    if info["at_limit"]:
+    if info["at_limit"] and "at_search_limit" not in rec["flags"]:
         rec["flags"].append("at_search_limit")
     rec["seconds"] = round(time.perf_counter() - t0, 3)
     return rec

@@ -13,7 +13,6 @@ from pathlib import Path
 
 import numpy as np
 
-from ..folder import BuildFolder
 from ..tiles import read_tile
 from ..transforms.records import Canvas, SectionAlignment, SectionStitch
 from .blockmatch import BlockMatches
@@ -34,10 +33,13 @@ class SeamBlocks:
 
 @dataclass
 class Measurements:
-    """All block-level measurements of one build, kept in memory for the metrics and plots."""
+    """What the driver keeps of a build's measurements: per-section counts, probe sums per region, notes."""
 
-    seams: dict[int, list[SeamBlocks]] = field(default_factory=dict)
+    seams: dict[int, int] = field(default_factory=dict)  # section -> tile pairs measured
     probe: list[dict] = field(default_factory=list)
+    build: str = ""
+    sections: list[int] = field(default_factory=list)  # sections whose rows are stored (see metrics.stored_rows)
+    reused: dict[str, int] = field(default_factory=lambda: {"sections": 0})
     straightened: dict[int, float] = field(default_factory=dict)
     source: PlaneSource | None = None
     notes: list[str] = field(default_factory=list)
@@ -116,18 +118,3 @@ def measure_seams(stitch: SectionStitch, settings: ReportSettings, *, keep_tiles
                           spacing=spacing, min_ncc=settings.min_block_ncc, smooth=settings.seam_smooth)
         out.append(SeamBlocks(a, b, m))
     return out
-
-
-@dataclass(frozen=True)
-class SeamJob:
-    """One section's seam measurement (small and picklable)."""
-
-    build: str
-    section: int
-    settings: ReportSettings
-
-
-def seam_job(job: SeamJob) -> list[SeamBlocks]:
-    """Measure one section's seams from its stored placement (runs on a worker)."""
-    store = BuildFolder(job.build).store
-    return measure_seams(store.load_stitch(job.section), job.settings)

@@ -75,11 +75,11 @@ from ..errors import InputError
 from ..manifest import image_header
 from ..folder import BuildFolder
 from ..transforms.records import Canvas, ChannelRegistration
-from .blockmatch import BlockMatches, summarize
+from .blockmatch import summarize
 from .landmarks import landmark_rows, landmark_totals, per_channel_rms
-from .measure import Measurements, SeamJob, seam_job, section_to_output
+from .measure import Measurements, section_to_output
 from .probe import measure_error
-from .straighten import section_positions, straightening
+from .straighten import straightening
 from .zchain import section_error
 from .planes import open_planes
 from .settings import ReportSettings
@@ -116,85 +116,6 @@ class _Scale:
 
     def at(self, section: int, xy_out) -> dict:
         return location(section, self.z(section), xy_out, self.canvas, self.px_nm, self.dz_nm)
-
-
-def _summary(blocks: BlockMatches, where) -> dict:
-    mags = blocks.magnitudes
-    s = summarize(mags)
-    s["at"] = where(blocks.points[int(np.argmax(mags))]) if mags.size else None
-    return s
-
-
-def _concat(items: list[BlockMatches]) -> BlockMatches:
-    items = [b for b in items if len(b.ncc)]
-    if not items:
-        return BlockMatches(np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0))
-    return BlockMatches(*(np.concatenate([getattr(b, k) for b in items]) for k in ("points", "shifts", "ncc")))
-
-
-def _pair_misfit(blocks: BlockMatches) -> tuple[np.ndarray | None, np.ndarray | None]:
-    """Return the pair's rigid misfit (component-wise median of its block shifts) and the overlap centre."""
-    if not len(blocks.ncc):
-        return None, None
-    return np.median(blocks.shifts, axis=0), blocks.points.mean(axis=0)
-
-
-def _stitch_rows(section, stitch, seams, align, sc: _Scale):
-    """Return tile rows, pair rows and the section's seam summary (over the pairs' misfits)."""
-    to_out = lambda p: section_to_output(p, align, sc.canvas)[0]  # noqa: E731
-    where = lambda p: sc.at(section, to_out(p))  # noqa: E731
-    recorded = {(p.a, p.b): p for p in stitch.pairs}
-    pairs, misfits, places = [], [], []
-    for sb in seams:
-        p = recorded.get((sb.a, sb.b))
-        row = {"section": section, "a": sb.a, "b": sb.b}
-        for k in ("dx", "dy", "stage_dx", "stage_dy", "ncc", "peak_ratio", "accepted", "reason"):
-            row[k] = getattr(p, k) if p else None
-        row["stitch_residual"] = p.residual if p else None
-        vec, centre = _pair_misfit(sb.blocks)
-        row["misfit"] = None if vec is None else [float(vec[0]), float(vec[1])]
-        row["residual"] = None if vec is None else float(np.hypot(*vec))
-        row["at"] = None if centre is None else where(centre)
-        row["blocks"] = _summary(sb.blocks, where)
-        row["error"] = sb.error
-        pairs.append(row)
-        if vec is not None:
-            misfits.append(row["residual"])
-            places.append(centre)
-    tiles = []
-    for t in stitch.tiles:
-        mine = [r["residual"] for r in pairs if t.tile in (r["a"], r["b"]) and r["residual"] is not None]
-        centre = (t.x + (t.width - 1) / 2, t.y + (t.height - 1) / 2)
-        flags = list(t.flags) + ([] if Path(t.path).is_file() else ["missing_file"])
-        tiles.append({"section": section, "tile": t.tile, "path": t.path, "x": t.x, "y": t.y,
-                      "flags": flags, "stitch_residual": t.residual,
-                      "seam_median": float(np.median(mine)) if mine else None,
-                      "seam_max": max(mine, default=None), "seams": len(mine), "at": where(centre)})
-    summary = summarize(misfits)
-    summary["at"] = where(places[int(np.argmax(misfits))]) if misfits else None
-    return tiles, pairs, summary
-
-
-def _elastic(section, align, sc: _Scale) -> dict:
-    if align is None or align.displacement is None:
-        return {"rms": None, "max": None, "at": None}
-    d = align.displacement
-    mag = np.hypot(d.vectors[..., 0], d.vectors[..., 1])
-    j, i = np.unravel_index(int(np.argmax(mag)), mag.shape)
-    node = np.array([d.origin[0] + i * d.spacing, d.origin[1] + j * d.spacing])
-    off = np.array([sc.canvas.origin_x, sc.canvas.origin_y]) if sc.canvas else 0.0
-    st = d.magnitude_stats()
-    return {"rms": st["rms"], "max": st["max"], "at": sc.at(section, node - off)}
-
-
-def _inliers(align) -> dict:
-    """Return ``{neighbour section: RANSAC inliers}`` from the aligner's statistics (empty if absent)."""
-    pairs = ((align.stats if align else {}).get("coarse") or {}).get("pairs") or {}
-    out = {}
-    for k, v in pairs.items():
-        if isinstance(v, dict) and isinstance(v.get("inliers"), (int, float)):
-            out[str(k)] = int(v["inliers"])
-    return out
 
 
 def plane_errors(probe: list[dict], depth: int) -> dict[int, dict]:
@@ -247,7 +168,7 @@ def _beyond_reach(motion: dict, z) -> float:
     return min(shares) if shares else 0.0
 
 
-def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, settings) -> list[dict]:
+def _section_rows(sections, sums: dict[int, dict], meas, sc: _Scale, settings) -> list[dict]:
     depth = sc.canvas.depth if sc.canvas else 0
     errors = plane_errors(meas.probe, depth) if meas.probe else {}
     motion = _motion(meas.probe)
@@ -256,8 +177,8 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, setti
     lost = set(sc.canvas.lost_sections) if sc.canvas else set()
     rows = []
     for s in sections:
-        st, al, z = stitches.get(s), aligns.get(s), sc.z(s)
-        flags = list(st.flags if st else []) + list(al.flags if al else [])
+        sm, z = sums.get(s) or {}, sc.z(s)
+        flags = list(sm.get("flags") or [])
         if sc.canvas and s in sc.canvas.flagged_sections:
             extra = sc.canvas.flagged_sections[s]
             flags += [str(f) for f in extra] if isinstance(extra, (list, tuple, dict)) else [str(extra)]
@@ -283,7 +204,7 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, setti
             err = {**err, "align_error_px": total, "align_error_unc_px": unc}
         if err["align_error_px"] is not None and err["align_error_px"] > settings.align_max:
             flags.append("error_over_bar")
-        if s not in lost and st is not None and not err["blocks"] and meas.probe:
+        if s not in lost and sm.get("stitched") and not err["blocks"] and meas.probe:
             flags.append("not_measured")
         rows.append({
             "section": s, "z": z, "lost": s in lost, "flags": sorted(set(flags)),
@@ -292,13 +213,13 @@ def _section_rows(sections, stitches, aligns, seam_sums, meas, sc: _Scale, setti
             "align_error_max_px": err["max"],
             "align_error_at": sc.at(s, err["at_xy"]) if err["at_xy"] is not None else None,
             "motion_prev": prev.get(z),
-            "tiles": len(st.tiles) if st else 0,
-            "pairs_accepted": sum(p.accepted for p in st.pairs) if st else 0,
-            "pairs_rejected": sum(not p.accepted for p in st.pairs) if st else 0,
-            "stitch": seam_sums.get(s) or summarize([]) | {"at": None},
-            "stitcher_stats": dict(st.stats) if st else {},
-            "inliers": _inliers(al),
-            "elastic": _elastic(s, al, sc), "aligner_stats": dict(al.stats) if al else {},
+            "tiles": sm.get("tiles", 0),
+            "pairs_accepted": sm.get("pairs_accepted", 0), "pairs_rejected": sm.get("pairs_rejected", 0),
+            "stitch": sm.get("stitch") or summarize([]) | {"at": None},
+            "stitcher_stats": sm.get("stitcher_stats") or {},
+            "inliers": sm.get("inliers") or {},
+            "elastic": sm.get("elastic") or {"rms": None, "max": None, "at": None},
+            "aligner_stats": sm.get("aligner_stats") or {},
         })
     return rows
 
@@ -338,7 +259,7 @@ def _worst(rows: list[dict], key) -> dict | None:
     return max(ok, key=key) if ok else None
 
 
-def _totals(tiles, pairs, sections, channels, meas: Measurements) -> dict:
+def _totals(sums: dict[int, dict], sections, channels, meas: Measurements) -> dict:
     def top(rows, key):
         vals = [key(r) for r in rows if key(r) is not None]
         return max(vals) if vals else None
@@ -347,13 +268,13 @@ def _totals(tiles, pairs, sections, channels, meas: Measurements) -> dict:
     # apparent motion between adjacent planes only (across a lost section the tissue itself changed twice)
     motion = [r["motion_prev"]["p95"] for r in sections
               if r["motion_prev"] and r["z"] is not None and not r["lost"]]
-    n_pairs = sum(r["accepted"] is not None for r in pairs)
-    rejected = sum(r["accepted"] is False for r in pairs)
+    n_pairs = sum(v["pairs"] for v in sums.values())
+    rejected = sum(v["rejected"] for v in sums.values())
     fs = sum(bool(r["flags"]) for r in sections)
-    ft = sum(bool(r["flags"]) for r in tiles)
+    ft = sum(v["flagged_count"] for v in sums.values())
     fc = sum(bool(r["flags"]) or r["registered"] is False for r in channels)
     blank = sum(1 for r in sections if "blank_section" in r["flags"])
-    missing = sum(1 for r in tiles if "missing_file" in r["flags"])
+    missing = sum(v["missing"] for v in sums.values())
     return {
         "align.rms": float(np.sqrt(np.mean(err ** 2))) if err.size else None,
         "align.p95": float(np.percentile(err, 95)) if err.size else None,
@@ -370,24 +291,32 @@ def _totals(tiles, pairs, sections, channels, meas: Measurements) -> dict:
         "lost": sum(r["lost"] for r in sections), "rejected": rejected,
         "rejected.fraction": rejected / n_pairs if n_pairs else None,
         "channels.flagged": fc,
-        "tiles": len(tiles), "pairs": len(pairs), "sections": len(sections), "channels": len(channels),
+        "tiles": sum(v["tiles"] for v in sums.values()), "pairs": sum(v["pair_rows"] for v in sums.values()),
+        "sections": len(sections), "channels": len(channels),
     }
 
 
-def _straightened(aligns: dict, canvas, present: list[int], settings: ReportSettings) -> dict[int, float]:
+def straighten_grid(canvas, settings: ReportSettings) -> tuple:
+    """Return the output grid ``((x, y), ...)`` (level-0 px) on which straightening is read, about ``probe_blocks`` points."""
+    if canvas is None:
+        return ()
+    step = max(float(settings.probe_spacing), float(np.sqrt(canvas.width * canvas.height / max(settings.probe_blocks, 1))))
+    gx, gy = np.meshgrid(np.arange(step / 2, canvas.width, step), np.arange(step / 2, canvas.height, step))
+    return tuple((round(float(x), 3), round(float(y), 3)) for x, y in zip(gx.ravel(), gy.ravel()))
+
+
+def _straightened(sums: dict[int, dict], canvas, present: list[int], grid: tuple) -> dict[int, float]:
     """Return ``{z: px}``: oblique structure straightened by the aligner, read from its stored transforms.
 
-    On a grid of at most about ``probe_blocks`` points per plane (see :mod:`stackbuild.qc.straighten`).
+    Each section task maps the grid through its section's transforms (``positions`` of its
+    summary); see :mod:`stackbuild.qc.straighten`.
     """
-    if canvas is None or len(present) < 3:
+    if canvas is None or len(present) < 3 or not grid:
         return {}
-    step = max(float(settings.probe_spacing), float(np.sqrt(canvas.width * canvas.height / max(settings.probe_blocks, 1))))
-    xs = np.arange(step / 2, canvas.width, step)
-    ys = np.arange(step / 2, canvas.height, step)
-    gx, gy = np.meshgrid(xs, ys)
-    pts = np.column_stack([gx.ravel(), gy.ravel()])
+    pts = np.asarray(grid, float)
     secs = [canvas.first_section + z for z in present]
-    mapped = np.stack([section_positions(aligns.get(s), canvas, pts) for s in secs])
+    mapped = np.stack([np.asarray((sums.get(s) or {}).get("positions") or pts + [canvas.origin_x, canvas.origin_y],
+                                  float) for s in secs])
     vals = straightening(pts, mapped, np.asarray(present, float))
     return {z: float(v) for z, v in zip(present, vals) if np.isfinite(v)}
 
@@ -397,16 +326,38 @@ def measure_factor(settings: ReportSettings) -> float:
     return float(max(1.0, min(settings.measure_scale, settings.align_p95 / 4.0)))
 
 
-def _mark_blank(sections: list[dict], stitches: dict) -> None:
+def _mark_blank(sections: list[dict], sums: dict) -> None:
     """Flag ``blank_section`` where every tile of a section was found blank (imaged resin or nothing)."""
     for r in sections:
-        st = stitches.get(r["section"])
-        if st is not None and st.tiles and all("blank" in t.flags for t in st.tiles):
+        if (sums.get(r["section"]) or {}).get("blank"):
             r["flags"] = sorted(set(r["flags"]) | {"blank_section"})
 
 
-def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapper=None) -> tuple[dict, Measurements]:
-    """Return the metrics document of a build and the block-level measurements behind it.
+class _Records:
+    """Section records read on demand (the driver never holds every section's tiles at once)."""
+
+    def __init__(self, load, have):
+        self._load, self._have = load, set(have)
+
+    def get(self, section, default=None):
+        return self._load(section) if section in self._have else default
+
+    def __getitem__(self, section):
+        return self._load(section)
+
+    def __contains__(self, section):
+        return section in self._have
+
+
+def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapper=None,
+            reuse: bool = True) -> tuple[dict, Measurements]:
+    """Return the metrics document of a build and the measurements behind it.
+
+    Each section is measured by one task (:func:`stackbuild.qc.sections.seam_job`) that
+    returns a small summary; the probe runs as region tasks. With ``reuse``, measurements
+    stored in ``DIR/qc/measured`` whose inputs are unchanged are re-used (see
+    :mod:`stackbuild.qc.reuse`). The document's ``tiles`` and ``pairs`` are not kept in
+    memory: :func:`stored_rows` streams them from the per-section files.
 
     Parameters
     ----------
@@ -415,27 +366,34 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
     settings : ReportSettings
         Block sizes and the measuring level.
     progress : callable, optional
-        Called as ``progress(done, total)`` while measuring (seams, then plane pairs).
+        Called as ``progress(done, total)`` while the sections are measured.
+    mapper : callable, optional
+        ``mapper(fn, items)`` running the tasks (the build's Dask mapper); ``map`` when omitted.
+    reuse : bool
+        False measures everything again.
     """
+    from .sections import SectionJob, seam_job
+
     folder = BuildFolder(build_dir)
     store = folder.store
     canvas = store.load_canvas()
     sc = _Scale(folder, canvas)
-    secs = sorted(set(store.sections_with("stitch")) | set(store.sections_with("align"))
-                  | (set(canvas.lost_sections) if canvas else set()))
-    stitches = {s: store.load_stitch(s) for s in store.sections_with("stitch")}
-    aligns = {s: store.load_alignment(s) for s in store.sections_with("align")}
+    stitched = store.sections_with("stitch")
+    aligned = store.sections_with("align")
+    secs = sorted(set(stitched) | set(aligned) | (set(canvas.lost_sections) if canvas else set()))
     meas = Measurements()
-    tiles, pairs, seam_sums = [], [], {}
     run = mapper or map
-    seams = run(seam_job, [SeamJob(str(build_dir), s, settings) for s in stitches])
-    for k, ((s, st), found) in enumerate(zip(stitches.items(), seams)):
-        t, p, seam_sums[s] = _stitch_rows(s, st, found, aligns.get(s), sc)
-        meas.seams[s] = len(found)  # the driver keeps per-pair rows, not blocks
-        tiles += t
-        pairs += p
+    grid = straighten_grid(canvas, settings)
+    todo = sorted(set(stitched) | set(aligned))
+    sums = {}
+    for k, sm in enumerate(run(seam_job, [SectionJob(str(build_dir), s, settings, grid, reuse) for s in todo])):
+        sums[sm["section"]] = sm
+        meas.seams[sm["section"]] = sm["pair_rows"]
+        meas.reused["sections"] += bool(sm.get("reused"))
         if progress:
-            progress(k + 1, len(stitches))
+            progress(k + 1, len(todo))
+    meas.build = str(build_dir)
+    meas.sections = sorted(s for s in sums if sums[s]["stitched"])
     factor = measure_factor(settings)
     meas.source = open_planes(build_dir, max_factor=factor)
     written = meas.source is not None and meas.source.origin == "volume.zarr"
@@ -445,20 +403,23 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
         lost = {sc.z(s) for s in canvas.lost_sections} if canvas else set()
         present = [z for z in range(meas.source.depth) if z not in lost]
         meas.probe = measure_error(build_dir, meas.source, present, settings, written=written,
-                                   max_factor=factor, mapper=mapper or map)
-        meas.straightened = _straightened(aligns, canvas, present, settings)
-    sections = _section_rows(secs, stitches, aligns, seam_sums, meas, sc, settings)
-    _mark_blank(sections, stitches)
+                                   max_factor=factor, mapper=mapper or map, reuse=reuse)
+        meas.straightened = _straightened(sums, canvas, present, grid)
+    sections = _section_rows(secs, sums, meas, sc, settings)
+    _mark_blank(sections, sums)
+    aligns = _Records(store.load_alignment, aligned)
     channels = _channel_rows(store, secs, aligns, sc)
-    landmarks, notes = landmark_rows(folder, stitches, aligns, sc)
+    landmarks, notes = landmark_rows(folder, _Records(store.load_stitch, stitched), aligns, sc)
     meas.notes += notes
     rms = per_channel_rms(landmarks)
     for r in channels:
         r["landmark_residual"] = rms.get((r["section"], r["channel"]))
-    meas.notes += [f"section {r['section']} tile pair {r['a']}-{r['b']}: {r['error']}" for r in pairs if r["error"]]
+    meas.notes += [e for s in sorted(sums) for e in sums[s]["errors"]]
     src = meas.source
+    top_tiles = [r for s in sorted(sums) for r in sums[s]["top_tiles"]]
+    top_pairs = [r for s in sorted(sums) for r in sums[s]["top_pairs"]]
     doc = {
-        "schema_version": SCHEMA_VERSION, "build": str(folder.home),
+        "schema_version": SCHEMA_VERSION, "build": str(getattr(folder, "home", folder.root)),
         "volume": {"pixel_size_nm": sc.px_nm, "section_thickness_nm": sc.dz_nm,
                    "width": canvas.width if canvas else None, "height": canvas.height if canvas else None,
                    "depth": canvas.depth if canvas else None,
@@ -466,18 +427,32 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
                    "lost_sections": list(canvas.lost_sections) if canvas else [],
                    "measured_on": None if src is None else
                    {"origin": src.origin, "level": src.level, "factor": src.factor}},
-        "tiles": tiles, "pairs": pairs, "sections": sections, "channels": channels, "landmarks": landmarks,
-        "totals": {**_totals(tiles, pairs, sections, channels, meas), **landmark_totals(landmarks)},
-        "worst": {"tile": _worst(tiles, lambda r: r["seam_median"]),
-                  "pair": _worst(pairs, lambda r: r["residual"]),
+        "sections": sections, "channels": channels, "landmarks": landmarks,
+        "flagged_tiles": [r for s in sorted(sums) for r in sums[s]["flagged_tiles"]][:FLAGGED_TILES_IN_JSON],
+        "worst_tiles": sorted(top_tiles, key=lambda r: -r["seam_median"])[:settings.worst],
+        "worst_pairs": sorted(top_pairs, key=lambda r: -r["residual"])[:settings.worst],
+        "tables": {"tiles.csv": sum(v["tiles"] for v in sums.values()),
+                   "pairs.csv": sum(v["pair_rows"] for v in sums.values())},
+        "totals": {**_totals(sums, sections, channels, meas), **landmark_totals(landmarks)},
+        "worst": {"tile": top_tiles and max(top_tiles, key=lambda r: r["seam_median"]) or None,
+                  "pair": top_pairs and max(top_pairs, key=lambda r: r["residual"]) or None,
                   "section_stitch": _worst(sections, lambda r: r["stitch"]["rms"]),
                   "section_align": _worst(sections, lambda r: r["align_error_px"]),
                   "channel": _worst(channels, lambda r: None if r["measure_after"] is None
                                     else -r["measure_after"]),
                   "landmark": _worst(landmarks, lambda r: r["residual"])},
+        "reused": dict(meas.reused),
         "notes": meas.notes,
     }
     return doc, meas
+
+
+def stored_rows(meas: Measurements, kind: str):
+    """Yield the ``"tiles"`` or ``"pairs"`` rows of every measured section, one section's file at a time."""
+    from .sections import stored_rows as _rows
+
+    for s in meas.sections:
+        yield from _rows(meas.build, s, kind)
 
 
 def _flat(row: dict, prefix: str = "") -> dict:
@@ -494,13 +469,28 @@ def _flat(row: dict, prefix: str = "") -> dict:
     return out
 
 
-def _write_csv(path: Path, rows: list[dict]) -> Path:
-    flat = [_flat(r) for r in rows]
-    cols = list(dict.fromkeys(k for r in flat for k in r))
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.DictWriter(fh, fieldnames=cols)
-        w.writeheader()
-        w.writerows(flat)
+def _write_csv(path: Path, rows) -> Path:
+    """Write rows (any iterable of dicts, read once) as CSV; the columns are every key seen, in first-seen order.
+
+    Rows are spooled through a temporary file while the columns are collected, so a stream of
+    per-section rows is never held whole.
+    """
+    import tempfile
+
+    cols: list[str] = []
+    with tempfile.TemporaryFile("w+", newline="", encoding="utf-8") as tmp:
+        for r in rows:
+            flat = _flat(r)
+            for k in flat:
+                if k not in cols:
+                    cols.append(k)
+            tmp.write(json.dumps(flat) + "\n")
+        tmp.seek(0)
+        with open(path, "w", newline="", encoding="utf-8") as fh:
+            w = csv.DictWriter(fh, fieldnames=cols)
+            w.writeheader()
+            for line in tmp:
+                w.writerow(json.loads(line))
     return path
 
 
@@ -560,13 +550,13 @@ def write_metrics(doc: dict, qc_dir: str | Path, meas: Measurements | None = Non
     qc_dir = Path(qc_dir)
     qc_dir.mkdir(parents=True, exist_ok=True)
     path = qc_dir / "metrics.json"
-    flagged = [t for t in doc.get("tiles") or [] if t["flags"]]
     slim = {k: v for k, v in doc.items() if k not in ("tiles", "pairs")}
-    slim["flagged_tiles"] = flagged[:FLAGGED_TILES_IN_JSON]
-    slim["tables"] = {"tiles.csv": len(doc.get("tiles") or []), "pairs.csv": len(doc.get("pairs") or [])}
     atomic_write_text(path, json.dumps(_jsonable(slim), indent=1, allow_nan=False) + "\n")
     paths = [path]
-    for name in ("tiles", "pairs", "sections", "channels", "landmarks"):
+    for name in ("tiles", "pairs"):
+        rows = doc[name] if name in doc else (stored_rows(meas, name) if meas is not None else [])
+        paths.append(_write_csv(qc_dir / f"{name}.csv", rows))
+    for name in ("sections", "channels", "landmarks"):
         if doc.get(name) or name not in ("channels", "landmarks"):
             paths.append(_write_csv(qc_dir / f"{name}.csv", doc[name]))
     if meas is not None:

@@ -108,12 +108,15 @@ def _failing_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSetti
         out.append((f"The worst-aligned section, {worst['section']}: estimated error "
                     f"{worst['align_error_px']:.2f} px; its largest block {worst['align_error_max_px']:.2f} px",
                     plots.save(fig, qc / "worst_section.png")))
-    stitches = {s: folder.store.load_stitch(s) for s in meas.seams}
-    ranked = sorted((r for r in doc["sections"] if r["section"] in stitches and r["stitch"]["rms"] is not None),
+    ranked = sorted((r for r in doc["sections"] if r["section"] in meas.seams and r["stitch"]["rms"] is not None),
                     key=lambda r: -r["stitch"]["rms"])[:min(settings.worst, 3)]
     if ranked:
         secs = [r["section"] for r in ranked]
-        fig = plots.tile_maps(stitches, doc["tiles"], doc["pairs"], secs, px)
+        from .sections import stored_rows
+
+        stitches = {s: folder.store.load_stitch(s) for s in secs}  # the few sections drawn, not all
+        rows = {k: [r for s in secs for r in stored_rows(folder.root, s, k)] for k in ("tiles", "pairs")}
+        fig = plots.tile_maps(stitches, rows["tiles"], rows["pairs"], secs, px)
         out.append(("Tile maps of the sections with the worst seams (labels = tile names)",
                     plots.save(fig, qc / "tiles.png")))
     return out
@@ -126,14 +129,14 @@ def _channel_panels(folder: BuildFolder, doc: dict, size: int = 384) -> list:
     (the EM level of the marker's pixel size, reduced further from the smallest written
     level when the EM pyramid stops above it).
     """
-    import zarr
-
-    from ..render.lazy import open_volume
-    from ..render.reduce import reduce2x2
-
     root = folder.channels_path
     if not root.is_dir() or not doc["channels"]:
         return []
+    import zarr
+
+    from ..render.lazy import open_volume  # only with channels: it brings in dask
+    from ..render.reduce import reduce2x2
+
     levels = [k for k in range(32) if (folder.pyramid_path() / str(k) / "zarr.json").exists()]
     em0 = open_volume(folder.root, 0, lazy=False).scale_nm[-1]
     panels = []
@@ -225,11 +228,12 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
     s_rows = [[r["section"], r["stitch"]["rms"], r["stitch"]["p95"], r["stitch"]["max"], r["pairs_rejected"],
                *_loc(r["stitch"]["at"])] for r in st]
     s_bad = [r["stitch"]["rms"] > settings.stitch_rms for r in st]
-    pr = sorted((r for r in doc["pairs"] if r["residual"] is not None), key=lambda r: -r["residual"])[:n]
+    pr = sorted((r for r in doc["worst_pairs"] if r["residual"] is not None), key=lambda r: -r["residual"])[:n]
     vec = lambda v: f"{v[0]:.2f}, {v[1]:.2f}"  # noqa: E731
     p_rows = [[r["section"], r["a"], r["b"], r["residual"], vec(r["misfit"]), r["blocks"]["n"], r["ncc"],
                r["accepted"], r["reason"], *_loc(r["at"])] for r in pr]
-    tl = sorted((r for r in doc["tiles"] if r["seam_median"] is not None or r["flags"]),
+    seen = {(r["section"], r["tile"]): r for r in doc["flagged_tiles"] + doc["worst_tiles"]}
+    tl = sorted((r for r in seen.values() if r["seam_median"] is not None or r["flags"]),
                 key=lambda r: (-len(r["flags"]), -(r["seam_median"] or 0)))[:n]
     t_rows = [[r["section"], r["tile"], r["seam_median"], r["seam_max"], r["stitch_residual"], _flag_cell(r["flags"]),
                *_loc(r["at"]), r["path"]] for r in tl]
@@ -406,7 +410,7 @@ def warnings_of(doc: dict) -> list[str]:
             f"{k.replace('_', ' ')} {v:g} nm" for k, v in sorted(assumed.items()))
             + "; nanometre values in this report are only as right as these (build with --pixel-size and "
               "--section-thickness)")
-    lossy = [t for t in doc.get("flagged_tiles") or doc.get("tiles") or [] if "lossy_compression" in t["flags"]]
+    lossy = [t for t in doc.get("flagged_tiles") or [] if "lossy_compression" in t["flags"]]
     lossy_secs = sorted({r["section"] for r in doc["sections"] if "lossy_tiles" in r["flags"]}
                         | {t["section"] for t in lossy})
     if lossy_secs:
@@ -475,7 +479,7 @@ def _thumbnails(folder: BuildFolder, doc: dict, height: int = 56) -> tuple[dict[
 
 
 def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None = None,
-               progress=None, mapper=None) -> Verdict:
+               progress=None, mapper=None, reuse: bool = True) -> Verdict:
     """Measure a build, write ``DIR/qc`` (metrics.json, CSV tables, PNG figures, report.html).
 
     Parameters
@@ -492,6 +496,9 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     mapper : callable, optional
         ``mapper(fn, items)`` that runs the region tasks (the build's Dask mapper); in this process
         when omitted.
+    reuse : bool
+        Re-use stored measurements whose inputs are unchanged (``DIR/qc/measured``, see
+        :mod:`stackbuild.qc.reuse`); False measures everything again.
 
     Returns
     -------
@@ -507,7 +514,7 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
         folder.qc_dir.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise InputError(f"cannot write the report folder ({exc.strerror})", file=folder.qc_dir) from None
-    doc, meas = collect(build_dir, settings, progress, mapper=mapper)
+    doc, meas = collect(build_dir, settings, progress, mapper=mapper, reuse=reuse)
     passed, failures, rows = judge(doc, thresholds)
     doc["verdict"] = {"passed": passed, "failures": failures, "thresholds": rows}
     doc["provenance"] = provenance(folder, settings, doc)

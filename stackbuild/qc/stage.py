@@ -1,7 +1,7 @@
 """The report stage entry: ``run(folder, settings, *, mapper, progress)``.
 
-Measures the build (seams in this process, the alignment-error probe as
-region tasks through ``mapper``), writes ``DIR/qc`` and returns the
+Measures the build (one task per section for its seams, the alignment-error probe as
+region tasks, both through ``mapper``), writes ``DIR/qc`` and returns the
 :class:`~stackbuild.qc.report.Verdict`. :func:`check_bars` re-evaluates bars
 against the stored metrics without measuring or writing anything.
 """
@@ -11,12 +11,16 @@ from .bars import Verdict, recheck, stored_metrics_stale
 from .settings import ReportSettings
 
 
-def run(folder, settings: ReportSettings, *, mapper=None, progress=None, fail_on=None) -> Verdict:
-    """Measure the build in ``folder`` and write its report; return the verdict."""
+def run(folder, settings: ReportSettings, *, mapper=None, progress=None, fail_on=None, reuse: bool = True) -> Verdict:
+    """Measure the build in ``folder`` and write its report; return the verdict.
+
+    Measurements stored by an earlier report whose inputs are unchanged are re-used
+    (``reuse=False`` measures everything again); see :mod:`stackbuild.qc.reuse`.
+    """
     from .report import run_report  # plotting is imported only when a report is written
 
     root = getattr(folder, "root", folder)
-    return run_report(root, settings, fail_on=fail_on, progress=progress, mapper=mapper)
+    return run_report(root, settings, fail_on=fail_on, progress=progress, mapper=mapper, reuse=reuse)
 
 
 def check_bars(folder, settings: ReportSettings, fail_on) -> Verdict:

@@ -1,0 +1,225 @@
+"""Per-section measurements as tasks: seams, tile and pair rows, the section's own figures, kept for re-use.
+
+One task measures one section on a worker (:func:`seam_job`): it re-measures the
+section's seams from the raw tiles (at most four tiles held at a time, see
+:func:`stackbuild.qc.measure.measure_seams`), turns them into tile and pair rows, and
+reads from the section's records what the report copies (flags, the stitcher's and the
+aligner's statistics, the elastic field's size, the straightening grid's positions).
+The rows go to ``DIR/qc/measured/sections/<section>.json``, stamped with the section's
+fingerprint (:func:`stackbuild.qc.reuse.section_fingerprint`); the task returns a small
+summary only (counts, the seam summary, the worst rows, the flagged tiles). When the stored
+file carries the same fingerprint the task returns its summary without measuring.
+
+What one task holds at production size (1000 tiles of 4096 px): four tiles as float32
+(268 MB), the section's 2000 pair rows and 1000 tile rows (a few MB); the driver holds
+one summary per section (a few kB).
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ..folder import BuildFolder
+from ..transforms.store import atomic_write_text
+from .blockmatch import BlockMatches, summarize
+from .measure import measure_seams, section_to_output
+from .reuse import MEASURED, section_fingerprint
+from .settings import ReportSettings
+from .straighten import section_positions
+
+#: tiles or pairs per section kept in the summary as the section's worst rows
+TOP_ROWS = 10
+
+
+@dataclass(frozen=True)
+class SectionJob:
+    """What one section task needs (small and picklable)."""
+
+    build: str
+    section: int
+    settings: ReportSettings
+    grid: tuple = ()          # straightening grid ((x, y), ...) level-0 output px, the same for every plane
+    reuse: bool = True
+
+
+def section_file(build, section: int) -> Path:
+    """Return the path of a section's stored measurements."""
+    return BuildFolder(build).qc_dir / MEASURED / "sections" / f"{int(section):05d}.json"
+
+
+class Locator:
+    """Output locations (level-0 px and nm) of section points, for one build's canvas and scale."""
+
+    def __init__(self, canvas, px_nm: float, dz_nm: float):
+        self.canvas, self.px_nm, self.dz_nm = canvas, px_nm, dz_nm
+
+    def z(self, section: int) -> int | None:
+        return None if self.canvas is None else section - self.canvas.first_section
+
+    def at(self, section: int, xy_out) -> dict:
+        x, y = float(xy_out[0]), float(xy_out[1])
+        z = self.z(section)
+        return {"section": int(section), "z": z, "x_px": round(x, 2), "y_px": round(y, 2),
+                "x_nm": round(x * self.px_nm, 1), "y_nm": round(y * self.px_nm, 1),
+                "z_nm": None if z is None else round(z * self.dz_nm, 1)}
+
+
+def _blocks_summary(blocks: BlockMatches, where) -> dict:
+    mags = blocks.magnitudes
+    s = summarize(mags)
+    s["at"] = where(blocks.points[int(np.argmax(mags))]) if mags.size else None
+    return s
+
+
+def stitch_rows(section, stitch, seams, align, loc: Locator):
+    """Return tile rows, pair rows and the section's seam summary (over the pairs' rigid misfits)."""
+    to_out = lambda p: section_to_output(p, align, loc.canvas)[0]  # noqa: E731
+    where = lambda p: loc.at(section, to_out(p))  # noqa: E731
+    recorded = {(p.a, p.b): p for p in stitch.pairs}
+    pairs, misfits, places = [], [], []
+    for sb in seams:
+        p = recorded.get((sb.a, sb.b))
+        row = {"section": section, "a": sb.a, "b": sb.b}
+        for k in ("dx", "dy", "stage_dx", "stage_dy", "ncc", "peak_ratio", "accepted", "reason"):
+            row[k] = getattr(p, k) if p else None
+        row["stitch_residual"] = p.residual if p else None
+        if len(sb.blocks.ncc):
+            vec, centre = np.median(sb.blocks.shifts, axis=0), sb.blocks.points.mean(axis=0)
+            row["misfit"] = [float(vec[0]), float(vec[1])]
+            row["residual"] = float(np.hypot(*vec))
+            row["at"] = where(centre)
+            misfits.append(row["residual"])
+            places.append(centre)
+        else:
+            row["misfit"] = row["residual"] = row["at"] = None
+        row["blocks"] = _blocks_summary(sb.blocks, where)
+        row["error"] = sb.error
+        pairs.append(row)
+    mine: dict[str, list[float]] = {}
+    for r in pairs:
+        if r["residual"] is not None:
+            mine.setdefault(r["a"], []).append(r["residual"])
+            mine.setdefault(r["b"], []).append(r["residual"])
+    tiles = []
+    for t in stitch.tiles:
+        m = mine.get(t.tile, [])
+        centre = (t.x + (t.width - 1) / 2, t.y + (t.height - 1) / 2)
+        flags = list(t.flags) + ([] if Path(t.path).is_file() else ["missing_file"])
+        tiles.append({"section": section, "tile": t.tile, "path": t.path, "x": t.x, "y": t.y,
+                      "flags": flags, "stitch_residual": t.residual,
+                      "seam_median": float(np.median(m)) if m else None,
+                      "seam_max": max(m, default=None), "seams": len(m), "at": where(centre)})
+    summary = summarize(misfits)
+    summary["at"] = where(places[int(np.argmax(misfits))]) if misfits else None
+    return tiles, pairs, summary
+
+
+def _elastic(section, align, loc: Locator) -> dict:
+    if align is None or align.displacement is None:
+        return {"rms": None, "max": None, "at": None}
+    d = align.displacement
+    mag = np.hypot(d.vectors[..., 0], d.vectors[..., 1])
+    j, i = np.unravel_index(int(np.argmax(mag)), mag.shape)
+    node = np.array([d.origin[0] + i * d.spacing, d.origin[1] + j * d.spacing])
+    off = np.array([loc.canvas.origin_x, loc.canvas.origin_y]) if loc.canvas else 0.0
+    st = d.magnitude_stats()
+    return {"rms": st["rms"], "max": st["max"], "at": loc.at(section, node - off)}
+
+
+def _inliers(align) -> dict:
+    """Return ``{neighbour section: RANSAC inliers}`` from the aligner's statistics (empty if absent)."""
+    pairs = ((align.stats if align else {}).get("coarse") or {}).get("pairs") or {}
+    return {str(k): int(v["inliers"]) for k, v in pairs.items()
+            if isinstance(v, dict) and isinstance(v.get("inliers"), (int, float))}
+
+
+def _top(rows, key, n):
+    ok = [r for r in rows if key(r) is not None]
+    return sorted(ok, key=lambda r: -key(r))[:n]
+
+
+def _jsonable(x):
+    if isinstance(x, dict):
+        return {str(k): _jsonable(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_jsonable(v) for v in x]
+    if isinstance(x, (np.floating, float)):
+        return float(x) if np.isfinite(x) else None
+    if isinstance(x, np.integer):
+        return int(x)
+    if isinstance(x, np.bool_):
+        return bool(x)
+    return x
+
+
+def _summary(section, stitch, align, tiles, pairs, seam, loc, grid) -> dict:
+    """Return what the driver keeps of one section (a few kB whatever its tile count)."""
+    pos = None
+    if grid and loc.canvas is not None:
+        pos = section_positions(align, loc.canvas, np.asarray(grid, float)).round(3).tolist()
+    return {
+        "section": section, "stitched": stitch is not None, "aligned": align is not None,
+        "flags": list(stitch.flags if stitch else []) + list(align.flags if align else []),
+        "tiles": len(tiles), "pairs": sum(r["accepted"] is not None for r in pairs),
+        "pairs_accepted": sum(bool(p.accepted) for p in stitch.pairs) if stitch else 0,
+        "pairs_rejected": sum(not p.accepted for p in stitch.pairs) if stitch else 0,
+        "rejected": sum(r["accepted"] is False for r in pairs), "pair_rows": len(pairs),
+        "blank": bool(stitch is not None and stitch.tiles and all("blank" in t.flags for t in stitch.tiles)),
+        "missing": sum("missing_file" in r["flags"] for r in tiles),
+        "flagged_tiles": [r for r in tiles if r["flags"]][:1000], "flagged_count": sum(bool(r["flags"]) for r in tiles),
+        "stitch": seam, "stitcher_stats": dict(stitch.stats) if stitch else {},
+        "inliers": _inliers(align), "elastic": _elastic(section, align, loc),
+        "aligner_stats": dict(align.stats) if align else {},
+        "top_tiles": _top(tiles, lambda r: r["seam_median"], TOP_ROWS),
+        "top_pairs": _top(pairs, lambda r: r["residual"], TOP_ROWS),
+        "errors": [f"section {section} tile pair {r['a']}-{r['b']}: {r['error']}" for r in pairs if r["error"]],
+        "positions": pos,
+    }
+
+
+def seam_job(job: SectionJob) -> dict:
+    """Measure one section's seams and copied figures (or re-use them); return its summary (runs on a worker).
+
+    Named ``seam_job`` for the plan's task kinds (``report.seams``, :mod:`stackbuild.run.plan_measure`).
+    """
+    folder = BuildFolder(job.build)
+    store = folder.store
+    canvas = store.load_canvas()
+    fp = section_fingerprint(folder, job.section, job.settings, job.grid)
+    path = section_file(job.build, job.section)
+    if job.reuse and path.is_file():
+        try:
+            old = json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            old = {}
+        if old.get("fingerprint") == fp:
+            return {**old["summary"], "reused": True}
+    stitch = store.load_stitch(job.section)
+    align = store.load_alignment(job.section)
+    vol = {}
+    try:
+        vol = folder.load_state().get("config", {}).get("volume", {})
+    except Exception:  # a hand-made folder without build.json still gets a report
+        pass
+    loc = Locator(canvas, canvas.pixel_size_nm if canvas else float(vol.get("pixel_size", 4.0)),
+                  canvas.section_thickness_nm if canvas else float(vol.get("section_thickness", 40.0)))
+    if stitch is not None:
+        tiles, pairs, seam = stitch_rows(job.section, stitch, measure_seams(stitch, job.settings), align, loc)
+    else:
+        tiles, pairs, seam = [], [], summarize([]) | {"at": None}
+    summary = _jsonable(_summary(job.section, stitch, align, tiles, pairs, seam, loc, job.grid))
+    path.parent.mkdir(parents=True, exist_ok=True)
+    atomic_write_text(path, json.dumps({"fingerprint": fp, "summary": summary,
+                                        "tiles": _jsonable(tiles), "pairs": _jsonable(pairs)}) + "\n")
+    return {**summary, "reused": False}
+
+
+def stored_rows(build, section: int, kind: str) -> list[dict]:
+    """Return the stored ``"tiles"`` or ``"pairs"`` rows of one section (empty when not measured)."""
+    path = section_file(build, section)
+    if not path.is_file():
+        return []
+    return json.loads(path.read_text(encoding="utf-8")).get(kind) or []

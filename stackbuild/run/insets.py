@@ -7,6 +7,12 @@ pixels), the mosaic is registered to the section it lies on (scale and offset es
 multiscale image at its own pixel size whose physical coordinates are those of ``em`` (the same
 point of the tissue has the same nanometres in both). Records: ``transforms/insets/<name>/``
 (the stitch record and ``inset.json``, the registration), and ``qc/insets.csv`` (residuals).
+
+The pyramid is written one chunk per task (:func:`render_inset_block` for level 0, each task
+mapping its own chunk of the output grid to the inset mosaic; :func:`reduce_inset_block` for the
+levels above, each from the 2 x 2 chunks below it), so a task holds one chunk and the tiles it
+reads, whatever the inset's size. The registration still works on the whole inset reduced to the
+base pixel size and the base region around it (at 2x finer tiles, a quarter of the inset's pixels).
 """
 from __future__ import annotations
 

@@ -199,3 +199,17 @@ def test_gains_are_bounded_and_flagged_tiles_keep_their_intensity():
                                      max_gain_change=0.3)
     np.testing.assert_allclose(gain, [1 / 1.3, 1.3, 1.0], atol=1e-3)
     assert offset[2] == 0.0
+
+
+def test_tile_percentiles_from_a_histogram_equal_numpy_percentile_bit_for_bit():
+    from stackbuild.stitch.inspect import percentiles
+    rng = np.random.default_rng(11)
+    for k in range(300):
+        dtype = (np.uint8, np.uint16)[k % 2]
+        top = int(rng.integers(1, np.iinfo(dtype).max))
+        values = rng.integers(0, top, int(rng.integers(1, 3000)), dtype=dtype, endpoint=True)
+        q = [1, 50, 99] if k % 3 else [0, *rng.uniform(0, 100, 4), 100]
+        # Reference: numpy.percentile (linear method) of the float32 pixels, as tile_stats used to call it.
+        expect = np.percentile(values.astype(np.float32), q)
+        got = percentiles(values, q)
+        assert got.dtype == expect.dtype and np.array_equal(got, expect), (dtype, values.size, q)

@@ -126,6 +126,35 @@ def _pile_up(image: np.ndarray) -> tuple[float, float]:
     return float(top), float(bottom)
 
 
+def percentiles(values: np.ndarray, q) -> np.ndarray:
+    """Return ``numpy.percentile(values.astype(np.float32), q)`` (linear method), bit for bit, faster for small integers.
+
+    For unsigned integers of up to 16 bits the order statistics are read from a
+    histogram (:func:`numpy.bincount`) instead of partitioning a float copy; the
+    interpolation between them is numpy's own (``_lerp`` of NumPy 2: ``a + (b - a) * g``,
+    or ``b - (b - a) * (1 - g)`` from ``g >= 0.5``), in the same types, so the result
+    is identical. Other types go to :func:`numpy.percentile`.
+    """
+    values = np.asarray(values)
+    if values.dtype.kind != "u" or values.dtype.itemsize > 2 or values.size == 0:
+        return np.percentile(values.astype(np.float32), q)
+    counts = np.bincount(values.ravel())
+    n = values.size
+    virtual = (n - 1) * np.true_divide(np.asanyarray(q), 100)
+    prev = np.floor(virtual)
+    nxt = prev + 1
+    prev[virtual >= n - 1] = nxt[virtual >= n - 1] = n - 1
+    prev[virtual < 0] = nxt[virtual < 0] = 0
+    gamma = np.asanyarray(virtual - prev)
+    cum = np.cumsum(counts)
+    a = np.searchsorted(cum, prev.astype(np.intp), side="right").astype(np.float32)
+    b = np.searchsorted(cum, nxt.astype(np.intp), side="right").astype(np.float32)
+    diff = b - a
+    out = np.add(a, diff * gamma)
+    np.subtract(b, diff * (1 - gamma), out=out, where=gamma >= 0.5)
+    return out
+
+
 def tile_stats(image: np.ndarray) -> dict:
     """Return the statistics of one raw tile, in its own grey levels (any bit depth or range).
 
@@ -151,8 +180,8 @@ def tile_stats(image: np.ndarray) -> dict:
     if image.ndim != 2:
         raise ValueError(f"tile must be 2-D, got shape {image.shape}")
     img = image.astype(np.float32)
-    sub = img[::4, ::4] if img.size > 1 << 20 else img
-    p01, median, p99 = (float(v) for v in np.percentile(sub, [1, 50, 99]))
+    sub = image[::4, ::4] if image.size > 1 << 20 else image
+    p01, median, p99 = (float(v) for v in percentiles(sub, [1, 50, 99]))
     noise = pixel_noise(img)
     contrast = robust_contrast(img)
     top, bottom = _pile_up(image)

@@ -19,6 +19,13 @@ does; by default the tiles come from memory after the first run, which leaves
 the floor with almost no reading and is the harshest case for the ratio.
 
 Targets: render + pyramid within 2x the I/O floor; a window within 0.5 s.
+
+With ``--reads TILE`` (e.g. 2048 or 4096) it instead renders one section of 3 x 3
+tiles of ``TILE`` px (slightly rotated, so regions meet tiles at a slant) on the
+build's own LocalCluster of 2 worker processes, once with uncompressed tiles and
+once with zlib-compressed ones, and prints how many times each tile's pixels were
+read (pixels decoded by all workers / pixels of all tiles; 1.0 is reading each
+tile once) and the largest worker's peak resident size.
 """
 from __future__ import annotations
 
@@ -98,7 +105,12 @@ def main(argv=None) -> None:
     ap.add_argument("--repeat", type=int, default=4, help="alternating runs of render and floor (default 4)")
     ap.add_argument("--cold", action="store_true",
                     help="drop the page cache before every run (root only), so tiles are read from disk")
+    ap.add_argument("--reads", type=int, metavar="TILE",
+                    help="count reads per tile rendering 3 x 3 tiles of TILE px on 2 worker processes")
     args = ap.parse_args(argv)
+    if args.reads:
+        _reads_per_tile(args.reads, args.keep)
+        return
     n_sections, grid = (4, 6) if args.full else (4, 4)
     root = args.keep or Path(tempfile.mkdtemp(prefix="bench_render_"))
     settings = RenderSettings()
@@ -150,6 +162,43 @@ def _measure(folder, settings, args) -> None:
     times = _windows(folder)
     print(f"random 1024x1024 lazy window: cold {times[0]:.3f} s, median {statistics.median(times):.3f} s, "
           f"max {max(times):.3f} s (target <= 0.5 s)")
+
+
+def _worker_reads() -> tuple[dict, int]:
+    """On a worker: the pixels it read per tile file, and its peak resident size (bytes)."""
+    import resource
+
+    from stackbuild import tiles
+    return dict(tiles.PIXELS_READ), resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+def _reads_per_tile(tile: int, keep: Path | None) -> None:
+    """Render 3 x 3 tiles of ``tile`` px on 2 worker processes; print reads per tile, uncompressed and compressed."""
+    from stackbuild.run.cluster import client_mapper, dask_client
+
+    settings = RenderSettings()
+    grid, overlap = 3, tile // 12
+    print(f"one section of {grid}x{grid} tiles of {tile}x{tile} px (overlap {overlap} px, rotated 0.3 deg); "
+          f"chunk {settings.chunk}, shard {settings.chunk * settings.shard} px; 2 worker processes x 1 thread")
+    for label, kwargs in (("uncompressed", {}), ("zlib", {"compression": "zlib"})):
+        root = (keep / label) if keep else Path(tempfile.mkdtemp(prefix="bench_reads_"))
+        centre = (grid * (tile - overlap) + overlap) / 2
+        folder = make_build(root, n_sections=1, grid=(grid, grid), tile=(tile, tile), overlap=overlap,
+                            affines={0: Affine2D.similarity(1.0, 0.005, 3.0, -2.0, center=(centre, centre))},
+                            settings=settings, tiff_kwargs=kwargs)
+        with dask_client(2) as client:
+            t0 = time.perf_counter()
+            render_volume(folder.root, settings, overwrite=True, mapper=client_mapper(client))
+            wall = time.perf_counter() - t0
+            got = client.run(_worker_reads)
+        pixels = sum(sum(r.values()) for r, _ in got.values())
+        files = {p for r, _ in got.values() for p in r}
+        peak = max(m for _, m in got.values()) / 2 ** 20
+        print(f"  {label:12s}: reads per tile {pixels / (grid * grid * tile * tile):.2f} "
+              f"({len(files)} of {grid * grid} tiles read), largest worker peak {peak:.0f} MB, "
+              f"render {wall:.1f} s")
+        if keep is None:
+            shutil.rmtree(root, ignore_errors=True)
 
 
 if __name__ == "__main__":

@@ -345,7 +345,10 @@ def _cmd_channels(args) -> int:
                          "CHANNELS_CSV)", file=build.root)
     with dask_client(args.workers, args.scheduler) as client:
         out = stages.channels_stage(build, client_mapper(client, ProgressBar("channels", not args.quiet)))
-    _say(f"registered {len(out)} channel image(s) into {build.store.root}")
+    for line in out.get("failed", ()):
+        print(f"stackbuild: warning: {line}", file=sys.stderr)
+    _say(f"registered {out['registered']} channel image(s) into {build.store.root}"
+         + (f"; {len(out['failed'])} rejected (their marker planes stay empty)" if out.get("failed") else ""))
     return EXIT_OK
 
 

@@ -62,19 +62,25 @@ def _finished_replacement(build: Path, tiles: Path):
     return new
 
 
-def test_finished_replacement_is_swapped_in_and_a_swap_killed_halfway_is_finished(build_copy, tiny_data, tmp_path,
-                                                                                  monkeypatch):
+def test_finished_replacement_is_swapped_in_and_a_swap_killed_halfway_is_finished(tmp_path, monkeypatch):
+    from stackbuild.render.write import render_volume
     from stackbuild.run import start
     from stackbuild.run.lock import build_lock
 
-    pristine = tmp_path / "pristine"
-    shutil.copytree(build_copy, pristine)
+    from render_builders import SMALL, make_build
+
+    pristine = make_build(tmp_path / "src", n_sections=2, settings=SMALL).root  # a small finished build
+    render_volume(pristine, SMALL)
+    (pristine / "qc").mkdir()
+    (pristine / "qc" / "metrics.json").write_text("{}\n")
+    tiles = tmp_path / "src" / "tiles.csv"
+    build_copy = tmp_path / "b"
     real = start.os.replace
     k = 0
     while True:  # die at the k-th rename of the swap, for every k, until the swap runs through
-        shutil.rmtree(build_copy)
+        shutil.rmtree(build_copy, ignore_errors=True)
         shutil.copytree(pristine, build_copy)
-        new = _finished_replacement(build_copy, tiny_data / "tiles.csv")
+        new = _finished_replacement(build_copy, tiles)
         want = {n: h for n, h in _digest(new.root).items() if not n.startswith("scratch")}
         old = _digest(build_copy)
         calls = []

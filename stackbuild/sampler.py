@@ -215,9 +215,9 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
             r_a, r_b = _index_range(sub[:, 1].min(), sub[:, 3].max(), cy0, scale, height)
             xs = cx0 + scale * np.arange(c_a, c_b, dtype=np.float64)
             ys = cy0 + scale * np.arange(r_a, r_b, dtype=np.float64)
-            sx, sy = alignment.aligned_to_section_grid(xs, ys)
+            sx, sy, ref = section_grid(alignment, xs, ys)
             for i in hits:
-                _blend_tile(tiles, stitch.tiles[i], boxes[i], sx, sy, (c_a, r_a, cx0, cy0),
+                _blend_tile(tiles, stitch.tiles[i], boxes[i], sx, sy, ref, (c_a, r_a, cx0, cy0),
                             scale, _INTERP[order], acc[:, r_a:r_b, c_a:c_b])
         else:
             m = np.eye(2, 3) if alignment is None else alignment.affine.matrix
@@ -372,8 +372,61 @@ def _accumulate(acc: np.ndarray, val: np.ndarray, w: np.ndarray) -> None:
     acc[1] += w
 
 
-def _blend_tile(tiles, t, box, sx, sy, grid, scale, flag, acc) -> None:
-    """Add one tile's value and weight, resampled at section points ``(sx, sy)``, to ``acc`` (a view)."""
+def _axis_weights(coords: np.ndarray, origin: float, spacing: float, n: int):
+    """Return the node index below each coordinate and the fraction towards the next, clamped to the nodes.
+
+    The same rule as :meth:`stackbuild.transforms.DisplacementField.displacement_grid`.
+    """
+    g = np.clip((coords - origin) / spacing, 0, n - 1)
+    i = np.minimum(np.floor(g).astype(np.intp), max(n - 2, 0))
+    return i, np.minimum(i + 1, n - 1), (g - i).astype(np.float32)
+
+
+def section_grid(alignment: SectionAlignment, xs: np.ndarray, ys: np.ndarray):
+    """Return the section-frame points of the aligned grid ``xs`` x ``ys`` as float32 offsets from a reference point.
+
+    Returns ``(sx, sy, (rx, ry))``: the points are ``(rx + sx, ry + sy)``, shape
+    ``(len(ys), len(xs))``, the same points as
+    :meth:`~stackbuild.transforms.SectionAlignment.aligned_to_section_grid` (float rounding
+    apart), where ``(rx, ry)`` is the whole pixel nearest the grid's first point, so the
+    offsets stay small and float32 keeps them to well under 1/32 px.
+
+    Notes
+    -----
+    The affine ``A`` is linear, so ``A (p + d(p))`` is ``A p`` plus the bilinear
+    interpolation of the nodes ``A_lin d`` (a linear map of bilinearly interpolated
+    vectors is the bilinear interpolation of the mapped vectors). The nodes are mapped
+    once, interpolated along x for every node row together with the per-column part of
+    ``A p``, and the full grid is made with one weighted sum of two gathered rows per
+    output row plus the per-row part: a few passes over float32 instead of float64
+    temporaries of the whole grid.
+    """
+    m = alignment.affine.matrix
+    x0, y0 = float(xs[0]), float(ys[0])
+    ref = (round(m[0, 0] * x0 + m[0, 1] * y0 + m[0, 2]), round(m[1, 0] * x0 + m[1, 1] * y0 + m[1, 2]))
+    dxs, dys = xs - x0, ys - y0
+    f = alignment.displacement
+    ny, nx = f.vectors.shape[:2]
+    ix, ix1, fx = _axis_weights(xs, f.origin[0], f.spacing, nx)
+    iy, iy1, fy = _axis_weights(ys, f.origin[1], f.spacing, ny)
+    v = f.vectors.astype(np.float64)
+    out = []
+    for k in range(2):
+        nodes = m[k, 0] * v[..., 0] + m[k, 1] * v[..., 1]
+        rows = nodes[:, ix] * (1 - fx) + nodes[:, ix1] * fx + m[k, 0] * dxs
+        rows = rows.astype(np.float32)
+        lo = np.take(rows, iy, axis=0)
+        lo *= (1 - fy)[:, None]
+        hi = np.take(rows, iy1, axis=0)
+        hi *= fy[:, None]
+        lo += hi
+        lo += (m[k, 1] * dys + (m[k, 0] * x0 + m[k, 1] * y0 + m[k, 2] - ref[k])).astype(np.float32)[:, None]
+        out.append(lo)
+    return out[0], out[1], ref
+
+
+def _blend_tile(tiles, t, box, sx, sy, ref, grid, scale, flag, acc) -> None:
+    """Add one tile's value and weight, resampled at section points ``ref + (sx, sy)``, to ``acc`` (a view)."""
     c_a, r_a, cx0, cy0 = grid
     n_r, n_c = sx.shape
     a, b = _index_range(box[0], box[2], cx0 + scale * c_a, scale, n_c)
@@ -385,8 +438,9 @@ def _blend_tile(tiles, t, box, sx, sy, grid, scale, flag, acc) -> None:
     r0 = c0 = 0
     if getattr(tiles, "windows", False):
         # + 1 after dividing: element [j + 1, k + 1] of the prepared tile is its pixel (k, j).
-        window = _window((by.min() - t.y - half) / scale + 1, (by.max() - t.y - half) / scale + 1,
-                         (bx.min() - t.x - half) / scale + 1, (bx.max() - t.x - half) / scale + 1, t, scale)
+        oy, ox = ref[1] - t.y - half, ref[0] - t.x - half
+        window = _window((float(by.min()) + oy) / scale + 1, (float(by.max()) + oy) / scale + 1,
+                         (float(bx.min()) + ox) / scale + 1, (float(bx.max()) + ox) / scale + 1, t, scale)
         if window is None:
             return
         r0, c0 = window[0], window[2]
@@ -396,8 +450,8 @@ def _blend_tile(tiles, t, box, sx, sy, grid, scale, flag, acc) -> None:
     mx = np.empty((d - c, b - a), np.float32)
     my = np.empty((d - c, b - a), np.float32)
     # + scale before dividing: element [j + 1, k + 1] of the prepared tile is its pixel (k, j).
-    np.subtract(bx, t.x + half - scale + c0 * scale, out=mx, casting="unsafe")
-    np.subtract(by, t.y + half - scale + r0 * scale, out=my, casting="unsafe")
+    np.subtract(bx, t.x + half - scale + c0 * scale - ref[0], out=mx, casting="unsafe")
+    np.subtract(by, t.y + half - scale + r0 * scale - ref[1], out=my, casting="unsafe")
     if scale != 1:
         mx /= np.float32(scale)
         my /= np.float32(scale)

@@ -141,6 +141,20 @@ def test_overwrite_with_a_tile_gone_leaves_the_old_volume_byte_identical(tmp_pat
     assert _digest(folder.root) == before  # volume, records and build.json untouched
 
 
+def test_render_with_a_marker_image_gone_is_refused_before_the_em_is_touched(build_copy, capsys):
+    # Before: the EM was rendered again and swapped in, then the marker pyramid refused (exit 2, folder changed).
+    record = sorted((build_copy / "transforms" / "sections").glob("*/channels.json"))[-1]
+    env = json.loads(record.read_text())
+    for rec in env["record"]["channels"].values():  # the record names an image that is gone (shared data kept)
+        rec["path"] = str(build_copy.parent / "gone" / "marker.tif")
+    record.write_text(json.dumps(env))
+    before = _digest(build_copy)
+    capsys.readouterr()
+    assert main(["render", str(build_copy), "--overwrite", "--quiet", "--workers", "1"]) == 2
+    assert "marker.tif" in _one_line(capsys)
+    assert _digest(build_copy) == before  # EM, markers, records and build.json untouched
+
+
 def test_overwrite_failing_mid_render_leaves_the_old_volume_byte_identical(tmp_path, monkeypatch):
     from stackbuild.render import pyramid
     from stackbuild.render.write import render_volume

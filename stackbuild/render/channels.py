@@ -209,6 +209,18 @@ def read_marker(path: str, section: int) -> np.ndarray:
                          section=section) from None
 
 
+def check_marker_images(folder, table: dict | None = None) -> None:
+    """Raise :class:`InputError` naming the first marker image a render would read that is gone or unreadable.
+
+    Only headers are read. ``render`` calls it before it writes the EM, so a marker image that is
+    gone refuses the whole command before any output is touched.
+    """
+    for recs in (channel_table(folder) if table is None else table).values():
+        for rec in recs.values():
+            if _renders(rec):
+                image_header(Path(rec["path"]))
+
+
 def render_channels(build_dir, render_settings, *, overwrite: bool = False, progress=None, mapper=None) -> dict:
     """Write every registered marker channel of a build as OME-Zarr 0.5 beside the EM; return facts.
 
@@ -249,10 +261,7 @@ def render_channels(build_dir, render_settings, *, overwrite: bool = False, prog
         raise InputError("no canvas stored; run the render stage before rendering channels",
                          file=folder.store.root)
     table = channel_table(folder)
-    for name, recs in table.items():  # every input checked before any output is touched
-        for s, rec in recs.items():
-            if _renders(rec):
-                image_header(Path(rec["path"]))
+    check_marker_images(folder, table)  # every input checked before any output is touched
     zarr.open_group(str(folder.volume_path), mode="a", zarr_format=3).update_attributes(root_attrs())
     if table:
         zarr.open_group(str(folder.channels_path), mode="a", zarr_format=3)

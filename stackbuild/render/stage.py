@@ -8,15 +8,22 @@ pyramids beside it, in the same physical space.
 from __future__ import annotations
 
 from ..folder import BuildFolder
-from .channels import render_channels
+from .channels import check_marker_images, render_channels
 from .settings import RenderSettings
 from .write import RenderJob, prepare_render, write_render
 
 
 def prepare(folder: BuildFolder, settings: RenderSettings, *, planes: list[int] | None = None,
             resume: bool = False, overwrite: bool = False) -> RenderJob:
-    """Return the render job of ``folder``: the canvas and the planes to write (nothing is written)."""
-    return prepare_render(folder.root, settings, planes=planes, overwrite=overwrite, resume=resume)
+    """Return the render job of ``folder``: the canvas and the planes to write (nothing is written).
+
+    The marker images the marker pyramids will read are checked here too, so a render that
+    would fail at the markers is refused before the EM is written.
+    """
+    job = prepare_render(folder.root, settings, planes=planes, overwrite=overwrite, resume=resume)
+    if folder.load_state().get("channels"):
+        check_marker_images(folder)
+    return job
 
 
 def run(folder: BuildFolder, settings: RenderSettings, *, mapper=None, progress=None,

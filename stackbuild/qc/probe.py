@@ -28,8 +28,9 @@ class RegionJob:
     written: bool
     max_factor: float
     box: tuple[int, int, int, int]          # x0, y0, x1, y1 of block centres, level pixels
-    z: tuple[int, ...]                      # present planes, increasing
+    z: tuple[int, ...]                      # present planes measured, increasing
     settings: ReportSettings
+    stack: tuple[int, ...] = ()             # every present plane (default z): the whole-stack line
 
 
 def probe_geometry(source: PlaneSource, settings: ReportSettings, width0: float, height0: float):
@@ -116,7 +117,7 @@ def probe_region(job: RegionJob) -> dict:
     else:
         shifts_arr = np.stack(shifts)
     jit = block_jitter(np.asarray(zs, float), np.asarray(la, int), np.asarray(lb, int), shifts_arr,
-                       window=st.slow_window) if la else None
+                       window=st.slow_window, stack=np.asarray(job.stack or zs, float)) if la else None
     if jit is not None and st.probe_neighbourhood > 1:
         jit.jitter = _spatial_median(jit.jitter, gx.shape, st.probe_neighbourhood)
     pts0 = source.to_level0(pts)
@@ -251,7 +252,8 @@ def measure_error(build_dir, source: PlaneSource, present: list[int], settings: 
         runs = [list(present)] if present else []
     else:
         runs = context_runs(changed, present, probe_reach(settings))
-    jobs = [RegionJob(str(build_dir), written, max_factor, box, tuple(run), settings) for run in runs for box in boxes]
+    jobs = [RegionJob(str(build_dir), written, max_factor, box, tuple(run), settings, tuple(present))
+            for run in runs for box in boxes]
     new = list(mapper(probe_region, jobs))
     by_box: dict[int, list[dict]] = {}
     for k, r in enumerate(new):

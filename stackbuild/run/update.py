@@ -209,12 +209,16 @@ def _predicted_shards(build: BuildFolder, old: TileManifest, new: TileManifest, 
     return out
 
 
-def _totals(build: BuildFolder) -> dict:
+def _metrics(build: BuildFolder) -> dict:
     path = build.qc_dir / "metrics.json"
     try:
-        return json.loads(path.read_text(encoding="utf-8")).get("totals", {})
+        return json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError):
         return {}
+
+
+def _totals(build: BuildFolder) -> dict:
+    return _metrics(build).get("totals", {})
 
 
 # -------------------------------------------------------------------- plan
@@ -551,7 +555,11 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
         t0 = time.monotonic()
         verdict = stages.report_stage(build, fail_on=fail_on, progress=mappers.bar("report"))
         seconds["report"] = round(time.monotonic() - t0, 2)
-    plan.facts["totals_after"] = _totals(build)
+    # The report re-measures only sections and planes whose inputs changed (qc/measured keeps the rest).
+    doc = _metrics(build)
+    plan.facts["totals_after"] = doc.get("totals", {})
+    plan.facts["report"] = {"sections_reused": doc.get("reused", {}).get("sections"),
+                            "sections": len(doc.get("sections", []) or [])}
     plan.facts["verdict"] = {"passed": verdict.passed, "failures": list(verdict.failures)}
     plan.status = "done"
     save_plan(build.root, plan)
@@ -694,6 +702,10 @@ def summary_lines(plan: UpdatePlan, verdict) -> list[str]:
     for key in ("stitch.rms", "stitch.p95", "align.rms", "align.p95"):
         if key in before or key in after:
             lines.append(f"  {key}: {_num(before.get(key))} -> {_num(after.get(key))} px")
+    rep = f.get("report", {})
+    if rep.get("sections_reused") is not None:
+        lines.append(f"  report: {rep['sections'] - rep['sections_reused']} of {rep['sections']} section(s) measured "
+                     "again, the others' measurements kept (their inputs did not change)")
     if verdict is not None:
         lines.append("  report: " + ("PASSED" if verdict.passed else "FAILED: " + "; ".join(verdict.failures)))
     return lines

@@ -30,6 +30,7 @@ def build_copy(tiny_build, tmp_path) -> Path:
 
 
 def test_build_overwrite_leaves_the_old_build_byte_identical_until_the_new_one_is_complete(build_copy, tiny_data):
+    from stackbuild.errors import InputError
     from stackbuild.run import stages
     from stackbuild.run.cluster import serial_mapper
     from stackbuild.run.start import start_build
@@ -40,7 +41,10 @@ def test_build_overwrite_leaves_the_old_build_byte_identical_until_the_new_one_i
     stages.stitch_stage(new, serial_mapper())  # the new build's first stage writes its records...
     assert new.store.sections_with("stitch")
     assert _digest(build_copy) == before  # ...and the old build is still whole: killed here, nothing is lost
-    # 'build --resume' continues the replacement, not the old build; '--overwrite' starts it again.
+    # Neither flag: refused, naming the unfinished replacement. 'build --resume' continues the
+    # replacement, not the old build; '--overwrite' starts it again.
+    with pytest.raises(InputError, match="unfinished replacement"):
+        start_build(build_copy, tiny_data / "tiles.csv")
     again = start_build(build_copy, tiny_data / "tiles.csv", resume=True)
     assert again.root == new.root and again.store.sections_with("stitch")
     fresh = start_build(build_copy, tiny_data / "tiles.csv", channels=tiny_data / "channels.csv", overwrite=True)

@@ -112,6 +112,10 @@ def start_build(out, tiles, *, channels=None, landmarks=None, config=None, pixel
                 build.update_state(landmarks=str(landmarks))
             return build
         if not overwrite:
+            if build.replacement.exists():
+                raise InputError("already holds a build and an unfinished replacement of it (an interrupted "
+                                 f"--overwrite, in {build.replacement.root.name}); pass --resume to continue "
+                                 "the replacement or --overwrite to start it again", file=build.root)
             raise InputError("already holds a build; pass --resume to continue it or --overwrite "
                              "to replace it", file=build.root)
         # The old build stays whole until its replacement is complete (see finish_build);

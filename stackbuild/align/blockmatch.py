@@ -19,6 +19,9 @@ from scipy import fft as sfft
 
 #: blocks handled per batch; bounds the working memory of one call (common practice, no source)
 _BATCH = 256
+#: ... and block matching takes as many blocks per batch as hold this many pixels (256 blocks of
+#: 75 px; smaller blocks come in larger batches, so the per-batch overhead does not dominate)
+_BATCH_PIXELS = 256 * 75 * 75
 #: sub-pixel refinement: upsampling factor and half-width (pixels) of the refined neighbourhood
 _UPSAMPLE = 16
 _REFINE_HALF = 0.75
@@ -309,29 +312,35 @@ def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power, subpixel=True):
     top = surf.reshape(len(f), -1).max(1)
     rival = _rival(surf, r, c)
     ok = (r > 0) & (r < k - 1) & (c > 0) & (c < k - 1)                 # an edge peak may lie beyond
-    # pass 2: the same surface evaluated between pixels about that peak (upsampled DFT of the
-    # cross-power spectrum moved by the whole-pixel shift); no new transform
     whole = np.column_stack([r - ms, c - ms]).astype(float)          # (dy, dx)
-    ey, ex = _ramps(whole, p)
-    sub, height = _refine(cross * ey * ex, p)
-    est = whole + sub
     if subpixel:
-        # pass 3: cut the moving block again at that shift (whole pixels by the cut, the rest by a
-        # Fourier shift of a wider cut, cropped) so the window, the same on both sides, sees the
-        # same content; the small shift measured there is free of the window's pull toward zero
+        # pass 2: cut the moving block again at the whole-pixel shift, so the window (the same on
+        # both sides) sees nearly the same content, and refine the peak by upsampled DFT
+        dy, dx = r - ms, c - ms
+        m2 = _filled(_patches(m_img, xy[:, 0] - half + dx, xy[:, 1] - half + dy, p))
+        m2_spec = b.spectrum(m2)
+        sub, height = _refine(b.cross(m2_spec), p)
+        est = whole + sub
+        # pass 3: move the moving block by that sub-pixel shift too (whole pixels by the cut, the
+        # rest by a Fourier shift of a wider cut, cropped) and measure what is left: the window's
+        # small pull toward no shift, removed
         cut = np.rint(est).astype(int)
         _, q, rim = _sizes(hs, ms)
         wide = _patches(m_img, xy[:, 0] - half + cut[:, 1] - rim, xy[:, 1] - half + cut[:, 0] - rim, q)
         m3 = _subpixel_moved(_filled(wide), est - cut)[:, rim:rim + p, rim:rim + p]
-        m_spec = b.spectrum(m3)
-        rest, height = _refine(b.cross(m_spec), p)
+        rest, height = _refine(b.cross(b.spectrum(m3)), p)
         est = est + rest
-        ok &= (np.abs(rest) < 1.0).all(axis=1)
-        mg = m_spec * b.band
+        sub = sub + rest
+        mg = m2_spec * b.band
     else:
-        # the moving block's spectrum brought to the whole-pixel shift (circularly) for the NCC
+        # the same surface evaluated between pixels about that peak (upsampled DFT of the
+        # cross-power spectrum moved by the whole-pixel shift; no new transform), and the moving
+        # block's spectrum brought to that shift (circularly) for the NCC
+        ey, ex = _ramps(whole, p)
+        sub, height = _refine(cross * ey * ex, p)
+        est = whole + sub
         mg = m_spec * b.band * ey * ex
-    # NCC of the band-limited, windowed blocks at the match (for the trust threshold), by
+    # NCC of the band-limited, windowed blocks at the whole-pixel match (for the trust threshold), by
     # Parseval's theorem straight from the spectra
     fg = b.f_spec * b.band
     f_sums = _power_sums(fg)
@@ -381,10 +390,10 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
         magnitude to this power (1 = phase correlation, 0 = plain
         cross-correlation).
     subpixel : bool
-        False skips the third pass (the moving block cut again at the
-        match): the shift keeps the window's small pull toward zero, at
-        about half the cost; for coarse levels whose answer a finer level
-        refines.
+        False skips the second and third passes (the moving block cut again
+        at the match) and reads the sub-pixel peak off the first surface:
+        the shift keeps the window's small pull toward zero, at about half
+        the cost; for coarse levels whose answer a finer level refines.
 
     Returns
     -------
@@ -440,8 +449,9 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
     band = _band(p, float(fine_sigma), float(hs if coarse_sigma is None else coarse_sigma))
     taper = _taper(p, hs, p / 2.0)
     win = np.outer(taper, taper)
-    for a in range(0, inside.size, _BATCH):
-        sel = inside[a:a + _BATCH]
+    batch = max(16, _BATCH_PIXELS // (p * p))
+    for a in range(0, inside.size, batch):
+        sel = inside[a:a + batch]
         s, pk, c, g, i = _match_batch(f_img, m_img, xy[sel], p, hs, ms, win, band, float(power), bool(subpixel))
         out.shifts[sel], out.peak[sel], out.ncc[sel], out.margin[sel], out.isotropy[sel] = s, pk, c, g, i
     return out

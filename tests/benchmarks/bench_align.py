@@ -8,7 +8,9 @@ random-warp residual against slant kept. ``--memory`` builds standard stacks of 
 7x7 tiles of 1024 px and prints the align process's peak memory and CPU beside render's
 on the same volume, then the modelled production size (``--production`` alone).
 ``--accuracy [FAMILY/VARIANT ...] --seeds 0,1,2`` prints the identifiable residual
-(stackbuild.synth.residual) of align on the named synthetic stacks.
+(stackbuild.synth.residual) of align on the named synthetic stacks. ``--speed [FAMILY/VARIANT ...]``
+prints align CPU beside render CPU (level 0 from the tiles) on the same volume, each in its own
+process, and their ratio (issue #13 target: align <= 0.5 x render); default realistic/base seed 0.
 """
 from __future__ import annotations
 
@@ -227,6 +229,26 @@ def accuracy(cases, seeds, root="/tmp/bench_align_accuracy"):
                   f"{last:6.2f}   {flags or ''}", flush=True)
 
 
+def speed(cases, seeds, root="/tmp/bench_align_speed"):
+    """Print align CPU beside render CPU on the same volume (true tile positions), and their ratio."""
+    import shutil
+    from stackbuild.synth import generate
+    from stackbuild.synth.variants import variant_params
+    print("  case                   align CPU s  render CPU s  align/render   (each stage in its own process,"
+          " one thread; target <= 0.5)")
+    for family, variant in cases:
+        for seed in seeds:
+            base = Path(root) / f"{family}-{variant}-{seed}"
+            if not (base / "sample" / "tiles.csv").exists():
+                generate(base / "sample", variant_params(family, variant, seed))
+            shutil.rmtree(base / "build", ignore_errors=True)
+            _true_stitch(base / "sample", base / "build")
+            _, a_cpu, _ = _child(_align_only, str(base / "build"))
+            _, r_cpu, _ = _child(_render_only, str(base / "build"))
+            print(f"  {family + '/' + variant + '/' + str(seed):22s} {a_cpu:11.1f}  {r_cpu:12.1f}  "
+                  f"{a_cpu / r_cpu:12.2f}", flush=True)
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--full", action="store_true", help="4096 px working size (default 1024)")
@@ -236,7 +258,9 @@ def main():
     ap.add_argument("--production", action="store_true", help="modelled task memory at production size")
     ap.add_argument("--accuracy", nargs="*", metavar="FAMILY/VARIANT",
                     help="identifiable residual on synthetic stacks (default: every family and variant)")
-    ap.add_argument("--seeds", default="0,1,2", help="seeds for --accuracy")
+    ap.add_argument("--speed", nargs="*", metavar="FAMILY/VARIANT",
+                    help="align CPU beside render CPU on the same volume (default realistic/base)")
+    ap.add_argument("--seeds", default=None, help="seeds, e.g. 0,1,2 (default: 0,1,2 for --accuracy, 0 for --speed)")
     args = ap.parse_args()
     if args.tradeoff:
         tradeoff()
@@ -248,10 +272,14 @@ def main():
     if args.production:
         production()
         return
+    if args.speed is not None:
+        speed([tuple(c.split("/")) for c in args.speed] or [("realistic", "base")],
+              [int(x) for x in (args.seeds or "0").split(",")])
+        return
     if args.accuracy is not None:
         cases = [tuple(c.split("/")) for c in args.accuracy] or [
             (f, v) for f in ("standard", "realistic") for v in ("base", "dense", "small", "long")]
-        accuracy(cases, [int(x) for x in args.seeds.split(",")])
+        accuracy(cases, [int(x) for x in (args.seeds or "0,1,2").split(",")])
         return
     n = 4096 if args.full else 1024
     s = AlignSettings()

@@ -53,6 +53,8 @@ log = logging.getLogger(__name__)
 HOLD_WITHIN = 0.5
 #: An update replacing or adding at most this many tiles (and appending no section) runs in this process.
 IN_PROCESS_TILES = 16
+#: ... and its re-stitched sections hold at most this many tiles (every pair of theirs is registered again).
+IN_PROCESS_SECTION_TILES = 100
 
 
 @dataclass
@@ -249,6 +251,10 @@ def plan_update(build: BuildFolder, new_tiles: Path, *, append: bool = False, ho
                       canvas_before=None if canvas is None else canvas.to_json(),
                       totals_before=_totals(build), created=now(), realign_neighbours=realign_neighbours)
     plan.predicted = _predicted_shards(build, old, new, changed, added, canvas)
+    # The stitch step registers every pair of a touched section again: its size decides where to run.
+    touched = changed_sections(changed)
+    plan.facts["restitched_tiles"] = len({(t.section, t.tile) for t in list(old.tiles) + list(new.tiles)
+                                          if t.section in touched})
     return plan, new, text
 
 
@@ -263,6 +269,14 @@ def dry_run_lines(plan: UpdatePlan) -> list[str]:
         lines.append(f"  plane {z}: level-0 shards (row,col) {listed}")
     lines.append("  untouched sections keep their alignment unless the re-solve moves them more than "
                  f"{plan.hold_within:g} px; such sections would be rewritten too")
+    from .update_reach import SAME_CONTENT_NCC
+
+    lines.append("  a re-imaged section keeps its alignment without a re-solve when its new pixels show the volume's "
+                 f"old content (block shift <= {plan.hold_within:g} px, correlation >= {SAME_CONTENT_NCC:g}); else "
+                 "its window is solved again")
+    where = "in this process" if in_process(plan, None) else "on a Dask cluster (or --scheduler)"
+    lines.append(f"  would run {where} ({sum(len(v) for v in plan.replaced.values())} tile(s) replaced or added, "
+                 f"{plan.facts.get('restitched_tiles', 0)} tile(s) stitched again)")
     return lines
 
 
@@ -506,15 +520,22 @@ class _Mappers:
         return serial_mapper(bar) if self.client is None else client_mapper(self.client, bar)
 
 
+def changed_sections(replaced: dict) -> set[int]:
+    """Return the sections (numbers) of a plan's ``replaced`` mapping."""
+    return {int(s) for s in replaced}
+
+
 def in_process(plan: UpdatePlan, scheduler) -> bool:
     """Return True if the update is small enough to run in this process (no cluster is started).
 
-    Small: no appended section and at most :data:`IN_PROCESS_TILES` replaced or added tiles, so its
-    work is a few sections' stitch, a window of the alignment and a few shards, which take less
-    time than starting worker processes. A given ``scheduler`` is always used.
+    Small: no appended section, at most :data:`IN_PROCESS_TILES` replaced or added tiles and at
+    most :data:`IN_PROCESS_SECTION_TILES` tiles in the sections stitched again, so its work (those
+    sections' tile pairs, a few shards, the report's changed sections) takes less time than
+    starting worker processes. A given ``scheduler`` is always used.
     """
     return scheduler is None and not plan.added and \
-        sum(len(v) for v in plan.replaced.values()) <= IN_PROCESS_TILES
+        sum(len(v) for v in plan.replaced.values()) <= IN_PROCESS_TILES and \
+        plan.facts.get("restitched_tiles", 0) <= IN_PROCESS_SECTION_TILES
 
 
 @contextlib.contextmanager

@@ -241,3 +241,21 @@ def test_spatial_median_equals_scipy_generic_filter():
     ref[np.isnan(cube)] = np.nan
     np.testing.assert_allclose(_spatial_median(j, (6, 8), 3), ref.reshape(4, 48, 2), equal_nan=True)
 
+
+
+def test_worst_place_carries_its_raw_tile_and_stage_position(planted):
+    # Closed form: the raw tile pixel, placed by its record and carried through the section's stored
+    # alignment, lands on the reported output pixel (the records are the ground truth here).
+    root, doc, _ = planted
+    at = doc["worst"]["section_align"]["align_error_at"]
+    from stackbuild.transforms import TransformStore
+
+    store = TransformStore(root / "transforms")
+    st, al, canvas = store.load_stitch(at["section"]), store.load_alignment(at["section"]), store.load_canvas()
+    t = st.tile(at["tile"])
+    section_px = np.array([[t.x + at["tile_x"], t.y + at["tile_y"]]])
+    out = al.section_to_aligned(section_px)[0] - [canvas.origin_x, canvas.origin_y]
+    assert out == pytest.approx([at["x_px"], at["y_px"]], abs=0.05)
+    assert 0 <= at["tile_x"] < t.width and 0 <= at["tile_y"] < t.height
+    # the stage position of a tile pixel is the tile's stage position plus the pixel (transforms/locate.py)
+    assert [at["stage_x"], at["stage_y"]] == pytest.approx([t.stage_x + at["tile_x"], t.stage_y + at["tile_y"]], abs=0.02)

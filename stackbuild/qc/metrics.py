@@ -6,7 +6,10 @@ All errors and residuals are in full-resolution (level-0) pixels. Every place
 is given as a *location*: ``{"section", "z", "x_px", "y_px", "x_nm", "y_nm",
 "z_nm"}`` where ``x_px, y_px`` are level-0 output pixels (column, row of a
 plane of the volume), ``x_nm = x_px * pixel_size_nm``, ``y_nm`` likewise, and
-``z_nm = z * section_thickness_nm``. A residual summary is ``{"n", "rms",
+``z_nm = z * section_thickness_nm``. The worst places (``align_error_at``, ``stitch.at``) of
+the ``worst`` worst-aligned sections also carry ``tile``, ``tile_x``, ``tile_y`` (raw tile
+pixels) and ``stage_x``, ``stage_y`` (stage, full-resolution pixels), see
+:func:`stackbuild.transforms.locate.from_volume`. A residual summary is ``{"n", "rms",
 "median", "p95", "max", "at"}`` (all ``None`` when nothing was measured).
 
 ``schema_version``  int, 2.
@@ -333,6 +336,30 @@ def _mark_blank(sections: list[dict], sums: dict) -> None:
             r["flags"] = sorted(set(r["flags"]) | {"blank_section"})
 
 
+def _add_tiles(sections: list[dict], store, canvas, n: int) -> None:
+    """Give the worst places of the ``n`` worst-aligned sections their raw tile and stage position.
+
+    Adds ``tile``, ``tile_x``, ``tile_y`` (raw tile pixels) and ``stage_x``, ``stage_y``
+    (full-resolution stage pixels) to ``align_error_at`` and ``stitch.at``, through
+    :func:`stackbuild.transforms.locate.from_volume` (the tile that sees the point farthest
+    from its edges). Only these few sections' records are read.
+    """
+    from ..transforms.locate import from_volume
+
+    if canvas is None:
+        return
+    worst = sorted((r for r in sections if r["align_error_px"] is not None), key=lambda r: -r["align_error_px"])[:n]
+    for r in worst:
+        stitch, align = store.load_stitch(r["section"]), store.load_alignment(r["section"])
+        for at in (r["align_error_at"], r["stitch"].get("at")):
+            if not at or at.get("z") is None:
+                continue
+            loc = from_volume(at["z"], at["y_px"], at["x_px"], canvas, stitch, align)
+            at.update({k: (round(v, 2) if isinstance(v, float) else v)
+                       for k, v in (("tile", loc.tile), ("tile_x", loc.tile_x), ("tile_y", loc.tile_y),
+                                    ("stage_x", loc.stage_x), ("stage_y", loc.stage_y))})
+
+
 class _Records:
     """Section records read on demand (the driver never holds every section's tiles at once)."""
 
@@ -407,6 +434,7 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
         meas.straightened = _straightened(sums, canvas, present, grid)
     sections = _section_rows(secs, sums, meas, sc, settings)
     _mark_blank(sections, sums)
+    _add_tiles(sections, store, canvas, settings.worst)
     aligns = _Records(store.load_alignment, aligned)
     channels = _channel_rows(store, secs, aligns, sc)
     landmarks, notes = landmark_rows(folder, _Records(store.load_stitch, stitched), aligns, sc)

@@ -287,6 +287,8 @@ def _header(path: Path, manifest: Path | None = None, row: int | None = None):
             sizes = [tuple(p.shape) for p in tif.pages[:4]] if pages > 1 else []
     except InputError:
         raise
+    except OSError as exc:  # missing, unreadable: the system's reason, without the path said twice
+        raise InputError(f"{path} cannot be read ({exc.strerror or type(exc).__name__})", **where) from None
     except Exception as exc:  # tifffile raises many types for non-TIFF data
         raise InputError(f"{path} is not a readable TIFF image ({type(exc).__name__}: {exc})", **where) from None
     finally:

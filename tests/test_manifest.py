@@ -72,6 +72,17 @@ def test_path_that_is_not_an_image(tiles):
         read_tile_manifest(_write(tiles, "section,path,x,y\n0,t/notes.tif,0,0\n"))
 
 
+def test_missing_marker_image_names_its_path_once_with_the_reason(tiles):
+    from stackbuild.manifest import read_channel_manifest
+
+    path = tiles / "channels.csv"
+    path.write_text("section,channel,path,pixel_size,x,y\n0,ambrin,gone.tif,32,0,0\n")
+    with pytest.raises(InputError) as err:
+        read_channel_manifest(path)
+    message = str(err.value)
+    assert message.count("gone.tif") == 1 and "No such file" in message and f"{path}:2" in message
+
+
 @pytest.mark.parametrize("shape, dtype, expect", [
     ((8, 8, 3), np.uint8, "single-channel"),
     ((8, 8), np.float32, "8- or 16-bit"),

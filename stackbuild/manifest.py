@@ -274,6 +274,7 @@ def _header(path: Path, manifest: Path | None = None, row: int | None = None):
     the image (a thumbnail first, a stack of frames) cannot be guessed safely.
     """
     where = dict(file=manifest or path, row=row)
+    subject = f"{path} " if manifest else ""  # without a manifest the line already starts with the path
     quiet = logging.getLogger("tifffile")
     level = quiet.level
     quiet.setLevel(logging.CRITICAL)  # its complaints about a bad header are said once, below
@@ -288,9 +289,9 @@ def _header(path: Path, manifest: Path | None = None, row: int | None = None):
     except InputError:
         raise
     except OSError as exc:  # missing, unreadable: the system's reason, without the path said twice
-        raise InputError(f"{path} cannot be read ({exc.strerror or type(exc).__name__})", **where) from None
+        raise InputError(f"{subject}cannot be read ({exc.strerror or type(exc).__name__})", **where) from None
     except Exception as exc:  # tifffile raises many types for non-TIFF data
-        raise InputError(f"{path} is not a readable TIFF image ({type(exc).__name__}: {exc})", **where) from None
+        raise InputError(f"{subject}is not a readable TIFF image ({type(exc).__name__}: {exc})", **where) from None
     finally:
         quiet.setLevel(level)
     if pages > 1:

@@ -72,15 +72,13 @@ def test_path_that_is_not_an_image(tiles):
         read_tile_manifest(_write(tiles, "section,path,x,y\n0,t/notes.tif,0,0\n"))
 
 
-def test_missing_marker_image_names_its_path_once_with_the_reason(tiles):
-    from stackbuild.manifest import read_channel_manifest
+def test_image_that_cannot_be_read_is_named_once_with_the_reason(tiles):
+    from stackbuild.manifest import image_header
 
-    path = tiles / "channels.csv"
-    path.write_text("section,channel,path,pixel_size,x,y\n0,ambrin,gone.tif,32,0,0\n")
-    with pytest.raises(InputError) as err:
-        read_channel_manifest(path)
-    message = str(err.value)
-    assert message.count("gone.tif") == 1 and "No such file" in message and f"{path}:2" in message
+    (tiles / "t" / "folder.tif").mkdir()
+    with pytest.raises(InputError) as err:  # checked again at render time, with no manifest to name
+        image_header(tiles / "t" / "folder.tif")
+    assert str(err.value).count("folder.tif") == 1 and "cannot be read" in str(err.value)
 
 
 @pytest.mark.parametrize("shape, dtype, expect", [

@@ -171,6 +171,7 @@ def test_dry_run_lists_dirty_shards_and_writes_nothing(grid_build, grid_data, tm
     assert main(["update", str(work), "--tiles", str(manifest), "--dry-run", "--quiet"]) == 0
     out = capsys.readouterr().out
     assert "section 3: tiles r2c2" in out and "plane 3: level-0 shards" in out
+    assert "would run in this process (1 tile(s) replaced or added, 9 tile(s) stitched again)" in out
     assert _tree(work) == before
 
 

@@ -27,7 +27,7 @@ from dataclasses import asdict
 #: folder under ``DIR/qc`` holding the stored measurements
 MEASURED = "measured"
 #: bump when what a stored measurement holds or how it is measured changes (old files are then ignored)
-MEASURE_VERSION = 3
+MEASURE_VERSION = 4
 #: settings that change a section's seam measurement or its copied figures
 SECTION_KEYS = ("seam_spacing", "seam_half_size", "seam_max_shift", "seam_smooth", "min_block_ncc")
 #: settings that change the probe's sums

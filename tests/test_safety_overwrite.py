@@ -52,6 +52,24 @@ def test_build_overwrite_leaves_the_old_build_byte_identical_until_the_new_one_i
     assert _digest(build_copy) == before
 
 
+def test_update_and_added_markers_are_refused_while_a_replacement_is_unfinished(build_copy, tiny_data):
+    # A change to the old build now would be discarded, silently, when 'build --resume' swaps the
+    # replacement in; so both are refused with one line, and nothing changes.
+    from stackbuild.errors import InputError
+    from stackbuild.folder import BuildFolder
+    from stackbuild.run.markers import add_channels
+    from stackbuild.run.start import start_build
+    from stackbuild.run.update import update_build
+
+    start_build(build_copy, tiny_data / "tiles.csv", overwrite=True)
+    before = _digest(build_copy)
+    with pytest.raises(InputError, match="unfinished replacement"):
+        update_build(BuildFolder(build_copy), tiny_data / "tiles.csv")
+    with pytest.raises(InputError, match="unfinished replacement"):
+        add_channels(BuildFolder(build_copy), tiny_data / "channels.csv")
+    assert _digest(build_copy) == before
+
+
 def _finished_replacement(build: Path, tiles: Path):
     """Return a replacement of ``build`` made complete by hand (the old outputs, with one report file changed)."""
     from stackbuild.run.start import start_build

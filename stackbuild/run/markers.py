@@ -46,7 +46,9 @@ def add_channels(build: BuildFolder, channels: Path, *, workers=None, scheduler=
     from . import stages
     from .cluster import client_mapper, dask_client
     from .progress import ProgressBar
+    from .start import refuse_while_replaced
 
+    refuse_while_replaced(build, "channels --merge")
     new = read_channel_manifest(Path(channels).resolve())
     have = set(build.tile_manifest().sections)
     stray = next((e for e in new if e.section not in have), None)

@@ -148,6 +148,19 @@ def finish_build(build: BuildFolder) -> BuildFolder:
     return home
 
 
+def refuse_while_replaced(build: BuildFolder, command: str) -> None:
+    """Raise :class:`InputError` when ``build`` has an unfinished replacement (an interrupted ``--overwrite``).
+
+    A change made to the old build now (an update, added markers) would be thrown away, silently,
+    when ``build --resume`` finishes the replacement and swaps it in.
+    """
+    if build.replacement.exists() and not (build.replacement.root / SWAP_RECORD).exists():
+        raise InputError(f"{command}: this build has an unfinished replacement (an interrupted --overwrite, in "
+                         f"{build.replacement.root.name}) that would discard the change when it is finished; run "
+                         "'stackbuild build ... --resume' to finish it first, or delete "
+                         f"{build.replacement.root} to keep this build", file=build.root)
+
+
 def complete_replacement(folder: BuildFolder) -> bool:
     """Finish a swap of a finished replacement into ``folder``; return True if there was one to finish.
 

@@ -619,6 +619,9 @@ def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: b
     InputError
         Bad input, or a request that does not fit the state of the build; nothing is changed then.
     """
+    from .start import refuse_while_replaced
+
+    refuse_while_replaced(build, "update")
     pending = unfinished(build.root)
     if pending is not None and pending.status == "rolling_back":
         raise InputError(f"update {pending.number:04d} is being rolled back; run 'stackbuild update "

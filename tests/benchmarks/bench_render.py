@@ -165,11 +165,17 @@ def _measure(folder, settings, args) -> None:
 
 
 def _worker_reads() -> tuple[dict, int]:
-    """On a worker: the pixels it read per tile file, and its peak resident size (bytes)."""
-    import resource
+    """On a worker: the pixels it read per tile file, and its peak resident size (bytes).
 
+    The peak is ``VmHWM`` of ``/proc/self/status`` (Linux), not ``ru_maxrss``, which Linux
+    carries over ``exec`` from the process that started the worker (here the benchmark,
+    which has just made gigapixel mosaics).
+    """
     from stackbuild import tiles
-    return dict(tiles.PIXELS_READ), resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+    status = Path("/proc/self/status").read_text()
+    peak_kb = int(status.split("VmHWM:")[1].split()[0])
+    return dict(tiles.PIXELS_READ), peak_kb * 1024
 
 
 def _reads_per_tile(tile: int, keep: Path | None) -> None:

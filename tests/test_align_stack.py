@@ -154,3 +154,21 @@ def test_bad_input_is_flagged_not_crashed():
         align_sections(ArraySource({}), small_settings())
     with pytest.raises(InputError):
         align_sections(ArraySource(st.images), small_settings(neighbours=0))
+
+
+def test_coarse_scratch_holds_a_window_of_overviews_not_the_stack(tmp_path):
+    # Scratch is bounded by the window (region_sections, or 4 x neighbours), not by the number of
+    # sections (issue #15: scratch bounded by a region size). Counted: overview files on disk
+    # whenever a task starts. Rule of thumb, no source: this is the project's own bound.
+    st = make_stack(n=12, size=256, seed=3, offset=10.0, warp=0.0)
+    settings = small_settings(elastic=False, max_features=400, region_sections=3, neighbours=2)
+    seen = []
+
+    def counting_map(fn, items):
+        for item in items:
+            seen.append(len(list(tmp_path.glob("overview_*.npy"))))
+            yield fn(item)
+
+    align_sections(ArraySource(st.images), settings, mapper=counting_map, scratch=tmp_path)
+    window = max(settings.region_sections, 4 * settings.neighbours)
+    assert max(seen) <= window + settings.neighbours < len(st.images)

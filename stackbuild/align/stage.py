@@ -130,15 +130,33 @@ def _pairs(sections: list[int], neighbours: int) -> list[tuple[int, int]]:
 
 
 def _coarse(source, sections, settings, scratch, mapper, tick):
-    facts = list(mapper(features_job, [(source, z, settings, scratch) for z in sections]))
-    tick(len(sections))
-    by = {f["section"]: f for f in facts}
-    pairs = list(mapper(pair_job, [(scratch, by[a], by[b], settings)
-                                   for a, b in _pairs(sections, settings.neighbours)]))
-    tick(len(pairs))
+    """Return per-section feature facts, the matched pairs (in :func:`_pairs` order) and the affine solve.
+
+    Sections are taken in windows of ``max(region_sections, 4 * neighbours)``: their overviews are
+    made, the pairs ending in the window matched, and then the overviews (and feature files) of the
+    sections no later section can pair with are deleted, so scratch holds about a window of
+    overviews at a time, not one per section of the stack.
+    """
+    every = _pairs(sections, settings.neighbours)
+    order = {p: i for i, p in enumerate(every)}
+    window = max(settings.region_sections, 4 * settings.neighbours)
+    facts, pairs = {}, []
+    for i in range(0, len(sections), window):
+        new = sections[i:i + window]
+        for f in mapper(features_job, [(source, z, settings, scratch) for z in new]):
+            facts[f["section"]] = f
+        tick(len(new))
+        ready = [(a, b) for a, b in every if b in set(new)]
+        pairs += mapper(pair_job, [(scratch, facts[a], facts[b], settings) for a, b in ready])
+        tick(len(ready))
+        for z in facts:
+            if z + settings.neighbours <= new[-1]:  # every pair of z is matched
+                for name in (f"overview_{z}.npy", f"features_{z}.npz"):
+                    (Path(scratch) / name).unlink(missing_ok=True)
+    pairs.sort(key=lambda p: order[(p.a, p.b)])
     solved = solve_affines(sections, pairs, settings.model,
-                           outlier_floor=settings.ransac_threshold * max(f["scale"] for f in facts))
-    return {f["section"]: f for f in facts}, pairs, solved
+                           outlier_floor=settings.ransac_threshold * max(f["scale"] for f in facts.values()))
+    return facts, pairs, solved
 
 
 def _grid(source, affines: dict[int, Affine2D], settings: AlignSettings) -> Grid:

@@ -522,20 +522,6 @@ def _write_csv(path: Path, rows) -> Path:
     return path
 
 
-def _jsonable(x):
-    if isinstance(x, dict):
-        return {str(k): _jsonable(v) for k, v in x.items()}
-    if isinstance(x, (list, tuple)):
-        return [_jsonable(v) for v in x]
-    if isinstance(x, (np.floating, float)):
-        return float(x) if np.isfinite(x) else None
-    if isinstance(x, np.integer):
-        return int(x)
-    if isinstance(x, np.bool_):
-        return bool(x)
-    return x
-
-
 def block_rows(meas: Measurements) -> list[dict]:
     """Return the sampled probe blocks: plane, level-0 place, estimated error and apparent motion (px)."""
     return [row for r in meas.probe for row in r.get("sample", [])]
@@ -574,12 +560,13 @@ def write_metrics(doc: dict, qc_dir: str | Path, meas: Measurements | None = Non
     ``blocks_per_region``).
     """
     from ..transforms.store import atomic_write_text
+    from .sections import jsonable
 
     qc_dir = Path(qc_dir)
     qc_dir.mkdir(parents=True, exist_ok=True)
     path = qc_dir / "metrics.json"
     slim = {k: v for k, v in doc.items() if k not in ("tiles", "pairs")}
-    atomic_write_text(path, json.dumps(_jsonable(slim), indent=1, allow_nan=False) + "\n")
+    atomic_write_text(path, json.dumps(jsonable(slim), indent=1, allow_nan=False) + "\n")
     paths = [path]
     for name in ("tiles", "pairs"):
         rows = doc[name] if name in doc else (stored_rows(meas, name) if meas is not None else [])

@@ -141,11 +141,12 @@ def _top(rows, key, n):
     return sorted(ok, key=lambda r: -key(r))[:n]
 
 
-def _jsonable(x):
+def jsonable(x):
+    """Return ``x`` with numpy scalars as Python numbers, non-finite floats as None and keys as strings."""
     if isinstance(x, dict):
-        return {str(k): _jsonable(v) for k, v in x.items()}
+        return {str(k): jsonable(v) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
-        return [_jsonable(v) for v in x]
+        return [jsonable(v) for v in x]
     if isinstance(x, (np.floating, float)):
         return float(x) if np.isfinite(x) else None
     if isinstance(x, np.integer):
@@ -210,10 +211,10 @@ def seam_job(job: SectionJob) -> dict:
         tiles, pairs, seam = stitch_rows(job.section, stitch, measure_seams(stitch, job.settings), align, loc)
     else:
         tiles, pairs, seam = [], [], summarize([]) | {"at": None}
-    summary = _jsonable(_summary(job.section, stitch, align, tiles, pairs, seam, loc, job.grid))
+    summary = jsonable(_summary(job.section, stitch, align, tiles, pairs, seam, loc, job.grid))
     path.parent.mkdir(parents=True, exist_ok=True)
     atomic_write_text(path, json.dumps({"fingerprint": fp, "summary": summary,
-                                        "tiles": _jsonable(tiles), "pairs": _jsonable(pairs)}) + "\n")
+                                        "tiles": jsonable(tiles), "pairs": jsonable(pairs)}) + "\n")
     return {**summary, "reused": False}
 
 

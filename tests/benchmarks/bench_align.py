@@ -208,19 +208,12 @@ def production(section_px=130_000, n_sections=400, tile=4096):
 
 def accuracy(cases, seeds, root="/tmp/bench_align_accuracy"):
     """Print the identifiable residual (stackbuild.synth.residual) of align on named synthetic stacks."""
-    import shutil
     from stackbuild.align.stage import run_align
-    from stackbuild.synth import generate
     from stackbuild.synth.residual import identifiable_residual
-    from stackbuild.synth.variants import variant_params
     print("  case                     rms    p95    max   last   flags   (px; true tile positions)")
     for family, variant in cases:
         for seed in seeds:
-            base = Path(root) / f"{family}-{variant}-{seed}"
-            if not (base / "sample" / "tiles.csv").exists():
-                generate(base / "sample", variant_params(family, variant, seed))
-            shutil.rmtree(base / "build", ignore_errors=True)
-            _true_stitch(base / "sample", base / "build")
+            base = _fresh_case(root, family, variant, seed)
             al = run_align(base / "build", AlignSettings())
             r = identifiable_residual(base / "build", base / "sample")
             last = r.per_section[max(r.per_section)]["rms"]
@@ -229,20 +222,26 @@ def accuracy(cases, seeds, root="/tmp/bench_align_accuracy"):
                   f"{last:6.2f}   {flags or ''}", flush=True)
 
 
-def speed(cases, seeds, root="/tmp/bench_align_speed"):
-    """Print align CPU beside render CPU on the same volume (true tile positions), and their ratio."""
+def _fresh_case(root, family: str, variant: str, seed: int) -> Path:
+    """Return the folder of one synthetic case (made once) with a new build stitched at the true tile positions."""
     import shutil
     from stackbuild.synth import generate
     from stackbuild.synth.variants import variant_params
+    base = Path(root) / f"{family}-{variant}-{seed}"
+    if not (base / "sample" / "tiles.csv").exists():
+        generate(base / "sample", variant_params(family, variant, seed))
+    shutil.rmtree(base / "build", ignore_errors=True)
+    _true_stitch(base / "sample", base / "build")
+    return base
+
+
+def speed(cases, seeds, root="/tmp/bench_align_speed"):
+    """Print align CPU beside render CPU on the same volume (true tile positions), and their ratio."""
     print("  case                   align CPU s  render CPU s  align/render   (each stage in its own process,"
           " one thread; target <= 0.5)")
     for family, variant in cases:
         for seed in seeds:
-            base = Path(root) / f"{family}-{variant}-{seed}"
-            if not (base / "sample" / "tiles.csv").exists():
-                generate(base / "sample", variant_params(family, variant, seed))
-            shutil.rmtree(base / "build", ignore_errors=True)
-            _true_stitch(base / "sample", base / "build")
+            base = _fresh_case(root, family, variant, seed)
             _, a_cpu, _ = _child(_align_only, str(base / "build"))
             _, r_cpu, _ = _child(_render_only, str(base / "build"))
             print(f"  {family + '/' + variant + '/' + str(seed):22s} {a_cpu:11.1f}  {r_cpu:12.1f}  "

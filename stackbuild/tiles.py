@@ -77,7 +77,7 @@ def _plain_layout(path: str, size: int, mtime_ns: int):
     try:
         with tifffile.TiffFile(path) as tf:
             page = tf.pages[0]
-            if not page.is_memmappable or page.ndim != 2 or len(tf.pages) < 1:
+            if not page.is_memmappable or page.ndim != 2:
                 return None
             dt = np.dtype(tf.byteorder + page.dtype.str[1:])
             offset = int(page.dataoffsets[0])

@@ -21,8 +21,9 @@ A measurement whose fingerprint is unchanged is re-used as stored; nothing else 
 from __future__ import annotations
 
 import hashlib
-import json
 from dataclasses import asdict
+
+from ..render.fingerprint import digest
 
 #: folder under ``DIR/qc`` holding the stored measurements
 MEASURED = "measured"
@@ -34,10 +35,6 @@ SECTION_KEYS = ("seam_spacing", "seam_half_size", "seam_max_shift", "seam_smooth
 PROBE_KEYS = ("measure_scale", "align_p95", "probe_spacing", "probe_blocks", "probe_half_size", "probe_max_shift",
               "probe_reach", "probe_neighbourhood", "probe_fine_sigma", "probe_coarse_sigma",
               "probe_min_confidence", "probe_spans", "slow_window", "region_size", "blocks_per_region")
-
-
-def _digest(obj) -> str:
-    return hashlib.sha256(json.dumps(obj, sort_keys=True, default=str).encode()).hexdigest()
 
 
 def _file_digest(path) -> str | None:
@@ -55,7 +52,7 @@ def section_fingerprint(folder, section: int, settings, grid=()) -> str:
     d = store.section_dir(section)
     s = asdict(settings)
     canvas = store.load_canvas()
-    return _digest({"v": MEASURE_VERSION, "stitch": _file_digest(d / "stitch.json"),
+    return digest({"v": MEASURE_VERSION, "stitch": _file_digest(d / "stitch.json"),
                     "align": _file_digest(d / "align.json"), "parts": section_parts(store, section),
                     "canvas": canvas.to_json() if canvas else None,
                     "settings": {k: s[k] for k in SECTION_KEYS}, "grid": list(map(list, grid))})
@@ -91,7 +88,7 @@ def plane_fingerprints(folder, source, present: list[int], settings) -> dict[int
         if any(v is None for v in own):
             fps[z] = "unrecorded"
             continue
-        fps[z] = _digest({**base, "planes": dict(zip(map(str, near), own)), "present": near})
+        fps[z] = digest({**base, "planes": dict(zip(map(str, near), own)), "present": near})
     return fps
 
 

@@ -60,7 +60,8 @@ _SKIP_FLAGS = ("blank", "too_small")
 
 
 # ----------------------------------------------------------------- hashing
-def _digest(obj) -> str:
+def digest(obj) -> str:
+    """Return the SHA-256 of ``obj`` as canonical JSON (sorted keys, compact)."""
     text = json.dumps(obj, sort_keys=True, separators=(",", ":"), allow_nan=True, default=str)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
@@ -205,9 +206,9 @@ def em_fingerprints(store: TransformStore, canvas, settings, planes=None) -> dic
     for z in planes:
         s = canvas.first_section + int(z)
         if s in lost:
-            out[int(z)] = _digest({**base, "section": s, "lost": True})
+            out[int(z)] = digest({**base, "section": s, "lost": True})
             continue
-        out[int(z)] = _digest({**base, "section": s, **section_parts(store, s),
+        out[int(z)] = digest({**base, "section": s, **section_parts(store, s),
                                "contrast": _contrast_range(store, s, settings)})
     return out
 
@@ -231,10 +232,10 @@ def channel_fingerprints(store: TransformStore, canvas, settings, name: str, lev
         s = canvas.first_section + int(z)
         rec = records.get(s)
         if rec is None or set(_SKIP_FLAGS) & set(rec.get("flags", [])):
-            out[int(z)] = _digest({**base, "section": s, "empty": True})
+            out[int(z)] = digest({**base, "section": s, "empty": True})
             continue
         align = _align_part(store, s)
-        out[int(z)] = _digest({**base, "section": s, "align": align,
+        out[int(z)] = digest({**base, "section": s, "align": align,
                                "channel": {k: rec.get(k) for k in _CHANNEL_KEYS},
                                "image": file_identity(rec["path"]) if rec.get("path") else None})
     return out

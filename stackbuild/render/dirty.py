@@ -58,6 +58,24 @@ def _meets(boxes: np.ndarray, box) -> np.ndarray:
     return (boxes[:, 0] <= box[2]) & (boxes[:, 2] >= box[0]) & (boxes[:, 1] <= box[3]) & (boxes[:, 3] >= box[1])
 
 
+def tile_neighbourhood(stitch: SectionStitch | None, alignment: SectionAlignment | None,
+                      names) -> list[Box]:
+    """Return the aligned-frame footprints of the tiles ``names`` of a section and of every tile they meet.
+
+    What a change of those tiles' pixels can reach: their own footprints and, through
+    blending, those of the tiles overlapping them.
+    """
+    names = set(names)
+    if not names or stitch is None or not stitch.tiles:
+        return []
+    boxes = tile_footprints(stitch, alignment)
+    hit = np.zeros(len(boxes), bool)
+    for i, t in enumerate(stitch.tiles):
+        if t.tile in names:
+            hit |= _meets(boxes, boxes[i])
+    return [tuple(map(float, b)) for b in boxes[hit]]
+
+
 def changed_boxes(old: tuple[SectionStitch | None, SectionAlignment | None],
                   new: tuple[SectionStitch | None, SectionAlignment | None], *,
                   range_changed: bool = False) -> tuple[list[Box], bool]:

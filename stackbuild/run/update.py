@@ -36,8 +36,6 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-
 from ..errors import InputError
 from ..folder import BuildFolder, csv_facts
 from ..manifest import TileEntry, TileManifest, read_tile_manifest
@@ -438,17 +436,9 @@ def _replaced_boxes(store: TransformStore, section: int, names: list[str]) -> li
     A tile imaged again in place (same path, same placement) leaves its records as they were,
     so the record comparison finds nothing; its pixels changed all the same.
     """
-    from ..sampler import tile_footprints
+    from ..render.dirty import tile_neighbourhood
 
-    st, al = store.load_stitch(section), store.load_alignment(section)
-    if not names or st is None or not st.tiles:
-        return []
-    fb = tile_footprints(st, al)
-    core = [fb[i] for i, t in enumerate(st.tiles) if t.tile in names]
-    hit = np.zeros(len(fb), bool)
-    for b in core:
-        hit |= (fb[:, 0] <= b[2]) & (fb[:, 2] >= b[0]) & (fb[:, 1] <= b[3]) & (fb[:, 3] >= b[1])
-    return [tuple(map(float, b)) for b in fb[hit]]
+    return tile_neighbourhood(store.load_stitch(section), store.load_alignment(section), names)
 
 
 def _untouched(before: TransformStore, store: TransformStore, section: int) -> bool:

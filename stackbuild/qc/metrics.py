@@ -102,14 +102,10 @@ class _Scale:
     """Physical scale and section <-> plane bookkeeping of one build."""
 
     def __init__(self, folder: BuildFolder, canvas: Canvas | None):
+        from .sections import physical_scale
+
         self.canvas = canvas
-        vol = {}
-        try:
-            vol = folder.load_state().get("config", {}).get("volume", {})
-        except Exception:  # a hand-made folder without build.json still gets a report
-            pass
-        self.px_nm = canvas.pixel_size_nm if canvas else float(vol.get("pixel_size", 4.0))
-        self.dz_nm = canvas.section_thickness_nm if canvas else float(vol.get("section_thickness", 40.0))
+        self.px_nm, self.dz_nm = physical_scale(folder, canvas)
 
     def z(self, section: int) -> int | None:
         return None if self.canvas is None else section - self.canvas.first_section

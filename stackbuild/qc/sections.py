@@ -50,6 +50,18 @@ def section_file(build, section: int) -> Path:
     return BuildFolder(build).qc_dir / MEASURED / "sections" / f"{int(section):05d}.json"
 
 
+def physical_scale(folder: BuildFolder, canvas) -> tuple[float, float]:
+    """Return ``(pixel size, section thickness)`` in nm: the canvas's, else the build's settings, else 4 and 40."""
+    if canvas is not None:
+        return canvas.pixel_size_nm, canvas.section_thickness_nm
+    vol = {}
+    try:
+        vol = folder.load_state().get("config", {}).get("volume", {})
+    except Exception:  # a hand-made folder without build.json still gets a report
+        pass
+    return float(vol.get("pixel_size", 4.0)), float(vol.get("section_thickness", 40.0))
+
+
 class Locator:
     """Output locations (level-0 px and nm) of section points, for one build's canvas and scale."""
 
@@ -200,13 +212,7 @@ def seam_job(job: SectionJob) -> dict:
             return {**old["summary"], "reused": True}
     stitch = store.load_stitch(job.section)
     align = store.load_alignment(job.section)
-    vol = {}
-    try:
-        vol = folder.load_state().get("config", {}).get("volume", {})
-    except Exception:  # a hand-made folder without build.json still gets a report
-        pass
-    loc = Locator(canvas, canvas.pixel_size_nm if canvas else float(vol.get("pixel_size", 4.0)),
-                  canvas.section_thickness_nm if canvas else float(vol.get("section_thickness", 40.0)))
+    loc = Locator(canvas, *physical_scale(folder, canvas))
     if stitch is not None:
         tiles, pairs, seam = stitch_rows(job.section, stitch, measure_seams(stitch, job.settings), align, loc)
     else:

@@ -209,9 +209,10 @@ def _write_pyramid(group_path: Path, root: Path, name: str, shapes: list, dtype,
     arrays = [group.create_array(str(n), shape=(1, h, w), dtype=dtype, chunks=(1, chunk, chunk), fill_value=0,
                                  dimension_names=["z", "y", "x"]) for n, (h, w) in enumerate(shapes)]
     paths = [str(group_path / str(n)) for n in range(len(arrays))]
-    mapper(render_inset_block, [(str(root), name, *b, paths[0]) for b in _blocks(shapes[0], chunk)])
-    for n in range(1, len(shapes)):  # each level waits for the one below (the mapper returns when all are done)
-        mapper(reduce_inset_block, [(paths[n - 1], paths[n], *b, reducer) for b in _blocks(shapes[n], chunk)])
+    # list(): a mapper may return a lazy iterable (builtin map does); each level waits for the one below.
+    list(mapper(render_inset_block, [(str(root), name, *b, paths[0]) for b in _blocks(shapes[0], chunk)]))
+    for n in range(1, len(shapes)):
+        list(mapper(reduce_inset_block, [(paths[n - 1], paths[n], *b, reducer) for b in _blocks(shapes[n], chunk)]))
 
 
 def add_inset(build: BuildFolder, path: Path, mapper=None) -> list[str]:

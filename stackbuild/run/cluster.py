@@ -46,6 +46,31 @@ def _pin_worker_threads(client) -> None:
     client.register_plugin(_OneThread())
 
 
+def _refuse_closed_port(address: str) -> None:
+    """Raise at once when nothing listens at a ``tcp://host:port`` address.
+
+    A refused connection is final, so the client's 10 s of retries would only
+    delay the error; an address that does not answer at all (a firewall, a
+    scheduler still starting) is left to the client and its timeout.
+    """
+    import socket
+    from urllib.parse import urlsplit
+
+    parts = urlsplit(address if "://" in address else f"tcp://{address}")
+    try:
+        host, port = parts.hostname, parts.port
+    except ValueError:
+        return
+    if parts.scheme != "tcp" or not host or not port:
+        return
+    try:
+        socket.create_connection((host, port), timeout=10).close()
+    except ConnectionRefusedError as exc:
+        raise InputError(f"cannot reach the Dask scheduler {address!r} (nothing listens there: {exc})") from None
+    except OSError:
+        pass
+
+
 @contextlib.contextmanager
 def dask_client(workers: int | None = None, scheduler: str | None = None,
                 memory_limit: str = "auto"):
@@ -77,6 +102,7 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
             if Path(scheduler).is_file():
                 client = Client(scheduler_file=scheduler, timeout="10s")
             else:
+                _refuse_closed_port(scheduler)
                 client = Client(scheduler, timeout="10s")
         except OSError as exc:
             raise InputError(f"cannot reach the Dask scheduler {scheduler!r} ({exc})") from None

@@ -86,6 +86,9 @@ def test_two_replaced_tiles_rewrite_only_their_shards(grid_build, updated):
     realigned = plan["facts"]["align"]["realigned"]
     assert set(realigned) <= {3}
     assert plan["facts"]["ran"] == "in this process"  # 2 tiles: no cluster is started
+    # Only the pairs of the two re-imaged tiles are registered again; the other pairs keep their stored results.
+    stitch = plan["facts"]["stitch"]
+    assert stitch["pairs"] + stitch["pairs_kept"] == 20 and 0 < stitch["pairs"] < 20, stitch
     # The re-imaged tiles show their old content where it was (fresh noise only), so the section keeps
     # its alignment without a re-solve: no window of sections is solved again.
     checked = plan["facts"]["align"]["checked"]["3"]
@@ -171,7 +174,8 @@ def test_dry_run_lists_dirty_shards_and_writes_nothing(grid_build, grid_data, tm
     assert main(["update", str(work), "--tiles", str(manifest), "--dry-run", "--quiet"]) == 0
     out = capsys.readouterr().out
     assert "section 3: tiles r2c2" in out and "plane 3: level-0 shards" in out
-    assert "would run in this process (1 tile(s) replaced or added, 9 tile(s) stitched again)" in out
+    # A corner tile of 3 x 3 overlaps 3 tiles (2 edges, 1 corner): only those 4 tiles are read again.
+    assert "would run in this process (1 tile(s) replaced or added, 4 tile(s) read to register their pairs again)" in out
     assert _tree(work) == before
 
 

@@ -7,8 +7,9 @@ section) and, with ``append``, whole new sections. The update
 1. checks the manifest and writes its plan (``DIR/updates/NNNN/plan.json``)
    with hard links to the transform records as they are, before it changes
    anything (:mod:`stackbuild.run.update_plan`);
-2. stitches the touched sections again, holding every untouched tile where it
-   was (:func:`stackbuild.transforms.hold.hold_tiles`);
+2. registers again only the tile pairs that involve a new tile (stored results of the
+   others are kept) and places the new tiles with every untouched one held where it was
+   (:mod:`stackbuild.run.update_stitch`); appended sections are stitched whole;
 3. aligns the stack again and keeps the old alignment of every section
    (re-imaged ones included) the re-solve moves by no more than ``hold_within`` pixels
    (:func:`stackbuild.transforms.hold.hold_alignments`);
@@ -29,6 +30,7 @@ import csv
 import io
 import json
 import logging
+import math
 import os
 import shutil
 import signal
@@ -51,7 +53,7 @@ log = logging.getLogger(__name__)
 HOLD_WITHIN = 0.5
 #: An update replacing or adding at most this many tiles (and appending no section) runs in this process.
 IN_PROCESS_TILES = 16
-#: ... and its re-stitched sections hold at most this many tiles (every pair of theirs is registered again).
+#: ... and re-stitching reads at most this many tiles (the new ones and the tiles they overlap).
 IN_PROCESS_SECTION_TILES = 100
 
 
@@ -249,11 +251,28 @@ def plan_update(build: BuildFolder, new_tiles: Path, *, append: bool = False, ho
                       canvas_before=None if canvas is None else canvas.to_json(),
                       totals_before=_totals(build), created=now(), realign_neighbours=realign_neighbours)
     plan.predicted = _predicted_shards(build, old, new, changed, added, canvas)
-    # The stitch step registers every pair of a touched section again: its size decides where to run.
-    touched = changed_sections(changed)
-    plan.facts["restitched_tiles"] = len({(t.section, t.tile) for t in list(old.tiles) + list(new.tiles)
-                                          if t.section in touched})
+    # The stitch step reads the new tiles and the tiles they overlap: their number decides where to run.
+    plan.facts["restitched_tiles"] = _tiles_to_read(old, new, changed, build.config.stitch)
     return plan, new, text
+
+
+def _tiles_to_read(old: TileManifest, new: TileManifest, changed: dict, settings) -> int:
+    """Return how many tiles re-stitching the re-imaged sections reads: the new tiles and those they overlap."""
+    import numpy as np
+
+    from ..stitch.overlaps import find_overlaps
+
+    count = 0
+    for key, names in changed.items():
+        s = int(key)
+        incoming = {t.tile: t for t in new.section_tiles(s)}
+        tiles = [t for t in old.section_tiles(s) if t.tile not in incoming] + list(incoming.values())
+        overlaps = find_overlaps(np.array([(t.x, t.y) for t in tiles], float),
+                                 np.array([(t.width, t.height) for t in tiles], np.int64),
+                                 settings.min_overlap, math.ceil(2 * settings.max_stage_error))
+        fresh = {i for i, t in enumerate(tiles) if t.tile in names}
+        count += len(fresh | {i for ov in overlaps if {ov.a, ov.b} & fresh for i in (ov.a, ov.b)})
+    return count
 
 
 def dry_run_lines(plan: UpdatePlan) -> list[str]:
@@ -274,7 +293,7 @@ def dry_run_lines(plan: UpdatePlan) -> list[str]:
                  "its window is solved again")
     where = "in this process" if in_process(plan, None) else "on a Dask cluster (or --scheduler)"
     lines.append(f"  would run {where} ({sum(len(v) for v in plan.replaced.values())} tile(s) replaced or added, "
-                 f"{plan.facts.get('restitched_tiles', 0)} tile(s) stitched again)")
+                 f"{plan.facts.get('restitched_tiles', 0)} tile(s) read to register their pairs again)")
     return lines
 
 
@@ -298,23 +317,26 @@ def _before_store(build: BuildFolder, plan: UpdatePlan) -> TransformStore:
 
 
 def _stitch(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
-    from ..transforms.hold import hold_tiles
-    from . import stages
+    """Stitch appended sections whole; in re-imaged ones register only the pairs of their new tiles.
 
-    stages.stitch_stage(build, mappers("stitch"), sections=plan.sections)
+    The pairs of two untouched tiles keep their stored results and the untouched tiles their
+    placement (:func:`stackbuild.run.update_stitch.restitch_section`).
+    """
+    from . import stages
+    from .update_stitch import restitch_task
+
     before, store = _before_store(build, plan), build.store
-    held = {}
-    for key, names in plan.replaced.items():
-        s = int(key)
-        old = before.load_stitch(s)
-        if old is None:
-            continue
-        rec, facts = hold_tiles(old, store.load_stitch(s), set(names))
-        if facts["held"]:
-            store.save_stitch(rec)
-        held[key] = facts
-    plan.facts["stitch"] = {"held": held,
-                            "pairs": sum(len(store.load_stitch(s).pairs) for s in plan.sections)}
+    manifest = build.tile_manifest()
+    whole = [s for s in plan.sections if before.load_stitch(s) is None]
+    if whole:
+        stages.stitch_stage(build, mappers("stitch"), sections=whole)
+    jobs = [(str(build.root), str(before.root), int(key), tuple(manifest.section_tiles(int(key))), tuple(names),
+             build.config.stitch) for key, names in sorted(plan.replaced.items(), key=lambda kv: int(kv[0]))
+            if int(key) not in whole]
+    held = {str(f["section"]): f for f in mappers("stitch")(restitch_task, jobs)}
+    plan.facts["stitch"] = {"held": held, "pairs": sum(f["pairs"] for f in held.values()) +
+                            sum(len(store.load_stitch(s).pairs) for s in whole),
+                            "pairs_kept": sum(f["pairs_kept"] for f in held.values())}
 
 
 def _align(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
@@ -519,8 +541,8 @@ def in_process(plan: UpdatePlan, scheduler) -> bool:
     """Return True if the update is small enough to run in this process (no cluster is started).
 
     Small: no appended section, at most :data:`IN_PROCESS_TILES` replaced or added tiles and at
-    most :data:`IN_PROCESS_SECTION_TILES` tiles in the sections stitched again, so its work (those
-    sections' tile pairs, a few shards, the report's changed sections) takes less time than
+    most :data:`IN_PROCESS_SECTION_TILES` tiles read to register their pairs again (the new tiles and
+    those they overlap), so its work (those pairs, a few shards, the report's changed sections) takes less time than
     starting worker processes. A given ``scheduler`` is always used.
     """
     return scheduler is None and not plan.added and \
@@ -694,7 +716,8 @@ def summary_lines(plan: UpdatePlan, verdict) -> list[str]:
              f"ran {f.get('ran', 'on the Dask cluster')}"]
     held = f.get("stitch", {}).get("held", {})
     moved = [v["held_moved_px"] for v in held.values() if v.get("held_moved_px") is not None]
-    lines.append(f"  stitch: {f.get('stitch', {}).get('pairs', 0)} tile pair(s) registered again; untouched "
+    lines.append(f"  stitch: {f.get('stitch', {}).get('pairs', 0)} tile pair(s) registered again, "
+                 f"{f.get('stitch', {}).get('pairs_kept', 0)} kept from the build; untouched "
                  f"tiles held (a free re-solve would have moved them up to {max(moved, default=0.0):.2f} px)")
     a = f.get("align", {})
     for s, c in a.get("checked", {}).items():

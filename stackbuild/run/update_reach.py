@@ -17,7 +17,8 @@ two blocks says whether they show the same thing. If every block moved by at
 most the tolerance and correlates at least :data:`SAME_CONTENT_NCC`, the
 change cannot reach the alignment beyond the tolerance and the section keeps
 it without a re-solve; otherwise (or for tiles added where there were none,
-or when no block has texture to measure) the update solves its window again.
+for a tile whose quality flags changed, out of focus, blank or saturated, or
+when no block has texture to measure) the update solves its window again.
 
 One task per replaced tile: it holds the tile's footprint twice (at
 4096 x 4096 px of 16 bits, 2 x 64 MB in float32) and nothing else.
@@ -44,6 +45,8 @@ SAME_CONTENT_NCC = 0.8
 #: Edge of the compared blocks (level-0 px) and the least grey-level spread a block needs to be measured.
 BLOCK = 128
 MIN_STD = 2.0
+#: Stitch flags that say what a tile shows, as opposed to where it is.
+QUALITY_FLAGS = frozenset({"out_of_focus", "blank", "saturated"})
 
 
 def block_shift(old: np.ndarray, new: np.ndarray, max_shift: float = 8.0, rounds: int = 4) -> tuple[float, float]:
@@ -182,6 +185,15 @@ def alignment_reach(build, before, replaced: dict, tolerance: float, mapper) -> 
         added = sorted(n for n in names if n not in had)
         if added:
             out[s]["why"] = f"tile(s) {added} added where the section had none"
+            continue
+        # A tile now (or no longer) out of focus, blank or saturated shows other content even where
+        # its blocks still correlate (a 5 px blur of smooth texture keeps a correlation near 0.8).
+        judged = [(n, sorted(QUALITY_FLAGS & set(old.tile(n).flags)), sorted(QUALITY_FLAGS & set(new.tile(n).flags)))
+                  for n in names]
+        differ = [(n, a, b) for n, a, b in judged if a != b]
+        if differ:
+            n, a, b = differ[0]
+            out[s]["why"] = f"its content changed (tile {n!r} flagged {b or 'none'}, before {a or 'none'})"
             continue
         for name in names:
             box = _footprint(new.tile(name), align, canvas)

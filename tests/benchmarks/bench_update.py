@@ -153,6 +153,8 @@ def main() -> None:
           f"{plan['facts']['render']['shards']} of {plan['facts']['render']['shards_total']}")
     print(f"  updated plane equals a render from scratch of the updated transforms: {same}")
     secs = plan["facts"].get("seconds", {})
+    print(f"  stitch: {plan['facts']['stitch'].get('pairs')} pairs registered again, "
+          f"{plan['facts']['stitch'].get('pairs_kept')} kept from the build")
     print(f"  update steps (s): {secs}; without the report {t_update - secs.get('report', 0):.1f} s "
           f"(ratio {t_build / max(1e-9, t_update - secs.get('report', 0)):.1f}x)")
     state = json.loads((base / "build.json").read_text())["stages"]
@@ -184,6 +186,11 @@ def main() -> None:
     print(f"append 2 sections to {n}: {t_app:.1f} s; existing planes with changed chunks: {touched or 'none'} "
           f"(local re-solve moved existing sections up to {aplan['facts']['align']['largest_untouched_move_px']:.2f} "
           f"px; tolerance {aplan['hold_within']} px; beyond it: {aplan['facts']['align']['moved_beyond_tolerance']})")
+    rep = aplan["facts"].get("report", {})
+    print(f"  append steps (s): {aplan['facts'].get('seconds', {})}; sections solved {aplan['facts']['align']['window']}; "
+          f"planes rendered {aplan['facts']['render'].get('planes')} (full re-render: "
+          f"{aplan['facts']['render'].get('full')}); report measured {rep.get('sections', 0) - (rep.get('sections_reused') or 0)}"
+          f" of {rep.get('sections')} sections again; full build / append {t_build / t_app:.1f}x")
 
     if args.kills:
         ref = {k: v[0] for k, v in after.items()}

@@ -11,9 +11,10 @@ by more than the update's ``hold_within`` tolerance).
 So before any re-solve the update renders, in the aligned frame through the
 section's current alignment, the footprint of every replaced tile with the
 new records, reads the same pixels of the volume as it is (rendered from the
-old records), and compares them block by block: phase correlation and a
-gradient fit give each block's residual shift and the normalised cross-correlation of the
-two blocks says whether they show the same thing. If every block moved by at
+old records), and compares them block by block: the project's one sub-pixel
+estimator (:func:`stackbuild.align.blockmatch.match_block_pairs`, all blocks of
+a tile in one batch) gives each block's residual shift and the normalised
+cross-correlation of the two blocks says whether they show the same thing. If every block moved by at
 most the tolerance and correlates at least :data:`SAME_CONTENT_NCC`, the
 change cannot reach the alignment beyond the tolerance and the section keeps
 it without a re-solve; otherwise (or for tiles added where there were none,
@@ -27,8 +28,9 @@ References
 ----------
 Kuglin, C. D. & Hines, D. C. (1975). The phase correlation image alignment method.
 Proc. IEEE Int. Conf. Cybernetics and Society, 163-165 (phase correlation).
-Lucas, B. D. & Kanade, T. (1981). An iterative image registration technique with an
-application to stereo vision. Proc. IJCAI, 674-679 (the sub-pixel gradient fit).
+Guizar-Sicairos, M., Thurman, S. T. & Fienup, J. R. (2008). Efficient subpixel image
+registration algorithms. Optics Letters 33:156-158. doi:10.1364/OL.33.000156 (the sub-pixel
+peak the estimator evaluates).
 """
 from __future__ import annotations
 
@@ -45,75 +47,44 @@ SAME_CONTENT_NCC = 0.8
 #: Edge of the compared blocks (level-0 px) and the least grey-level spread a block needs to be measured.
 BLOCK = 128
 MIN_STD = 2.0
+#: Largest shift (level-0 px) searched between the old and the new pixels of a block.
+MAX_SHIFT = 8
 #: Stitch flags that say what a tile shows, as opposed to where it is.
 QUALITY_FLAGS = frozenset({"out_of_focus", "blank", "saturated"})
 
 
-def block_shift(old: np.ndarray, new: np.ndarray, max_shift: float = 8.0, rounds: int = 4) -> tuple[float, float]:
-    """Return the shift ``(dx, dy)`` of ``new`` against ``old`` (two same-size float blocks), in pixels.
-
-    The whole-pixel shift comes from phase correlation
-    (:func:`stackbuild.stitch.phasecorr.phase_correlate`, no refinement); the
-    fraction from the iterated least-squares (Lucas-Kanade) fit of the gradient
-    of ``old`` to the difference of the two blocks, with a gain and an offset
-    between them, on the block's inside (a 4 px border is left out). Phase
-    correlation's sub-pixel peak on a windowed 128 px block reads a third low
-    (0.2 px for a 0.3 px shift, checked against ``scipy.ndimage.shift``); the
-    gradient fit does not.
-
-    References
-    ----------
-    Lucas, B. D. & Kanade, T. (1981). An iterative image registration technique with an
-    application to stereo vision. Proc. IJCAI, 674-679.
-    """
-    from scipy import ndimage
-
-    from ..stitch.phasecorr import phase_correlate
-
-    a = ndimage.gaussian_filter(old.astype(np.float64), 1.0)
-    b = ndimage.gaussian_filter(new.astype(np.float64), 1.0)
-    (dx, dy), _ = phase_correlate(a, b, upsample=1, max_shift=max_shift)
-    gy, gx = np.gradient(a)
-    inner = (slice(4, -4), slice(4, -4))
-    design = np.column_stack([-gx[inner].ravel(), -gy[inner].ravel(), a[inner].ravel(),
-                              np.ones(gx[inner].size)])
-    for _ in range(rounds):
-        back = ndimage.shift(b, (-dy, -dx), order=3, mode="nearest")  # back(x) = new(x + d)
-        coef = np.linalg.lstsq(design, back[inner].ravel(), rcond=None)[0]
-        gain = coef[2] if abs(coef[2]) > 1e-6 else 1.0
-        dx, dy = dx + coef[0] / gain, dy + coef[1] / gain
-        if abs(dx) > max_shift or abs(dy) > max_shift:
-            break
-    return float(dx), float(dy)
-
-
 def compare_blocks(old: np.ndarray, new: np.ndarray, block: int = BLOCK, min_std: float = MIN_STD,
-                   max_shift: float = 8.0) -> list[tuple[float, float]]:
+                   max_shift: int = MAX_SHIFT) -> list[tuple[float, float]]:
     """Return ``(shift length px, ncc)`` of every textured ``block x block`` block of two same-size images.
 
-    The shift is that of ``new`` against ``old`` (:func:`block_shift`); the
-    correlation is the plain normalised cross-correlation of the two blocks as
-    they lie. Blocks where either image's standard deviation is below
-    ``min_std`` (margin, blank resin) are left out.
+    The shift is that of ``new`` against ``old``, measured on all blocks at once by the project's
+    one sub-pixel estimator (:func:`stackbuild.align.blockmatch.match_block_pairs`); NaN where it
+    made no match (the content moved beyond ``max_shift`` or is not the same). The correlation is
+    the plain normalised cross-correlation of the two blocks as they lie. Blocks where either
+    image's standard deviation is below ``min_std`` (margin, blank resin) are left out.
     """
+    from ..align.blockmatch import match_block_pairs
+
     if old.shape != new.shape or old.ndim != 2:
         raise ValueError(f"two 2-D images of one shape expected, got {old.shape} and {new.shape}")
-    out = []
     h, w = old.shape
     ny, nx = max(1, h // block), max(1, w // block)
     by, bx = min(block, h), min(block, w)
     oy, ox = (h - ny * by) // 2, (w - nx * bx) // 2
+    pairs, nccs = [], []
     for i in range(ny):
         for j in range(nx):
             a = old[oy + i * by:oy + (i + 1) * by, ox + j * bx:ox + (j + 1) * bx].astype(np.float32)
             b = new[oy + i * by:oy + (i + 1) * by, ox + j * bx:ox + (j + 1) * bx].astype(np.float32)
-            if min(a.shape) < 16 or a.std() < min_std or b.std() < min_std:
+            if min(a.shape) < 2 * max_shift + 8 or a.std() < min_std or b.std() < min_std:
                 continue
-            dx, dy = block_shift(a, b, max_shift)
             a0, b0 = a - a.mean(), b - b.mean()
-            ncc = float((a0 * b0).sum() / math.sqrt(float((a0 * a0).sum()) * float((b0 * b0).sum())))
-            out.append((float(math.hypot(dx, dy)), ncc))
-    return out
+            nccs.append(float((a0 * b0).sum() / math.sqrt(float((a0 * a0).sum()) * float((b0 * b0).sum()))))
+            pairs.append((a, b))
+    if not pairs:
+        return []
+    found = match_block_pairs(np.stack([a for a, _ in pairs]), np.stack([b for _, b in pairs]), int(max_shift))
+    return [(float(math.hypot(*d)), c) for d, c in zip(found.shifts, nccs)]
 
 
 def _tile_task(job: tuple) -> dict:
@@ -131,7 +102,8 @@ def _tile_task(job: tuple) -> dict:
     new = render_block(plan, z, y0, y1, x0, x1)[0]
     old = np.asarray(zarr.open_array(str(Path(root) / "volume.zarr" / "em" / "0"), mode="r")[z, y0:y1, x0:x1])
     found = compare_blocks(old, new)
-    return {"blocks": len(found), "max_shift_px": max((s for s, _ in found), default=None),
+    matched = [s for s, _ in found if math.isfinite(s)]
+    return {"blocks": len(found), "unmatched": len(found) - len(matched), "max_shift_px": max(matched, default=None),
             "min_ncc": min((c for _, c in found), default=None)}
 
 
@@ -209,6 +181,8 @@ def alignment_reach(build, before, replaced: dict, tolerance: float, mapper) -> 
         tiles = rec["tiles"].values()
         if not tiles or any(t["blocks"] == 0 for t in tiles):
             rec["why"] = "a replaced tile has no textured block to compare"
+        elif any(t.get("unmatched") for t in tiles):
+            rec["why"] = f"a block of its new pixels matches nothing of the old within {MAX_SHIFT} px"
         elif max(t["max_shift_px"] for t in tiles) > tolerance:
             rec["why"] = f"its content moved by {max(t['max_shift_px'] for t in tiles):.2f} px (> {tolerance:g})"
         elif min(t["min_ncc"] for t in tiles) < SAME_CONTENT_NCC:

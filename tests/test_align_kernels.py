@@ -343,3 +343,18 @@ def test_block_by_block_solve_matches_the_global_solve():
                             block=6, halo=4, **kw)
     diff = max(float(np.abs(whole[z] - parts[z]).max()) for z in zs)
     assert diff <= 0.05, diff
+
+
+def test_overview_correlation_carries_the_shift_down_past_a_level_that_gives_no_fit():
+    # scikit-image's camera and an exact translation of it by (40.4, -26.3) px (scipy.ndimage.fourier_shift).
+    # The coarser level (256 px) is given one block only, so it cannot fit a model: the whole-image
+    # shift measured there must still reach the finest level at twice its size (it used to arrive
+    # unscaled, 20 px short, beyond the blocks' search of 8 px, and the pair failed)
+    from stackbuild.align.correlate import correlate_overviews
+    img = data.camera().astype(np.float32)
+    v = np.array([40.4, -26.3])
+    moved = _fourier_shifted(img, v)
+    pa, pb, facts = correlate_overviews(img, moved, coarse_blocks=1)
+    assert facts["levels"] == 2 and len(pa) >= 50
+    keep = (pa.min(1) > 80) & (pa.max(1) < 430)          # away from the wrapped-around border
+    np.testing.assert_allclose(np.median(pb[keep] - pa[keep], axis=0), v, atol=0.05)

@@ -262,12 +262,16 @@ class _Batch:
 def _filled(x: np.ndarray) -> np.ndarray:
     """Return blocks ``x`` with NaN pixels set to their block's mean of the rest (0 if none)."""
     bad = ~np.isfinite(x)
-    if not bad.any():
+    rows = np.flatnonzero(bad.any(axis=(1, 2)))
+    if not rows.size:
         return x
+    out = np.array(x, np.float32)
+    sub = out[rows]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        mean = np.nan_to_num(np.nanmean(x, axis=(1, 2)))
-    return np.where(bad, mean[:, None, None], x).astype(np.float32)
+        mean = np.nan_to_num(np.nanmean(sub, axis=(1, 2)))
+    out[rows] = np.where(bad[rows], mean[:, None, None], sub)
+    return out
 
 
 def _ramps(shift: np.ndarray, q: int) -> tuple[np.ndarray, np.ndarray]:

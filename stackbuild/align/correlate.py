@@ -4,7 +4,8 @@ Pure functions of arrays. Where local feature descriptors fail (content that
 repeats itself, such as packed cell profiles whose junctions all look alike,
 and dots that are new in every section), correlation of whole blocks still
 finds the structure that persists. The overviews are reduced 2x at a time
-until the coarsest is about ``coarsest`` pixels across; there the whole-image
+until the coarsest is about ``coarsest`` pixels across (or a further halving
+would hold too few blocks to fit an affine); there the whole-image
 phase correlation gives the shift, and at every level from the coarsest to
 the overview itself, blocks on a grid are matched through the model so far
 (:func:`.blockmatch.match_blocks`), and RANSAC fits a new model to the trusted
@@ -81,8 +82,9 @@ def _grid(shape, spacing, reach):
 
 def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, max_shift: int = 8,
                         coarsest: int = 192, threshold: float = 2.0, min_confidence: float = 0.15,
-                        blur: float = 1.0, blocks: int = 400,
-                        unbiased: bool = True) -> tuple[np.ndarray, np.ndarray, dict]:
+                        blur: float = 1.0, blocks: int = 400, coarse_blocks: int = 400,
+                        unbiased: bool = True, coarse_unbiased: bool = True,
+                        finest: int = 0) -> tuple[np.ndarray, np.ndarray, dict]:
     """Return corresponding points ``(pa, pb)`` (overview pixels ``(x, y)``) of two overviews, and facts.
 
     Parameters
@@ -100,8 +102,11 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
     blur : float
         Low-pass of the correlations (sigma, pixels of each level).
     blocks : int
-        About this many blocks are matched per level (the node spacing grows
-        with the level's size).
+        About this many blocks are matched at the finest level reached (the
+        node spacing grows with the level's size).
+    coarse_blocks : int
+        ... and at each coarser level, which only has to bring the next
+        level within ``max_shift``.
     unbiased : bool
         Blocks take the matcher's unbiased passes at every level
         (:func:`.blockmatch.match_blocks` ``subpixel``); False reads the
@@ -109,6 +114,12 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         off at the coarser levels, the realistic long stack (seed 1) ended
         1.24 px RMS after the elastic step instead of 1.04 (one seed; small
         numerical changes move that stack by about 0.1 px).
+    coarse_unbiased : bool
+        The same for the levels coarser than the finest one reached.
+    finest : int
+        Stop at this level (0 = the overviews themselves, 1 = half their
+        size, ...; at most the coarsest level); the points are returned in
+        overview pixels all the same.
 
     Returns
     -------
@@ -119,8 +130,12 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         ``levels``, ``shift_peak`` (global phase-correlation peak), ``matches``
         and ``inliers`` of the finest level reached.
     """
+    reach = block_reach(half_size, max_shift)
+    # a level must hold a few blocks across (4 x 4 at the closest spacing) to fit an affine; a smaller
+    # one only costs time (and its whole-image shift is coarser than the next level's)
+    smallest = 2 * reach + 3 * half_size
     pyr_a, pyr_b = [np.asarray(a, np.float32)], [np.asarray(b, np.float32)]
-    while max(pyr_a[-1].shape) > coarsest and min(pyr_a[-1].shape) > 32 and min(pyr_b[-1].shape) > 32:
+    while max(pyr_a[-1].shape) > coarsest and min(*pyr_a[-1].shape, *pyr_b[-1].shape) // 2 >= smallest:
         pyr_a.append(_halve(pyr_a[-1]))
         pyr_b.append(_halve(pyr_b[-1]))
     shift, peak = global_shift(pyr_a[-1], pyr_b[-1], blur)
@@ -128,32 +143,54 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
     facts = {"levels": len(pyr_a), "shift_peak": peak, "matches": 0, "inliers": 0}
     empty = np.zeros((0, 2))
     pa = pb = empty
-    reach = block_reach(half_size, max_shift)
-    for lvl in range(len(pyr_a) - 1, -1, -1):
-        la, lb = pyr_a[lvl], pyr_b[lvl]
-        # b seen through the model in a's frame: warped(p) = b(model p)
-        warped = cv2.warpAffine(lb, model.astype(np.float64), (la.shape[1], la.shape[0]),
-                                flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP, borderMode=cv2.BORDER_CONSTANT,
-                                borderValue=float("nan"))
-        # a few hundred blocks per level are plenty for an affine; more only cost time
-        nodes = _grid(la.shape, max(half_size, int(np.sqrt(la.size / float(blocks)))), reach)
-        if not len(nodes):
-            continue
-        res = match_blocks(la, warped, nodes, half_size, max_shift, fine_sigma=blur, subpixel=unbiased)
-        ok = res.confidence >= min_confidence
-        facts["matches"] = int(ok.sum())
-        if ok.sum() < 6:
-            continue
-        p = nodes[ok]
-        q = (p + res.shifts[ok]) @ model[:, :2].T + model[:, 2]
-        fitted, inl = estimate_model(p, q, "affine", threshold)
-        if fitted is None or inl.sum() < 6:
-            continue
-        facts["inliers"] = int(inl.sum())
-        pa, pb = p[inl], q[inl]
-        model = fitted.matrix.copy()
-        if lvl:
-            model[:, 2] *= 2.0      # the same map one level finer: p' = 2 p + 0.5 on both sides
+    stop = min(int(finest), len(pyr_a) - 1)
+    for lvl in range(len(pyr_a) - 1, stop - 1, -1):
+        last = lvl == stop
+        fit = _fit_level(pyr_a[lvl], pyr_b[lvl], model, half_size, max_shift, reach,
+                         blocks if last else coarse_blocks, unbiased if last else coarse_unbiased,
+                         blur, threshold, min_confidence, facts)
+        pa = pb = empty
+        if fit is not None:
+            model, pa, pb = fit
+        if lvl > stop:
+            # the same map one level finer: p' = 2 p + 0.5 on both sides (also when this level gave
+            # no fit: the whole-image shift, or the model of a coarser level, must be carried down)
+            model = model.copy()
+            model[:, 2] *= 2.0
             model[:, 2] += 0.5 * (1.0 - model[:, :2].sum(axis=1))
-            pa, pb = empty, empty
+    if stop and len(pa):
+        # level-``stop`` pixel j is the mean of overview pixels 2^stop j ... 2^stop (j + 1) - 1
+        k = 2.0 ** stop
+        pa, pb = pa * k + (k - 1) / 2.0, pb * k + (k - 1) / 2.0
+    facts["finest"] = stop
     return pa, pb, facts
+
+
+def _fit_level(la, lb, model, half_size, max_shift, reach, blocks, unbiased, blur, threshold,
+               min_confidence, facts):
+    """Return ``(model, pa, pb)`` refined on one level (``model``: a-level px -> b-level px), or None.
+
+    Blocks on a grid of about ``blocks`` nodes are matched between ``la`` and
+    ``lb`` seen through ``model``; RANSAC fits an affine to the trusted
+    matches. ``facts`` gets this level's ``matches`` and ``inliers``.
+    """
+    # b seen through the model in a's frame: warped(p) = b(model p)
+    warped = cv2.warpAffine(lb, model.astype(np.float64), (la.shape[1], la.shape[0]),
+                            flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP, borderMode=cv2.BORDER_CONSTANT,
+                            borderValue=float("nan"))
+    # a few hundred blocks per level are plenty for an affine; more only cost time
+    nodes = _grid(la.shape, max(half_size, int(np.sqrt(la.size / float(blocks)))), reach)
+    if not len(nodes):
+        return None
+    res = match_blocks(la, warped, nodes, half_size, max_shift, fine_sigma=blur, subpixel=unbiased)
+    ok = res.confidence >= min_confidence
+    facts["matches"] = int(ok.sum())
+    if ok.sum() < 6:
+        return None
+    p = nodes[ok]
+    q = (p + res.shifts[ok]) @ model[:, :2].T + model[:, 2]
+    fitted, inl = estimate_model(p, q, "affine", threshold)
+    if fitted is None or inl.sum() < 6:
+        return None
+    facts["inliers"] = int(inl.sum())
+    return fitted.matrix.copy(), p[inl], q[inl]

@@ -61,8 +61,53 @@ def judge(doc: dict, thresholds: list[Threshold]) -> tuple[bool, list[str], list
         rows.append({"condition": t.describe(), "measure": t.measure, "measured": got, "failed": failed,
                      "text": t.text})
         if failed:
-            failures.append(f"{t.describe()}: measured {got:.3g}")
+            where = failure_detail(doc, t.measure)
+            failures.append(f"{t.describe()}: measured {got:.3g}" + (f" ({where})" if where else ""))
     return not failures, failures, rows
+
+
+def _sections(values) -> str:
+    v = sorted(set(values))
+    return ", ".join(map(str, v[:10])) + (f" and {len(v) - 10} more" if len(v) > 10 else "")
+
+
+def _channel_reason(row: dict) -> str:
+    """Return why a marker registration was not used: the channel stage's reason, else its flags."""
+    line = row.get("failure") or ""
+    if "not registered: " in line:
+        return line.split("not registered: ", 1)[1].split("; no transform stored", 1)[0]
+    from .glossary import flag_meaning
+
+    flags = [f for f in row.get("flags") or [] if f != "ambiguous"] or list(row.get("flags") or [])
+    return "; ".join(f"{f}: {flag_meaning(f)}" for f in flags) or "no reason recorded"
+
+
+def failure_detail(doc: dict, measure: str) -> str:
+    """Return where a failed count measure comes from: channels and sections, and why (empty when not a count of those).
+
+    A rejected marker registration names its channel, its section(s) and the channel stage's
+    reason; blank, unmeasured and lost sections and missing tiles name their sections.
+    """
+    rows = doc.get("sections") or []
+    if measure in ("channels.failed", "channels.flagged"):
+        bad = [r for r in doc.get("channels") or []
+               if r.get("registered") is False or (measure == "channels.flagged" and r.get("flags"))]
+        by: dict[tuple[str, str], list[int]] = {}
+        for r in bad:
+            by.setdefault((r["channel"], _channel_reason(r)), []).append(r["section"])
+        parts = [f"marker {ch!r} in section(s) {_sections(secs)}: {why}" for (ch, why), secs in sorted(by.items())]
+        return "; ".join(parts[:5]) + (f"; {len(parts) - 5} more" if len(parts) > 5 else "")
+    flag = {"sections.blank": "blank_section", "sections.unmeasured": "not_measured"}.get(measure)
+    if flag:
+        secs = [r["section"] for r in rows if flag in (r.get("flags") or [])]
+        return f"section(s) {_sections(secs)}" if secs else ""
+    if measure == "lost":
+        secs = [r["section"] for r in rows if r.get("lost")]
+        return f"section(s) {_sections(secs)}" if secs else ""
+    if measure == "tiles.missing":
+        secs = [t["section"] for t in doc.get("flagged_tiles") or [] if "missing_file" in (t.get("flags") or [])]
+        return f"in section(s) {_sections(secs)}" if secs else ""
+    return ""
 
 
 def stored_metrics_stale(build_dir) -> str | None:

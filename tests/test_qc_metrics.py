@@ -11,7 +11,7 @@ from skimage import data
 from skimage.registration import phase_cross_correlation
 
 from stackbuild.qc.blockmatch import match_blocks, summarize
-from stackbuild.qc.subpixel import bandpass, match_points
+from stackbuild.qc.probe import match_planes
 from stackbuild.qc.zchain import block_jitter, plane_summary, section_error
 from stackbuild.qc.metrics import SCHEMA_VERSION, collect, stored_rows
 from stackbuild.qc.settings import ReportSettings
@@ -66,16 +66,21 @@ def test_summarize_matches_numpy():
 @pytest.mark.parametrize("frac", [0.0, 0.25, 0.5])
 def test_probe_matcher_has_no_peak_locking(frac):
     # Reference: scipy.ndimage.shift (cubic spline) moves skimage.data.camera by a known sub-pixel
-    # amount; the bar 0.08 px RMS is the alignment issue's 0.05 px plus margin for the reference's own
-    # interpolation error (our choice, no source).
+    # amount, 9 px beyond the fine search in x so that the reduced first pass must find it; the bar
+    # 0.08 px RMS is the alignment issue's 0.05 px plus margin for the reference's own interpolation
+    # error (our choice, no source).
     img = data.camera().astype(np.float32)
-    true = np.array([1.0 + frac, -2.0 + frac])
+    true = np.array([15.0 + frac, -2.0 + frac])
     moved = ndimage.shift(img, (true[1], true[0]), order=3, mode="reflect")
     pts = np.array([(x, y) for x in range(96, 430, 48) for y in range(96, 430, 48)])
-    s, _ = match_points(bandpass(img, 1.5, 12), bandpass(moved, 1.5, 12), pts, half=24, search=6, min_ncc=0.3)
-    ok = np.isfinite(s[:, 0])
-    assert ok.sum() >= 0.8 * len(pts)
+    s, c, beyond = match_planes(img, moved, pts, half=24, search=6, reach=32, fine_sigma=1.5, coarse_sigma=12)
+    ok = np.isfinite(s[:, 0]) & (c > 0.3)
+    assert ok.sum() >= 0.8 * len(pts) and not beyond.any()
     assert np.sqrt(((s[ok] - true) ** 2).sum(1).mean()) < 0.08
+    # just beyond the reach (27 px against 24): marked as such, not measured
+    far = ndimage.shift(img, (0, 27), order=1, mode="reflect")
+    s, c, beyond = match_planes(img, far, pts, half=24, search=6, reach=24, fine_sigma=1.5, coarse_sigma=12)
+    assert beyond.sum() >= 0.8 * len(pts) and not np.isfinite(s[beyond]).any()
 
 
 def test_chain_puts_a_single_shifted_plane_on_that_plane():
@@ -151,7 +156,7 @@ def test_probe_shift_agrees_with_phase_cross_correlation(planted):
     a = vol[PLANT_ROT_SECTION - 1].astype(np.float32)
     b = vol[PLANT_ROT_SECTION].astype(np.float32)
     pts = np.array([(x, y) for x in (160, 256, 352) for y in (160, 256, 352)])
-    ours, _ = match_points(bandpass(a, 2, 16), bandpass(b, 2, 16), pts, half=48, search=10, min_ncc=0.3)
+    ours, _, _ = match_planes(a, b, pts, half=48, search=10, reach=0, fine_sigma=2, coarse_sigma=16)
     diffs = []
     for (x, y), d in zip(pts, ours):
         r = 48
@@ -226,7 +231,7 @@ def test_spatial_median_equals_scipy_generic_filter():
 
     from scipy import ndimage
 
-    from stackbuild.qc.probe import _spatial_median
+    from stackbuild.qc.runs import _spatial_median
 
     rng = np.random.default_rng(1)
     j = rng.normal(size=(4, 6 * 8, 2))
@@ -259,3 +264,28 @@ def test_worst_place_carries_its_raw_tile_and_stage_position(planted):
     assert 0 <= at["tile_x"] < t.width and 0 <= at["tile_y"] < t.height
     # the stage position of a tile pixel is the tile's stage position plus the pixel (transforms/locate.py)
     assert [at["stage_x"], at["stage_y"]] == pytest.approx([t.stage_x + at["tile_x"], t.stage_y + at["tile_y"]], abs=0.02)
+
+
+def test_a_rejected_marker_registration_fails_with_its_channel_sections_and_reason(planted):
+    # The reason is the channel stage's own line (stackbuild.channels.stage.failure_line), carried through
+    # the channel rows; the verdict line names channel, sections and that reason.
+    from pathlib import Path
+
+    from stackbuild.channels.stage import failure_line
+    from stackbuild.manifest import ChannelEntry
+    from stackbuild.qc.bars import judge
+    from stackbuild.qc.thresholds import parse_fail_on
+
+    _, doc, _ = planted
+    assert all("failure" in r for r in doc["channels"])
+    reason = "normalised mutual information 1.04 at the optimum, under the bar 1.1"
+    rows = []
+    for s in (1, 3):
+        entry = ChannelEntry(s, "glowB", Path(f"/raw/s{s}_glowB.tif"), 20.0, None, None, 48, 64, "uint8")
+        rows.append({**next(r for r in doc["channels"] if r["channel"] == "glowB"), "section": s,
+                     "registered": False, "flags": ["low_mi"], "failure": failure_line(entry, reason)})
+    bad = {**doc, "channels": [r for r in doc["channels"] if r["channel"] != "glowB"] + rows,
+           "totals": {**doc["totals"], "channels.failed": 2}}
+    passed, failures, _ = judge(bad, [parse_fail_on("channels.failed>0")])
+    assert not passed
+    assert failures == [f"fail if channels.failed > 0: measured 2 (marker 'glowB' in section(s) 1, 3: {reason})"]

@@ -1,4 +1,4 @@
-"""A re-report measures only what changed: stored section and probe measurements carry fingerprints.
+"""A re-report measures only what changed: stored section and probe-pair measurements carry fingerprints.
 
 Ground truth: the planted build of qc_builders (invented data) and its written plane
 records; what changed is known because the test changes it.
@@ -10,14 +10,14 @@ import json
 import pytest
 
 from stackbuild.qc.metrics import collect
-from stackbuild.qc.reuse import changed_planes, context_runs
+from stackbuild.qc.probe import plane_pairs
+from stackbuild.qc.runs import runs_of
 from stackbuild.qc.settings import ReportSettings
 from stackbuild.render.fingerprint import write_plane_record
 
 from qc_builders import SECTIONS, make_build
 
-SETTINGS = ReportSettings(probe_half_size=32, probe_spacing=64, probe_neighbourhood=1, slow_window=3,
-                          probe_spans=1)  # reach: 3 // 2 + 1 = 2 planes each side
+SETTINGS = ReportSettings(probe_half_size=32, probe_spacing=64, probe_neighbourhood=1)  # probe_spans 2
 
 
 class Counting:
@@ -53,7 +53,8 @@ def test_nothing_changed_measures_nothing_and_gives_the_same_numbers(first):
     mapper = Counting()
     again, _ = collect(root, SETTINGS, mapper=mapper)
     assert again["reused"]["sections"] == len(SECTIONS)
-    assert mapper.of("probe_region") == []
+    assert mapper.of("probe_pair") == [] and mapper.of("jitter_run") == []
+    assert again["reused"]["pairs"] == len(plane_pairs(list(range(len(SECTIONS))), 2))
     for a, b in zip(doc["sections"], again["sections"]):
         assert a["align_error_px"] == b["align_error_px"] and a["stitch"] == b["stitch"]
 
@@ -73,14 +74,22 @@ def test_a_changed_section_is_measured_again_with_its_neighbourhood(first, tmp_p
     again, _ = collect(root, SETTINGS, mapper=mapper)
     assert [j.section for j in mapper.of("seam_job")] == list(SECTIONS)  # every section asked ...
     assert again["reused"]["sections"] == len(SECTIONS) - 1              # ... one measured again
-    # plane 4 changed: planes 2..4 depend on it (reach 2); the probe runs over 0..4 as context
-    assert {tuple(j.z) for j in mapper.of("probe_region")} == {(0, 1, 2, 3, 4)}
+    # plane 4 changed: exactly the probe_spans x 2 pairs it takes part in are measured again, (2, 4) and
+    # (3, 4) (it is the last plane), in one task; the one run is solved again
+    measured = sorted(p for j in mapper.of("probe_pair") for p in j.pairs)
+    assert measured == [(2, 4), (3, 4)] and len(mapper.of("probe_pair")) == 1
+    assert again["reused"]["pairs_measured"] == 2 and again["reused"]["runs_solved"] == 1
+    # ... and the numbers are those of a full report of the same folder (the stored pairs are re-used as such)
+    full, _ = collect(root, SETTINGS, reuse=False)
+    for a, b in zip(full["sections"], again["sections"]):
+        assert a["align_error_px"] == pytest.approx(b["align_error_px"], abs=1e-9)
 
 
-def test_changed_planes_and_their_context():
+def test_a_plane_in_the_middle_takes_four_pairs_and_runs_have_fixed_cores():
     present = [0, 1, 2, 4, 5, 6, 7, 8, 9, 10]  # plane 3 lost
-    assert changed_planes({"0": "a", "1": "b"}, {0: "a", 1: "c", 2: "unrecorded"}) == [1, 2]
-    assert context_runs([], present, 2) == []
-    assert context_runs([5], present, 2) == [[2, 4, 5, 6, 7]]  # reach counts present planes
-    assert context_runs([0, 10], present, 1) == [[0, 1], [9, 10]]
-    assert context_runs([1, 6], present, 2) == [[0, 1, 2, 4, 5, 6, 7, 8]]
+    pairs = plane_pairs(present, 2)
+    assert [p for p in pairs if 5 in p] == [(2, 5), (4, 5), (5, 6), (5, 7)]  # spans count present planes
+    assert len(pairs) == 2 * len(present) - 3
+    runs = runs_of(list(range(40)), 6)
+    assert [c for c, _ in runs] == [list(range(0, 16)), list(range(16, 32)), list(range(32, 40))]
+    assert runs[1][1] == list(range(10, 38)) and runs[2][1] == list(range(26, 40))

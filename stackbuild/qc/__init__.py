@@ -4,7 +4,6 @@ Pure kernels (layer 1):
 
 ``blockmatch``  NCC block matching on a grid (seams)
 ``seams``       residual of two placed tiles over their overlap
-``subpixel``    band-pass and sub-pixel block shifts without peak locking (the probe's matcher)
 ``zchain``      per-block chain solve along z; each plane's deviation from where its neighbours put it
 ``straighten``  oblique structure straightened by the aligner, from its stored transforms
 ``glossary``    one-line meanings of every flag and total
@@ -12,7 +11,8 @@ Pure kernels (layer 1):
 Stage (layer 4):
 
 ``planes``      planes of the written or lazy volume at a chosen level, read by window
-``probe``       the alignment-error probe as region tasks (one region down the stack per task)
+``probe``       the alignment-error probe's pair tasks: block shifts per pair of planes, stored with fingerprints
+``runs``        its run tasks: each plane's jitter from the stored shifts, in runs of planes
 ``measure``     seam measurements per section (at most a few tiles held) and the frame conversions
 ``metrics``     the metrics document (``DIR/qc/metrics.json``, schema in its docstring) and CSV tables
 ``thresholds``  the ``--fail-on`` syntax and the default bars

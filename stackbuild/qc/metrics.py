@@ -38,7 +38,8 @@ pixels) and ``stage_x``, ``stage_y`` (stage, full-resolution pixels), see
                     ``measure_before``, ``measure_after``, ``shift_from_given``
                     (section px), ``rotation_deg``, ``scale_ratio``, ``flags``,
                     ``landmark_residual`` (RMS over its landmarks, EM px; ``None``
-                    without landmarks), ``at`` (the image centre).
+                    without landmarks), ``at`` (the image centre), ``failure`` (the channel
+                    stage's line when the registration was rejected, else ``None``).
 ``landmarks``       one per row of the build's landmark file (see
                     :mod:`stackbuild.qc.landmarks`).
 ``totals``          the measures that ``--fail-on`` can test, see
@@ -59,7 +60,7 @@ column name), ``tiles.csv`` (one per tile: ``section``, ``tile``, ``path``, ``x`
 ``at``), ``pairs.csv`` (one per tile pair: stitcher's ``dx``, ``dy``, ``ncc``,
 ``accepted``, ``reason``; re-measured ``misfit`` and ``residual``), ``regions.csv``
 (one per probe region), ``blocks.csv`` (a sample of probe blocks: ``z``, ``x_px``,
-``y_px``, ``error_dx``, ``error_dy``, ``error``, ``motion_dx``, ``motion_dy``),
+``y_px``, ``error_dx``, ``error_dy``, ``error``),
 ``channels.csv`` and ``landmarks.csv`` when there are any.
 
 Everything is an independent measurement of the output, not a copy of the
@@ -117,44 +118,23 @@ class _Scale:
         return location(section, self.z(section), xy_out, self.canvas, self.px_nm, self.dz_nm)
 
 
-def plane_errors(probe: list[dict], depth: int) -> dict[int, dict]:
-    """Return ``{z: {"align_error_px", "align_error_unc_px", "blocks", "max", "at_xy"}}`` from the probe's region sums."""
-    n, sq, noise = np.zeros(depth), np.zeros(depth), np.zeros(depth)
-    top, at = np.full(depth, -1.0), [None] * depth
-    for r in probe:
-        p = r.get("planes")
-        if not p:
-            continue
-        for i, z in enumerate(r["z"]):
-            n[z] += p["n"][i]
-            sq[z] += p["sum_sq"][i]
-            noise[z] += p["sum_noise"][i]
-            if p["max"][i] > top[z]:
-                top[z], at[z] = p["max"][i], p["max_at"][i]
+def plane_errors(probe, depth: int) -> dict[int, dict]:
+    """Return ``{z: {"align_error_px", "align_error_unc_px", "blocks", "max", "at_xy"}}`` from the probe's plane sums."""
     out = {}
     for z in range(depth):
-        est, unc = section_error(n[z], sq[z], noise[z])
-        out[z] = {"align_error_px": est, "align_error_unc_px": unc, "blocks": int(n[z]),
-                  "max": float(top[z]) if top[z] >= 0 else None, "at_xy": at[z]}
+        p = probe.planes.get(z) if probe is not None else None
+        if not p:
+            out[z] = {"align_error_px": None, "align_error_unc_px": None, "blocks": 0, "max": None, "at_xy": None}
+            continue
+        est, unc = section_error(p["n"], p["sum_sq"], p["sum_noise"])
+        out[z] = {"align_error_px": est, "align_error_unc_px": unc, "blocks": int(p["n"]),
+                  "max": float(p["max"]) if p["max"] >= 0 else None, "at_xy": p["at_xy"] if p["max"] >= 0 else None}
     return out
 
 
-def _motion(probe: list[dict]) -> dict[tuple[int, int], dict]:
-    """Return per link ``(z_from, z_to)``: blocks matched, tried and beyond the search, apparent motion median, p95 (px)."""
-    acc: dict[tuple[int, int], list] = {}
-    for r in probe:
-        for link in r.get("links", []):
-            if link.get("tried"):
-                acc.setdefault((link["z_from"], link["z_to"]), []).append(link)
-    out = {}
-    for k, rows in acc.items():
-        got = [x for x in rows if x["n"]]
-        w = np.array([x["n"] for x in got], float)
-        out[k] = {"n": int(w.sum()),
-                  "median": float(np.average([x["median"] for x in got], weights=w)) if got else None,
-                  "p95": float(max(x["p95"] for x in got)) if got else None,
-                  "tried": int(sum(x["tried"] for x in rows)), "beyond": int(sum(x.get("beyond", 0) for x in rows))}
-    return out
+def _motion(probe) -> dict[tuple[int, int], dict]:
+    """Return per pair ``(z_from, z_to)``: blocks matched, tried and beyond the search, apparent motion median, p95 (px)."""
+    return {} if probe is None else {k: v for k, v in probe.links.items() if v.get("tried")}
 
 
 def _beyond_reach(motion: dict, z) -> float:
@@ -169,7 +149,7 @@ def _beyond_reach(motion: dict, z) -> float:
 
 def _section_rows(sections, sums: dict[int, dict], meas, sc: _Scale, settings) -> list[dict]:
     depth = sc.canvas.depth if sc.canvas else 0
-    errors = plane_errors(meas.probe, depth) if meas.probe else {}
+    errors = plane_errors(meas.probe, depth) if meas.probe is not None else {}
     motion = _motion(meas.probe)
     prev = {zb: v for (za, zb), v in sorted(motion.items(), key=lambda kv: kv[0][1] - kv[0][0], reverse=True)
             if v["n"]}
@@ -203,7 +183,7 @@ def _section_rows(sections, sums: dict[int, dict], meas, sc: _Scale, settings) -
             err = {**err, "align_error_px": total, "align_error_unc_px": unc}
         if err["align_error_px"] is not None and err["align_error_px"] > settings.align_max:
             flags.append("error_over_bar")
-        if s not in lost and sm.get("stitched") and not err["blocks"] and meas.probe:
+        if s not in lost and sm.get("stitched") and not err["blocks"] and meas.probe is not None:
             flags.append("not_measured")
         rows.append({
             "section": s, "z": z, "lost": s in lost, "flags": sorted(set(flags)),
@@ -249,7 +229,8 @@ def _channel_rows(store, sections, aligns, sc: _Scale) -> list[dict]:
                          "measure_before": ch.get("measure_before"), "measure_after": ch.get("measure_after"),
                          "shift_from_given": ch.get("shift_from_given"), "rotation_deg": ch.get("rotation_deg"),
                          "scale_ratio": ch.get("scale_ratio"), "flags": list(ch.get("flags") or []),
-                         "landmark_residual": ch.get("landmark_residual"), "at": at})
+                         "landmark_residual": ch.get("landmark_residual"), "at": at,
+                         "failure": ch.get("failure")})
     return rows
 
 
@@ -377,7 +358,7 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
     """Return the metrics document of a build and the measurements behind it.
 
     Each section is measured by one task (:func:`stackbuild.qc.sections.seam_job`) that
-    returns a small summary; the probe runs as region tasks. With ``reuse``, measurements
+    returns a small summary; the probe runs as pair and run tasks (:mod:`stackbuild.qc.probe`). With ``reuse``, measurements
     stored in ``DIR/qc/measured`` whose inputs are unchanged are re-used (see
     :mod:`stackbuild.qc.reuse`). The document's ``tiles`` and ``pairs`` are not kept in
     memory: :func:`stored_rows` streams them from the per-section files.
@@ -465,7 +446,9 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
                   "channel": _worst(channels, lambda r: None if r["measure_after"] is None
                                     else -r["measure_after"]),
                   "landmark": _worst(landmarks, lambda r: r["residual"])},
-        "reused": dict(meas.reused),
+        "reused": {**meas.reused, **({} if meas.probe is None else {
+            "pairs": meas.probe.pairs_reused, "pairs_measured": meas.probe.pairs_measured,
+            "runs_solved": meas.probe.runs_solved})},
         "notes": meas.notes,
     }
     return doc, meas
@@ -518,26 +501,29 @@ def _write_csv(path: Path, rows) -> Path:
     return path
 
 
-def block_rows(meas: Measurements) -> list[dict]:
-    """Return the sampled probe blocks: plane, level-0 place, estimated error and apparent motion (px)."""
-    return [row for r in meas.probe for row in r.get("sample", [])]
+def _stored_runs(meas: Measurements):
+    """Yield the stored run documents of the probe, one at a time."""
+    from .reuse import stored_run
+
+    for first in (meas.probe.runs if meas.probe is not None else []):
+        doc = stored_run(meas.build, first)
+        if doc is not None:
+            yield doc
+
+
+def block_rows(meas: Measurements):
+    """Yield the sampled probe blocks: plane, level-0 place and estimated error (px), one run at a time."""
+    for doc in _stored_runs(meas):
+        yield from doc.get("sample", [])
 
 
 def region_rows(meas: Measurements) -> list[dict]:
     """Return one row per probe region: its box (level-0 px), blocks, matching noise, error over the stack, worst plane."""
-    rows = []
-    for r in meas.probe:
-        p = r.get("planes")
-        row = {"x0_px": round(r["box"][0], 1), "y0_px": round(r["box"][1], 1), "x1_px": round(r["box"][2], 1),
-               "y1_px": round(r["box"][3], 1), "blocks": r["blocks"], "noise_px": r["sigma"],
-               "error_px": None, "worst_z": None, "worst_error_px": None}
-        if p and sum(p["n"]):
-            est, _ = section_error(sum(p["n"]), sum(p["sum_sq"]), sum(p["sum_noise"]))
-            per = [section_error(n, q, w)[0] for n, q, w in zip(p["n"], p["sum_sq"], p["sum_noise"])]
-            k = int(np.argmax([-1 if v is None else v for v in per]))
-            row.update(error_px=est, worst_z=r["z"][k], worst_error_px=per[k])
-        rows.append(row)
-    return rows
+    from .runs import region_rows as rows
+
+    if meas.probe is None:
+        return []
+    return rows(_stored_runs(meas), meas.probe.boxes, meas.probe.sigma)
 
 
 #: at most this many flagged tiles are listed in metrics.json (all of them are in tiles.csv)

@@ -1,12 +1,21 @@
-"""The alignment-error probe as region tasks: each task follows one region of the output down the stack.
+"""The alignment-error probe, part 1: block shifts per pair of planes, measured as tasks and kept.
 
-One task holds one region (``region_size`` level-0 px square, plus a margin)
-of at most ``spans + 1`` planes at a time, band-passed float32: at the
-defaults (region 2048 px, 2 spans, measured at level 0) about 3 x 2.2k x 2.2k
-x 4 B = 60 MB, whatever the section's size. It returns per-plane sums (see
-:func:`stackbuild.qc.zchain.plane_summary`), per-link apparent-motion figures
-and a few sampled block rows, never block data of the whole region stack.
-The driver adds the sums per plane and keeps one row per region.
+:func:`probe_pair` is one task: one plane (the fixed side) against the next
+``probe_spans`` present planes. It reads the planes one region window at a
+time (``region_size`` level-0 px plus a margin: at the defaults about
+2.3k x 2.3k float32 = 21 MB per plane, whatever the section's size), cuts the
+blocks of the probe's grid that fall in the region, and matches every block of
+a pair in one batched call of the project's sub-pixel estimator
+(:func:`stackbuild.align.blockmatch.match_block_pairs`): first on 4x reduced
+blocks reaching ``probe_reach``, then at the measured level, the moving block
+cut around that first answer. The shifts of each pair go to
+``DIR/qc/measured/pairs/<a>-<b>.json`` stamped with the pair's fingerprint
+(what both planes were rendered from, :func:`stackbuild.qc.reuse.pair_fingerprints`);
+the task returns a few numbers per pair (apparent motion).
+
+Part 2, the chain along z and each plane's jitter, is :mod:`stackbuild.qc.runs`.
+:func:`measure_error` runs both: the driver holds per-pair and per-plane
+summaries only.
 """
 from __future__ import annotations
 
@@ -16,309 +25,336 @@ import numpy as np
 
 from .planes import PlaneSource, data_mask, open_planes
 from .settings import ReportSettings
-from .subpixel import bandpass, match_points
-from .zchain import block_jitter, plane_summary
+
+#: the first pass works on blocks reduced this many times
+COARSE = 4
 
 
 @dataclass(frozen=True)
-class RegionJob:
-    """What one probe task needs (small and picklable)."""
+class PairJob:
+    """What one pair task needs (small and picklable)."""
 
     build: str
     written: bool
     max_factor: float
-    box: tuple[int, int, int, int]          # x0, y0, x1, y1 of block centres, level pixels
-    z: tuple[int, ...]                      # present planes measured, increasing
+    pairs: tuple[tuple[int, int], ...]   # (fixed plane, moving plane), fixed increasing
+    fingerprints: tuple[str | None, ...]  # one per pair, stored with its shifts
     settings: ReportSettings
-    stack: tuple[int, ...] = ()             # every present plane (default z): the whole-stack line
+
+
+#: fixed planes per pair task: a task reads each of its planes once per region
+PAIRS_TASK = 16
 
 
 def probe_geometry(source: PlaneSource, settings: ReportSettings, width0: float, height0: float):
-    """Return ``(spacing, half, search, margin)`` in level pixels for a plane of ``width0 x height0`` level-0 px."""
+    """Return ``(spacing, half, search, margin)`` in level pixels for a plane of ``width0 x height0`` level-0 px.
+
+    ``margin`` is how far beyond a block centre the task reads: the moving block is cut up to
+    ``probe_reach`` away, and the 4x reduced first pass reaches as far.
+    """
     f = source.factor
     # probe_spacing apart, wider on large planes so that a plane holds about probe_blocks blocks
     spacing = max(float(settings.probe_spacing), float(np.sqrt(width0 * height0 / max(settings.probe_blocks, 1))))
     half = max(4, int(round(settings.probe_half_size / f)))
     search = max(2, int(round(settings.probe_max_shift / f)))
-    margin = half + search + 3 + int(np.ceil((settings.probe_reach + 3 * settings.probe_coarse_sigma) / f))
+    reach = int(np.ceil(settings.probe_reach / f))
+    ch, cs = _coarse_sizes(half, reach)
+    margin = max(half + search + 1 + reach, COARSE * (ch + cs + 2)) + 1
     return max(2, int(round(spacing / f))), half, search, margin
 
 
-def regions(source: PlaneSource, settings: ReportSettings, present: list[int]) -> list[tuple[int, int, int, int]]:
-    """Return the block-centre boxes ``(x0, y0, x1, y1)`` (level px, half-open) of the probe tasks."""
+def _coarse_sizes(half: int, reach: int) -> tuple[int, int]:
+    """Return ``(half, search)`` of the reduced first pass (reduced pixels).
+
+    It searches a little beyond ``reach`` (3 reduced pixels), so that a block found just beyond
+    is marked as such rather than refused as a peak on the edge of the search.
+    """
+    return max(4, half // COARSE), max(2, int(np.ceil(reach / COARSE)) + 3)
+
+
+def block_grid(source: PlaneSource, settings: ReportSettings) -> tuple[np.ndarray, tuple[int, int], np.ndarray]:
+    """Return the probe's block centres ``(B, 2)`` (level px, row by row), the grid shape and each block's region.
+
+    Regions are squares of about ``region_size`` level-0 px of the block grid; a task reads one
+    region window at a time.
+    """
     h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
-    spacing, half, search, margin = probe_geometry(source, settings, w * source.factor, h * source.factor)
+    spacing, half, search, _ = probe_geometry(source, settings, w * source.factor, h * source.factor)
     inner = half + search + 3
     xs = np.arange(inner + spacing // 2, w - inner, spacing)
     ys = np.arange(inner + spacing // 2, h - inner, spacing)
-    if not len(xs) or not len(ys):
-        return []
+    gx, gy = np.meshgrid(xs, ys)
+    pts = np.column_stack([gx.ravel(), gy.ravel()]).astype(int)
     step = max(1, int(round(settings.region_size / source.factor / spacing)))  # blocks per region edge
-    out = []
-    for i in range(0, len(ys), step):
-        for j in range(0, len(xs), step):
-            gy, gx = ys[i:i + step], xs[j:j + step]
-            out.append((int(gx[0]), int(gy[0]), int(gx[-1]) + 1, int(gy[-1]) + 1))
+    iy, ix = np.divmod(np.arange(len(pts)), max(len(xs), 1))
+    cols = -(-len(xs) // step) if len(xs) else 0
+    region = (iy // step) * cols + ix // step
+    return pts, (len(ys), len(xs)), region
+
+
+def _cut(img: np.ndarray, centres: np.ndarray, r: int) -> np.ndarray:
+    """Return ``(N, 2r+1, 2r+1)`` blocks of ``img`` around integer ``(x, y)`` centres; NaN outside ``img``."""
+    h, w = img.shape
+    out = np.full((len(centres), 2 * r + 1, 2 * r + 1), np.nan, np.float32)
+    for k, (x, y) in enumerate(np.asarray(centres, int)):
+        x0, y0, x1, y1 = max(0, x - r), max(0, y - r), min(w, x + r + 1), min(h, y + r + 1)
+        if x1 > x0 and y1 > y0:
+            out[k, y0 - (y - r):y1 - (y - r), x0 - (x - r):x1 - (x - r)] = img[y0:y1, x0:x1]
     return out
 
 
-def _read(source: PlaneSource, z: int, box, margin: int, settings: ReportSettings):
-    """Return the band-passed window (NaN where there is no data) and its top-left level pixel."""
+def _reduced(img: np.ndarray) -> np.ndarray:
+    """Return ``img`` reduced ``COARSE`` times by area means; NaN where any of a cell's pixels is NaN."""
+    import cv2
+
+    h, w = img.shape
+    size = (max(1, w // COARSE), max(1, h // COARSE))
+    small = cv2.resize(np.nan_to_num(img, nan=0.0), size, interpolation=cv2.INTER_AREA)
+    valid = cv2.resize(np.isfinite(img).astype(np.float32), size, interpolation=cv2.INTER_AREA) > 0.999
+    small[~valid] = np.nan
+    return small
+
+
+def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, half: int, search: int, reach: int,
+                 fine_sigma: float, coarse_sigma: float, small=None):
+    """Return the shift, band-passed NCC and beyond-reach mark of each block between two windows of two planes.
+
+    Parameters
+    ----------
+    fixed, moving : ndarray, shape (H, W)
+        The same window of two planes (this level's pixels, float32, NaN where there is no data).
+    points : ndarray of int, shape (N, 2)
+        Block centres ``(x, y)`` in the window.
+    half, search : int
+        Flat half-width of a block's window and the shift searched around the first answer.
+    reach : int
+        The first pass, on ``COARSE``-times reduced blocks, finds shifts up to this; 0 skips it.
+    fine_sigma, coarse_sigma : float
+        Band of the match (pixels): structure finer than ``fine_sigma`` and shading coarser
+        than ``coarse_sigma`` have little say (see ``match_block_pairs``).
+    small : tuple of ndarray, optional
+        The two windows already reduced by :func:`_reduced` (computed when omitted).
+
+    Returns
+    -------
+    shifts : ndarray, shape (N, 2)
+        ``(dx, dy)``: the content of ``fixed`` around a point is in ``moving`` around point + shift; NaN
+        where no match was made.
+    ncc : ndarray, shape (N,)
+        Normalised cross-correlation of the band-passed blocks at the match (NaN where unmatched).
+    beyond : ndarray of bool, shape (N,)
+        The first pass put the match farther than ``reach``: the plane is off by more than the probe sees.
+
+    Notes
+    -----
+    Both passes are :func:`stackbuild.align.blockmatch.match_block_pairs` (band-limited phase
+    correlation with unbiased sub-pixel refinement; its docstring has the references), called
+    once per pass for all blocks.
+    """
+    from ..align.blockmatch import match_block_pairs
+
+    pts = np.asarray(points, int).reshape(-1, 2)
+    n = len(pts)
+    start = np.zeros((n, 2), int)
+    beyond = np.zeros(n, bool)
+    if reach > search and n:
+        ch, cs = _coarse_sizes(half, reach)
+        fs, ms = small if small is not None else (_reduced(fixed), _reduced(moving))
+        cp = np.rint(pts / COARSE).astype(int)
+        res = match_block_pairs(_cut(fs, cp, ch + cs + 1), _cut(ms, cp, ch + cs + 1), cs, half_size=ch,
+                                fine_sigma=max(fine_sigma / COARSE, 0.5), coarse_sigma=max(coarse_sigma / COARSE, 2.0),
+                                subpixel=False)
+        ok = np.isfinite(res.shifts[:, 0])
+        d = np.where(ok[:, None], res.shifts * COARSE, 0.0)
+        beyond = ok & (np.abs(d).max(axis=1) > reach)
+        start = np.where(beyond[:, None], 0, np.rint(d)).astype(int)
+    r = half + search + 1
+    res = match_block_pairs(_cut(fixed, pts, r), _cut(moving, pts + start, r), search, half_size=half,
+                            fine_sigma=fine_sigma, coarse_sigma=coarse_sigma)
+    shifts = res.shifts + start
+    shifts[beyond] = np.nan
+    ncc = np.where(beyond, np.nan, res.ncc)
+    return shifts, ncc, beyond
+
+
+def _window(source: PlaneSource, z: int, box, margin: int, reduce: bool):
+    """Return plane ``z``'s window around a box of block centres (NaN where no data), reduced copy, top-left pixel."""
+    import cv2
+
     x0, y0, x1, y1 = box
     h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
     wx0, wy0 = max(0, x0 - margin), max(0, y0 - margin)
     wx1, wy1 = min(w, x1 + margin), min(h, y1 + margin)
     img = source.window(z, wy0, wy1, wx0, wx1)
     valid = data_mask(img)
-    if not valid.any():
-        return None, (wx0, wy0)
-    fill = float(img[valid].mean())
-    f = source.factor
-    band = bandpass(np.where(valid, img, fill), settings.probe_fine_sigma / f, settings.probe_coarse_sigma / f)
-    band[~valid] = np.nan
-    return band, (wx0, wy0)
+    small = None
+    if reduce:
+        # the reduced copy from the window as read (no data is 0 there), its no-data cells from the mask
+        size = (max(1, img.shape[1] // COARSE), max(1, img.shape[0] // COARSE))
+        small = cv2.resize(img, size, interpolation=cv2.INTER_AREA)
+        small[cv2.resize(valid.astype(np.uint8) * 255, size, interpolation=cv2.INTER_AREA) < 255] = np.nan
+    img[~valid] = np.nan
+    return img, small, np.array([wx0, wy0])
 
 
-def probe_region(job: RegionJob) -> dict:
-    """Measure one region down the stack; return per-plane sums, link figures and sampled blocks (runs on a worker)."""
+def probe_pair(job: PairJob) -> list[dict]:
+    """Measure a set of plane pairs, region by region; store each pair's shifts (runs on a worker).
+
+    Each region's window of each plane is read once and kept while a later pair still needs
+    it (at most ``probe_spans + 1`` windows). Returns one summary per pair: ``z_from``,
+    ``z_to``, ``fingerprint`` and the apparent motion (blocks ``n`` matched with at least
+    ``probe_min_confidence``, ``tried``, ``beyond`` the reach, ``median`` and ``p95`` of the
+    shift length, level-0 px).
+    """
+    from .reuse import write_pair
+
     st = job.settings
     source = open_planes(job.build, max_factor=job.max_factor, written=job.written)
     h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
-    spacing, half, search, margin = probe_geometry(source, st, w * source.factor, h * source.factor)
-    x0, y0, x1, y1 = job.box
-    gx, gy = np.meshgrid(np.arange(x0, x1, spacing), np.arange(y0, y1, spacing))
-    pts = np.column_stack([gx.ravel(), gy.ravel()])
-    zs = list(job.z)
-    recent: dict[int, tuple] = {}
-    la, lb, shifts, conf = [], [], [], []
-    for i, z in enumerate(zs):
-        band, corner = _read(source, z, job.box, margin, st)
-        recent[i] = (band, corner)
-        recent.pop(i - st.probe_spans - 1, None)
-        for k in range(1, st.probe_spans + 1):
-            if i - k < 0:
-                continue
-            fa, ca = recent[i - k]
-            la.append(i - k)
-            lb.append(i)
-            if fa is None or band is None:
-                shifts.append(np.full((len(pts), 2), np.nan))
-                conf.append(np.full(len(pts), np.nan))
-                continue
-            local = pts - np.asarray(corner)
-            start = _coarse_offsets(fa, band, local, half, st.probe_reach / source.factor, st.probe_min_confidence)
-            s, c = match_points(fa, band, local, half=half, search=search, min_ncc=st.probe_min_confidence,
-                                offsets=start)
-            shifts.append(s * source.factor)
-            conf.append(c)
-    nz = len(zs)
-    if not la:
-        shifts_arr = np.zeros((0, len(pts), 2))
-    else:
-        shifts_arr = np.stack(shifts)
-    jit = block_jitter(np.asarray(zs, float), np.asarray(la, int), np.asarray(lb, int), shifts_arr,
-                       window=st.slow_window, stack=np.asarray(job.stack or zs, float)) if la else None
-    if jit is not None and st.probe_neighbourhood > 1:
-        jit.jitter = _spatial_median(jit.jitter, gx.shape, st.probe_neighbourhood)
-        jit.noise_var = jit.noise_var * _median_noise_share(jit.noise_var, gx.shape, st.probe_neighbourhood)
-    pts0 = source.to_level0(pts)
-    out = {"box": [float(v) for v in (*source.to_level0([[x0, y0]])[0], *source.to_level0([[x1 - 1, y1 - 1]])[0])],
-           "z": zs, "blocks": len(pts), "sigma": None if jit is None or not np.isfinite(jit.sigma) else jit.sigma}
-    if jit is None:
-        out["planes"] = None
-    else:
-        s = plane_summary(jit)
-        out["planes"] = {"n": s["n"].tolist(), "sum_sq": s["sum_sq"].tolist(), "sum_noise": s["sum_noise"].tolist(),
-                         "max": s["max"].tolist(),
-                         "max_at": [pts0[k].tolist() for k in s["argmax"]]}
-    out["links"] = _link_rows(la, lb, zs, shifts_arr, conf)
-    out["sample"] = _sample_rows(zs, pts0, jit, shifts_arr, la, lb, st.blocks_per_region)
+    _, half, search, margin = probe_geometry(source, st, w * source.factor, h * source.factor)
+    pts, _, region = block_grid(source, st)
+    f = source.factor
+    nb, npairs = len(pts), len(job.pairs)
+    shifts = np.full((npairs, nb, 2), np.nan)
+    ncc = np.full((npairs, nb), np.nan)
+    beyond = np.zeros((npairs, nb), bool)
+    reach = int(np.ceil(st.probe_reach / f))
+    reduce = reach > search
+    planes = sorted({z for p in job.pairs for z in p})
+    for r in np.unique(region):
+        sel = np.flatnonzero(region == r)
+        box = (*pts[sel].min(axis=0), *(pts[sel].max(axis=0) + 1))
+        held: dict[int, tuple] = {}
+        for z in planes:
+            held[z] = _window(source, z, box, margin, reduce)
+            for k, (a, b) in enumerate(job.pairs):
+                if b != z or a not in held:
+                    continue
+                (fa, sa, corner), (fb, sb, _) = held[a], held[b]
+                if not (np.isfinite(fa).any() and np.isfinite(fb).any()):
+                    continue
+                s_, c_, b_ = match_planes(fa, fb, pts[sel] - corner, half=half, search=search, reach=reach,
+                                          fine_sigma=st.probe_fine_sigma / f, coarse_sigma=st.probe_coarse_sigma / f,
+                                          small=(sa, sb) if reduce else None)
+                shifts[k, sel], ncc[k, sel], beyond[k, sel] = s_ * f, c_, b_
+            for y in [y for y in held if not any(y in p and p[1] > z for p in job.pairs)]:
+                held.pop(y)  # no later pair needs it
+    out = []
+    for k, (a, b) in enumerate(job.pairs):
+        write_pair(job.build, a, b, job.fingerprints[k], shifts[k], ncc[k], beyond[k])
+        out.append({"z_from": a, "z_to": b, "fingerprint": job.fingerprints[k],
+                    **link_summary(shifts[k], ncc[k], beyond[k], st.probe_min_confidence)})
     return out
 
 
-def _spatial_median(jitter: np.ndarray, grid: tuple[int, int], size: int) -> np.ndarray:
-    """Return the jitter with each block replaced by the component-wise median of its ``size x size`` neighbours.
+def link_summary(shifts: np.ndarray, ncc: np.ndarray, beyond: np.ndarray, min_ncc: float) -> dict:
+    """Return the apparent motion of one pair: blocks matched, tried and beyond reach; median, p95 shift (px)."""
+    ok = np.isfinite(shifts[:, 0]) & (np.nan_to_num(ncc, nan=-1.0) >= min_ncc)
+    mag = np.hypot(shifts[ok, 0], shifts[ok, 1])
+    return {"n": int(ok.sum()), "tried": int((np.isfinite(ncc) | beyond).sum()), "beyond": int(beyond.sum()),
+            "median": float(np.median(mag)) if mag.size else None,
+            "p95": float(np.percentile(mag, 95)) if mag.size else None}
 
-    Alignment errors are smooth over several blocks (and a misplaced tile covers several); a
-    single block that follows content of its own (an organelle ending, a false match that the
-    chain could not reject) is not an alignment error. NaN (unmeasured) blocks are skipped.
-    The neighbourhoods are stacked as shifted views of a NaN-padded grid and reduced at once
-    (one ``nanmedian`` call instead of one Python call per block).
+
+def plane_pairs(present: list[int], spans: int) -> list[tuple[int, int]]:
+    """Return the measured pairs ``(a, b)``: each present plane with the next ``spans`` present planes."""
+    return [(present[i], present[j]) for i in range(len(present))
+            for j in range(i + 1, min(len(present), i + spans + 1))]
+
+
+@dataclass
+class ProbeResult:
+    """What the driver keeps of the probe: per-plane sums and per-pair figures, never block data.
+
+    Attributes
+    ----------
+    planes : dict
+        ``{z: {"n", "sum_sq", "sum_noise", "max", "at_xy"}}`` (see :func:`stackbuild.qc.zchain.plane_summary`).
+    links : dict
+        ``{(z_from, z_to): {"n", "tried", "beyond", "median", "p95"}}``: apparent motion per pair.
+    sigma : float or None
+        Matching noise (median over the runs), px per component.
+    runs : list of int
+        First core plane of every stored run (``DIR/qc/measured/runs``), for the tables and figures.
+    boxes : dict
+        ``{region: [x0, y0, x1, y1]}``: level-0 box of each region's block centres.
+    pairs_measured, pairs_reused, runs_solved : int
+        What this report measured, re-used and solved again.
     """
-    import warnings
 
-    z, b, _ = jitter.shape
-    gy, gx = grid
-    r = size // 2
-    cube = jitter.reshape(z, gy, gx, 2)
-    pad = np.full((z, gy + 2 * r, gx + 2 * r, 2), np.nan)
-    pad[:, r:r + gy, r:r + gx] = cube
-    stack = np.stack([pad[:, i:i + gy, j:j + gx] for i in range(size) for j in range(size)])
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # an all-NaN neighbourhood gives NaN, as it should
-        out = np.nanmedian(stack, axis=0)
-    out[np.isnan(cube)] = np.nan
-    return out.reshape(z, b, 2)
+    planes: dict
+    links: dict
+    sigma: float | None
+    runs: list
+    boxes: dict
+    pairs_measured: int = 0
+    pairs_reused: int = 0
+    runs_solved: int = 0
 
 
-def _median_noise_share(noise_var: np.ndarray, grid: tuple[int, int], size: int) -> np.ndarray:
-    """Return the share of a block's matching-noise variance left after the median over its neighbours.
-
-    The median of ``k`` independent normal values has about ``pi / (2 k)`` of their variance
-    (its asymptotic efficiency 2 / pi for normal data; a textbook result, cited from memory); the
-    noise subtracted from the mean square must shrink with it, or it takes real error away
-    (the realistic phantom's middle planes read 0.1-0.2 px against 0.5 px true before).
-    """
-    z, b = noise_var.shape
-    gy, gx = grid
-    r = size // 2
-    have = np.isfinite(noise_var).reshape(z, gy, gx)
-    pad = np.zeros((z, gy + 2 * r, gx + 2 * r))
-    pad[:, r:r + gy, r:r + gx] = have
-    k = sum(pad[:, i:i + gy, j:j + gx] for i in range(size) for j in range(size))
-    return np.clip(np.pi / (2.0 * np.maximum(k, 1.0)), 0.0, 1.0).reshape(z, b)
-
-
-def _coarse_offsets(fixed, moving, pts, half: int, reach: float, min_ncc: float, factor: int = 4) -> np.ndarray:
-    """Return whole-pixel starting shifts from a ``factor``-times reduced match reaching ``reach`` pixels.
-
-    Planes off by more than the fine search (a rotated or badly warped section) are still found;
-    blocks without a trustworthy coarse match start from zero.
-    """
-    import cv2
-
-    if reach <= 0:
-        return np.zeros_like(pts)
-    h, w = fixed.shape
-    size = (max(1, w // factor), max(1, h // factor))
-    small = [cv2.resize(np.nan_to_num(a, nan=0.0), size, interpolation=cv2.INTER_AREA) for a in (fixed, moving)]
-    valid = [cv2.resize(np.isfinite(a).astype(np.float32), size, interpolation=cv2.INTER_AREA) > 0.999
-             for a in (fixed, moving)]
-    for s_, v_ in zip(small, valid):
-        s_[~v_] = np.nan
-    c_pts = np.round(pts / factor).astype(int)
-    d, _ = match_points(small[0], small[1], c_pts, half=max(4, half // factor),
-                        search=max(2, int(np.ceil(reach / factor))), min_ncc=min_ncc, refine=False)
-    out = np.where(np.isfinite(d), np.round(d * factor), 0.0)
-    return out.astype(int)
-
-
-def _link_rows(la, lb, zs, shifts, conf) -> list[dict]:
-    """Return apparent motion per link: blocks matched, median and 95th percentile of the shift length."""
-    rows = []
-    for k, (a, b) in enumerate(zip(la, lb)):
-        mag = np.hypot(shifts[k, :, 0], shifts[k, :, 1])
-        ok = np.isfinite(mag)
-        rows.append({"z_from": zs[a], "z_to": zs[b], "n": int(ok.sum()),
-                     "tried": int((~np.isnan(conf[k])).sum()), "beyond": int(np.isneginf(conf[k]).sum()),
-                     "median": float(np.median(mag[ok])) if ok.any() else None,
-                     "p95": float(np.percentile(mag[ok], 95)) if ok.any() else None})
-    return rows
-
-
-def _sample_rows(zs, pts0, jit, shifts, la, lb, count: int) -> list[dict]:
-    """Return block rows of a deterministic sample of blocks (all blocks when ``count < 0``)."""
-    if jit is None or not len(pts0):
-        return []
-    nb = len(pts0)
-    pick = np.arange(nb) if count < 0 or count >= nb else np.linspace(0, nb - 1, count).round().astype(int)
-    rows = []
-    span1 = {b: k for k, (a, b) in enumerate(zip(la, lb)) if b - a == 1}
-    for k in np.unique(pick):
-        for i, z in enumerate(zs):
-            jx, jy = jit.jitter[i, k]
-            if not np.isfinite(jx):
-                continue
-            link = span1.get(i)
-            dx, dy = (shifts[link, k] if link is not None else (np.nan, np.nan))
-            rows.append({"z": z, "x_px": round(float(pts0[k, 0]), 1), "y_px": round(float(pts0[k, 1]), 1),
-                         "error_dx": round(float(jx), 3), "error_dy": round(float(jy), 3),
-                         "error": round(float(np.hypot(jx, jy)), 3),
-                         "motion_dx": None if not np.isfinite(dx) else round(float(dx), 3),
-                         "motion_dy": None if not np.isfinite(dy) else round(float(dy), 3)})
-    return rows
+def _stored_link(doc: dict, min_ncc: float) -> dict:
+    f = lambda xs: np.array([np.nan if v is None else v for v in xs], float)  # noqa: E731
+    shifts = np.column_stack([f(doc["dx"]), f(doc["dy"])])
+    beyond = np.zeros(len(shifts), bool)
+    beyond[doc.get("beyond") or []] = True
+    return link_summary(shifts, f(doc["ncc"]), beyond, min_ncc)
 
 
 def measure_error(build_dir, source: PlaneSource, present: list[int], settings: ReportSettings, *,
-                  written: bool, max_factor: float, mapper=map, reuse: bool = True) -> list[dict]:
-    """Run the probe over every region through ``mapper``; return one result per region over all ``present`` planes.
+                  written: bool, max_factor: float, mapper=map, reuse: bool = True) -> ProbeResult:
+    """Run the probe over the ``present`` planes through ``mapper``: pair tasks, then run tasks.
 
-    With ``reuse``, the sums stored in ``DIR/qc/measured/probe.json`` are kept for every plane
-    whose fingerprint (:func:`stackbuild.qc.reuse.plane_fingerprints`) is unchanged, and the
-    probe runs only over the changed planes plus their reach on each side as context
-    (:func:`stackbuild.qc.reuse.context_runs`); results of the context planes are dropped.
-    The new sums are stored for the next report.
+    With ``reuse``, a pair whose stored fingerprint equals its current one is not measured
+    again, and a run whose stored fingerprint (its pairs', the stack's, the settings') is
+    unchanged is not solved again; ``reuse=False`` measures and solves everything.
     """
-    import json
-
     from ..folder import BuildFolder
-    from ..transforms.store import atomic_write_text
-    from .reuse import MEASURED, changed_planes, context_runs, plane_fingerprints, probe_reach
+    from .reuse import pair_fingerprints, probe_reach, run_fingerprint, stored_pair, stored_run
+    from .runs import RunJob, jitter_run, runs_of
 
     folder = BuildFolder(build_dir)
-    boxes = regions(source, settings, present)
-    fps = plane_fingerprints(folder, source, present, settings)
-    path = folder.qc_dir / MEASURED / "probe.json"
-    old = {}
-    if reuse and path.is_file():
-        try:
-            old = json.loads(path.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            old = {}
-    same_boxes = [list(map(float, b)) for b in old.get("boxes", [])] == [list(map(float, b)) for b in boxes]
-    changed = changed_planes(old.get("fingerprints", {}) if same_boxes else {}, fps)
-    if not same_boxes or not old.get("regions") or len(changed) == len(present):
-        runs = [list(present)] if present else []
-    else:
-        runs = context_runs(changed, present, probe_reach(settings))
-    jobs = [RegionJob(str(build_dir), written, max_factor, box, tuple(run), settings, tuple(present))
-            for run in runs for box in boxes]
-    new = list(mapper(probe_region, jobs))
-    by_box: dict[int, list[dict]] = {}
-    for k, r in enumerate(new):
-        by_box.setdefault(k % len(boxes), []).append(r)
-    results = []
-    for i in range(len(boxes)):
-        base = old["regions"][i] if runs != [list(present)] else None
-        results.append(merge_region(base, by_box.get(i, []), set(changed), present))
-    path.parent.mkdir(parents=True, exist_ok=True)
-    atomic_write_text(path, json.dumps({"boxes": [list(b) for b in boxes], "fingerprints": {str(z): f for z, f in fps.items()},
-                                        "regions": results}) + "\n")
-    return results
-
-
-_PLANE_KEYS = ("n", "sum_sq", "sum_noise", "max", "max_at")
-
-
-def merge_region(base: dict | None, parts: list[dict], changed: set[int], present: list[int]) -> dict:
-    """Return one region's result over ``present`` planes: ``parts`` (new runs) for changed planes, ``base`` else.
-
-    Without ``base`` the parts are taken whole (a full run is one part). Link rows are
-    re-measured pairs of planes; a new row replaces the stored row of the same pair.
-    """
-    if base is None and len(parts) == 1:
-        return parts[0]
-    rows: dict[int, tuple] = {}
-    links: dict[tuple[int, int], dict] = {}
-    sample: dict[int, list] = {}
-    for src, keep in ([(base, lambda z: z not in changed)] if base else []) + [(p, lambda z: z in changed) for p in parts]:
-        p = src.get("planes")
-        for i, z in enumerate(src["z"]):
-            if keep(z):
-                rows[z] = tuple(p[k][i] for k in _PLANE_KEYS) if p else None
-                sample[z] = [r for r in src.get("sample", []) if r["z"] == z]
-        for link in src.get("links", []):
-            if keep(link["z_from"]) or keep(link["z_to"]) or src is base:
-                links[(link["z_from"], link["z_to"])] = link
-    zs = [z for z in present if z in rows]
-    first = base or parts[0]
-    have = [rows[z] for z in zs if rows[z] is not None]
-    planes = None
-    if have:
-        planes = {k: [rows[z][j] if rows[z] is not None else (0 if k != "max" else -1.0) for z in zs]
-                  for j, k in enumerate(_PLANE_KEYS)}
-        planes["max_at"] = [rows[z][4] if rows[z] is not None else [0.0, 0.0] for z in zs]
-    sig = [s for s in [first.get("sigma")] + [p.get("sigma") for p in parts] if s is not None]
-    return {"box": first["box"], "z": zs, "blocks": first["blocks"], "sigma": float(np.median(sig)) if sig else None,
-            "planes": planes, "links": [links[k] for k in sorted(links)],
-            "sample": [r for z in zs for r in sample.get(z, [])]}
+    st = settings
+    pairs = plane_pairs(present, st.probe_spans)
+    fps = pair_fingerprints(folder, source, pairs, st)
+    links, todo = {}, {}
+    for a, b in pairs:
+        old = stored_pair(build_dir, a, b) if reuse and fps[(a, b)] is not None else None
+        if old is not None and old.get("fingerprint") == fps[(a, b)]:
+            links[(a, b)] = _stored_link(old, st.probe_min_confidence)
+        else:
+            todo.setdefault(a, []).append(b)
+    index = {z: i for i, z in enumerate(present)}
+    groups: dict[int, list] = {}
+    for a, bs in sorted(todo.items()):
+        groups.setdefault(index[a] // PAIRS_TASK, []).extend((a, b) for b in bs)
+    jobs = [PairJob(str(build_dir), written, max_factor, tuple(g), tuple(fps[p] for p in g), st)
+            for _, g in sorted(groups.items())]
+    fresh = set()
+    for res in mapper(probe_pair, jobs):
+        for r in res:
+            key = (r["z_from"], r["z_to"])
+            fresh.add(key)
+            links[key] = {k: v for k, v in r.items() if k not in ("z_from", "z_to", "fingerprint")}
+    pts, grid, region = block_grid(source, st)
+    pts0 = source.to_level0(pts) if len(pts) else np.zeros((0, 2))
+    boxes = {int(r): [round(float(v), 1) for v in (*pts0[region == r].min(axis=0), *pts0[region == r].max(axis=0))]
+             for r in np.unique(region)}
+    planes, sigmas, firsts, run_jobs = {}, [], [], []
+    for core, window in runs_of(present, probe_reach(st)):
+        inside = set(window)
+        mine = {p: fps[p] for p in pairs if p[0] in inside and p[1] in inside}
+        fp = run_fingerprint(mine, window, present, st)
+        firsts.append(core[0])
+        old = stored_run(build_dir, core[0]) if reuse and fp is not None and not (fresh & set(mine)) else None
+        if old is not None and old.get("fingerprint") == fp:
+            planes.update({int(z): v for z, v in old["planes"].items()})
+            sigmas.append(old.get("sigma"))
+            continue
+        run_jobs.append(RunJob(str(build_dir), tuple(core), tuple(window), tuple(present), tuple(sorted(mine)), fp,
+                               st, grid, tuple(map(tuple, pts0.tolist())), tuple(int(r) for r in region)))
+    for res in mapper(jitter_run, run_jobs):
+        planes.update({int(z): v for z, v in res["planes"].items()})
+        sigmas.append(res["sigma"])
+    sig = [s for s in sigmas if s is not None]
+    return ProbeResult(planes, links, float(np.median(sig)) if sig else None, firsts, boxes,
+                       pairs_measured=len(fresh), pairs_reused=len(pairs) - len(fresh), runs_solved=len(run_jobs))

@@ -73,18 +73,24 @@ def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> 
 
 
 def _region_grid(meas, doc) -> tuple[np.ndarray | None, list[int]]:
-    """Return the planes x regions grid of estimated error (NaN where unmeasured) and the plane numbers."""
+    """Return the planes x regions grid of estimated error (NaN where unmeasured) and the plane numbers.
+
+    Read from the stored runs one at a time (:func:`stackbuild.qc.metrics._stored_runs`).
+    """
+    from .metrics import _stored_runs
+
     depth = doc["volume"]["depth"] or 0
-    regs = [r for r in meas.probe if r.get("planes")]
-    if not regs or not depth:
+    if meas.probe is None or not meas.probe.boxes or not depth:
         return None, []
-    grid = np.full((depth, len(regs)), np.nan)
-    for j, r in enumerate(regs):
-        p = r["planes"]
-        for i, z in enumerate(r["z"]):
-            est, _ = section_error(p["n"][i], p["sum_sq"][i], p["sum_noise"][i])
-            if est is not None:
-                grid[z, j] = est
+    cols = {r: j for j, r in enumerate(sorted(meas.probe.boxes))}
+    grid = np.full((depth, len(cols)), np.nan)
+    for run in _stored_runs(meas):
+        for row in run.get("regions", []):
+            est, _ = section_error(row["n"], row["sum_sq"], row["sum_noise"])
+            if est is not None and row["region"] in cols and 0 <= row["z"] < depth:
+                grid[row["z"], cols[row["region"]]] = est
+    if not np.isfinite(grid).any():
+        return None, []
     return grid, list(range(depth))
 
 

@@ -8,13 +8,14 @@ Two kinds of stored measurement live under ``DIR/qc/measured/``:
   (:func:`stackbuild.render.fingerprint.file_identities`), its displacement field, the
   canvas and the settings that change what is measured. Seams do not depend on the
   neighbours.
-* ``probe.json``: the alignment-error probe's per-region, per-plane sums. The estimate of
-  plane ``z`` depends on the planes around it (the chain of block shifts and the straight
-  line fitted along z, :mod:`stackbuild.qc.zchain`), so its fingerprint covers the written
-  planes within :func:`probe_reach` of it (their render fingerprints,
-  :mod:`stackbuild.render.fingerprint`) and the probe's settings. A re-report runs the
-  probe again only over the changed planes plus that reach on each side as context, and
-  keeps the stored sums of every other plane.
+* ``pairs/<a>-<b>.json``: the probe's block shifts between planes ``a`` and ``b``
+  (:mod:`stackbuild.qc.probe`). Its fingerprint is made of the two planes' render
+  fingerprints (what each was rendered from: tile placements and tile files, intensity,
+  alignment and field, canvas, render settings; :mod:`stackbuild.render.fingerprint`), the
+  measured level and the settings that change the shifts. A plane changed by an update
+  changes the ``2 x probe_spans`` pairs it takes part in, and only those are measured again.
+* ``runs/<first>.json``: one run of planes solved along z (:mod:`stackbuild.qc.runs`),
+  stamped with the fingerprints of every pair it read, the stack and its settings.
 
 A measurement whose fingerprint is unchanged is re-used as stored; nothing else is.
 """
@@ -23,18 +24,22 @@ from __future__ import annotations
 import hashlib
 from dataclasses import asdict
 
+import numpy as np
+
 from ..render.fingerprint import digest
 
 #: folder under ``DIR/qc`` holding the stored measurements
 MEASURED = "measured"
 #: bump when what a stored measurement holds or how it is measured changes (old files are then ignored)
-MEASURE_VERSION = 4
+MEASURE_VERSION = 5
 #: settings that change a section's seam measurement or its copied figures
 SECTION_KEYS = ("seam_spacing", "seam_half_size", "seam_max_shift", "seam_smooth", "min_block_ncc")
-#: settings that change the probe's sums
-PROBE_KEYS = ("measure_scale", "align_p95", "probe_spacing", "probe_blocks", "probe_half_size", "probe_max_shift",
-              "probe_reach", "probe_neighbourhood", "probe_fine_sigma", "probe_coarse_sigma",
-              "probe_min_confidence", "probe_spans", "slow_window", "region_size", "blocks_per_region")
+#: settings that change a pair's block shifts
+PAIR_KEYS = ("measure_scale", "align_p95", "probe_spacing", "probe_blocks", "probe_half_size", "probe_max_shift",
+             "probe_reach", "probe_fine_sigma", "probe_coarse_sigma", "region_size")
+#: ... and the settings that change a run's solution from them
+RUN_KEYS = PAIR_KEYS + ("probe_neighbourhood", "probe_min_confidence", "probe_spans", "slow_window",
+                        "blocks_per_region")
 
 
 def _file_digest(path) -> str | None:
@@ -63,56 +68,110 @@ def probe_reach(settings) -> int:
     return int(settings.slow_window) // 2 + int(settings.probe_spans)
 
 
-def plane_fingerprints(folder, source, present: list[int], settings) -> dict[int, str]:
-    """Return ``{z: fingerprint}`` of the probe's estimate of each present plane.
-
-    Built from the written planes' render fingerprints within :func:`probe_reach` (by
-    position among the present planes), the measured level and the probe's settings. A
-    plane without a recorded fingerprint (never written, being rewritten, damaged, or read
-    from the lazy volume) gets a fingerprint of its own that matches nothing stored, so
-    every plane near it is measured again.
-    """
+def render_fingerprints(folder, source) -> dict[int, str | None]:
+    """Return ``{z: render fingerprint}`` of the planes the probe reads (None: unrecorded, damaged or lazy)."""
     from ..render.fingerprint import read_plane_record
 
     record = read_plane_record(folder.pyramid_path()) if source.origin == "volume.zarr" else None
     written = (record or {}).get("fingerprints") or {}
     damaged = (record or {}).get("damaged") or {}
+    return {z: (None if str(z) in damaged else written.get(str(z))) for z in range(source.depth)}
+
+
+def pair_fingerprints(folder, source, pairs, settings) -> dict[tuple[int, int], str | None]:
+    """Return ``{(a, b): fingerprint}`` of each pair's shifts; None where a plane has no recorded fingerprint.
+
+    A pair with None is always measured again (a plane never written, being rewritten,
+    damaged, or read from the lazy volume).
+    """
+    planes = render_fingerprints(folder, source)
     s = asdict(settings)
     base = {"v": MEASURE_VERSION, "level": [source.origin, source.level, source.factor, source.bin],
-            "settings": {k: s[k] for k in PROBE_KEYS}, "shape": list(source.data.shape)}
-    reach = probe_reach(settings)
-    fps = {}
-    for i, z in enumerate(present):
-        near = present[max(0, i - reach):i + reach + 1]
-        own = [None if (str(k) in damaged) else written.get(str(k)) for k in near]
-        if any(v is None for v in own):
-            fps[z] = "unrecorded"
-            continue
-        fps[z] = digest({**base, "planes": dict(zip(map(str, near), own)), "present": near})
-    return fps
+            "settings": {k: s[k] for k in PAIR_KEYS}, "shape": list(source.data.shape)}
+    out = {}
+    for a, b in pairs:
+        fa, fb = planes.get(a), planes.get(b)
+        out[(a, b)] = None if fa is None or fb is None else digest({**base, "a": [a, fa], "b": [b, fb]})
+    return out
 
 
-def changed_planes(stored: dict[str, str], current: dict[int, str]) -> list[int]:
-    """Return the present planes whose probe fingerprint differs from the stored one (or has none)."""
-    return sorted(z for z, fp in current.items() if fp == "unrecorded" or stored.get(str(z)) != fp)
+def run_fingerprint(pair_fps: dict, window, stack, settings) -> str | None:
+    """Return the fingerprint of one run: its pairs' fingerprints, its planes, the stack and the settings."""
+    fps = [[a, b, pair_fps.get((a, b))] for a, b in sorted(pair_fps)]
+    if any(f is None for _, _, f in fps):
+        return None
+    s = asdict(settings)
+    return digest({"v": MEASURE_VERSION, "pairs": fps, "window": list(window), "stack": list(stack),
+                   "settings": {k: s[k] for k in RUN_KEYS}})
 
 
-def context_runs(changed: list[int], present: list[int], reach: int) -> list[list[int]]:
-    """Return runs of present planes to probe again: the changed ones plus ``reach`` planes each side.
+def _pair_path(build, a: int, b: int):
+    from ..folder import BuildFolder
 
-    Overlapping runs are merged; each run is a list of present planes in order.
-    """
-    if not changed:
-        return []
-    index = {z: i for i, z in enumerate(present)}
-    spans = sorted((max(0, index[z] - reach), min(len(present) - 1, index[z] + reach)) for z in changed if z in index)
-    runs: list[list[int]] = []
-    lo, hi = spans[0]
-    for a, b in spans[1:]:
-        if a <= hi + 1:
-            hi = max(hi, b)
-        else:
-            runs.append(present[lo:hi + 1])
-            lo, hi = a, b
-    runs.append(present[lo:hi + 1])
-    return runs
+    return BuildFolder(build).qc_dir / MEASURED / "pairs" / f"{int(a):05d}-{int(b):05d}.json"
+
+
+def _run_path(build, first: int):
+    from ..folder import BuildFolder
+
+    return BuildFolder(build).qc_dir / MEASURED / "runs" / f"{int(first):05d}.json"
+
+
+def _num(v, nd: int = 4):
+    return None if not np.isfinite(v) else round(float(v), nd)
+
+
+def write_pair(build, a: int, b: int, fingerprint, shifts, ncc, beyond) -> None:
+    """Store one pair's block shifts (level-0 px), NCC and beyond-reach marks with its fingerprint."""
+    import json
+
+    from ..transforms.store import atomic_write_text
+
+    path = _pair_path(build, a, b)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    doc = {"fingerprint": fingerprint, "a": int(a), "b": int(b),
+           "dx": [_num(v) for v in shifts[:, 0]], "dy": [_num(v) for v in shifts[:, 1]],
+           "ncc": [_num(v, 3) for v in ncc], "beyond": np.flatnonzero(beyond).tolist()}
+    atomic_write_text(path, json.dumps(doc) + "\n")
+
+
+def stored_pair(build, a: int, b: int) -> dict | None:
+    """Return the stored document of pair ``(a, b)`` (None when absent or unreadable)."""
+    import json
+
+    try:
+        return json.loads(_pair_path(build, a, b).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+def read_pair(build, a: int, b: int):
+    """Return ``(shifts (B, 2), ncc (B,))`` of a stored pair (NaN where unmatched), or None."""
+    doc = stored_pair(build, a, b)
+    if doc is None:
+        return None
+    f = lambda xs: np.array([np.nan if v is None else v for v in xs], float)  # noqa: E731
+    return np.column_stack([f(doc["dx"]), f(doc["dy"])]), f(doc["ncc"])
+
+
+def write_run(build, first: int, fingerprint, result: dict, regions: list, sample: list) -> None:
+    """Store one run's per-plane sums, per-region sums and sampled blocks with its fingerprint."""
+    import json
+
+    from ..transforms.store import atomic_write_text
+
+    path = _run_path(build, first)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    doc = {"fingerprint": fingerprint, "planes": {str(z): v for z, v in result["planes"].items()},
+           "sigma": result["sigma"], "regions": regions, "sample": sample}
+    atomic_write_text(path, json.dumps(doc) + "\n")
+
+
+def stored_run(build, first: int) -> dict | None:
+    """Return the stored document of the run starting at plane ``first`` (None when absent or unreadable)."""
+    import json
+
+    try:
+        return json.loads(_run_path(build, first).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None

@@ -7,10 +7,13 @@
                  estimates (issue 14).
 ``--memory``     peak memory and CPU of the report stage on sections of 3 x 3 and 7 x 7
                  tiles of 1024 px (same stack otherwise), and the render stage's CPU
-                 on the same volumes, each in its own process.
+                 on the same volumes, each in its own process; then a re-report after one
+                 plane changed (its render fingerprint replaced: pairs measured, CPU).
+                 ``--baseline DIR`` also runs the report of the package copy in DIR (for
+                 example ``git archive <commit> stackbuild | tar -x -C DIR``) beside it.
 ``--json-size``  metrics.json of 400 sections x 1000 tiles, from a real document's
                  per-section rows (tiles and pairs go to CSV only).
-(no option)      the probe matcher beside skimage's phase_cross_correlation.
+(no option)      the probe's pair matcher beside skimage's phase_cross_correlation.
 
 Run: ``python tests/benchmarks/bench_qc.py --agreement --memory --json-size``
 (``--sections N`` and ``--seeds K`` shrink or grow the agreement stacks; builds are
@@ -32,7 +35,7 @@ from skimage import data
 from skimage.registration import phase_cross_correlation
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from stackbuild.qc.subpixel import bandpass, match_points  # noqa: E402
+from stackbuild.qc.probe import match_planes  # noqa: E402
 
 
 def bench_matcher() -> None:
@@ -42,7 +45,8 @@ def bench_matcher() -> None:
     moved = ndimage.shift(img, (true[1], true[0]), order=3, mode="reflect")
     pts = np.array([(x, y) for x in range(96, 430, 32) for y in range(96, 430, 32)])
     t0 = time.perf_counter()
-    s, _ = match_points(bandpass(img, 1.5, 12), bandpass(moved, 1.5, 12), pts, half=24, search=6, min_ncc=0.3)
+    s, c, _ = match_planes(img, moved, pts, half=24, search=6, reach=24, fine_sigma=1.5, coarse_sigma=12)
+    s[~(c >= 0.3)] = np.nan
     t_ours = time.perf_counter() - t0
     t0 = time.perf_counter()
     ref = []
@@ -86,17 +90,58 @@ def _build(work: Path, params) -> Path:
 _REPORT = ("import sys, resource, time; from stackbuild.qc.report import run_report; "
            "from stackbuild.folder import BuildFolder; "
            "b = BuildFolder(sys.argv[1]); c = time.process_time(); "
-           "run_report(b.root, b.config.report, reuse=sys.argv[2] == 'reuse'); "
-           "print(time.process_time() - c, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)")
+           "v = run_report(b.root, b.config.report, reuse=sys.argv[2] == 'reuse'); "
+           "import json; d = json.loads((b.qc_dir / 'metrics.json').read_text()); "
+           "print(time.process_time() - c, json.dumps(d.get('reused')), v.passed, "
+           "resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)")
 
 
-def bench_memory(work: Path, sections: int) -> None:
+def _report(out: Path, mode: str, path: str | None = None) -> tuple[float, float, int, str]:
+    """Run the report in a child (``path`` first on PYTHONPATH); return CPU s (imports included), its own CPU, peak kB, reuse."""
+    import os
+
+    env = dict(os.environ, **({"PYTHONPATH": path} if path else {}))
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    proc = subprocess.run([sys.executable, "-c", _REPORT, str(out), mode], capture_output=True, text=True, env=env,
+                          cwd="/")
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if proc.returncode:
+        raise RuntimeError(proc.stderr[-2000:])
+    words = proc.stdout.split()
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return cpu, float(words[0]), int(words[-1]), words[1] if len(words) > 3 else ""
+
+
+def _touch_plane(out: Path, z: int) -> str:
+    """Replace plane ``z``'s render fingerprint (as a re-render from changed records would); return the old one."""
+    from stackbuild.folder import BuildFolder
+    from stackbuild.render.fingerprint import read_plane_record, write_plane_record
+
+    group = BuildFolder(out).pyramid_path()
+    rec = read_plane_record(group)
+    old = rec["fingerprints"][str(z)]
+    write_plane_record(group, rec["stamp"], {**rec["fingerprints"], str(z): old + "-changed"}, rec["damaged"])
+    return old
+
+
+def _restore_plane(out: Path, z: int, fp: str) -> None:
+    from stackbuild.folder import BuildFolder
+    from stackbuild.render.fingerprint import read_plane_record, write_plane_record
+
+    group = BuildFolder(out).pyramid_path()
+    rec = read_plane_record(group)
+    write_plane_record(group, rec["stamp"], {**rec["fingerprints"], str(z): fp}, rec["damaged"])
+
+
+def bench_memory(work: Path, sections: int, baseline: str | None) -> None:
     """Report peak RSS and CPU at 3 x 3 and 7 x 7 tiles of 1024 px, beside render CPU on the same volume.
 
-    Each in its own process, one after the other: the report measuring everything (``reuse=False``;
-    process CPU, imports included), the render (``stackbuild render --overwrite``, one worker:
-    its CLI process and worker processes), and a second report that re-uses every stored
-    measurement (nothing changed: what a re-report after ``update`` costs for untouched sections).
+    Each in its own process, one after the other: the render (``stackbuild render --overwrite``,
+    one worker: its CLI process and worker processes), the report measuring everything
+    (``reuse=False``; process CPU, imports included), the baseline's report when asked, a
+    second report that re-uses every stored measurement (nothing changed), and a re-report
+    after one plane's render fingerprint changed (what a re-report after an update of one
+    plane measures).
     """
     from stackbuild.synth.variants import variant_params
 
@@ -104,17 +149,26 @@ def bench_memory(work: Path, sections: int) -> None:
     for grid in (3, 7):
         out = _build(work / f"mem{grid}", variant_params("standard", "base", 0, sections=sections,
                                                          grid=(grid, grid), tile_size=1024))
-        _, cpu_report, _ = _run([sys.executable, "-c", _REPORT, str(out), "measure"])
-        proc = subprocess.run([sys.executable, "-c", _REPORT, str(out), "measure"], capture_output=True, text=True)
-        if proc.returncode:
-            raise RuntimeError(proc.stderr[-2000:])
-        rss = int(proc.stdout.split()[-1])
         _, cpu_render, _ = _run(["stackbuild", "render", str(out), "--overwrite", "--workers", "1", "--quiet"])
-        _, cpu_again, _ = _run([sys.executable, "-c", _REPORT, str(out), "reuse"])
-        rows.append((grid, rss / 1024, cpu_report, cpu_render, cpu_again))
-        print(f"{grid} x {grid} tiles of 1024 px, {sections} sections: report peak {rss / 1024:.0f} MB, report CPU "
-              f"{cpu_report:.1f} s, render CPU {cpu_render:.1f} s, ratio report/render {cpu_report / cpu_render:.2f} "
-              f"(bar <= 0.25); re-report with nothing changed {cpu_again:.1f} s", flush=True)
+        base = _report(out, "measure", baseline) if baseline else None
+        cpu, own, rss, _ = _report(out, "measure")
+        again, _, _, _ = _report(out, "reuse")
+        z = sections // 2
+        old = _touch_plane(out, z)
+        try:
+            one, _, _, reused = _report(out, "reuse")
+        finally:
+            _restore_plane(out, z, old)
+        rows.append((grid, rss / 1024))
+        line = (f"{grid} x {grid} tiles of 1024 px, {sections} sections: render CPU {cpu_render:.1f} s; report CPU "
+                f"{cpu:.1f} s (imports included; {own:.1f} s in run_report), ratio report/render "
+                f"{cpu / cpu_render:.2f} (bar <= 0.25), peak {rss / 1024:.0f} MB")
+        if base:
+            line += (f"; baseline report CPU {base[0]:.1f} s, ratio {base[0] / cpu_render:.2f}, "
+                     f"peak {base[2] / 1024:.0f} MB")
+        print(line, flush=True)
+        print(f"   re-report, nothing changed: {again:.1f} s; one plane (z {z}) changed: {one:.1f} s "
+              f"({one / cpu:.2f} of the full report), stored measurements re-used / measured: {reused}", flush=True)
     print(f"peak memory 7x7 / 3x3: {rows[1][1] / rows[0][1]:.2f} (bar: <= 1.3)")
 
 
@@ -178,6 +232,7 @@ def main() -> None:
     ap.add_argument("--sections", type=int, default=8)
     ap.add_argument("--seeds", type=int, default=3)
     ap.add_argument("--work", default="/tmp/bench_qc")
+    ap.add_argument("--baseline", default=None, help="folder holding an older stackbuild package to report beside")
     args = ap.parse_args()
     work = Path(args.work)
     work.mkdir(parents=True, exist_ok=True)
@@ -185,7 +240,7 @@ def main() -> None:
     if args.agreement:
         bench_agreement(work, args.sections, args.seeds)
     if args.memory:
-        bench_memory(work, 4)
+        bench_memory(work, 4, args.baseline)
     if args.json_size:
         bench_json_size(work)
 

@@ -289,3 +289,28 @@ def test_a_rejected_marker_registration_fails_with_its_channel_sections_and_reas
     passed, failures, _ = judge(bad, [parse_fail_on("channels.failed>0")])
     assert not passed
     assert failures == [f"fail if channels.failed > 0: measured 2 (marker 'glowB' in section(s) 1, 3: {reason})"]
+
+
+def test_seams_read_each_tile_once_and_measure_what_whole_tiles_give(planted, monkeypatch):
+    # Reference route: seam_residual on the whole tiles as read (the crops kept per pair must cut the same pixels).
+    from stackbuild.qc import measure
+    from stackbuild.qc.seams import overlap_box, seam_residual
+    from stackbuild.tiles import read_tile
+    from stackbuild.transforms import TransformStore
+
+    root, _, _ = planted
+    st = TransformStore(root / "transforms").load_stitch(PLANT_TILE_SECTION)
+    calls = []
+    monkeypatch.setattr(measure, "read_tile", lambda *a, **k: calls.append(a[0]) or read_tile(*a, **k))
+    s = ReportSettings()
+    got = measure.measure_seams(st, s)
+    assert sorted(calls) == sorted(t.path for t in st.tiles)
+    for sb in got:
+        ta, tb = st.tile(sb.a), st.tile(sb.b)
+        ia, ib = (read_tile(t.path, t.height, t.width, 0, dtype=st.dtype).astype(np.float32) for t in (ta, tb))
+        box = overlap_box((ta.x, ta.y), ia.shape, (tb.x, tb.y), ib.shape)
+        spacing = max(s.seam_spacing, int(np.sqrt((box[2] - box[0]) * (box[3] - box[1]) / 16)))
+        ref = seam_residual(ia, (ta.x, ta.y), ib, (tb.x, tb.y), radius=s.seam_half_size, search=s.seam_max_shift,
+                            spacing=spacing, min_ncc=s.min_block_ncc, smooth=s.seam_smooth)
+        np.testing.assert_array_equal(sb.blocks.shifts, ref.shifts)
+        np.testing.assert_array_equal(sb.blocks.points, ref.points)

@@ -76,47 +76,74 @@ def _pair_order(stitch: SectionStitch, pairs: list[tuple[str, str]]) -> list[tup
     return sorted(pairs, key=lambda ab: (pos.get(ab[0], (0, 0)), pos.get(ab[1], (0, 0))))
 
 
-def measure_seams(stitch: SectionStitch, settings: ReportSettings, *, keep_tiles: int = 4,
-                  blocks_per_seam: int = 16) -> list[SeamBlocks]:
+def measure_seams(stitch: SectionStitch, settings: ReportSettings, *, blocks_per_seam: int = 16) -> list[SeamBlocks]:
     """Return re-measured residuals of every tile pair of one section, at the final placements.
 
-    Holds at most ``keep_tiles`` tiles at a time (pairs are visited row by row, so a tile is read
-    about twice), never the section; the block grid of a long overlap is thinned to about
-    ``blocks_per_seam`` blocks. A pair's residual is the median of its blocks' shifts: 16 blocks
-    give it to about 1.25 / 4 of one block's noise (the median's standard error for normal data,
-    from memory), and cost a third of the 48 used before (bench_qc.py --memory).
+    Each tile is read once: what a later pair needs of it (the part over that pair's
+    overlap, plus 2 px) is cut out and kept until the pair is measured; pairs are visited
+    row by row, so about one row of tiles' overlap strips is held, never the section (and
+    no whole tile beyond the one being read). The block grid of a long overlap is thinned to
+    about ``blocks_per_seam`` blocks. A pair's residual is the median of its blocks' shifts:
+    16 blocks give it to about 1.25 / 4 of one block's noise (the median's standard error for
+    normal data, from memory), and cost a third of the 48 used before (bench_qc.py --memory).
     """
-    from collections import OrderedDict
-
     r, s = settings.seam_half_size, settings.seam_max_shift
-    cache: OrderedDict[str, np.ndarray | str] = OrderedDict()
+    pairs = _pair_order(stitch, _seam_pairs(stitch, 2 * (r + s) + 1))
+    pending: dict[str, list[int]] = {}
+    for k, (a, b) in enumerate(pairs):
+        pending.setdefault(a, []).append(k)
+        pending.setdefault(b, []).append(k)
+    crops: dict[tuple[int, str], tuple] = {}
+    failed: dict[str, str] = {}
 
-    def tile(name: str):
-        if name in cache:
-            cache.move_to_end(name)
-            return cache[name]
+    def read(name: str) -> None:
+        """Read a tile once; keep its crop for each pair not yet measured."""
         try:
             t = stitch.tile(name)
-            img = read_tile(t.path, t.height, t.width, stitch.section, dtype=stitch.dtype).astype(np.float32)
+            img = read_tile(t.path, t.height, t.width, stitch.section, dtype=stitch.dtype)
         except Exception as exc:  # an unreadable tile leaves its seams unmeasured, not the report
-            img = f"{name}: {type(exc).__name__}: {exc}"
-        cache[name] = img
-        while len(cache) > keep_tiles:
-            cache.popitem(last=False)
-        return img
+            failed[name] = f"{name}: {type(exc).__name__}: {exc}"
+            return
+        for k in pending.pop(name, []):
+            other = stitch.tile(pairs[k][1] if pairs[k][0] == name else pairs[k][0])
+            crops[(k, name)] = _overlap_crop(img, (t.x, t.y), (other.x, other.y), (other.height, other.width))
 
     out = []
-    for a, b in _pair_order(stitch, _seam_pairs(stitch, 2 * (r + s) + 1)):
-        ia, ib = tile(a), tile(b)
-        if isinstance(ia, str) or isinstance(ib, str):
-            err = ia if isinstance(ia, str) else ib
-            out.append(SeamBlocks(a, b, BlockMatches(np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0)), err))
+    for k, (a, b) in enumerate(pairs):
+        for name in (a, b):
+            if (k, name) not in crops and name not in failed and name in pending:
+                read(name)
+        if a in failed or b in failed:
+            out.append(SeamBlocks(a, b, BlockMatches(np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0)),
+                                  failed.get(a) or failed[b]))
+            crops.pop((k, a), None), crops.pop((k, b), None)
             continue
-        ta, tb = stitch.tile(a), stitch.tile(b)
-        box = overlap_box((ta.x, ta.y), ia.shape, (tb.x, tb.y), ib.shape)
+        (ia, pa), (ib, pb) = crops.pop((k, a)), crops.pop((k, b))
+        box = None if ia is None or ib is None else overlap_box(pa, ia.shape, pb, ib.shape)
         area = 0.0 if box is None else (box[2] - box[0]) * (box[3] - box[1])
         spacing = max(settings.seam_spacing, int(np.sqrt(area / max(blocks_per_seam, 1))))
-        m = seam_residual(ia, (ta.x, ta.y), ib, (tb.x, tb.y), radius=r, search=s,
-                          spacing=spacing, min_ncc=settings.min_block_ncc, smooth=settings.seam_smooth)
+        if box is None:
+            m = BlockMatches(np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0))
+        else:
+            m = seam_residual(ia.astype(np.float32), pa, ib.astype(np.float32), pb, radius=r, search=s,
+                              spacing=spacing, min_ncc=settings.min_block_ncc, smooth=settings.seam_smooth)
         out.append(SeamBlocks(a, b, m))
     return out
+
+
+def _overlap_crop(img: np.ndarray, pos, other_pos, other_shape, pad: int = 2):
+    """Return the part of a placed tile over its overlap with another (plus ``pad`` px) and that part's position.
+
+    :func:`stackbuild.qc.seams.seam_residual` on such crops cuts the same pixels as on the
+    whole tiles (the crop holds the overlap and the position is moved by the crop's corner).
+    ``(None, pos)`` when the tiles do not overlap.
+    """
+    box = overlap_box(pos, img.shape, other_pos, other_shape)
+    if box is None:
+        return None, pos
+    h, w = img.shape
+    x0 = max(0, int(np.floor(box[0] - pos[0])) - pad)
+    y0 = max(0, int(np.floor(box[1] - pos[1])) - pad)
+    x1 = min(w, int(np.ceil(box[2] - pos[0])) + pad)
+    y1 = min(h, int(np.ceil(box[3] - pos[1])) + pad)
+    return np.array(img[y0:y1, x0:x1]), (pos[0] + x0, pos[1] + y0)

@@ -28,7 +28,8 @@ def _add_cluster(p: argparse.ArgumentParser) -> None:
                    help="run on a local Dask cluster of N worker processes (default: one per core)")
     g.add_argument("--scheduler", metavar="ADDRESS",
                    help="run on an existing Dask scheduler: an address such as tcp://host:8786 "
-                        "or the path of a scheduler file (e.g. from dask-jobqueue on Slurm)")
+                        "or the path of a scheduler file (e.g. from dask-jobqueue on Slurm); without "
+                        "--workers or --scheduler, Dask's DASK_SCHEDULER_ADDRESS is used when set")
 
 
 def _add_fail_on(p: argparse.ArgumentParser, examples: str = "'align.p95>2px'") -> None:

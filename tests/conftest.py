@@ -26,6 +26,30 @@ TINY = SynthParams(seed=11, sections=5, grid=(2, 2), tile_size=256, offset=12.0,
                    channels=1, channel_every=2, lost_sections="2", compress=False)
 
 
+@pytest.fixture(scope="session", autouse=True)
+def shared_workers():
+    """Run every in-process command that names no ``--workers``/``--scheduler`` on one session cluster.
+
+    Starting and stopping a local cluster of real worker processes costs about 3 s, more than most
+    of these commands' work; commands reach this one through Dask's ``scheduler-address`` setting
+    (what ``DASK_SCHEDULER_ADDRESS`` sets), as a user's shell would. Tests that pass ``--workers``
+    (killing workers, counting them) and every CLI subprocess still start their own cluster.
+    """
+    import dask
+    from distributed import LocalCluster
+
+    from stackbuild.run.cluster import SINGLE_THREAD_ENV
+
+    with dask.config.set({"distributed.nanny.pre-spawn-environ": SINGLE_THREAD_ENV}):
+        cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+                               silence_logs=50)
+    try:
+        with dask.config.set({"scheduler-address": cluster.scheduler_address}):
+            yield cluster.scheduler_address
+    finally:
+        cluster.close()
+
+
 @pytest.fixture(scope="session")
 def tiny_data(tmp_path_factory) -> Path:
     """Return the folder of the tiny synthetic stack (tiles.csv, channels.csv, truth/)."""
@@ -63,7 +87,7 @@ def grid_build(grid_data, tmp_path_factory) -> Path:
 
     out = tmp_path_factory.mktemp("grid_build") / "b"
     assert main(["build", str(grid_data / "first.csv"), "--out", str(out), "--config", str(grid_data / "small.toml"),
-                 "--pixel-size", "4", "--section-thickness", "40", "--workers", "2", "--quiet"]) == 0
+                 "--pixel-size", "4", "--section-thickness", "40", "--quiet"]) == 0
     return out
 
 
@@ -79,8 +103,7 @@ def tiny_build(tiny_data, tmp_path_factory) -> Path:
     config = out.parent / "small.toml"
     config.write_text("[render]\nchunk = 128\nshard = 2\n")
     assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(out), "--channels", str(tiny_data / "channels.csv"),
-                 "--landmarks", str(tiny_data / "landmarks.csv"), "--config", str(config), "--workers", "2",
-                 "--quiet"]) == 0
+                 "--landmarks", str(tiny_data / "landmarks.csv"), "--config", str(config), "--quiet"]) == 0
     return out
 
 

@@ -65,7 +65,7 @@ def test_open_volume_lazy_equals_written(built):
 
 def test_resume_of_a_finished_build_changes_nothing(built, tiny_data):
     before = _digest(built / "volume.zarr")
-    assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(built), "--resume", "--workers", "1",
+    assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(built), "--resume",
                  "--quiet"]) == 0
     assert _digest(built / "volume.zarr") == before
 
@@ -94,7 +94,7 @@ def test_killed_build_resumes_to_the_same_volume(built, tiny_data, tmp_path):
     assert killed and proc.returncode == -signal.SIGKILL, proc.returncode
     stages = json.loads((out / "build.json").read_text()).get("stages", {})
     assert stages.get("render", {}).get("status") != "done", stages
-    status = main(["build", str(tiny_data / "tiles.csv"), "--out", str(out), "--resume", "--workers", "2",
+    status = main(["build", str(tiny_data / "tiles.csv"), "--out", str(out), "--resume",
                    "--quiet"])
     assert status == 0
     assert _digest(out / "volume.zarr" / "em") == _digest(built / "volume.zarr" / "em")
@@ -117,7 +117,7 @@ def test_update_restitches_the_reimaged_section(built, tiny_data, tmp_path):
         tifffile.imwrite(dst, np.clip(img, 0, 255).astype(np.uint8))
         rows.append(f"1,{tile},{dst},{x},{y}")
     (again / "tiles.csv").write_text("\n".join(rows) + "\n")
-    assert main(["update", str(work), "--tiles", str(again / "tiles.csv"), "--workers", "1", "--quiet"]) == 0
+    assert main(["update", str(work), "--tiles", str(again / "tiles.csv"), "--quiet"]) == 0
     store = stackbuild.transforms.TransformStore(work / "transforms")
     assert len(store.history("stitch", 1)) == 1 and not store.history("stitch", 0)
     new_tiles = {t.path for t in store.load_stitch(1).tiles}

@@ -27,7 +27,7 @@ def small_build(tmp_path_factory) -> tuple[Path, Path]:
     data = tmp_path_factory.mktemp("small") / "data"
     generate(data, SMALL)
     out = data.parent / "build"
-    assert main(["build", str(data / "tiles.csv"), "--out", str(out), "--workers", "1", "--quiet"]) == 0
+    assert main(["build", str(data / "tiles.csv"), "--out", str(out), "--quiet"]) == 0
     return data, out
 
 
@@ -70,7 +70,7 @@ def test_non_finite_stitch_record_is_named_and_nothing_written(small_build, tmp_
     record = b / "transforms" / "sections" / "00001" / "stitch.json"
     _edit(record, lambda r: r["tiles"][0].__setitem__(key, value))
     before = _digest(b / "transforms")
-    assert main(["align", str(b), "--workers", "1", "--quiet"]) == 2
+    assert main(["align", str(b), "--quiet"]) == 2
     line = _one_error(capsys)
     assert str(record) in line and "section 1" in line and key in line
     assert _digest(b / "transforms") == before
@@ -101,7 +101,7 @@ def test_truncated_tile_is_named_by_stitch(small_build, tmp_path, capsys):
     tile = d / "tiles" / "1" / "r0c1.tif"
     b_stitch = (b / "transforms" / "sections" / "00001" / "stitch.json").read_bytes()
     tile.write_bytes(tile.read_bytes()[:5000])  # after the manifest check: its header still reads
-    assert main(["stitch", str(b), "--sections", "1", "--workers", "1", "--quiet"]) == 2
+    assert main(["stitch", str(b), "--sections", "1", "--quiet"]) == 2
     line = _one_error(capsys)
     assert str(tile) in line and "section 1" in line
     assert (b / "transforms" / "sections" / "00001" / "stitch.json").read_bytes() == b_stitch
@@ -153,7 +153,7 @@ def test_unwritable_record_folder_is_named(small_build, tmp_path, capsys):
     folder = b / "transforms" / "sections" / "00001"
     shutil.rmtree(folder)
     folder.write_text("a file where the section's folder should be")
-    assert main(["stitch", str(b), "--sections", "1", "--workers", "1", "--quiet"]) == 2
+    assert main(["stitch", str(b), "--sections", "1", "--quiet"]) == 2
     line = _one_error(capsys)
     assert str(folder) in line and "section 1" in line
 
@@ -175,7 +175,7 @@ def test_update_with_unreadable_new_tile_keeps_the_old_tiles(small_build, tmp_pa
     bad.write_bytes(bad.read_bytes()[:5000])  # the header still reads; the pixels do not
     state = json.loads((b / "build.json").read_text())
     before = _digest(b / "transforms")
-    assert main(["update", str(b), "--tiles", str(new / "tiles.csv"), "--workers", "1", "--quiet"]) == 2
+    assert main(["update", str(b), "--tiles", str(new / "tiles.csv"), "--quiet"]) == 2
     assert str(bad) in _one_error(capsys)
     after = json.loads((b / "build.json").read_text())
     assert (after["tiles"], after.get("manifests", [])) == (state["tiles"], state.get("manifests", []))
@@ -191,7 +191,7 @@ def test_channel_row_for_a_section_without_tiles_is_named(small_build, tmp_path,
     channels = tmp_path / "channels.csv"
     channels.write_text("section,channel,path,pixel_size\n0,veridin,m0.tif,32\n5,veridin,m5.tif,32\n")
     status = main(["build", str(data / "tiles.csv"), "--out", str(tmp_path / "b"), "--channels", str(channels),
-                   "--workers", "1", "--quiet"])
+                   "--quiet"])
     assert status == 2
     line = _one_error(capsys)
     assert f"{channels}:3" in line and "section 5" in line

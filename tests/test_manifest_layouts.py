@@ -51,7 +51,7 @@ def _grid_manifest(folder: Path, spread: float, offset: float = 0.0) -> Path:
 
 
 def _build(data: Path, out: Path) -> int:
-    return main(["build", str(data / "tiles.csv"), "--out", str(out), "--workers", "1", "--quiet"])
+    return main(["build", str(data / "tiles.csv"), "--out", str(out), "--quiet"])
 
 
 def _level0(out: Path) -> np.ndarray:

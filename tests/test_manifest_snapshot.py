@@ -232,6 +232,5 @@ def test_a_whole_build_checks_the_manifest_once(tiny_data, tmp_path, header_call
 
     names = sorted(t.path.stem for t in read_tile_manifest(tiny_data / "tiles.csv").tiles)
     header_calls.clear()
-    assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(tmp_path / "b"), "--quiet",
-                 "--workers", "1"]) == 0
+    assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(tmp_path / "b"), "--quiet"]) == 0
     assert sorted(header_calls) == names

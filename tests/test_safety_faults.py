@@ -103,7 +103,7 @@ def test_corrupted_chunk_is_named_by_audit_and_repaired_by_render_resume(build_c
     with pytest.raises(Exception):  # zarr-python, the reference reader, cannot decode it
         zarr.open_array(str(level0), mode="r")[z]
     capsys.readouterr()
-    assert main(["audit", str(build_copy), "--quiet", "--workers", "1"]) == 4
+    assert main(["audit", str(build_copy), "--quiet"]) == 4
     out = capsys.readouterr().out
     assert re.search(rf"damaged: volume.zarr/em plane {z}: volume.zarr/em/0 chunk \(plane {z}, row \d+, col \d+\) "
                      "cannot be decoded", out), out
@@ -135,7 +135,7 @@ def test_overwrite_with_a_tile_gone_leaves_the_old_volume_byte_identical(tmp_pat
     before = _digest(folder.root)
     (tmp_path / "raw" / "s1_r1_c0.tif").unlink()
     capsys.readouterr()
-    assert main(["render", str(folder.root), "--overwrite", "--quiet", "--workers", "1"]) == 2
+    assert main(["render", str(folder.root), "--overwrite", "--quiet"]) == 2
     line = _one_line(capsys)
     assert "s1_r1_c0.tif" in line
     assert _digest(folder.root) == before  # volume, records and build.json untouched
@@ -150,7 +150,7 @@ def test_render_with_a_marker_image_gone_is_refused_before_the_em_is_touched(bui
     record.write_text(json.dumps(env))
     before = _digest(build_copy)
     capsys.readouterr()
-    assert main(["render", str(build_copy), "--overwrite", "--quiet", "--workers", "1"]) == 2
+    assert main(["render", str(build_copy), "--overwrite", "--quiet"]) == 2
     assert "marker.tif" in _one_line(capsys)
     assert _digest(build_copy) == before  # EM, markers, records and build.json untouched
 
@@ -183,7 +183,7 @@ def test_overwrite_failing_mid_render_leaves_the_old_volume_byte_identical(tmp_p
 def test_refused_render_leaves_build_json_and_build_resume_succeeds(build_copy, tiny_data, capsys):
     state = (build_copy / "build.json").read_bytes()
     capsys.readouterr()
-    assert main(["render", str(build_copy), "--quiet", "--workers", "1"]) == 2  # finished and matching: refused
+    assert main(["render", str(build_copy), "--quiet"]) == 2  # finished and matching: refused
     line = _one_line(capsys)
     assert "--overwrite" in line and "overwrite=" not in line  # flags as the user types them
     assert (build_copy / "build.json").read_bytes() == state
@@ -194,13 +194,13 @@ def test_refused_render_leaves_build_json_and_build_resume_succeeds(build_copy, 
     with pytest.raises(InputError, match="--overwrite"):  # the stage itself, as update and build call it
         stages.render_stage(BuildFolder(build_copy))
     assert (build_copy / "build.json").read_bytes() == state
-    assert main(["render", str(build_copy), "--planes", "99", "--quiet", "--workers", "1"]) == 2
+    assert main(["render", str(build_copy), "--planes", "99", "--quiet"]) == 2
     assert "--planes" in _one_line(capsys)
     assert (build_copy / "build.json").read_bytes() == state
     assert main(["report", str(build_copy), "--fail-on", "nonsense>>", "--quiet"]) == 2
     assert (build_copy / "build.json").read_bytes() == state
     assert main(["build", str(tiny_data / "tiles.csv"), "--out", str(build_copy), "--resume",
-                 "--workers", "1", "--quiet"]) == 0
+                 "--quiet"]) == 0
 
 
 def test_refused_stage_leaves_build_json_unchanged(tiny_data, tmp_path):
@@ -306,7 +306,7 @@ def test_absurd_but_finite_affine_is_refused_when_read(build_copy, capsys):
     path.write_text(json.dumps(env))
     before = _digest(build_copy / "volume.zarr")
     capsys.readouterr()
-    assert main(["render", str(build_copy), "--resume", "--quiet", "--workers", "1"]) == 2
+    assert main(["render", str(build_copy), "--resume", "--quiet"]) == 2
     line = _one_line(capsys)
     assert "align.json" in line and "section 1" in line and "1e+12" in line
     assert _digest(build_copy / "volume.zarr") == before
@@ -335,7 +335,7 @@ def test_disk_full_is_one_line_and_resume_completes_once_space_is_freed(small_di
     out = small_disk / "build"
     shutil.copytree(folder.root, out)  # the build folder on the small disk, its tiles elsewhere
     capsys.readouterr()
-    assert main(["render", str(out), "--quiet", "--workers", "1"]) == 1
+    assert main(["render", str(out), "--quiet"]) == 1
     line = _one_line(capsys)
     assert f"no space left on the file system holding {out}" in line and "--resume" in line
     subprocess.run(["mount", "-o", "remount,size=20m", str(small_disk)], check=True, timeout=20)

@@ -83,10 +83,18 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
     scheduler : str, optional
         A scheduler address (``tcp://host:8786``) or the path of a scheduler
         file written by ``dask scheduler --scheduler-file`` or dask-jobqueue.
+        When neither this nor ``workers`` is given, Dask's own setting
+        ``scheduler-address`` (environment variable ``DASK_SCHEDULER_ADDRESS``)
+        is used if set, as ``distributed.Client()`` does; otherwise a local
+        cluster is started.
     memory_limit : str
         Memory limit per local worker (dask syntax, e.g. ``"4GiB"``).
     """
+    import dask
     from distributed import Client, LocalCluster
+
+    if scheduler is None and workers is None:
+        scheduler = dask.config.get("scheduler-address", None) or None
 
     quiet = not logging.getLogger().isEnabledFor(logging.DEBUG)
     if quiet:
@@ -110,8 +118,6 @@ def dask_client(workers: int | None = None, scheduler: str | None = None,
         n = workers or os.cpu_count() or 1
         if n < 1:
             raise InputError(f"--workers must be >= 1, got {n}")
-        import dask
-
         with dask.config.set({"distributed.nanny.pre-spawn-environ": SINGLE_THREAD_ENV}), \
                 warnings.catch_warnings():
             # Another Dask process on this machine holds the default HTTP port; ours takes a free one.

@@ -376,6 +376,7 @@ def _align(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
                 and any(0 < a - s <= build.config.align.neighbours for a in plan.added)}
     keep, facts = hold_alignments(old, new, bboxes, fit_on=untouched or set(old),
                                   movable=changed | near_new, tolerance=plan.hold_within)
+    anchored = _anchor_appended(plan, old, new, keep, bboxes)
     for s, rec in keep.items():
         if not _same_alignment(store.load_alignment(s), rec):
             store.save_alignment(rec)
@@ -386,7 +387,31 @@ def _align(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
                            "moved_px": {str(s): round(v, 3) for s, v in sorted(facts["moved_px"].items())},
                            "moved_beyond_tolerance": sorted(s for s, v in facts["moved_px"].items()
                                                             if v > plan.hold_within),
-                           "window": sorted(new), "checked": checked}
+                           "window": sorted(new), "checked": checked, "anchored": anchored}
+
+
+def _anchor_appended(plan: UpdatePlan, old: dict, new: dict, keep: dict, bboxes: dict) -> dict:
+    """Re-express each appended section through the nearest existing section below it (in place in ``keep``).
+
+    See :mod:`stackbuild.run.update_align`; returns ``{section: {"anchor", "moved_px"}}``, how far
+    this moved each new section from the one-affine frame change.
+    """
+    from .update_align import anchor_moves, through_anchor
+
+    out = {}
+    for s in plan.added:
+        below = [a for a in old if a < s and a in keep and a in new]
+        if s not in new or not below:
+            continue
+        a = max(below)
+        try:
+            rec = through_anchor(new[s], keep[a], new[a], bboxes[s])
+        except ValueError as exc:  # an inverse that does not converge: keep the affine frame change
+            log.warning("section %s: not anchored on section %s (%s)", s, a, exc)
+            continue
+        out[str(s)] = {"anchor": a, "moved_px": round(anchor_moves(keep[s], rec, bboxes[s]), 3)}
+        keep[s] = rec
+    return out
 
 
 def _window(sections: list[int], changed: list[int], neighbours: int) -> list[int]:

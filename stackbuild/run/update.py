@@ -359,7 +359,8 @@ def _align(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
                                "moved_px": {}, "moved_beyond_tolerance": [], "window": [], "checked": checked}
         return
     scratch = build.scratch_dir("align")
-    source = _Window(build.root, _window(store.sections_with("stitch"), resolve, build.config.align.neighbours))
+    source = _Window(build.root, _window(store.sections_with("stitch"), resolve, build.config.align.neighbours,
+                                         appended=plan.added))
     try:
         new = align_sections(source, build.config.align,
                              mapper=mappers("align"), progress=mappers.bar("solve"), scratch=scratch)
@@ -414,19 +415,21 @@ def _anchor_appended(plan: UpdatePlan, old: dict, new: dict, keep: dict, bboxes:
     return out
 
 
-def _window(sections: list[int], changed: list[int], neighbours: int) -> list[int]:
+def _window(sections: list[int], changed: list[int], neighbours: int, appended=()) -> list[int]:
     """Return the sections solved again: each changed one and ``neighbours + 1`` stitched sections each side.
 
     The sections around a changed one anchor it (their alignments are held; see
     :func:`stackbuild.transforms.hold.hold_alignments`), so the rest of the stack is not solved again.
+    An appended section needs only the ``neighbours`` sections it is matched to: it is re-expressed
+    through the nearest of them (:func:`_anchor_appended`).
     """
     have = sorted(sections)
-    reach = neighbours + 1
     keep = set()
     for s in changed:
         if s not in have:
             continue
         k = have.index(s)
+        reach = neighbours if s in appended else neighbours + 1
         keep.update(have[max(0, k - reach):k + reach + 1])
     return sorted(keep)
 

@@ -97,6 +97,96 @@ def _landing(build: Path, section: int, tiles: list[str], others: list[int]) -> 
     return as_xyz(moved), as_xyz(anchor)
 
 
+def _inset_tiles(build: Path, section: int, side: int, out: Path, tile: int = 320, overlap: int = 48):
+    """Write finer tiles (2x, OpenCV cubic) of a ``side`` px square of ``section`` and return (manifest, x0, y0).
+
+    Ground truth: fine pixel ``f`` of the enlarged square is section pixel ``(f + 0.5) / 2 - 0.5`` from its corner.
+    """
+    import cv2
+
+    from stackbuild.sampler import render_region
+    from stackbuild.tiles import SectionTiles
+    from stackbuild.transforms import TransformStore
+
+    st = TransformStore(build / "transforms").load_stitch(section)
+    x0, y0, x1, y1 = st.bbox()
+    cx, cy = int((x0 + x1) / 2 - side / 2), int((y0 + y1) / 2 - side / 2)
+    img = render_region(st, None, cx, cy, side, side, tiles=SectionTiles(st))
+    big = np.clip(cv2.resize(img, None, fx=2, fy=2, interpolation=cv2.INTER_CUBIC), 0, 255).astype(np.uint8)
+    out.mkdir(parents=True, exist_ok=True)
+    rows = ["section,tile,path,x,y,pixel_size"]
+    step = tile - overlap
+    for r in range(0, max(1, 2 * side - overlap), step):
+        for c in range(0, max(1, 2 * side - overlap), step):
+            part = big[r:r + tile, c:c + tile]
+            if part.shape != (tile, tile):
+                continue
+            name = f"f{r // step}_{c // step}"
+            tifffile.imwrite(out / f"{name}.tif", part)
+            rows.append(f"{section},{name},{out / (name + '.tif')},{2 * cx - 0.5 + c},{2 * cy - 0.5 + r},2")
+    (out / "tiles.csv").write_text("\n".join(rows) + "\n")
+    return out / "tiles.csv", cx, cy
+
+
+def inset_memory(root: Path, base: Path, section: int, sides=(256, 768)) -> None:
+    """Peak traced memory of the inset's region and chunk tasks, and its landing error, at two inset sizes.
+
+    Each task runs in this process with the tile cache emptied first (a cold worker), under
+    ``tracemalloc``: its peak above what was held before it started. "whole call" is the peak of
+    the whole ``add_inset`` (the driver's stitch and overview, plus one task at a time).
+    """
+    import tracemalloc
+
+    from stackbuild.folder import BuildFolder
+    from stackbuild.run.insets import add_inset
+    from stackbuild.tiles import TILE_CACHE
+    from stackbuild.transforms import Affine2D, TransformStore
+
+    for k, side in enumerate((min(sides), *sides)):  # the first run only warms up (one-time allocations)
+        TILE_CACHE.clear()
+        work = root / f"inset-{side}"
+        shutil.rmtree(work, ignore_errors=True)
+        shutil.copytree(base, work / "b")
+        manifest, cx, cy = _inset_tiles(work / "b", section, side, work / "fine")
+        peaks: dict[str, float] = {}
+
+        def mapper(fn, items):
+            out = []
+            for item in items:
+                TILE_CACHE.clear()  # a cold worker: the task's peak holds every tile it reads
+                tracemalloc.reset_peak()
+                start = tracemalloc.get_traced_memory()[0]
+                out.append(fn(item))
+                peaks[fn.__name__] = max(peaks.get(fn.__name__, 0.0), tracemalloc.get_traced_memory()[1] - start)
+            return out
+        tracemalloc.start()
+        t0 = time.perf_counter()
+        lines = add_inset(BuildFolder(work / "b"), manifest, mapper=mapper)
+        seconds = time.perf_counter() - t0
+        whole = tracemalloc.get_traced_memory()[1]
+        tracemalloc.stop()
+        istore = TransformStore(work / "b" / "transforms" / "insets" / f"section{section}_2nm")
+        rec, fine = istore.load_doc("inset"), istore.load_stitch(section)
+        to_section = Affine2D.from_json(rec["inset_to_section"])
+        u = np.array([[t.x + a, t.y + b] for t in fine.tiles for a in (20.0, 160.0, 300.0) for b in (20.0, 300.0)])
+        truth = np.column_stack([cx + (u[:, 0] - (2 * cx - 0.5) + 0.5) / 2 - 0.5, cy + (u[:, 1] - (2 * cy - 0.5) + 0.5) / 2 - 0.5])
+        # The stitched mosaic keeps the tiles' relative placement but not their stage origin: remove the common shift.
+        got = to_section.apply(u)
+        err = np.hypot(*(got - truth - np.median(got - truth, axis=0)).T)
+        mb = 1 / 2 ** 20
+        if k == 0:
+            continue
+        print(f"inset of {side} x {side} section px ({len(fine.tiles)} fine tiles, {(2 * side) ** 2 / 1e6:.2f} MP at 2 nm): "
+              f"{seconds:.1f} s; peak per task: region registration {peaks.get('register_region', 0) * mb:.1f} MB, "
+              f"level-0 chunk {peaks.get('render_inset_block', 0) * mb:.1f} MB, reduced chunk "
+              f"{peaks.get('reduce_inset_block', 0) * mb:.1f} MB; whole call (driver + one task at a time) "
+              f"{whole * mb:.1f} MB; regions {rec['regions_used']}/{rec['regions']}, fit residual RMS "
+              f"{rec['residual_rms_px']:.3f} px; landing vs truth (common shift removed) RMS "
+              f"{np.sqrt(np.mean(err ** 2)):.3f} max {err.max():.3f} px, scale {rec['scale']:.5f} (truth 0.5)")
+        print("   " + lines[1].strip())
+        shutil.rmtree(work, ignore_errors=True)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--sections", type=int, default=20)
@@ -104,6 +194,8 @@ def main() -> None:
     ap.add_argument("--tile", type=int, default=384)
     ap.add_argument("--kills", action="store_true", help="also kill the update in align, channels, render")
     ap.add_argument("--keep", metavar="DIR", help="work here and keep it (default: a temporary folder)")
+    ap.add_argument("--inset-memory", action="store_true",
+                    help="only the inset tasks' peak memory at two inset sizes (reuses DIR/build of --keep if there)")
     ap.add_argument("--speed-only", action="store_true",
                     help="only steps 1-2: the full build and the update side by side, and their ratio")
     args = ap.parse_args()
@@ -121,6 +213,11 @@ def main() -> None:
     later = _subset(data / "tiles.csv", data / "later.csv", lambda s: s >= n)
     scale = ["--pixel-size", "4", "--section-thickness", "40", "--workers", "2"]
     base, upd = root / "build", root / "updated"
+    if args.inset_memory:
+        if not (base / "build.json").exists():
+            _cli("build", first, "--out", base, *scale)
+        inset_memory(root, base, n // 2)
+        return
     for d in (base, upd, root / "fresh", root / "appended"):
         shutil.rmtree(d, ignore_errors=True)
     t_build, _ = _cli("build", first, "--out", base, *scale)

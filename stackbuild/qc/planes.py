@@ -77,6 +77,13 @@ class PlaneSource:
             p = p[:h, :w].reshape(h // b, b, w // b, b).mean(axis=(1, 3), dtype=np.float32)
         return p
 
+    def raw_window(self, z: int, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
+        """Return the same window as :meth:`window` in the stored dtype when there is no binning (no float copy)."""
+        if self.bin > 1:
+            return self.window(z, y0, y1, x0, x1)
+        p = self.data[int(z), y0:y1, x0:x1]
+        return np.asarray(p.compute() if hasattr(p, "compute") else p)
+
     def to_level0(self, points: np.ndarray) -> np.ndarray:
         """Map ``(N, 2)`` ``(x, y)`` pixels of this level to level-0 output pixels."""
         return np.asarray(points, float) * self.factor + np.asarray(self.offset, float)

@@ -92,15 +92,28 @@ def block_grid(source: PlaneSource, settings: ReportSettings) -> tuple[np.ndarra
     return pts, (len(ys), len(xs)), region
 
 
+class _Window:
+    """A window of one plane as read (its stored dtype) with its data mask; blocks are cut as float32 with NaN."""
+
+    def __init__(self, raw: np.ndarray, valid: np.ndarray | None = None):
+        self.raw = raw
+        self.valid = np.isfinite(raw) if valid is None else valid
+
+    def cut(self, centres: np.ndarray, r: int) -> np.ndarray:
+        """Return ``(N, 2r+1, 2r+1)`` blocks around integer ``(x, y)`` centres; NaN outside the window or its data."""
+        h, w = self.raw.shape
+        out = np.full((len(centres), 2 * r + 1, 2 * r + 1), np.nan, np.float32)
+        for k, (x, y) in enumerate(np.asarray(centres, int)):
+            x0, y0, x1, y1 = max(0, x - r), max(0, y - r), min(w, x + r + 1), min(h, y + r + 1)
+            if x1 > x0 and y1 > y0:
+                dst = out[k, y0 - (y - r):y1 - (y - r), x0 - (x - r):x1 - (x - r)]
+                np.copyto(dst, self.raw[y0:y1, x0:x1], where=self.valid[y0:y1, x0:x1], casting="unsafe")
+        return out
+
+
 def _cut(img: np.ndarray, centres: np.ndarray, r: int) -> np.ndarray:
     """Return ``(N, 2r+1, 2r+1)`` blocks of ``img`` around integer ``(x, y)`` centres; NaN outside ``img``."""
-    h, w = img.shape
-    out = np.full((len(centres), 2 * r + 1, 2 * r + 1), np.nan, np.float32)
-    for k, (x, y) in enumerate(np.asarray(centres, int)):
-        x0, y0, x1, y1 = max(0, x - r), max(0, y - r), min(w, x + r + 1), min(h, y + r + 1)
-        if x1 > x0 and y1 > y0:
-            out[k, y0 - (y - r):y1 - (y - r), x0 - (x - r):x1 - (x - r)] = img[y0:y1, x0:x1]
-    return out
+    return (img if isinstance(img, _Window) else _Window(img)).cut(centres, r)
 
 
 def _reduced(img: np.ndarray) -> np.ndarray:
@@ -122,7 +135,8 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
     Parameters
     ----------
     fixed, moving : ndarray, shape (H, W)
-        The same window of two planes (this level's pixels, float32, NaN where there is no data).
+        The same window of two planes (this level's pixels, float32, NaN where there is no data;
+        or a window as read with its data mask, :class:`_Window`).
     points : ndarray of int, shape (N, 2)
         Block centres ``(x, y)`` in the window.
     half, search : int
@@ -159,7 +173,7 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
     beyond = np.zeros(n, bool)
     if reach > search and n:
         ch, cs = _coarse_sizes(half, reach)
-        fs, ms = small if small is not None else (_reduced(fixed), _reduced(moving))
+        fs, ms = small if small is not None else (_reduced(fixed), _reduced(moving))  # (arrays only)
         cp = np.rint(pts / COARSE).astype(int)
         res = match_block_pairs(_cut(fs, cp, ch + cs + 1), _cut(ms, cp, ch + cs + 1), cs, half_size=ch,
                                 fine_sigma=max(fine_sigma / COARSE, 0.5), coarse_sigma=max(coarse_sigma / COARSE, 2.0),
@@ -178,23 +192,27 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
 
 
 def _window(source: PlaneSource, z: int, box, margin: int, reduce: bool):
-    """Return plane ``z``'s window around a box of block centres (NaN where no data), reduced copy, top-left pixel."""
+    """Return plane ``z``'s window around a box of block centres (as read, with its data mask), its reduced copy
+    (float32, NaN where no data) and its top-left pixel.
+
+    Only the blocks are turned into float32, never the whole window.
+    """
     import cv2
 
     x0, y0, x1, y1 = box
     h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
     wx0, wy0 = max(0, x0 - margin), max(0, y0 - margin)
     wx1, wy1 = min(w, x1 + margin), min(h, y1 + margin)
-    img = source.window(z, wy0, wy1, wx0, wx1)
-    valid = data_mask(img)
+    raw = source.raw_window(z, wy0, wy1, wx0, wx1)
+    valid = data_mask(raw)
     small = None
     if reduce:
-        # the reduced copy from the window as read (no data is 0 there), its no-data cells from the mask
-        size = (max(1, img.shape[1] // COARSE), max(1, img.shape[0] // COARSE))
-        small = cv2.resize(img, size, interpolation=cv2.INTER_AREA)
+        # area means of the window as read (no data is 0 there); a reduced cell is data when all of it is
+        size = (max(1, raw.shape[1] // COARSE), max(1, raw.shape[0] // COARSE))
+        src = raw if raw.dtype in (np.uint8, np.uint16, np.float32) else raw.astype(np.float32)
+        small = cv2.resize(src, size, interpolation=cv2.INTER_AREA).astype(np.float32)
         small[cv2.resize(valid.astype(np.uint8) * 255, size, interpolation=cv2.INTER_AREA) < 255] = np.nan
-    img[~valid] = np.nan
-    return img, small, np.array([wx0, wy0])
+    return _Window(raw, valid), small, np.array([wx0, wy0])
 
 
 def probe_pair(job: PairJob) -> list[dict]:
@@ -231,7 +249,7 @@ def probe_pair(job: PairJob) -> list[dict]:
                 if b != z or a not in held:
                     continue
                 (fa, sa, corner), (fb, sb, _) = held[a], held[b]
-                if not (np.isfinite(fa).any() and np.isfinite(fb).any()):
+                if not (fa.valid.any() and fb.valid.any()):
                     continue
                 s_, c_, b_ = match_planes(fa, fb, pts[sel] - corner, half=half, search=search, reach=reach,
                                           fine_sigma=st.probe_fine_sigma / f, coarse_sigma=st.probe_coarse_sigma / f,

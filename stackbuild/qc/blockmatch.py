@@ -146,7 +146,8 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, *, spacing: int, radius:
         if valid is not None and not valid[y - radius - search:y + radius + search + 1,
                                            x - radius - search:x + radius + search + 1].all():
             continue
-        if tpl.std() < min_std or win.std() < min_std:
+        # population standard deviations, as ndarray.std (OpenCV's is a few times cheaper per call)
+        if cv2.meanStdDev(tpl)[1][0, 0] < min_std or cv2.meanStdDev(win)[1][0, 0] < min_std:
             continue
         score = cv2.matchTemplate(win, tpl, cv2.TM_CCOEFF_NORMED)
         cx, cy, peak, margin = _peak(score, max(2, radius // 2))

@@ -55,6 +55,10 @@ def test_half_pixel_inset_lands_within_half_a_base_pixel(grid_build, grid_data, 
     got = to_section.apply(u + [top.x, top.y])
     assert np.abs(got - truth).max() <= 0.5  # issue bar: 0.5 base-grid px
     assert abs(rec["scale"] - 0.5) < 0.005  # estimated, not assumed
+    # Registered by regions (one task each), their fit residuals recorded beside the inset's row of qc/insets.csv.
+    assert rec["regions_used"] >= 3 and rec["residual_rms_px"] < 0.1, rec
+    row = (work / "qc" / "insets.csv").read_text().splitlines()
+    assert "residual_rms_px" in row[0] and "section3_2nm" in row[1]
     group = zarr.open_group(str(work / "volume.zarr" / "insets" / "section3_2nm"), mode="r")
     # Standard: OME-Zarr specification 0.5, validated by the ome-zarr-models package (v05.Image).
     image = Image.from_zarr(group)

@@ -72,23 +72,33 @@ def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> 
     return out
 
 
+#: the region figure shows at most this many columns (regions beyond are pooled, in order)
+REGION_COLUMNS = 64
+
+
 def _region_grid(meas, doc) -> tuple[np.ndarray | None, list[int]]:
     """Return the planes x regions grid of estimated error (NaN where unmeasured) and the plane numbers.
 
-    Read from the stored runs one at a time (:func:`stackbuild.qc.metrics._stored_runs`).
+    Read from the stored runs one at a time (:func:`stackbuild.qc.metrics._stored_runs`); more
+    than :data:`REGION_COLUMNS` regions are pooled into that many columns (their sums added), so
+    the grid stays planes x 64 whatever the section's size.
     """
     from .metrics import _stored_runs
 
     depth = doc["volume"]["depth"] or 0
     if meas.probe is None or not meas.probe.boxes or not depth:
         return None, []
-    cols = {r: j for j, r in enumerate(sorted(meas.probe.boxes))}
-    grid = np.full((depth, len(cols)), np.nan)
+    order = sorted(meas.probe.boxes)
+    ncol = min(len(order), REGION_COLUMNS)
+    cols = {r: j * ncol // len(order) for j, r in enumerate(order)}
+    sums = np.zeros((3, depth, ncol))
     for run in _stored_runs(meas):
         for row in run.get("regions", []):
-            est, _ = section_error(row["n"], row["sum_sq"], row["sum_noise"])
-            if est is not None and row["region"] in cols and 0 <= row["z"] < depth:
-                grid[row["z"], cols[row["region"]]] = est
+            if row["region"] in cols and 0 <= row["z"] < depth:
+                sums[:, row["z"], cols[row["region"]]] += (row["n"], row["sum_sq"], row["sum_noise"])
+    grid = np.full((depth, ncol), np.nan)
+    for z, j in zip(*np.nonzero(sums[0])):
+        grid[z, j] = section_error(*sums[:, z, j])[0]
     if not np.isfinite(grid).any():
         return None, []
     return grid, list(range(depth))

@@ -191,22 +191,45 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
     return shifts, ncc, beyond
 
 
-def _window(source: PlaneSource, z: int, box, margin: int, reduce: bool):
+def _coarse_source(job, source: PlaneSource) -> PlaneSource | None:
+    """Return the written pyramid level ``COARSE`` times coarser than ``source`` (None when there is none).
+
+    Its pixel ``(i, j)`` is the mean of ``source`` pixels ``COARSE i .. COARSE i + COARSE - 1``
+    (the pyramid's 2 x 2 means, OME-Zarr translation checked), as the reduced copy would be.
+    """
+    if source.origin != "volume.zarr" or source.bin != 1:
+        return None
+    c = open_planes(job.build, max_factor=source.factor * COARSE, written=True)
+    if c is None or c.origin != source.origin or c.bin != 1 or abs(c.factor - source.factor * COARSE) > 1e-9:
+        return None
+    want = np.asarray(source.offset) + source.factor * (COARSE - 1) / 2.0
+    return c if np.allclose(c.offset, want, atol=1e-6 * c.factor) else None
+
+
+def _window(source: PlaneSource, z: int, box, margin: int, reduce: bool, coarse: PlaneSource | None = None):
     """Return plane ``z``'s window around a box of block centres (as read, with its data mask), its reduced copy
     (float32, NaN where no data) and its top-left pixel.
 
-    Only the blocks are turned into float32, never the whole window.
+    Only the blocks are turned into float32, never the whole window. The reduced copy is read
+    from the written pyramid level ``coarse`` when given (the window then starts on a multiple
+    of ``COARSE``), else reduced from the window.
     """
     import cv2
 
     x0, y0, x1, y1 = box
     h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
     wx0, wy0 = max(0, x0 - margin), max(0, y0 - margin)
+    if coarse is not None:
+        wx0, wy0 = wx0 - wx0 % COARSE, wy0 - wy0 % COARSE
     wx1, wy1 = min(w, x1 + margin), min(h, y1 + margin)
     raw = source.raw_window(z, wy0, wy1, wx0, wx1)
     valid = data_mask(raw)
     small = None
-    if reduce:
+    if reduce and coarse is not None:
+        c = coarse.raw_window(z, wy0 // COARSE, -(-wy1 // COARSE), wx0 // COARSE, -(-wx1 // COARSE))
+        small = c.astype(np.float32)
+        small[~data_mask(c)] = np.nan
+    elif reduce:
         # area means of the window as read (no data is 0 there); a reduced cell is data when all of it is
         size = (max(1, raw.shape[1] // COARSE), max(1, raw.shape[0] // COARSE))
         src = raw if raw.dtype in (np.uint8, np.uint16, np.float32) else raw.astype(np.float32)
@@ -239,12 +262,13 @@ def probe_pair(job: PairJob) -> list[dict]:
     reach = int(np.ceil(st.probe_reach / f))
     reduce = reach > search
     planes = sorted({z for p in job.pairs for z in p})
+    coarse = _coarse_source(job, source) if reduce else None
     for r in np.unique(region):
         sel = np.flatnonzero(region == r)
         box = (*pts[sel].min(axis=0), *(pts[sel].max(axis=0) + 1))
         held: dict[int, tuple] = {}
         for z in planes:
-            held[z] = _window(source, z, box, margin, reduce)
+            held[z] = _window(source, z, box, margin, reduce, coarse)
             for k, (a, b) in enumerate(job.pairs):
                 if b != z or a not in held:
                     continue

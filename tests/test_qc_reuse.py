@@ -65,20 +65,21 @@ def test_a_changed_section_is_measured_again_with_its_neighbourhood(first, tmp_p
     root = tmp_path / "build"
     shutil.copytree(first[0], root, symlinks=True)
     # the stored files name the old folder: fingerprints hash record bytes, so copy them as they are
-    rec = root / "transforms" / "sections" / "00004" / "stitch.json"
+    rec = root / "transforms" / "sections" / "00002" / "stitch.json"
     doc = json.loads(rec.read_text())
     doc["record"]["stats"] = {**(doc["record"].get("stats") or {}), "touched": 1}
     rec.write_text(json.dumps(doc))
-    _stamp(root, {z: (f"plane{z}" if z != 4 else "plane4-new") for z in range(len(SECTIONS))})
+    _stamp(root, {z: (f"plane{z}" if z != 2 else "plane2-new") for z in range(len(SECTIONS))})
     mapper = Counting()
     again, _ = collect(root, SETTINGS, mapper=mapper)
     assert [j.section for j in mapper.of("seam_job")] == list(SECTIONS)  # every section asked ...
     assert again["reused"]["sections"] == len(SECTIONS) - 1              # ... one measured again
-    # plane 4 changed: exactly the probe_spans x 2 pairs it takes part in are measured again, (2, 4) and
-    # (3, 4) (it is the last plane), in one task; the one run is solved again
+    # plane 2 changed: exactly the 2 x probe_spans pairs it takes part in are measured again, in one
+    # task, out of the 7 pairs of 5 planes; the one run is solved again
     measured = sorted(p for j in mapper.of("probe_pair") for p in j.pairs)
-    assert measured == [(2, 4), (3, 4)] and len(mapper.of("probe_pair")) == 1
-    assert again["reused"]["pairs_measured"] == 2 and again["reused"]["runs_solved"] == 1
+    assert measured == [(0, 2), (1, 2), (2, 3), (2, 4)] and len(mapper.of("probe_pair")) == 1
+    assert again["reused"]["pairs_measured"] == 4 and again["reused"]["pairs"] == 3
+    assert again["reused"]["runs_solved"] == 1
     # ... and the numbers are those of a full report of the same folder (the stored pairs are re-used as such)
     full, _ = collect(root, SETTINGS, reuse=False)
     for a, b in zip(full["sections"], again["sections"]):

@@ -116,19 +116,20 @@ def _inset_tiles(build: Path, section: int, side: int, out: Path, tile: int = 32
     out.mkdir(parents=True, exist_ok=True)
     rows = ["section,tile,path,x,y,pixel_size"]
     step = tile - overlap
-    for r in range(0, max(1, 2 * side - overlap), step):
-        for c in range(0, max(1, 2 * side - overlap), step):
+    # Tiles every `step` px, the last one flush with the far edge, so they cover the whole square.
+    last = max(0, 2 * side - tile)
+    starts = [v for v in range(0, last, step) if last - v >= step // 2] + [last]
+    for i, r in enumerate(starts):
+        for j, c in enumerate(starts):
             part = big[r:r + tile, c:c + tile]
-            if part.shape != (tile, tile):
-                continue
-            name = f"f{r // step}_{c // step}"
+            name = f"f{i}_{j}"
             tifffile.imwrite(out / f"{name}.tif", part)
             rows.append(f"{section},{name},{out / (name + '.tif')},{2 * cx - 0.5 + c},{2 * cy - 0.5 + r},2")
     (out / "tiles.csv").write_text("\n".join(rows) + "\n")
     return out / "tiles.csv", cx, cy
 
 
-def inset_memory(root: Path, base: Path, section: int, sides=(256, 768)) -> None:
+def inset_memory(root: Path, base: Path, section: int, sides=(384, 960)) -> None:
     """Peak traced memory of the inset's region and chunk tasks, and its landing error, at two inset sizes.
 
     Each task runs in this process with the tile cache emptied first (a cold worker), under
@@ -149,6 +150,7 @@ def inset_memory(root: Path, base: Path, section: int, sides=(256, 768)) -> None
         shutil.copytree(base, work / "b")
         manifest, cx, cy = _inset_tiles(work / "b", section, side, work / "fine")
         peaks: dict[str, float] = {}
+        calls: dict[str, int] = {}
 
         def mapper(fn, items):
             out = []
@@ -157,6 +159,7 @@ def inset_memory(root: Path, base: Path, section: int, sides=(256, 768)) -> None
                 tracemalloc.reset_peak()
                 start = tracemalloc.get_traced_memory()[0]
                 out.append(fn(item))
+                calls[fn.__name__] = calls.get(fn.__name__, 0) + 1
                 peaks[fn.__name__] = max(peaks.get(fn.__name__, 0.0), tracemalloc.get_traced_memory()[1] - start)
             return out
         tracemalloc.start()
@@ -177,8 +180,10 @@ def inset_memory(root: Path, base: Path, section: int, sides=(256, 768)) -> None
         if k == 0:
             continue
         print(f"inset of {side} x {side} section px ({len(fine.tiles)} fine tiles, {(2 * side) ** 2 / 1e6:.2f} MP at 2 nm): "
-              f"{seconds:.1f} s; peak per task: region registration {peaks.get('register_region', 0) * mb:.1f} MB, "
-              f"level-0 chunk {peaks.get('render_inset_block', 0) * mb:.1f} MB, reduced chunk "
+              f"{seconds:.1f} s; peak per task: region registration {peaks.get('register_region', 0) * mb:.1f} MB "
+              f"({calls.get('register_region', 0)} tasks), level-0 chunk {peaks.get('render_inset_block', 0) * mb:.1f} MB "
+              f"({calls.get('render_inset_block', 0)} tasks of at most {BuildFolder(work / 'b').config.render.chunk} px "
+              f"square), reduced chunk "
               f"{peaks.get('reduce_inset_block', 0) * mb:.1f} MB; whole call (driver + one task at a time) "
               f"{whole * mb:.1f} MB; regions {rec['regions_used']}/{rec['regions']}, fit residual RMS "
               f"{rec['residual_rms_px']:.3f} px; landing vs truth (common shift removed) RMS "

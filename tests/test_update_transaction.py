@@ -96,6 +96,9 @@ def test_two_replaced_tiles_rewrite_only_their_shards(grid_build, updated):
     assert all(t["blocks"] > 0 and t["max_shift_px"] <= 0.5 for t in checked["tiles"].values())
     # The report measures the re-imaged section again and keeps the untouched sections' measurements.
     assert plan["facts"]["report"]["sections_reused"] >= 3, plan["facts"]["report"]
+    # ... and the probe measures again only the plane pairs within its reach of plane 3.
+    assert plan["facts"]["report"]["pairs_measured"] > 0 and plan["facts"]["report"]["pairs_reused"] > 0, \
+        plan["facts"]["report"]
     changed = {k for k in before.keys() | after.keys() if before.get(k) != after.get(k)}  # all-zero chunks are not stored
     for key in changed:  # level/c/z/row/col
         level, _, z, i, j = key.split(os.sep)

@@ -619,8 +619,10 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
     # The report re-measures only sections and planes whose inputs changed (qc/measured keeps the rest).
     doc = _metrics(build)
     plan.facts["totals_after"] = doc.get("totals", {})
-    plan.facts["report"] = {"sections_reused": doc.get("reused", {}).get("sections"),
-                            "sections": len(doc.get("sections", []) or [])}
+    reused = doc.get("reused", {}) or {}
+    plan.facts["report"] = {"sections_reused": reused.get("sections"),
+                            "sections": len(doc.get("sections", []) or []),
+                            "pairs_reused": reused.get("pairs"), "pairs_measured": reused.get("pairs_measured")}
     plan.facts["verdict"] = {"passed": verdict.passed, "failures": list(verdict.failures)}
     plan.status = "done"
     save_plan(build.root, plan)
@@ -771,6 +773,9 @@ def summary_lines(plan: UpdatePlan, verdict) -> list[str]:
     if rep.get("sections_reused") is not None:
         lines.append(f"  report: {rep['sections'] - rep['sections_reused']} of {rep['sections']} section(s) measured "
                      "again, the others' measurements kept (their inputs did not change)")
+    if rep.get("pairs_measured") is not None and rep.get("pairs_reused") is not None:
+        lines.append(f"  report: probe: {rep['pairs_measured']} of {rep['pairs_measured'] + rep['pairs_reused']} plane "
+                     "pair(s) measured again")
     if verdict is not None:
         lines.append("  report: " + ("PASSED" if verdict.passed else "FAILED: " + "; ".join(verdict.failures)))
     return lines

@@ -10,9 +10,12 @@ section) and, with ``append``, whole new sections. The update
 2. registers again only the tile pairs that involve a new tile (stored results of the
    others are kept) and places the new tiles with every untouched one held where it was
    (:mod:`stackbuild.run.update_stitch`); appended sections are stitched whole;
-3. aligns the stack again and keeps the old alignment of every section
-   (re-imaged ones included) the re-solve moves by no more than ``hold_within`` pixels
-   (:func:`stackbuild.transforms.hold.hold_alignments`);
+3. keeps the alignment of a re-imaged section whose new pixels show its old content
+   (:mod:`stackbuild.run.update_reach`); otherwise solves a window of sections around
+   the changed ones and keeps the old alignment of every section (re-imaged ones
+   included) the re-solve moves by no more than ``hold_within`` pixels
+   (:func:`stackbuild.transforms.hold.hold_alignments`); appended sections are
+   re-expressed through the existing section they follow (:mod:`stackbuild.run.update_align`);
 4. registers the marker images again;
 5. writes only the shards whose pixels can change, and the pyramid above them
    (:mod:`stackbuild.render.dirty`, :mod:`stackbuild.render.patch`), on a

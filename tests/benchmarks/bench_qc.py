@@ -92,7 +92,7 @@ _REPORT = ("import sys, resource, time; from stackbuild.qc.report import run_rep
            "b = BuildFolder(sys.argv[1]); c = time.process_time(); "
            "v = run_report(b.root, b.config.report, reuse=sys.argv[2] == 'reuse'); "
            "import json; d = json.loads((b.qc_dir / 'metrics.json').read_text()); "
-           "print(time.process_time() - c, json.dumps(d.get('reused')), v.passed, "
+           "print(time.process_time() - c, json.dumps(d.get('reused'), separators=(',', ':')), v.passed, "
            "resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)")
 
 

@@ -13,6 +13,8 @@
                  example ``git archive <commit> stackbuild | tar -x -C DIR``) beside it.
 ``--json-size``  metrics.json of 400 sections x 1000 tiles, from a real document's
                  per-section rows (tiles and pairs go to CSV only).
+``--one-plane``  on the 8-section agreement build: a full report, a re-report with nothing changed, and
+                 re-reports after one plane changed (an end plane and a middle one): CPU and pairs measured.
 (no option)      the probe's pair matcher beside skimage's phase_cross_correlation.
 
 Run: ``python tests/benchmarks/bench_qc.py --agreement --memory --json-size``
@@ -172,6 +174,24 @@ def bench_memory(work: Path, sections: int, baseline: str | None) -> None:
     print(f"peak memory 7x7 / 3x3: {rows[1][1] / rows[0][1]:.2f} (bar: <= 1.3)")
 
 
+def bench_one_plane(work: Path) -> None:
+    """On the 8-section agreement build (standard, seed 0): full report CPU beside a re-report after one plane changed."""
+    out = work / "standard-base-0" / "build"
+    if not (out / "volume.zarr").exists():
+        print("one plane: no agreement build; run --agreement first")
+        return
+    cpu, own, _, _ = _report(out, "measure")
+    again, own_again, _, _ = _report(out, "reuse")
+    for z in (0, 4):
+        old = _touch_plane(out, z)
+        try:
+            one, own_one, _, reused = _report(out, "reuse")
+        finally:
+            _restore_plane(out, z, old)
+        print(f"8 sections: full report {cpu:.1f} s CPU ({own:.1f} s in run_report); nothing changed {again:.1f} s "
+              f"({own_again:.1f}); plane {z} changed {one:.1f} s ({own_one:.1f}): {reused}", flush=True)
+
+
 def bench_json_size(work: Path) -> None:
     """Estimate metrics.json for 400 sections x 1000 tiles from a real document's per-section rows."""
     docs = sorted(work.glob("*/build/qc/metrics.json")) or sorted(Path("/tmp").glob("**/qc/metrics.json"))
@@ -229,6 +249,7 @@ def main() -> None:
     ap.add_argument("--agreement", action="store_true")
     ap.add_argument("--memory", action="store_true")
     ap.add_argument("--json-size", action="store_true")
+    ap.add_argument("--one-plane", action="store_true", help="re-report after one plane changed, 8 sections")
     ap.add_argument("--sections", type=int, default=8)
     ap.add_argument("--seeds", type=int, default=3)
     ap.add_argument("--work", default="/tmp/bench_qc")
@@ -241,6 +262,8 @@ def main() -> None:
         bench_agreement(work, args.sections, args.seeds)
     if args.memory:
         bench_memory(work, 4, args.baseline)
+    if args.one_plane:
+        bench_one_plane(work)
     if args.json_size:
         bench_json_size(work)
 

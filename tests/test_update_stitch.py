@@ -69,3 +69,17 @@ def test_only_pairs_of_new_tiles_are_registered_and_untouched_tiles_stay(grid_bu
     new = rec.tile("r1c1")
     assert abs(new.gain - before["r1c1"].gain) < 0.02 and abs(new.offset - before["r1c1"].offset) < 2.0
     assert facts["held_moved_px"] is not None and facts["held_moved_px"] < 0.5
+
+
+def test_a_section_whose_every_tile_is_new_is_stitched_whole(grid_build, grid_data, tmp_path):
+    # Nothing to hold: the placements are those the stitch stage itself gives these tiles
+    # (stackbuild.stitch.section.stitch_section on the same inputs), not stage positions.
+    from stackbuild.stitch.section import stitch_section
+
+    build = BuildFolder(grid_build)
+    names = {f"r{r}c{c}" for r in range(3) for c in range(3)}
+    tiles = _reimage(grid_data, tmp_path, names)
+    rec, facts = restitch_section(build.store.load_stitch(SECTION), tiles, names, build.config.stitch, SECTION)
+    whole = stitch_section(tiles, build.config.stitch, SECTION)
+    assert facts["pairs_kept"] == 0 and facts["held"] == 0
+    assert [(t.tile, t.x, t.y) for t in rec.tiles] == [(t.tile, t.x, t.y) for t in whole.tiles]

@@ -126,6 +126,13 @@ def restitch_section(old: SectionStitch, tiles: list[TileEntry], changed: set[st
     from ..stitch.stream import reading_order, stream_pairs, widen_search
 
     before = {t.tile: t for t in old.tiles}
+    if all(t.tile in changed or t.tile not in before for t in tiles):
+        # Every tile is new: nothing to hold, the section is stitched whole.
+        from ..stitch.section import stitch_section
+
+        rec = stitch_section(list(tiles), settings, section)
+        return rec, {"pairs": len(rec.pairs), "pairs_kept": 0, "tiles_read": len(tiles), "held": 0,
+                     "placed": len(tiles), "held_moved_px": None}
     stored = {_key(p.a, p.b): p for p in old.pairs}
     stage = np.array([(t.x, t.y) for t in tiles], dtype=np.float64)
     sizes = np.array([(t.width, t.height) for t in tiles], dtype=np.int64)

@@ -762,6 +762,11 @@ def summary_lines(plan: UpdatePlan, verdict) -> list[str]:
                      f"{a.get('largest_untouched_move_px', 0.0):.2f} px (held; re-imaged"
                      f"{' and neighbouring' if plan.realign_neighbours else ''} sections re-aligned beyond "
                      f"{plan.hold_within:g} px)")
+    if a.get("anchored"):
+        anchors = sorted({v["anchor"] for v in a["anchored"].values()})
+        lines.append(f"  align: appended section(s) {sorted(int(k) for k in a['anchored'])} kept as solved against "
+                     f"section(s) {anchors} as stored (moved up to "
+                     f"{max(v['moved_px'] for v in a['anchored'].values()):.2f} px from one affine frame change)")
     r = f.get("render", {})
     if r.get("full"):
         lines.append(f"  render: the canvas origin moved, every plane rendered again ({len(r.get('planes', []))})")

@@ -1,17 +1,20 @@
 """The alignment-error probe, part 1: block shifts per pair of planes, measured as tasks and kept.
 
-:func:`probe_pair` is one task: one plane (the fixed side) against the next
-``probe_spans`` present planes. It reads the planes one region window at a
-time (``region_size`` level-0 px plus a margin: at the defaults about
-2.3k x 2.3k float32 = 21 MB per plane, whatever the section's size), cuts the
+:func:`probe_pair` is one task: up to ``PAIRS_TASK`` planes, each against the
+next ``probe_spans`` present planes (or, on a re-report, only the pairs to
+measure again). It reads the planes one region window at a time
+(``region_size`` level-0 px plus a margin, in the stored dtype with its data
+mask: at the defaults about 2.4k x 2.4k x 2 B = 11 MB per window, at most
+``probe_spans + 1`` windows held, whatever the section's size), cuts the
 blocks of the probe's grid that fall in the region, and matches every block of
 a pair in one batched call of the project's sub-pixel estimator
 (:func:`stackbuild.align.blockmatch.match_block_pairs`): first on 4x reduced
-blocks reaching ``probe_reach``, then at the measured level, the moving block
-cut around that first answer. The shifts of each pair go to
-``DIR/qc/measured/pairs/<a>-<b>.json`` stamped with the pair's fingerprint
-(what both planes were rendered from, :func:`stackbuild.qc.reuse.pair_fingerprints`);
-the task returns a few numbers per pair (apparent motion).
+blocks (the written pyramid level, when there is one) reaching
+``probe_reach``, then at the measured level, the moving block cut around that
+first answer. The shifts of each pair go to ``DIR/qc/measured/pairs/<a>-<b>.json``
+stamped with the pair's fingerprint (what both planes were rendered from,
+:func:`stackbuild.qc.reuse.pair_fingerprints`); the task returns a few numbers
+per pair (apparent motion).
 
 Part 2, the chain along z and each plane's jitter, is :mod:`stackbuild.qc.runs`.
 :func:`measure_error` runs both: the driver holds per-pair and per-plane

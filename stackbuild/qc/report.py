@@ -510,7 +510,7 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     progress : callable, optional
         ``progress(done, total)`` while measuring.
     mapper : callable, optional
-        ``mapper(fn, items)`` that runs the region tasks (the build's Dask mapper); in this process
+        ``mapper(fn, items)`` that runs the section, pair and run tasks (the build's Dask mapper); in this process
         when omitted.
     reuse : bool
         Re-use stored measurements whose inputs are unchanged (``DIR/qc/measured``, see

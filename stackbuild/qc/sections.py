@@ -79,19 +79,20 @@ class Locator:
                 "z_nm": None if z is None else round(z * self.dz_nm, 1)}
 
 
-def _blocks_summary(blocks: BlockMatches, where) -> dict:
+def _blocks_summary(blocks: BlockMatches) -> tuple[dict, np.ndarray | None]:
+    """Return a pair's block summary and the section point of its largest block (placed later, in one batch)."""
     mags = blocks.magnitudes
-    s = summarize(mags)
-    s["at"] = where(blocks.points[int(np.argmax(mags))]) if mags.size else None
-    return s
+    return summarize(mags), (blocks.points[int(np.argmax(mags))] if mags.size else None)
 
 
 def stitch_rows(section, stitch, seams, align, loc: Locator):
-    """Return tile rows, pair rows and the section's seam summary (over the pairs' rigid misfits)."""
-    to_out = lambda p: section_to_output(p, align, loc.canvas)[0]  # noqa: E731
-    where = lambda p: loc.at(section, to_out(p))  # noqa: E731
+    """Return tile rows, pair rows and the section's seam summary (over the pairs' rigid misfits).
+
+    Every place is mapped to the output in one call (the alignment's inverse is the costly part).
+    """
     recorded = {(p.a, p.b): p for p in stitch.pairs}
     pairs, misfits, places = [], [], []
+    todo: list[tuple[dict, str, np.ndarray]] = []   # (row, key, section point): places to map at the end
     for sb in seams:
         p = recorded.get((sb.a, sb.b))
         row = {"section": section, "a": sb.a, "b": sb.b}
@@ -102,12 +103,15 @@ def stitch_rows(section, stitch, seams, align, loc: Locator):
             vec, centre = np.median(sb.blocks.shifts, axis=0), sb.blocks.points.mean(axis=0)
             row["misfit"] = [float(vec[0]), float(vec[1])]
             row["residual"] = float(np.hypot(*vec))
-            row["at"] = where(centre)
+            todo.append((row, "at", centre))
             misfits.append(row["residual"])
             places.append(centre)
         else:
             row["misfit"] = row["residual"] = row["at"] = None
-        row["blocks"] = _blocks_summary(sb.blocks, where)
+        row["blocks"], worst = _blocks_summary(sb.blocks)
+        row["blocks"]["at"] = None
+        if worst is not None:
+            todo.append((row["blocks"], "at", worst))
         row["error"] = sb.error
         pairs.append(row)
     mine: dict[str, list[float]] = {}
@@ -120,12 +124,20 @@ def stitch_rows(section, stitch, seams, align, loc: Locator):
         m = mine.get(t.tile, [])
         centre = (t.x + (t.width - 1) / 2, t.y + (t.height - 1) / 2)
         flags = list(t.flags) + ([] if Path(t.path).is_file() else ["missing_file"])
-        tiles.append({"section": section, "tile": t.tile, "path": t.path, "x": t.x, "y": t.y,
-                      "flags": flags, "stitch_residual": t.residual,
-                      "seam_median": float(np.median(m)) if m else None,
-                      "seam_max": max(m, default=None), "seams": len(m), "at": where(centre)})
+        row = {"section": section, "tile": t.tile, "path": t.path, "x": t.x, "y": t.y,
+               "flags": flags, "stitch_residual": t.residual,
+               "seam_median": float(np.median(m)) if m else None,
+               "seam_max": max(m, default=None), "seams": len(m), "at": None}
+        todo.append((row, "at", np.asarray(centre, float)))
+        tiles.append(row)
     summary = summarize(misfits)
-    summary["at"] = where(places[int(np.argmax(misfits))]) if misfits else None
+    summary["at"] = None
+    if misfits:
+        todo.append((summary, "at", places[int(np.argmax(misfits))]))
+    if todo:
+        out = section_to_output(np.array([pt for _, _, pt in todo], float), align, loc.canvas)
+        for (target, key, _), xy in zip(todo, out):
+            target[key] = loc.at(section, xy)
     return tiles, pairs, summary
 
 

@@ -1,7 +1,7 @@
 """The report stage entry: ``run(folder, settings, *, mapper, progress)``.
 
 Measures the build (one task per section for its seams, the alignment-error probe as
-region tasks, both through ``mapper``), writes ``DIR/qc`` and returns the
+pair and run tasks, all through ``mapper``), writes ``DIR/qc`` and returns the
 :class:`~stackbuild.qc.report.Verdict`. :func:`check_bars` re-evaluates bars
 against the stored metrics without measuring or writing anything.
 """

@@ -188,6 +188,7 @@ def bench_one_plane(work: Path) -> None:
             one, own_one, _, reused = _report(out, "reuse")
         finally:
             _restore_plane(out, z, old)
+            _report(out, "reuse")  # the pairs measured with the changed fingerprint, measured back
         print(f"8 sections: full report {cpu:.1f} s CPU ({own:.1f} s in run_report); nothing changed {again:.1f} s "
               f"({own_again:.1f}); plane {z} changed {one:.1f} s ({own_one:.1f}): {reused}", flush=True)
 

@@ -8,6 +8,7 @@ random warp, as the cutting and imaging would distort it.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import cv2
 import numpy as np
@@ -174,3 +175,18 @@ def small_settings(**kw):
     base.update(kw)
     return AlignSettings(**base)
 
+
+
+def true_stitch(sample, build) -> None:
+    """Write stitch records with the TRUE tile positions of a synthetic sample (isolates alignment from stitching)."""
+    from stackbuild.manifest import read_tile_manifest
+    from stackbuild.synth import load_truth
+    from stackbuild.transforms import SectionStitch, TilePlacement, TransformStore
+    manifest = read_tile_manifest(Path(sample) / "tiles.csv")
+    truth = load_truth(sample)
+    store = TransformStore(Path(build) / "transforms")
+    for z in manifest.sections:
+        pos = truth.tile_positions(z)
+        tiles = [TilePlacement(t.tile, str(t.path), t.width, t.height, t.x, t.y, *pos[t.tile])
+                 for t in manifest.section_tiles(z)]
+        store.save_stitch(SectionStitch(z, manifest.section_tiles(z)[0].dtype, tiles))

@@ -83,8 +83,7 @@ def _grid(shape, spacing, reach):
 def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, max_shift: int = 8,
                         coarsest: int = 192, threshold: float = 2.0, min_confidence: float = 0.15,
                         blur: float = 1.0, blocks: int = 400, coarse_blocks: int = 400,
-                        unbiased: bool = True, coarse_unbiased: bool = True,
-                        finest: int = 0) -> tuple[np.ndarray, np.ndarray, dict]:
+                        unbiased: bool = True, coarse_unbiased: bool = True) -> tuple[np.ndarray, np.ndarray, dict]:
     """Return corresponding points ``(pa, pb)`` (overview pixels ``(x, y)``) of two overviews, and facts.
 
     Parameters
@@ -102,24 +101,20 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
     blur : float
         Low-pass of the correlations (sigma, pixels of each level).
     blocks : int
-        About this many blocks are matched at the finest level reached (the
-        node spacing grows with the level's size).
+        About this many blocks are matched at the finest level (the node
+        spacing grows with the level's size).
     coarse_blocks : int
         ... and at each coarser level, which only has to bring the next
         level within ``max_shift``.
     unbiased : bool
-        Blocks take the matcher's unbiased passes at every level
-        (:func:`.blockmatch.match_blocks` ``subpixel``); False reads the
-        sub-pixel peak off the first surface, about half the cost. Kept on:
-        off at the coarser levels, the realistic long stack (seed 1) ended
-        1.24 px RMS after the elastic step instead of 1.04 (one seed; small
-        numerical changes move that stack by about 0.1 px).
+        Blocks of the finest level (the overviews) take the matcher's
+        unbiased passes (:func:`.blockmatch.match_blocks` ``subpixel``);
+        False reads the sub-pixel peak off the first surface, about half the
+        cost.
     coarse_unbiased : bool
-        The same for the levels coarser than the finest one reached.
-    finest : int
-        Stop at this level (0 = the overviews themselves, 1 = half their
-        size, ...; at most the coarsest level); the points are returned in
-        overview pixels all the same.
+        The same for the coarser levels. Each level measures what the model
+        so far has left, so the one-pass estimate's pull toward that model
+        (a few per cent of what is left) is measured again by the next level.
 
     Returns
     -------
@@ -143,26 +138,20 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
     facts = {"levels": len(pyr_a), "shift_peak": peak, "matches": 0, "inliers": 0}
     empty = np.zeros((0, 2))
     pa = pb = empty
-    stop = min(int(finest), len(pyr_a) - 1)
-    for lvl in range(len(pyr_a) - 1, stop - 1, -1):
-        last = lvl == stop
+    for lvl in range(len(pyr_a) - 1, -1, -1):
+        last = lvl == 0
         fit = _fit_level(pyr_a[lvl], pyr_b[lvl], model, half_size, max_shift, reach,
                          blocks if last else coarse_blocks, unbiased if last else coarse_unbiased,
                          blur, threshold, min_confidence, facts)
         pa = pb = empty
         if fit is not None:
             model, pa, pb = fit
-        if lvl > stop:
+        if lvl:
             # the same map one level finer: p' = 2 p + 0.5 on both sides (also when this level gave
             # no fit: the whole-image shift, or the model of a coarser level, must be carried down)
             model = model.copy()
             model[:, 2] *= 2.0
             model[:, 2] += 0.5 * (1.0 - model[:, :2].sum(axis=1))
-    if stop and len(pa):
-        # level-``stop`` pixel j is the mean of overview pixels 2^stop j ... 2^stop (j + 1) - 1
-        k = 2.0 ** stop
-        pa, pb = pa * k + (k - 1) / 2.0, pb * k + (k - 1) / 2.0
-    facts["finest"] = stop
     return pa, pb, facts
 
 

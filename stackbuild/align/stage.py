@@ -99,6 +99,15 @@ def _overview_at(scratch, fact, scale):
     return img, np.asarray(fact["offset"], float)
 
 
+#: correlation of overviews: the levels coarser than the overview only have to bring the next level
+#: within the blocks' search, so they hold fewer blocks and take the matcher's one pass (its pull
+#: toward the model so far, a few per cent of what is left, is measured again by the next level);
+#: the overview itself keeps the unbiased passes: with the one pass there too, the coarse stage alone
+#: drifted 1 px over 50 sections (tests/test_align_stack.py), a slow drift the elastic step's second
+#: differences cannot see. Rule of thumb, checked on the realistic long and small stacks (3 seeds)
+_COARSE_BLOCKS = 120
+
+
 def pair_job(item) -> PairResult:
     """Match sections ``a`` and ``b`` (stored features, or overviews by correlation) and fit the coarse model."""
     scratch, fa_, fb_, settings = item
@@ -116,7 +125,8 @@ def pair_job(item) -> PairResult:
         return PairResult(a, b, empty, empty, None, stats, "few_features")
     (ia, oa), (ib, ob) = _overview_at(scratch, fa_, s), _overview_at(scratch, fb_, s)
     pa, pb, facts = correlate_overviews(ia, ib, threshold=settings.ransac_threshold,
-                                        min_confidence=settings.min_match_confidence)
+                                        min_confidence=settings.min_match_confidence,
+                                        coarse_blocks=_COARSE_BLOCKS, coarse_unbiased=False)
     # overview pixel j has its centre at section pixel offset + (j + 0.5) * s - 0.5 (block means)
     pa, pb = oa + (pa + 0.5) * s - 0.5, ob + (pb + 0.5) * s - 0.5
     return pair_from_points(pa, pb, a, b, model=settings.model, threshold=settings.ransac_threshold * s,
@@ -177,7 +187,7 @@ class _Plan:
         self.blocks = grid.block_slices(settings.region_nodes)
         self.halo = max(2, settings.solve_halo)
 
-    def region_tasks(self, aligns, tag, neighbours, consecutive=False):
+    def region_tasks(self, aligns, tag, neighbours, consecutive=False, subpixel=True):
         """Return one :class:`RegionTask` per node block x window."""
         s = self.settings
         wins = windows(self.sections, s.region_sections, neighbours)
@@ -190,7 +200,7 @@ class _Plan:
                     links = window_links(own, seen, neighbours)
                 als = tuple(crop_alignment(aligns[z], self.grid, rows, cols, self.halo) for z in seen)
                 tasks.append(RegionTask(self.source, self.grid, b, rows, cols, als, tuple(links), tuple(own),
-                                        s, str(self.scratch / f"{tag}_b{b}_w{w}.npz")))
+                                        s, str(self.scratch / f"{tag}_b{b}_w{w}.npz"), subpixel))
         return tasks, len(wins)
 
     def solve_tasks(self, tag, n_windows, fields):
@@ -244,7 +254,11 @@ def _elastic(source, sections, affines, settings, scratch, mapper, tick):
         aligns = {z: SectionAlignment(z, affines[z], None if fields is None else
                                       DisplacementField(fields[z], grid.origin, grid.spacing))
                   for z in sections}
-        tasks, n_windows = plan.region_tasks(aligns, tag, settings.neighbours)
+        # every round but the last measures with the matcher's one pass: its small pull toward zero
+        # (a few per cent of the shift) is measured and removed by the next round, whose shifts are
+        # what the earlier rounds left; the last round takes the unbiased passes
+        last = rnd == settings.elastic_rounds - 1
+        tasks, n_windows = plan.region_tasks(aligns, tag, settings.neighbours, subpixel=last)
         counts = list(mapper(region_job, tasks))
         tick(len(_pairs(sections, settings.neighbours)))
         solved = list(mapper(solve_block_job, plan.solve_tasks(tag, n_windows, fields)))

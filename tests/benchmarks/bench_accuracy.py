@@ -15,7 +15,9 @@ Run::
     python tests/benchmarks/bench_accuracy.py --family realistic --variant base dense small long --seeds 0 1 2
     python tests/benchmarks/bench_accuracy.py --sections 6 --json /tmp/x/acc.json --config my.toml --keep
 
-``--full`` is every family x variant on seeds 0, 1, 2 (the bars of the alignment issue).
+``--full`` is every family x variant on seeds 0, 1, 2 (the bars of the alignment issue); every run ends
+with the seeds x variants table (RMS and p95 per seed, each seed's worst section, whether the bars are met).
+``--from-json FILE`` prints that table again from a saved run.
 """
 from __future__ import annotations
 
@@ -136,6 +138,35 @@ def _line(r: dict) -> str:
             f"interpolated {r['flagged_interpolated']}  {qc}  ({r['build_s']:.0f} s){exit_note}")
 
 
+#: the alignment issue's bars: identifiable residual RMS and p95 (px), RMS of the last of 36 or more sections
+BAR_RMS, BAR_P95, BAR_LAST = 1.0, 2.0, 1.5
+
+
+def summary(rows: list[dict]) -> str:
+    """Return the seeds x variants table: per family and variant, each seed's RMS / p95 and worst
+    section, the worst over the seeds, and whether every seed met the issue's bars."""
+    out = [f"{'family/variant':<20} {'seeds':<7} {'RMS per seed':<22} {'p95 per seed':<22} "
+           f"{'worst section (seed: z rms)':<34} {'max RMS':>7} {'max p95':>7}  bars"]
+    groups: dict = {}
+    for r in rows:
+        groups.setdefault((r.get("family"), r.get("variant")), []).append(r)
+    for (family, variant), rs in groups.items():
+        ok = [r for r in rs if "rms" in r]
+        fails = [r for r in rs if "rms" not in r]
+        rms = [r["rms"] for r in ok]
+        p95 = [r["p95"] for r in ok]
+        worst = "  ".join(f"{r['seed']}: z{r['worst_section']} {r['per_section_rms'][str(r['worst_section'])]:.2f}"
+                          for r in ok)
+        met = bool(ok) and not fails and all(
+            r["rms"] <= BAR_RMS and r["p95"] <= BAR_P95 and not r["flagged_damaged"] and not r["flagged_interpolated"]
+            and (r["sections"] < 36 or r["last_rms"] <= BAR_LAST) for r in ok)
+        out.append(f"{family + '/' + variant:<20} {','.join(str(r['seed']) for r in rs):<7} "
+                   f"{' '.join(f'{v:.2f}' for v in rms):<22} {' '.join(f'{v:.2f}' for v in p95):<22} "
+                   f"{worst:<34} {max(rms, default=float('nan')):7.2f} {max(p95, default=float('nan')):7.2f}  "
+                   f"{'met' if met else 'NOT met'}" + (f" ({len(fails)} case(s) failed to build)" if fails else ""))
+    return "\n".join(out)
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--family", nargs="+", choices=FAMILIES, default=list(FAMILIES))
@@ -148,7 +179,11 @@ def main(argv=None) -> int:
     ap.add_argument("--keep", action="store_true", help="keep each case's sample and build folder")
     ap.add_argument("--json", type=Path, default=None, help="also write every row to this JSON file")
     ap.add_argument("--full", action="store_true", help="every family and variant on seeds 0, 1, 2")
+    ap.add_argument("--from-json", type=Path, default=None, help="print the table of a saved --json run")
     args = ap.parse_args(argv)
+    if args.from_json:
+        print(summary(json.loads(args.from_json.read_text())))
+        return 0
     if args.full:
         args.family, args.variant, args.seeds = list(FAMILIES), list(VARIANTS), [0, 1, 2]
     rows = []
@@ -159,13 +194,17 @@ def main(argv=None) -> int:
                     row = run_case(family, variant, seed, args.work, args.sections, args.workers, args.keep,
                                    args.config)
                 except InputError as exc:
-                    row = {"case": f"{family}-{variant}-s{seed}", "build_exit": None, "build_error": [],
-                           "error": str(exc)}
+                    row = {"case": f"{family}-{variant}-s{seed}", "family": family, "variant": variant,
+                           "seed": seed, "build_exit": None, "build_error": [], "error": str(exc)}
                 rows.append(row)
                 print(_line(row), flush=True)
                 if args.json:
                     args.json.parent.mkdir(parents=True, exist_ok=True)
                     args.json.write_text(json.dumps(rows, indent=1, default=str) + "\n")
+    print()
+    print(f"identifiable residual (px) of real builds; bars: RMS <= {BAR_RMS}, p95 <= {BAR_P95}, last of 36+ "
+          f"sections <= {BAR_LAST}, no intact section flagged damaged or interpolated")
+    print(summary(rows))
     return 0
 
 

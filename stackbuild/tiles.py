@@ -22,6 +22,7 @@ import hashlib
 import math
 import threading
 from collections import Counter, OrderedDict
+from dataclasses import dataclass
 from pathlib import Path
 
 import cv2
@@ -94,9 +95,12 @@ def read_window(path: str | Path, height: int, width: int, rows: tuple[int, int]
                 source: str = "stitch record") -> np.ndarray | None:
     """Return pixels ``[r0:r1, c0:c1]`` of a tile read without the rest of it, or None if its file does not allow that.
 
-    Only tiles stored uncompressed in one run (see :func:`_plain_layout`) are read this way;
-    for others the caller reads the whole tile (:func:`read_tile`). The recorded size and
-    type are checked as :func:`read_tile` checks them.
+    Tiles stored uncompressed in one run (see :func:`_plain_layout`) are read by mapping
+    only the window. Compressed tiles (see :func:`_segment_layout`) have only the strips or
+    TIFF tiles under the window decoded (all of it when the image is one strip), through a
+    small per-process cache of decoded raw segments (:data:`SEGMENT_CACHE`), so the
+    neighbouring windows of one task decode each segment once. For others the caller reads
+    the whole tile (:func:`read_tile`). The recorded size and type are checked as :func:`read_tile` checks them.
     """
     p = Path(path)
     try:
@@ -105,7 +109,11 @@ def read_window(path: str | Path, height: int, width: int, rows: tuple[int, int]
         return None
     layout = _plain_layout(str(p), st.st_size, st.st_mtime_ns)
     if layout is None:
-        return None
+        segments = _segment_layout(str(p), st.st_size, st.st_mtime_ns)
+        if segments is None:
+            return None
+        _check_pixels(segments.shape, segments.dtype, p, height, width, section, dtype, what, source)
+        return _read_segments(p, (st.st_size, st.st_mtime_ns), segments, rows, cols)
     offset, shape, dt = layout
     _check_pixels(shape, dt.newbyteorder("="), p, height, width, section, dtype, what, source)
     (r0, r1), (c0, c1) = rows, cols
@@ -117,6 +125,122 @@ def read_window(path: str | Path, height: int, width: int, rows: tuple[int, int]
         return None
     _count_read(p, out.size)
     return out
+
+
+@dataclass(frozen=True)
+class Segments:
+    """Where the first page's pixels lie when they are compressed in independently decoded parts (strips or tiles).
+
+    Attributes
+    ----------
+    shape : (int, int)
+        The image's rows and columns.
+    dtype : numpy.dtype
+        Its pixel type (native byte order, as decoded).
+    size : (int, int)
+        Rows and columns of one segment (a strip is ``(rows per strip, width)``).
+    grid : (int, int)
+        Segments down and across.
+    offsets, counts : tuple of int
+        File offset and byte count of every segment, row by row.
+    """
+
+    shape: tuple
+    dtype: np.dtype
+    size: tuple
+    grid: tuple
+    offsets: tuple
+    counts: tuple
+
+
+@functools.lru_cache(maxsize=4096)
+def _segment_layout(path: str, size: int, mtime_ns: int) -> Segments | None:
+    """Return the :class:`Segments` of the first page when it is compressed (one strip or several strips or tiles), else None.
+
+    One strip for the whole image is one segment: decoded whole, but cached raw (a quarter of
+    the prepared float32 tile for 8-bit pixels) and corrected window by window. Only
+    single-channel 2-D pages qualify, with every segment present in the file (no sparse
+    segments); keyed by size and modification time like :func:`_plain_layout`.
+    """
+    try:
+        with tifffile.TiffFile(path) as tf:
+            page = tf.pages[0]
+            chunks, chunked = tuple(page.chunks), tuple(page.chunked)
+            if page.ndim != 2 or page.samplesperpixel != 1 or len(chunks) != 2 or len(chunked) != 2:
+                return None
+            offsets = tuple(int(o) for o in page.dataoffsets)
+            counts = tuple(int(c) for c in page.databytecounts)
+            out = Segments(tuple(int(n) for n in page.shape), np.dtype(page.dtype.str[1:]).newbyteorder("="),
+                           (int(chunks[0]), int(chunks[1])), (int(chunked[0]), int(chunked[1])), offsets, counts)
+    except Exception:  # any trouble: the whole-tile reader names it
+        return None
+    if not offsets or len(offsets) != out.grid[0] * out.grid[1] or min(counts) <= 0:
+        return None
+    if max(o + c for o, c in zip(offsets, counts)) > size:
+        return None
+    return out
+
+
+#: Decoded segments (strips or tiles of compressed TIFFs) kept per process, in tiles' worth of
+#: raw pixels: a render task reads a band of rows of the tiles under its shard chunk by chunk,
+#: and the neighbouring tasks the rest of them (common practice, no source; measured with
+#: ``bench_render.py --reads``).
+SEGMENT_TILES_KEPT = 6
+
+
+def _read_segments(p: Path, stamp: tuple, seg: Segments, rows: tuple[int, int], cols: tuple[int, int]
+                   ) -> np.ndarray | None:
+    """Return pixels ``[r0:r1, c0:c1]`` assembled from the decoded segments under them (None if one cannot be decoded)."""
+    (r0, r1), (c0, c1) = rows, cols
+    (h, w), (sh, sw) = seg.shape, seg.size
+    SEGMENT_CACHE.grow_to(SEGMENT_TILES_KEPT * h * w * seg.dtype.itemsize)
+    out = np.empty((r1 - r0, c1 - c0), seg.dtype)
+    wanted = [(i, j) for i in range(r0 // sh, (r1 - 1) // sh + 1) for j in range(c0 // sw, (c1 - 1) // sw + 1)]
+    with _SEGMENT_LOCKS[hash(str(p)) % len(_SEGMENT_LOCKS)]:  # two threads never decode one segment
+        parts = {ij: SEGMENT_CACHE.get((str(p), stamp, ij)) for ij in wanted}
+        missing = [ij for ij, v in parts.items() if v is None]
+        if missing:
+            try:
+                with tifffile.TiffFile(p) as tf:
+                    page, fh = tf.pages[0], tf.filehandle
+                    for i, j in missing:
+                        k = i * seg.grid[1] + j
+                        fh.seek(seg.offsets[k])
+                        data = np.asarray(page.decode(fh.read(seg.counts[k]), k)[0])
+                        part = data.reshape(data.shape[-3], data.shape[-2])[:min(sh, h - i * sh), :min(sw, w - j * sw)]
+                        part = np.ascontiguousarray(part, dtype=seg.dtype)
+                        part.setflags(write=False)
+                        parts[(i, j)] = part
+                        SEGMENT_CACHE.put((str(p), stamp, (i, j)), part)
+                        _count_read(p, part.size)
+            except Exception:  # a damaged segment: the whole-tile reader names the file
+                return None
+    for (i, j), part in parts.items():
+        y0, x0 = i * sh, j * sw
+        a, b = max(r0, y0), min(r1, y0 + part.shape[0])
+        c, d = max(c0, x0), min(c1, x0 + part.shape[1])
+        out[a - r0:b - r0, c - c0:d - c0] = part[a - y0:b - y0, c - x0:d - x0]
+    return out
+
+
+_SEGMENT_LOCKS = [threading.Lock() for _ in range(64)]
+
+
+def decoded_part(path: str | Path, size: tuple[int, int]) -> tuple[int, int] | None:
+    """Return the ``(rows, cols)`` :func:`read_window` decodes at once from this tile file, or None if it maps only the window.
+
+    None for an uncompressed tile in one run; a strip's or TIFF tile's size for a compressed
+    tile in parts (:func:`_segment_layout`); ``size`` (the tile's) for anything read whole.
+    """
+    p = Path(path)
+    try:
+        st = p.stat()
+    except OSError:
+        return None
+    if _plain_layout(str(p), st.st_size, st.st_mtime_ns) is not None:
+        return None
+    seg = _segment_layout(str(p), st.st_size, st.st_mtime_ns)
+    return (int(size[0]), int(size[1])) if seg is None else (int(seg.size[0]), int(seg.size[1]))
 
 
 #: Pixels decoded per tile file by this process (path -> count), whole tiles and windows alike:
@@ -209,6 +333,9 @@ def cache_bytes_for(height: int, width: int, scale: int = 1) -> int:
 
 #: The per-process cache of prepared tiles; its bound grows with the tiles it serves.
 TILE_CACHE = ByteLRU(0)
+#: The per-process cache of decoded segments of compressed tiles (:func:`_read_segments`), bounded
+#: at :data:`SEGMENT_TILES_KEPT` tiles' worth of raw pixels of the largest tile it served.
+SEGMENT_CACHE = ByteLRU(0)
 
 
 def block_mean(img: np.ndarray, factor: int) -> np.ndarray:

@@ -10,6 +10,7 @@ from scipy import ndimage, stats
 from skimage import data, measure, transform
 
 from stackbuild import tiles as tiles_mod
+from stackbuild.errors import InputError
 from stackbuild.render.reduce import reduce2x2
 from stackbuild.sampler import render_region as sample_region
 from stackbuild.render.settings import RenderSettings
@@ -116,7 +117,7 @@ def test_reduced_render_is_the_block_mean(tmp_path):
     np.testing.assert_allclose(out, transform.downscale_local_mean(mosaic, (4, 4)), atol=1e-3)
 
 
-def test_only_tiles_meeting_the_region_are_read(tmp_path, monkeypatch):
+def test_only_tiles_meeting_the_region_are_read(tmp_path):
     folder = make_build(tmp_path, n_sections=1, grid=(3, 3), tile=(48, 48), overlap=12)
     stitch = folder.store.load_stitch(0)
     tiles_mod.PIXELS_READ.clear()
@@ -124,18 +125,45 @@ def test_only_tiles_meeting_the_region_are_read(tmp_path, monkeypatch):
     # An uncompressed tile is read by window: only the one tile, and only about the region's pixels.
     assert set(tiles_mod.PIXELS_READ) == {str(stitch.tiles[0].path)}
     assert tiles_mod.PIXELS_READ[str(stitch.tiles[0].path)] <= 27 * 27 < 48 * 48
-    # A compressed tile cannot be read by window: it is read whole once, then served from the cache.
+    # A compressed tile in one strip cannot be read by window: it is decoded whole once, then its
+    # raw pixels are served from the cache of decoded segments.
     folder = make_build(tmp_path / "z", n_sections=1, grid=(3, 3), tile=(48, 48), overlap=12,
                         tiff_kwargs={"compression": "zlib"})
     stitch = folder.store.load_stitch(0)
-    read = []
-    real = tiles_mod.read_tile
-    monkeypatch.setattr(tiles_mod, "read_tile", lambda p, *a, **k: read.append(p.name) or real(p, *a, **k))
-    tiles_mod.TILE_CACHE.clear()
+    tiles_mod.SEGMENT_CACHE.clear()
+    tiles_mod.PIXELS_READ.clear()
     render_region(stitch, None, 2, 2, 20, 20)
-    assert read == ["s0_r0_c0.tif"]
+    assert dict(tiles_mod.PIXELS_READ) == {str(stitch.tiles[0].path): 48 * 48}
     render_region(stitch, None, 2, 2, 20, 20)  # served from the cache
-    assert read == ["s0_r0_c0.tif"]
+    assert dict(tiles_mod.PIXELS_READ) == {str(stitch.tiles[0].path): 48 * 48}
+
+
+@pytest.mark.parametrize("layout", [dict(compression="zlib", rowsperstrip=16),
+                                    dict(compression="lzw", tile=(32, 48), byteorder=">"),
+                                    dict(compression="zlib", predictor=True, rowsperstrip=20)])
+def test_compressed_tiles_in_strips_or_tiles_are_read_by_segment(tmp_path, layout):
+    # Reference: tifffile.imread of the whole file. A window of a compressed tile stored in
+    # several strips (or TIFF tiles) decodes only the segments under it, once per process.
+    img = (foam(120, 150, seed=3, dtype=np.uint16)).astype(np.uint16)
+    path = tmp_path / "t.tif"
+    tifffile.imwrite(path, img, **layout)
+    want = tifffile.imread(path)
+    tiles_mod.PIXELS_READ.clear()
+    tiles_mod.SEGMENT_CACHE.clear()
+    got = tiles_mod.read_window(path, 120, 150, (30, 61), (10, 40), dtype="uint16")
+    assert got.dtype == np.dtype("uint16") and np.array_equal(got, want[30:61, 10:40])
+    with tifffile.TiffFile(path) as tf:
+        sh, sw = tf.pages[0].chunks
+    rows = -(-61 // sh) - 30 // sh
+    cols = -(-40 // sw) - 10 // sw
+    decoded = sum(tiles_mod.PIXELS_READ.values())
+    assert decoded == rows * sh * min(cols * sw, 150) < 120 * 150
+    # a neighbouring window in the same segments decodes nothing more
+    got = tiles_mod.read_window(path, 120, 150, (33, 58), (12, 39), dtype="uint16")
+    assert np.array_equal(got, want[33:58, 12:39]) and sum(tiles_mod.PIXELS_READ.values()) == decoded
+    # the recorded size is still checked, naming the file
+    with pytest.raises(InputError, match="t.tif|shape"):
+        tiles_mod.read_window(path, 121, 150, (0, 5), (0, 5))
 
 
 class _WholeTiles:

@@ -23,9 +23,12 @@ Targets: render + pyramid within 2x the I/O floor; a window within 0.5 s.
 With ``--reads TILE`` (e.g. 2048 or 4096) it instead renders one section of 3 x 3
 tiles of ``TILE`` px (slightly rotated, so regions meet tiles at a slant) on the
 build's own LocalCluster of 2 worker processes, once with uncompressed tiles and
-once with zlib-compressed ones, and prints how many times each tile's pixels were
-read (pixels decoded by all workers / pixels of all tiles; 1.0 is reading each
-tile once) and the largest worker's peak resident size.
+once for each layout of zlib-compressed ones (strips of 64 rows, tifffile's default;
+TIFF tiles of 512 px; one strip for the whole image), and prints how many times each
+tile's pixels were read (pixels decoded by all workers / pixels of all tiles; 1.0 is
+reading each tile once) and the largest worker's peak resident size. A compressed
+strip is decoded whole, so two tasks on different workers that need the two halves of
+a tile's rows both decode them.
 """
 from __future__ import annotations
 
@@ -186,8 +189,12 @@ def _reads_per_tile(tile: int, keep: Path | None) -> None:
     grid, overlap = 3, tile // 12
     print(f"one section of {grid}x{grid} tiles of {tile}x{tile} px (overlap {overlap} px, rotated 0.3 deg); "
           f"chunk {settings.chunk}, shard {settings.chunk * settings.shard} px; 2 worker processes x 1 thread")
-    for label, kwargs in (("uncompressed", {}), ("zlib", {"compression": "zlib"})):
-        root = (keep / label) if keep else Path(tempfile.mkdtemp(prefix="bench_reads_"))
+    layouts = (("uncompressed", {}),
+               ("zlib, strips of 64 rows", {"compression": "zlib"}),       # tifffile's default layout
+               ("zlib, TIFF tiles of 512", {"compression": "zlib", "tile": (512, 512)}),
+               ("zlib, one strip", {"compression": "zlib", "rowsperstrip": tile}))
+    for label, kwargs in layouts:
+        root = (keep / label.replace(" ", "_").replace(",", "")) if keep else Path(tempfile.mkdtemp(prefix="bench_reads_"))
         centre = (grid * (tile - overlap) + overlap) / 2
         folder = make_build(root, n_sections=1, grid=(grid, grid), tile=(tile, tile), overlap=overlap,
                             affines={0: Affine2D.similarity(1.0, 0.005, 3.0, -2.0, center=(centre, centre))},
@@ -200,7 +207,7 @@ def _reads_per_tile(tile: int, keep: Path | None) -> None:
         pixels = sum(sum(r.values()) for r, _ in got.values())
         files = {p for r, _ in got.values() for p in r}
         peak = max(m for _, m in got.values()) / 2 ** 20
-        print(f"  {label:12s}: reads per tile {pixels / (grid * grid * tile * tile):.2f} "
+        print(f"  {label:24s}: reads per tile {pixels / (grid * grid * tile * tile):.2f} "
               f"({len(files)} of {grid * grid} tiles read), largest worker peak {peak:.0f} MB, "
               f"render {wall:.1f} s")
         if keep is None:

@@ -184,6 +184,44 @@ def _touching(n_out: int, block: int, step: float, size: int, n_tiles: int) -> l
     return out
 
 
+#: Pixels a chunk's window of a tile reaches beyond the chunk on each side: the cubic
+#: resampling's 2 px and the prepared tile's ring (from the sampler's code; measured 1.21x
+#: reads on 160 px tiles in chunks of 64, 1.02x on 4096 px tiles in chunks of 1024).
+WINDOW_MARGIN = 2.5
+
+
+def _render_reads(shape: VolumeShape, block: int, per_shard: int, per_side: int = 1) -> tuple[float, float, str]:
+    """Return (reads per tile, bytes of tile cache a shard task holds, note) of the level-0 render.
+
+    As :func:`stackbuild.tiles.read_window` reads: an uncompressed tile by window, so each
+    pixel about once plus the margins of the chunks' windows (:data:`WINDOW_MARGIN`; measured
+    1.02 with ``bench_render.py --reads`` at 4096 px) and nothing cached. A compressed one by its decoded parts (strips, TIFF
+    tiles, or the whole tile), cached raw within a process (``SEGMENT_TILES_KEPT`` tiles' worth),
+    so a task decodes each part it needs once; a part under two shards is decoded by both when
+    they run in different processes, so the reads are counted as if they always did (an upper
+    bound: a part ``(a, b)`` px meets ``1 + a / block`` shard rows and ``1 + b / block`` shard
+    columns on average; measured below it, e.g. strips of 64 rows of 4096 px tiles: 1.5 to 1.9
+    against 2.0 planned).
+    """
+    from .. import tiles
+
+    if shape.segment is None:
+        # each chunk's window of a tile reaches WINDOW_MARGIN px beyond the chunk on every side
+        chunk = block / max(1, per_side)
+        reads = 1.0
+        for size in (shape.tile_height, shape.tile_width):
+            reads *= 1 + (size / chunk + 1) * 2 * WINDOW_MARGIN / size
+        return reads, 0.0, f"tiles read by window (uncompressed): each {reads:.2f} times"
+    a, b = min(shape.segment[0], shape.tile_height), min(shape.segment[1], shape.tile_width)
+    reads = (1 + (a - 1) / block) * (1 + (b - 1) / block)
+    raw = shape.tile_height * shape.tile_width * shape.itemsize
+    kept = min(tiles.SEGMENT_TILES_KEPT, per_shard) * raw
+    whole = (a, b) == (shape.tile_height, shape.tile_width)
+    part = "whole tiles" if whole else f"parts of {a} x {b} px"
+    return reads, float(kept), (f"compressed tiles decoded in {part}: each tile read at most {reads:.1f} times "
+                                f"(decoded cache {kept / MB:.0f} MB)")
+
+
 def render_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     """One task per shard and level (``render/pyramid.py``), plus the contrast pass when it is on."""
     r = cfg.render
@@ -197,25 +235,14 @@ def render_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     sy, sx = shape.tile_height - shape.overlap_y, shape.tile_width - shape.overlap_x
     ty = _touching(h, block, sy, shape.tile_height, shape.rows)
     tx = _touching(w, block, sx, shape.tile_width, shape.cols)
-    cy = _touching(h, chunk, sy, shape.tile_height, shape.rows)
-    cx = _touching(w, chunk, sx, shape.tile_width, shape.cols)
-    prepared = (shape.tile_height + 2) * (shape.tile_width + 2) * 4
-    cache = tile_cache_bytes(shape)
     per_shard = max(ty) * max(tx)
-    per_row = max(cy) * max(tx)  # chunks are rendered row by row across a shard
-    if per_row * prepared <= cache:  # a row's tiles stay cached: each shard reads each of its tiles once
-        reads = sum(ty) * sum(tx)
-    else:  # they do not: every chunk reads its own tiles again
-        reads = sum(cy) * sum(cx)
-    kept = min(cache, per_shard * prepared)
+    reads, kept, note = _render_reads(shape, block, per_shard, per)
     records = shape.tiles_per_section * 400 + _grid(shape, cfg.align)[0] * 2 * 8
     shard_px = min(block, h) * min(block, w)
     planes_px = shape.imaged * h * w
     kinds = [Kind("render.shard", shape.imaged * n0, shard_px * b * 1.25 + chunk * chunk * 4 * 4 + records,
-                  shard_px / MB, reads=reads * shape.tile_bytes / max(1, n0), fixed=kept,
-                  note=f"each tile read {reads / max(1, shape.tiles_per_section):.1f} times "
-                       f"(cache {cache / MB:.0f} MB, {per_shard} prepared tiles of "
-                       f"{prepared / MB:.0f} MB touch a shard)"),
+                  shard_px / MB, reads=reads * shape.tiles_per_section * shape.tile_bytes / max(1, n0),
+                  fixed=kept, note=note),
              Kind("render.join", shape.imaged * upper, shard_px * b * 1.5, shard_px / MB / 4),
              Kind("render.driver", 1, 3000.0 * min(shape.imaged, max(1, 32 // max(1, n0))) * (n0 + upper),
                   shape.imaged * (n0 + upper) / 1e3, driver=True,

@@ -16,6 +16,7 @@ import numpy as np
 
 from ..errors import InputError
 from ..manifest import image_header
+from ..tiles import decoded_part
 
 #: Tile overlap assumed for a described size, as a fraction of the tile side
 #: (common practice for serial-section EM montages is 5-10 %, no source).
@@ -42,6 +43,12 @@ class VolumeShape:
         Bytes per pixel (1 or 2).
     overlap_y, overlap_x : float
         Overlap of neighbouring tiles, pixels.
+    segment : (int, int) or None
+        Rows and columns of one independently decoded part of a compressed tile (a strip is
+        ``(rows per strip, width)``, one strip for the whole image is the tile's size), as
+        :func:`stackbuild.tiles.read_window` decodes them; None for uncompressed tiles, which
+        are read by window. Taken from the first tile of a manifest; a described volume is
+        uncompressed unless told.
     """
 
     planes: int
@@ -54,6 +61,7 @@ class VolumeShape:
     itemsize: int
     overlap_y: float
     overlap_x: float
+    segment: tuple | None = None
 
     @property
     def tiles_per_section(self) -> int:
@@ -87,7 +95,7 @@ class VolumeShape:
 
     @classmethod
     def described(cls, sections: int, tiles_per_section: int, tile_size: int, bits: int = 8,
-                  overlap: float = DESCRIBED_OVERLAP) -> "VolumeShape":
+                  overlap: float = DESCRIBED_OVERLAP, segment: tuple | None = None) -> "VolumeShape":
         """Return the shape of ``sections`` sections of ``tiles_per_section`` square tiles in a near-square grid."""
         if sections < 1 or tiles_per_section < 1 or tile_size < 16:
             raise InputError(f"need sections >= 1, tiles per section >= 1 and tile size >= 16; got "
@@ -98,7 +106,7 @@ class VolumeShape:
         rows = int(math.ceil(tiles_per_section / cols))
         ov = overlap * tile_size
         return cls(sections, sections, sections * tiles_per_section, rows, cols, tile_size, tile_size,
-                   bits // 8, ov, ov)
+                   bits // 8, ov, ov, None if segment is None else (int(segment[0]), int(segment[1])))
 
     @classmethod
     def from_manifest(cls, path: str | Path) -> "VolumeShape":
@@ -130,6 +138,7 @@ class VolumeShape:
         if first is None:
             raise InputError("manifest has a header but no rows", file=path)
         h, w, dtype = image_header(first[0], path, first[1])
+        segment = decoded_part(first[0], (h, w))
         biggest = max(by_section.values(), key=len)
         xs, ys = np.array([p[0] for p in biggest]), np.array([p[1] for p in biggest])
         cols, step_x = _axis(xs, w)
@@ -137,7 +146,7 @@ class VolumeShape:
         rows = max(rows, int(math.ceil(len(biggest) / cols)))
         return cls(max(by_section) - min(by_section) + 1, len(by_section),
                    sum(len(v) for v in by_section.values()), rows, cols, h, w, np.dtype(dtype).itemsize,
-                   max(0.0, h - step_y), max(0.0, w - step_x))
+                   max(0.0, h - step_y), max(0.0, w - step_x), segment)
 
 
 def _axis(pos: np.ndarray, size: int) -> tuple[int, float]:

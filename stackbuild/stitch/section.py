@@ -29,7 +29,7 @@ NO_INTENSITY_ANCHOR = frozenset({"blank", "saturated", "unplaced"})
 CLEAR_PEAK_RATIO = 2.5
 
 
-def _pair_weights(results: list[PairResult]) -> np.ndarray:
+def pair_weights(results: list[PairResult]) -> np.ndarray:
     """Return each pair's weight: scored overlap area over the median area, times its peak confidence.
 
     The variance of a correlation shift estimate falls about as one over the
@@ -46,6 +46,10 @@ def _pair_weights(results: list[PairResult]) -> np.ndarray:
     ratio = np.array([r.peak_ratio for r in results], dtype=np.float64)
     confidence = np.clip((ratio - 1.0) / (CLEAR_PEAK_RATIO - 1.0), 0.02, 1.0) ** 2
     return np.maximum(area / ref * confidence, 1e-4)
+
+
+#: The old private name, kept until run/update_stitch.py imports :func:`pair_weights`.
+_pair_weights = pair_weights
 
 
 def _place_unplaced(pos, stage, placed, near):
@@ -134,7 +138,7 @@ def _place(tiles, settings, stage, overlaps: list[Overlap], results: list[PairRe
     pairs = np.array([(ov.a, ov.b) for ov in overlaps], dtype=np.int64).reshape(-1, 2)
     shifts = np.array([(r.dx, r.dy) for r in results], dtype=np.float64).reshape(-1, 2)
     good = np.array([r.reason == "" for r in results], dtype=bool)
-    weights = _pair_weights(results)
+    weights = pair_weights(results)
     sol = solve_translations(pairs[good], shifts[good], weights[good], stage,
                              settings.prior_weight, settings.max_residual)
     pos = sol.positions

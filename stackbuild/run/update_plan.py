@@ -16,11 +16,12 @@ import datetime as _dt
 import json
 import os
 import shutil
+import signal
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from ..errors import InputError
-from ..transforms.store import atomic_write_text
+from ..transforms.store import TransformStore, atomic_write_text
 
 PLAN_FORMAT = "stackbuild.update"
 PLAN_VERSION = 1
@@ -112,6 +113,16 @@ class UpdatePlan:
             raise InputError(f"update record is malformed ({exc})", file=path) from None
 
 
+def pack_shards(shards) -> list[str]:
+    """Return shards ``(i, j)`` as sorted ``"i,j"`` strings (compact in the plan)."""
+    return [f"{i},{j}" for i, j in sorted(shards)]
+
+
+def unpack_shards(packed) -> set[tuple[int, int]]:
+    """Return the shards ``(i, j)`` of :func:`pack_shards`'s strings."""
+    return {tuple(int(v) for v in p.split(",")) for p in packed}
+
+
 def updates_dir(root: Path) -> Path:
     """Return ``DIR/updates``."""
     return Path(root) / "updates"
@@ -120,6 +131,11 @@ def updates_dir(root: Path) -> Path:
 def plan_dir(root: Path, number: int) -> Path:
     """Return ``DIR/updates/NNNN``."""
     return updates_dir(root) / f"{number:04d}"
+
+
+def before_store(root: Path, plan: UpdatePlan) -> TransformStore:
+    """Return the transform records as they were before ``plan`` (``DIR/updates/NNNN/before``)."""
+    return TransformStore(plan_dir(root, plan.number) / "before")
 
 
 def save_plan(root: Path, plan: UpdatePlan) -> None:
@@ -192,3 +208,15 @@ def snapshot_transforms(transforms: Path, dest: Path) -> None:
 def now() -> str:
     """Return the current UTC time, ISO 8601 to the second."""
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+#: Test hook: ``STACKBUILD_UPDATE_KILL=align|channels|render`` kills the update's process group
+#: part-way through that step (after some of its results are written, before it is recorded),
+#: as a ``kill -9`` would; the fault tests use it to stop at a known place.
+KILL_ENV = "STACKBUILD_UPDATE_KILL"
+
+
+def killed_here(step: str) -> None:
+    """Kill this process group if :data:`KILL_ENV` names ``step`` (test hook)."""
+    if os.environ.get(KILL_ENV) == step:
+        os.killpg(os.getpgid(0), signal.SIGKILL)

@@ -19,7 +19,9 @@ removed; the update reports it.
 
 What one task holds: the strips of the pairs of the replaced tiles and one
 tile at a time (the stitch stage's streaming reader), and the section's
-records (a few numbers per tile and pair).
+records (a few numbers per tile and pair). :func:`stitch_step` is the update's
+stitch step: one task per re-imaged section; appended sections are stitched
+whole by the stitch stage.
 """
 from __future__ import annotations
 
@@ -273,3 +275,26 @@ def restitch_task(job: tuple) -> dict:
     rec, facts = restitch_section(old, list(tiles), set(changed), settings, section)
     BuildFolder(root).store.save_stitch(rec)
     return {"section": section, **facts}
+
+
+def stitch_step(build, plan, mappers) -> None:
+    """Stitch appended sections whole; in re-imaged ones register only the pairs of their new tiles.
+
+    The pairs of two untouched tiles keep their stored results and the untouched tiles their
+    placement (:func:`restitch_section`); what each section's task found goes to ``plan.facts["stitch"]``.
+    """
+    from . import stages
+    from .update_plan import before_store
+
+    before, store = before_store(build.root, plan), build.store
+    manifest = build.tile_manifest()
+    whole = [s for s in plan.sections if before.load_stitch(s) is None]
+    if whole:
+        stages.stitch_stage(build, mappers("stitch"), sections=whole)
+    jobs = [(str(build.root), str(before.root), int(key), tuple(manifest.section_tiles(int(key))), tuple(names),
+             build.config.stitch) for key, names in sorted(plan.replaced.items(), key=lambda kv: int(kv[0]))
+            if int(key) not in whole]
+    held = {str(f["section"]): f for f in mappers("stitch")(restitch_task, jobs)}
+    plan.facts["stitch"] = {"held": held, "pairs": sum(f["pairs"] for f in held.values()) +
+                            sum(len(store.load_stitch(s).pairs) for s in whole),
+                            "pairs_kept": sum(f["pairs_kept"] for f in held.values())}

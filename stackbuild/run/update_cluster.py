@@ -1,0 +1,78 @@
+"""Where an update runs: in this process when it is small, else on a Dask cluster.
+
+Starting worker processes costs seconds; a small update (a few re-imaged tiles: a few
+pairs, a few shards, the report's changed sections) is done sooner in this process.
+:func:`in_process` decides, :func:`update_mappers` and :func:`inset_mappers` give the
+mappers and progress bars of the steps (:class:`StepMappers`) for that choice.
+"""
+from __future__ import annotations
+
+import contextlib
+
+from .update_plan import UpdatePlan
+
+#: An update replacing or adding at most this many tiles (and appending no section) runs in this process.
+IN_PROCESS_TILES = 16
+#: ... and re-stitching reads at most this many tiles (the new ones and the tiles they overlap).
+IN_PROCESS_SECTION_TILES = 100
+
+
+class StepMappers:
+    """Mappers and progress bars for an update's steps: on a Dask cluster, or in this process.
+
+    ``mappers(name)`` returns a mapper whose progress shows as ``name`` (none without a name);
+    ``mappers.bar(name)`` a progress bar. ``where`` says which, for the summary.
+    """
+
+    def __init__(self, client, show: bool):
+        self.client, self.show = client, show
+        self.where = "in this process" if client is None else "on the Dask cluster"
+
+    def bar(self, name: str):
+        from .progress import ProgressBar
+
+        return ProgressBar(name, self.show)
+
+    def __call__(self, name: str | None = None):
+        from .cluster import client_mapper, serial_mapper
+
+        bar = self.bar(name) if name else None
+        return serial_mapper(bar) if self.client is None else client_mapper(self.client, bar)
+
+
+def in_process(plan: UpdatePlan, scheduler) -> bool:
+    """Return True if the update is small enough to run in this process (no cluster is started).
+
+    Small: no appended section, at most :data:`IN_PROCESS_TILES` replaced or added tiles and at
+    most :data:`IN_PROCESS_SECTION_TILES` tiles read to register their pairs again (the new tiles and
+    those they overlap), so its work (those pairs, a few shards, the report's changed sections) takes less time than
+    starting worker processes. A given ``scheduler`` is always used.
+    """
+    return scheduler is None and not plan.added and \
+        sum(len(v) for v in plan.replaced.values()) <= IN_PROCESS_TILES and \
+        plan.facts.get("restitched_tiles", 0) <= IN_PROCESS_SECTION_TILES
+
+
+@contextlib.contextmanager
+def update_mappers(plan: UpdatePlan, workers, scheduler, show: bool):
+    """Yield the :class:`StepMappers` of an update: this process when it is small, else a cluster."""
+    from .cluster import dask_client
+
+    if in_process(plan, scheduler):
+        yield StepMappers(None, show)
+        return
+    with dask_client(workers, scheduler) as client:
+        yield StepMappers(client, show)
+
+
+@contextlib.contextmanager
+def inset_mappers(n_tiles: int, workers, scheduler, show: bool):
+    """Yield the :class:`StepMappers` of an inset of ``n_tiles`` tiles: this process when it has at most
+    :data:`IN_PROCESS_TILES` tiles and no scheduler is given, else a Dask cluster."""
+    from .cluster import dask_client
+
+    if scheduler is None and n_tiles <= IN_PROCESS_TILES:
+        yield StepMappers(None, show)
+        return
+    with dask_client(workers, scheduler) as client:
+        yield StepMappers(client, show)

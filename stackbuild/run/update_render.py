@@ -1,0 +1,146 @@
+"""The shards an update rewrites: predicted before anything is solved, fixed before the render step, written.
+
+:func:`predicted_shards` guesses them from stage positions for ``--dry-run`` and the plan;
+:func:`dirty_shards` finds them from the records before and after the update (only sections whose
+records changed are compared); :func:`render_step` records them in the plan before it writes any
+(:mod:`stackbuild.render.patch`), so a killed render run again writes the same set. A canvas
+whose origin moved renders every plane again.
+"""
+from __future__ import annotations
+
+import os
+
+from ..folder import BuildFolder
+from ..manifest import TileManifest
+from ..transforms.records import Canvas, SectionStitch, TilePlacement
+from ..transforms.store import TransformStore
+from .update_plan import UpdatePlan, before_store, killed_here, pack_shards, save_plan, unpack_shards
+
+
+def predicted_shards(build: BuildFolder, new: TileManifest, changed: dict, added: list[int],
+                     canvas: Canvas | None) -> dict[str, list]:
+    """Return plane (text) -> level-0 shards the update is expected to rewrite (before anything is solved).
+
+    A replaced or added tile lands near its stage position (placed like its section's other
+    tiles), within the stitch stage's largest stage error; its footprint there and its old
+    one, with the footprints of the tiles they meet, are dirty. New sections dirty their plane.
+    """
+    from ..render.dirty import all_shards, changed_boxes, level0_shards
+
+    if canvas is None:
+        return {}
+    settings = build.config.render
+    block = settings.chunk * settings.shard
+    margin = float(getattr(build.config.stitch, "max_stage_error", 50.0))
+    store = build.store
+    out: dict[str, list] = {}
+    for key, names in changed.items():
+        s = int(key)
+        st, al = store.load_stitch(s), store.load_alignment(s)
+        if st is None or not st.tiles:
+            continue
+        shift = sorted(t.x - t.stage_x for t in st.tiles)[len(st.tiles) // 2], \
+            sorted(t.y - t.stage_y for t in st.tiles)[len(st.tiles) // 2]
+        tiles = {t.tile: t for t in st.tiles}
+        for entry in new.section_tiles(s):
+            if entry.tile in names:
+                tiles[entry.tile] = TilePlacement(entry.tile, str(entry.path), entry.width + int(2 * margin),
+                                                  entry.height + int(2 * margin), entry.x, entry.y,
+                                                  entry.x + shift[0] - margin, entry.y + shift[1] - margin)
+        guess = SectionStitch(s, st.dtype, list(tiles.values()), [], st.illumination, st.illumination_step)
+        boxes, _ = changed_boxes((st, al), (guess, al))
+        shards = level0_shards(boxes, canvas, block)
+        out[str(s - canvas.first_section)] = pack_shards(shards)
+    for s in added:
+        z = s - canvas.first_section
+        if z < canvas.depth:
+            out[str(z)] = pack_shards(all_shards((canvas.height, canvas.width), block))
+        else:
+            out[str(z)] = "all (new plane)"
+    return out
+
+
+def dirty_shards(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict]:
+    """Return the settled canvas, its facts and plane -> level-0 shards whose pixels can change."""
+    from ..render.canvas import compute_canvas, settle_canvas
+    from ..render.dirty import changed_boxes, level0_shards
+
+    settings = build.config.render
+    block = settings.chunk * settings.shard
+    manifest = build.tile_manifest()
+    vol = build.config.volume
+    fresh = compute_canvas(build.store, manifest.sections, manifest.lost_sections, vol.pixel_size,
+                           vol.section_thickness)
+    previous = None if plan.canvas_before is None else Canvas.from_json(plan.canvas_before)
+    canvas, facts = settle_canvas(previous, fresh, shard=block, chunk=settings.chunk)
+    before, store = before_store(build.root, plan), build.store
+    sections = set(store.sections_with("stitch")) | set(before.sections_with("stitch"))
+    dirty = {}
+    for s in sorted(sections):
+        if _untouched(before, store, s):
+            continue
+        boxes, _ = changed_boxes((before.load_stitch(s), before.load_alignment(s)),
+                                 (store.load_stitch(s), store.load_alignment(s)))
+        boxes += _replaced_boxes(store, s, plan.replaced.get(str(s), []))
+        shards = level0_shards(boxes, canvas, block)
+        if shards:
+            dirty[str(s - canvas.first_section)] = pack_shards(shards)
+    return canvas, facts, dirty
+
+
+def _replaced_boxes(store: TransformStore, section: int, names: list[str]) -> list:
+    """Return the aligned-frame footprints of replaced tiles and of the tiles they overlap.
+
+    A tile imaged again in place (same path, same placement) leaves its records as they were,
+    so the record comparison finds nothing; its pixels changed all the same.
+    """
+    from ..render.dirty import tile_neighbourhood
+
+    return tile_neighbourhood(store.load_stitch(section), store.load_alignment(section), names)
+
+
+def _untouched(before: TransformStore, store: TransformStore, section: int) -> bool:
+    """Return True if a section's stitch and align records are the very files kept before the update.
+
+    The kept records are hard links and a record is only ever replaced by renaming a new file
+    into place, so the same file (inode) means the same record, arrays included.
+    """
+    for kind in ("stitch", "align"):
+        a, b = before.section_dir(section) / f"{kind}.json", store.section_dir(section) / f"{kind}.json"
+        try:
+            if not os.path.samefile(a, b):
+                return False
+        except OSError:  # missing on one side (or both): let the records be compared
+            return False
+    return True
+
+
+def render_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
+    """Write the dirty shards (fixed in the plan first) and the pyramid above them, then the marker pyramids."""
+    from ..render.patch import patch_volume
+    from . import stages
+
+    if plan.render is None:
+        canvas, facts, dirty = dirty_shards(build, plan)
+        plan.render = {"canvas": canvas.to_json(), "canvas_facts": facts, "shards": dirty}
+        save_plan(build.root, plan)  # the set to write is fixed before any of it is written
+    canvas = Canvas.from_json(plan.render["canvas"])
+    facts = plan.render["canvas_facts"]
+    previous = None if plan.canvas_before is None else Canvas.from_json(plan.canvas_before)
+    if previous is None or any(facts["moved"]) or facts["first_moved"]:
+        build.store.save_canvas(canvas)
+        done = stages.render_stage(build, overwrite=True, progress=mappers.bar("render"), mapper=mappers())
+        plan.facts["render"] = {"planes": done.get("planes", []), "full": True}
+    else:
+        dirty = {int(z): unpack_shards(v) for z, v in plan.render["shards"].items()}
+        bar = mappers.bar("render")
+
+        def progress(done: int, total: int) -> None:
+            bar(done, total)
+            if done:
+                killed_here("render")
+        done = patch_volume(build.root, build.config.render, canvas, dirty, previous=previous, progress=progress,
+                            mapper=mappers())
+        plan.facts["render"] = {"planes": done["planes"], "shards": done["shards"],
+                                "shards_total": done["shards_total"], "full": False}
+    stages.render_channels_stage(build, progress=mappers.bar("markers"), mapper=mappers())

@@ -94,3 +94,36 @@ def test_a_plane_in_the_middle_takes_four_pairs_and_runs_have_fixed_cores():
     runs = runs_of(list(range(40)), 6)
     assert [c for c, _ in runs] == [list(range(0, 16)), list(range(16, 32)), list(range(32, 40))]
     assert runs[1][1] == list(range(10, 38)) and runs[2][1] == list(range(26, 40))
+
+
+def test_appended_sections_leave_the_stored_measurements_of_the_others_valid(first, tmp_path):
+    # An append grows the canvas's section range (last_section) and the volume's depth, and moves no
+    # pixel of an existing plane: every section and pair fingerprint of the existing planes must stay.
+    import dataclasses
+    import shutil
+
+    from stackbuild.folder import BuildFolder
+    from stackbuild.qc.reuse import pair_fingerprints, section_fingerprint
+
+    root = tmp_path / "build"
+    shutil.copytree(first[0], root, symlinks=True)
+    folder = BuildFolder(root)
+    canvas = folder.store.load_canvas()
+
+    class Source:  # what pair_fingerprints reads of the probe's source: its level and shape
+        origin, level, factor, bin = "volume.zarr", 0, 1, 1
+
+        def __init__(self, depth):
+            self.depth = depth
+            self.data = type("Data", (), {"shape": (depth, 64, 64)})()
+
+    pairs = plane_pairs(list(range(len(SECTIONS))), 2)
+    before = ([section_fingerprint(folder, s, SETTINGS) for s in SECTIONS],
+              pair_fingerprints(folder, Source(len(SECTIONS)), pairs, SETTINGS))
+    folder.store.save_canvas(dataclasses.replace(canvas, last_section=canvas.last_section + 2))
+    after = ([section_fingerprint(folder, s, SETTINGS) for s in SECTIONS],
+             pair_fingerprints(folder, Source(len(SECTIONS) + 2), pairs, SETTINGS))
+    assert after == before and all(before[1].values())
+    # ... while a canvas whose origin moved does invalidate them (its pixels moved)
+    folder.store.save_canvas(dataclasses.replace(canvas, origin_x=canvas.origin_x + 1))
+    assert [section_fingerprint(folder, s, SETTINGS) for s in SECTIONS] != before[0]

@@ -49,6 +49,13 @@ def _file_digest(path) -> str | None:
         return None
 
 
+def _canvas_geometry(canvas) -> dict | None:
+    """Return the canvas's record without its last section: appended sections move no measured pixel."""
+    if canvas is None:
+        return None
+    return {k: v for k, v in canvas.to_json().items() if k != "last_section"}
+
+
 def section_fingerprint(folder, section: int, settings, grid=()) -> str:
     """Return the fingerprint of what a section's stored measurement is made from."""
     from ..render.fingerprint import section_parts
@@ -59,7 +66,7 @@ def section_fingerprint(folder, section: int, settings, grid=()) -> str:
     canvas = store.load_canvas()
     return digest({"v": MEASURE_VERSION, "stitch": _file_digest(d / "stitch.json"),
                     "align": _file_digest(d / "align.json"), "parts": section_parts(store, section),
-                    "canvas": canvas.to_json() if canvas else None,
+                    "canvas": _canvas_geometry(canvas),
                     "settings": {k: s[k] for k in SECTION_KEYS}, "grid": list(map(list, grid))})
 
 
@@ -87,7 +94,7 @@ def pair_fingerprints(folder, source, pairs, settings) -> dict[tuple[int, int], 
     planes = render_fingerprints(folder, source)
     s = asdict(settings)
     base = {"v": MEASURE_VERSION, "level": [source.origin, source.level, source.factor, source.bin],
-            "settings": {k: s[k] for k in PAIR_KEYS}, "shape": list(source.data.shape)}
+            "settings": {k: s[k] for k in PAIR_KEYS}, "shape": list(source.data.shape[1:])}
     out = {}
     for a, b in pairs:
         fa, fb = planes.get(a), planes.get(b)

@@ -124,7 +124,7 @@ def restitch_section(old: SectionStitch, tiles: list[TileEntry], changed: set[st
     """
     from ..stitch.overlaps import find_overlaps
     from ..stitch.inspect import flag_tiles
-    from ..stitch.section import _pair_weights
+    from ..stitch.section import pair_weights
     from ..stitch.stream import reading_order, stream_pairs, widen_search
 
     before = {t.tile: t for t in old.tiles}
@@ -150,7 +150,7 @@ def restitch_section(old: SectionStitch, tiles: list[TileEntry], changed: set[st
     order = reading_order(stage[need], sizes[need])
     results, stats, _ = stream_pairs(sub_tiles, sub_ov, order, old.illumination, settings, section)
     widen_search(sub_tiles, sub_ov, results, old.illumination, settings, section)
-    weights = _pair_weights(results) if results else np.zeros(0)
+    weights = pair_weights(results) if results else np.zeros(0)
     new_stats = {sub_tiles[k].tile: stats[k] for k in range(len(sub_tiles))}
     # Flags of the new tiles are judged among the section's tiles (focus is relative to the section's median).
     all_stats = [new_stats[t.tile] if t.tile in fresh else before[t.tile].stats for t in tiles]

@@ -48,10 +48,6 @@ def pair_weights(results: list[PairResult]) -> np.ndarray:
     return np.maximum(area / ref * confidence, 1e-4)
 
 
-#: The old private name, kept until run/update_stitch.py imports :func:`pair_weights`.
-_pair_weights = pair_weights
-
-
 def _place_unplaced(pos, stage, placed, near):
     """Put tiles no accepted pair reaches at their stage position plus their placed neighbours' mean offset."""
     off = pos - stage

@@ -273,10 +273,11 @@ def _probe_factor(q) -> int:
 
 def report_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     """Seams re-measured from raw tiles, one task per section (``qc/measure.py: seam_job``); the
-    alignment-error probe as region tasks (``qc/probe.py``); the driver keeps the seams' sampled blocks."""
+    alignment-error probe as pair tasks of ``PAIRS_TASK`` planes (``qc/probe.py: probe_pair``) and
+    run tasks (``qc/runs.py: jitter_run``); the driver keeps the seams' sampled blocks."""
     q = cfg.report
     tile_px = shape.tile_height * shape.tile_width
-    keep, per_seam = 4, 48  # measure_seams' keep_tiles and blocks_per_seam defaults
+    keep, per_seam = 4, 16  # measure_seams' keep_tiles and blocks_per_seam defaults
     kinds = [Kind("report.seams", shape.imaged, (keep + 1) * tile_px * 4,
                   2 * shape.tiles_per_section * tile_px / MB, items=shape.pairs_per_section,
                   reads=2 * shape.tiles_per_section * shape.tile_bytes,
@@ -286,17 +287,25 @@ def report_kinds(shape: VolumeShape, cfg) -> list[Kind]:
                   note="keeps every seam's sampled blocks")]
     region = int(_get(q, "region_size", 0))
     if region > 0:
+        from ..qc.probe import PAIRS_TASK
+
         f = _probe_factor(q)
         spans = int(_get(q, "probe_spans", 2))
         margin = _get(q, "probe_half_size", 48) + _get(q, "probe_max_shift", 12) + 4 * _get(q, "probe_coarse_sigma", 16)
         # a region is clipped to the section: small sections make small regions
         sy = (min(region, shape.section_height) + 2 * margin) / f
         sx = (min(region, shape.section_width) + 2 * margin) / f
-        n = math.ceil(shape.section_height / region) * math.ceil(shape.section_width / region)
+        regions = math.ceil(shape.section_height / region) * math.ceil(shape.section_width / region)
+        planes = min(shape.imaged, PAIRS_TASK) + spans  # its fixed planes and the ones they are matched with
+        n = math.ceil(shape.imaged / PAIRS_TASK)
         kinds.append(Kind("report.probe", n, (spans + 1) * sy * sx * 4 * 2,
-                          shape.imaged * min(region, shape.section_height) * min(region, shape.section_width) / f ** 2 / MB,
-                          reads=shape.imaged * sy * sx * shape.itemsize,
-                          note="follows one region down the stack"))
+                          min(shape.imaged, PAIRS_TASK) * shape.section_height * shape.section_width / f ** 2 / MB,
+                          reads=planes * regions * sy * sx * shape.itemsize,
+                          note=f"{PAIRS_TASK} planes per task, region by region, {spans + 1} region windows held"))
+        blocks = int(_get(q, "probe_blocks", 150))
+        kinds.append(Kind("report.runs", n, blocks * (PAIRS_TASK + 2 * spans + 8) * 2 * 8, blocks / MB,
+                          reads=(PAIRS_TASK * spans) * blocks * 3 * 8,
+                          note="solves a run of planes from the stored pair shifts"))
     return kinds
 
 

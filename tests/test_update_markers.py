@@ -30,8 +30,7 @@ def with_markers(grid_build, grid_data, tmp_path_factory):
     shutil.copytree(grid_build, work)
     em = _files(work / "volume.zarr" / "em")
     transforms = {p: p.read_bytes() for p in (work / "transforms" / "sections").rglob("*.json")}
-    assert main(["channels", str(work), "--merge", str(grid_data / "markers.csv"), "--workers", "1",
-                 "--quiet"]) == 0
+    assert main(["channels", str(work), "--merge", str(grid_data / "markers.csv"), "--quiet"]) == 0
     return work, em, transforms
 
 
@@ -64,7 +63,7 @@ def test_one_marker_image_replaced_rewrites_its_plane_only(with_markers, grid_da
     parts = line.split(",")
     parts[2] = str(again)
     (tmp_path / "again.csv").write_text("section,channel,path,pixel_size,x,y\n" + ",".join(parts) + "\n")
-    assert main(["channels", str(work), "--merge", str(tmp_path / "again.csv"), "--workers", "1", "--quiet"]) == 0
+    assert main(["channels", str(work), "--merge", str(tmp_path / "again.csv"), "--quiet"]) == 0
     assert "1 replaced" in capsys.readouterr().out
     second = _files(group)
     changed = {k.split("/")[2] for k in first.keys() | second.keys() if first.get(k) != second.get(k)}

@@ -59,7 +59,7 @@ def updated(grid_build, grid_data, tmp_path_factory) -> tuple[Path, Path]:
     work = tmp_path_factory.mktemp("u") / "b"
     shutil.copytree(grid_build, work)
     manifest = _reimaged(grid_data, work.parent / "again", 3, ["r0c0", "r0c1"])
-    assert main(["update", str(work), "--tiles", str(manifest), "--workers", "2", "--quiet"]) == 0
+    assert main(["update", str(work), "--tiles", str(manifest), "--quiet"]) == 0
     return work, manifest
 
 
@@ -135,18 +135,35 @@ def test_updated_volume_is_still_ome_zarr_0_5(updated):
     assert len(image.attributes.ome.multiscales[0].datasets) >= 3
 
 
-def test_a_tile_whose_content_changed_has_its_section_solved_again(grid_build, grid_data, tmp_path):
+class _StoppedAfterAlign(Exception):
+    pass
+
+
+def test_a_tile_whose_content_changed_has_its_section_solved_again(grid_build, grid_data, tmp_path, monkeypatch):
     # A tile that was out of focus before (here: the new one is, a Gaussian blur of 5 px from
     # scipy.ndimage) no longer shows the old content, so the update cannot keep the alignment on
     # the strength of the pixels: it solves the window around the section again.
     from scipy import ndimage
 
+    from stackbuild.folder import BuildFolder
+    from stackbuild.run import stages
+    from stackbuild.run.update import update_build
+
     work = _copy(grid_build, tmp_path)
     manifest = _reimaged(grid_data, tmp_path / "again", 3, ["r1c1"])
     path = Path(manifest.read_text().splitlines()[1].split(",")[2])
     tifffile.imwrite(path, ndimage.gaussian_filter(tifffile.imread(path).astype(np.float32), 5).astype(np.uint8))
-    assert main(["update", str(work), "--tiles", str(manifest), "--quiet"]) == 0
+    # The decision is the align step's and is recorded when that step finishes; the update is stopped at
+    # the next step (its channel stage fails), so the render and the report, which other tests cover, are
+    # not paid for here.
+    def stop(*args, **kwargs):
+        raise _StoppedAfterAlign
+
+    monkeypatch.setattr(stages, "channels_stage", stop)
+    with pytest.raises(_StoppedAfterAlign):
+        update_build(BuildFolder(work), manifest, show_progress=False)
     plan = json.loads((work / "updates" / "0001" / "plan.json").read_text())
+    assert plan["status"] == "aligned"
     checked = plan["facts"]["align"]["checked"]["3"]
     assert not checked["kept_without_solve"] and "content changed" in checked["why"], checked
     assert 3 in plan["facts"]["align"]["window"]
@@ -206,8 +223,7 @@ def test_update_killed_in_render_then_run_again_is_byte_identical(grid_build, gr
                                                                   capsys):
     work = _copy(grid_build, tmp_path)
     _, manifest = updated
-    cmd = [sys.executable, "-m", "stackbuild.cli", "update", str(work), "--tiles", str(manifest),
-           "--workers", "1", "--quiet"]
+    cmd = [sys.executable, "-m", "stackbuild.cli", "update", str(work), "--tiles", str(manifest), "--quiet"]
     env = {**os.environ, "STACKBUILD_UPDATE_KILL": "render"}
     proc = subprocess.run(cmd, env=env, start_new_session=True, timeout=300)
     assert proc.returncode == -signal.SIGKILL
@@ -220,7 +236,7 @@ def test_update_killed_in_render_then_run_again_is_byte_identical(grid_build, gr
     assert "--resume" in capsys.readouterr().err and (work / "build.json").read_bytes() == state
     # The same update again finishes the plan; a missed --fail-on bar gives status 3.
     assert main(["update", str(work), "--tiles", str(manifest), "--fail-on", "align.p95>0.001px",
-                 "--workers", "1", "--quiet"]) == 3
+                 "--quiet"]) == 3
     out = capsys.readouterr()
     assert "report: FAILED" in out.out and "quality bar missed" in out.err
     done, reference = updated[0] / "volume.zarr" / "em", work / "volume.zarr" / "em"
@@ -233,12 +249,11 @@ def test_update_killed_in_align_or_channels_then_run_again_is_byte_identical(gri
                                                                             step):
     work = _copy(grid_build, tmp_path)
     _, manifest = updated
-    cmd = [sys.executable, "-m", "stackbuild.cli", "update", str(work), "--tiles", str(manifest),
-           "--workers", "1", "--quiet"]
+    cmd = [sys.executable, "-m", "stackbuild.cli", "update", str(work), "--tiles", str(manifest), "--quiet"]
     proc = subprocess.run(cmd, env={**os.environ, "STACKBUILD_UPDATE_KILL": step}, start_new_session=True,
                           timeout=300)
     assert proc.returncode == -signal.SIGKILL
-    assert main(["update", str(work), "--resume", "--workers", "1", "--quiet"]) == 0
+    assert main(["update", str(work), "--resume", "--quiet"]) == 0
     done, reference = updated[0] / "volume.zarr" / "em", work / "volume.zarr" / "em"
     assert {k: v[0] for k, v in _files(done).items()} == {k: v[0] for k, v in _files(reference).items()}
 
@@ -247,7 +262,7 @@ def test_update_killed_in_align_or_channels_then_run_again_is_byte_identical(gri
 @slow
 def test_rollback_restores_the_volume_and_the_records(grid_build, updated, tmp_path, capsys):
     work = _copy(updated[0], tmp_path)
-    assert main(["update", str(work), "--rollback", "--workers", "1", "--quiet"]) == 0
+    assert main(["update", str(work), "--rollback", "--quiet"]) == 0
     assert "rolled back" in capsys.readouterr().out
     before, after = _files(grid_build / "volume.zarr" / "em"), _files(work / "volume.zarr" / "em")
     assert {k: v[0] for k, v in after.items()} == {k: v[0] for k, v in before.items()}
@@ -263,8 +278,7 @@ def test_rollback_restores_the_volume_and_the_records(grid_build, updated, tmp_p
 def test_appending_sections_keeps_existing_planes(grid_build, grid_data, tmp_path, capsys):
     work = _copy(grid_build, tmp_path)
     before = _files(work / "volume.zarr" / "em")
-    assert main(["update", str(work), "--tiles", str(grid_data / "later.csv"), "--append", "--workers", "1",
-                 "--quiet"]) == 0
+    assert main(["update", str(work), "--tiles", str(grid_data / "later.csv"), "--append", "--quiet"]) == 0
     plan = json.loads((work / "updates" / "0001" / "plan.json").read_text())
     assert plan["added"] == [5, 6]
     after = _files(work / "volume.zarr" / "em")

@@ -71,11 +71,13 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
     blocks = math.ceil(nodes / s.region_nodes) ** 2
     windows = math.ceil(n_sections / s.region_sections)
     reach = block_reach(s.match_half_size, s.match_max_shift)
-    side = (s.region_nodes - 1) * spacing / s.elastic_scale + 2 * (reach + 1) + 2
-    held = s.region_sections + s.neighbours
+    # a region holds region_nodes nodes a side, fewer on a section smaller than one region
+    region_side_nodes = min(s.region_nodes, nodes)
+    side = (region_side_nodes - 1) * spacing / s.elastic_scale + 2 * (reach + 1) + 2
+    held = min(s.region_sections + s.neighbours, n_sections)
     p = 2 * (s.match_half_size + s.match_max_shift) + 2
-    # one batch of 256 blocks: ~12 float32/complex64 arrays of p x p per block (FFT work)
-    match = 256 * p * p * 12 * 8
+    # one batch of at most 256 blocks (one per node): ~12 float32/complex64 arrays of p x p per block (FFT work)
+    match = min(256, region_side_nodes ** 2) * p * p * 12 * 8
     reduced_tile = 2 * (tile_px / s.elastic_scale) ** 2 * 4
     region = held * side ** 2 * 4 + side ** 2 * RENDER_BYTES_PER_PX + match + cache + tile + reduced_tile
     unknowns = (s.region_nodes + 2 * s.solve_halo) ** 2 * n_sections

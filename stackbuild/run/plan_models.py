@@ -240,7 +240,11 @@ def render_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     records = shape.tiles_per_section * 400 + _grid(shape, cfg.align)[0] * 2 * 8
     shard_px = min(block, h) * min(block, w)
     planes_px = shape.imaged * h * w
-    kinds = [Kind("render.shard", shape.imaged * n0, shard_px * b * 1.25 + chunk * chunk * 4 * 4 + records,
+    # the tile windows under one chunk while it is sampled: up to 2 x 2 tiles, each a window of at most
+    # the chunk (or the tile) as float32 value, weight and the two remap coordinate maps
+    windows = 4 * min(chunk, shape.tile_height) * min(chunk, shape.tile_width) * 4 * 4
+    kinds = [Kind("render.shard", shape.imaged * n0,
+                  shard_px * b * 1.25 + chunk * chunk * 4 * 4 + windows + records,
                   shard_px / MB, reads=reads * shape.tiles_per_section * shape.tile_bytes / max(1, n0),
                   fixed=kept, note=note),
              Kind("render.join", shape.imaged * upper, shard_px * b * 1.5, shard_px / MB / 4),

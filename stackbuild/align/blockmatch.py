@@ -235,7 +235,7 @@ def _band(p: int, fine_sigma: float, coarse_sigma: float) -> np.ndarray:
     return g.astype(np.float32)
 
 
-def _whiten(x: np.ndarray, power: float) -> np.ndarray:
+def _normalise_spectrum(x: np.ndarray, power: float) -> np.ndarray:
     """Return ``x / |x| ** power`` (0 where ``x`` is 0), per block."""
     mag = np.abs(x)
     floor = 1e-9 * mag.reshape(len(x), -1).max(1)[:, None, None] + 1e-30
@@ -256,7 +256,7 @@ class _Batch:
         return sfft.rfft2((x - x.mean(axis=(1, 2), keepdims=True)) * self.win)
 
     def cross(self, m_spec):
-        return _whiten(np.conj(self.f_spec) * m_spec, self.power) * self.band
+        return _normalise_spectrum(np.conj(self.f_spec) * m_spec, self.power) * self.band
 
 
 def _filled(x: np.ndarray) -> np.ndarray:
@@ -399,7 +399,7 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
         Variations coarser than this have little say either (shading);
         ``half_size`` by default.
     power : float
-        Spectral whitening: the cross-power spectrum is divided by its
+        Spectral normalisation: the cross-power spectrum is divided by its
         magnitude to this power (1 = phase correlation, 0 = plain
         cross-correlation).
     subpixel : bool
@@ -414,7 +414,7 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
 
     Notes
     -----
-    Band-limited phase correlation [1]_: the whitened cross-power spectrum
+    Band-limited phase correlation [1]_: the normalised cross-power spectrum
     of the two windowed blocks, weighted by a Gaussian band-pass, is
     transformed back; its whole-pixel peak within ``+- max_shift`` gives a
     first shift. The moving block is then cut again at that shift (so the

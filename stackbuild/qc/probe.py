@@ -31,7 +31,7 @@ from .settings import ReportSettings
 
 #: the first pass works on blocks reduced this many times
 COARSE = 4
-#: spectral whitening of the probe's fine matches (``power`` of match_block_pairs: 1 = phase correlation, as the
+#: spectral normalisation of the probe's fine matches (``power`` of match_block_pairs: 1 = phase correlation, as the
 #: estimator is checked). Tried on the realistic phantom (bench_qc.py --agreement, 8 sections, seeds 0 and 2):
 #: plain cross-correlation (0) with the band applied as on both blocks (sigma x sqrt 2) read the middle planes'
 #: error 0.26-0.33 px against 0.50-0.56 px true (8/8 and 8/8 sections within the bar; phase correlation 0.17-0.22,

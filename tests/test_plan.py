@@ -88,15 +88,18 @@ MEMORY_FLOOR = 32e6
 def _measure_twice(tiles, folder):
     """Measure two builds of ``tiles`` in this process; per kind the least CPU and the largest peak.
 
-    Also the reference workload's CPU time, between and after the builds (the least of them), so
-    the plan is scaled to this machine's speed at the time of the measurement.
+    Also the reference workload's CPU time, before, between and after the builds (the least of
+    them), so the plan is scaled to this machine's speed at the time of the measurement: a single
+    0.4 s reading of it was once seen 2.3x slow in a full suite run (the builds' CPU was not).
     """
     from stackbuild.run.plan_speed import reference_cpu_seconds
 
+    references = [reference_cpu_seconds()]
     first = measure_build(tiles, folder / "build1")
-    reference = reference_cpu_seconds()
+    references.append(reference_cpu_seconds())
     second = measure_build(tiles, folder / "build2")
-    return {**fastest(first, second), "reference_cpu_s": min(reference, reference_cpu_seconds())}
+    references.append(reference_cpu_seconds())
+    return {**fastest(first, second), "reference_cpu_s": min(references), "references": references}
 
 
 def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
@@ -140,7 +143,7 @@ def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
         planned_mem = max(MEMORY_FLOOR, max(v["working_bytes"] for v in tasks.values()))
         real_mem = max(MEMORY_FLOOR, max(measured["kinds"][k]["peak_bytes"] for k in tasks if k in measured["kinds"]))
         assert 0.5 <= planned_mem / real_mem <= 2.0, (stage, planned_mem, real_mem)
-    assert 0.5 <= planned_total / real_total <= 2.0, (planned_total, real_total)
+    assert 0.5 <= planned_total / real_total <= 2.0, (planned_total, real_total, speed, measured["references"])
     assert math.isfinite(plan["wall_hours"])
 
 

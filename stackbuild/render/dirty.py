@@ -28,7 +28,8 @@ _TILE_KEYS = ("path", "width", "height", "x", "y", "gain", "offset")
 Box = tuple[float, float, float, float]
 
 
-def _same_alignment(a: SectionAlignment | None, b: SectionAlignment | None) -> bool:
+def same_alignment(a: SectionAlignment | None, b: SectionAlignment | None) -> bool:
+    """Return whether two stored alignments map every pixel alike (affine and field equal; both absent counts)."""
     if a is None or b is None:
         return a is b
     if not np.array_equal(a.affine.matrix, b.affine.matrix):
@@ -98,7 +99,7 @@ def changed_boxes(old: tuple[SectionStitch | None, SectionAlignment | None],
     (os_, oa), (ns, na) = old, new
     if os_ is None or ns is None or not os_.tiles or not ns.tiles:
         return _whole(os_, oa) + _whole(ns, na), True
-    if range_changed or not _same_alignment(oa, na) or not _same_illumination(os_, ns):
+    if range_changed or not same_alignment(oa, na) or not _same_illumination(os_, ns):
         return _whole(os_, oa) + _whole(ns, na), True
     before = {t.tile: t for t in os_.tiles}
     after = {t.tile: t for t in ns.tiles}

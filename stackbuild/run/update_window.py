@@ -21,7 +21,7 @@ log = logging.getLogger(__name__)
 def align_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
     """Keep, solve again or hold each section's alignment; record why in ``plan.facts["align"]``."""
     from ..align.stage import align_sections
-    from ..render.dirty import _same_alignment
+    from ..render.dirty import same_alignment
     from ..transforms.hold import hold_alignments
     from .update_reach import alignment_reach
 
@@ -59,7 +59,7 @@ def align_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
                                   movable=changed | near_new, tolerance=plan.hold_within)
     anchored = _anchor_appended(plan, old, new, keep, bboxes)
     for s, rec in keep.items():
-        if not _same_alignment(store.load_alignment(s), rec):
+        if not same_alignment(store.load_alignment(s), rec):
             store.save_alignment(rec)
     killed_here("align")
     moved = {s: v for s, v in facts["moved_px"].items() if s not in changed}

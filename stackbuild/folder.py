@@ -95,6 +95,10 @@ class BuildFolder:
         """``DIR/qc``."""
         return self.root / "qc"
 
+    def measurement_path(self, kind: str, key: str) -> Path:
+        """``DIR/qc/measured/<kind>/<key>.json``: one stored report measurement (a section, a plane pair, a run)."""
+        return self.qc_dir / "measured" / kind / f"{key}.json"
+
     @property
     def report_path(self) -> Path:
         """``DIR/qc/report.html``."""

@@ -28,8 +28,6 @@ import numpy as np
 
 from ..render.fingerprint import digest
 
-#: folder under ``DIR/qc`` holding the stored measurements
-MEASURED = "measured"
 #: bump when what a stored measurement holds or how it is measured changes (old files are then ignored)
 MEASURE_VERSION = 5
 #: settings that change a section's seam measurement or its copied figures
@@ -115,41 +113,50 @@ def run_fingerprint(pair_fps: dict, window, stack, settings) -> str | None:
 def _pair_path(build, a: int, b: int):
     from ..folder import BuildFolder
 
-    return BuildFolder(build).qc_dir / MEASURED / "pairs" / f"{int(a):05d}-{int(b):05d}.json"
+    return BuildFolder(build).measurement_path("pairs", f"{int(a):05d}-{int(b):05d}")
 
 
 def _run_path(build, first: int):
     from ..folder import BuildFolder
 
-    return BuildFolder(build).qc_dir / MEASURED / "runs" / f"{int(first):05d}.json"
+    return BuildFolder(build).measurement_path("runs", f"{int(first):05d}")
 
 
 def _num(v, nd: int = 4):
     return None if not np.isfinite(v) else round(float(v), nd)
 
 
-def write_pair(build, a: int, b: int, fingerprint, shifts, ncc, beyond) -> None:
-    """Store one pair's block shifts (level-0 px), NCC and beyond-reach marks with its fingerprint."""
+def write_measurement(path, doc: dict) -> None:
+    """Store one measurement document atomically (its folder made when needed)."""
     import json
 
     from ..transforms.store import atomic_write_text
 
-    path = _pair_path(build, a, b)
     path.parent.mkdir(parents=True, exist_ok=True)
-    doc = {"fingerprint": fingerprint, "a": int(a), "b": int(b),
-           "dx": [_num(v) for v in shifts[:, 0]], "dy": [_num(v) for v in shifts[:, 1]],
-           "ncc": [_num(v, 3) for v in ncc], "beyond": np.flatnonzero(beyond).tolist()}
     atomic_write_text(path, json.dumps(doc) + "\n")
+
+
+def stored_measurement(path) -> dict | None:
+    """Return a stored measurement document (None when absent or unreadable)."""
+    import json
+
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+def write_pair(build, a: int, b: int, fingerprint, shifts, ncc, beyond) -> None:
+    """Store one pair's block shifts (level-0 px), NCC and beyond-reach marks with its fingerprint."""
+    write_measurement(_pair_path(build, a, b), {
+        "fingerprint": fingerprint, "a": int(a), "b": int(b),
+        "dx": [_num(v) for v in shifts[:, 0]], "dy": [_num(v) for v in shifts[:, 1]],
+        "ncc": [_num(v, 3) for v in ncc], "beyond": np.flatnonzero(beyond).tolist()})
 
 
 def stored_pair(build, a: int, b: int) -> dict | None:
     """Return the stored document of pair ``(a, b)`` (None when absent or unreadable)."""
-    import json
-
-    try:
-        return json.loads(_pair_path(build, a, b).read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
+    return stored_measurement(_pair_path(build, a, b))
 
 
 def read_pair(build, a: int, b: int):
@@ -163,22 +170,11 @@ def read_pair(build, a: int, b: int):
 
 def write_run(build, first: int, fingerprint, result: dict, regions: list, sample: list) -> None:
     """Store one run's per-plane sums, per-region sums and sampled blocks with its fingerprint."""
-    import json
-
-    from ..transforms.store import atomic_write_text
-
-    path = _run_path(build, first)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    doc = {"fingerprint": fingerprint, "planes": {str(z): v for z, v in result["planes"].items()},
-           "sigma": result["sigma"], "regions": regions, "sample": sample}
-    atomic_write_text(path, json.dumps(doc) + "\n")
+    write_measurement(_run_path(build, first), {
+        "fingerprint": fingerprint, "planes": {str(z): v for z, v in result["planes"].items()},
+        "sigma": result["sigma"], "regions": regions, "sample": sample})
 
 
 def stored_run(build, first: int) -> dict | None:
     """Return the stored document of the run starting at plane ``first`` (None when absent or unreadable)."""
-    import json
-
-    try:
-        return json.loads(_run_path(build, first).read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
+    return stored_measurement(_run_path(build, first))

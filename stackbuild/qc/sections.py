@@ -23,10 +23,9 @@ from pathlib import Path
 import numpy as np
 
 from ..folder import BuildFolder
-from ..transforms.store import atomic_write_text
 from .blockmatch import BlockMatches, summarize
 from .measure import measure_seams, section_to_output
-from .reuse import MEASURED, section_fingerprint
+from .reuse import section_fingerprint, stored_measurement, write_measurement
 from .settings import ReportSettings
 from .straighten import section_positions
 
@@ -47,7 +46,7 @@ class SectionJob:
 
 def section_file(build, section: int) -> Path:
     """Return the path of a section's stored measurements."""
-    return BuildFolder(build).qc_dir / MEASURED / "sections" / f"{int(section):05d}.json"
+    return BuildFolder(build).measurement_path("sections", f"{int(section):05d}")
 
 
 def physical_scale(folder: BuildFolder, canvas) -> tuple[float, float]:
@@ -215,13 +214,9 @@ def seam_job(job: SectionJob) -> dict:
     canvas = store.load_canvas()
     fp = section_fingerprint(folder, job.section, job.settings, job.grid)
     path = section_file(job.build, job.section)
-    if job.reuse and path.is_file():
-        try:
-            old = json.loads(path.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            old = {}
-        if old.get("fingerprint") == fp:
-            return {**old["summary"], "reused": True}
+    old = stored_measurement(path) if job.reuse else None
+    if old is not None and old.get("fingerprint") == fp:
+        return {**old["summary"], "reused": True}
     stitch = store.load_stitch(job.section)
     align = store.load_alignment(job.section)
     loc = Locator(canvas, *physical_scale(folder, canvas))
@@ -230,9 +225,7 @@ def seam_job(job: SectionJob) -> dict:
     else:
         tiles, pairs, seam = [], [], summarize([]) | {"at": None}
     summary = jsonable(_summary(job.section, stitch, align, tiles, pairs, seam, loc, job.grid))
-    path.parent.mkdir(parents=True, exist_ok=True)
-    atomic_write_text(path, json.dumps({"fingerprint": fp, "summary": summary,
-                                        "tiles": jsonable(tiles), "pairs": jsonable(pairs)}) + "\n")
+    write_measurement(path, {"fingerprint": fp, "summary": summary, "tiles": jsonable(tiles), "pairs": jsonable(pairs)})
     return {**summary, "reused": False}
 
 

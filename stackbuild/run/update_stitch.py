@@ -42,11 +42,6 @@ def _key(a: str, b: str) -> frozenset:
     return frozenset((a, b))
 
 
-def _spread(std: float, noise: float) -> float:
-    """The specimen's spread in an overlap: pixel spread with the tile's noise taken out (as the stitch stage)."""
-    return math.sqrt(max(std * std - noise * noise, (0.1 * std) ** 2))
-
-
 def _gain_offset(name: str, matches: list[tuple[PairMatch, object, bool]], placed: dict, noise: dict,
                  typical: tuple[float, float], grey: float, max_change: float) -> tuple[float, float]:
     """Return the gain and offset of new tile ``name`` that make its overlaps agree with the held tiles.
@@ -59,13 +54,15 @@ def _gain_offset(name: str, matches: list[tuple[PairMatch, object, bool]], place
     (``typical``: the held tiles' median gain and offset) and the offset within ``m`` times the
     section's median grey; a tile with no such overlap takes the typical correction.
     """
+    from ..stitch.section import structure_spread
+
     rows = []
     for p, r, mine_a in matches:
         other = p.b if mine_a else p.a
         h = placed[other]
         m_c, s_c, m_h, s_h = (r.mean_a, r.std_a, r.mean_b, r.std_b) if mine_a else \
             (r.mean_b, r.std_b, r.mean_a, r.std_a)
-        sc, sh = _spread(s_c, noise[name]), _spread(s_h, noise[other])
+        sc, sh = float(structure_spread(s_c, noise[name])), float(structure_spread(s_h, noise[other]))
         if sc > 0 and r.area > 0:
             rows.append((h.gain * sh / sc, h.gain * m_h + h.offset, m_c, float(r.area)))
     if not rows:
@@ -223,8 +220,7 @@ def _place(old, tiles, fresh, held, pairs, measured, flags, new_stats, noise, se
 
 def _finish(rec: SectionStitch, pos: dict, fresh: set) -> SectionStitch:
     """Fill in pair and tile residuals, the seam statistics and the pair-dependent flags."""
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import connected_components
+    from ..stitch.section import count_groups, seam_residual_stats
 
     pairs = []
     res_of: dict[str, list[float]] = {}
@@ -243,22 +239,18 @@ def _finish(rec: SectionStitch, pos: dict, fresh: set) -> SectionStitch:
             flags = [f for f in t.flags if f != "unplaced"] + ([] if r else ["unplaced"])
             t = replace(t, residual=float(np.sqrt(np.mean(np.square(r)))) if r else None, flags=flags)
         tiles.append(t)
-    acc = np.array([p.residual for p in pairs if p.accepted and p.residual is not None])
+    acc = [p.residual for p in pairs if p.accepted and p.residual is not None]
     stats = dict(rec.stats)
-    stats.update({"seam_residual_rms": float(np.sqrt(np.mean(acc ** 2))) if acc.size else None,
-                  "seam_residual_p95": float(np.percentile(acc, 95)) if acc.size else None,
-                  "seam_residual_max": float(acc.max()) if acc.size else None,
+    stats.update({**seam_residual_stats(acc),
                   "pairs": len(pairs), "pairs_accepted": int(sum(p.accepted for p in pairs)),
                   "pairs_rejected": dict(Counter(p.reason for p in pairs if p.reason)),
                   "tiles_flagged": dict(Counter(f for t in tiles for f in t.flags))})
     index = {t.tile: k for k, t in enumerate(tiles)}
-    links = np.array([(index[p.a], index[p.b]) for p in pairs if p.accepted], np.int64).reshape(-1, 2)
+    links = [(index[p.a], index[p.b]) for p in pairs if p.accepted]
     flags = [f for f in rec.flags if f not in _PAIR_FLAGS]
     n = len(tiles)
     if n > 1:
-        graph = coo_matrix((np.ones(len(links)), (links[:, 0], links[:, 1])), shape=(n, n))
-        _, labels = connected_components(graph, directed=False)
-        if len({int(labels[index[t.tile]]) for t in tiles if "blank" not in t.flags}) > 1:
+        if count_groups(n, links, [index[t.tile] for t in tiles if "blank" not in t.flags]) > 1:
             flags.append("disconnected")
         if any("unplaced" in t.flags for t in tiles):
             flags.append("unplaced_tiles")

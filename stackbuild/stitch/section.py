@@ -58,7 +58,7 @@ def _place_unplaced(pos, stage, placed, near):
     return pos
 
 
-def _components(n, pairs, nodes) -> int:
+def count_groups(n, pairs, nodes) -> int:
     """Return how many groups the tiles ``nodes`` form, linked by ``pairs`` (``scipy.sparse.csgraph``)."""
     pairs = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)
     graph = sp.coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
@@ -165,8 +165,8 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
         noise = np.array([st["noise"] for st in stats])
         kp = pairs[kept]
         gain, offset = solve_gain_offset(
-            kp, [r.mean_a for r in kr], _structure_spread([r.std_a for r in kr], noise[kp[:, 0]]),
-            [r.mean_b for r in kr], _structure_spread([r.std_b for r in kr], noise[kp[:, 1]]),
+            kp, [r.mean_a for r in kr], structure_spread([r.std_a for r in kr], noise[kp[:, 0]]),
+            [r.mean_b for r in kr], structure_spread([r.std_b for r in kr], noise[kp[:, 1]]),
             n, settings.intensity_pull, eligible=eligible,
             levels=np.array([st["median"] for st in stats]), max_gain_change=settings.max_gain_change)
     placements = []
@@ -187,7 +187,7 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
     specimen = [i for i in range(n) if "blank" not in flags[i]]
     if n > 1 and not overlaps:
         sec_flags.append("no_overlaps")
-    if n > 1 and _components(n, pairs[kept], specimen) > 1:
+    if n > 1 and count_groups(n, pairs[kept], specimen) > 1:
         sec_flags.append("disconnected")
     if n > 1 and not placed.all():
         sec_flags.append("unplaced_tiles")
@@ -198,7 +198,7 @@ def _assemble(tiles, section, settings, stage, overlaps: list[Overlap], results:
                                 "stage_error_p95": _stage_error_p95(pos, stage, placed)})
 
 
-def _structure_spread(std, noise) -> np.ndarray:
+def structure_spread(std, noise) -> np.ndarray:
     """Return the spread of the specimen in an overlap: its pixel spread with the tile's noise taken out.
 
     Noise adds in quadrature to the specimen's spread and does not scale
@@ -210,12 +210,20 @@ def _structure_spread(std, noise) -> np.ndarray:
     return np.sqrt(np.maximum(std ** 2 - noise ** 2, (0.1 * std) ** 2))
 
 
-def _section_stats(res: np.ndarray, results, kept, flags, rounds) -> dict:
-    """Return the section's summary: seam residuals over accepted pairs, counts by reason and flag."""
+def seam_residual_stats(res) -> dict:
+    """Return the RMS, 95th percentile and maximum of the accepted pairs' residuals (px; None when there are none)."""
+    res = np.asarray(res, np.float64)
     return {
         "seam_residual_rms": float(np.sqrt(np.mean(res ** 2))) if res.size else None,
         "seam_residual_p95": float(np.percentile(res, 95)) if res.size else None,
         "seam_residual_max": float(res.max()) if res.size else None,
+    }
+
+
+def _section_stats(res: np.ndarray, results, kept, flags, rounds) -> dict:
+    """Return the section's summary: seam residuals over accepted pairs, counts by reason and flag."""
+    return {
+        **seam_residual_stats(res),
         "tiles": len(flags),
         "pairs": len(results),
         "pairs_accepted": int(kept.sum()),

@@ -370,6 +370,14 @@ def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power, subpixel=True, r
     return out
 
 
+def _plan(hs: int, ms: int, fine_sigma: float, coarse_sigma: float | None):
+    """Return ``(patch side, reach, band-pass, window, blocks per batch)`` for blocks of half-size ``hs`` searched to ``ms``."""
+    p = _sizes(hs, ms)[0]
+    band = _band(p, float(fine_sigma), float(hs if coarse_sigma is None else coarse_sigma))
+    taper = _taper(p, hs, p / 2.0)
+    return p, block_reach(hs, ms), band, np.outer(taper, taper), max(16, _BATCH_PIXELS // (p * p))
+
+
 def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_size: int,
                  max_shift: int, *, fine_sigma: float = 1.0, coarse_sigma: float | None = None,
                  power: float = 1.0, subpixel: bool = True) -> BlockMatches:
@@ -451,18 +459,13 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
     nodes = np.asarray(nodes, float).reshape(-1, 2)
     n = len(nodes)
     out = BlockMatches(np.full((n, 2), np.nan), *(np.full(n, np.nan) for _ in range(4)))
-    p = _sizes(hs, ms)[0]
-    reach = block_reach(hs, ms)
+    p, reach, band, win, batch = _plan(hs, ms, fine_sigma, coarse_sigma)
     h, w = f_img.shape
     xy = np.rint(nodes).astype(int)
     inside = np.flatnonzero((xy[:, 0] >= reach) & (xy[:, 1] >= reach) & (xy[:, 0] + reach < w)
                             & (xy[:, 1] + reach < h))
     if not inside.size:
         return out
-    band = _band(p, float(fine_sigma), float(hs if coarse_sigma is None else coarse_sigma))
-    taper = _taper(p, hs, p / 2.0)
-    win = np.outer(taper, taper)
-    batch = max(16, _BATCH_PIXELS // (p * p))
     for a in range(0, inside.size, batch):
         sel = inside[a:a + batch]
         s, pk, c, g, i = _match_batch(f_img, m_img, xy[sel], p, hs, ms, win, band, float(power), bool(subpixel))
@@ -524,12 +527,7 @@ def match_block_pairs(fixed: np.ndarray, moving: np.ndarray, max_shift: int, *, 
     out = BlockMatches(np.full((n, 2), np.nan), *(np.full(n, np.nan) for _ in range(4)))
     if n == 0:
         return out
-    p = _sizes(hs, ms)[0]
-    reach = block_reach(hs, ms)
-    band = _band(p, float(fine_sigma), float(hs if coarse_sigma is None else coarse_sigma))
-    taper = _taper(p, hs, p / 2.0)
-    win = np.outer(taper, taper)
-    batch = max(16, _BATCH_PIXELS // (p * p))
+    p, reach, band, win, batch = _plan(hs, ms, fine_sigma, coarse_sigma)
     node = np.array([reach + w // 2, reach + h // 2])
     for a in range(0, n, batch):
         sel = np.arange(a, min(n, a + batch))

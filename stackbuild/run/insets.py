@@ -138,7 +138,8 @@ def register_region(job: tuple) -> dict | None:
     from ..tiles import SectionTiles
 
     root, name, section, (u0, v0), side, red, coarse_doc, block, max_shift = job
-    store, istore = TransformStore(Path(root)), TransformStore(Path(root) / "insets" / name)
+    store = TransformStore(Path(root))
+    istore = store.inset(name)
     fine, base = istore.load_stitch(section), store.load_stitch(section)
     coarse = Affine2D.from_json(coarse_doc)
     n = max(1, side // red)
@@ -246,7 +247,7 @@ def render_inset_block(job: tuple) -> int:
 
     root, name, y0, y1, x0, x1, array = job
     store = TransformStore(Path(root))
-    istore = TransformStore(Path(root) / "insets" / name)
+    istore = store.inset(name)
     rec = istore.load_doc("inset")
     fine = istore.load_stitch(rec["section"])
     alignment = store.load_alignment(rec["section"])
@@ -312,7 +313,7 @@ def add_inset(build: BuildFolder, path: Path, mapper=None) -> list[str]:
     cfg = build.config
     name = re.sub(r"[^A-Za-z0-9_.-]", "_", f"section{s}_{px:g}nm")
     fine = stitch_section(manifest.section_tiles(s), cfg.stitch, s)
-    istore = TransformStore(store.root / "insets" / name)
+    istore = store.inset(name)
     fresh = not istore.root.exists()
     istore.save_stitch(fine)  # the region tasks read it
     try:
@@ -335,8 +336,8 @@ def add_inset(build: BuildFolder, path: Path, mapper=None) -> list[str]:
     x0_nm = (ox - canvas.origin_x - 0.5) * vol.pixel_size + 0.5 * px
     y0_nm = (oy - canvas.origin_y - 0.5) * vol.pixel_size + 0.5 * px
     z_nm = (s - canvas.first_section) * canvas.section_thickness_nm
-    out = build.volume_path / "insets" / name
-    zarr.open_group(str(build.volume_path / "insets"), mode="a", zarr_format=3)
+    out = build.inset_path(name)
+    zarr.open_group(str(out.parent), mode="a", zarr_format=3)
     shapes = inset_shapes(height, width, cfg.render.chunk)
     attrs = _inset_attrs(name, len(shapes), z_nm, canvas.section_thickness_nm, px, x0_nm, y0_nm,
                          {"inset": record})

@@ -92,6 +92,10 @@ class TransformStore:
         self.root = Path(root)
 
     # ----------------------------------------------------------------- paths
+    def inset(self, name: str) -> "TransformStore":
+        """Return the store of inset ``name`` (``<root>/insets/<name>``: its stitch record and registration)."""
+        return TransformStore(self.root / "insets" / name)
+
     def section_dir(self, section: int) -> Path:
         """Return the folder of one section's records."""
         return self.root / "sections" / f"{int(section):05d}"

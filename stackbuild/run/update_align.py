@@ -23,6 +23,7 @@ from dataclasses import replace
 
 import numpy as np
 
+from ..transforms.hold import bbox_grid
 from ..transforms.records import SectionAlignment
 from ..transforms.types import DisplacementField
 
@@ -50,29 +51,24 @@ def through_anchor(rec: SectionAlignment, anchor_old: SectionAlignment, anchor_n
         :data:`SPACING` over the section's footprint) that makes the chain equal
         ``rec.aligned_to_section(W(P))`` at every node.
     """
-    if rec.displacement is not None:
-        f = rec.displacement
-        ny, nx = f.vectors.shape[:2]
-        origin, spacing = f.origin, f.spacing
-    else:
+    grid = rec.displacement
+    if grid is None:
         x0, y0, x1, y1 = bbox
         corners = rec.section_to_aligned(np.array([[x0, y0], [x1, y0], [x0, y1], [x1, y1]], float))
         lo, hi = corners.min(axis=0) - 2 * SPACING, corners.max(axis=0) + 2 * SPACING
-        origin, spacing = (float(lo[0]), float(lo[1])), SPACING
-        nx, ny = int(np.ceil((hi[0] - lo[0]) / spacing)) + 1, int(np.ceil((hi[1] - lo[1]) / spacing)) + 1
-    gx, gy = np.meshgrid(origin[0] + spacing * np.arange(nx), origin[1] + spacing * np.arange(ny))
-    nodes = np.column_stack([gx.ravel(), gy.ravel()])
+        shape = (int(np.ceil((hi[1] - lo[1]) / SPACING)) + 1, int(np.ceil((hi[0] - lo[0]) / SPACING)) + 1)
+        grid = DisplacementField.zeros(shape, (float(lo[0]), float(lo[1])), SPACING)
+    ny, nx = grid.vectors.shape[:2]
+    nodes = grid.nodes()
     moved = anchor_new.section_to_aligned(anchor_old.aligned_to_section(nodes))
     target = rec.aligned_to_section(moved)
     coarse = rec.affine.inverse().apply(target)
     vec = (coarse - nodes).reshape(ny, nx, 2).astype(np.float32)
-    return replace(rec, displacement=DisplacementField(vec, origin, spacing))
+    return replace(rec, displacement=DisplacementField(vec, grid.origin, grid.spacing))
 
 
 def anchor_moves(rec: SectionAlignment, anchored: SectionAlignment, bbox, n: int = 9) -> float:
     """Return how far (section px) the anchoring moved a section's content: the largest over an ``n x n`` grid."""
-    x0, y0, x1, y1 = bbox
-    gx, gy = np.meshgrid(np.linspace(x0 + 1, x1 - 1, n), np.linspace(y0 + 1, y1 - 1, n))
-    pts = np.column_stack([gx.ravel(), gy.ravel()])
+    pts = bbox_grid(bbox, n)
     a = rec.section_to_aligned(pts)
     return float(np.hypot(*(anchored.section_to_aligned(pts) - a).T).max())

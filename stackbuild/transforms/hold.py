@@ -123,7 +123,8 @@ def hold_tiles(old: SectionStitch, new: SectionStitch, changed: set[str]) -> tup
     return out, {"held": len(held), "placed": len(free), "held_moved_px": moved}
 
 
-def _grid(bbox, n: int = 9) -> np.ndarray:
+def bbox_grid(bbox, n: int = 9) -> np.ndarray:
+    """Return ``n x n`` points spread over a section extent ``(x0, y0, x1, y1)``, one pixel inside it."""
     x0, y0, x1, y1 = bbox
     gx, gy = np.meshgrid(np.linspace(x0 + 1, x1 - 1, n), np.linspace(y0 + 1, y1 - 1, n))
     return np.column_stack([gx.ravel(), gy.ravel()])
@@ -147,8 +148,7 @@ def reframe(alignment: SectionAlignment, to_new: Affine2D) -> SectionAlignment:
         return replace(alignment, affine=to_new.then(alignment.affine))
     f = alignment.displacement
     ny, nx = f.vectors.shape[:2]
-    gx, gy = np.meshgrid(f.origin[0] + f.spacing * np.arange(nx), f.origin[1] + f.spacing * np.arange(ny))
-    nodes = np.column_stack([gx.ravel(), gy.ravel()])
+    nodes = f.nodes()
     moved = to_new.apply(nodes)
     vec = (moved + f.displacement(moved) - nodes).reshape(ny, nx, 2)
     return replace(alignment, displacement=DisplacementField(vec.astype(np.float32), f.origin, f.spacing))
@@ -191,7 +191,7 @@ def hold_alignments(old: dict[int, SectionAlignment], new: dict[int, SectionAlig
     if anchors:
         src, dst = [], []
         for s in anchors:
-            pts = _grid(bboxes[s])
+            pts = bbox_grid(bboxes[s])
             src.append(old[s].section_to_aligned(pts))
             dst.append(new[s].section_to_aligned(pts))
         src, dst = np.concatenate(src), np.concatenate(dst)
@@ -201,7 +201,7 @@ def hold_alignments(old: dict[int, SectionAlignment], new: dict[int, SectionAlig
     for s, rec in new.items():
         framed = reframe(rec, to_new)
         if s in old:
-            pts = old[s].section_to_aligned(_grid(bboxes[s]))
+            pts = old[s].section_to_aligned(bbox_grid(bboxes[s]))
             dist = float(np.hypot(*(framed.aligned_to_section(pts) - old[s].aligned_to_section(pts)).T).max())
             moved[s] = dist
             if s not in movable or dist <= tolerance:

@@ -120,6 +120,13 @@ class DisplacementField:
         """Return a field of zeros with ``shape = (ny, nx)`` nodes."""
         return cls(np.zeros((*shape, 2), np.float32), origin, spacing)
 
+    def nodes(self) -> np.ndarray:
+        """Return the ``(ny * nx, 2)`` ``(x, y)`` positions of the nodes, row by row (the order of ``vectors``)."""
+        ny, nx = self.vectors.shape[:2]
+        gx, gy = np.meshgrid(self.origin[0] + self.spacing * np.arange(nx),
+                             self.origin[1] + self.spacing * np.arange(ny))
+        return np.column_stack([gx.ravel(), gy.ravel()])
+
     def displacement(self, points: np.ndarray) -> np.ndarray:
         """Return ``d(p)`` at ``(N, 2)`` ``(x, y)`` points (float64)."""
         p = np.asarray(points, dtype=np.float64)

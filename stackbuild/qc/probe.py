@@ -126,15 +126,21 @@ def _cut(img: np.ndarray, centres: np.ndarray, r: int) -> np.ndarray:
     return (img if isinstance(img, _Window) else _Window(img)).cut(centres, r)
 
 
-def _reduced(img: np.ndarray) -> np.ndarray:
-    """Return ``img`` reduced ``COARSE`` times by area means; NaN where any of a cell's pixels is NaN."""
+def _reduced(img: np.ndarray, valid: np.ndarray | None = None) -> np.ndarray:
+    """Return ``img`` reduced ``COARSE`` times by area means (float32); NaN where any of a cell's pixels is no data.
+
+    No data is NaN in ``img``, or where ``valid`` is False when given (a window as read,
+    whose no-data pixels hold 0).
+    """
     import cv2
 
+    if valid is None:
+        valid, img = np.isfinite(img), np.nan_to_num(img, nan=0.0)
     h, w = img.shape
     size = (max(1, w // COARSE), max(1, h // COARSE))
-    small = cv2.resize(np.nan_to_num(img, nan=0.0), size, interpolation=cv2.INTER_AREA)
-    valid = cv2.resize(np.isfinite(img).astype(np.float32), size, interpolation=cv2.INTER_AREA) > 0.999
-    small[~valid] = np.nan
+    src = img if img.dtype in (np.uint8, np.uint16, np.float32, np.float64) else img.astype(np.float32)
+    small = cv2.resize(src, size, interpolation=cv2.INTER_AREA).astype(np.float32)
+    small[cv2.resize(valid.astype(np.uint8) * 255, size, interpolation=cv2.INTER_AREA) < 255] = np.nan
     return small
 
 
@@ -225,8 +231,6 @@ def _window(source: PlaneSource, z: int, box, margin: int, reduce: bool, coarse:
     from the written pyramid level ``coarse`` when given (the window then starts on a multiple
     of ``COARSE``), else reduced from the window.
     """
-    import cv2
-
     x0, y0, x1, y1 = box
     h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
     wx0, wy0 = max(0, x0 - margin), max(0, y0 - margin)
@@ -241,11 +245,7 @@ def _window(source: PlaneSource, z: int, box, margin: int, reduce: bool, coarse:
         small = c.astype(np.float32)
         small[~data_mask(c)] = np.nan
     elif reduce:
-        # area means of the window as read (no data is 0 there); a reduced cell is data when all of it is
-        size = (max(1, raw.shape[1] // COARSE), max(1, raw.shape[0] // COARSE))
-        src = raw if raw.dtype in (np.uint8, np.uint16, np.float32) else raw.astype(np.float32)
-        small = cv2.resize(src, size, interpolation=cv2.INTER_AREA).astype(np.float32)
-        small[cv2.resize(valid.astype(np.uint8) * 255, size, interpolation=cv2.INTER_AREA) < 255] = np.nan
+        small = _reduced(raw, valid)
     return _Window(raw, valid), small, np.array([wx0, wy0])
 
 

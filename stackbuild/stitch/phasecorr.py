@@ -51,12 +51,7 @@ def hann_window(height: int, width: int) -> np.ndarray:
     equivalent), the outer product of two 1-D windows; cached per shape so
     repeated strips of one size do not recompute it.
     """
-    def one(n: int) -> np.ndarray:
-        if n == 1:
-            return np.ones(1, np.float32)
-        return (0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n) / (n - 1))).astype(np.float32)
-
-    w = np.outer(one(height), one(width)).astype(np.float32)
+    w = np.outer(_hann_at(height, 0.0), _hann_at(width, 0.0)).astype(np.float32)
     w.setflags(write=False)
     return w
 

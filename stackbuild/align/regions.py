@@ -123,10 +123,10 @@ class RegionTask:
     subpixel: bool = True       # the matcher's unbiased passes (False: one pass; see match_blocks)
 
 
-def _match_links(task: RegionTask, subpixel: bool = True):
+def _match_links(task: RegionTask):
     """Yield ``(link, shifts (by, bx, 2) full-res px with NaN = untrusted, weights, tried, contrast)``.
 
-    ``subpixel`` False takes the matcher's one-pass sub-pixel peak (see
+    ``task.subpixel`` False takes the matcher's one-pass sub-pixel peak (see
     :func:`.blockmatch.match_blocks`), for statistics that need no more.
     """
     s = task.settings
@@ -139,7 +139,7 @@ def _match_links(task: RegionTask, subpixel: bool = True):
                          for z in task.own]) if task.own else np.zeros((0, by, bx))
     for a, b in task.links:
         res = match_blocks(images[a], images[b], nodes, s.match_half_size, s.match_max_shift,
-                           fine_sigma=s.match_blur / g.scale, subpixel=subpixel)
+                           fine_sigma=s.match_blur / g.scale, subpixel=task.subpixel)
         sh = res.shifts.reshape(by, bx, 2) * g.scale
         conf = res.confidence.reshape(by, bx)
         ok = filter_vectors(sh, res.ncc.reshape(by, bx), s.min_block_ncc, s.max_neighbour_deviation)
@@ -160,7 +160,7 @@ def region_job(task: RegionTask) -> dict:
     weights = np.zeros((len(task.links), by, bx), np.float32)
     contrast = np.zeros((0, by, bx))
     counts = {}
-    for k, (link, sh, wt, tried, contrast) in enumerate(_match_links(task, task.subpixel)):
+    for k, (link, sh, wt, tried, contrast) in enumerate(_match_links(task)):
         shifts[k], weights[k] = sh, wt
         counts[link] = (tried, int(np.isfinite(sh[..., 0]).sum()))
     if not task.links and task.own:
@@ -191,7 +191,7 @@ def residual_job(task: RegionTask) -> dict:
     out = {}
     # statistics only (the stored residual of each section to the next): the one-pass estimate, whose
     # small pull toward zero (0.06-0.1 px RMS on camera translations, at 2 px shifts) does not matter here
-    for link, sh, _, _, _ in _match_links(replace(task, own=()), subpixel=False):
+    for link, sh, _, _, _ in _match_links(replace(task, own=(), subpixel=False)):
         mag = np.hypot(sh[..., 0], sh[..., 1])
         mag = mag[np.isfinite(mag)]
         hist = np.bincount(np.minimum((mag / _BIN).astype(int), _NBINS - 1), minlength=_NBINS)

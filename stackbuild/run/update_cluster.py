@@ -54,25 +54,23 @@ def in_process(plan: UpdatePlan, scheduler) -> bool:
 
 
 @contextlib.contextmanager
+def _mappers(local: bool, workers, scheduler, show: bool):
+    """Yield :class:`StepMappers` for this process when ``local``, else for a Dask cluster."""
+    from .cluster import dask_client
+
+    if local:
+        yield StepMappers(None, show)
+        return
+    with dask_client(workers, scheduler) as client:
+        yield StepMappers(client, show)
+
+
 def update_mappers(plan: UpdatePlan, workers, scheduler, show: bool):
-    """Yield the :class:`StepMappers` of an update: this process when it is small, else a cluster."""
-    from .cluster import dask_client
-
-    if in_process(plan, scheduler):
-        yield StepMappers(None, show)
-        return
-    with dask_client(workers, scheduler) as client:
-        yield StepMappers(client, show)
+    """Return the context of an update's :class:`StepMappers`: this process when it is small, else a cluster."""
+    return _mappers(in_process(plan, scheduler), workers, scheduler, show)
 
 
-@contextlib.contextmanager
 def inset_mappers(n_tiles: int, workers, scheduler, show: bool):
-    """Yield the :class:`StepMappers` of an inset of ``n_tiles`` tiles: this process when it has at most
-    :data:`IN_PROCESS_TILES` tiles and no scheduler is given, else a Dask cluster."""
-    from .cluster import dask_client
-
-    if scheduler is None and n_tiles <= IN_PROCESS_TILES:
-        yield StepMappers(None, show)
-        return
-    with dask_client(workers, scheduler) as client:
-        yield StepMappers(client, show)
+    """Return the context of an inset's :class:`StepMappers` for ``n_tiles`` tiles: this process when it has at
+    most :data:`IN_PROCESS_TILES` tiles and no scheduler is given, else a Dask cluster."""
+    return _mappers(scheduler is None and n_tiles <= IN_PROCESS_TILES, workers, scheduler, show)

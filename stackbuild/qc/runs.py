@@ -74,7 +74,7 @@ def jitter_run(job: RunJob) -> dict:
     planes: dict[int, dict] = {}
     result = {"planes": planes, "sigma": None}
     if not la or not nb:
-        write_run(job.build, job.core[0], job.fingerprint, {"planes": {}, "sigma": None}, [], [])
+        write_run(job.build, job.core[0], job.fingerprint, result, [], [])
         return result
     jit = block_jitter(np.asarray(zs, float), np.asarray(la), np.asarray(lb), np.stack(shifts),
                        window=st.slow_window, stack=np.asarray(job.stack, float))

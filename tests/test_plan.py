@@ -33,6 +33,19 @@ def test_described_production_volume_has_every_required_field_and_a_bounded_rend
     assert plan["output_files"] > 0 and plan["output_bytes"] > 0
 
 
+def test_the_contrast_pass_is_planned_as_bounded_tasks():
+    cfg = PipelineConfig()
+    cfg.render.contrast = True
+    plan = make_plan(VolumeShape.described(400, 1000, 4096), cfg, cores=512)
+    render = plan["stages"]["render"]
+    contrast = render["kinds"]["render.contrast"]
+    # one task per imaged section, holding strips of the coarse render (render/contrast.py), not a section
+    assert contrast["tasks"] == 400
+    assert 0 < contrast["memory_bytes"] < 4e9
+    # no rate was measured for it, and the plan says so instead of counting it as free
+    assert "render.contrast" in render["unmeasured"]
+
+
 def test_output_file_count_matches_the_files_zarr_writes(tmp_path):
     # Reference: zarr-python writes one file per shard (zarr v3 sharding codec) plus one zarr.json
     # per array and group; the plan counts them from its own level shapes.

@@ -239,7 +239,6 @@ def render_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     reads, kept, note = _render_reads(shape, block, per_shard, per)
     records = shape.tiles_per_section * 400 + _grid(shape, cfg.align)[0] * 2 * 8
     shard_px = min(block, h) * min(block, w)
-    planes_px = shape.imaged * h * w
     # the tile windows under one chunk while it is sampled: up to 2 x 2 tiles, each a window of at most
     # the chunk (or the tile) as float32 value, weight and the two remap coordinate maps
     windows = 4 * min(chunk, shape.tile_height) * min(chunk, shape.tile_width) * 4 * 4
@@ -254,6 +253,7 @@ def render_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     if r.contrast:
         cs = max(1, int(r.contrast_scale))
         strip = 2 * 256 * (w / cs) * 4
+        prepared = (shape.tile_height + 2) * (shape.tile_width + 2) * 4    # one prepared float32 tile
         kinds.append(Kind("render.contrast", shape.imaged, strip + (1 << 20) * 4 + prepared / cs ** 2 * shape.cols,
                           shape.tiles_per_section * shape.tile_height * shape.tile_width / MB,
                           reads=shape.tiles_per_section * shape.tile_bytes))

@@ -7,7 +7,7 @@ import pytest
 
 from stackbuild.synth import SynthParams, generate, load_truth
 from stackbuild.synth.residual import bump_basis, identifiable_residual, identifiable_vectors
-from stackbuild.transforms import (Affine2D, Canvas, DisplacementField, SectionAlignment, SectionStitch,
+from stackbuild.transforms import (Canvas, DisplacementField, SectionAlignment, SectionStitch,
                                    TilePlacement, TransformStore)
 
 GX, GY = np.meshgrid(np.arange(8) * 128.0 + 64, np.arange(6) * 128.0 + 64)

@@ -23,7 +23,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from .records import SectionAlignment, SectionStitch, TilePlacement
+from .records import SectionAlignment, SectionStitch
 from .types import Affine2D, DisplacementField
 
 

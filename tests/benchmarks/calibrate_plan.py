@@ -33,7 +33,6 @@ sys.path.insert(0, str(REPO))
 
 from stackbuild.config import PipelineConfig  # noqa: E402
 from stackbuild.run.plan import RATES_PATH  # noqa: E402
-from stackbuild.run.plan_measure import measure_build  # noqa: E402
 from stackbuild.run.plan_models import STAGES  # noqa: E402
 from stackbuild.run.plan_speed import reference_cpu_seconds  # noqa: E402
 from stackbuild.run.plan_shape import VolumeShape  # noqa: E402

@@ -242,23 +242,6 @@ def _normalise_spectrum(x: np.ndarray, power: float) -> np.ndarray:
     return x / np.maximum(mag, floor) ** power
 
 
-class _Batch:
-    """The windowed spectra of one batch of blocks (fixed side) and what matching needs with them."""
-
-    def __init__(self, f, win, band, power):
-        self.win, self.band, self.power = win, band, power
-        self.p = f.shape[1]
-        self.f_spec = self.spectrum(f)
-        # peak height of a perfect match: the band's own inverse transform at 0
-        self.norm = float(sfft.irfft2(band, s=(self.p, self.p))[0, 0])
-
-    def spectrum(self, x):
-        return sfft.rfft2((x - x.mean(axis=(1, 2), keepdims=True)) * self.win)
-
-    def cross(self, m_spec):
-        return _normalise_spectrum(np.conj(self.f_spec) * m_spec, self.power) * self.band
-
-
 def _filled(x: np.ndarray) -> np.ndarray:
     """Return blocks ``x`` with NaN pixels set to their block's mean of the rest (0 if none)."""
     bad = ~np.isfinite(x)
@@ -296,33 +279,145 @@ def _subpixel_moved(x: np.ndarray, shift: np.ndarray) -> np.ndarray:
     return sfft.irfft2(spec, s=(q, q))
 
 
-def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power, subpixel=True, rows=None):
-    """Match the blocks at integer nodes ``xy`` (all inside); return shifts (dx, dy), peak, ncc, margin, isotropy.
+@dataclass(frozen=True)
+class MatchPlan:
+    """What matching blocks of one size needs, made once (:func:`match_plan`).
 
-    With ``rows``, ``f_img`` and ``m_img`` are stacks of images and block ``i`` lies in image ``rows[i]``.
+    Attributes
+    ----------
+    half_size, max_shift : int
+        As in :func:`match_blocks`.
+    p : int
+        Block side.
+    reach : int
+        How far from a node matching reads (:func:`block_reach`).
+    band : ndarray, shape (p, p // 2 + 1)
+        Band-pass weights of the real FFT.
+    win : ndarray, shape (p, p)
+        The window, flat out to ``half_size``.
+    batch : int
+        Blocks matched per batch.
+    power : float
+        Spectral normalisation (see :func:`match_blocks`).
+    norm : float
+        Peak height of a perfect match: the band's own inverse transform at 0.
     """
-    n = len(xy)
+
+    half_size: int
+    max_shift: int
+    p: int
+    reach: int
+    band: np.ndarray
+    win: np.ndarray
+    batch: int
+    power: float
+    norm: float
+
+    def spectrum(self, x: np.ndarray) -> np.ndarray:
+        """Return the real FFTs of blocks ``x`` ``(n, p, p)`` less their means, under the window."""
+        return sfft.rfft2((x - x.mean(axis=(1, 2), keepdims=True)) * self.win)
+
+    def cross(self, f_spec: np.ndarray, m_spec: np.ndarray) -> np.ndarray:
+        """Return the band-limited, normalised cross-power spectra of fixed and moving blocks."""
+        return _normalise_spectrum(np.conj(f_spec) * m_spec, self.power) * self.band
+
+
+def match_plan(half_size: int, max_shift: int, *, fine_sigma: float = 1.0, coarse_sigma: float | None = None,
+               power: float = 1.0) -> MatchPlan:
+    """Return the :class:`MatchPlan` of blocks of ``half_size`` searched to ``max_shift`` (see :func:`match_blocks`)."""
+    hs, ms = int(half_size), int(max_shift)
+    if hs < 2 or ms < 1:
+        raise ValueError(f"half_size must be >= 2 and max_shift >= 1, got {hs}, {ms}")
+    p = _sizes(hs, ms)[0]
+    band = _band(p, float(fine_sigma), float(hs if coarse_sigma is None else coarse_sigma))
+    taper = _taper(p, hs, p / 2.0)
+    norm = float(sfft.irfft2(band, s=(p, p))[0, 0])
+    return MatchPlan(hs, ms, p, block_reach(hs, ms), band, np.outer(taper, taper),
+                     max(16, _BATCH_PIXELS // (p * p)), float(power), norm)
+
+
+@dataclass
+class BlockSpectra:
+    """The windowed spectra of one image's blocks at integer nodes: made once, matched against many images.
+
+    Attributes
+    ----------
+    xy : ndarray of int, shape (N, 2)
+        The nodes ``(x, y)``.
+    usable : ndarray of bool, shape (N,)
+        The node lies inside the image by the plan's reach and the window's
+        flat centre holds data.
+    spec : ndarray of complex64, shape (N, p, p // 2 + 1)
+        The real FFT of each block (missing pixels at the block's mean), less
+        its mean, under the window; 0 where not usable.
+    sums : ndarray, shape (N, 4)
+        :func:`_power_sums` of the band-passed spectra.
+    """
+
+    xy: np.ndarray
+    usable: np.ndarray
+    spec: np.ndarray
+    sums: np.ndarray
+
+
+def block_spectra(image: np.ndarray, xy: np.ndarray, plan: MatchPlan, rows: np.ndarray | None = None) -> BlockSpectra:
+    """Return the :class:`BlockSpectra` of ``image`` at integer nodes ``xy`` (``(N, 2)`` ``(x, y)``).
+
+    With ``rows``, ``image`` is a stack ``(M, H, W)`` and block ``i`` lies in image ``rows[i]``.
+    """
+    xy = np.asarray(xy, int).reshape(-1, 2)
+    n, p, reach, hs = len(xy), plan.p, plan.reach, plan.half_size
     half = p // 2
-    f = _patches(f_img, xy[:, 0] - half, xy[:, 1] - half, p, rows)
-    m = _patches(m_img, xy[:, 0] - half, xy[:, 1] - half, p, rows)
-    # the window's flat centre must hold data in both; beyond it, missing pixels (a section's
-    # edge) take the block's mean, which the taper then fades out
-    core = np.s_[:, half - hs:half + hs + 1, half - hs:half + hs + 1]
-    good = np.isfinite(f[core]).all(axis=(1, 2)) & np.isfinite(m[core]).all(axis=(1, 2))
-    out = [np.full((n, 2), np.nan)] + [np.full(n, np.nan) for _ in range(4)]
-    if not good.any():
+    h, w = image.shape[-2:]
+    usable = (xy[:, 0] >= reach) & (xy[:, 1] >= reach) & (xy[:, 0] + reach < w) & (xy[:, 1] + reach < h)
+    spec = np.zeros((n, p, p // 2 + 1), np.complex64)
+    sums = np.zeros((n, 4))
+    idx = np.flatnonzero(usable)
+    if idx.size:
+        x = _patches(image, xy[idx, 0] - half, xy[idx, 1] - half, p, None if rows is None else rows[idx])
+        # the window's flat centre must hold data; beyond it, missing pixels (a section's edge) take
+        # the block's mean, which the taper then fades out
+        core = np.isfinite(x[:, half - hs:half + hs + 1, half - hs:half + hs + 1]).all(axis=(1, 2))
+        usable[idx[~core]] = False
+        idx = idx[core]
+        if idx.size:
+            spec[idx] = plan.spectrum(_filled(x[core]))
+            sums[idx] = _power_sums(spec[idx] * plan.band)
+    return BlockSpectra(xy, usable, spec, sums)
+
+
+def match_spectra(fixed: BlockSpectra, moving: BlockSpectra, moving_image: np.ndarray, plan: MatchPlan,
+                  subpixel: bool = True, rows: np.ndarray | None = None) -> BlockMatches:
+    """Return the :class:`BlockMatches` of two images' blocks at the same nodes (see :func:`match_blocks`).
+
+    ``moving`` holds the blocks of ``moving_image`` (cut again there at the
+    match by the sub-pixel passes); ``rows`` as in :func:`block_spectra`.
+    A section's blocks are transformed once and matched against each of
+    its neighbours, on either side.
+    """
+    n = len(fixed.xy)
+    out = BlockMatches(np.full((n, 2), np.nan), *(np.full(n, np.nan) for _ in range(4)))
+    good = np.flatnonzero(fixed.usable & moving.usable)
+    if not good.size:
         return out
-    f, m, xy = _filled(f[good]), _filled(m[good]), xy[good]
-    rows = None if rows is None else rows[good]
-    b = _Batch(f, win, band, power)
+    s, pk, c, g, i = _match_core(fixed.spec[good], fixed.sums[good], moving.spec[good], moving_image,
+                                 fixed.xy[good], plan, subpixel, None if rows is None else rows[good])
+    out.shifts[good], out.peak[good], out.ncc[good], out.margin[good], out.isotropy[good] = s, pk, c, g, i
+    return out
+
+
+def _match_core(f_spec, f_sums, m_spec, m_img, xy, plan, subpixel, rows):
+    """Match usable blocks by their spectra; return shifts (dx, dy), peak, ncc, margin, isotropy."""
+    n, p, ms, hs = len(xy), plan.p, plan.max_shift, plan.half_size
+    half = p // 2
+    out = [np.full((n, 2), np.nan)] + [np.full(n, np.nan) for _ in range(4)]
     # pass 1: whole-pixel peak of the band-limited phase correlation within +- max_shift
-    m_spec = b.spectrum(m)
-    cross = b.cross(m_spec)
-    surf = sfft.irfft2(cross, s=(p, p)) / b.norm
+    cross = plan.cross(f_spec, m_spec)
+    surf = sfft.irfft2(cross, s=(p, p)) / plan.norm
     surf = np.roll(surf, (ms, ms), axis=(1, 2))[:, :2 * ms + 1, :2 * ms + 1]
     k = 2 * ms + 1
-    r, c = np.divmod(surf.reshape(len(f), -1).argmax(1), k)
-    top = surf.reshape(len(f), -1).max(1)
+    r, c = np.divmod(surf.reshape(n, -1).argmax(1), k)
+    top = surf.reshape(n, -1).max(1)
     rival = _rival(surf, r, c)
     ok = (r > 0) & (r < k - 1) & (c > 0) & (c < k - 1)                 # an edge peak may lie beyond
     whole = np.column_stack([r - ms, c - ms]).astype(float)          # (dy, dx)
@@ -331,8 +426,8 @@ def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power, subpixel=True, r
         # both sides) sees nearly the same content, and refine the peak by upsampled DFT
         dy, dx = r - ms, c - ms
         m2 = _filled(_patches(m_img, xy[:, 0] - half + dx, xy[:, 1] - half + dy, p, rows))
-        m2_spec = b.spectrum(m2)
-        sub, height = _refine(b.cross(m2_spec), p)
+        m2_spec = plan.spectrum(m2)
+        sub, height = _refine(plan.cross(f_spec, m2_spec), p)
         est = whole + sub
         # pass 3: move the moving block by that sub-pixel shift too (whole pixels by the cut, the
         # rest by a Fourier shift of a wider cut, cropped) and measure what is left: the window's
@@ -341,10 +436,10 @@ def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power, subpixel=True, r
         _, q, rim = _sizes(hs, ms)
         wide = _patches(m_img, xy[:, 0] - half + cut[:, 1] - rim, xy[:, 1] - half + cut[:, 0] - rim, q, rows)
         m3 = _subpixel_moved(_filled(wide), est - cut)[:, rim:rim + p, rim:rim + p]
-        rest, height = _refine(b.cross(b.spectrum(m3)), p)
+        rest, height = _refine(plan.cross(f_spec, plan.spectrum(m3)), p)
         est = est + rest
         sub = sub + rest
-        mg = m2_spec * b.band
+        mg = m2_spec * plan.band
     else:
         # the same surface evaluated between pixels about that peak (upsampled DFT of the
         # cross-power spectrum moved by the whole-pixel shift; no new transform), and the moving
@@ -352,30 +447,20 @@ def _match_batch(f_img, m_img, xy, p, hs, ms, win, band, power, subpixel=True, r
         ey, ex = _ramps(whole, p)
         sub, height = _refine(cross * ey * ex, p)
         est = whole + sub
-        mg = m_spec * b.band * ey * ex
+        mg = m_spec * plan.band * ey * ex
     # NCC of the band-limited, windowed blocks at the whole-pixel match (for the trust threshold), by
     # Parseval's theorem straight from the spectra
-    fg = b.f_spec * b.band
-    f_sums = _power_sums(fg)
+    fg = f_spec * plan.band
     with np.errstate(divide="ignore", invalid="ignore"):
         ncc = _dot(fg, mg) / np.sqrt(f_sums[:, 0] * _dot(mg, mg))
         margin = np.clip(1.0 - np.maximum(rival, 0.0) / top, 0.0, 1.0)
     ok &= np.isfinite(ncc) & (np.abs(sub) < 1.0).all(axis=1)
-    idx = np.flatnonzero(good)[ok]
-    out[0][idx] = est[ok][:, ::-1]
-    out[1][idx] = (height / b.norm)[ok]
-    out[2][idx] = ncc[ok]
-    out[3][idx] = margin[ok]
-    out[4][idx] = _isotropy(f_sums[ok])
+    out[0][ok] = est[ok][:, ::-1]
+    out[1][ok] = (height / plan.norm)[ok]
+    out[2][ok] = ncc[ok]
+    out[3][ok] = margin[ok]
+    out[4][ok] = _isotropy(f_sums[ok])
     return out
-
-
-def _plan(hs: int, ms: int, fine_sigma: float, coarse_sigma: float | None):
-    """Return ``(patch side, reach, band-pass, window, blocks per batch)`` for blocks of half-size ``hs`` searched to ``ms``."""
-    p = _sizes(hs, ms)[0]
-    band = _band(p, float(fine_sigma), float(hs if coarse_sigma is None else coarse_sigma))
-    taper = _taper(p, hs, p / 2.0)
-    return p, block_reach(hs, ms), band, np.outer(taper, taper), max(16, _BATCH_PIXELS // (p * p))
 
 
 def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_size: int,
@@ -451,25 +536,18 @@ def match_blocks(fixed: np.ndarray, moving: np.ndarray, nodes: np.ndarray, half_
     """
     if fixed.shape != moving.shape or fixed.ndim != 2:
         raise ValueError(f"fixed and moving must be 2-D of one shape, got {fixed.shape}, {moving.shape}")
-    hs, ms = int(half_size), int(max_shift)
-    if hs < 2 or ms < 1:
-        raise ValueError(f"half_size must be >= 2 and max_shift >= 1, got {hs}, {ms}")
+    plan = match_plan(half_size, max_shift, fine_sigma=fine_sigma, coarse_sigma=coarse_sigma, power=power)
     f_img = np.asarray(fixed, np.float32)
     m_img = np.asarray(moving, np.float32)
-    nodes = np.asarray(nodes, float).reshape(-1, 2)
-    n = len(nodes)
+    xy = np.rint(np.asarray(nodes, float).reshape(-1, 2)).astype(int)
+    n = len(xy)
     out = BlockMatches(np.full((n, 2), np.nan), *(np.full(n, np.nan) for _ in range(4)))
-    p, reach, band, win, batch = _plan(hs, ms, fine_sigma, coarse_sigma)
-    h, w = f_img.shape
-    xy = np.rint(nodes).astype(int)
-    inside = np.flatnonzero((xy[:, 0] >= reach) & (xy[:, 1] >= reach) & (xy[:, 0] + reach < w)
-                            & (xy[:, 1] + reach < h))
-    if not inside.size:
-        return out
-    for a in range(0, inside.size, batch):
-        sel = inside[a:a + batch]
-        s, pk, c, g, i = _match_batch(f_img, m_img, xy[sel], p, hs, ms, win, band, float(power), bool(subpixel))
-        out.shifts[sel], out.peak[sel], out.ncc[sel], out.margin[sel], out.isotropy[sel] = s, pk, c, g, i
+    for a in range(0, n, plan.batch):
+        sel = np.arange(a, min(n, a + plan.batch))
+        res = match_spectra(block_spectra(f_img, xy[sel], plan), block_spectra(m_img, xy[sel], plan), m_img,
+                            plan, bool(subpixel))
+        for name in ("shifts", "peak", "ncc", "margin", "isotropy"):
+            getattr(out, name)[sel] = getattr(res, name)
     return out
 
 
@@ -527,17 +605,20 @@ def match_block_pairs(fixed: np.ndarray, moving: np.ndarray, max_shift: int, *, 
     out = BlockMatches(np.full((n, 2), np.nan), *(np.full(n, np.nan) for _ in range(4)))
     if n == 0:
         return out
-    p, reach, band, win, batch = _plan(hs, ms, fine_sigma, coarse_sigma)
+    plan = match_plan(hs, ms, fine_sigma=fine_sigma, coarse_sigma=coarse_sigma, power=power)
+    reach = plan.reach
     node = np.array([reach + w // 2, reach + h // 2])
-    for a in range(0, n, batch):
-        sel = np.arange(a, min(n, a + batch))
+    for a in range(0, n, plan.batch):
+        sel = np.arange(a, min(n, a + plan.batch))
         pad = ((0, 0), (reach, reach), (reach, reach))
         fp = np.pad(f_all[sel], pad, constant_values=np.nan)
         mp = np.pad(m_all[sel], pad, constant_values=np.nan)
         xy = np.broadcast_to(node, (len(sel), 2))
-        s, pk, c, g, i = _match_batch(fp, mp, xy, p, hs, ms, win, band, float(power), bool(subpixel),
-                                      rows=np.arange(len(sel)))
-        out.shifts[sel], out.peak[sel], out.ncc[sel], out.margin[sel], out.isotropy[sel] = s, pk, c, g, i
+        rows = np.arange(len(sel))
+        res = match_spectra(block_spectra(fp, xy, plan, rows), block_spectra(mp, xy, plan, rows), mp, plan,
+                            bool(subpixel), rows)
+        for name in ("shifts", "peak", "ncc", "margin", "isotropy"):
+            getattr(out, name)[sel] = getattr(res, name)
     return out
 
 

@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from .elastic import solve_fields
-from .regions import load_block
+from .regions import load_block, residual_histogram
 
 
 @dataclass(frozen=True)
@@ -107,8 +107,11 @@ def solve_block_job(task: SolveTask) -> dict:
     """Solve one node block with its halo; save the block's own field increments; return per-section counts.
 
     Writes ``{tag}_step_b{block}.npy``, shape ``(S, by, bx, 2)`` in the order of
-    ``task.sections``, and returns ``{"block", "low": {z: (low, measured)}}``
-    counted over the block's own nodes (damaged-looking places).
+    ``task.sections``, and returns ``{"block", "low": {z: (low, measured)},
+    "residual": {(a, b): (histogram, sum of squares, max)}}`` counted over the
+    block's own nodes: damaged-looking places, and the lengths of what the
+    trusted matches of each section and the next present one leave once the
+    increments are applied (:func:`.regions.residual_histogram`).
     """
     s = task.settings
     matches, contrast = _gather(task)
@@ -131,4 +134,8 @@ def solve_block_job(task: SolveTask) -> dict:
     np.save(Path(task.scratch) / f"{task.tag}_step_b{task.block}.npy",
             np.stack([step[z][own] for z in zs]).astype(np.float32))
     counts = {z: (int(low[z][own].sum()), int(np.isfinite(contrast[z][own]).sum())) for z in zs}
-    return {"block": task.block, "low": counts}
+    # what this round's trusted matches between each section and the next present one still
+    # disagree with once the increments are applied (first order: v_ab - (du_b - du_a))
+    left = {(a, b): residual_histogram(matches[(a, b)][0][own] - (step[b][own] - step[a][own]))
+            for a, b in zip(zs, zs[1:]) if (a, b) in matches}
+    return {"block": task.block, "low": counts, "residual": left}

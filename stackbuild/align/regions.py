@@ -25,7 +25,8 @@ import numpy as np
 
 from ..transforms.records import SectionAlignment
 from ..transforms.types import DisplacementField
-from .blockmatch import block_contrast, block_reach, filter_vectors, grid_nodes, match_blocks
+from .blockmatch import (block_contrast, block_reach, block_spectra, filter_vectors, grid_nodes, match_plan,
+                         match_spectra)
 
 
 @dataclass(frozen=True)
@@ -128,6 +129,9 @@ def _match_links(task: RegionTask):
 
     ``task.subpixel`` False takes the matcher's one-pass sub-pixel peak (see
     :func:`.blockmatch.match_blocks`), for statistics that need no more.
+    Each section's blocks are transformed once and matched against all its
+    links (as fixed and as moving); links go in order of their first
+    section, so only the sections a later link still needs are kept.
     """
     s = task.settings
     g = task.grid
@@ -137,9 +141,18 @@ def _match_links(task: RegionTask):
     by, bx = task.rows.stop - task.rows.start, task.cols.stop - task.cols.start
     contrast = np.stack([block_contrast(images[z], nodes, s.match_half_size).reshape(by, bx)
                          for z in task.own]) if task.own else np.zeros((0, by, bx))
-    for a, b in task.links:
-        res = match_blocks(images[a], images[b], nodes, s.match_half_size, s.match_max_shift,
-                           fine_sigma=s.match_blur / g.scale, subpixel=task.subpixel)
+    plan = match_plan(s.match_half_size, s.match_max_shift, fine_sigma=s.match_blur / g.scale)
+    xy = np.rint(nodes).astype(int)
+    spectra = {}
+    links = list(task.links)
+    for i, (a, b) in enumerate(links):
+        needed = {z for link in links[i:] for z in link}
+        for z in [z for z in spectra if z not in needed]:
+            del spectra[z]
+        for z in (a, b):
+            if z not in spectra:
+                spectra[z] = block_spectra(images[z], xy, plan)
+        res = match_spectra(spectra[a], spectra[b], images[b], plan, task.subpixel)
         sh = res.shifts.reshape(by, bx, 2) * g.scale
         conf = res.confidence.reshape(by, bx)
         ok = filter_vectors(sh, res.ncc.reshape(by, bx), s.min_block_ncc, s.max_neighbour_deviation)
@@ -192,11 +205,16 @@ def residual_job(task: RegionTask) -> dict:
     # statistics only (the stored residual of each section to the next): the one-pass estimate, whose
     # small pull toward zero (0.06-0.1 px RMS on camera translations, at 2 px shifts) does not matter here
     for link, sh, _, _, _ in _match_links(replace(task, own=(), subpixel=False)):
-        mag = np.hypot(sh[..., 0], sh[..., 1])
-        mag = mag[np.isfinite(mag)]
-        hist = np.bincount(np.minimum((mag / _BIN).astype(int), _NBINS - 1), minlength=_NBINS)
-        out[link] = (hist, float((mag ** 2).sum()), float(mag.max()) if mag.size else 0.0)
+        out[link] = residual_histogram(sh)
     return out
+
+
+def residual_histogram(vectors: np.ndarray) -> tuple[np.ndarray, float, float]:
+    """Return ``(histogram, sum of squares, max)`` of the lengths of residual vectors ``(..., 2)`` (NaN = none)."""
+    mag = np.hypot(vectors[..., 0], vectors[..., 1])
+    mag = mag[np.isfinite(mag)]
+    hist = np.bincount(np.minimum((mag / _BIN).astype(int), _NBINS - 1), minlength=_NBINS)
+    return hist, float((mag ** 2).sum()), float(mag.max()) if mag.size else 0.0
 
 
 def residual_stats(hist: np.ndarray, sumsq: float, largest: float) -> dict:

@@ -242,7 +242,8 @@ class _Plan:
 
 
 def _elastic(source, sections, affines, settings, scratch, mapper, tick):
-    """Return the grid, every section's field, the first round's match counts and low-contrast shares.
+    """Return the grid, the plan, every section's field, the first round's match counts and low-contrast
+    shares, and the last round's residual histograms of each section to the next present one.
 
     Each round renders the sections through the current fields, region by
     region, measures what is left by block matching, and solves for an
@@ -279,19 +280,27 @@ def _elastic(source, sections, affines, settings, scratch, mapper, tick):
             share = {z: low[z][0] / max(1, low[z][1]) for z in sections}
         fields = plan.add_steps(tag, fields)
         plan.clean(tag)
-    return grid, plan, fields, found, share
+    return grid, plan, fields, found, share, _merged([r["residual"] for r in solved])
 
 
-def _final_residuals(plan, aligns, mapper) -> dict:
-    """Return ``{(a, b): stats}`` of the block matches left between each section and the next present one."""
-    tasks, _ = plan.region_tasks(aligns, "final", 1, consecutive=True)
-    tasks = [replace(t, out="") for t in tasks]
+def _merged(parts) -> dict:
+    """Return ``{(a, b): stats}`` of per-region residual histograms ``{(a, b): (hist, sumsq, max)}``."""
     hist = {}
-    for res in mapper(residual_job, tasks):
+    for res in parts:
         for key, (h, sq, mx) in res.items():
             h0, sq0, mx0 = hist.get(key, (0, 0.0, 0.0))
             hist[key] = (h0 + h, sq0 + sq, max(mx0, mx))
     return {key: residual_stats(*v) for key, v in hist.items()}
+
+
+def _final_residuals(plan, aligns, mapper) -> dict:
+    """Return ``{(a, b): stats}`` of the block matches left between each section and the next present one.
+
+    Renders and matches again; used when no elastic round ran (an elastic
+    round's solve gives them from its own matches, see :func:`_elastic`).
+    """
+    tasks, _ = plan.region_tasks(aligns, "final", 1, consecutive=True)
+    return _merged(mapper(residual_job, [replace(t, out="") for t in tasks]))
 
 
 def _flags(sections, facts, solved, found, share, settings) -> dict[int, list[str]]:
@@ -374,10 +383,10 @@ def align_sections(source, settings: AlignSettings, *, mapper=map, progress=None
     scratch.mkdir(parents=True, exist_ok=True)
     try:
         facts, pairs, solved = _coarse(source, sections, settings, scratch, mapper, tick)
-        fields, found, grid, share = {}, {}, None, {}
+        fields, found, grid, share, final = {}, {}, None, {}, None
         if settings.elastic and len(sections) >= 3:
-            grid, plan, fields, found, share = _elastic(source, sections, solved.affines, settings, scratch,
-                                                        mapper, tick)
+            grid, plan, fields, found, share, final = _elastic(source, sections, solved.affines, settings,
+                                                               scratch, mapper, tick)
         else:
             grid = _grid(source, solved.affines, settings)
             plan = _Plan(source, grid, sections, settings, scratch)
@@ -392,7 +401,8 @@ def align_sections(source, settings: AlignSettings, *, mapper=map, progress=None
                 stats["elastic"] = disp.magnitude_stats()
                 stats["elastic"]["low_contrast_fraction"] = share[z]
             aligns[z] = SectionAlignment(z, solved.affines[z], disp, flags[z], stats)
-        final = _final_residuals(plan, aligns, mapper)
+        if final is None:
+            final = _final_residuals(plan, aligns, mapper)
         tick(len(sections) - 1)
         for (a, b), st in final.items():
             aligns[a].stats["residual_next"] = {"section": b, **st}

@@ -127,3 +127,31 @@ def test_appended_sections_leave_the_stored_measurements_of_the_others_valid(fir
     # ... while a canvas whose origin moved does invalidate them (its pixels moved)
     folder.store.save_canvas(dataclasses.replace(canvas, origin_x=canvas.origin_x + 1))
     assert [section_fingerprint(folder, s, SETTINGS) for s in SECTIONS] != before[0]
+
+
+def test_a_re_report_redraws_only_the_figures_that_show_what_changed(first, tmp_path):
+    # Figures are kept with a key of what they show (qc/figures.py). Ground truth: which figure reads
+    # which plane is known from the planted build (the worst section is z 2, drawn with z 1 and 3; the
+    # re-slices cross every plane; the per-plane error curve and the tile maps read no pixels).
+    import shutil
+
+    from stackbuild.qc.report import run_report
+
+    root = tmp_path / "build"
+    shutil.copytree(first[0], root, symlinks=True)
+    run_report(root, SETTINGS)
+    qc = root / "qc"
+    names = ("worst_section", "tiles", "error_z", "reslice", "displacement")
+    stamp = {n: (qc / f"{n}.png").stat().st_mtime_ns for n in names}
+    thumbs = (qc / "measured" / "figures" / "thumbnails.json").read_text()
+    run_report(root, SETTINGS)  # nothing changed: every figure and thumbnail kept as it was
+    assert {n: (qc / f"{n}.png").stat().st_mtime_ns for n in names} == stamp
+    assert (qc / "measured" / "figures" / "thumbnails.json").read_text() == thumbs
+    _stamp(root, {z: (f"plane{z}" if z != 4 else "plane4-new") for z in range(len(SECTIONS))})
+    run_report(root, SETTINGS)  # plane 4 re-rendered (same pixels): what shows it is drawn again
+    after = {n: (qc / f"{n}.png").stat().st_mtime_ns for n in names}
+    assert after["reslice"] != stamp["reslice"]
+    assert {n: after[n] for n in ("worst_section", "tiles", "error_z", "displacement")} == \
+        {n: stamp[n] for n in ("worst_section", "tiles", "error_z", "displacement")}
+    run_report(root, SETTINGS, reuse=False)  # measuring everything again draws everything again
+    assert all((qc / f"{n}.png").stat().st_mtime_ns != after[n] for n in names)

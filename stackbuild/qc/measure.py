@@ -9,7 +9,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from itertools import combinations
-from pathlib import Path
 
 import numpy as np
 
@@ -36,6 +35,7 @@ class Measurements:
     """What the driver keeps of a build's measurements: per-section counts, the probe's per-plane and per-pair sums, notes."""
 
     seams: dict[int, int] = field(default_factory=dict)  # section -> tile pairs measured
+    section_fps: dict[int, str] = field(default_factory=dict)  # section -> fingerprint of its stored measurement
     probe: object = None  # stackbuild.qc.probe.ProbeResult once the probe ran
     build: str = ""
     sections: list[int] = field(default_factory=list)  # sections whose rows are stored (see metrics.stored_rows)

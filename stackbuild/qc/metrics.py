@@ -393,6 +393,7 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
     for k, sm in enumerate(run(seam_job, [SectionJob(str(build_dir), s, settings, grid, reuse) for s in todo])):
         sums[sm["section"]] = sm
         meas.seams[sm["section"]] = sm["pair_rows"]
+        meas.section_fps[sm["section"]] = sm.get("fingerprint")
         meas.reused["sections"] += bool(sm.get("reused"))
         if progress:
             progress(k + 1, len(todo))

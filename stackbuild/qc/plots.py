@@ -18,23 +18,11 @@ from matplotlib.collections import LineCollection, PatchCollection
 from matplotlib.figure import Figure
 from matplotlib.patches import Circle, Rectangle
 
+from .thumbnails import NO_DATA, nice_length, scale_text, thumbnail_png  # noqa: F401 (re-exported)
+
 # Our palette: a sequential map for magnitudes and a few accents.
 SEQ = "cividis"
 INK, GOOD, BAD, WARN, LOST = "#22313f", "#2a9d8f", "#c8553d", "#e9a23b", "#b8b8b8"
-#: cells without data: a hatched pale magenta, a colour the sequential map never takes
-NO_DATA = "#f4c6e8"
-
-
-def nice_length(span_nm: float) -> float:
-    """Return a round length (1, 2 or 5 times a power of ten, nm) of about a fifth of ``span_nm``."""
-    target = max(span_nm / 5.0, 1e-9)
-    base = 10 ** np.floor(np.log10(target))
-    return float(max((m * base for m in (1, 2, 5) if m * base <= target), default=base))
-
-
-def scale_text(nm: float) -> str:
-    """Return ``nm`` as text in nm or um."""
-    return f"{nm / 1000:g} \u00b5m" if nm >= 1000 else f"{nm:g} nm"
 
 
 def scale_bar(ax, nm_per_unit: float, extent_units: float, *, colour: str = "white") -> float:
@@ -377,30 +365,3 @@ def neighbour_panels(windows: list[tuple[int, np.ndarray]], centre: tuple[float,
     width = max(40, int(fig.get_figwidth() * 12))  # about 12 characters per inch at 10 pt
     fig.suptitle(textwrap.fill(text, width), color=INK, fontsize=10)
     return fig
-
-
-def thumbnail_png(plane: np.ndarray, nm_per_px: float, bar_nm: float, height: int = 56) -> bytes:
-    """Return a small grey PNG of a plane with a white scale bar of ``bar_nm`` burned in (no-data pixels pink)."""
-    import io
-
-    import cv2
-
-    img = np.asarray(plane, np.float32)
-    if img.size == 0:
-        img = np.zeros((height, height), np.float32)
-    scale = height / img.shape[0]
-    w = max(8, int(round(img.shape[1] * scale)))
-    small = cv2.resize(img, (w, height), interpolation=cv2.INTER_AREA)
-    empty = cv2.resize((img == 0).astype(np.float32), (w, height), interpolation=cv2.INTER_AREA) > 0.5
-    data = small[~empty]
-    lo, hi = (np.percentile(data, [1, 99]) if data.size else (0.0, 1.0))
-    g = np.clip((small - lo) / max(hi - lo, 1e-6) * 255, 0, 255).astype(np.uint8)
-    rgb = np.dstack([g, g, g])
-    rgb[empty] = (244, 198, 232)
-    px = bar_nm / (nm_per_px / scale)
-    x0, y0 = 3, height - 6
-    x1 = int(min(w - 2, x0 + max(2, round(px))))
-    rgb[y0 - 1:y0 + 3, x0 - 1:x1 + 1] = (34, 49, 63)
-    rgb[y0:y0 + 2, x0:x1] = (255, 255, 255)
-    ok, buf = cv2.imencode(".png", rgb[..., ::-1])
-    return buf.tobytes() if ok else b""

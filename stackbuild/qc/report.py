@@ -13,169 +13,16 @@ import html
 import json
 from pathlib import Path
 
-import numpy as np
-
 from ..errors import InputError
 from ..folder import BuildFolder
 from ..transforms.store import atomic_write_text
-from . import plots
+from .figures import FigureStore, draw_all, thumbnails
 from .glossary import FLAGS, TOTALS, flag_meaning
 from .metrics import collect, write_metrics
-from .planes import open_planes, reslice_planes, window
 from .settings import ReportSettings
 from .bars import Verdict, _thresholds, judge, recheck, stored_metrics_stale  # noqa: F401 (re-exported)
 from .thresholds import Threshold, parse_fail_on_list
-from .zchain import section_error
-
-
-def _figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> list[tuple[str, Path]]:
-    """Draw every figure into ``DIR/qc``; return ``(caption, path)`` pairs (the failing ones first)."""
-    qc, store, out = folder.qc_dir, folder.store, []
-    px = doc["volume"]["pixel_size_nm"]
-    out += _failing_figures(folder, doc, meas, settings)
-    out.append(("Estimated alignment error per plane, with its uncertainty (1 sigma)",
-                plots.save(plots.error_vs_z(doc["sections"], settings.align_max), qc / "error_z.png")))
-    grid, zs = _region_grid(meas, doc)
-    if grid is not None:
-        out.append(("Estimated alignment error by region and plane",
-                    plots.save(plots.region_map(grid, zs, settings.align_max), qc / "error_regions.png")))
-    el = [r for r in doc["sections"] if r["elastic"]["max"] is not None]
-    pick = max(el, key=lambda r: r["elastic"]["max"]) if el else None
-    if settings.field_section >= 0:
-        pick = next((r for r in doc["sections"] if r["section"] == settings.field_section), pick)
-    if pick is not None:
-        al = store.load_alignment(pick["section"])
-        canvas = store.load_canvas()
-        org = (canvas.origin_x, canvas.origin_y) if canvas else (0.0, 0.0)
-        fig = plots.displacement_field(pick["section"], al.displacement if al else None, org, px)
-        out.append((f"Elastic displacement of section {pick['section']}", plots.save(fig, qc / "displacement.png")))
-    src = open_planes(folder.root, max_px=settings.reslice_px)
-    worst = doc["worst"]["section_align"]
-    at = worst["align_error_at"] if worst else None
-    if src is not None:
-        vol = doc["volume"]
-        h, w = src.data.shape[-2] // src.bin * src.factor, src.data.shape[-1] // src.bin * src.factor
-        x, y = (at["x_px"], at["y_px"]) if at else (w / 2, h / 2)
-        xz, yz = reslice_planes(src, x, y)
-        aspect = vol["section_thickness_nm"] / vol["pixel_size_nm"]
-        out.append(("Orthogonal re-slices through the worst spot of the worst section",
-                    plots.save(plots.reslice(xz, yz, aspect, (x, y), src.factor, px), qc / "reslice.png")))
-    panels = _channel_panels(folder, doc)
-    if panels:
-        nm = {c.channel: c.pixel_size for c in folder.channel_manifest()}
-        out.append(("Marker channels over the EM, as registered",
-                    plots.save(plots.channel_overlays(panels, nm), qc / "channels.png")))
-    if doc.get("landmarks"):
-        marker_px = {c.channel: c.pixel_size / px for c in folder.channel_manifest()}
-        out.append(("Landmark residuals of the marker registrations (marker spot as registered minus the EM spot)",
-                    plots.save(plots.landmark_residuals(doc["landmarks"], marker_px), qc / "landmarks.png")))
-    return out
-
-
-#: the region figure shows at most this many columns (regions beyond are pooled, in order)
-REGION_COLUMNS = 64
-
-
-def _region_grid(meas, doc) -> tuple[np.ndarray | None, list[int]]:
-    """Return the planes x regions grid of estimated error (NaN where unmeasured) and the plane numbers.
-
-    Read from the stored runs one at a time (:func:`stackbuild.qc.metrics._stored_runs`); more
-    than :data:`REGION_COLUMNS` regions are pooled into that many columns (their sums added), so
-    the grid stays planes x 64 whatever the section's size.
-    """
-    from .metrics import _stored_runs
-
-    depth = doc["volume"]["depth"] or 0
-    if meas.probe is None or not meas.probe.boxes or not depth:
-        return None, []
-    order = sorted(meas.probe.boxes)
-    ncol = min(len(order), REGION_COLUMNS)
-    cols = {r: j * ncol // len(order) for j, r in enumerate(order)}
-    sums = np.zeros((3, depth, ncol))
-    for run in _stored_runs(meas):
-        for row in run.get("regions", []):
-            if row["region"] in cols and 0 <= row["z"] < depth:
-                sums[:, row["z"], cols[row["region"]]] += (row["n"], row["sum_sq"], row["sum_noise"])
-    grid = np.full((depth, ncol), np.nan)
-    for z, j in zip(*np.nonzero(sums[0])):
-        grid[z, j] = section_error(*sums[:, z, j])[0]
-    if not np.isfinite(grid).any():
-        return None, []
-    return grid, list(range(depth))
-
-
-def _failing_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettings) -> list[tuple[str, Path]]:
-    """Return the figures of the section and the tile pair that fail (or come closest to failing) each bar."""
-    out, qc = [], folder.qc_dir
-    px = doc["volume"]["pixel_size_nm"]
-    worst = doc["worst"]["section_align"]
-    if worst is not None and worst["align_error_at"] and meas.source is not None:
-        at, z = worst["align_error_at"], worst["z"]
-        lost = set(doc["volume"]["lost_sections"])
-        first = doc["volume"]["first_section"] or 0
-        present = [k for k in range(meas.source.depth) if k + first not in lost]
-        i = present.index(z) if z in present else None
-        picks = [present[k] for k in (i - 1, i, i + 1) if i is not None and 0 <= k < len(present)]
-        half = int(max(64, 3 * settings.probe_half_size) / meas.source.factor)
-        wins = [(k, window(meas.source, k, at["x_px"], at["y_px"], half)) for k in picks]
-        fig = plots.neighbour_panels(wins, (at["x_px"], at["y_px"]), px, meas.source.factor,
-                                     f"Section {worst['section']} (z {z}) between its neighbours, at its largest "
-                                     f"estimated error ({worst['align_error_max_px']:.2f} px)")
-        out.append((f"The worst-aligned section, {worst['section']}: estimated error "
-                    f"{worst['align_error_px']:.2f} px; its largest block {worst['align_error_max_px']:.2f} px",
-                    plots.save(fig, qc / "worst_section.png")))
-    ranked = sorted((r for r in doc["sections"] if r["section"] in meas.seams and r["stitch"]["rms"] is not None),
-                    key=lambda r: -r["stitch"]["rms"])[:min(settings.worst, 3)]
-    if ranked:
-        secs = [r["section"] for r in ranked]
-        from .sections import stored_rows
-
-        stitches = {s: folder.store.load_stitch(s) for s in secs}  # the few sections drawn, not all
-        rows = {k: [r for s in secs for r in stored_rows(folder.root, s, k)] for k in ("tiles", "pairs")}
-        fig = plots.tile_maps(stitches, rows["tiles"], rows["pairs"], secs, px)
-        out.append(("Tile maps of the sections with the worst seams (labels = tile names)",
-                    plots.save(fig, qc / "tiles.png")))
-    return out
-
-
-def _channel_panels(folder: BuildFolder, doc: dict, size: int = 384) -> list:
-    """Return ``(channel, section, em, marker)`` crops for each channel's best-registered section.
-
-    Both come from the written volume: the marker's level 0, and the EM on the same grid
-    (the EM level of the marker's pixel size, reduced further from the smallest written
-    level when the EM pyramid stops above it).
-    """
-    root = folder.channels_path
-    if not root.is_dir() or not doc["channels"]:
-        return []
-    import zarr
-
-    from ..render.lazy import open_volume  # only with channels: it brings in dask
-    from ..render.reduce import reduce2x2
-
-    levels = [k for k in range(32) if (folder.pyramid_path() / str(k) / "zarr.json").exists()]
-    em0 = open_volume(folder.root, 0, lazy=False).scale_nm[-1]
-    panels = []
-    for name in sorted({c["channel"] for c in doc["channels"]}):
-        rows = [c for c in doc["channels"] if c["channel"] == name and c["registered"] and c["at"]]
-        if not (root / name / "zarr.json").exists() or not rows or not levels:
-            continue
-        best = max(rows, key=lambda c: c["measure_after"] or 0)
-        marker = open_volume(folder.root, 0, lazy=False, channel=name)
-        level = int(round(np.log2(marker.scale_nm[-1] / em0)))
-        have = min(level, levels[-1])
-        z, f, g = best["at"]["z"], 2 ** level, 2 ** (level - have)
-        h, w = marker.shape[1:]
-        cx, cy = int(best["at"]["x_px"] / f), int(best["at"]["y_px"] / f)
-        y0, x0 = max(0, min(cy - size // 2, h - size)), max(0, min(cx - size // 2, w - size))
-        em = np.asarray(zarr.open_array(str(folder.pyramid_path() / str(have)), mode="r")[
-            z, y0 * g:(y0 + size) * g, x0 * g:(x0 + size) * g])
-        for _ in range(level - have):
-            em = reduce2x2(em, "mean")
-        mk = np.asarray(marker.data[z, y0:y0 + size, x0:x0 + size])
-        hh, ww = min(em.shape[0], mk.shape[0]), min(em.shape[1], mk.shape[1])
-        panels.append((name, best["section"], em[:hh, :ww], mk[:hh, :ww]))
-    return panels
+from .thumbnails import scale_text
 
 
 _CSS = """
@@ -337,7 +184,7 @@ def _strip(doc: dict, thumbs: dict[int, str], bar_nm: float | None, settings: Re
         stitch = "-" if r["stitch"]["rms"] is None else f"{r['stitch']['rms']:.2f}"
         out.append(f'<tr{" class=bad" if bad else ""}><td>{r["z"]}</td><td>{r["section"]}</td><td>{pic}</td>'
                    f"<td class=t>{err}</td><td>{stitch}</td><td class=t>{flags}</td></tr>")
-    scale = f" (white bar = {plots.scale_text(bar_nm)})" if bar_nm else ""
+    scale = f" (white bar = {scale_text(bar_nm)})" if bar_nm else ""
     return ("<h2>The stack, plane by plane</h2>"
             f'<p class="small">One row per plane in z order; shaded rows fail a bar or are lost. Thumbnail{scale}; '
             "estimated alignment error with its uncertainty (bar length to scale, red over the align_max bar "
@@ -479,21 +326,6 @@ def provenance(folder: BuildFolder, settings: ReportSettings, doc: dict) -> dict
             "measured_on": None if src is None else f"{src['origin']} level {src['level']}"}
 
 
-def _thumbnails(folder: BuildFolder, doc: dict, height: int = 56) -> tuple[dict[int, str], float | None]:
-    """Return ``{z: data URI}`` of a small PNG per plane (read from a coarse level) and the scale bar length (nm)."""
-    src = open_planes(folder.root, max_px=4 * height)
-    if src is None:
-        return {}, None
-    px = doc["volume"]["pixel_size_nm"] * src.factor
-    w = src.data.shape[-1] // src.bin
-    bar = plots.nice_length(w * px)
-    out = {}
-    for z in range(src.depth):
-        png = plots.thumbnail_png(src.plane(z), px, bar, height)
-        out[z] = "data:image/png;base64," + base64.b64encode(png).decode("ascii")
-    return out, bar
-
-
 def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None = None,
                progress=None, mapper=None, reuse: bool = True) -> Verdict:
     """Measure a build, write ``DIR/qc`` (metrics.json, CSV tables, PNG figures, report.html).
@@ -536,8 +368,8 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     doc["provenance"] = provenance(folder, settings, doc)
     doc["volume"]["assumed"] = folder.load_state().get("assumed_scale") or {}  # scale nobody gave (run/start.py)
     doc["warnings"] = warnings_of(doc)
-    figures = _figures(folder, doc, meas, settings)
-    thumbs, bar_nm = _thumbnails(folder, doc)
+    figures = draw_all(folder, doc, meas, settings, FigureStore(folder, reuse))
+    thumbs, bar_nm = thumbnails(folder, doc, reuse)
     paths = write_metrics(doc, folder.qc_dir, meas) + [p for _, p in figures]
     page = folder.qc_dir / "report.html"
     atomic_write_text(page, render_html(doc, rows, passed, figures, settings, thumbs, bar_nm))

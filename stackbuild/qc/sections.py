@@ -216,7 +216,7 @@ def seam_job(job: SectionJob) -> dict:
     path = section_file(job.build, job.section)
     old = stored_measurement(path) if job.reuse else None
     if old is not None and old.get("fingerprint") == fp:
-        return {**old["summary"], "reused": True}
+        return {**old["summary"], "reused": True, "fingerprint": fp}
     stitch = store.load_stitch(job.section)
     align = store.load_alignment(job.section)
     loc = Locator(canvas, *physical_scale(folder, canvas))
@@ -226,7 +226,7 @@ def seam_job(job: SectionJob) -> dict:
         tiles, pairs, seam = [], [], summarize([]) | {"at": None}
     summary = jsonable(_summary(job.section, stitch, align, tiles, pairs, seam, loc, job.grid))
     write_measurement(path, {"fingerprint": fp, "summary": summary, "tiles": jsonable(tiles), "pairs": jsonable(pairs)})
-    return {**summary, "reused": False}
+    return {**summary, "reused": False, "fingerprint": fp}
 
 
 def stored_rows(build, section: int, kind: str) -> list[dict]:

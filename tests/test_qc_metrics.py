@@ -314,3 +314,31 @@ def test_seams_read_each_tile_once_and_measure_what_whole_tiles_give(planted, mo
                             spacing=spacing, min_ncc=s.min_block_ncc, smooth=s.seam_smooth)
         np.testing.assert_array_equal(sb.blocks.shifts, ref.shifts)
         np.testing.assert_array_equal(sb.blocks.points, ref.points)
+
+
+def test_seams_come_from_the_stitchers_offsets_checked_against_the_raw_tiles(planted):
+    # Reference: the same seams re-measured from the raw tiles at the final placements (measure_seams, pinned
+    # above against seam_residual on whole tiles). Ground truth of the planted build: every recorded pair
+    # offset is the true tile step, so a placement that follows it has no misfit.
+    import dataclasses
+
+    from stackbuild.qc import measure
+    from stackbuild.transforms import TransformStore
+
+    root, _, _ = planted
+    st = TransformStore(root / "transforms").load_stitch(4)
+    s = ReportSettings()
+    raw = {(sb.a, sb.b): sb for sb in measure.measure_seams(st, s)}
+    got = measure.seams_of(st, s)
+    from_stitcher = [sb for sb in got if sb.source == "stitcher"]
+    assert len(from_stitcher) >= len(got) - measure.SEAM_CHECKS - 1  # the rest read no tile
+    for sb in from_stitcher:
+        ref = np.median(raw[(sb.a, sb.b)].blocks.shifts, axis=0)
+        assert np.hypot(*(sb.blocks.shifts[0] - ref)) < measure.SEAM_CHECK_TOLERANCE
+    # a wrong recorded offset (2 px) is caught: that section's seams are all measured from the raw tiles
+    bad = next(p for p in st.pairs if p.accepted)
+    wrong = dataclasses.replace(st, pairs=[dataclasses.replace(p, dx=p.dx + 2.0) if p is bad else p for p in st.pairs])
+    got = measure.seams_of(wrong, s)
+    assert all(sb.source == "tiles" for sb in got)
+    sb = next(sb for sb in got if (sb.a, sb.b) == (bad.a, bad.b))
+    assert np.hypot(*np.median(sb.blocks.shifts, axis=0)) < 0.5

@@ -1,8 +1,10 @@
-"""Independent measurements of the output: seam residuals and section-to-section residuals.
+"""Measurements of the output: seam residuals and section-to-section residuals.
 
-Nothing here trusts the numbers the stitcher or the aligner stored: seams are
-re-measured from the raw tiles at their final placements, and alignment is
-estimated from block shifts between nearby planes of the rendered volume
+Seams: the final placement of each tile pair against the offset the stitcher measured for it
+(no tile read), checked against the raw tiles on a few pairs per section and on every pair that
+matters to the verdict; a section whose stitcher offsets disagree with the raw tiles is
+re-measured from the tiles whole (:func:`seams_of`). Alignment is estimated independently of
+the aligner, from block shifts between nearby planes of the rendered volume
 (:mod:`stackbuild.qc.probe`).
 """
 from __future__ import annotations
@@ -22,12 +24,72 @@ from .settings import ReportSettings
 
 @dataclass
 class SeamBlocks:
-    """Re-measured residuals of one tile pair (points in section pixels)."""
+    """Residuals of one tile pair (points in section pixels), re-measured from the raw tiles or from the stitcher's pair.
+
+    ``source`` is ``"tiles"`` (block matches over the overlap at the final placements) or
+    ``"stitcher"`` (one point, the overlap's centre: the final placement against the offset the
+    stitcher measured for the pair, see :func:`seams_of`).
+    """
 
     a: str
     b: str
     blocks: BlockMatches
     error: str = ""
+    source: str = "tiles"
+
+
+#: pairs per section re-measured from the raw tiles to check the stitcher's pair offsets (spread over the section)
+SEAM_CHECKS = 4
+#: a checked pair whose stitcher-derived misfit differs from its re-measured one by more than this (px) sends the
+#: whole section to the raw tiles (rule of thumb: a few times the re-measure's own spread on the phantoms)
+SEAM_CHECK_TOLERANCE = 0.5
+
+
+def seams_of(stitch: SectionStitch, settings: ReportSettings) -> list[SeamBlocks]:
+    """Return the residual of every tile pair of one section, reading raw tiles only where needed.
+
+    An accepted pair whose offset the stitcher measured (phase correlation of the raw overlap,
+    ``PairMatch.dx, dy``) has the misfit ``(b - a)`` of the final placement minus that offset;
+    that is what re-measuring the overlap at the final placement gives when the stitcher's
+    offset is right, without reading a tile. Re-measured from the raw tiles
+    (:func:`measure_seams`): every pair without such an offset (rejected, unrecorded), every pair
+    whose misfit exceeds half the ``stitch_rms`` bar (the pairs that decide the verdict and the
+    worst rows), and :data:`SEAM_CHECKS` pairs spread over the section as an independent check of
+    the stitcher's offsets. When a checked or re-measured pair disagrees with its stitcher-derived
+    misfit by more than :data:`SEAM_CHECK_TOLERANCE`, the stitcher's offsets of that section are not
+    trusted and every pair is re-measured from the tiles.
+
+    On 4 sections of 7 x 7 tiles of 1024 px this read 12 tile pairs' overlaps per section instead of
+    156 (bench_qc.py --memory).
+    """
+    r, s = settings.seam_half_size, settings.seam_max_shift
+    pairs = _pair_order(stitch, _seam_pairs(stitch, 2 * (r + s) + 1))
+    recorded = {(p.a, p.b): p for p in stitch.pairs}
+    derived: dict[int, SeamBlocks] = {}
+    for k, (a, b) in enumerate(pairs):
+        p = recorded.get((a, b))
+        if p is None or not p.accepted or not (np.isfinite(p.dx) and np.isfinite(p.dy)):
+            continue
+        ta, tb = stitch.tile(a), stitch.tile(b)
+        box = overlap_box((ta.x, ta.y), (ta.height, ta.width), (tb.x, tb.y), (tb.height, tb.width))
+        if box is None:
+            continue
+        vec = np.array([[tb.x - ta.x - p.dx, tb.y - ta.y - p.dy]])
+        centre = np.array([[(box[0] + box[2] - 1) / 2, (box[1] + box[3] - 1) / 2]])
+        derived[k] = SeamBlocks(a, b, BlockMatches(centre, vec, np.array([p.ncc], float)), source="stitcher")
+    over = {k for k, sb in derived.items() if float(np.hypot(*sb.blocks.shifts[0])) > settings.stitch_rms / 2}
+    spread = set(np.unique(np.linspace(0, len(pairs) - 1, SEAM_CHECKS).round().astype(int)).tolist()) if pairs else set()
+    todo = sorted((set(range(len(pairs))) - set(derived)) | over | (spread & set(derived)))
+    raw = dict(zip(todo, measure_seams(stitch, settings, pairs=[pairs[k] for k in todo])))
+    trusted = True
+    for k, sb in raw.items():
+        if k in derived and len(sb.blocks.ncc):
+            if np.hypot(*(np.median(sb.blocks.shifts, axis=0) - derived[k].blocks.shifts[0])) > SEAM_CHECK_TOLERANCE:
+                trusted = False
+    if not trusted:
+        rest = [k for k in range(len(pairs)) if k not in raw]
+        raw.update(zip(rest, measure_seams(stitch, settings, pairs=[pairs[k] for k in rest])))
+    return [raw.get(k) or derived[k] for k in range(len(pairs))]
 
 
 @dataclass
@@ -76,8 +138,9 @@ def _pair_order(stitch: SectionStitch, pairs: list[tuple[str, str]]) -> list[tup
     return sorted(pairs, key=lambda ab: (pos.get(ab[0], (0, 0)), pos.get(ab[1], (0, 0))))
 
 
-def measure_seams(stitch: SectionStitch, settings: ReportSettings, *, blocks_per_seam: int = 16) -> list[SeamBlocks]:
-    """Return re-measured residuals of every tile pair of one section, at the final placements.
+def measure_seams(stitch: SectionStitch, settings: ReportSettings, *, blocks_per_seam: int = 16,
+                  pairs: list[tuple[str, str]] | None = None) -> list[SeamBlocks]:
+    """Return re-measured residuals of every tile pair of one section (or of ``pairs``), at the final placements.
 
     Each tile is read once: what a later pair needs of it (the part over that pair's
     overlap, plus 2 px) is cut out and kept until the pair is measured; pairs are visited
@@ -88,7 +151,8 @@ def measure_seams(stitch: SectionStitch, settings: ReportSettings, *, blocks_per
     normal data, from memory), and cost a third of the 48 used before (bench_qc.py --memory).
     """
     r, s = settings.seam_half_size, settings.seam_max_shift
-    pairs = _pair_order(stitch, _seam_pairs(stitch, 2 * (r + s) + 1))
+    if pairs is None:
+        pairs = _pair_order(stitch, _seam_pairs(stitch, 2 * (r + s) + 1))
     pending: dict[str, list[int]] = {}
     for k, (a, b) in enumerate(pairs):
         pending.setdefault(a, []).append(k)

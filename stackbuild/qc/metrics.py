@@ -58,14 +58,16 @@ CSV tables beside it
 column name), ``tiles.csv`` (one per tile: ``section``, ``tile``, ``path``, ``x``,
 ``y``, ``flags``, ``stitch_residual``, ``seam_median``, ``seam_max``, ``seams``,
 ``at``), ``pairs.csv`` (one per tile pair: stitcher's ``dx``, ``dy``, ``ncc``,
-``accepted``, ``reason``; re-measured ``misfit`` and ``residual``), ``regions.csv``
+``accepted``, ``reason``; ``misfit`` and ``residual`` at the final placement, and ``measured_from``:
+``tiles`` when re-measured over the raw overlap, ``stitcher`` when taken from the stitcher's offset
+and checked, see :func:`stackbuild.qc.measure.seams_of`), ``regions.csv``
 (one per probe region), ``blocks.csv`` (a sample of probe blocks: ``z``, ``x_px``,
 ``y_px``, ``error_dx``, ``error_dy``, ``error``),
 ``channels.csv`` and ``landmarks.csv`` when there are any.
 
-Everything is an independent measurement of the output, not a copy of the
-stitcher's or aligner's statistics, which are kept apart (``stitcher_stats``,
-``aligner_stats``).
+The alignment error is an independent measurement of the output; seam misfits are the final
+placements against the stitcher's measured pair offsets, checked against the raw tiles. The
+stitcher's and aligner's own statistics are kept apart (``stitcher_stats``, ``aligner_stats``).
 """
 from __future__ import annotations
 

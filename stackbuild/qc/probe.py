@@ -144,8 +144,41 @@ def _reduced(img: np.ndarray, valid: np.ndarray | None = None) -> np.ndarray:
     return small
 
 
+class PlaneBlocks:
+    """One plane's probe blocks in a window: float32 patches (NaN off data) and their windowed spectra, made once.
+
+    A plane takes part in ``2 x probe_spans`` pairs; its blocks are cut and transformed once and
+    matched against every partner (as :func:`stackbuild.align.blockmatch.match_spectra` allows),
+    instead of once per pair. Each patch reaches :func:`~stackbuild.align.blockmatch.block_reach`
+    around its point, so the matcher's recut at the found shift reads real pixels.
+    """
+
+    def __init__(self, window, points: np.ndarray, plan):
+        from ..align.blockmatch import block_spectra
+
+        r = plan.reach
+        pts = np.asarray(points, int).reshape(-1, 2)
+        self.stack = _cut(window, pts, r)
+        self.rows = np.arange(len(pts))
+        self.spectra = block_spectra(self.stack, np.broadcast_to(np.array([r, r]), (len(pts), 2)), plan, self.rows)
+
+    def subset(self, idx: np.ndarray):
+        """Return the spectra of blocks ``idx`` (same rows of :attr:`stack`)."""
+        from ..align.blockmatch import BlockSpectra
+
+        sp = self.spectra
+        return BlockSpectra(sp.xy[idx], sp.usable[idx], sp.spec[idx], sp.sums[idx])
+
+
+def fine_plan(half: int, search: int, fine_sigma: float, coarse_sigma: float):
+    """Return the matcher's plan of the probe's fine pass (as :func:`stackbuild.align.blockmatch.match_block_pairs` makes it)."""
+    from ..align.blockmatch import match_plan
+
+    return match_plan(half, search, fine_sigma=fine_sigma, coarse_sigma=coarse_sigma, power=POWER)
+
+
 def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, half: int, search: int, reach: int,
-                 fine_sigma: float, coarse_sigma: float, small=None):
+                 fine_sigma: float, coarse_sigma: float, small=None, blocks=None):
     """Return the shift, band-passed NCC and beyond-reach mark of each block between two windows of two planes.
 
     Parameters
@@ -164,6 +197,9 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
         than ``coarse_sigma`` have little say (see ``match_block_pairs``).
     small : tuple of ndarray, optional
         The two windows already reduced by :func:`_reduced` (computed when omitted).
+    blocks : tuple of PlaneBlocks, optional
+        The two planes' blocks at ``points`` (:class:`PlaneBlocks` with :func:`fine_plan`), made
+        once per plane by the caller (made here when omitted).
 
     Returns
     -------
@@ -179,9 +215,12 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
     -----
     Both passes are :func:`stackbuild.align.blockmatch.match_block_pairs` (band-limited phase
     correlation with unbiased sub-pixel refinement; its docstring has the references), called
-    once per pass for all blocks.
+    once per pass for all blocks. Blocks whose first answer is 0 (the usual case in an aligned
+    volume) are matched from the planes' own block spectra (:class:`PlaneBlocks`,
+    :func:`~stackbuild.align.blockmatch.match_spectra`: the same three passes); only blocks the first
+    pass moved are cut again around its answer.
     """
-    from ..align.blockmatch import match_block_pairs
+    from ..align.blockmatch import match_block_pairs, match_spectra
 
     pts = np.asarray(points, int).reshape(-1, 2)
     n = len(pts)
@@ -199,12 +238,24 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
         d = np.where(ok[:, None], res.shifts * COARSE, 0.0)
         beyond = ok & (np.abs(d).max(axis=1) > reach)
         start = np.where(beyond[:, None], 0, np.rint(d)).astype(int)
-    r = half + search + 1
-    res = match_block_pairs(_cut(fixed, pts, r), _cut(moving, pts + start, r), search, half_size=half,
-                            fine_sigma=fine_sigma, coarse_sigma=coarse_sigma, power=POWER)
-    shifts = res.shifts + start
+    shifts = np.full((n, 2), np.nan)
+    ncc = np.full(n, np.nan)
+    plan = fine_plan(half, search, fine_sigma, coarse_sigma)
+    if blocks is None:
+        blocks = (PlaneBlocks(fixed, pts, plan), PlaneBlocks(moving, pts, plan))
+    still = np.flatnonzero(~(start != 0).any(axis=1))
+    if still.size:
+        bf, bm = blocks
+        res = match_spectra(bf.subset(still), bm.subset(still), bm.stack, plan, True, still)
+        shifts[still], ncc[still] = res.shifts, res.ncc
+    moved = np.flatnonzero((start != 0).any(axis=1))
+    if moved.size:
+        r = half + search + 1
+        res = match_block_pairs(_cut(fixed, pts[moved], r), _cut(moving, pts[moved] + start[moved], r), search,
+                                half_size=half, fine_sigma=fine_sigma, coarse_sigma=coarse_sigma, power=POWER)
+        shifts[moved], ncc[moved] = res.shifts + start[moved], res.ncc
     shifts[beyond] = np.nan
-    ncc = np.where(beyond, np.nan, res.ncc)
+    ncc[beyond] = np.nan
     return shifts, ncc, beyond
 
 
@@ -274,21 +325,23 @@ def probe_pair(job: PairJob) -> list[dict]:
     reduce = reach > search
     planes = sorted({z for p in job.pairs for z in p})
     coarse = _coarse_source(job, source) if reduce else None
+    plan = fine_plan(half, search, st.probe_fine_sigma / f, st.probe_coarse_sigma / f)
     for r in np.unique(region):
         sel = np.flatnonzero(region == r)
         box = (*pts[sel].min(axis=0), *(pts[sel].max(axis=0) + 1))
         held: dict[int, tuple] = {}
         for z in planes:
-            held[z] = _window(source, z, box, margin, reduce, coarse)
+            win, small, corner = _window(source, z, box, margin, reduce, coarse)
+            held[z] = (win, small, corner, PlaneBlocks(win, pts[sel] - corner, plan) if win.valid.any() else None)
             for k, (a, b) in enumerate(job.pairs):
                 if b != z or a not in held:
                     continue
-                (fa, sa, corner), (fb, sb, _) = held[a], held[b]
-                if not (fa.valid.any() and fb.valid.any()):
+                (fa, sa, corner, ba), (fb, sb, _, bb) = held[a], held[b]
+                if ba is None or bb is None:
                     continue
                 s_, c_, b_ = match_planes(fa, fb, pts[sel] - corner, half=half, search=search, reach=reach,
                                           fine_sigma=st.probe_fine_sigma / f, coarse_sigma=st.probe_coarse_sigma / f,
-                                          small=(sa, sb) if reduce else None)
+                                          small=(sa, sb) if reduce else None, blocks=(ba, bb))
                 shifts[k, sel], ncc[k, sel], beyond[k, sel] = s_ * f, c_, b_
             for y in [y for y in held if not any(y in p and p[1] > z for p in job.pairs)]:
                 held.pop(y)  # no later pair needs it

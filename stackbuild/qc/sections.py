@@ -1,8 +1,9 @@
 """Per-section measurements as tasks: seams, tile and pair rows, the section's own figures, kept for re-use.
 
-One task measures one section on a worker (:func:`seam_job`): it re-measures the
-section's seams from the raw tiles (at most four tiles held at a time, see
-:func:`stackbuild.qc.measure.measure_seams`), turns them into tile and pair rows, and
+One task measures one section on a worker (:func:`seam_job`): it takes the section's seams
+from the stitcher's pair offsets against the final placements, checked against the raw tiles
+(:func:`stackbuild.qc.measure.seams_of`; a pair re-measured from the tiles holds at most a row of
+overlap strips, :func:`stackbuild.qc.measure.measure_seams`), turns them into tile and pair rows, and
 reads from the section's records what the report copies (flags, the stitcher's and the
 aligner's statistics, the elastic field's size, the straightening grid's positions).
 The rows go to ``DIR/qc/measured/sections/<section>.json``, stamped with the section's
@@ -24,7 +25,7 @@ import numpy as np
 
 from ..folder import BuildFolder
 from .blockmatch import BlockMatches, summarize
-from .measure import measure_seams, section_to_output
+from .measure import seams_of, section_to_output
 from .reuse import section_fingerprint, stored_measurement, write_measurement
 from .settings import ReportSettings
 from .straighten import section_positions
@@ -112,6 +113,7 @@ def stitch_rows(section, stitch, seams, align, loc: Locator):
         if worst is not None:
             todo.append((row["blocks"], "at", worst))
         row["error"] = sb.error
+        row["measured_from"] = sb.source
         pairs.append(row)
     mine: dict[str, list[float]] = {}
     for r in pairs:
@@ -221,7 +223,7 @@ def seam_job(job: SectionJob) -> dict:
     align = store.load_alignment(job.section)
     loc = Locator(canvas, *physical_scale(folder, canvas))
     if stitch is not None:
-        tiles, pairs, seam = stitch_rows(job.section, stitch, measure_seams(stitch, job.settings), align, loc)
+        tiles, pairs, seam = stitch_rows(job.section, stitch, seams_of(stitch, job.settings), align, loc)
     else:
         tiles, pairs, seam = [], [], summarize([]) | {"at": None}
     summary = jsonable(_summary(job.section, stitch, align, tiles, pairs, seam, loc, job.grid))

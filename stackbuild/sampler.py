@@ -71,21 +71,25 @@ def exclusive_boxes(stitch: SectionStitch, alignment: SectionAlignment | None,
     edges (so the feather weight there is positive and the value never mixes with the
     border), and outside every other tile's footprint ``boxes`` (see :func:`tile_footprints`).
     It is conservative: pixels outside it are blended as usual. The rectangle is None when
-    there is none (or with an elastic field, which is not handled here).
+    there is none.
 
     Notes
     -----
     The tile's image in the aligned frame is a parallelogram; the candidate rectangle spans
     the 2nd to 3rd smallest corner coordinates in x and in y, and is kept only if its
     corners map back inside the tile. Each other footprint that meets it is then cut away
-    by whichever of the four sides keeps the larger rectangle.
+    by whichever of the four sides keeps the larger rectangle. With an elastic field a
+    point ``p`` maps to ``A (p + d(p))``, at most ``|A| max |d|`` (spectral norm of the
+    affine's linear part; ``d`` is interpolated bilinearly, so never longer than its
+    longest node vector) from ``A p``: the rectangle keeps that much more distance from
+    the tile's edges, and the footprints already carry the field's reach.
     """
     which = range(len(stitch.tiles)) if which is None else which
-    if alignment is not None and alignment.displacement is not None:
-        return {i: None for i in which}
     fwd = np.eye(2, 3) if alignment is None else alignment.affine.matrix  # aligned -> section
     back = np.linalg.inv(np.vstack([fwd, [0.0, 0.0, 1.0]]))[:2]
     pad = scale + 1.0
+    if alignment is not None and alignment.displacement is not None:
+        pad += float(np.linalg.norm(fwd[:, :2], 2)) * alignment.displacement.magnitude_stats()["max"]
     result = {}
     for i in which:
         t = stitch.tiles[i]
@@ -123,12 +127,17 @@ def _cut_away(r: list, others: np.ndarray):
     return r
 
 
-def _remap(img: np.ndarray, mx: np.ndarray, my: np.ndarray, flag: int) -> np.ndarray:
-    out = np.empty(mx.shape, np.float32)
+def _remap(img: np.ndarray, mx: np.ndarray, my: np.ndarray, flag: int, out: np.ndarray | None = None) -> np.ndarray:
+    """Return ``img`` resampled at ``(mx, my)`` (float32), written into ``out`` (may be a strided view) if given."""
+    if out is None:
+        out = np.empty(mx.shape, np.float32)
     for r0 in range(0, mx.shape[0], _MAX_MAP):
         for c0 in range(0, mx.shape[1], _MAX_MAP):
             sl = np.s_[r0:r0 + _MAX_MAP, c0:c0 + _MAX_MAP]
-            out[sl] = cv2.remap(img, mx[sl], my[sl], flag, borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+            dst = out[sl]
+            got = cv2.remap(img, mx[sl], my[sl], flag, dst=dst, borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+            if got is not dst:  # OpenCV reallocated (it should not): keep the result anyway
+                dst[...] = got
     return out
 
 
@@ -188,9 +197,9 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
     overlaps are feathered. Beyond the outermost pixel centres the value
     repeats the edge pixel while the weight falls to 0 over one pixel, so the
     mosaic's outer edge is not darkened. Where only one tile reaches (see
-    :func:`exclusive_boxes`; affine case, weight not asked for) the blend is the
-    value itself, so it is stored directly and the weight is not resampled there:
-    this saves about half the resampling work. With an elastic
+    :func:`exclusive_boxes`; weight not asked for) the blend is the value itself,
+    so it is stored directly and the weight is not resampled there: this saves about
+    half the resampling work. With an elastic
     field the maps are explicit (``cv2.remap``); with an affine only,
     ``cv2.warpAffine`` computes them (both quantise bilinear weights to
     1/32 pixel).
@@ -216,9 +225,11 @@ def render_region(stitch: SectionStitch, alignment: SectionAlignment | None, x0:
             xs = cx0 + scale * np.arange(c_a, c_b, dtype=np.float64)
             ys = cy0 + scale * np.arange(r_a, r_b, dtype=np.float64)
             sx, sy, ref = section_grid(alignment, xs, ys)
-            for i in hits:
-                _blend_tile(tiles, stitch.tiles[i], boxes[i], sx, sy, ref, (c_a, r_a, cx0, cy0),
-                            scale, _INTERP[order], acc[:, r_a:r_b, c_a:c_b])
+            only = {} if return_weight else exclusive_boxes(stitch, alignment, boxes, scale, hits)
+            parts = [_blend_tile(tiles, stitch.tiles[i], boxes[i], sx, sy, ref, (c_a, r_a, cx0, cy0),
+                                 scale, _INTERP[order], acc[:, r_a:r_b, c_a:c_b], only.get(i)) for i in hits]
+            if not return_weight:
+                return _normalise_parts(acc, [_shifted(part, r_a, c_a) for part in parts], contrast)
         else:
             m = np.eye(2, 3) if alignment is None else alignment.affine.matrix
             # The weight is only needed where tiles overlap, unless the caller wants it.
@@ -425,14 +436,29 @@ def section_grid(alignment: SectionAlignment, xs: np.ndarray, ys: np.ndarray):
     return out[0], out[1], ref
 
 
-def _blend_tile(tiles, t, box, sx, sy, ref, grid, scale, flag, acc) -> None:
-    """Add one tile's value and weight, resampled at section points ``ref + (sx, sy)``, to ``acc`` (a view)."""
+def _shifted(part, dr: int, dc: int):
+    """Return a :func:`_blend_tile` result ``(direct, blended)`` with its rectangles moved by ``dr`` rows, ``dc`` columns."""
+    direct, blended = part
+
+    def move(r):
+        return (r[0] + dr, r[1] + dr, r[2] + dc, r[3] + dc)
+    return (None if direct is None else move(direct)), [move(r) for r in blended]
+
+
+def _blend_tile(tiles, t, box, sx, sy, ref, grid, scale, flag, acc, only=None):
+    """Add one tile's value and weight, resampled at section points ``ref + (sx, sy)``, to ``acc`` (a view).
+
+    ``only`` is the tile's exclusive rectangle (aligned frame, see :func:`exclusive_boxes`) or
+    None; inside it the value is stored as final and the weight is not resampled (as in
+    :func:`_warp_tile`). Returns ``(direct, blended)``, rectangles ``r0, r1, c0, c1`` of ``acc``.
+    """
     c_a, r_a, cx0, cy0 = grid
     n_r, n_c = sx.shape
-    a, b = _index_range(box[0], box[2], cx0 + scale * c_a, scale, n_c)
-    c, d = _index_range(box[1], box[3], cy0 + scale * r_a, scale, n_r)
+    gx0, gy0 = cx0 + scale * c_a, cy0 + scale * r_a
+    a, b = _index_range(box[0], box[2], gx0, scale, n_c)
+    c, d = _index_range(box[1], box[3], gy0, scale, n_r)
     if a >= b or c >= d:
-        return
+        return None, []
     half = (scale - 1) / 2.0
     bx, by = sx[c:d, a:b], sy[c:d, a:b]
     r0 = c0 = 0
@@ -442,11 +468,11 @@ def _blend_tile(tiles, t, box, sx, sy, ref, grid, scale, flag, acc) -> None:
         window = _window((float(by.min()) + oy) / scale + 1, (float(by.max()) + oy) / scale + 1,
                          (float(bx.min()) + ox) / scale + 1, (float(bx.max()) + ox) / scale + 1, t, scale)
         if window is None:
-            return
+            return None, []
         r0, c0 = window[0], window[2]
-        img = tiles(t, scale, window=window)
+        val_img, w_img = tiles(t, scale, window=window)
     else:
-        img = tiles(t, scale)
+        val_img, w_img = tiles(t, scale)
     mx = np.empty((d - c, b - a), np.float32)
     my = np.empty((d - c, b - a), np.float32)
     # + scale before dividing: element [j + 1, k + 1] of the prepared tile is its pixel (k, j).
@@ -455,4 +481,23 @@ def _blend_tile(tiles, t, box, sx, sy, ref, grid, scale, flag, acc) -> None:
     if scale != 1:
         mx /= np.float32(scale)
         my /= np.float32(scale)
-    _accumulate(acc[:, c:d, a:b], *(_remap(src, mx, my, flag) for src in img))
+    e0 = e1 = f0 = f1 = 0
+    if only is not None:
+        e0, e1 = _index_range(only[0], only[2], gx0, scale, n_c)
+        f0, f1 = _index_range(only[1], only[3], gy0, scale, n_r)
+        e0, e1, f0, f1 = max(e0, a) - a, min(e1, b) - a, max(f0, c) - c, min(f1, d) - c
+    direct = None
+    if e0 < e1 and f0 < f1:
+        direct = (c + f0, c + f1, a + e0, a + e1)
+        _remap(val_img, mx[f0:f1, e0:e1], my[f0:f1, e0:e1], flag, out=acc[0, c + f0:c + f1, a + e0:a + e1])
+        strips = [(0, f0, 0, b - a), (f1, d - c, 0, b - a), (f0, f1, 0, e0), (f0, f1, e1, b - a)]
+    else:
+        strips = [(0, d - c, 0, b - a)]
+    blended = []
+    for s0, s1, k0, k1 in strips:
+        if s0 < s1 and k0 < k1:
+            sub = np.s_[s0:s1, k0:k1]
+            _accumulate(acc[:, c + s0:c + s1, a + k0:a + k1], _remap(val_img, mx[sub], my[sub], flag),
+                        _remap(w_img, mx[sub], my[sub], flag))
+            blended.append((c + s0, c + s1, a + k0, a + k1))
+    return direct, blended

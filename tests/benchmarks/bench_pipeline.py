@@ -21,6 +21,7 @@ peak memory of the largest process.
 
     python tests/benchmarks/bench_pipeline.py                      # 3 and 6 sections of 4 x 4 tiles of 1024 px
     python tests/benchmarks/bench_pipeline.py --sizes 5,10 --grid 5 --memory
+    python tests/benchmarks/bench_pipeline.py --sizes 5,10 --grid 5 --keep-data /tmp/bench_stacks  # synthesise once
 """
 from __future__ import annotations
 
@@ -50,9 +51,14 @@ STAGES = ("stitch", "align", "channels", "render", "report")
 
 
 def synth(folder: Path, sections: int, grid: int, tile: int) -> Path:
-    """Write a synthetic stack; return its tile manifest."""
-    return generate(folder, SynthParams(seed=7, sections=sections, grid=(grid, grid), tile_size=tile,
-                                        channels=0, compress=False))
+    """Write a synthetic stack (or reuse one a kept folder already holds); return its tile manifest."""
+    done = folder / ".bench_synth_done"
+    if done.exists():
+        return Path(done.read_text())
+    tiles = generate(folder, SynthParams(seed=7, sections=sections, grid=(grid, grid), tile_size=tile,
+                                         channels=0, compress=False))
+    done.write_text(str(tiles))
+    return tiles
 
 
 def _running_stage(build: Path) -> str:
@@ -147,9 +153,9 @@ def io_floor(tiles: Path, out: Path, threads: int) -> dict:
             "level0_mpx": depth * h * w / 1e6, "codec": codec_name}
 
 
-def one_size(tmp: Path, sections: int, grid: int, tile: int, workers: int) -> dict:
+def one_size(tmp: Path, data: Path, sections: int, grid: int, tile: int, workers: int) -> dict:
     """Build one size and measure its floor."""
-    tiles = synth(tmp / f"data-{sections}-{grid}", sections, grid, tile)
+    tiles = synth(data / f"data-{sections}-{grid}-{tile}", sections, grid, tile)
     out = tmp / f"build-{sections}-{grid}"
     res = run_build(tiles, out, workers)
     res.update(io_floor(tiles, out, workers))
@@ -208,18 +214,21 @@ def main(argv=None) -> None:
     ap.add_argument("--workers", type=int, default=2, help="local worker processes (default 2)")
     ap.add_argument("--memory", action="store_true",
                     help="also compare the largest process's peak at 3 x 3 and 7 x 7 tiles per section")
+    ap.add_argument("--keep-data", type=Path, default=None, metavar="DIR",
+                    help="synthesise the stacks into DIR and reuse them on later runs (default: a temporary folder)")
     args = ap.parse_args(argv)
     n1, n2 = (int(v) for v in args.sizes.split(","))
     with tempfile.TemporaryDirectory(prefix="bench_pipeline_", dir=os.environ.get("TMPDIR")) as tmp:
         tmp = Path(tmp)
-        a = one_size(tmp, n1, args.grid, args.tile, args.workers)
-        b = one_size(tmp, n2, args.grid, args.tile, args.workers)
+        data = args.keep_data or tmp
+        a = one_size(tmp, data, n1, args.grid, args.tile, args.workers)
+        b = one_size(tmp, data, n2, args.grid, args.tile, args.workers)
         print(f"{args.grid} x {args.grid} tiles of {args.tile} px per section, {args.workers} workers, "
               f"{os.cpu_count()} cores")
         report(a, b, args.workers)
         if args.memory:
-            small = run_build(synth(tmp / "m3", 3, 3, 1024), tmp / "mb3", args.workers)
-            big = run_build(synth(tmp / "m7", 3, 7, 1024), tmp / "mb7", args.workers)
+            small = run_build(synth(data / "m3", 3, 3, 1024), tmp / "mb3", args.workers)
+            big = run_build(synth(data / "m7", 3, 7, 1024), tmp / "mb7", args.workers)
             print(f"\nlargest process peak, 3 sections of 3 x 3 vs 7 x 7 tiles of 1024 px: "
                   f"{small['peak_rss'] / 1e6:.0f} MB vs {big['peak_rss'] / 1e6:.0f} MB "
                   f"(ratio {big['peak_rss'] / small['peak_rss']:.2f})")

@@ -95,7 +95,9 @@ def data_mask(plane: np.ndarray) -> np.ndarray:
     Isolated zero pixels inside the tissue are kept (a 5 x 5 morphological
     opening removes them from the empty mask; common practice, no source).
     """
-    empty = (plane == 0).astype(np.uint8)
+    empty = (plane == 0).view(np.uint8)
+    if not empty.any():  # no zero at all (most windows inside the tissue): the opening would keep nothing either
+        return np.ones(plane.shape, bool)
     empty = cv2.morphologyEx(empty, cv2.MORPH_OPEN, np.ones((5, 5), np.uint8))
     return empty == 0
 

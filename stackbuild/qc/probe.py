@@ -103,11 +103,37 @@ def block_grid(source: PlaneSource, settings: ReportSettings) -> tuple[np.ndarra
 
 
 class _Window:
-    """A window of one plane as read (its stored dtype) with its data mask; blocks are cut as float32 with NaN."""
+    """A window of one plane as read (its stored dtype) with its data mask; blocks are cut as float32 with NaN.
 
-    def __init__(self, raw: np.ndarray, valid: np.ndarray | None = None):
+    With ``masked`` (a function of raw pixels giving their data mask, :func:`data_mask`) the mask is
+    made only where blocks are cut, each block's part with 4 px around it: the 5 x 5 opening of
+    :func:`data_mask` reaches 4 px, so this is the window's mask exactly, at a fraction of the
+    pixels (the probe's blocks cover about a seventh of a window).
+    """
+
+    def __init__(self, raw: np.ndarray, valid: np.ndarray | None = None, masked=None):
         self.raw = raw
-        self.valid = np.isfinite(raw) if valid is None else valid
+        self._valid, self._masked = valid, masked
+
+    @property
+    def valid(self) -> np.ndarray:
+        """Return the data mask of the whole window (made on first use)."""
+        if self._valid is None:
+            self._valid = np.isfinite(self.raw) if self._masked is None else self._masked(self.raw)
+        return self._valid
+
+    def any_data(self) -> bool:
+        """Return whether the window holds any data (a non-zero pixel always survives the mask's opening)."""
+        if self._valid is None and self._masked is not None:
+            return bool(self.raw.any())
+        return bool(self.valid.any())
+
+    def _mask(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
+        if self._valid is not None or self._masked is None:
+            return self.valid[y0:y1, x0:x1]
+        h, w = self.raw.shape
+        a0, b0, a1, b1 = max(0, y0 - 4), max(0, x0 - 4), min(h, y1 + 4), min(w, x1 + 4)
+        return self._masked(self.raw[a0:a1, b0:b1])[y0 - a0:y1 - a0, x0 - b0:x1 - b0]
 
     def cut(self, centres: np.ndarray, r: int) -> np.ndarray:
         """Return ``(N, 2r+1, 2r+1)`` blocks around integer ``(x, y)`` centres; NaN outside the window or its data."""
@@ -117,7 +143,7 @@ class _Window:
             x0, y0, x1, y1 = max(0, x - r), max(0, y - r), min(w, x + r + 1), min(h, y + r + 1)
             if x1 > x0 and y1 > y0:
                 dst = out[k, y0 - (y - r):y1 - (y - r), x0 - (x - r):x1 - (x - r)]
-                np.copyto(dst, self.raw[y0:y1, x0:x1], where=self.valid[y0:y1, x0:x1], casting="unsafe")
+                np.copyto(dst, self.raw[y0:y1, x0:x1], where=self._mask(y0, y1, x0, x1), casting="unsafe")
         return out
 
 
@@ -288,16 +314,15 @@ def _window(source: PlaneSource, z: int, box, margin: int, reduce: bool, coarse:
     if coarse is not None:
         wx0, wy0 = wx0 - wx0 % COARSE, wy0 - wy0 % COARSE
     wx1, wy1 = min(w, x1 + margin), min(h, y1 + margin)
-    raw = source.raw_window(z, wy0, wy1, wx0, wx1)
-    valid = data_mask(raw)
+    win = _Window(source.raw_window(z, wy0, wy1, wx0, wx1), masked=data_mask)
     small = None
     if reduce and coarse is not None:
         c = coarse.raw_window(z, wy0 // COARSE, -(-wy1 // COARSE), wx0 // COARSE, -(-wx1 // COARSE))
         small = c.astype(np.float32)
         small[~data_mask(c)] = np.nan
     elif reduce:
-        small = _reduced(raw, valid)
-    return _Window(raw, valid), small, np.array([wx0, wy0])
+        small = _reduced(win.raw, win.valid)
+    return win, small, np.array([wx0, wy0])
 
 
 def probe_pair(job: PairJob) -> list[dict]:
@@ -332,7 +357,7 @@ def probe_pair(job: PairJob) -> list[dict]:
         held: dict[int, tuple] = {}
         for z in planes:
             win, small, corner = _window(source, z, box, margin, reduce, coarse)
-            held[z] = (win, small, corner, PlaneBlocks(win, pts[sel] - corner, plan) if win.valid.any() else None)
+            held[z] = (win, small, corner, PlaneBlocks(win, pts[sel] - corner, plan) if win.any_data() else None)
             for k, (a, b) in enumerate(job.pairs):
                 if b != z or a not in held:
                     continue

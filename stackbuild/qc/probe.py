@@ -203,8 +203,16 @@ def fine_plan(half: int, search: int, fine_sigma: float, coarse_sigma: float):
     return match_plan(half, search, fine_sigma=fine_sigma, coarse_sigma=coarse_sigma, power=POWER)
 
 
+def coarse_plan(half: int, reach: int, fine_sigma: float, coarse_sigma: float):
+    """Return the matcher's plan of the probe's first pass, on ``COARSE``-times reduced blocks (whole-pixel peak)."""
+    from ..align.blockmatch import match_plan
+
+    ch, cs = _coarse_sizes(half, reach)
+    return match_plan(ch, cs, fine_sigma=max(fine_sigma / COARSE, 0.5), coarse_sigma=max(coarse_sigma / COARSE, 2.0))
+
+
 def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, half: int, search: int, reach: int,
-                 fine_sigma: float, coarse_sigma: float, small=None, blocks=None):
+                 fine_sigma: float, coarse_sigma: float, small=None, blocks=None, coarse_blocks=None):
     """Return the shift, band-passed NCC and beyond-reach mark of each block between two windows of two planes.
 
     Parameters
@@ -226,6 +234,9 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
     blocks : tuple of PlaneBlocks, optional
         The two planes' blocks at ``points`` (:class:`PlaneBlocks` with :func:`fine_plan`), made
         once per plane by the caller (made here when omitted).
+    coarse_blocks : tuple of PlaneBlocks, optional
+        The same for the first pass: blocks of the reduced windows at ``rint(points / COARSE)``
+        with :func:`coarse_plan`.
 
     Returns
     -------
@@ -239,12 +250,12 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
 
     Notes
     -----
-    Both passes are :func:`stackbuild.align.blockmatch.match_block_pairs` (band-limited phase
-    correlation with unbiased sub-pixel refinement; its docstring has the references), called
-    once per pass for all blocks. Blocks whose first answer is 0 (the usual case in an aligned
-    volume) are matched from the planes' own block spectra (:class:`PlaneBlocks`,
-    :func:`~stackbuild.align.blockmatch.match_spectra`: the same three passes); only blocks the first
-    pass moved are cut again around its answer.
+    Both passes are the project's one estimator, :mod:`stackbuild.align.blockmatch` (band-limited
+    phase correlation with unbiased sub-pixel refinement; its docstring has the references), for
+    all blocks at once: the first (whole-pixel peak) and, for blocks whose first answer is 0 (the
+    usual case in an aligned volume), the second from the planes' own block spectra
+    (:class:`PlaneBlocks`, :func:`~stackbuild.align.blockmatch.match_spectra`); only blocks the first
+    pass moved are cut again around its answer (:func:`~stackbuild.align.blockmatch.match_block_pairs`).
     """
     from ..align.blockmatch import match_block_pairs, match_spectra
 
@@ -253,13 +264,13 @@ def match_planes(fixed: np.ndarray, moving: np.ndarray, points: np.ndarray, *, h
     start = np.zeros((n, 2), int)
     beyond = np.zeros(n, bool)
     if reach > search and n:
-        ch, cs = _coarse_sizes(half, reach)
-        fs, ms = small if small is not None else (_reduced(fixed), _reduced(moving))  # (arrays only)
-        cp = np.rint(pts / COARSE).astype(int)
-        res = match_block_pairs(_cut(fs, cp, ch + cs + 1), _cut(ms, cp, ch + cs + 1), cs, half_size=ch,
-                                fine_sigma=max(fine_sigma / COARSE, 0.5),
-                                coarse_sigma=max(coarse_sigma / COARSE, 2.0),
-                                subpixel=False)
+        cplan = coarse_plan(half, reach, fine_sigma, coarse_sigma)
+        if coarse_blocks is None:
+            fs, ms = small if small is not None else (_reduced(fixed), _reduced(moving))  # (arrays only)
+            cp = np.rint(pts / COARSE).astype(int)
+            coarse_blocks = (PlaneBlocks(fs, cp, cplan), PlaneBlocks(ms, cp, cplan))
+        cf, cm = coarse_blocks
+        res = match_spectra(cf.spectra, cm.spectra, cm.stack, cplan, False, cm.rows)
         ok = np.isfinite(res.shifts[:, 0])
         d = np.where(ok[:, None], res.shifts * COARSE, 0.0)
         beyond = ok & (np.abs(d).max(axis=1) > reach)
@@ -351,22 +362,26 @@ def probe_pair(job: PairJob) -> list[dict]:
     planes = sorted({z for p in job.pairs for z in p})
     coarse = _coarse_source(job, source) if reduce else None
     plan = fine_plan(half, search, st.probe_fine_sigma / f, st.probe_coarse_sigma / f)
+    cplan = coarse_plan(half, reach, st.probe_fine_sigma / f, st.probe_coarse_sigma / f) if reduce else None
     for r in np.unique(region):
         sel = np.flatnonzero(region == r)
         box = (*pts[sel].min(axis=0), *(pts[sel].max(axis=0) + 1))
         held: dict[int, tuple] = {}
         for z in planes:
             win, small, corner = _window(source, z, box, margin, reduce, coarse)
-            held[z] = (win, small, corner, PlaneBlocks(win, pts[sel] - corner, plan) if win.any_data() else None)
+            here = pts[sel] - corner
+            data = win.any_data()
+            held[z] = (win, corner, PlaneBlocks(win, here, plan) if data else None,
+                       PlaneBlocks(small, np.rint(here / COARSE).astype(int), cplan) if data and reduce else None)
             for k, (a, b) in enumerate(job.pairs):
                 if b != z or a not in held:
                     continue
-                (fa, sa, corner, ba), (fb, sb, _, bb) = held[a], held[b]
+                (fa, corner, ba, ca), (fb, _, bb, cb) = held[a], held[b]
                 if ba is None or bb is None:
                     continue
                 s_, c_, b_ = match_planes(fa, fb, pts[sel] - corner, half=half, search=search, reach=reach,
                                           fine_sigma=st.probe_fine_sigma / f, coarse_sigma=st.probe_coarse_sigma / f,
-                                          small=(sa, sb) if reduce else None, blocks=(ba, bb))
+                                          blocks=(ba, bb), coarse_blocks=(ca, cb) if reduce else None)
                 shifts[k, sel], ncc[k, sel], beyond[k, sel] = s_ * f, c_, b_
             for y in [y for y in held if not any(y in p and p[1] > z for p in job.pairs)]:
                 held.pop(y)  # no later pair needs it

@@ -126,6 +126,37 @@ def test_update_equals_a_render_from_scratch_of_the_new_transforms(updated):
         np.testing.assert_array_equal(written, fresh)
 
 
+@pytest.mark.parametrize("shift", [(0.0, 0.0), (900.0, 40.0), (-700.0, -300.0)])
+def test_canvas_from_the_changed_sections_equals_the_canvas_of_every_section(updated, tmp_path, shift):
+    """The update reads only changed sections for its canvas; the whole-stack canvas is the reference.
+
+    A section moved past the canvas's high edge must grow it, one moved past its low edge must move
+    its origin (every plane rendered again), exactly as compute_canvas over every section says.
+    """
+    import dataclasses
+
+    from stackbuild.folder import BuildFolder
+    from stackbuild.render.canvas import compute_canvas, settle_canvas
+    from stackbuild.run.update_plan import UpdatePlan
+    from stackbuild.run.update_render import _settled_canvas
+    from stackbuild.transforms.records import Canvas
+
+    work = _copy(updated[0], tmp_path)
+    build = BuildFolder(work)
+    plan = UpdatePlan.from_json(json.loads((work / "updates" / "0001" / "plan.json").read_text()), work)
+    st, al = build.store.load_stitch(3), build.store.load_alignment(3)
+    moved = dataclasses.replace(st, tiles=[dataclasses.replace(t, x=t.x + shift[0], y=t.y + shift[1]) for t in st.tiles])
+    build.store.save_stitch(moved)
+    render = build.config.render
+    block, vol, manifest = render.chunk * render.shard, build.config.volume, build.tile_manifest()
+    previous = Canvas.from_json(plan.canvas_before)
+    want = settle_canvas(previous, compute_canvas(build.store, manifest.sections, manifest.lost_sections,
+                                                  vol.pixel_size, vol.section_thickness), shard=block, chunk=render.chunk)
+    got = _settled_canvas(build, plan, {3: (moved, al)}, block, render.chunk)
+    assert got[0].to_json() == want[0].to_json() and got[1] == want[1]
+    assert (got[1]["grew"][0] > 0) == (shift[0] > 0) and any(got[1]["moved"]) == (shift[0] < 0)
+
+
 def test_updated_volume_is_still_ome_zarr_0_5(updated):
     from ome_zarr_models.v05.image import Image
 

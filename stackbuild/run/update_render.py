@@ -8,8 +8,12 @@ whose origin moved renders every plane again.
 """
 from __future__ import annotations
 
+import math
 import os
 
+import numpy as np
+
+from ..errors import InputError
 from ..folder import BuildFolder
 from ..manifest import TileManifest
 from ..transforms.records import Canvas, SectionStitch, TilePlacement
@@ -61,31 +65,77 @@ def predicted_shards(build: BuildFolder, new: TileManifest, changed: dict, added
 
 
 def dirty_shards(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict]:
-    """Return the settled canvas, its facts and plane -> level-0 shards whose pixels can change."""
-    from ..render.canvas import compute_canvas, settle_canvas
+    """Return the settled canvas, its facts and plane -> level-0 shards whose pixels can change.
+
+    Only sections whose records the update replaced are read (:func:`_untouched` tells the
+    others by their files alone), so the cost follows the update, not the stack.
+    """
     from ..render.dirty import changed_boxes, level0_shards
 
     settings = build.config.render
     block = settings.chunk * settings.shard
-    manifest = build.tile_manifest()
-    vol = build.config.volume
-    fresh = compute_canvas(build.store, manifest.sections, manifest.lost_sections, vol.pixel_size,
-                           vol.section_thickness)
-    previous = None if plan.canvas_before is None else Canvas.from_json(plan.canvas_before)
-    canvas, facts = settle_canvas(previous, fresh, shard=block, chunk=settings.chunk)
     before, store = before_store(build.root, plan), build.store
     sections = set(store.sections_with("stitch")) | set(before.sections_with("stitch"))
+    records = {s: ((before.load_stitch(s), before.load_alignment(s)), (store.load_stitch(s), store.load_alignment(s)))
+               for s in sorted(sections) if not _untouched(before, store, s)}
+    canvas, facts = _settled_canvas(build, plan, {s: new for s, (_, new) in records.items()}, block, settings.chunk)
     dirty = {}
-    for s in sorted(sections):
-        if _untouched(before, store, s):
-            continue
-        boxes, _ = changed_boxes((before.load_stitch(s), before.load_alignment(s)),
-                                 (store.load_stitch(s), store.load_alignment(s)))
+    for s, (old, new) in records.items():
+        boxes, _ = changed_boxes(old, new)
         boxes += _replaced_boxes(store, s, plan.replaced.get(str(s), []))
         shards = level0_shards(boxes, canvas, block)
         if shards:
             dirty[str(s - canvas.first_section)] = pack_shards(shards)
     return canvas, facts, dirty
+
+
+def _settled_canvas(build: BuildFolder, plan: UpdatePlan, changed: dict, shard: int, chunk: int) -> tuple[Canvas, dict]:
+    """Return :func:`~stackbuild.render.canvas.settle_canvas` of the stored canvas and the current records.
+
+    ``changed`` maps each section whose records the update replaced to its ``(stitch, alignment)``.
+    Every other section lies inside the stored canvas already (it was settled to hold it), so the
+    tight canvas of the changed sections alone moves or grows the stored one exactly as the tight
+    canvas of the whole stack would (:func:`~stackbuild.render.canvas.compute_canvas` reads every
+    section; a test holds the two equal). Lost and flagged sections of the others are the stored
+    canvas's. Without a stored canvas, every section is read.
+    """
+    from ..render.canvas import compute_canvas, section_footprint, settle_canvas
+
+    manifest = build.tile_manifest()
+    vol = build.config.volume
+    previous = None if plan.canvas_before is None else Canvas.from_json(plan.canvas_before)
+    if previous is None:
+        fresh = compute_canvas(build.store, manifest.sections, manifest.lost_sections, vol.pixel_size,
+                               vol.section_thickness)
+        return settle_canvas(None, fresh, shard=shard, chunk=chunk)
+    present = set(manifest.sections)
+    lost = set(manifest.lost_sections) | {s for s in previous.lost_sections if s in present and s not in changed}
+    flagged = {s: f for s, f in previous.flagged_sections.items() if s in present and s not in changed}
+    boxes = []
+    for s, (st, al) in sorted(changed.items()):
+        if st is None or not st.tiles:
+            lost.add(s)
+            continue
+        if st.dtype != previous.dtype:
+            raise InputError(f"sections mix pixel types {sorted({st.dtype, previous.dtype})}", file=build.store.root,
+                             section=s)
+        boxes.append(section_footprint(st, al))
+        flags = list(st.flags) + ([] if al is None else list(al.flags))
+        if flags:
+            flagged[s] = flags
+    if boxes:  # the same rounding as compute_canvas
+        b = np.array(boxes)
+        ox, oy = math.floor(b[:, 0].min() + 0.5), math.floor(b[:, 1].min() + 0.5)
+        width, height = math.ceil(b[:, 2].max() - 0.5) - ox + 1, math.ceil(b[:, 3].max() - 0.5) - oy + 1
+    else:  # nothing changed its footprint: the stored geometry holds everything
+        ox, oy, width, height = previous.origin_x, previous.origin_y, previous.width, previous.height
+    everything = present | lost
+    flagged = dict(sorted(flagged.items()))  # in section order, as compute_canvas gives them
+    fresh = Canvas(width=int(width), height=int(height), origin_x=float(ox), origin_y=float(oy),
+                   first_section=min(everything), last_section=max(everything), dtype=previous.dtype,
+                   pixel_size_nm=float(vol.pixel_size), section_thickness_nm=float(vol.section_thickness),
+                   lost_sections=sorted(lost), flagged_sections=flagged)
+    return settle_canvas(previous, fresh, shard=shard, chunk=chunk)
 
 
 def _replaced_boxes(store: TransformStore, section: int, names: list[str]) -> list:

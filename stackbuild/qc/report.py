@@ -93,8 +93,8 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
     s_bad = [r["stitch"]["rms"] > settings.stitch_rms for r in st]
     pr = sorted((r for r in doc["worst_pairs"] if r["residual"] is not None), key=lambda r: -r["residual"])[:n]
     vec = lambda v: f"{v[0]:.2f}, {v[1]:.2f}"  # noqa: E731
-    p_rows = [[r["section"], r["a"], r["b"], r["residual"], vec(r["misfit"]), r["blocks"]["n"], r["ncc"],
-               r["accepted"], r["reason"], *_loc(r["at"])] for r in pr]
+    p_rows = [[r["section"], r["a"], r["b"], r["residual"], vec(r["misfit"]), r.get("measured_from", "tiles"),
+               r["blocks"]["n"], r["ncc"], r["accepted"], r["reason"], *_loc(r["at"])] for r in pr]
     seen = {(r["section"], r["tile"]): r for r in doc["flagged_tiles"] + doc["worst_tiles"]}
     tl = sorted((r for r in seen.values() if r["seam_median"] is not None or r["flags"]),
                 key=lambda r: (-len(r["flags"]), -(r["seam_median"] or 0)))[:n]
@@ -121,10 +121,13 @@ def _tables(doc: dict, settings: ReportSettings) -> str:
         "px).</p>",
         _table(["section", "seam RMS (px)", "p95 (px)", "max (px)", "rejected pairs", *_LOC], s_rows, s_bad),
         "<h2>Worst seams</h2>",
-        '<p class="small">residual = length of the misplacement of tile b relative to tile a, re-measured '
-        "over their overlap (median over blocks); NCC and accepted are the stitcher's.</p>",
-        _table(["section", "tile a", "tile b", "residual (px)", "dx, dy (px)", "blocks", "NCC", "accepted",
-                "reason", *_LOC], p_rows, text_cols=(1, 2, 8)),
+        '<p class="small">residual = length of the misplacement of tile b relative to tile a at the final '
+        "placement: re-measured over their overlap from the raw tiles (median over blocks), or, measured from "
+        "the stitcher, the placement against the offset the stitcher measured for the pair (checked against the "
+        "raw tiles on a few pairs per section and on every pair over half the stitch_rms bar); NCC and accepted "
+        "are the stitcher's.</p>",
+        _table(["section", "tile a", "tile b", "residual (px)", "dx, dy (px)", "measured from", "blocks", "NCC",
+                "accepted", "reason", *_LOC], p_rows, text_cols=(1, 2, 5, 9)),
         "<h2>Flagged and worst tiles</h2>",
         '<p class="small">Flagged tiles first (shaded), then by seam misfit.</p>',
         _table(["section", "tile", "seam median (px)", "seam max (px)", "stitcher residual (px)", "flags", *_LOC,

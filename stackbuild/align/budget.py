@@ -2,7 +2,8 @@
 
 The counts follow the tasks :mod:`stackbuild.align.stage` builds (features,
 pairs, region tasks per node block x section window and round, block solves,
-the final residual pass); the bytes add up the arrays each task holds, from
+and one more pass of region tasks, counted with them: the final residual pass,
+which runs only when no elastic round did, an upper bound); the bytes add up the arrays each task holds, from
 the same settings. Constants that are not a plain array size (the feature
 detector's scale space, the sampler's working copies, the solver's sparse
 matrices) are per-pixel or per-unknown factors measured on this code with
@@ -78,6 +79,8 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
     p = 2 * (s.match_half_size + s.match_max_shift) + 2
     # one batch of at most 256 blocks (one per node): ~12 float32/complex64 arrays of p x p per block (FFT work)
     match = min(256, region_side_nodes ** 2) * p * p * 12 * 8
+    # ... and the block spectra of the sections its next links still need (neighbours + 1 of them)
+    match += (s.neighbours + 1) * region_side_nodes ** 2 * p * (p // 2 + 1) * 8
     reduced_tile = 2 * (tile_px / s.elastic_scale) ** 2 * 4
     region = held * side ** 2 * 4 + side ** 2 * RENDER_BYTES_PER_PX + match + cache + tile + reduced_tile
     unknowns = (s.region_nodes + 2 * s.solve_halo) ** 2 * n_sections

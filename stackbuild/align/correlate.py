@@ -6,15 +6,17 @@ and dots that are new in every section), correlation of whole blocks still
 finds the structure that persists. The overviews are reduced 2x at a time
 until the coarsest is about ``coarsest`` pixels across (or a further halving
 would hold too few blocks to fit an affine); there the whole-image
-phase correlation gives the shift, and at every level from the coarsest to
-the overview itself, blocks on a grid are matched through the model so far
-(:func:`.blockmatch.match_blocks`), and RANSAC fits a new model to the trusted
-matches. The answer is the last level's inlier correspondences.
+phase correlation gives the shift, and at the coarsest level, every second
+level below it and the overview itself, blocks on a grid are matched through
+the model so far (:func:`.blockmatch.match_blocks`), and RANSAC fits a new
+model to the trusted matches. The answer is the last level's inlier
+correspondences.
 """
 from __future__ import annotations
 
 import cv2
 import numpy as np
+from scipy import fft as sfft
 
 from .blockmatch import block_reach, match_blocks
 from .coarse import estimate_model
@@ -46,29 +48,30 @@ def global_shift(a: np.ndarray, b: np.ndarray, blur: float = 1.0) -> tuple[np.nd
            alignment method", Proc. IEEE Int. Conf. on Cybernetics and
            Society (1975) 163-165.
     """
-    h = max(a.shape[0], b.shape[0]) * 2
-    w = max(a.shape[1], b.shape[1]) * 2
+    # at least twice the larger image (no wrap-around within it), rounded up to a size fast for the FFT
+    h = sfft.next_fast_len(max(a.shape[0], b.shape[0]) * 2, real=True)
+    w = sfft.next_fast_len(max(a.shape[1], b.shape[1]) * 2, real=True)
 
     def prep(x):
         x = _filled(x)
         x = x - x.mean()
-        wy = np.hanning(x.shape[0])[:, None]
-        wx = np.hanning(x.shape[1])[None, :]
+        wy = np.hanning(x.shape[0]).astype(np.float32)[:, None]
+        wx = np.hanning(x.shape[1]).astype(np.float32)[None, :]
         out = np.zeros((h, w), np.float32)
         out[:x.shape[0], :x.shape[1]] = x * wy * wx
-        return np.fft.rfft2(out)
+        return sfft.rfft2(out)
 
     fa, fb = prep(a), prep(b)
     cross = np.conj(fa) * fb
     cross /= np.maximum(np.abs(cross), 1e-12 * np.abs(cross).max() + 1e-30)
-    ky = np.fft.fftfreq(h)[:, None]
-    kx = np.fft.rfftfreq(w)[None, :]
-    cross *= np.exp(-2 * np.pi ** 2 * blur ** 2 * (kx ** 2 + ky ** 2))
-    surf = np.fft.irfft2(cross, s=(h, w))
+    ky = sfft.fftfreq(h)[:, None]
+    kx = sfft.rfftfreq(w)[None, :]
+    low = np.exp(-2 * np.pi ** 2 * blur ** 2 * (kx ** 2 + ky ** 2)).astype(np.float32)
+    surf = sfft.irfft2(cross * low, s=(h, w))
     r, c = np.unravel_index(int(np.argmax(surf)), surf.shape)
     dy = r if r < h // 2 else r - h
     dx = c if c < w // 2 else c - w
-    norm = float(np.fft.irfft2(np.exp(-2 * np.pi ** 2 * blur ** 2 * (kx ** 2 + ky ** 2)), s=(h, w))[0, 0])
+    norm = float(sfft.irfft2(low, s=(h, w))[0, 0])
     return np.array([dx, dy], float), float(surf[r, c] / norm)
 
 
@@ -138,8 +141,14 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
     facts = {"levels": len(pyr_a), "shift_peak": peak, "matches": 0, "inliers": 0}
     empty = np.zeros((0, 2))
     pa = pb = empty
-    for lvl in range(len(pyr_a) - 1, -1, -1):
+    top = len(pyr_a) - 1
+    for lvl in range(top, -1, -1):
         last = lvl == 0
+        if not last and (top - lvl) % 2:
+            # every second level between the coarsest and the overview is passed over: a model
+            # fitted two levels coarser (4x) already brings the blocks within their search
+            model = _finer(model)
+            continue
         fit = _fit_level(pyr_a[lvl], pyr_b[lvl], model, half_size, max_shift, reach,
                          blocks if last else coarse_blocks, unbiased if last else coarse_unbiased,
                          blur, threshold, min_confidence, facts)
@@ -147,12 +156,18 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         if fit is not None:
             model, pa, pb = fit
         if lvl:
-            # the same map one level finer: p' = 2 p + 0.5 on both sides (also when this level gave
-            # no fit: the whole-image shift, or the model of a coarser level, must be carried down)
-            model = model.copy()
-            model[:, 2] *= 2.0
-            model[:, 2] += 0.5 * (1.0 - model[:, :2].sum(axis=1))
+            # also when this level gave no fit: the whole-image shift, or the model of a coarser
+            # level, must be carried down
+            model = _finer(model)
     return pa, pb, facts
+
+
+def _finer(model: np.ndarray) -> np.ndarray:
+    """Return the same map one level finer: ``p' = 2 p + 0.5`` on both sides."""
+    model = model.copy()
+    model[:, 2] *= 2.0
+    model[:, 2] += 0.5 * (1.0 - model[:, :2].sum(axis=1))
+    return model
 
 
 def _fit_level(la, lb, model, half_size, max_shift, reach, blocks, unbiased, blur, threshold,

@@ -69,3 +69,24 @@ def test_one_marker_image_replaced_rewrites_its_plane_only(with_markers, grid_da
     changed = {k.split("/")[2] for k in first.keys() | second.keys() if first.get(k) != second.get(k)}
     assert changed == {"3"}  # plane 3 (section 3) only; the other marker planes keep bytes and mtimes
     assert _files(work / "volume.zarr" / "em") == em
+
+
+@pytest.mark.skipif(not os.environ.get("STACKBUILD_SLOW_TESTS"), reason="slow: set STACKBUILD_SLOW_TESTS=1")
+def test_update_registers_again_only_the_markers_of_changed_sections(with_markers, grid_data, tmp_path):
+    """Two tiles of section 3 imaged again: only section 3's marker registration is written again."""
+    work = tmp_path / "b"
+    shutil.copytree(with_markers[0], work)
+    records = {p.parent.name: p.stat().st_mtime_ns for p in (work / "transforms" / "sections").glob("*/channels.json")}
+    rng = np.random.default_rng(5)
+    rows = ["section,tile,path,x,y"]
+    for line in (grid_data / "tiles.csv").read_text().splitlines()[1:]:
+        s, t, p, x, y = line.split(",")
+        if s == "3" and t in ("r0c0", "r0c1"):
+            img = tifffile.imread(grid_data / p).astype(np.float32) + rng.normal(0, 4, (1,))
+            tifffile.imwrite(tmp_path / f"{t}.tif", np.clip(img, 0, 255).astype(np.uint8))
+            rows.append(f"{s},{t},{tmp_path / (t + '.tif')},{x},{y}")
+    (tmp_path / "again.csv").write_text("\n".join(rows) + "\n")
+    assert main(["update", str(work), "--tiles", str(tmp_path / "again.csv"), "--quiet"]) in (0, 3)
+    after = {p.parent.name: p.stat().st_mtime_ns for p in (work / "transforms" / "sections").glob("*/channels.json")}
+    assert len(records) >= 4 and set(after) == set(records)
+    assert {k for k in records if after[k] != records[k]} <= {next(k for k in records if int(k) == 3)}

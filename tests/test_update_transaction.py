@@ -126,6 +126,32 @@ def test_update_equals_a_render_from_scratch_of_the_new_transforms(updated):
         np.testing.assert_array_equal(written, fresh)
 
 
+def test_kept_manifest_equals_a_full_check_of_the_merged_csv(updated):
+    """The update keeps the merged manifest made from the two checked ones; checking its CSV from scratch agrees."""
+    from stackbuild.folder import BuildFolder
+    from stackbuild.manifest import read_tile_manifest
+
+    work, _ = updated
+    build = BuildFolder(work)
+    kept, fresh = build.tile_manifest(), read_tile_manifest(json.loads((work / "build.json").read_text())["tiles"])
+    assert kept.source == fresh.source and kept.tiles == fresh.tiles and kept.files == fresh.files
+    assert {t.tile for t in kept.tiles if t.section == 3 and "again" in str(t.path)} == {"r0c0", "r0c1"}
+
+
+def test_a_new_row_reusing_another_tiles_file_is_refused_before_anything_is_written(grid_build, grid_data, tmp_path,
+                                                                                      capsys):
+    work = _copy(grid_build, tmp_path)
+    before = _tree(work)
+    line = next(ln for ln in (grid_data / "first.csv").read_text().splitlines()[1:] if ln.startswith("3,"))
+    s, t, p, x, y = line.split(",")
+    other = "r2c2" if t != "r2c2" else "r0c0"
+    (tmp_path / "dup.csv").write_text(f"section,tile,path,x,y\n3,{other},{grid_data / p},{x},{y}\n")
+    assert main(["update", str(work), "--tiles", str(tmp_path / "dup.csv"), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "is already tile" in err[0], err
+    assert _tree(work) == before
+
+
 @pytest.mark.parametrize("shift", [(0.0, 0.0), (900.0, 40.0), (-700.0, -300.0)])
 def test_canvas_from_the_changed_sections_equals_the_canvas_of_every_section(updated, tmp_path, shift):
     """The update reads only changed sections for its canvas; the whole-stack canvas is the reference.
@@ -177,7 +203,7 @@ def test_a_tile_whose_content_changed_has_its_section_solved_again(grid_build, g
     from scipy import ndimage
 
     from stackbuild.folder import BuildFolder
-    from stackbuild.run import stages
+    from stackbuild.run import update
     from stackbuild.run.update import update_build
 
     work = _copy(grid_build, tmp_path)
@@ -185,12 +211,13 @@ def test_a_tile_whose_content_changed_has_its_section_solved_again(grid_build, g
     path = Path(manifest.read_text().splitlines()[1].split(",")[2])
     tifffile.imwrite(path, ndimage.gaussian_filter(tifffile.imread(path).astype(np.float32), 5).astype(np.uint8))
     # The decision is the align step's and is recorded when that step finishes; the update is stopped at
-    # the next step (its channel stage fails), so the render and the report, which other tests cover, are
+    # the next step (its channels step fails), so the render and the report, which other tests cover, are
     # not paid for here.
-    def stop(*args, **kwargs):
-        raise _StoppedAfterAlign
+    def stop(step):
+        if step == "channels":
+            raise _StoppedAfterAlign
 
-    monkeypatch.setattr(stages, "channels_stage", stop)
+    monkeypatch.setattr(update, "killed_here", stop)
     with pytest.raises(_StoppedAfterAlign):
         update_build(BuildFolder(work), manifest, show_progress=False)
     plan = json.loads((work / "updates" / "0001" / "plan.json").read_text())
@@ -312,6 +339,7 @@ def test_appending_sections_keeps_existing_planes(grid_build, grid_data, tmp_pat
     assert main(["update", str(work), "--tiles", str(grid_data / "later.csv"), "--append", "--quiet"]) == 0
     plan = json.loads((work / "updates" / "0001" / "plan.json").read_text())
     assert plan["added"] == [5, 6]
+    assert plan["facts"]["ran"] == "in this process"  # two small sections: sooner than starting workers
     after = _files(work / "volume.zarr" / "em")
     assert set(plan["facts"]["align"]["realigned"]) <= {5, 6}  # only the new sections: existing ones are held
     assert all(after.get(key) == value for key, value in before.items())  # bytes and modification times

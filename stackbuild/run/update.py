@@ -33,6 +33,7 @@ from __future__ import annotations
 import json
 import shutil
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import InputError
@@ -40,7 +41,7 @@ from ..folder import BuildFolder, csv_facts
 from ..manifest import TileManifest, read_tile_manifest
 from ..transforms.store import atomic_write_text
 from .update_cluster import inset_mappers, update_mappers
-from .update_manifest import changed_tiles, check_new_tiles, merged_manifest, tiles_to_read
+from .update_manifest import changed_tiles, check_new_tiles, merged_checked, merged_manifest, tiles_to_read
 from .update_plan import (
     UpdatePlan, killed_here, next_number, now, plan_dir, save_plan, snapshot_transforms, unfinished,
 )
@@ -89,6 +90,7 @@ def plan_update(build: BuildFolder, new_tiles: Path, *, append: bool = False, ho
     changed = changed_tiles(old, new)
     added = sorted(set(new.sections) - set(old.sections))
     number = next_number(build.root)
+    merged = merged_checked(old, new, build.merged_manifest_path(number))
     plan = UpdatePlan(number=number, status="planned",
                       source={"path": str(Path(new_tiles).resolve()), "sha256": _sha256(Path(new_tiles))},
                       append=append, hold_within=float(hold_within), tiles_before=str(state["tiles"]),
@@ -100,12 +102,18 @@ def plan_update(build: BuildFolder, new_tiles: Path, *, append: bool = False, ho
     plan.predicted = predicted_shards(build, new, changed, added, canvas)
     # The stitch step reads the new tiles and the tiles they overlap: their number decides where to run.
     plan.facts["restitched_tiles"] = tiles_to_read(old, new, changed, build.config.stitch)
-    return plan, new, text
+    # ... and so does the size of the appended sections, stitched and aligned whole.
+    plan.facts["appended_pixels"] = sum(t.width * t.height for s in added for t in new.section_tiles(s))
+    return plan, merged, text
 
 
 # ----------------------------------------------------------------- execute
 def _begin(build: BuildFolder, plan: UpdatePlan, text: str, checked: TileManifest) -> None:
-    """Keep the records as they are, write the plan, then point the build at the merged manifest."""
+    """Keep the records as they are, write the plan, then point the build at the merged manifest.
+
+    ``checked`` is the merged manifest as :func:`plan_update` checked it (from the build's kept
+    snapshot and the update's rows: no tile of the build is looked at again).
+    """
     d = plan_dir(build.root, plan.number)
     shutil.rmtree(d, ignore_errors=True)  # a folder without a plan: an earlier attempt that wrote nothing
     d.mkdir(parents=True)
@@ -114,8 +122,7 @@ def _begin(build: BuildFolder, plan: UpdatePlan, text: str, checked: TileManifes
     merged = Path(plan.tiles_after)
     atomic_write_text(merged, text)
     build.update_state(tiles=str(merged), manifests=plan.manifests_before + [str(merged)])
-    # Files the kept snapshot already checked (unchanged size and mtime) are not opened again.
-    build.keep_checked_manifest(read_tile_manifest(merged, known=build.checked_headers()), csv_facts(merged))
+    build.keep_checked_manifest(checked, csv_facts(merged))
 
 
 def _undo_begin(build: BuildFolder, plan: UpdatePlan) -> None:
@@ -144,10 +151,28 @@ def _stitch_checked(build: BuildFolder, plan: UpdatePlan) -> None:
         raise
 
 
-def _channels_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
-    from . import stages
+@dataclass
+class _MarkersOf(BuildFolder):
+    """The build, its channel manifest cut to ``sections`` (the marker images the channels stage registers)."""
 
-    stages.channels_stage(build, mappers("channels"))
+    sections: frozenset = frozenset()
+
+    def channel_manifest(self):
+        return [c for c in super().channel_manifest() if c.section in self.sections]
+
+
+def _channels_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
+    """Register again the marker images of the sections whose EM records changed; the others' stand.
+
+    A marker image is registered to its own EM section (``channel -> section``), so only a
+    section whose records the update replaced can change its registration.
+    """
+    from . import stages
+    from .update_render import changed_sections
+
+    markers = _MarkersOf(build.root, frozenset(changed_sections(build, plan)))
+    if markers.channel_manifest():  # none of the changed sections has a marker image: nothing to register
+        stages.channels_stage(markers, mappers("channels"))
     killed_here("channels")
 
 
@@ -172,7 +197,8 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
                 plan.status, seconds[step] = status, round(time.monotonic() - t0, 2)
                 save_plan(build.root, plan)
         t0 = time.monotonic()
-        verdict = stages.report_stage(build, fail_on=fail_on, progress=mappers.bar("report"))
+        # The report's tasks run where the steps ran (a cluster only for an append or a large update).
+        verdict = stages.report_stage(build, fail_on=fail_on, progress=mappers.bar("report"), mapper=mappers())
         seconds["report"] = round(time.monotonic() - t0, 2)
     # The report re-measures only sections and planes whose inputs changed (qc/measured keeps the rest).
     doc = _metrics(build)
@@ -221,6 +247,7 @@ def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: b
     """
     from .start import refuse_while_replaced
 
+    t0 = time.monotonic()
     refuse_while_replaced(build, "update")
     pending = unfinished(build.root)
     if pending is not None and pending.status == "rolling_back":
@@ -246,12 +273,13 @@ def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: b
                                             "section and written as an inset under volume.zarr/insets/ "
                                             "(dry run: nothing written)"])
             return UpdateOutcome(None, _inset(build, Path(new_tiles), workers, scheduler, show_progress))
-        plan, new, text = plan_update(build, Path(new_tiles), append=append, hold_within=hold_within,
+        plan, merged, text = plan_update(build, Path(new_tiles), append=append, hold_within=hold_within,
                                       realign_neighbours=realign_neighbours)
         if dry_run:
             return UpdateOutcome(plan, dry_run_lines(plan))
-        _begin(build, plan, text, new)
+        _begin(build, plan, text, merged)
         _stitch_checked(build, plan)
+        plan.facts.setdefault("seconds", {})["plan"] = round(time.monotonic() - t0, 2)
     verdict = _run_steps(build, plan, workers=workers, scheduler=scheduler, show=show_progress, fail_on=fail_on)
     return UpdateOutcome(plan, summary_lines(plan, verdict), verdict)
 

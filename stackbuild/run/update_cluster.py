@@ -11,10 +11,15 @@ import contextlib
 
 from .update_plan import UpdatePlan
 
-#: An update replacing or adding at most this many tiles (and appending no section) runs in this process.
+#: An update replacing or adding at most this many tiles runs in this process ...
 IN_PROCESS_TILES = 16
 #: ... and re-stitching reads at most this many tiles (the new ones and the tiles they overlap).
 IN_PROCESS_SECTION_TILES = 100
+#: Appended sections of at most this many tile pixels in all also run in this process. Measured with
+#: tests/benchmarks/bench_update.py: 2 sections of 3 x 3 tiles of 384 px (2.7 MP) appended to 20 took
+#: 8.0 s in this process against 16.5 s on a 2-worker cluster (5.2 s of it starting the workers; one
+#: run each on a loaded machine).
+IN_PROCESS_APPENDED_PIXELS = 8_000_000
 
 
 class StepMappers:
@@ -43,12 +48,14 @@ class StepMappers:
 def in_process(plan: UpdatePlan, scheduler) -> bool:
     """Return True if the update is small enough to run in this process (no cluster is started).
 
-    Small: no appended section, at most :data:`IN_PROCESS_TILES` replaced or added tiles and at
-    most :data:`IN_PROCESS_SECTION_TILES` tiles read to register their pairs again (the new tiles and
-    those they overlap), so its work (those pairs, a few shards, the report's changed sections) takes less time than
-    starting worker processes. A given ``scheduler`` is always used.
+    Small: at most :data:`IN_PROCESS_TILES` replaced or added tiles, at most
+    :data:`IN_PROCESS_SECTION_TILES` tiles read to register their pairs again (the new tiles and
+    those they overlap) and appended sections of at most :data:`IN_PROCESS_APPENDED_PIXELS` tile
+    pixels, so its work (those pairs, a few sections stitched and aligned, a few shards, the report's
+    changed sections) takes less time than starting worker processes. A given ``scheduler`` is always used.
     """
-    return scheduler is None and not plan.added and \
+    appended = plan.facts.get("appended_pixels", None if plan.added else 0)
+    return scheduler is None and appended is not None and appended <= IN_PROCESS_APPENDED_PIXELS and \
         sum(len(v) for v in plan.replaced.values()) <= IN_PROCESS_TILES and \
         plan.facts.get("restitched_tiles", 0) <= IN_PROCESS_SECTION_TILES
 

@@ -11,10 +11,44 @@ from __future__ import annotations
 import csv
 import io
 import math
+from dataclasses import replace
 from pathlib import Path
 
 from ..errors import InputError
 from ..manifest import TileEntry, TileManifest
+
+
+def _merged_rows(old: TileManifest, new: TileManifest) -> list[TileEntry]:
+    incoming = {(t.section, t.tile) for t in new.tiles}
+    rows = [t for t in old.tiles if (t.section, t.tile) not in incoming] + list(new.tiles)
+    rows.sort(key=lambda t: t.section)  # stable: manifest order within a section is kept
+    return rows
+
+
+def merged_checked(old: TileManifest, new: TileManifest, path: Path) -> TileManifest:
+    """Return the checked manifest of :func:`merged_manifest`'s CSV kept at ``path``, without opening a file.
+
+    Both manifests were checked (every file's header, size and modification time), so the
+    merged one is their rows renumbered as the CSV lists them; it equals
+    :func:`stackbuild.manifest.read_tile_manifest` of that CSV while no tile file changes,
+    without a second ``stat`` of every tile of the build.
+
+    Raises
+    ------
+    InputError
+        A new row's image file is already another tile of the build (one line naming that row).
+    """
+    owner = {str(t.path): t for t in old.tiles}
+    replaced = {(t.section, t.tile) for t in new.tiles}
+    for t in new.tiles:
+        o = owner.get(str(t.path))
+        if o is not None and (o.section, o.tile) != (t.section, t.tile) and (o.section, o.tile) not in replaced:
+            raise InputError(f"image file {t.path} is already tile {o.tile!r} of section {o.section} in this build; "
+                             "each tile must be its own file (nothing was changed)", file=new.source, row=t.row,
+                             section=t.section)
+    tiles = [replace(t, row=i) for i, t in enumerate(_merged_rows(old, new), start=2)]
+    files = {**old.files, **new.files}
+    return TileManifest(Path(path).resolve(), tiles, {str(t.path): files[str(t.path)] for t in tiles})
 
 
 def merged_manifest(old: TileManifest, new: TileManifest) -> str:
@@ -22,9 +56,7 @@ def merged_manifest(old: TileManifest, new: TileManifest) -> str:
 
     A row of ``new`` naming an existing tile of its section replaces it; other rows are added.
     """
-    incoming = {(t.section, t.tile) for t in new.tiles}
-    rows = [t for t in old.tiles if (t.section, t.tile) not in incoming] + list(new.tiles)
-    rows.sort(key=lambda t: t.section)  # stable: manifest order within a section is kept
+    rows = _merged_rows(old, new)
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["section", "tile", "path", "x", "y"])

@@ -75,9 +75,8 @@ def dirty_shards(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, di
     settings = build.config.render
     block = settings.chunk * settings.shard
     before, store = before_store(build.root, plan), build.store
-    sections = set(store.sections_with("stitch")) | set(before.sections_with("stitch"))
     records = {s: ((before.load_stitch(s), before.load_alignment(s)), (store.load_stitch(s), store.load_alignment(s)))
-               for s in sorted(sections) if not _untouched(before, store, s)}
+               for s in changed_sections(build, plan)}
     canvas, facts = _settled_canvas(build, plan, {s: new for s, (_, new) in records.items()}, block, settings.chunk)
     dirty = {}
     for s, (old, new) in records.items():
@@ -87,6 +86,13 @@ def dirty_shards(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, di
         if shards:
             dirty[str(s - canvas.first_section)] = pack_shards(shards)
     return canvas, facts, dirty
+
+
+def changed_sections(build: BuildFolder, plan: UpdatePlan) -> list[int]:
+    """Return the sections whose stitch or align record the update replaced (or added), by their files alone."""
+    before, store = before_store(build.root, plan), build.store
+    sections = set(store.sections_with("stitch")) | set(before.sections_with("stitch"))
+    return [s for s in sorted(sections) if not _untouched(before, store, s)]
 
 
 def _settled_canvas(build: BuildFolder, plan: UpdatePlan, changed: dict, shard: int, chunk: int) -> tuple[Canvas, dict]:

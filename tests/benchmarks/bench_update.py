@@ -257,7 +257,8 @@ def main() -> None:
     secs = plan["facts"].get("seconds", {})
     print(f"  stitch: {plan['facts']['stitch'].get('pairs')} pairs registered again, "
           f"{plan['facts']['stitch'].get('pairs_kept')} kept from the build")
-    print(f"  update steps (s): {secs}; without the report {t_update - secs.get('report', 0):.1f} s "
+    print(f"  update steps (s): {secs}; the rest (process start, imports, summary) "
+          f"{t_update - sum(secs.values()):.1f} s; without the report {t_update - secs.get('report', 0):.1f} s "
           f"(ratio {t_build / max(1e-9, t_update - secs.get('report', 0)):.1f}x)")
     state = json.loads((base / "build.json").read_text())["stages"]
     print(f"  full build stages (s): { {k: v.get('seconds') for k, v in state.items()} }")

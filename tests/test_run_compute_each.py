@@ -68,3 +68,38 @@ def test_a_scheduler_with_workers_is_not_reported():
         time.sleep(0.6)
         watch.stop()
     assert watch.warnings == 0
+
+
+def test_groups_stream_through_a_client_with_one_group_ahead():
+    from distributed import Client, LocalCluster
+
+    from stackbuild.run.cluster import client_mapper
+
+    built = []
+
+    def groups():
+        for g in range(4):
+            built.append(g)
+            yield [dask.delayed(_slow)(i, dask_key_name=f"group-{g}-item-{i}") for i in range(3)]
+
+    seen = []
+    with LocalCluster(n_workers=1, threads_per_worker=3, processes=False, dashboard_address=None) as cluster, \
+            Client(cluster) as client:
+        client_mapper(client).compute_stream(groups(), lambda g, i: seen.append((g, i, len(built))))
+    assert sorted((g, i) for g, i, _ in seen) == [(g, i) for g in range(4) for i in range(3)]
+    # The next group is built and submitted while one runs, never more than one ahead.
+    assert all(n <= g + 2 for g, _, n in seen) and any(n == g + 2 for g, _, n in seen if g < 2)
+
+
+def test_a_task_error_in_a_streamed_group_reaches_the_caller():
+    from distributed import Client, LocalCluster
+
+    from stackbuild.run.cluster import client_mapper
+
+    def boom():
+        raise ValueError("bad tile")
+
+    groups = [[dask.delayed(_slow)(0, dask_key_name="fine")], [dask.delayed(boom)(dask_key_name="boom")]]
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as cluster, \
+            Client(cluster) as client, pytest.raises(ValueError, match="bad tile"):
+        client_mapper(client).compute_stream(iter(groups), lambda g, i: None)

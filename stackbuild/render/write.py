@@ -300,20 +300,38 @@ def _write_planes(plan, arrays, shapes, todo, settings, done, damaged, target, s
     # each plane is recorded (and counted) as soon as it is finished.
     batch = max(1, min(64, math.ceil(BATCH_SHARDS / per_plane)))
     total, finished = len(todo), 0
+    groups = [todo[i:i + batch] for i in range(0, total, batch)]
     if progress is not None:
         progress(0, total)
-    for group in (todo[i:i + batch] for i in range(0, total, batch)):
-        def finish(k: int, group=group) -> None:
-            nonlocal finished
-            done[group[k]] = fingerprints[group[k]]
-            write_plane_record(target, stamp, done, damaged)
-            finished += 1
-            if progress is not None:
-                progress(finished, total)
 
-        compute_each(mapper)(pyramid_writes(plan, arrays, shapes, group, settings.reducer, block), finish)
-        # Returned without error: every plane of the group is written, whether or not the scheduler
-        # called back for each (a local callback is not called when the graph runs on a cluster).
-        for k, z in enumerate(group):
-            if z not in done:
-                finish(k)
+    def finish(g: int, k: int) -> None:
+        nonlocal finished
+        z = groups[g][k]
+        if z in done:
+            return
+        done[z] = fingerprints[z]
+        write_plane_record(target, stamp, done, damaged)
+        finished += 1
+        if progress is not None:
+            progress(finished, total)
+
+    graphs = (pyramid_writes(plan, arrays, shapes, group, settings.reducer, block) for group in groups)
+    stream = getattr(mapper, "compute_stream", None)
+    if stream is not None:  # a cluster: the next batch starts while the last tasks of one run
+        stream(graphs, finish)
+        _finish_all(finish, groups, range(len(groups)))
+        return
+    for g, graph in enumerate(graphs):
+        compute_each(mapper)(graph, lambda k, g=g: finish(g, k))
+        _finish_all(finish, groups, [g])
+
+
+def _finish_all(finish, groups: list[list[int]], which) -> None:
+    """Record every plane of the groups ``which`` as written (their graphs returned without error).
+
+    A scheduler need not call back for each plane (a local callback is not called when the
+    graph runs on a cluster); ``finish`` skips the planes it has recorded already.
+    """
+    for g in which:
+        for k in range(len(groups[g])):
+            finish(g, k)

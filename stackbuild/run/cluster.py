@@ -215,6 +215,7 @@ def client_mapper(client, progress: Callable[[int, int], None] | None = None):
 
     # Dask collections (the render's pyramid graph) go to the same client.
     mapper.compute_each = lambda items, on_done: _compute_on(client, items, on_done)
+    mapper.compute_stream = lambda groups, on_done: _stream_on(client, groups, on_done)
     return mapper
 
 
@@ -253,6 +254,47 @@ def compute_each(items: list, on_done: Callable[[int], None]) -> None:
         _compute_on(client, items, on_done)
     else:
         compute_locally(items, on_done)
+
+
+def _stream_on(client, groups: Iterable[list], on_done: Callable[[int, int], None], ahead: int = 1) -> None:
+    """Compute groups of dask collections on ``client``, ``ahead`` groups beyond the oldest unfinished one in flight.
+
+    ``on_done(g, i)`` is called in this thread as item ``i`` of group ``g`` finishes. A group is
+    built (``groups`` may be a generator) and submitted as soon as one before it is finished, so
+    the workers start on it while the last tasks of the group before run (no idle tail between
+    groups, as computing them one after the other would leave), and at most ``ahead + 1``
+    groups' graphs are held at once. Earlier groups are submitted first, so the scheduler runs
+    their tasks first. The first task error is re-raised in the caller.
+    """
+    from distributed import as_completed
+
+    groups = iter(groups)
+    running = as_completed()
+    where: dict = {}
+    left: dict[int, int] = {}
+
+    def submit() -> bool:
+        items = next(groups, None)
+        if items is None:
+            return False
+        g = len(left)
+        futures = client.compute(list(items))
+        left[g] = len(futures)
+        for i, fut in enumerate(futures):
+            where[fut.key] = (g, i)
+            running.add(fut)
+        return True
+
+    for _ in range(ahead + 1):
+        if not submit():
+            break
+    for fut in running:
+        fut.result()
+        g, i = where.pop(fut.key)
+        on_done(g, i)
+        left[g] -= 1
+        if left[g] == 0:
+            submit()
 
 
 def _compute_on(client, items: list, on_done: Callable[[int], None]) -> None:

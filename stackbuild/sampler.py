@@ -141,6 +141,17 @@ def _remap(img: np.ndarray, mx: np.ndarray, my: np.ndarray, flag: int, out: np.n
     return out
 
 
+def _direct_box(only, x0, y0, scale, nx, ny, box):
+    """Return ``(e0, e1, f0, f1)``: the part of a tile's output ``box`` (a, b, c, d) inside its exclusive
+    rectangle ``only``, relative to the box (empty, all 0, when ``only`` is None)."""
+    if only is None:
+        return 0, 0, 0, 0
+    a, b, c, d = box
+    e0, e1 = _index_range(only[0], only[2], x0, scale, nx)
+    f0, f1 = _index_range(only[1], only[3], y0, scale, ny)
+    return max(e0, a) - a, min(e1, b) - a, max(f0, c) - c, min(f1, d) - c
+
+
 def _index_range(lo: float, hi: float, start: float, step: int, n: int) -> tuple[int, int]:
     """Return output indices ``[a, b)`` whose centres ``start + i*step`` lie in ``[lo, hi]``."""
     a = max(0, math.ceil((lo - start) / step))
@@ -309,11 +320,7 @@ def _warp_tile(tiles, t, box, m, grid, scale, flag, acc, only=None):
         inv[1, 2] -= window[0]
     else:
         val_img, w_img = tiles(t, scale)
-    e0 = e1 = f0 = f1 = 0
-    if only is not None:
-        e0, e1 = _index_range(only[0], only[2], cx0, scale, width)
-        f0, f1 = _index_range(only[1], only[3], cy0, scale, height)
-        e0, e1, f0, f1 = max(e0, a) - a, min(e1, b) - a, max(f0, c) - c, min(f1, d) - c
+    e0, e1, f0, f1 = _direct_box(only, cx0, cy0, scale, width, height, (a, b, c, d))
     direct = None
     if e0 < e1 and f0 < f1:
         direct = (c + f0, c + f1, a + e0, a + e1)
@@ -481,11 +488,7 @@ def _blend_tile(tiles, t, box, sx, sy, ref, grid, scale, flag, acc, only=None):
     if scale != 1:
         mx /= np.float32(scale)
         my /= np.float32(scale)
-    e0 = e1 = f0 = f1 = 0
-    if only is not None:
-        e0, e1 = _index_range(only[0], only[2], gx0, scale, n_c)
-        f0, f1 = _index_range(only[1], only[3], gy0, scale, n_r)
-        e0, e1, f0, f1 = max(e0, a) - a, min(e1, b) - a, max(f0, c) - c, min(f1, d) - c
+    e0, e1, f0, f1 = _direct_box(only, gx0, gy0, scale, n_c, n_r, (a, b, c, d))
     direct = None
     if e0 < e1 and f0 < f1:
         direct = (c + f0, c + f1, a + e0, a + e1)

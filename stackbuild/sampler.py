@@ -141,6 +141,33 @@ def _remap(img: np.ndarray, mx: np.ndarray, my: np.ndarray, flag: int, out: np.n
     return out
 
 
+def _direct_then_blend(acc, box, inner, val_img, w_img, sample):
+    """Return ``(direct, blended)``: the output rectangles a tile wrote straight in and those it blended.
+
+    ``box`` (a, b, c, d) is the tile's part of ``acc`` (x from a to b, y from c to d); ``inner``
+    (e0, e1, f0, f1, relative to the box) is where it is the only tile: its value is sampled straight
+    into ``acc[0]`` there (OpenCV writes into the strided view itself: no temporary, no copy); the
+    strips around it get value and weight, accumulated. ``sample(img, (r0, r1, c0, c1), out=None)``
+    samples a tile image at the rows and columns of the box given.
+    """
+    a, b, c, d = box
+    e0, e1, f0, f1 = inner
+    direct = None
+    if e0 < e1 and f0 < f1:
+        direct = (c + f0, c + f1, a + e0, a + e1)
+        sample(val_img, (f0, f1, e0, e1), out=acc[0, c + f0:c + f1, a + e0:a + e1])
+        strips = [(0, f0, 0, b - a), (f1, d - c, 0, b - a), (f0, f1, 0, e0), (f0, f1, e1, b - a)]
+    else:
+        strips = [(0, d - c, 0, b - a)]
+    blended = []
+    for r0, r1, c0, c1 in strips:
+        if r0 < r1 and c0 < c1:
+            rect = (r0, r1, c0, c1)
+            _accumulate(acc[:, c + r0:c + r1, a + c0:a + c1], sample(val_img, rect), sample(w_img, rect))
+            blended.append((c + r0, c + r1, a + c0, a + c1))
+    return direct, blended
+
+
 def _direct_box(only, x0, y0, scale, nx, ny, box):
     """Return ``(e0, e1, f0, f1)``: the part of a tile's output ``box`` (a, b, c, d) inside its exclusive
     rectangle ``only``, relative to the box (empty, all 0, when ``only`` is None)."""
@@ -320,23 +347,9 @@ def _warp_tile(tiles, t, box, m, grid, scale, flag, acc, only=None):
         inv[1, 2] -= window[0]
     else:
         val_img, w_img = tiles(t, scale)
-    e0, e1, f0, f1 = _direct_box(only, cx0, cy0, scale, width, height, (a, b, c, d))
-    direct = None
-    if e0 < e1 and f0 < f1:
-        direct = (c + f0, c + f1, a + e0, a + e1)
-        # OpenCV writes into the (strided) view of acc itself: no temporary, no copy.
-        _warp_rect(val_img, inv, (f0, f1, e0, e1), flag, out=acc[0, c + f0:c + f1, a + e0:a + e1])
-        strips = [(0, f0, 0, b - a), (f1, d - c, 0, b - a), (f0, f1, 0, e0), (f0, f1, e1, b - a)]
-    else:
-        strips = [(0, d - c, 0, b - a)]
-    blended = []
-    for r0, r1, c0, c1 in strips:
-        if r0 < r1 and c0 < c1:
-            rect = (r0, r1, c0, c1)
-            _accumulate(acc[:, c + r0:c + r1, a + c0:a + c1], _warp_rect(val_img, inv, rect, flag),
-                        _warp_rect(w_img, inv, rect, flag))
-            blended.append((c + r0, c + r1, a + c0, a + c1))
-    return direct, blended
+    inner = _direct_box(only, cx0, cy0, scale, width, height, (a, b, c, d))
+    return _direct_then_blend(acc, (a, b, c, d), inner, val_img, w_img,
+                              lambda img, rect, out=None: _warp_rect(img, inv, rect, flag, out=out))
 
 
 def _warp_rect(src: np.ndarray, inv: np.ndarray, rect, flag: int, out: np.ndarray | None = None) -> np.ndarray:
@@ -488,19 +501,10 @@ def _blend_tile(tiles, t, box, sx, sy, ref, grid, scale, flag, acc, only=None):
     if scale != 1:
         mx /= np.float32(scale)
         my /= np.float32(scale)
-    e0, e1, f0, f1 = _direct_box(only, gx0, gy0, scale, n_c, n_r, (a, b, c, d))
-    direct = None
-    if e0 < e1 and f0 < f1:
-        direct = (c + f0, c + f1, a + e0, a + e1)
-        _remap(val_img, mx[f0:f1, e0:e1], my[f0:f1, e0:e1], flag, out=acc[0, c + f0:c + f1, a + e0:a + e1])
-        strips = [(0, f0, 0, b - a), (f1, d - c, 0, b - a), (f0, f1, 0, e0), (f0, f1, e1, b - a)]
-    else:
-        strips = [(0, d - c, 0, b - a)]
-    blended = []
-    for s0, s1, k0, k1 in strips:
-        if s0 < s1 and k0 < k1:
-            sub = np.s_[s0:s1, k0:k1]
-            _accumulate(acc[:, c + s0:c + s1, a + k0:a + k1], _remap(val_img, mx[sub], my[sub], flag),
-                        _remap(w_img, mx[sub], my[sub], flag))
-            blended.append((c + s0, c + s1, a + k0, a + k1))
-    return direct, blended
+    inner = _direct_box(only, gx0, gy0, scale, n_c, n_r, (a, b, c, d))
+
+    def sample(img, rect, out=None):
+        sub = np.s_[rect[0]:rect[1], rect[2]:rect[3]]
+        return _remap(img, mx[sub], my[sub], flag, out=out)
+
+    return _direct_then_blend(acc, (a, b, c, d), inner, val_img, w_img, sample)

@@ -476,8 +476,8 @@ def _cmd_plan(args) -> int:
     speed = 1.0
     if args.this_machine:
         from .run.plan import load_rates
-        from .run.plan_speed import speed_factor
-        speed = speed_factor(load_rates())
+        from .run.plan_speed import speed_factors
+        speed = speed_factors(load_rates())
     plan = make_plan(shape, load_config(args.config), cores=args.cores, speed=speed)
     _say(json.dumps(plan, indent=1) if args.json else plan_text(plan))
     return EXIT_OK

@@ -15,7 +15,7 @@ from stackbuild.config import PipelineConfig
 from stackbuild.run.plan import load_rates, make_plan
 from stackbuild.run.plan_measure import fastest, measure_build
 from stackbuild.run.plan_shape import VolumeShape
-from stackbuild.run.plan_speed import speed_factor
+from stackbuild.run.plan_speed import speed_factors
 
 
 def test_described_production_volume_has_every_required_field_and_a_bounded_render():
@@ -101,18 +101,20 @@ MEMORY_FLOOR = 32e6
 def _measure_twice(tiles, folder):
     """Measure two builds of ``tiles`` in this process; per kind the least CPU and the largest peak.
 
-    Also the reference workload's CPU time, before, between and after the builds (the least of
-    them), so the plan is scaled to this machine's speed at the time of the measurement: a single
-    0.4 s reading of it was once seen 2.3x slow in a full suite run (the builds' CPU was not).
+    Also the reference workload's parts' CPU times, before, between and after the builds (per part
+    the least of them), so the plan is scaled to this machine's speed at the time of the
+    measurement: a single 0.4 s reading of it was once seen 2.3x slow in a full suite run (the
+    builds' CPU was not).
     """
-    from stackbuild.run.plan_speed import reference_cpu_seconds
+    from stackbuild.run.plan_speed import reference_cpu_parts
 
-    references = [reference_cpu_seconds()]
+    references = [reference_cpu_parts()]
     first = measure_build(tiles, folder / "build1")
-    references.append(reference_cpu_seconds())
+    references.append(reference_cpu_parts())
     second = measure_build(tiles, folder / "build2")
-    references.append(reference_cpu_seconds())
-    return {**fastest(first, second), "reference_cpu_s": min(references), "references": references}
+    references.append(reference_cpu_parts())
+    parts = {name: min(r[name] for r in references) for name in references[0]}
+    return {**fastest(first, second), "reference_parts_s": parts, "references": references}
 
 
 def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
@@ -133,7 +135,7 @@ def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
         measured = pool.submit(_measure_twice, tiles, tmp_path).result()
     # CPU seconds depend on the machine: the plan is scaled by the reference workload's time here
     # against the calibration machine's (stackbuild/run/plan_speed.py); CI machines differ by 2x or more.
-    speed = speed_factor(load_rates(), measured["reference_cpu_s"])
+    speed = speed_factors(load_rates(), measured["reference_parts_s"])
     plan = make_plan(VolumeShape.from_manifest(tiles), PipelineConfig(), cores=1, speed=speed)
     planned_total = real_total = 0.0
     for stage in ("stitch", "align", "render", "report"):
@@ -147,7 +149,7 @@ def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
         if stage in ("stitch", "render"):
             # Per stage for the stages whose tasks last long enough here to time; align's and the
             # report's tasks take tenths of a second at this size and count in the total below.
-            assert 0.5 <= planned_cpu / real_cpu <= 2.0, (stage, planned_cpu, real_cpu, speed)
+            assert 0.5 <= planned_cpu / real_cpu <= 2.0, (stage, planned_cpu, real_cpu, speed[stage])
         tasks = {k: v for k, v in kinds.items() if not v["driver"]}
         # Below 32 MB a task's measured memory is mostly the allocator's doing (arenas, trim
         # thresholds: the same stitch task measured 10.7 MB in one run and 31 MB in another), so both

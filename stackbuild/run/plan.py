@@ -85,11 +85,13 @@ def plan_stage(name: str, kinds: list[Kind], rates: dict, cores: int, speed: flo
     }
 
 
-def make_plan(shape: VolumeShape, cfg, *, cores: int = 2, rates: dict | None = None, speed: float = 1.0) -> dict:
+def make_plan(shape: VolumeShape, cfg, *, cores: int = 2, rates: dict | None = None,
+              speed: float | dict = 1.0) -> dict:
     """Return the whole plan of a build of ``shape`` with settings ``cfg`` on ``cores`` cores.
 
-    ``speed`` scales every CPU figure: a core's CPU seconds for a fixed workload over the
-    calibration machine's (:func:`stackbuild.run.plan_speed.speed_factor`; 1.0 = as measured there).
+    ``speed`` scales the CPU figures: a core's CPU seconds for a fixed workload over the
+    calibration machine's, one factor for all stages or one per stage
+    (:func:`stackbuild.run.plan_speed.speed_factors`; 1.0 = as measured there).
 
     Returns
     -------
@@ -98,14 +100,17 @@ def make_plan(shape: VolumeShape, cfg, *, cores: int = 2, rates: dict | None = N
         ``cpu_hours``, ``bytes_read``, ``bytes_written``, ``wall_hours``, ``bounded``, ``unbounded``;
         ``output_bytes``, ``output_files``, ``output`` (levels, shards, codec, ratio);
         ``cpu_hours``, ``wall_hours`` (on ``cores``), ``bounded``; ``rates`` (where the factors come from);
-        ``speed_factor``.
+        ``speed_factors`` (per stage).
     """
     if cores < 1:
         raise ValueError(f"cores must be >= 1, got {cores}")
     rates = rates or load_rates()
-    if not speed > 0:
-        raise ValueError(f"speed must be > 0, got {speed}")
-    stages = {name: plan_stage(name, fn(shape, cfg), rates, cores, speed) for name, fn in STAGES.items()}
+    factors = speed if isinstance(speed, dict) else dict.fromkeys(STAGES, speed)
+    for name, f in factors.items():
+        if not f > 0:
+            raise ValueError(f"speed must be > 0, got {f} for {name}")
+    stages = {name: plan_stage(name, fn(shape, cfg), rates, cores, factors.get(name, 1.0))
+              for name, fn in STAGES.items()}
     out = output_layout(shape, cfg)
     codec = f"{cfg.render.codec}" + ("" if cfg.render.codec == "none" else f" level {cfg.render.clevel}")
     ratio = rates.get("compression_ratio", {}).get(codec, 1.0) if cfg.render.codec != "none" else 1.0
@@ -123,7 +128,7 @@ def make_plan(shape: VolumeShape, cfg, *, cores: int = 2, rates: dict | None = N
         "bounded": all(s["bounded"] for s in stages.values()),
         "limits": {"task_memory_mb": TASK_LIMIT / MB, "driver_memory_mb": DRIVER_LIMIT / MB},
         "rates": {k: rates.get(k) for k in ("measured", "machine", "commit", "how")},
-        "speed_factor": speed,
+        "speed_factors": {name: factors.get(name, 1.0) for name in STAGES},
     }
 
 
@@ -170,9 +175,11 @@ def plan_text(plan: dict) -> str:
             lines.append(f"{name}: no measured rate for {', '.join(s['unmeasured'])} (CPU counted as 0)")
     r = plan["rates"]
     lines.append(f"rates measured {r['measured']} on {r['machine']} (code {r['commit']})")
-    if plan["speed_factor"] == 1.0:
+    factors = plan["speed_factors"]
+    if all(f == 1.0 for f in factors.values()):
         lines.append("CPU and wall time as on that machine (--this-machine scales them to this one)")
     else:
-        lines.append(f"CPU and wall time scaled to this machine: {plan['speed_factor']:.2f}x the calibration "
-                     "machine's time for the same reference workload")
+        each = ", ".join(f"{name} {f:.2f}x" for name, f in factors.items())
+        lines.append(f"CPU and wall time scaled to this machine, per stage its time over the calibration "
+                     f"machine's for the same reference workload: {each}")
     return "\n".join(lines)

@@ -161,6 +161,43 @@ def _clear_caches() -> None:
     lazy._RECORDS.clear()
 
 
+def _measure_stages(meter: TaskMeter, tiles_csv, out, config) -> tuple[dict, dict]:
+    """Run every stage of a build under ``meter``; return CPU seconds per stage and the stages that failed."""
+    import dask
+
+    from ..manifest import read_tile_manifest
+    from . import stages
+    from .start import start_build
+
+    cpu, errors = {}, {}
+    meter.start_stage()
+    c0 = time.process_time()
+    read_tile_manifest(tiles_csv)
+    meter.end_stage("manifest.driver")
+    cpu["manifest"] = time.process_time() - c0
+    build = start_build(out, tiles_csv, config=config)
+    for name, call in (
+            ("stitch", lambda: stages.stitch_stage(build, meter.mapper)),
+            ("align", lambda: stages.align_stage(build, meter.mapper)),
+            ("render", lambda: stages.render_stage(build)),
+            ("report", lambda: stages.report_stage(build, mapper=meter.mapper))):
+        _clear_caches()
+        meter.start_stage()
+        c0 = time.process_time()
+        try:
+            if name == "render":
+                with dask.config.set(scheduler="sync"), _dask_meter(meter):
+                    stages.render_stage(build, mapper=meter.mapper)
+            else:
+                call()
+        except Exception as exc:  # a stage that fails is not measured; the rest still are
+            errors[name] = f"{type(exc).__name__}: {exc}"
+            continue
+        meter.end_stage(f"{name}.driver")
+        cpu[name] = time.process_time() - c0
+    return cpu, errors
+
+
 def measure_build(tiles_csv: str | Path, out: str | Path, config: str | Path | None = None) -> dict:
     """Build ``tiles_csv`` into ``out`` in this process, one thread, and return what each kind of task took.
 
@@ -171,12 +208,7 @@ def measure_build(tiles_csv: str | Path, out: str | Path, config: str | Path | N
         and driver (``<stage>.driver``); ``stage_cpu_s``: CPU seconds per stage; ``errors``: stages
         that failed (not measured), with their error.
     """
-    import cv2
-    import dask
-
-    from ..manifest import read_tile_manifest
-    from . import stages
-    from .start import start_build
+    from .plan_speed import one_thread
 
     # Import every stage first, so no stage's first import is counted as its driver's memory.
     import stackbuild.align.stage  # noqa: F401
@@ -184,41 +216,14 @@ def measure_build(tiles_csv: str | Path, out: str | Path, config: str | Path | N
     import stackbuild.render.write  # noqa: F401
     import stackbuild.stitch.section  # noqa: F401
 
-    threads = cv2.getNumThreads()
-    cv2.setNumThreads(1)
     started = tracemalloc.is_tracing()
     if not started:
         tracemalloc.start()
     meter = TaskMeter()
-    cpu, errors = {}, {}
     try:
-        meter.start_stage()
-        c0 = time.process_time()
-        read_tile_manifest(tiles_csv)
-        meter.end_stage("manifest.driver")
-        cpu["manifest"] = time.process_time() - c0
-        build = start_build(out, tiles_csv, config=config)
-        for name, call in (
-                ("stitch", lambda: stages.stitch_stage(build, meter.mapper)),
-                ("align", lambda: stages.align_stage(build, meter.mapper)),
-                ("render", lambda: stages.render_stage(build)),
-                ("report", lambda: stages.report_stage(build, mapper=meter.mapper))):
-            _clear_caches()
-            meter.start_stage()
-            c0 = time.process_time()
-            try:
-                if name == "render":
-                    with dask.config.set(scheduler="sync"), _dask_meter(meter):
-                        stages.render_stage(build, mapper=meter.mapper)
-                else:
-                    call()
-            except Exception as exc:  # a stage that fails is not measured; the rest still are
-                errors[name] = f"{type(exc).__name__}: {exc}"
-                continue
-            meter.end_stage(f"{name}.driver")
-            cpu[name] = time.process_time() - c0
+        with one_thread():
+            cpu, errors = _measure_stages(meter, tiles_csv, out, config)
     finally:
-        cv2.setNumThreads(threads)
         if not started:
             tracemalloc.stop()
     for k in meter.kinds.values():

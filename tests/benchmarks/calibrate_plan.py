@@ -8,7 +8,7 @@ fixed + slope x modelled bytes (tracemalloc peak, minus the model's cache), CPU
 per task = fixed + slope x modelled work. Two sizes, so per-task start-up costs
 do not scale up with the volume.
 
-Also measured: the CPU time of the reference workload
+Also measured: the CPU time of each part of the reference workload
 (:mod:`stackbuild.run.plan_speed`), so a plan can be scaled to another machine; the memory of an idle worker process (a fresh interpreter that
 imports what a worker imports; its resident size) and the compression ratio of the
 written level 0 with the default codec.
@@ -34,7 +34,7 @@ sys.path.insert(0, str(REPO))
 from stackbuild.config import PipelineConfig  # noqa: E402
 from stackbuild.run.plan import RATES_PATH  # noqa: E402
 from stackbuild.run.plan_models import STAGES  # noqa: E402
-from stackbuild.run.plan_speed import reference_cpu_seconds  # noqa: E402
+from stackbuild.run.plan_speed import reference_cpu_parts  # noqa: E402
 from stackbuild.run.plan_shape import VolumeShape  # noqa: E402
 from stackbuild.synth import SynthParams, generate  # noqa: E402
 
@@ -199,7 +199,8 @@ def main(argv=None) -> None:
         small, shape1, _ = measure_size(tmp, "small", *args.small)
         large, shape2, folder = measure_size(tmp, "large", *args.large)
         ratio = stored_ratio(folder / "volume.zarr")
-    reference = min(reference_cpu_seconds() for _ in range(3))  # the least: other work only adds time
+    runs = [reference_cpu_parts() for _ in range(3)]
+    parts = {name: min(r[name] for r in runs) for name in runs[0]}  # the least: other work only adds time
     baseline = int(subprocess.run([sys.executable, "-c", WORKER_IMPORTS], capture_output=True, text=True,
                                   check=True).stdout.strip())
     commit = subprocess.run(["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"], capture_output=True,
@@ -213,7 +214,8 @@ def main(argv=None) -> None:
                 "time and the tracemalloc peak above the task's start; per kind a line (fixed + slope) "
                 "through the two, against what stackbuild/run/plan_models.py says the task holds and does"),
         "calibration_shapes": [shape1.to_json(), shape2.to_json()],
-        "reference_cpu_s": round(reference, 5),
+        "reference_cpu_s": round(sum(parts.values()), 5),
+        "reference_parts_s": {name: round(t, 5) for name, t in parts.items()},
         "worker_baseline_bytes": baseline, "driver_baseline_bytes": baseline,
         "compression_ratio": {f"{cfg.render.codec} level {cfg.render.clevel}": round(ratio, 3)},
         "kinds": factors(small, large, (shape1, shape2), cfg),

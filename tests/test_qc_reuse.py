@@ -173,3 +173,44 @@ def test_a_re_report_with_every_figure_kept_does_not_import_matplotlib(first, tm
             "print('matplotlib' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code, str(root)], capture_output=True, text=True, check=True)
     assert out.stdout.split()[-1] == "False"
+
+
+def test_a_re_report_told_where_a_plane_changed_gives_the_numbers_of_a_full_report(first, tmp_path):
+    # An update rewrites a few shards of a plane and tells the report where (qc.stage.run's `changed`).
+    # Ground truth: a full report (reuse=False) of the same folder. Here a 96 x 96 px corner of plane 2
+    # is replaced by the same place of plane 3 (a real change: the blocks there now match plane 3),
+    # at both written levels.
+    import shutil
+
+    import numpy as np
+    import zarr
+
+    root = tmp_path / "build"
+    shutil.copytree(first[0], root, symlinks=True)
+    box = [416, 416, 512, 512]  # level-0 px, x1 and y1 exclusive
+    for level, f in (("0", 1), ("1", 2)):
+        arr = zarr.open_array(str(root / "volume.zarr" / "em" / level), mode="r+")
+        ys, xs = slice(box[1] // f, box[3] // f), slice(box[0] // f, box[2] // f)
+        arr[2, ys, xs] = arr[3, ys, xs]
+    _stamp(root, {z: (f"plane{z}" if z != 2 else "plane2-patched") for z in range(len(SECTIONS))})
+    mapper = Counting()
+    told, _ = collect(root, SETTINGS, mapper=mapper, changed={2: {"before": "plane2", "boxes": [box]}})
+    jobs = mapper.of("probe_pair")
+    assert sorted(p for j in jobs for p in j.pairs) == [(0, 2), (1, 2), (2, 3), (2, 4)]
+    assert all(k is not None for j in jobs for k in j.keep)  # each kept its stored blocks outside the box
+    kept = [json.loads(p.read_text()) for p in sorted((root / "qc" / "measured" / "pairs").glob("*.json"))]
+    full, _ = collect(root, SETTINGS, reuse=False)
+    again = [json.loads(p.read_text()) for p in sorted((root / "qc" / "measured" / "pairs").glob("*.json"))]
+    # the same block shifts as measuring every block again (to the stored 4 decimals) ...
+    for k, a in zip(kept, again):
+        for c in ("dx", "dy", "ncc"):
+            assert np.allclose(np.array(k[c], float), np.array(a[c], float), equal_nan=True, atol=1e-4)
+        assert k["beyond"] == a["beyond"]
+    # ... and so the same estimates
+    for a, b in zip(full["sections"], told["sections"]):
+        assert a["align_error_px"] == pytest.approx(b["align_error_px"], abs=1e-6)
+    # a stored pair measured from another version of the plane is not patched: measured whole
+    _stamp(root, {z: (f"plane{z}" if z != 2 else "plane2-again") for z in range(len(SECTIONS))})
+    mapper = Counting()
+    collect(root, SETTINGS, mapper=mapper, changed={2: {"before": "plane2", "boxes": [box]}})
+    assert [k for j in mapper.of("probe_pair") for k in j.keep] == [None] * 4

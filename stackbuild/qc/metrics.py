@@ -356,7 +356,7 @@ class _Records:
 
 
 def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapper=None,
-            reuse: bool = True) -> tuple[dict, Measurements]:
+            reuse: bool = True, changed: dict | None = None) -> tuple[dict, Measurements]:
     """Return the metrics document of a build and the measurements behind it.
 
     Each section is measured by one task (:func:`stackbuild.qc.sections.seam_job`) that
@@ -377,6 +377,8 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
         ``mapper(fn, items)`` running the tasks (the build's Dask mapper); ``map`` when omitted.
     reuse : bool
         False measures everything again.
+    changed : dict, optional
+        Where planes changed since the stored measurements (see :func:`stackbuild.qc.probe.measure_error`).
     """
     from .sections import SectionJob, seam_job
 
@@ -410,7 +412,7 @@ def collect(build_dir: str | Path, settings: ReportSettings, progress=None, mapp
         lost = {sc.z(s) for s in canvas.lost_sections} if canvas else set()
         present = [z for z in range(meas.source.depth) if z not in lost]
         meas.probe = measure_error(build_dir, meas.source, present, settings, written=written,
-                                   max_factor=factor, mapper=mapper or map, reuse=reuse)
+                                   max_factor=factor, mapper=mapper or map, reuse=reuse, changed=changed)
         meas.straightened = _straightened(sums, canvas, present, grid)
     sections = _section_rows(secs, sums, meas, sc, settings)
     _mark_blank(sections, sums)

@@ -42,6 +42,9 @@ class PairJob:
     pairs: tuple[tuple[int, int], ...]   # (fixed plane, moving plane), fixed increasing
     fingerprints: tuple[str | None, ...]  # one per pair, stored with its shifts
     settings: ReportSettings
+    made_from: tuple = ()                 # per pair: [base digest, render fingerprint of a, of b] (reuse.write_pair)
+    keep: tuple = ()                      # per pair: None (measure every block) or the level-0 boxes where a plane
+                                          # changed: only blocks reaching them are measured, the rest are stored
 
 
 #: fixed planes per pair task: a task reads each of its planes once per region
@@ -148,13 +151,20 @@ def probe_pair(job: PairJob) -> list[dict]:
     beyond = np.zeros((npairs, nb), bool)
     reach = int(np.ceil(st.probe_reach / f))
     reduce = reach > search
-    planes = sorted({z for p in job.pairs for z in p})
+    need = _blocks_to_measure(job, source, pts, margin, shifts, ncc, beyond)
     coarse = _coarse_source(job, source) if reduce else None
     plan = fine_plan(half, search, st.probe_fine_sigma / f, st.probe_coarse_sigma / f)
     cplan = coarse_plan(half, reach, st.probe_fine_sigma / f, st.probe_coarse_sigma / f) if reduce else None
     for r in np.unique(region):
-        sel = np.flatnonzero(region == r)
-        box = (*pts[sel].min(axis=0), *(pts[sel].max(axis=0) + 1))
+        whole = np.flatnonzero(region == r)
+        sel = whole[need[:, whole].any(axis=0)]
+        if not sel.size:
+            continue  # nothing to measure here: every pair keeps its stored blocks
+        # the window is the whole region's (its placement decides the reduced copy's phase), so a block measured
+        # alone gives the number it gives among all of its region's
+        box = (*pts[whole].min(axis=0), *(pts[whole].max(axis=0) + 1))
+        active = [(a, b) for k, (a, b) in enumerate(job.pairs) if need[k, sel].any()]
+        planes = sorted({z for p in active for z in p})
         held: dict[int, tuple] = {}
         for z in planes:
             win, small, corner = _window(source, z, box, margin, reduce, coarse)
@@ -163,23 +173,58 @@ def probe_pair(job: PairJob) -> list[dict]:
             held[z] = (win, corner, PlaneBlocks(win, here, plan) if data else None,
                        PlaneBlocks(small, np.rint(here / COARSE).astype(int), cplan) if data and reduce else None)
             for k, (a, b) in enumerate(job.pairs):
-                if b != z or a not in held:
+                if b != z or a not in held or not need[k, sel].any():
                     continue
                 (fa, corner, ba, ca), (fb, _, bb, cb) = held[a], held[b]
+                mine = need[k, sel]
                 if ba is None or bb is None:
+                    shifts[k, sel[mine]], ncc[k, sel[mine]], beyond[k, sel[mine]] = np.nan, np.nan, False
                     continue
                 s_, c_, b_ = match_planes(fa, fb, pts[sel] - corner, half=half, search=search, reach=reach,
                                           fine_sigma=st.probe_fine_sigma / f, coarse_sigma=st.probe_coarse_sigma / f,
                                           blocks=(ba, bb), coarse_blocks=(ca, cb) if reduce else None)
-                shifts[k, sel], ncc[k, sel], beyond[k, sel] = s_ * f, c_, b_
-            for y in [y for y in held if not any(y in p and p[1] > z for p in job.pairs)]:
+                shifts[k, sel[mine]], ncc[k, sel[mine]], beyond[k, sel[mine]] = s_[mine] * f, c_[mine], b_[mine]
+            for y in [y for y in held if not any(y in p and p[1] > z for p in active)]:
                 held.pop(y)  # no later pair needs it
     out = []
     for k, (a, b) in enumerate(job.pairs):
-        write_pair(job.build, a, b, job.fingerprints[k], shifts[k], ncc[k], beyond[k])
+        write_pair(job.build, a, b, job.fingerprints[k], shifts[k], ncc[k], beyond[k],
+                   job.made_from[k] if job.made_from else None)
         out.append({"z_from": a, "z_to": b, "fingerprint": job.fingerprints[k],
                     **link_summary(shifts[k], ncc[k], beyond[k], st.probe_min_confidence)})
     return out
+
+
+def _blocks_to_measure(job: PairJob, source: PlaneSource, pts: np.ndarray, margin: int, shifts, ncc, beyond):
+    """Return ``(pairs, blocks)`` bool: which blocks of each pair to measure; fill the kept ones from the stored pair.
+
+    A pair with ``keep`` boxes measures only the blocks whose reading reaches a box: the task reads
+    ``margin`` level px around a block centre, the data mask 4 px further and a written reduced
+    level ``COARSE`` px further (counted with room to spare), each level pixel covering ``factor``
+    level-0 px. Every other block is taken from the stored document, measured from the same
+    pixels. A pair whose stored document does not fit (changed in the meantime) is measured whole.
+    """
+    from .reuse import pair_arrays, stored_pair
+
+    need = np.ones((len(job.pairs), len(pts)), bool)
+    if not job.keep or not len(pts):
+        return need
+    f = source.factor
+    p0 = source.to_level0(pts)
+    reach0 = (margin + 8 + 2 * COARSE) * f + f
+    for k, boxes in enumerate(job.keep):
+        if not boxes:
+            continue
+        doc = stored_pair(job.build, *job.pairs[k])
+        if doc is None or len(doc.get("dx") or []) != len(pts):
+            continue
+        shifts[k], ncc[k], beyond[k] = pair_arrays(doc)
+        b = np.asarray(boxes, float).reshape(-1, 4)
+        meets = ((p0[:, None, 0] + reach0 >= b[None, :, 0]) & (p0[:, None, 0] - reach0 <= b[None, :, 2])
+                 & (p0[:, None, 1] + reach0 >= b[None, :, 1]) & (p0[:, None, 1] - reach0 <= b[None, :, 3]))
+        need[k] = meets.any(axis=1)
+        shifts[k, need[k]], ncc[k, need[k]], beyond[k, need[k]] = np.nan, np.nan, False
+    return need
 
 
 def link_summary(shifts: np.ndarray, ncc: np.ndarray, beyond: np.ndarray, min_ncc: float) -> dict:
@@ -228,41 +273,78 @@ class ProbeResult:
 
 
 def _stored_link(doc: dict, min_ncc: float) -> dict:
-    f = lambda xs: np.array([np.nan if v is None else v for v in xs], float)  # noqa: E731
-    shifts = np.column_stack([f(doc["dx"]), f(doc["dy"])])
-    beyond = np.zeros(len(shifts), bool)
-    beyond[doc.get("beyond") or []] = True
-    return link_summary(shifts, f(doc["ncc"]), beyond, min_ncc)
+    from .reuse import pair_arrays
+
+    return link_summary(*pair_arrays(doc), min_ncc)
+
+
+def _kept_boxes(old: dict | None, pair: tuple[int, int], made_from: list, changed: dict, blocks: int) -> list | None:
+    """Return the level-0 boxes to re-measure a stored pair in, or None when it must be measured whole.
+
+    The stored pair may be kept outside the boxes only when it was measured at the same level and
+    settings, and each of its planes is either as it was then or is a plane of ``changed`` whose
+    fingerprint before the change is the one the pair was measured from.
+    """
+    was = (old or {}).get("made_from")
+    if not was or was[0] != made_from[0] or len(old.get("dx") or []) != blocks:
+        return None
+    boxes = []
+    for then, now, z in zip(was[1:], made_from[1:], pair):
+        if then == now:
+            continue
+        c = changed.get(z)
+        if c is None or then is None or c.get("before") != then:
+            return None
+        boxes += [list(map(float, b)) for b in c.get("boxes") or []]
+    return boxes or None
 
 
 def measure_error(build_dir, source: PlaneSource, present: list[int], settings: ReportSettings, *,
-                  written: bool, max_factor: float, mapper=map, reuse: bool = True) -> ProbeResult:
+                  written: bool, max_factor: float, mapper=map, reuse: bool = True,
+                  changed: dict | None = None) -> ProbeResult:
     """Run the probe over the ``present`` planes through ``mapper``: pair tasks, then run tasks.
 
     With ``reuse``, a pair whose stored fingerprint equals its current one is not measured
     again, and a run whose stored fingerprint (its pairs', the stack's, the settings') is
     unchanged is not solved again; ``reuse=False`` measures and solves everything.
+
+    ``changed`` (``{z: {"before": render fingerprint, "boxes": [[x0, y0, x1, y1], ...]}}``, level-0
+    canvas px, ``x1, y1`` exclusive) says that plane ``z``, rendered from ``before`` when the stored
+    pairs were measured, has changed only inside the boxes since (an update's rewritten shards). A
+    pair of such a plane then measures again only the blocks whose reading reaches a box and keeps
+    the others from its stored document (:func:`_blocks_to_measure`); the result equals a full
+    measurement (``tests/test_qc_reuse.py``). A pair whose stored planes are not the ``before`` ones
+    is measured whole.
     """
     from ..folder import BuildFolder
-    from .reuse import pair_fingerprints, probe_reach, run_fingerprint, stored_pair, stored_run
+    from ..render.fingerprint import digest
+    from .reuse import pair_base, pair_fingerprints, probe_reach, render_fingerprints, run_fingerprint, stored_pair
+    from .reuse import stored_run
     from .runs import RunJob, jitter_run, runs_of
 
     folder = BuildFolder(build_dir)
     st = settings
     pairs = plane_pairs(present, st.probe_spans)
     fps = pair_fingerprints(folder, source, pairs, st)
-    links, todo = {}, {}
+    planes_fp = render_fingerprints(folder, source)
+    base = digest(pair_base(source, st))
+    made = {(a, b): [base, planes_fp.get(a), planes_fp.get(b)] for a, b in pairs}
+    nblocks = len(block_grid(source, st)[0])
+    links, todo, keep = {}, {}, {}
     for a, b in pairs:
         old = stored_pair(build_dir, a, b) if reuse and fps[(a, b)] is not None else None
         if old is not None and old.get("fingerprint") == fps[(a, b)]:
             links[(a, b)] = _stored_link(old, st.probe_min_confidence)
-        else:
-            todo.setdefault(a, []).append(b)
+            continue
+        todo.setdefault(a, []).append(b)
+        if changed and old is not None:
+            keep[(a, b)] = _kept_boxes(old, (a, b), made[(a, b)], changed, nblocks)
     index = {z: i for i, z in enumerate(present)}
     groups: dict[int, list] = {}
     for a, bs in sorted(todo.items()):
         groups.setdefault(index[a] // PAIRS_TASK, []).extend((a, b) for b in bs)
-    jobs = [PairJob(str(build_dir), written, max_factor, tuple(g), tuple(fps[p] for p in g), st)
+    jobs = [PairJob(str(build_dir), written, max_factor, tuple(g), tuple(fps[p] for p in g), st,
+                    tuple(made[p] for p in g), tuple(keep.get(p) for p in g))
             for _, g in sorted(groups.items())]
     fresh = set()
     for res in mapper(probe_pair, jobs):

@@ -330,7 +330,7 @@ def provenance(folder: BuildFolder, settings: ReportSettings, doc: dict) -> dict
 
 
 def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None = None,
-               progress=None, mapper=None, reuse: bool = True) -> Verdict:
+               progress=None, mapper=None, reuse: bool = True, changed: dict | None = None) -> Verdict:
     """Measure a build, write ``DIR/qc`` (metrics.json, CSV tables, PNG figures, report.html).
 
     Parameters
@@ -350,6 +350,10 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
     reuse : bool
         Re-use stored measurements whose inputs are unchanged (``DIR/qc/measured``, see
         :mod:`stackbuild.qc.reuse`); False measures everything again.
+    changed : dict, optional
+        ``{z: {"before": render fingerprint, "boxes": [[x0, y0, x1, y1], ...]}}``: plane ``z`` changed
+        only inside these level-0 boxes since it was rendered from ``before`` (an update's rewritten
+        shards); the probe then re-measures only the blocks there (:func:`stackbuild.qc.probe.measure_error`).
 
     Returns
     -------
@@ -365,7 +369,7 @@ def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None
         folder.qc_dir.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise InputError(f"cannot write the report folder ({exc.strerror})", file=folder.qc_dir) from None
-    doc, meas = collect(build_dir, settings, progress, mapper=mapper, reuse=reuse)
+    doc, meas = collect(build_dir, settings, progress, mapper=mapper, reuse=reuse, changed=changed)
     passed, failures, rows = judge(doc, thresholds)
     doc["verdict"] = {"passed": passed, "failures": failures, "thresholds": rows}
     doc["provenance"] = provenance(folder, settings, doc)

@@ -90,14 +90,19 @@ def pair_fingerprints(folder, source, pairs, settings) -> dict[tuple[int, int], 
     damaged, or read from the lazy volume).
     """
     planes = render_fingerprints(folder, source)
-    s = asdict(settings)
-    base = {"v": MEASURE_VERSION, "level": [source.origin, source.level, source.factor, source.bin],
-            "settings": {k: s[k] for k in PAIR_KEYS}, "shape": list(source.data.shape[1:])}
+    base = pair_base(source, settings)
     out = {}
     for a, b in pairs:
         fa, fb = planes.get(a), planes.get(b)
         out[(a, b)] = None if fa is None or fb is None else digest({**base, "a": [a, fa], "b": [b, fb]})
     return out
+
+
+def pair_base(source, settings) -> dict:
+    """Return what every pair's fingerprint shares: measure version, level, settings that change shifts, plane shape."""
+    s = asdict(settings)
+    return {"v": MEASURE_VERSION, "level": [source.origin, source.level, source.factor, source.bin],
+            "settings": {k: s[k] for k in PAIR_KEYS}, "shape": list(source.data.shape[1:])}
 
 
 def run_fingerprint(pair_fps: dict, window, stack, settings) -> str | None:
@@ -146,10 +151,15 @@ def stored_measurement(path) -> dict | None:
         return None
 
 
-def write_pair(build, a: int, b: int, fingerprint, shifts, ncc, beyond) -> None:
-    """Store one pair's block shifts (level-0 px), NCC and beyond-reach marks with its fingerprint."""
+def write_pair(build, a: int, b: int, fingerprint, shifts, ncc, beyond, made_from=None) -> None:
+    """Store one pair's block shifts (level-0 px), NCC and beyond-reach marks with its fingerprint.
+
+    ``made_from`` (``[base digest, render fingerprint of a, of b]``, see :func:`pair_base`) lets a
+    later report that is told where a plane changed re-measure only the blocks there
+    (:func:`stackbuild.qc.probe.measure_error`'s ``changed``).
+    """
     write_measurement(_pair_path(build, a, b), {
-        "fingerprint": fingerprint, "a": int(a), "b": int(b),
+        "fingerprint": fingerprint, "a": int(a), "b": int(b), "made_from": made_from,
         "dx": [_num(v) for v in shifts[:, 0]], "dy": [_num(v) for v in shifts[:, 1]],
         "ncc": [_num(v, 3) for v in ncc], "beyond": np.flatnonzero(beyond).tolist()})
 
@@ -159,13 +169,22 @@ def stored_pair(build, a: int, b: int) -> dict | None:
     return stored_measurement(_pair_path(build, a, b))
 
 
+def pair_arrays(doc: dict) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Return ``(shifts (B, 2), ncc (B,), beyond (B,) bool)`` of a stored pair document (NaN where unmatched)."""
+    f = lambda xs: np.array([np.nan if v is None else v for v in xs], float)  # noqa: E731
+    shifts = np.column_stack([f(doc["dx"]), f(doc["dy"])]).reshape(-1, 2)
+    beyond = np.zeros(len(shifts), bool)
+    beyond[doc.get("beyond") or []] = True
+    return shifts, f(doc["ncc"]), beyond
+
+
 def read_pair(build, a: int, b: int):
     """Return ``(shifts (B, 2), ncc (B,))`` of a stored pair (NaN where unmatched), or None."""
     doc = stored_pair(build, a, b)
     if doc is None:
         return None
-    f = lambda xs: np.array([np.nan if v is None else v for v in xs], float)  # noqa: E731
-    return np.column_stack([f(doc["dx"]), f(doc["dy"])]), f(doc["ncc"])
+    shifts, ncc, _ = pair_arrays(doc)
+    return shifts, ncc
 
 
 def write_run(build, first: int, fingerprint, result: dict, regions: list, sample: list) -> None:

@@ -125,10 +125,12 @@ def render_stage(build: BuildFolder, *, planes: list[int] | None = None, resume:
     return facts
 
 
-def report_stage(build: BuildFolder, *, fail_on: list[str] | None = None, progress=None, mapper=None):
+def report_stage(build: BuildFolder, *, fail_on: list[str] | None = None, progress=None, mapper=None,
+                 changed: dict | None = None):
     """Measure the result, draw the plots, write ``DIR/qc``; return the verdict.
 
-    ``mapper`` runs the report's region tasks (in this process when omitted).
+    ``mapper`` runs the report's region tasks (in this process when omitted). ``changed``: where an
+    update rewrote planes (see :func:`stackbuild.qc.stage.run`), so only that is measured again.
     """
     from ..qc.stage import run as run_report
 
@@ -136,7 +138,8 @@ def report_stage(build: BuildFolder, *, fail_on: list[str] | None = None, progre
     build.mark_stage("report", "running")
     t0 = time.monotonic()
     try:
-        verdict = run_report(build, build.config.report, fail_on=fail_on, progress=progress, mapper=mapper)
+        verdict = run_report(build, build.config.report, fail_on=fail_on, progress=progress, mapper=mapper,
+                             changed=changed)
     except InputError:
         # The report writes its files only once everything is measured: a refused or failed
         # report changed nothing, so the build record goes back to what it was, byte for byte.

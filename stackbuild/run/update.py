@@ -185,6 +185,9 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
     from . import stages
 
     seconds = plan.facts.setdefault("seconds", {})
+    if not plan.reached("rendered") and "planes_before" not in plan.facts:
+        plan.facts["planes_before"] = _planes_before(build)  # kept before any plane is rewritten
+        save_plan(build.root, plan)
     t0 = time.monotonic()
     with update_mappers(plan, workers, scheduler, show) as mappers:
         seconds["cluster"] = round(time.monotonic() - t0, 2)
@@ -198,7 +201,8 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
                 save_plan(build.root, plan)
         t0 = time.monotonic()
         # The report's tasks run where the steps ran (a cluster only for an append or a large update).
-        verdict = stages.report_stage(build, fail_on=fail_on, progress=mappers.bar("report"), mapper=mappers())
+        verdict = stages.report_stage(build, fail_on=fail_on, progress=mappers.bar("report"), mapper=mappers(),
+                                      changed=_changed_regions(build, plan))
         seconds["report"] = round(time.monotonic() - t0, 2)
     # The report re-measures only sections and planes whose inputs changed (qc/measured keeps the rest).
     doc = _metrics(build)
@@ -211,6 +215,36 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
     plan.status = "done"
     save_plan(build.root, plan)
     return verdict
+
+
+def _planes_before(build: BuildFolder) -> dict[str, str]:
+    """Return ``{z: render fingerprint}`` of the written planes as they are (damaged ones left out)."""
+    from ..render.fingerprint import read_plane_record
+
+    rec = read_plane_record(build.pyramid_path()) or {}
+    damaged = rec.get("damaged") or {}
+    return {z: fp for z, fp in (rec.get("fingerprints") or {}).items() if z not in damaged and fp}
+
+
+def _changed_regions(build: BuildFolder, plan: UpdatePlan) -> dict | None:
+    """Return where the render step changed planes, for the report: ``{z: {"before", "boxes"}}`` (level-0 px).
+
+    The boxes are the level-0 shards the step rewrote (every pixel outside them kept its bytes);
+    ``before`` is the plane's render fingerprint before the update. None (the report measures the
+    changed planes whole) after a full render or a grown canvas.
+    """
+    from .update_plan import unpack_shards
+
+    render, before = plan.render or {}, plan.facts.get("planes_before")
+    done = plan.facts.get("render") or {}
+    if before is None or not render.get("shards") or done.get("full", True) or any(render["canvas_facts"]["grew"]):
+        return None
+    width, height = render["canvas"]["width"], render["canvas"]["height"]
+    block = build.config.render.chunk * build.config.render.shard
+    return {int(z): {"before": before.get(z), "boxes": [[j * block, i * block, min((j + 1) * block, width),
+                                                         min((i + 1) * block, height)]
+                                                        for i, j in sorted(unpack_shards(packed))]}
+            for z, packed in render["shards"].items()}
 
 
 def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: bool = False,

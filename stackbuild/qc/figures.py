@@ -1,13 +1,13 @@
 """The report's figures and thumbnails, each drawn again only when what it shows changed.
 
 Every figure has a *key*: the numbers it draws (rows of the metrics document) or, for image
-panels, the render fingerprints of the planes it reads (what each plane was rendered from,
-:mod:`stackbuild.render.fingerprint`), where it reads and the settings that change it. Its PNG
+panels, a digest of the pixels it shows (read first: small windows and two lines through the
+stack at a coarse level, a fraction of drawing them), where it reads and the settings that change it. Its PNG
 ``DIR/qc/<name>.png`` is kept with the key's digest in ``DIR/qc/measured/figures/<name>.json``;
 a report whose key is unchanged takes the PNG as it is, without drawing (and without importing
-matplotlib when nothing is drawn). A figure without a key (planes of the lazy volume, or not
-recorded) is always drawn; ``reuse=False`` draws every figure. A re-report after an update that
-changed one plane redraws only the figures that show that plane or numbers that moved.
+matplotlib when nothing is drawn). A figure without a key (the channel overlays when a pyramid
+has no plane record) is always drawn; ``reuse=False`` draws every figure. A re-report after an
+update redraws only the figures whose pixels or numbers changed.
 
 The plane thumbnails of the stack strip are kept the same way, one per plane, in
 ``DIR/qc/measured/figures/thumbnails.json``.
@@ -42,14 +42,20 @@ class FigureStore:
         self.drawn: list[str] = []
         self.kept: list[str] = []
 
-    def get(self, name: str, caption: str, key, draw) -> tuple[str, Path]:
-        """Return ``(caption, path)`` of figure ``name``; ``draw()`` makes its matplotlib figure when it must be drawn."""
+    def get(self, name: str, caption: str, key, draw, numbers=None) -> tuple[str, Path]:
+        """Return ``(caption, path)`` of figure ``name``; ``draw()`` makes its matplotlib figure when it must be drawn.
+
+        ``numbers`` (a flat list of px values, None where there is none): the values the figure
+        plots, kept with its key; the figure is kept while each is within :data:`SEEN_PX` of the
+        value it was drawn with (compared with the drawn values, so changes do not add up).
+        """
         path = self.folder.qc_dir / f"{name}.png"
         stamp = self.folder.measurement_path("figures", name)
         fp = None if key is None else digest({"v": FIGURE_VERSION, "name": name, "key": jsonable(key)})
+        numbers = None if numbers is None else jsonable(list(numbers))
         if self.reuse and fp is not None and path.is_file():
             old = stored_measurement(stamp)
-            if old is not None and old.get("fingerprint") == fp:
+            if old is not None and old.get("fingerprint") == fp and _close(old.get("numbers"), numbers):
                 self.kept.append(name)
                 return caption, path
         stamp.unlink(missing_ok=True)  # the PNG is about to change: its old key no longer holds
@@ -57,26 +63,27 @@ class FigureStore:
 
         save(draw(), path)
         if fp is not None:
-            write_measurement(stamp, {"fingerprint": fp})
+            write_measurement(stamp, {"fingerprint": fp, "numbers": numbers})
         self.drawn.append(name)
         return caption, path
 
 
-def _plane_keys(folder: BuildFolder, source, planes) -> list | None:
-    """Return ``[(z, render fingerprint), ...]`` of the planes a figure reads, or None when one is unrecorded."""
-    if source is None:
-        return None
-    fps = render_fingerprints(folder, source)
-    out = [(int(z), fps.get(int(z))) for z in planes]
-    return None if any(f is None for _, f in out) else out
+def _close(drawn, now) -> bool:
+    """Return whether two lists of values are the same to within :data:`SEEN_PX` (None only where None)."""
+    if drawn is None or now is None:
+        return drawn is None and now is None
+    return len(drawn) == len(now) and all(
+        (a is None) == (b is None) and (a is None or abs(a - b) <= SEEN_PX) for a, b in zip(drawn, now))
 
 
 def _where(source) -> list:
     return [source.origin, source.level, source.factor, source.bin]
 
 
-def _rows(rows: list[dict], keys: tuple[str, ...]) -> list:
-    return [[r.get(k) for k in keys] for r in rows]
+#: an error figure is kept while its numbers stay within this (px) of those it was drawn with: less than
+#: a pixel of the error curve (396 px high for 2 px or more of error) or a step of the region map's colours
+#: (256 over the align_max bar), so the kept figure still shows the current numbers
+SEEN_PX = 0.005
 
 
 def draw_all(folder: BuildFolder, doc: dict, meas, settings: ReportSettings, store: FigureStore) -> list[tuple[str, Path]]:
@@ -91,8 +98,10 @@ def draw_all(folder: BuildFolder, doc: dict, meas, settings: ReportSettings, sto
         return plots.error_vs_z(rows, settings.align_max)
 
     out.append(store.get("error_z", "Estimated alignment error per plane, with its uncertainty (1 sigma)",
-                         [_rows(rows, ("z", "align_error_px", "align_error_unc_px", "lost")), settings.align_max],
-                         error_z))
+                         # which side of the bar each plane is on changes its marker: part of the key
+                         [[[r["z"], r["lost"], (r["align_error_px"] or 0) > settings.align_max] for r in rows],
+                          settings.align_max], error_z,
+                         [v for r in rows for v in (r["align_error_px"], r["align_error_unc_px"])]))
     grid, zs = region_grid(meas, doc)
     if grid is not None:
         def regions():
@@ -101,8 +110,8 @@ def draw_all(folder: BuildFolder, doc: dict, meas, settings: ReportSettings, sto
             return plots.region_map(grid, zs, settings.align_max)
 
         out.append(store.get("error_regions", "Estimated alignment error by region and plane",
-                             [np.where(np.isfinite(grid), grid, -1.0).round(6).tolist(), zs, settings.align_max],
-                             regions))
+                             [list(grid.shape), zs, settings.align_max], regions,
+                             [float(v) if np.isfinite(v) else None for v in grid.ravel()]))
     out += _field_figure(folder, doc, meas, settings, store, px)
     out += _reslice_figure(folder, doc, settings, store, px)
     if _has_channel_panels(folder, doc):
@@ -164,15 +173,29 @@ def _reslice_figure(folder, doc, settings, store, px) -> list:
     x, y = (at["x_px"], at["y_px"]) if at else (w / 2, h / 2)
     aspect = vol["section_thickness_nm"] / vol["pixel_size_nm"]
 
+    # keyed by the pixels it shows (two lines through every plane, read at a coarse level): an update that
+    # rewrote shards the lines do not cross keeps the figure
+    xz, yz = reslice_planes(src, x, y)
+
     def draw():
         from . import plots
 
-        xz, yz = reslice_planes(src, x, y)
         return plots.reslice(xz, yz, aspect, (x, y), src.factor, px)
 
-    planes = _plane_keys(folder, src, range(src.depth))
     return [store.get("reslice", "Orthogonal re-slices through the worst spot of the worst section",
-                      None if planes is None else [planes, _where(src), x, y, aspect, px], draw)]
+                      [_pixels(xz, yz), _where(src), x, y, aspect, px], draw)]
+
+
+def _pixels(*arrays) -> str:
+    """Return the SHA-256 of arrays' shapes and bytes: the key of a figure by the pixels it shows."""
+    import hashlib
+
+    h = hashlib.sha256()
+    for a in arrays:
+        a = np.ascontiguousarray(a)
+        h.update(repr((a.shape, a.dtype.str)).encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
 
 
 def region_grid(meas, doc) -> tuple[np.ndarray | None, list[int]]:
@@ -221,18 +244,18 @@ def failing_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettin
         title = (f"Section {worst['section']} (z {z}) between its neighbours, at its largest "
                  f"estimated error ({worst['align_error_max_px']:.2f} px)")
 
+        wins = [(k, window(src, k, at["x_px"], at["y_px"], half)) for k in picks]  # three small windows
+
         def draw():
             from . import plots
 
-            wins = [(k, window(src, k, at["x_px"], at["y_px"], half)) for k in picks]
             return plots.neighbour_panels(wins, (at["x_px"], at["y_px"]), px, src.factor, title)
 
-        planes = _plane_keys(folder, src, picks)
         out.append(store.get("worst_section",
                              f"The worst-aligned section, {worst['section']}: estimated error "
                              f"{worst['align_error_px']:.2f} px; its largest block {worst['align_error_max_px']:.2f} px",
-                             None if planes is None else [planes, _where(src), at["x_px"], at["y_px"], half, title, px],
-                             draw))
+                             [picks, _pixels(*(w for _, w in wins)), _where(src), at["x_px"], at["y_px"], half, title,
+                              px], draw))
     ranked = sorted((r for r in doc["sections"] if r["section"] in meas.seams and r["stitch"]["rms"] is not None),
                     key=lambda r: -r["stitch"]["rms"])[:min(settings.worst, 3)]
     if ranked:

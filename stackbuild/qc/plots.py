@@ -69,7 +69,8 @@ def save(fig, path: str | Path, dpi: int = 110) -> Path:
     """Write ``fig`` as PNG (Agg); return the path."""
     # constrained layouts already fit; "tight" would draw the figure twice
     tight = None if fig.get_layout_engine() is not None else "tight"
-    fig.savefig(path, dpi=dpi, bbox_inches=tight, facecolor="white")
+    # zlib level 1: about a fifth less encoding time than PIL's default 6 for 1-2 % larger files (bench_qc.py)
+    fig.savefig(path, dpi=dpi, bbox_inches=tight, facecolor="white", pil_kwargs={"compress_level": 1})
     return Path(path)
 
 

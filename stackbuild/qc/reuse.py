@@ -29,7 +29,8 @@ import numpy as np
 from ..render.fingerprint import digest
 
 #: bump when what a stored measurement holds or how it is measured changes (old files are then ignored)
-MEASURE_VERSION = 6  # 6: seams from the stitcher's offsets, checked against the raw tiles (measure.seams_of)
+MEASURE_VERSION = 7  # 6: seams from the stitcher's offsets, checked against the raw tiles (measure.seams_of);
+# 7: probe blocks whose first answer is within half the fine search matched around 0 (matching.NEAR)
 #: settings that change a section's seam measurement or its copied figures
 SECTION_KEYS = ("seam_spacing", "seam_half_size", "seam_max_shift", "seam_smooth", "min_block_ncc")
 #: settings that change a pair's block shifts

@@ -27,6 +27,24 @@ from .lazy import RenderPlan, block_edges, records_token, render_block
 from .reduce import reduce2x2
 
 
+def write_block(target, z: int, y0: int, x0: int, block: np.ndarray) -> None:
+    """Write ``block`` (shape ``(1, h, w)``, chunk-aligned at ``y0, x0``) into ``target[z, y0:, x0:]``.
+
+    zarr leaves out a chunk that holds only the fill value, and to know it compares every
+    chunk with a full array of the fill value (``numpy.array_equal`` on a new array: about
+    half of what zarr spends on writing a shard, measured on 4096 px shards of a build).
+    When no chunk of ``block`` is all fill value (a cheaper test: one ``any`` per chunk),
+    that comparison cannot leave anything out, so the write skips it
+    (``write_empty_chunks``); the bytes written are the same either way.
+    """
+    _, h, w = block.shape
+    cy, cx = target.chunks[1], target.chunks[2]
+    fill = target.fill_value
+    full = all((block[0, a:a + cy, b:b + cx] != fill).any() for a in range(0, h, cy) for b in range(0, w, cx))
+    out = target.with_config({"write_empty_chunks": True}) if full else target
+    out[z:z + 1, y0:y0 + h, x0:x0 + w] = block
+
+
 def render_shard(plan: RenderPlan, target, z: int, y0: int, y1: int, x0: int, x1: int,
                  reducer: str | None) -> np.ndarray | None:
     """Render level-0 pixels ``[z, y0:y1, x0:x1]`` (one shard), write them to ``target``, hand up their reduction.
@@ -41,7 +59,7 @@ def render_shard(plan: RenderPlan, target, z: int, y0: int, y1: int, x0: int, x1
         for b in range(x0, x1, c):
             out[:, a - y0:min(a + c, y1) - y0, b - x0:min(b + c, x1) - x0] = \
                 render_block(plan, z, a, min(a + c, y1), b, min(b + c, x1))
-    target[z:z + 1, y0:y1, x0:x1] = out
+    write_block(target, z, y0, x0, out)
     return None if reducer is None else reduce2x2(out, reducer)
 
 
@@ -49,7 +67,7 @@ def join_shard(quarters: list[list[np.ndarray]], target, z: int, y0: int, x0: in
                reducer: str | None) -> np.ndarray | None:
     """Join the quarters handed up from the level below into one shard at ``[z, y0:, x0:]``, write it, hand up its reduction."""
     block = quarters[0][0] if len(quarters) == 1 and len(quarters[0]) == 1 else np.block(quarters)
-    target[z:z + 1, y0:y0 + block.shape[1], x0:x0 + block.shape[2]] = block
+    write_block(target, z, y0, x0, block)
     return None if reducer is None else reduce2x2(block, reducer)
 
 

@@ -14,8 +14,10 @@ CONTRAST_SHADING_SIGMA = 4.0
 QUANTISATION_NOISE = float(1.0 / np.sqrt(12.0))
 #: A value is a pile-up (clipping) when it holds this many times the pixels of the next value inward.
 PILE_UP_FACTOR = 4.0
-#: Most filter responses the noise estimate takes its spread over.
-NOISE_SAMPLES = 1 << 18
+#: Most filter responses the noise and focus estimates take their spread over (a grid over
+#: the tile): the median of 65536 values has a relative standard error of about 0.5 %
+#: (1.25 / sqrt(n) of a normal spread), far below what the flags' thresholds resolve.
+STAT_SAMPLES = 1 << 16
 
 
 def _minus_quadratic(values: np.ndarray) -> np.ndarray:
@@ -68,6 +70,25 @@ def focus_measure(image: np.ndarray) -> float:
     return float(cv2.Laplacian(img, cv2.CV_32F, ksize=1).var())
 
 
+def _grid_step(height: int, width: int) -> int:
+    """Return the step of the regular grid of interior pixels that holds at most ``STAT_SAMPLES`` of them."""
+    return max(1, int(np.ceil(np.sqrt(max(height - 2, 1) * max(width - 2, 1) / STAT_SAMPLES))))
+
+
+def _rows_cols(image: np.ndarray, step: int, rows: int, cols: int) -> np.ndarray:
+    """Return the float32 pixels ``image[1 + rows + step * i, 1 + cols + step * j]`` of the interior grid."""
+    h, w = image.shape
+    return image[1 + rows:h - 1 + rows:step, 1 + cols:w - 1 + cols:step].astype(np.float32)
+
+
+def _second_difference(image: np.ndarray, step: int, rows: int, cols: int) -> np.ndarray:
+    """Return ``[1, -2, 1]`` along x at the interior grid of ``step``, on the rows moved by ``rows``."""
+    out = _rows_cols(image, step, rows, -1)
+    out -= 2 * _rows_cols(image, step, rows, 0)
+    out += _rows_cols(image, step, rows, 1)
+    return out
+
+
 def pixel_noise(image: np.ndarray) -> float:
     """Return the standard deviation of the pixel noise of a tile, in its own grey levels.
 
@@ -77,26 +98,55 @@ def pixel_noise(image: np.ndarray) -> float:
     ``[[1, -2, 1], [-2, 4, -2], [1, -2, 1]]`` (the difference of two
     Laplacians, blind to locally linear intensity), whose response to white
     noise of deviation ``sigma`` has deviation ``6 sigma``. A robust spread
-    (``1.4826 * MAD``) of the response, over every other row, replaces the
-    paper's mean absolute value so that edges and granules do not count as
-    noise; it is taken over at most ``NOISE_SAMPLES`` responses on a
-    regular grid. Floored at the rounding noise of integer pixels.
+    (``1.4826 * MAD``) of the response replaces the paper's mean absolute
+    value so that edges and granules do not count as noise. The response is
+    computed only at a regular grid of at most ``STAT_SAMPLES`` interior
+    pixels (the mask is separable: ``[1, -2, 1]`` across, then down), not
+    over the whole tile. Floored at the rounding noise of integer pixels.
 
     References
     ----------
     .. [1] J. Immerkaer, "Fast noise variance estimation", Computer Vision
        and Image Understanding 64(2), 300-302 (1996). doi:10.1006/cviu.1996.0060
     """
-    img = np.asarray(image, dtype=np.float32)
-    if min(img.shape) < 3:
+    img = np.asarray(image)
+    if img.ndim != 2 or min(img.shape) < 3:
         return QUANTISATION_NOISE
-    mask = np.array([[1, -2, 1], [-2, 4, -2], [1, -2, 1]], np.float32)
-    resp = cv2.filter2D(img, cv2.CV_32F, mask, borderType=cv2.BORDER_REFLECT)[1:-1, 1:-1]
-    # A spread over a quarter of a million responses is as good as over all of them.
-    step = max(1, int(np.ceil(np.sqrt(resp.size / NOISE_SAMPLES))))
-    resp = resp[::step, ::step].ravel()
+    step = _grid_step(*img.shape)
+    resp = _second_difference(img, step, -1, 0)
+    resp -= 2 * _second_difference(img, step, 0, 0)
+    resp += _second_difference(img, step, 1, 0)
+    resp = resp.ravel()
     mad = float(np.median(np.abs(resp - np.median(resp))))
     return max(1.4826 * mad / 6.0, QUANTISATION_NOISE)
+
+
+def sampled_focus(image: np.ndarray) -> float:
+    """Return :func:`focus_measure` estimated from the Laplacian at a grid of at most ``STAT_SAMPLES`` interior pixels.
+
+    The variance of a few tens of thousands of Laplacian values spread over the
+    tile is within a few per cent of the whole tile's (the focus flag compares
+    a tile with a fraction of its section's median), at a fraction of the cost.
+    """
+    img = np.asarray(image)
+    if img.ndim != 2 or min(img.shape) < 3:
+        return focus_measure(img)
+    step = _grid_step(*img.shape)
+    lap = _rows_cols(img, step, -1, 0)
+    lap += _rows_cols(img, step, 1, 0)
+    lap += _rows_cols(img, step, 0, -1)
+    lap += _rows_cols(img, step, 0, 1)
+    lap -= 4 * _rows_cols(img, step, 0, 0)
+    return float(lap.var(dtype=np.float64))
+
+
+def _mean_std(image: np.ndarray) -> tuple[float, float]:
+    """Return the mean and (population) standard deviation of a tile's pixels, without a float copy for 8/16-bit ones."""
+    if image.dtype in (np.uint8, np.uint16, np.float32) and image.flags.c_contiguous:
+        mean, std = cv2.meanStdDev(image)
+        return float(mean[0, 0]), float(std[0, 0])
+    img = image.astype(np.float32)
+    return float(img.mean()), float(img.std())
 
 
 def _pile_up(image: np.ndarray) -> tuple[float, float]:
@@ -168,7 +218,7 @@ def tile_stats(image: np.ndarray) -> dict:
         (``noise / CONTRAST_BLOCK``), about 1 for a tile of pure noise;
         ``saturated_fraction`` and ``zero_fraction``, the shares of pixels
         piled up at the tile's highest and lowest value (see
-        :func:`_pile_up`); ``focus`` (:func:`focus_measure`, compared only
+        :func:`_pile_up`); ``focus`` (:func:`sampled_focus`, compared only
         within a section).
 
     Notes
@@ -179,22 +229,22 @@ def tile_stats(image: np.ndarray) -> dict:
     image = np.asarray(image)
     if image.ndim != 2:
         raise ValueError(f"tile must be 2-D, got shape {image.shape}")
-    img = image.astype(np.float32)
     sub = image[::4, ::4] if image.size > 1 << 20 else image
     p01, median, p99 = (float(v) for v in percentiles(sub, [1, 50, 99]))
-    noise = pixel_noise(img)
-    contrast = robust_contrast(img)
+    noise = pixel_noise(image)
+    contrast = robust_contrast(image)
     top, bottom = _pile_up(image)
+    mean, std = _mean_std(image)
     return {
-        "mean": float(img.mean()),
-        "std": float(img.std()),
+        "mean": mean,
+        "std": std,
         "median": median, "p01": p01, "p99": p99,
         "noise": noise,
         "contrast": contrast,
         "contrast_to_noise": contrast / (noise / CONTRAST_BLOCK),
         "saturated_fraction": top,
         "zero_fraction": bottom,
-        "focus": focus_measure(img),
+        "focus": sampled_focus(image),
     }
 
 

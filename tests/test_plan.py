@@ -104,15 +104,16 @@ def _measure_twice(tiles, folder):
     Also the reference workload's parts' CPU times, before, between and after the builds (per part
     the least of them), so the plan is scaled to this machine's speed at the time of the
     measurement: a single 0.4 s reading of it was once seen 2.3x slow in a full suite run (the
-    builds' CPU was not).
+    builds' CPU was not). Two builds, because one build's render on a loaded machine was seen
+    anywhere from 0.54 to 1.24 s of CPU.
     """
     from stackbuild.run.plan_speed import reference_cpu_parts
 
-    references = [reference_cpu_parts()]
+    references = [reference_cpu_parts(repeats=5)]
     first = measure_build(tiles, folder / "build1")
-    references.append(reference_cpu_parts())
+    references.append(reference_cpu_parts(repeats=5))
     second = measure_build(tiles, folder / "build2")
-    references.append(reference_cpu_parts())
+    references.append(reference_cpu_parts(repeats=5))
     parts = {name: min(r[name] for r in references) for name in references[0]}
     return {**fastest(first, second), "reference_parts_s": parts, "references": references}
 

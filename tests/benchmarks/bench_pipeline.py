@@ -22,6 +22,7 @@ peak memory of the largest process.
     python tests/benchmarks/bench_pipeline.py                      # 3 and 6 sections of 4 x 4 tiles of 1024 px
     python tests/benchmarks/bench_pipeline.py --sizes 5,10 --grid 5 --memory
     python tests/benchmarks/bench_pipeline.py --sizes 5,10 --grid 5 --keep-data /tmp/bench_stacks  # synthesise once
+    python tests/benchmarks/bench_pipeline.py --sizes 5,10 --grid 5 --keep-data /tmp/bench_stacks --baseline /tmp/old
 """
 from __future__ import annotations
 
@@ -29,6 +30,7 @@ import argparse
 import json
 import os
 import resource
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -70,13 +72,20 @@ def _running_stage(build: Path) -> str:
     return running[-1] if running else ("end" if stages else "start")
 
 
-def run_build(tiles: Path, out: Path, workers: int) -> dict:
-    """Run ``stackbuild build`` in a child process; return wall and CPU per stage and the largest process's peak."""
+def run_build(tiles: Path, out: Path, workers: int, source: Path | None = None) -> dict:
+    """Run ``stackbuild build`` in a child process; return wall and CPU per stage and the largest process's peak.
+
+    ``source``: a source tree (holding ``stackbuild/``) whose code the build runs instead of this one's
+    (put first on ``PYTHONPATH``, which the cluster's worker processes inherit).
+    """
     cmd = [sys.executable, "-m", "stackbuild.cli", "build", str(tiles), "--out", str(out), "--quiet",
            "--workers", str(workers)]
+    env = dict(os.environ)
+    if source is not None:
+        env["PYTHONPATH"] = os.pathsep.join([str(source), *filter(None, [env.get("PYTHONPATH")])])
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env)
     top = psutil.Process(proc.pid)
     cpu_by_stage: dict[str, float] = {}
     seen: dict[int, float] = {}
@@ -153,14 +162,36 @@ def io_floor(tiles: Path, out: Path, threads: int) -> dict:
             "level0_mpx": depth * h * w / 1e6, "codec": codec_name}
 
 
-def one_size(tmp: Path, data: Path, sections: int, grid: int, tile: int, workers: int) -> dict:
-    """Build one size and measure its floor."""
-    tiles = synth(data / f"data-{sections}-{grid}-{tile}", sections, grid, tile)
+def one_size(tmp: Path, data: Path, sections: int, grid: int, tile: int, workers: int,
+             baseline: Path | None = None) -> tuple[dict, dict | None]:
+    """Build one size and measure its floor; with ``baseline``, build it first with that source tree too."""
+    folder = data / f"data-{sections}-{grid}-{tile}"
+    folder.mkdir(parents=True, exist_ok=True)
+    tiles = synth(folder, sections, grid, tile)
+    base = None
+    if baseline is not None:
+        base = run_build(tiles, tmp / f"base-{sections}-{grid}", workers, baseline)
+        shutil.rmtree(tmp / f"base-{sections}-{grid}")
     out = tmp / f"build-{sections}-{grid}"
     res = run_build(tiles, out, workers)
-    res.update(io_floor(tiles, out, workers))
-    res["sections"] = sections
-    return res
+    floor = io_floor(tiles, out, workers)
+    for r in (res, base):
+        if r is not None:
+            r.update(floor, sections=sections)
+    return res, base
+
+
+def stage_table(ours: tuple[dict, dict], base: tuple[dict, dict]) -> None:
+    """Print the marginal CPU per stage (larger size less smaller) of the baseline beside ours."""
+    print(f"\n{'marginal CPU s by stage':<28}{'baseline':>10}{'this tree':>11}{'ratio':>8}")
+    for stage in (*STAGES, "build"):
+        def extra(pair):
+            if stage == "build":
+                return pair[1]["cpu_total"] - pair[0]["cpu_total"]
+            return pair[1]["stage_cpu"].get(stage, 0.0) - pair[0]["stage_cpu"].get(stage, 0.0)
+        b, o = extra(base), extra(ours)
+        if b or o:
+            print(f"{stage:<28}{b:>10.1f}{o:>11.1f}{(o / b if b else float('nan')):>8.2f}")
 
 
 def report(a: dict, b: dict | None, workers: int) -> None:
@@ -216,16 +247,25 @@ def main(argv=None) -> None:
                     help="also compare the largest process's peak at 3 x 3 and 7 x 7 tiles per section")
     ap.add_argument("--keep-data", type=Path, default=None, metavar="DIR",
                     help="synthesise the stacks into DIR and reuse them on later runs (default: a temporary folder)")
+    ap.add_argument("--baseline", type=Path, default=None, metavar="DIR",
+                    help="also build each size with the source tree DIR (e.g. `git archive COMMIT stackbuild | "
+                         "tar -x -C DIR`), before this tree's build, and print both with the stages side by side")
     args = ap.parse_args(argv)
     n1, n2 = (int(v) for v in args.sizes.split(","))
     with tempfile.TemporaryDirectory(prefix="bench_pipeline_", dir=os.environ.get("TMPDIR")) as tmp:
         tmp = Path(tmp)
         data = args.keep_data or tmp
-        a = one_size(tmp, data, n1, args.grid, args.tile, args.workers)
-        b = one_size(tmp, data, n2, args.grid, args.tile, args.workers)
+        a, base_a = one_size(tmp, data, n1, args.grid, args.tile, args.workers, args.baseline)
+        b, base_b = one_size(tmp, data, n2, args.grid, args.tile, args.workers, args.baseline)
         print(f"{args.grid} x {args.grid} tiles of {args.tile} px per section, {args.workers} workers, "
               f"{os.cpu_count()} cores")
+        if args.baseline is not None:
+            print(f"\nbaseline ({args.baseline}):")
+            report(base_a, base_b, args.workers)
+            print("\nthis tree:")
         report(a, b, args.workers)
+        if args.baseline is not None:
+            stage_table((a, b), (base_a, base_b))
         if args.memory:
             small = run_build(synth(data / "m3", 3, 3, 1024), tmp / "mb3", args.workers)
             big = run_build(synth(data / "m7", 3, 7, 1024), tmp / "mb7", args.workers)

@@ -13,6 +13,16 @@ against the known offsets.
     python tests/benchmarks/bench_stitch.py --full     # 10x10 tiles of 2048 px
     python tests/benchmarks/bench_stitch.py --grid 3 --tile 1024
     python tests/benchmarks/bench_stitch.py --memory   # peak RSS of a stitch task, 3x3 vs 7x7 tiles of 1024 px
+    python tests/benchmarks/bench_stitch.py --accuracy --baseline /tmp/old  # vs truth, beside another source tree
+
+``--accuracy`` stitches every section of the named synthetic stacks of both
+families (``standard``, ``realistic``; variants ``base`` and ``bits12``, one blank
+tile in section 1; seeds 0-2 unless ``--seeds``) and prints each section's
+placement error against the synthetic truth (non-blank tiles, common translation
+removed) and its stitch CPU time. With ``--baseline DIR`` (a source tree of
+another commit, e.g. ``git archive COMMIT stackbuild | tar -x -C DIR``) the same
+sections are stitched by that code in a child process, the two runs alternating
+case by case, and printed side by side.
 
 ``--memory`` runs each stitch task in a fresh process (multiprocessing,
 spawn) and reports its peak resident set size (``VmHWM``) beside the same
@@ -40,7 +50,8 @@ import cv2  # noqa: E402
 import numpy as np  # noqa: E402
 import tifffile  # noqa: E402
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
+# --accuracy's baseline child imports the stackbuild of another source tree.
+sys.path.insert(0, os.environ.get("BENCH_STITCH_SOURCE") or str(Path(__file__).resolve().parents[2]))
 
 from skimage.registration import phase_cross_correlation  # noqa: E402
 
@@ -178,6 +189,74 @@ def memory(tile: int, grids=(3, 7)) -> None:
     print(f"peak ratio {b}x{b} / {a}x{a}: {peaks[b] / peaks[a]:.2f}")
 
 
+ACCURACY_CASES = [(f, v) for f in ("standard", "realistic") for v in ("base", "bits12")]
+
+
+def _accuracy_stack(data: Path, family: str, variant: str, seed: int) -> Path:
+    """Return the folder of one named stack (2 sections, a blank tile in section 1), synthesising it once."""
+    from stackbuild.synth import generate
+    from stackbuild.synth.variants import variant_params
+    folder = data / f"{family}-{variant}-{seed}"
+    if not (folder / "tiles.csv").exists():
+        generate(folder, variant_params(family, variant, seed, sections=2, blank_tiles="1:r1c1"))
+    return folder
+
+
+def accuracy_rows(folder: Path) -> list[dict]:
+    """Return, per section of ``folder``, the placement error against the truth and the stitch CPU time."""
+    from stackbuild.synth import load_truth
+    truth = load_truth(folder)
+    manifest = read_tile_manifest(folder / "tiles.csv")
+    rows = []
+    for s in manifest.sections:
+        c0 = time.process_time()
+        res = stitch_section(manifest.section_tiles(s), StitchSettings(), s)
+        cpu = time.process_time() - c0
+        true = truth.tile_positions(s)
+        keep = [t for t in res.tiles if "blank" not in t.flags]
+        d = np.array([(t.x - true[t.tile][0], t.y - true[t.tile][1]) for t in keep])
+        d -= d.mean(axis=0)
+        err = np.hypot(d[:, 0], d[:, 1])
+        rows.append({"section": s, "rms": float(np.sqrt(np.mean(err ** 2))), "max": float(err.max()),
+                     "accepted": res.stats["pairs_accepted"], "pairs": res.stats["pairs"], "cpu": cpu})
+    return rows
+
+
+def _baseline_rows(source: Path, folder: Path) -> list[dict]:
+    import json
+    import subprocess
+    env = {**os.environ, "BENCH_STITCH_SOURCE": str(source)}
+    out = subprocess.run([sys.executable, __file__, "--accuracy-child", str(folder)], env=env,
+                         check=True, capture_output=True, text=True).stdout
+    return json.loads(out.splitlines()[-1])
+
+
+def accuracy(data: Path, seeds: list[int], baseline: Path | None) -> None:
+    """Print placement errors against the truth per section, beside ``baseline``'s when given."""
+    head = f"{'stack':26s} {'sec':>3s} {'rms px':>7s} {'max px':>7s} {'acc/pairs':>9s} {'CPU s':>6s}"
+    print(head + ("   | baseline: rms, max, acc/pairs, CPU s" if baseline else ""))
+    tot = {"ours": [], "base": []}
+    for family, variant in ACCURACY_CASES:
+        for seed in seeds:
+            folder = _accuracy_stack(data, family, variant, seed)
+            ours = accuracy_rows(folder)
+            base = _baseline_rows(baseline, folder) if baseline else [None] * len(ours)
+            for o, b in zip(ours, base):
+                line = (f"{folder.name:26s} {o['section']:3d} {o['rms']:7.3f} {o['max']:7.3f} "
+                        f"{o['accepted']:4d}/{o['pairs']:<4d} {o['cpu']:6.2f}")
+                if b:
+                    line += (f"   | {b['rms']:7.3f} {b['max']:7.3f} {b['accepted']:4d}/{b['pairs']:<4d} "
+                             f"{b['cpu']:6.2f}")
+                    tot["base"].append(b)
+                tot["ours"].append(o)
+                print(line, flush=True)
+    for name, rows in tot.items():
+        if rows:
+            print(f"{name}: mean rms {np.mean([r['rms'] for r in rows]):.3f} px, worst max "
+                  f"{max(r['max'] for r in rows):.3f} px, pairs accepted {sum(r['accepted'] for r in rows)}, "
+                  f"stitch CPU {sum(r['cpu'] for r in rows):.2f} s")
+
+
 def main(argv=None) -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--grid", type=int, default=4, help="tiles per side (default 4)")
@@ -189,7 +268,27 @@ def main(argv=None) -> None:
                    help="show skimage's float32 overflow warnings (hidden by default)")
     p.add_argument("--memory", action="store_true",
                    help="peak RSS of a stitch task at 3x3 and 7x7 tiles of 1024 px, each in a fresh process")
+    p.add_argument("--accuracy", action="store_true",
+                   help="placement error vs the synthetic truth on both families (see the module docstring)")
+    p.add_argument("--seeds", default="0,1,2", help="seeds of --accuracy (default 0,1,2)")
+    p.add_argument("--data", type=Path, default=None, help="folder that keeps --accuracy's stacks between runs")
+    p.add_argument("--baseline", type=Path, default=None, metavar="DIR",
+                   help="with --accuracy: a source tree (holding stackbuild/) to run beside this one")
+    p.add_argument("--accuracy-child", type=Path, default=None, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
+    if args.accuracy_child:
+        import json
+        print(json.dumps(accuracy_rows(args.accuracy_child)))
+        return
+    if args.accuracy:
+        seeds = [int(v) for v in args.seeds.split(",")]
+        if args.data is not None:
+            args.data.mkdir(parents=True, exist_ok=True)
+            accuracy(args.data, seeds, args.baseline)
+        else:
+            with tempfile.TemporaryDirectory() as tmp:
+                accuracy(Path(tmp), seeds, args.baseline)
+        return
     if args.memory:
         memory(1024 if args.tile == 2048 else args.tile)
         return

@@ -9,7 +9,7 @@ import numpy as np
 import scipy.fft
 
 from .overlaps import Overlap
-from .phasecorr import MOVED_WINDOW_FROM, phase_correlate, taper_window
+from .phasecorr import phase_correlate, taper_window
 
 #: Overlaps narrower than this (pixels) after re-cutting cannot be scored.
 MIN_SCORED = 8
@@ -18,8 +18,6 @@ COARSE_TAPER = 4
 #: Search radius (pixels) per bin of the coarse pass, and the largest binning.
 COARSE_PIXELS_PER_BIN = 24
 MAX_COARSE_BIN = 4
-#: A binned coarse peak is refined to ``1 / COARSE_REFINE`` of a full-resolution pixel.
-COARSE_REFINE = 2
 
 
 @dataclass
@@ -175,14 +173,11 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
     Notes
     -----
     Pass 1 correlates the two kept strips, each tapered and laid on a zero
-    canvas and binned by :func:`coarse_bin` (search bounded by ``search``;
-    a binned peak is refined to half a full-resolution pixel). The strips
-    are then re-cut at the overlap implied by that estimate, so that both
-    hold the same specimen area, and correlated again at full resolution;
-    the residual shift is now within about a pixel. A residual of half a
-    pixel or more re-cuts once more at the nearer whole pixel (where the Hann
-    window's pull is negligible; beyond half a pixel the last pass removes it
-    by moving the window, see :func:`phase_correlate`). The peak ratio and NCC of the final pass
+    canvas and binned by :func:`coarse_bin` (integer peak, search bounded
+    by ``search``). The strips are then re-cut at the overlap implied
+    by that estimate, so that both hold the same specimen area, and
+    correlated again; the residual shift is now small, where the Hann
+    window's bias is negligible. The peak ratio and NCC of the final pass
     decide acceptance.
     """
     nom = np.asarray(nominal, dtype=np.float64)
@@ -194,14 +189,12 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
     limit = search + 2 * b
     fa, fb = _coarse_canvases(strip_a, strip_b, ov, nominal, b, int(math.ceil(limit)))
     # Low-pass on the binned canvases would cut b times more of the band; the bins already average noise.
-    # A binned peak is refined to half a full-resolution pixel, so that the re-cut pass starts within
-    # about a pixel of the offset and is the last one.
-    (sx, sy), ratio = phase_correlate(fa, fb, upsample=COARSE_REFINE * b if b > 1 else 1,
-                                      max_shift=limit / b, window=False, spectral_exponent=spectral_exponent)
+    (sx, sy), ratio = phase_correlate(fa, fb, upsample=1, max_shift=limit / b, window=False,
+                                      spectral_exponent=spectral_exponent)
     d = nom - b * np.array([sx, sy])
     if max(abs(sx), abs(sy)) >= limit / b - 1:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
-    moved = False  # a first re-cut off by half a pixel or more is cut again rather than corrected for the window
+    up = 1 if b > 1 else upsample  # a binned estimate is first brought to the whole pixel
     for _ in range(4):
         di = np.round(d)
         x0, y0, x1, y1 = _true_box(di, size_a, size_b, ov)
@@ -209,13 +202,12 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
             return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "small_overlap")
         box_b = (x0 - int(di[0]), y0 - int(di[1]), x1 - int(di[0]), y1 - int(di[1]))
         ca, cb = _cut(strip_a, ov.pad_a, (x0, y0, x1, y1)), _cut(strip_b, ov.pad_b, box_b)
-        (sx, sy), ratio = phase_correlate(ca, cb, upsample=upsample, max_shift=2 * b + 2,
-                                          moved_window=moved, **spectral)
+        (sx, sy), ratio = phase_correlate(ca, cb, upsample=up, max_shift=2 * b + 2, **spectral)
         d = di - np.array([sx, sy])
-        residual = max(abs(sx), abs(sy))
-        if residual < MOVED_WINDOW_FROM or (moved and residual <= 1.0):
+        if max(abs(sx), abs(sy)) <= 1.0 and up == upsample:
             break
-        moved = True
+        if max(abs(sx), abs(sy)) <= 1.0:
+            up = upsample
     if np.max(np.abs(d - nom)) > limit:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
     ncc, _, _ = ncc_after_shift(ca, cb, (sx, sy))

@@ -218,7 +218,7 @@ def _normalised(conj_fixed: np.ndarray, moving: np.ndarray, exponent: float) -> 
 def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
                     max_shift: float | None = None, window: bool = True,
                     spectral_exponent: float = 1.0, lowpass: float | None = None,
-                    classical: bool = False, moved_window: bool = True) -> tuple[tuple[float, float], float]:
+                    classical: bool = False) -> tuple[tuple[float, float], float]:
     """Return the sub-pixel shift ``(dx, dy)`` of ``moving`` relative to ``fixed``, and the peak ratio.
 
     Parameters
@@ -253,10 +253,6 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
         ``skimage.registration.phase_cross_correlation(upsample_factor=...)``
         gives, sub-pixel bias included. Kept for comparison; the default
         removes two biases (see Notes).
-    moved_window : bool
-        Remove the window's pull for shifts of ``MOVED_WINDOW_FROM`` px or
-        more (see Notes). False skips that second pass, for a caller that
-        re-cuts its images at a shift that large and correlates them again.
 
     Returns
     -------
@@ -341,7 +337,7 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
         sigma = REFINE_SIGMA if lowpass is None else min(float(lowpass), REFINE_SIGMA)
         weight = _gaussian_weight(m, n, sigma)
         y0, x0 = _refine(cross * weight, n, y0, x0, upsample)
-        if window and moved_window and max(abs(y0), abs(x0)) >= MOVED_WINDOW_FROM:
+        if window and max(abs(y0), abs(x0)) >= MOVED_WINDOW_FROM:
             # the window moved by the estimate: the windowed moving image is now the windowed
             # fixed one moved by the shift, so the window no longer pulls the peak toward 0
             moved = np.outer(_hann_at(m0, y0), _hann_at(n0, x0))

@@ -252,3 +252,30 @@ def test_an_error_figure_is_kept_while_its_numbers_move_less_than_it_can_show(tm
     assert get([0.5 + 0.8 * SEEN_PX, None]) == 1      # invisible: kept
     assert get([0.5 + 1.6 * SEEN_PX, None]) == 2      # 1.6 steps from what was drawn: drawn again
     assert get([0.5 + 1.6 * SEEN_PX, 0.1]) == 3       # a value appeared
+
+
+def test_probe_tasks_split_by_region_give_the_numbers_of_one_task_per_run(first, tmp_path):
+    # each region is measured on its own window, so plane run x region tasks joined by the merge tasks must
+    # store the very pair documents and give the very estimates of one task per run of planes (exact equality:
+    # the same arithmetic on the same pixels; no outside source needed for an identity)
+    import dataclasses
+    import shutil
+
+    root = tmp_path / "build"
+    shutil.copytree(first[0], root, symlinks=True)
+    pairs_dir = root / "qc" / "measured" / "pairs"
+    got = {}
+    for per_task in (1000, 1):
+        st = dataclasses.replace(SETTINGS, region_size=128, probe_task_regions=per_task)
+        mapper = Counting()
+        doc, _ = collect(root, st, mapper=mapper, reuse=False)
+        got[per_task] = (doc, [p.read_text() for p in sorted(pairs_dir.glob("*.json"))], mapper)
+    (one, pairs_one, m_one), (many, pairs_many, m_many) = got[1000], got[1]
+    assert len(m_one.of("probe_pair")) == 1 and m_one.of("merge_pair_parts") == []
+    regions = {r for j in m_many.of("probe_pair") for r in j.regions}
+    assert len(regions) > 1 and len(m_many.of("probe_pair")) == len(regions)
+    assert len(m_many.of("merge_pair_parts")) == 1
+    assert not list((root / "qc" / "measured" / "parts").glob("*.json"))  # parts removed once merged
+    assert pairs_one == pairs_many
+    for a, b in zip(one["sections"], many["sections"]):
+        assert a["align_error_px"] == b["align_error_px"]

@@ -2,7 +2,11 @@
 
 :func:`probe_pair` is one task: up to ``PAIRS_TASK`` planes, each against the
 next ``probe_spans`` present planes (or, on a re-report, only the pairs to
-measure again). It reads the planes one region window at a time
+measure again), in up to ``probe_task_regions`` regions of the block grid (a
+plane run x region share; when a plane has more regions, each share writes its
+blocks to a part file and one :func:`merge_pair_parts` task per run of planes
+joins them into the pair documents, so the driver still receives per-pair
+summaries only). It reads the planes one region window at a time
 (``region_size`` level-0 px plus a margin, in the stored dtype with its data
 mask: at the defaults about 2.4k x 2.4k x 2 B = 11 MB per window, at most
 ``probe_spans + 1`` windows held, whatever the section's size), cuts the
@@ -22,7 +26,7 @@ summaries only.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -45,6 +49,22 @@ class PairJob:
     made_from: tuple = ()                 # per pair: [base digest, render fingerprint of a, of b] (reuse.write_pair)
     keep: tuple = ()                      # per pair: None (measure every block) or the level-0 boxes where a plane
                                           # changed: only blocks reaching them are measured, the rest are stored
+    regions: tuple = ()                   # regions of the block grid this task measures (empty: all of them)
+    part: str = ""                        # set when ``regions`` is a share: the blocks go to this part file
+                                          # (merged into the pair documents by :func:`merge_pair_parts`)
+
+
+@dataclass(frozen=True)
+class MergeJob:
+    """What one merge task needs: the pairs of one run of planes and the part files holding their blocks."""
+
+    build: str
+    pairs: tuple[tuple[int, int], ...]
+    fingerprints: tuple[str | None, ...]
+    made_from: tuple
+    parts: tuple[str, ...]
+    blocks: int
+    min_ncc: float
 
 
 #: fixed planes per pair task: a task reads each of its planes once per region
@@ -129,33 +149,91 @@ def _window(source: PlaneSource, z: int, box, margin: int, reduce: bool, coarse:
 
 
 def probe_pair(job: PairJob) -> list[dict]:
-    """Measure a set of plane pairs, region by region; store each pair's shifts (runs on a worker).
+    """Measure a set of plane pairs in the task's regions, region by region; store the shifts (runs on a worker).
 
     Each region's window of each plane is read once and kept while a later pair still needs
-    it (at most ``probe_spans + 1`` windows). Returns one summary per pair: ``z_from``,
-    ``z_to``, ``fingerprint`` and the apparent motion (blocks ``n`` matched with at least
-    ``probe_min_confidence``, ``tried``, ``beyond`` the reach, ``median`` and ``p95`` of the
-    shift length, level-0 px).
+    it (at most ``probe_spans + 1`` windows). A task of every region stores each pair's
+    shifts and returns one summary per pair: ``z_from``, ``z_to``, ``fingerprint`` and the
+    apparent motion (blocks ``n`` matched with at least ``probe_min_confidence``, ``tried``,
+    ``beyond`` the reach, ``median`` and ``p95`` of the shift length, level-0 px). A task of a
+    share of the regions (``job.part``) writes its blocks of every pair to its part file and
+    returns ``[]``; :func:`merge_pair_parts` makes the pair documents and summaries from the parts.
     """
-    from .reuse import write_pair
+    from .reuse import write_measurement, write_pair
 
     st = job.settings
     source = open_planes(job.build, max_factor=job.max_factor, written=job.written)
+    pts, _, region = block_grid(source, st)
+    shifts = np.full((len(job.pairs), len(pts), 2), np.nan)
+    ncc = np.full((len(job.pairs), len(pts)), np.nan)
+    beyond = np.zeros((len(job.pairs), len(pts)), bool)
+    mine = np.unique(region) if not job.regions else np.asarray(job.regions, int)
+    _measure_regions(job, source, pts, region, mine, shifts, ncc, beyond)
+    if job.part:
+        idx = np.flatnonzero(np.isin(region, mine))
+        write_measurement(_part_path(job.build, job.part), {
+            "blocks": idx.tolist(), "shifts": shifts[:, idx].tolist(), "ncc": ncc[:, idx].tolist(),
+            "beyond": beyond[:, idx].tolist()})
+        return []
+    out = []
+    for k, (a, b) in enumerate(job.pairs):
+        write_pair(job.build, a, b, job.fingerprints[k], shifts[k], ncc[k], beyond[k],
+                   job.made_from[k] if job.made_from else None)
+        out.append({"z_from": a, "z_to": b, "fingerprint": job.fingerprints[k],
+                    **link_summary(shifts[k], ncc[k], beyond[k], st.probe_min_confidence)})
+    return out
+
+
+def _part_path(build, key: str):
+    from ..folder import BuildFolder
+
+    return BuildFolder(build).measurement_path("parts", key)
+
+
+def merge_pair_parts(job: MergeJob) -> list[dict]:
+    """Join the part files of one run of planes into its pair documents; return one summary per pair (on a worker).
+
+    Holds the blocks of its pairs only (``pairs x probe_blocks`` numbers), never a plane's pixels.
+    The part files are removed once the pairs are stored.
+    """
+    from .reuse import stored_measurement, write_pair
+
+    n = len(job.pairs)
+    shifts, ncc, beyond = np.full((n, job.blocks, 2), np.nan), np.full((n, job.blocks), np.nan), np.zeros((n, job.blocks), bool)
+    paths = [_part_path(job.build, key) for key in job.parts]
+    for path in paths:
+        doc = stored_measurement(path)
+        if doc is None:
+            raise RuntimeError(f"{path}: probe part missing or unreadable")
+        idx = np.asarray(doc["blocks"], int)
+        if idx.size:
+            shifts[:, idx] = np.asarray(doc["shifts"], float).reshape(n, -1, 2)
+            ncc[:, idx] = np.asarray(doc["ncc"], float).reshape(n, -1)
+            beyond[:, idx] = np.asarray(doc["beyond"], bool).reshape(n, -1)
+    out = []
+    for k, (a, b) in enumerate(job.pairs):
+        write_pair(job.build, a, b, job.fingerprints[k], shifts[k], ncc[k], beyond[k],
+                   job.made_from[k] if job.made_from else None)
+        out.append({"z_from": a, "z_to": b, "fingerprint": job.fingerprints[k],
+                    **link_summary(shifts[k], ncc[k], beyond[k], job.min_ncc)})
+    for path in paths:
+        path.unlink(missing_ok=True)
+    return out
+
+
+def _measure_regions(job: PairJob, source: PlaneSource, pts, region, regions, shifts, ncc, beyond) -> None:
+    """Fill ``shifts``, ``ncc``, ``beyond`` (pairs x blocks) for the blocks of ``regions``, one region at a time."""
+    st = job.settings
     h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
     _, half, search, margin = probe_geometry(source, st, w * source.factor, h * source.factor)
-    pts, _, region = block_grid(source, st)
     f = source.factor
-    nb, npairs = len(pts), len(job.pairs)
-    shifts = np.full((npairs, nb, 2), np.nan)
-    ncc = np.full((npairs, nb), np.nan)
-    beyond = np.zeros((npairs, nb), bool)
     reach = int(np.ceil(st.probe_reach / f))
     reduce = reach > search
     need = _blocks_to_measure(job, source, pts, margin, shifts, ncc, beyond)
     coarse = _coarse_source(job, source) if reduce else None
     plan = fine_plan(half, search, st.probe_fine_sigma / f, st.probe_coarse_sigma / f)
     cplan = coarse_plan(half, reach, st.probe_fine_sigma / f, st.probe_coarse_sigma / f) if reduce else None
-    for r in np.unique(region):
+    for r in regions:
         whole = np.flatnonzero(region == r)
         sel = whole[need[:, whole].any(axis=0)]
         if not sel.size:
@@ -186,13 +264,12 @@ def probe_pair(job: PairJob) -> list[dict]:
                 shifts[k, sel[mine]], ncc[k, sel[mine]], beyond[k, sel[mine]] = s_[mine] * f, c_[mine], b_[mine]
             for y in [y for y in held if not any(y in p and p[1] > z for p in active)]:
                 held.pop(y)  # no later pair needs it
-    out = []
-    for k, (a, b) in enumerate(job.pairs):
-        write_pair(job.build, a, b, job.fingerprints[k], shifts[k], ncc[k], beyond[k],
-                   job.made_from[k] if job.made_from else None)
-        out.append({"z_from": a, "z_to": b, "fingerprint": job.fingerprints[k],
-                    **link_summary(shifts[k], ncc[k], beyond[k], st.probe_min_confidence)})
-    return out
+
+
+def _region_shares(region: np.ndarray, per_task: int) -> list[tuple[int, ...]]:
+    """Return the regions of the block grid in shares of at most ``per_task`` (row by row)."""
+    regions = [int(r) for r in np.unique(region)]
+    return [tuple(regions[i:i + per_task]) for i in range(0, len(regions), max(1, per_task))]
 
 
 def _blocks_to_measure(job: PairJob, source: PlaneSource, pts: np.ndarray, margin: int, shifts, ncc, beyond):
@@ -343,16 +420,27 @@ def measure_error(build_dir, source: PlaneSource, present: list[int], settings: 
     groups: dict[int, list] = {}
     for a, bs in sorted(todo.items()):
         groups.setdefault(index[a] // PAIRS_TASK, []).extend((a, b) for b in bs)
-    jobs = [PairJob(str(build_dir), written, max_factor, tuple(g), tuple(fps[p] for p in g), st,
-                    tuple(made[p] for p in g), tuple(keep.get(p) for p in g))
-            for _, g in sorted(groups.items())]
+    pts, grid, region = block_grid(source, st)
+    shares = _region_shares(region, st.probe_task_regions)
+    jobs, merges = [], []
+    for _, g in sorted(groups.items()):
+        job = PairJob(str(build_dir), written, max_factor, tuple(g), tuple(fps[p] for p in g), st,
+                      tuple(made[p] for p in g), tuple(keep.get(p) for p in g))
+        if len(shares) <= 1:
+            jobs.append(job)
+            continue
+        keys = tuple(f"{g[0][0]:05d}-{i:04d}" for i in range(len(shares)))
+        jobs += [replace(job, regions=share, part=key) for share, key in zip(shares, keys)]
+        merges.append(MergeJob(str(build_dir), job.pairs, job.fingerprints, job.made_from, keys, len(pts),
+                               st.probe_min_confidence))
     fresh = set()
-    for res in mapper(probe_pair, jobs):
+    results = list(mapper(probe_pair, jobs))  # every part is written before a merge reads it
+    results += list(mapper(merge_pair_parts, merges)) if merges else []
+    for res in results:
         for r in res:
             key = (r["z_from"], r["z_to"])
             fresh.add(key)
             links[key] = {k: v for k, v in r.items() if k not in ("z_from", "z_to", "fingerprint")}
-    pts, grid, region = block_grid(source, st)
     pts0 = source.to_level0(pts) if len(pts) else np.zeros((0, 2))
     boxes = {int(r): [round(float(v), 1) for v in (*pts0[region == r].min(axis=0), *pts0[region == r].max(axis=0))]
              for r in np.unique(region)}

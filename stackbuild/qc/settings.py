@@ -62,6 +62,10 @@ class ReportSettings:
     region_size : int
         Edge of the region one probe task follows down the stack, full-resolution pixels
         (bounds the task's memory).
+    probe_task_regions : int
+        Regions one probe task measures (with its run of planes); a report of many regions
+        is spread over more, shorter tasks. The numbers do not depend on it (each region is
+        measured on its own); only the task count and the part files merged per run change.
     blocks_per_region : int
         Probe blocks per region written to ``blocks.csv`` (a sample; -1 writes all).
     min_block_ncc : float
@@ -99,6 +103,7 @@ class ReportSettings:
     probe_spans: int = 2
     slow_window: int = 9
     region_size: int = 2048
+    probe_task_regions: int = 4
     blocks_per_region: int = 4
     min_block_ncc: float = 0.3
     seam_spacing: int = 16
@@ -112,7 +117,7 @@ class ReportSettings:
 def check_settings(s: ReportSettings) -> None:
     """Raise :class:`InputError` naming the ``[report]`` key whose value cannot work."""
     for key in ("worst", "measure_scale", "measure_max_px", "probe_spacing", "probe_half_size",
-                "probe_max_shift", "seam_spacing", "seam_half_size", "seam_max_shift", "reslice_px"):
+                "probe_max_shift", "probe_task_regions", "seam_spacing", "seam_half_size", "seam_max_shift", "reslice_px"):
         if not getattr(s, key) >= 1:
             raise InputError(f"[report] {key} must be >= 1, got {getattr(s, key)!r}")
     if not s.seam_smooth >= 0:

@@ -123,10 +123,14 @@ def align_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     for t in budget["tasks"]:
         held = max(0.0, t.bytes_each - PROCESS_BYTES)
         n = count.get(t.name, t.count)
-        if t.name == "align.region" and rounds:
-            # the budget counts the final residual pass with the rounds; it runs as residual_job
-            n, final = n * rounds // (rounds + 1), n // (rounds + 1)
-            kinds.append(Kind("align.residual", final, held, work["align.region"], note="the final residual pass"))
+        if t.name == "align.region":
+            # The budget counts rounds + 1 passes over the regions. With elastic rounds the residual
+            # comes from the last round's own matches (align/stage.py: _elastic), so the extra pass
+            # does not run; without them the one pass is the residual pass (residual_job).
+            if not rounds:
+                kinds.append(Kind("align.residual", n, held, work["align.region"], note="the residual pass"))
+                continue
+            n = n * rounds // (rounds + 1)
         kinds.append(Kind(t.name, n, held, work.get(t.name, 0.0), note=t.note,
                           reads=shape.tiles_per_section * shape.tile_bytes if t.name == "align.features" else 0.0))
     kinds.append(Kind("align.driver", 1, max(0.0, budget["driver_bytes"] - PROCESS_BYTES),

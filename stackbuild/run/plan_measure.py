@@ -25,7 +25,7 @@ import numpy as np
 KIND_OF = {"_stitch_one": "stitch.section", "features_job": "align.features", "pair_job": "align.pair",
            "render_job": "align.render", "block_job": "align.blocks",
            "region_job": "align.region", "solve_block_job": "align.solve", "residual_job": "align.residual", "render_shard": "render.shard",
-           "join_shard": "render.join", "range_job": "render.contrast", "probe_pair": "report.probe",
+           "join_shard": "render.join", "range_job": "render.contrast", "probe_pair": "report.probe", "merge_pair_parts": "report.merge",
            "jitter_run": "report.runs",
            "seam_job": "report.seams"}
 

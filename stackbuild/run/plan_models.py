@@ -281,8 +281,9 @@ def _probe_factor(q) -> int:
 
 def report_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     """Seams re-measured from raw tiles, one task per section (``qc/measure.py: seam_job``); the
-    alignment-error probe as pair tasks of ``PAIRS_TASK`` planes (``qc/probe.py: probe_pair``) and
-    run tasks (``qc/runs.py: jitter_run``); the driver keeps the seams' sampled blocks."""
+    alignment-error probe as tasks of ``PAIRS_TASK`` planes x ``probe_task_regions`` regions
+    (``qc/probe.py: probe_pair``, joined by ``merge_pair_parts``) and run tasks
+    (``qc/runs.py: jitter_run``); the driver keeps the seams' sampled blocks."""
     q = cfg.report
     tile_px = shape.tile_height * shape.tile_width
     keep, per_seam = 4, 16  # measure_seams' keep_tiles and blocks_per_seam defaults
@@ -299,19 +300,31 @@ def report_kinds(shape: VolumeShape, cfg) -> list[Kind]:
 
         f = _probe_factor(q)
         spans = int(_get(q, "probe_spans", 2))
-        margin = _get(q, "probe_half_size", 48) + _get(q, "probe_max_shift", 12) + 4 * _get(q, "probe_coarse_sigma", 16)
-        # a region is clipped to the section: small sections make small regions
-        sy = (min(region, shape.section_height) + 2 * margin) / f
-        sx = (min(region, shape.section_width) + 2 * margin) / f
-        regions = math.ceil(shape.section_height / region) * math.ceil(shape.section_width / region)
+        H, W = shape.section_height, shape.section_width
+        # qc/probe.py: block_grid and probe_geometry. Blocks probe_spacing apart, wider on large planes
+        # so that a plane holds about probe_blocks; regions of region_size px of that grid (at least
+        # one block); tasks of a run of PAIRS_TASK planes x at most probe_task_regions regions.
+        spacing = max(float(_get(q, "probe_spacing", 128)), math.sqrt(H * W / max(1, int(_get(q, "probe_blocks", 150)))))
+        nx, ny = max(1, int(W // spacing)), max(1, int(H // spacing))
+        step = max(1, round(region / spacing))
+        regions = math.ceil(nx / step) * math.ceil(ny / step)
+        shares = math.ceil(regions / max(1, int(_get(q, "probe_task_regions", 4))))
+        runs = math.ceil(shape.imaged / PAIRS_TASK)
+        margin = _get(q, "probe_half_size", 64) + _get(q, "probe_max_shift", 12) + _get(q, "probe_reach", 64) + 1
+        # one region's window, level px: its blocks' centres and the margin the matcher reads around them
+        side = (min((min(step, nx, ny) - 1) * spacing, H, W) + 2 * margin) / f
+        per_task = min(regions, int(_get(q, "probe_task_regions", 4)))
         planes = min(shape.imaged, PAIRS_TASK) + spans  # its fixed planes and the ones they are matched with
-        n = math.ceil(shape.imaged / PAIRS_TASK)
-        kinds.append(Kind("report.probe", n, (spans + 1) * sy * sx * 4 * 2,
-                          min(shape.imaged, PAIRS_TASK) * shape.section_height * shape.section_width / f ** 2 / MB,
-                          reads=planes * regions * sy * sx * shape.itemsize,
-                          note=f"{PAIRS_TASK} planes per task, region by region, {spans + 1} region windows held"))
+        matches = min(shape.imaged, PAIRS_TASK) * spans * nx * ny / shares  # block matches of one task
+        kinds.append(Kind("report.probe", runs * shares, (spans + 1) * side * side * 4 * 2, matches / MB,
+                          reads=planes * per_task * side * side * shape.itemsize,
+                          note=f"{PAIRS_TASK} planes x at most {per_task} regions per task, "
+                               f"{spans + 1} region windows held"))
+        if shares > 1:  # qc/probe.py: merge_pair_parts joins the tasks' part files of a run of planes
+            kinds.append(Kind("report.merge", runs, PAIRS_TASK * spans * nx * ny * 4 * 8, PAIRS_TASK * spans * nx * ny / MB,
+                              reads=PAIRS_TASK * spans * nx * ny * 4 * 8, note="joins a run's part files"))
         blocks = int(_get(q, "probe_blocks", 150))
-        kinds.append(Kind("report.runs", n, blocks * (PAIRS_TASK + 2 * spans + 8) * 2 * 8, blocks / MB,
+        kinds.append(Kind("report.runs", runs, blocks * (PAIRS_TASK + 2 * spans + 8) * 2 * 8, blocks / MB,
                           reads=(PAIRS_TASK * spans) * blocks * 3 * 8,
                           note="solves a run of planes from the stored pair shifts"))
     return kinds

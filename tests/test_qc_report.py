@@ -14,7 +14,6 @@ from pathlib import Path
 import numpy as np
 import pytest
 from PIL import Image
-from skimage.registration import phase_cross_correlation
 
 from stackbuild.errors import InputError
 from stackbuild.qc.report import judge, run_report

@@ -10,7 +10,6 @@ import zarr
 
 from stackbuild.errors import BuildFolderError, InputError
 from stackbuild.render.settings import RenderSettings
-from stackbuild.folder import BuildFolder
 from stackbuild.transforms import Affine2D, SectionAlignment
 
 from render_builders import SMALL, foam, make_build

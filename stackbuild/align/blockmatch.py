@@ -419,7 +419,7 @@ def match_spectra(fixed: BlockSpectra, moving: BlockSpectra, moving_image: np.nd
 
 def _match_core(f_spec, f_sums, m_spec, m_img, xy, plan, subpixel, rows):
     """Match usable blocks by their spectra; return shifts (dx, dy), peak, ncc, margin, isotropy."""
-    n, p, ms, hs = len(xy), plan.p, plan.max_shift, plan.half_size
+    n, p, ms = len(xy), plan.p, plan.max_shift
     half = p // 2
     out = [np.full((n, 2), np.nan)] + [np.full(n, np.nan) for _ in range(4)]
     # pass 1: whole-pixel peak of the band-limited phase correlation within +- max_shift

@@ -25,7 +25,7 @@ from .regions import (Grid, RegionTask, crop_alignment, make_grid, region_job, r
                       window_links, windows)
 from .coarse import PairResult, match_pair, pair_from_points
 from .correlate import correlate_overviews
-from .features import DETECTORS, FeatureSet, detect_features
+from .features import FeatureSet, detect_features
 from .settings import AlignSettings, check_settings
 from .solve import solve_affines
 from .sources import BuildSource

@@ -45,7 +45,6 @@ import logging
 import math
 import time
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 import tifffile
@@ -58,9 +57,9 @@ from ..tiles import SectionTiles
 from ..transforms.store import TransformStore
 from ..transforms.records import ChannelRegistration
 from ..transforms.types import Affine2D
-from .features import KINDS, whole_block_mean, em_feature, marker_feature
-from .mutual_info import MODELS, register_mutual_information
-from .settings import AUTO_KINDS, FEATURES, ChannelSettings, check_settings
+from .features import whole_block_mean, em_feature, marker_feature
+from .mutual_info import register_mutual_information
+from .settings import AUTO_KINDS, ChannelSettings, check_settings
 
 log = logging.getLogger(__name__)
 DOC_KIND = "channels"

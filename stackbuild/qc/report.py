@@ -20,7 +20,7 @@ from .figures import FigureStore, draw_all, thumbnails
 from .glossary import FLAGS, TOTALS, flag_meaning
 from .metrics import collect, write_metrics
 from .settings import ReportSettings
-from .bars import Verdict, _thresholds, judge, recheck, stored_metrics_stale  # noqa: F401 (re-exported)
+from .bars import Verdict, _thresholds, judge, recheck  # noqa: F401 (recheck re-exported)
 from .thresholds import Threshold, parse_fail_on_list
 from .thumbnails import scale_text
 

@@ -41,7 +41,7 @@ from .settings import check_settings
 from .write import _create_arrays
 from ..transforms.records import Canvas, SectionAlignment
 from ..transforms.store import TransformStore
-from ..channels.stage import DOC_KIND, channel_affine, channel_level, channel_records, channel_table
+from ..channels.stage import channel_affine, channel_level, channel_records, channel_table  # noqa: F401 (channel_level re-exported)
 
 _ROWS = 1024  # output rows resampled at a time
 

@@ -27,7 +27,6 @@ from zarr.codecs import BloscCodec, Crc32cCodec
 
 from ..errors import BuildFolderError, InputError
 from ..folder import BuildFolder
-from ..transforms.store import atomic_write_text
 from .canvas import compute_canvas, settle_canvas
 from .contrast import DOC_KIND, RangeJob, contrast_record, range_job
 from .fingerprint import PLANE_RECORD, discard_plane, em_fingerprints, read_plane_record, write_plane_record

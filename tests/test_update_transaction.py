@@ -114,7 +114,11 @@ def test_two_replaced_tiles_rewrite_only_their_shards(grid_build, updated):
     corners = [(t.x + dx, t.y + dy) for t in st.tiles if t.tile[:2] in ("r0", "r1")
                for dx in (-0.5, t.width - 0.5) for dy in (-0.5, t.height - 0.5)]
     below = al.section_to_aligned(np.array(corners))[:, 1].max() - canvas.origin_y + 2  # bilinear reach
-    far = {k for k in before if k.split(os.sep)[:3] == ["0", "c", "3"] and int(k.split(os.sep)[3]) * 64 > below}
+    from stackbuild.folder import BuildFolder
+
+    render = BuildFolder(work).config.render
+    shard_px = render.chunk * render.shard
+    far = {k for k in before if k.split(os.sep)[:3] == ["0", "c", "3"] and int(k.split(os.sep)[3]) * shard_px > below}
     assert far and not far & changed
 
 

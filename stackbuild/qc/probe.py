@@ -159,7 +159,7 @@ def probe_pair(job: PairJob) -> list[dict]:
     share of the regions (``job.part``) writes its blocks of every pair to its part file and
     returns ``[]``; :func:`merge_pair_parts` makes the pair documents and summaries from the parts.
     """
-    from .reuse import write_measurement, write_pair
+    from .reuse import write_measurement
 
     st = job.settings
     source = open_planes(job.build, max_factor=job.max_factor, written=job.written)
@@ -175,12 +175,19 @@ def probe_pair(job: PairJob) -> list[dict]:
             "blocks": idx.tolist(), "shifts": shifts[:, idx].tolist(), "ncc": ncc[:, idx].tolist(),
             "beyond": beyond[:, idx].tolist()})
         return []
+    return _store_pairs(job, shifts, ncc, beyond, st.probe_min_confidence)
+
+
+def _store_pairs(job, shifts, ncc, beyond, min_ncc: float) -> list[dict]:
+    """Store each pair of ``job`` (a :class:`PairJob` or :class:`MergeJob`) with its blocks; return its summaries."""
+    from .reuse import write_pair
+
     out = []
     for k, (a, b) in enumerate(job.pairs):
         write_pair(job.build, a, b, job.fingerprints[k], shifts[k], ncc[k], beyond[k],
                    job.made_from[k] if job.made_from else None)
         out.append({"z_from": a, "z_to": b, "fingerprint": job.fingerprints[k],
-                    **link_summary(shifts[k], ncc[k], beyond[k], st.probe_min_confidence)})
+                    **link_summary(shifts[k], ncc[k], beyond[k], min_ncc)})
     return out
 
 
@@ -196,7 +203,7 @@ def merge_pair_parts(job: MergeJob) -> list[dict]:
     Holds the blocks of its pairs only (``pairs x probe_blocks`` numbers), never a plane's pixels.
     The part files are removed once the pairs are stored.
     """
-    from .reuse import stored_measurement, write_pair
+    from .reuse import stored_measurement
 
     n = len(job.pairs)
     shifts, ncc, beyond = np.full((n, job.blocks, 2), np.nan), np.full((n, job.blocks), np.nan), np.zeros((n, job.blocks), bool)
@@ -210,12 +217,7 @@ def merge_pair_parts(job: MergeJob) -> list[dict]:
             shifts[:, idx] = np.asarray(doc["shifts"], float).reshape(n, -1, 2)
             ncc[:, idx] = np.asarray(doc["ncc"], float).reshape(n, -1)
             beyond[:, idx] = np.asarray(doc["beyond"], bool).reshape(n, -1)
-    out = []
-    for k, (a, b) in enumerate(job.pairs):
-        write_pair(job.build, a, b, job.fingerprints[k], shifts[k], ncc[k], beyond[k],
-                   job.made_from[k] if job.made_from else None)
-        out.append({"z_from": a, "z_to": b, "fingerprint": job.fingerprints[k],
-                    **link_summary(shifts[k], ncc[k], beyond[k], job.min_ncc)})
+    out = _store_pairs(job, shifts, ncc, beyond, job.min_ncc)
     for path in paths:
         path.unlink(missing_ok=True)
     return out
@@ -402,11 +404,11 @@ def measure_error(build_dir, source: PlaneSource, present: list[int], settings: 
     folder = BuildFolder(build_dir)
     st = settings
     pairs = plane_pairs(present, st.probe_spans)
-    fps = pair_fingerprints(folder, source, pairs, st)
     planes_fp = render_fingerprints(folder, source)
+    fps = pair_fingerprints(folder, source, pairs, st, planes_fp)
     base = digest(pair_base(source, st))
     made = {(a, b): [base, planes_fp.get(a), planes_fp.get(b)] for a, b in pairs}
-    nblocks = len(block_grid(source, st)[0])
+    pts, grid, region = block_grid(source, st)
     links, todo, keep = {}, {}, {}
     for a, b in pairs:
         old = stored_pair(build_dir, a, b) if reuse and fps[(a, b)] is not None else None
@@ -415,12 +417,11 @@ def measure_error(build_dir, source: PlaneSource, present: list[int], settings: 
             continue
         todo.setdefault(a, []).append(b)
         if changed and old is not None:
-            keep[(a, b)] = _kept_boxes(old, (a, b), made[(a, b)], changed, nblocks)
+            keep[(a, b)] = _kept_boxes(old, (a, b), made[(a, b)], changed, len(pts))
     index = {z: i for i, z in enumerate(present)}
     groups: dict[int, list] = {}
     for a, bs in sorted(todo.items()):
         groups.setdefault(index[a] // PAIRS_TASK, []).extend((a, b) for b in bs)
-    pts, grid, region = block_grid(source, st)
     shares = _region_shares(region, st.probe_task_regions)
     jobs, merges = [], []
     for _, g in sorted(groups.items()):

@@ -84,13 +84,14 @@ def render_fingerprints(folder, source) -> dict[int, str | None]:
     return {z: (None if str(z) in damaged else written.get(str(z))) for z in range(source.depth)}
 
 
-def pair_fingerprints(folder, source, pairs, settings) -> dict[tuple[int, int], str | None]:
+def pair_fingerprints(folder, source, pairs, settings, planes: dict | None = None) -> dict[tuple[int, int], str | None]:
     """Return ``{(a, b): fingerprint}`` of each pair's shifts; None where a plane has no recorded fingerprint.
 
     A pair with None is always measured again (a plane never written, being rewritten,
-    damaged, or read from the lazy volume).
+    damaged, or read from the lazy volume). ``planes``: the planes' render fingerprints when the
+    caller has them (:func:`render_fingerprints`, read otherwise).
     """
-    planes = render_fingerprints(folder, source)
+    planes = render_fingerprints(folder, source) if planes is None else planes
     base = pair_base(source, settings)
     out = {}
     for a, b in pairs:

@@ -298,11 +298,5 @@ def _stream_on(client, groups: Iterable[list], on_done: Callable[[int, int], Non
 
 
 def _compute_on(client, items: list, on_done: Callable[[int], None]) -> None:
-    """Compute ``items`` on ``client``, calling ``on_done(i)`` in this thread as each one finishes."""
-    from distributed import as_completed
-
-    futures = client.compute(items)
-    index = {f.key: i for i, f in enumerate(futures)}
-    for fut in as_completed(futures):
-        fut.result()
-        on_done(index[fut.key])
+    """Compute ``items`` on ``client``, calling ``on_done(i)`` in this thread as each one finishes (one group of :func:`_stream_on`)."""
+    _stream_on(client, [items], lambda _group, i: on_done(i))

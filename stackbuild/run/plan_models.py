@@ -283,17 +283,21 @@ def report_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     """Seams re-measured from raw tiles, one task per section (``qc/measure.py: seam_job``); the
     alignment-error probe as tasks of ``PAIRS_TASK`` planes x ``probe_task_regions`` regions
     (``qc/probe.py: probe_pair``, joined by ``merge_pair_parts``) and run tasks
-    (``qc/runs.py: jitter_run``); the driver keeps the seams' sampled blocks."""
+    (``qc/runs.py: jitter_run``); the driver keeps one small summary per section."""
     q = cfg.report
     tile_px = shape.tile_height * shape.tile_width
-    keep, per_seam = 4, 16  # measure_seams' keep_tiles and blocks_per_seam defaults
+    keep = 4  # measure_seams' keep_tiles default
     kinds = [Kind("report.seams", shape.imaged, (keep + 1) * tile_px * 4,
                   2 * shape.tiles_per_section * tile_px / MB, items=shape.pairs_per_section,
                   reads=2 * shape.tiles_per_section * shape.tile_bytes,
                   note=f"holds {keep} tiles as float32 and its seams' blocks"),
-             Kind("report.driver", 1, shape.imaged * shape.pairs_per_section * per_seam * 5 * 8,
-                  shape.imaged * shape.pairs_per_section / MB, driver=True,
-                  note="keeps every seam's sampled blocks")]
+             # qc/metrics.py: collect keeps each section task's summary (qc/sections.py: _summary): about
+             # 12 kB of counts and worst rows plus about 130 B per tile of mapped straightening points
+             # (pickled sizes measured on a 5 x 5-tile build), about 3x that as Python objects. A section
+             # whose tiles are all flagged adds up to 1000 flagged rows (about 0.4 MB) on top.
+             Kind("report.driver", 1, 3 * shape.imaged * (12e3 + 130.0 * shape.tiles_per_section),
+                  shape.imaged * shape.tiles_per_section / MB, driver=True,
+                  note="keeps every section's summary (worst rows, straightening points)")]
     region = int(_get(q, "region_size", 0))
     if region > 0:
         from ..qc.probe import PAIRS_TASK

@@ -279,3 +279,24 @@ def test_probe_tasks_split_by_region_give_the_numbers_of_one_task_per_run(first,
     assert pairs_one == pairs_many
     for a, b in zip(one["sections"], many["sections"]):
         assert a["align_error_px"] == b["align_error_px"]
+
+    # The update's hand-off (`changed`) to these split tasks: regions whose windows miss the box measure
+    # nothing, the others only their blocks near it; the stored pairs and estimates equal a full report
+    # (ground truth: reuse=False on the same folder).
+    import numpy as np
+    import zarr
+
+    box = [416, 416, 512, 512]
+    for level, f in (("0", 1), ("1", 2)):
+        arr = zarr.open_array(str(root / "volume.zarr" / "em" / level), mode="r+")
+        arr[2, box[1] // f:box[3] // f, box[0] // f:box[2] // f] = arr[3, box[1] // f:box[3] // f, box[0] // f:box[2] // f]
+    _stamp(root, {z: (f"plane{z}" if z != 2 else "plane2-patched") for z in range(len(SECTIONS))})
+    told, _ = collect(root, st, mapper=Counting(), changed={2: {"before": "plane2", "boxes": [box]}})
+    kept = [json.loads(p.read_text()) for p in sorted(pairs_dir.glob("*.json"))]
+    full, _ = collect(root, st, reuse=False)
+    again = [json.loads(p.read_text()) for p in sorted(pairs_dir.glob("*.json"))]
+    for k, a in zip(kept, again):
+        for c in ("dx", "dy", "ncc"):
+            assert np.allclose(np.array(k[c], float), np.array(a[c], float), equal_nan=True, atol=1e-4)
+    for a, b in zip(full["sections"], told["sections"]):
+        assert a["align_error_px"] == pytest.approx(b["align_error_px"], abs=1e-6)

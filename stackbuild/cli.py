@@ -322,7 +322,7 @@ def _cmd_align(args) -> int:
     build = _open_build(args.dir)
     with dask_client(args.workers, args.scheduler) as client:
         out = stages.align_stage(build, client_mapper(client, ProgressBar("align", not args.quiet)),
-                                 progress=ProgressBar("solve", not args.quiet))
+                                 progress=ProgressBar("align", not args.quiet))
     _say(f"aligned {len(out)} section(s) into {build.store.root}")
     return EXIT_OK
 

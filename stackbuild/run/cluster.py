@@ -17,6 +17,7 @@ from typing import Callable, Iterable
 
 from ..errors import InputError
 from ..render.pyramid import compute_locally
+from .progress import announce
 
 log = logging.getLogger(__name__)
 
@@ -202,6 +203,7 @@ def client_mapper(client, progress: Callable[[int, int], None] | None = None):
         items = list(items)
         if not items:
             return []
+        announce(progress, fn)
         futures = client.map(fn, items, pure=False)
         index = {f.key: i for i, f in enumerate(futures)}
         results = [None] * len(futures)
@@ -223,6 +225,7 @@ def serial_mapper(progress: Callable[[int, int], None] | None = None):
     """Return a mapper that runs in this process (for tests and debugging)."""
     def mapper(fn: Callable, items: Iterable) -> list:
         items = list(items)
+        announce(progress, fn)
         out = []
         for i, item in enumerate(items, 1):
             out.append(fn(item))

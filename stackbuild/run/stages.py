@@ -164,9 +164,9 @@ def run_build(build: BuildFolder, client, *, resume: bool = False, fail_on: list
 
     stitch_stage(build, mapper("stitch"), resume=resume)
     if not (resume and build.stage_done("align")):
-        align_stage(build, mapper("align"), progress=ProgressBar("solve", show))
+        align_stage(build, mapper("align"), progress=ProgressBar("align", show))
     if not (resume and build.stage_done("channels")):
         channels_stage(build, mapper("channels"))
     render_stage(build, resume=resume, progress=ProgressBar("render", show), mapper=mapper("contrast"))
     render_channels_stage(build, progress=ProgressBar("markers", show), mapper=mapper("markers"))
-    return report_stage(build, fail_on=fail_on, progress=ProgressBar("report", show), mapper=mapper("report"))
+    return report_stage(build, fail_on=fail_on, mapper=mapper("report"))  # its mapper's bar counts each phase

@@ -201,7 +201,7 @@ def _run_steps(build: BuildFolder, plan: UpdatePlan, *, workers, scheduler, show
                 save_plan(build.root, plan)
         t0 = time.monotonic()
         # The report's tasks run where the steps ran (a cluster only for an append or a large update).
-        verdict = stages.report_stage(build, fail_on=fail_on, progress=mappers.bar("report"), mapper=mappers(),
+        verdict = stages.report_stage(build, fail_on=fail_on, mapper=mappers("report"),
                                       changed=_changed_regions(build, plan))
         seconds["report"] = round(time.monotonic() - t0, 2)
     # The report re-measures only sections and planes whose inputs changed (qc/measured keeps the rest).

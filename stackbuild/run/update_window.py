@@ -43,7 +43,7 @@ def align_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
                                                       build.config.align.neighbours, appended=plan.added))
     try:
         new = align_sections(source, build.config.align,
-                             mapper=mappers("align"), progress=mappers.bar("solve"), scratch=scratch)
+                             mapper=mappers("align"), progress=mappers.bar("align"), scratch=scratch)
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
     old = {s: a for s in new if (a := before.load_alignment(s)) is not None}

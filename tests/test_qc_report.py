@@ -23,6 +23,9 @@ from qc_builders import ODD_NAME, PLANT_ROT_SECTION, PLANT_TILE, PLANT_TILE_SECT
 
 CHROMIUM = "/usr/bin/chromium"
 _IMG_SRC = re.compile(r'<img[^>]*\ssrc="([^"]*)"', re.S)
+# image panels inside the inline SVG figures: <image class="panel" ... href="data:image/png;base64,...">
+_PANEL_SRC = re.compile(r'<image class="panel"[^>]*\shref="([^"]*)"', re.S)
+_SVG = re.compile(r"<svg\b.*?</svg>", re.S)
 
 
 @pytest.fixture(scope="module")
@@ -93,21 +96,53 @@ def test_fail_on_rechecks_stored_metrics_fast_without_writing(report):
 
 
 def test_html_is_self_contained_and_escaped(report):
+    import xml.etree.ElementTree as ET
+
     root, _ = report
     page = (root / "qc" / "report.html").read_text()
     assert "<script" not in page.lower()
     assert not re.search(r'(src|href)="(?!data:)', page)  # every resource is inline
     assert "<link" not in page.lower() and "url(" not in page.lower()
-    srcs = _IMG_SRC.findall(page)
-    assert len(srcs) >= 7
-    for s in srcs:
+    thumbs, panels = _IMG_SRC.findall(page), _PANEL_SRC.findall(page)
+    assert len(thumbs) == 5 and len(panels) >= 3  # a thumbnail per plane; worst section and re-slices
+    for s in thumbs + panels:
         assert s.startswith("data:image/png;base64,")
         raw = base64.b64decode(s.split(",", 1)[1])
         assert raw[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature, ISO/IEC 15948
         shape, std = _png_stats(raw)
         assert min(shape) >= 40 and std > 5  # the stack strip's thumbnails are 56 px high
+    figures = _SVG.findall(page)
+    assert len(figures) >= 5
+    for fig in figures:  # every inline figure is well-formed XML in the SVG namespace (Python's XML parser)
+        assert ET.fromstring(fig).tag == "{http://www.w3.org/2000/svg}svg"
     assert ODD_NAME not in page
     assert html.escape(ODD_NAME) in page
+
+
+def test_figures_are_svg_files_with_labels_units_and_no_matplotlib(report):
+    import subprocess as sp
+    import sys
+    import xml.etree.ElementTree as ET
+
+    from stackbuild.folder import BuildFolder
+
+    root, _ = report
+    qc, ns = root / "qc", {"s": "http://www.w3.org/2000/svg"}
+    assert not [p.name for p in qc.glob("*.png") if p.name != "browser_shot.png"]  # every figure is SVG
+    tiles = ET.parse(qc / "tiles.svg").getroot()
+    texts = {t.text for t in tiles.iter("{http://www.w3.org/2000/svg}text")}
+    drawn = [int(t.split()[1]) for t in texts if t and t.startswith("section ")]
+    assert drawn
+    for s in drawn:  # every tile of every drawn section is labelled with its name
+        assert {t.tile for t in BuildFolder(root).store.load_stitch(s).tiles} <= texts
+    assert "tile seam residual, median (px)" in texts and "not measured" in texts  # colour bar, units, no-data
+    regions = ET.parse(qc / "error_regions.svg").getroot()
+    assert "estimated error (px)" in {t.text for t in regions.iter("{http://www.w3.org/2000/svg}text")}
+    bars = ET.parse(qc / "worst_section.svg").getroot().findall(".//s:g[@class='scalebar']", ns)
+    assert len(bars) == len(ET.parse(qc / "worst_section.svg").getroot().findall(".//s:image[@class='panel']", ns))
+    # drawing the figures needs no plotting library
+    code = "import sys, stackbuild.qc.report, stackbuild.qc.plots; print('matplotlib' in sys.modules)"
+    assert sp.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()[-1] == "False"
 
 
 def test_bad_fail_on_is_refused_before_any_work(tmp_path):
@@ -138,11 +173,13 @@ def test_report_renders_in_headless_chromium(report, tmp_path):
     assert shape == (2000, 1280) and std > 10  # not a blank page
     dom = subprocess.run(flags + ["--dump-dom", url], check=True, capture_output=True, timeout=120,
                          text=True).stdout
-    srcs = _IMG_SRC.findall(dom)
-    assert len(srcs) >= 7
+    srcs = _IMG_SRC.findall(dom) + _PANEL_SRC.findall(dom)
+    assert len(srcs) >= 8
     for s in srcs:
         shape, std = _png_stats(base64.b64decode(s.split(",", 1)[1]))
         assert std > 5
+    # the browser kept every image panel's scale bar (one per panel) in the page it laid out
+    assert dom.count('class="scalebar"') >= dom.count('<image class="panel"') > 0
     assert "FAILED" in dom and "Worst sections" in dom
     shutil.copy(shot, root / "qc" / "browser_shot.png")  # kept for a human look
 

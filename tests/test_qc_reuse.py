@@ -142,14 +142,14 @@ def test_a_re_report_redraws_only_the_figures_that_show_what_changed(first, tmp_
     run_report(root, SETTINGS)
     qc = root / "qc"
     names = ("worst_section", "tiles", "error_z", "reslice", "displacement")
-    stamp = {n: (qc / f"{n}.png").stat().st_mtime_ns for n in names}
+    stamp = {n: (qc / f"{n}.svg").stat().st_mtime_ns for n in names}
     thumbs = (qc / "measured" / "figures" / "thumbnails.json").read_text()
     run_report(root, SETTINGS)  # nothing changed: every figure and thumbnail kept as it was
-    assert {n: (qc / f"{n}.png").stat().st_mtime_ns for n in names} == stamp
+    assert {n: (qc / f"{n}.svg").stat().st_mtime_ns for n in names} == stamp
     assert (qc / "measured" / "figures" / "thumbnails.json").read_text() == thumbs
     _stamp(root, {z: (f"plane{z}" if z != 4 else "plane4-new") for z in range(len(SECTIONS))})
     run_report(root, SETTINGS)  # plane 4 re-rendered to the same pixels: the figures show the same pixels
-    assert {n: (qc / f"{n}.png").stat().st_mtime_ns for n in ("worst_section", "tiles", "reslice", "displacement")} \
+    assert {n: (qc / f"{n}.svg").stat().st_mtime_ns for n in ("worst_section", "tiles", "reslice", "displacement")} \
         == {n: stamp[n] for n in ("worst_section", "tiles", "reslice", "displacement")}
     import zarr
 
@@ -158,13 +158,13 @@ def test_a_re_report_redraws_only_the_figures_that_show_what_changed(first, tmp_
         arr[4] = arr[3]
     _stamp(root, {z: (f"plane{z}" if z != 4 else "plane4-copied") for z in range(len(SECTIONS))})
     run_report(root, SETTINGS)
-    after = {n: (qc / f"{n}.png").stat().st_mtime_ns for n in names}
+    after = {n: (qc / f"{n}.svg").stat().st_mtime_ns for n in names}
     assert after["reslice"] != stamp["reslice"]
     # the worst section (z 2) is drawn with planes 1 and 3 only; the tile maps and field read no plane
     assert {n: after[n] for n in ("worst_section", "tiles", "displacement")} == \
         {n: stamp[n] for n in ("worst_section", "tiles", "displacement")}
     run_report(root, SETTINGS, reuse=False)  # measuring everything again draws everything again
-    assert all((qc / f"{n}.png").stat().st_mtime_ns != after[n] for n in names)
+    assert all((qc / f"{n}.svg").stat().st_mtime_ns != after[n] for n in names)
 
 
 def test_a_re_report_with_every_figure_kept_does_not_import_matplotlib(first, tmp_path):
@@ -238,11 +238,10 @@ def test_an_error_figure_is_kept_while_its_numbers_move_less_than_it_can_show(tm
     drawn = []
 
     def draw():
-        from stackbuild.qc.plots import plt
+        from stackbuild.qc.svg import Svg
 
         drawn.append(1)
-        fig, ax = plt.subplots(figsize=(1, 1))
-        return fig
+        return Svg(10, 10).render()
 
     def get(values):
         FigureStore(folder).get("error_z", "c", ["rows"], draw, values)

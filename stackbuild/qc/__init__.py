@@ -17,8 +17,11 @@ Stage (layer 4):
 ``measure``     seam measurements per section (at most a few tiles held) and the frame conversions
 ``metrics``     the metrics document (``DIR/qc/metrics.json``, schema in its docstring) and CSV tables
 ``thresholds``  the ``--fail-on`` syntax and the default bars
-``thumbnails``  scale-bar lengths and the plane thumbnails (no matplotlib)
-``plots``       the figures (scale bars in nm on image panels)
+``colours``     the colour ramp (a table of RGB stops), accents and the no-data colour
+``svg``         SVG written as text: shapes, axes, colour bars, scale bars, embedded PNG panels
+``thumbnails``  scale-bar lengths and the plane thumbnails (PNG)
+``plots``       the charts as SVG (error per plane and region, tile maps, displacement field, landmarks)
+``panels``      the image panels as SVG with PNG pixels (re-slices, worst section, marker overlays)
 ``figures``     which figures to draw, each kept by a key of what it shows
 ``report``      the HTML report, the stored-metrics re-check
 ``stage``       :func:`~stackbuild.qc.stage.run`, the stage entry point

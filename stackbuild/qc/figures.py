@@ -1,13 +1,15 @@
 """The report's figures and thumbnails, each drawn again only when what it shows changed.
 
-Every figure has a *key*: the numbers it draws (rows of the metrics document) or, for image
-panels, a digest of the pixels it shows (read first: small windows and two lines through the
-stack at a coarse level, a fraction of drawing them), where it reads and the settings that change it. Its PNG
-``DIR/qc/<name>.png`` is kept with the key's digest in ``DIR/qc/measured/figures/<name>.json``;
-a report whose key is unchanged takes the PNG as it is, without drawing (and without importing
-matplotlib when nothing is drawn). A figure without a key (the channel overlays when a pyramid
-has no plane record) is always drawn; ``reuse=False`` draws every figure. A re-report after an
-update redraws only the figures whose pixels or numbers changed.
+Every figure is an SVG document (:mod:`stackbuild.qc.plots`, :mod:`stackbuild.qc.panels`: charts
+as vector shapes, image panels as embedded PNGs) written to ``DIR/qc/<name>.svg`` and shown
+inline in the report. Every figure has a *key*: the numbers it draws (rows of the metrics
+document) or, for image panels, a digest of the pixels it shows (read first: small windows and
+two lines through the stack at a coarse level, a fraction of drawing them), where it reads and
+the settings that change it. The SVG is kept with the key's digest in
+``DIR/qc/measured/figures/<name>.json``; a report whose key is unchanged takes the SVG as it is,
+without drawing. A figure without a key (the channel overlays when a pyramid has no plane
+record) is always drawn; ``reuse=False`` draws every figure. A re-report after an update redraws
+only the figures whose pixels or numbers changed.
 
 The plane thumbnails of the stack strip are kept the same way, one per plane, in
 ``DIR/qc/measured/figures/thumbnails.json``.
@@ -21,6 +23,8 @@ import numpy as np
 
 from ..folder import BuildFolder
 from ..render.fingerprint import digest
+from ..transforms.store import atomic_write_text
+from . import panels, plots
 from .planes import open_planes, reslice_planes, window
 from .reuse import render_fingerprints, stored_measurement, write_measurement
 from .sections import jsonable
@@ -28,8 +32,8 @@ from .settings import ReportSettings
 from .thumbnails import nice_length, thumbnail_png
 from .zchain import section_error
 
-#: bump when a figure's drawing changes (every kept figure is then drawn again once)
-FIGURE_VERSION = 1
+#: bump when a figure's drawing changes (every kept figure is then drawn again once); 2: SVG, no matplotlib
+FIGURE_VERSION = 2
 #: the region figure shows at most this many columns (regions beyond are pooled, in order)
 REGION_COLUMNS = 64
 
@@ -43,13 +47,13 @@ class FigureStore:
         self.kept: list[str] = []
 
     def get(self, name: str, caption: str, key, draw, numbers=None) -> tuple[str, Path]:
-        """Return ``(caption, path)`` of figure ``name``; ``draw()`` makes its matplotlib figure when it must be drawn.
+        """Return ``(caption, path)`` of figure ``name``; ``draw()`` gives its SVG text when it must be drawn.
 
         ``numbers`` (a flat list of px values, None where there is none): the values the figure
         plots, kept with its key; the figure is kept while each is within :data:`SEEN_PX` of the
         value it was drawn with (compared with the drawn values, so changes do not add up).
         """
-        path = self.folder.qc_dir / f"{name}.png"
+        path = self.folder.qc_dir / f"{name}.svg"
         stamp = self.folder.measurement_path("figures", name)
         fp = None if key is None else digest({"v": FIGURE_VERSION, "name": name, "key": jsonable(key)})
         numbers = None if numbers is None else jsonable(list(numbers))
@@ -58,10 +62,9 @@ class FigureStore:
             if old is not None and old.get("fingerprint") == fp and _close(old.get("numbers"), numbers):
                 self.kept.append(name)
                 return caption, path
-        stamp.unlink(missing_ok=True)  # the PNG is about to change: its old key no longer holds
-        from .plots import save  # matplotlib only when a figure is drawn
-
-        save(draw(), path)
+        stamp.unlink(missing_ok=True)  # the figure is about to change: its old key no longer holds
+        atomic_write_text(path, draw())
+        (self.folder.qc_dir / f"{name}.png").unlink(missing_ok=True)  # the raster an older report wrote
         if fp is not None:
             write_measurement(stamp, {"fingerprint": fp, "numbers": numbers})
         self.drawn.append(name)
@@ -81,7 +84,7 @@ def _where(source) -> list:
 
 
 #: an error figure is kept while its numbers stay within this (px) of those it was drawn with: less than
-#: a pixel of the error curve (396 px high for 2 px or more of error) or a step of the region map's colours
+#: a pixel of the error curve (260 px high for 2 px or more of error) or a step of the region map's colours
 #: (256 over the align_max bar), so the kept figure still shows the current numbers
 SEEN_PX = 0.005
 
@@ -93,8 +96,6 @@ def draw_all(folder: BuildFolder, doc: dict, meas, settings: ReportSettings, sto
     rows = doc["sections"]
 
     def error_z():
-        from . import plots
-
         return plots.error_vs_z(rows, settings.align_max)
 
     out.append(store.get("error_z", "Estimated alignment error per plane, with its uncertainty (1 sigma)",
@@ -105,8 +106,6 @@ def draw_all(folder: BuildFolder, doc: dict, meas, settings: ReportSettings, sto
     grid, zs = region_grid(meas, doc)
     if grid is not None:
         def regions():
-            from . import plots
-
             return plots.region_map(grid, zs, settings.align_max)
 
         out.append(store.get("error_regions", "Estimated alignment error by region and plane",
@@ -118,9 +117,7 @@ def draw_all(folder: BuildFolder, doc: dict, meas, settings: ReportSettings, sto
         nm = {c.channel: c.pixel_size for c in folder.channel_manifest()}
 
         def channels():
-            from . import plots
-
-            return plots.channel_overlays(channel_panels(folder, doc), nm)
+            return panels.channel_overlays(channel_panels(folder, doc), nm)
 
         key = _channel_key(folder, doc)
         out.append(store.get("channels", "Marker channels over the EM, as registered",
@@ -129,8 +126,6 @@ def draw_all(folder: BuildFolder, doc: dict, meas, settings: ReportSettings, sto
         marker_px = {c.channel: c.pixel_size / px for c in folder.channel_manifest()}
 
         def landmarks():
-            from . import plots
-
             return plots.landmark_residuals(doc["landmarks"], marker_px)
 
         out.append(store.get("landmarks", "Landmark residuals of the marker registrations (marker spot as "
@@ -151,8 +146,6 @@ def _field_figure(folder, doc, meas, settings, store, px) -> list:
     org = (canvas.origin_x, canvas.origin_y) if canvas else (0.0, 0.0)
 
     def draw():
-        from . import plots
-
         al = folder.store.load_alignment(s)
         return plots.displacement_field(s, al.displacement if al else None, org, px)
 
@@ -178,9 +171,7 @@ def _reslice_figure(folder, doc, settings, store, px) -> list:
     xz, yz = reslice_planes(src, x, y)
 
     def draw():
-        from . import plots
-
-        return plots.reslice(xz, yz, aspect, (x, y), src.factor, px)
+        return panels.reslice(xz, yz, aspect, (x, y), src.factor, px)
 
     return [store.get("reslice", "Orthogonal re-slices through the worst spot of the worst section",
                       [_pixels(xz, yz), _where(src), x, y, aspect, px], draw)]
@@ -247,9 +238,7 @@ def failing_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettin
         wins = [(k, window(src, k, at["x_px"], at["y_px"], half)) for k in picks]  # three small windows
 
         def draw():
-            from . import plots
-
-            return plots.neighbour_panels(wins, (at["x_px"], at["y_px"]), px, src.factor, title)
+            return panels.neighbour_panels(wins, (at["x_px"], at["y_px"]), px, src.factor, title)
 
         out.append(store.get("worst_section",
                              f"The worst-aligned section, {worst['section']}: estimated error "
@@ -262,7 +251,6 @@ def failing_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettin
         secs = [r["section"] for r in ranked]
 
         def draw_tiles():
-            from . import plots
             from .sections import stored_rows
 
             stitches = {s: folder.store.load_stitch(s) for s in secs}  # the few sections drawn, not all
@@ -316,7 +304,7 @@ def channel_panels(folder: BuildFolder, doc: dict, size: int = 384) -> list:
 
     levels = [k for k in range(32) if (folder.pyramid_path() / str(k) / "zarr.json").exists()]
     em0 = open_volume(folder.root, 0, lazy=False).scale_nm[-1]
-    panels = []
+    out = []
     for name in sorted({c["channel"] for c in doc["channels"]}):
         rows = [c for c in doc["channels"] if c["channel"] == name and c["registered"] and c["at"]]
         if not (root / name / "zarr.json").exists() or not rows or not levels:
@@ -335,8 +323,8 @@ def channel_panels(folder: BuildFolder, doc: dict, size: int = 384) -> list:
             em = reduce2x2(em, "mean")
         mk = np.asarray(marker.data[z, y0:y0 + size, x0:x0 + size])
         hh, ww = min(em.shape[0], mk.shape[0]), min(em.shape[1], mk.shape[1])
-        panels.append((name, best["section"], em[:hh, :ww], mk[:hh, :ww]))
-    return panels
+        out.append((name, best["section"], em[:hh, :ww], mk[:hh, :ww]))
+    return out
 
 
 def thumbnails(folder: BuildFolder, doc: dict, reuse: bool = True, height: int = 56) -> tuple[dict[int, str], float | None]:

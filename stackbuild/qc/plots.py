@@ -1,373 +1,258 @@
-"""Figures of the quality report (matplotlib, Agg backend, PNG).
+"""Charts of the quality report, each returned as SVG text (no plotting library).
 
-Every function takes data already measured (rows of the metrics document,
-block measurements, arrays) and returns a :class:`matplotlib.figure.Figure`;
-:func:`save` writes it. Residuals are in full-resolution pixels throughout.
+Every function takes data already measured (rows of the metrics document, stored records,
+arrays) and returns one SVG document (:mod:`stackbuild.qc.svg`); the image panels (re-slices,
+neighbouring planes, marker overlays) are in :mod:`stackbuild.qc.panels`. Residuals are in
+full-resolution pixels throughout; colours are :mod:`stackbuild.qc.colours`' ramp, with the
+no-data colour outside it.
 """
 from __future__ import annotations
 
-import textwrap
-from pathlib import Path
-
-import matplotlib
-import matplotlib.cm
-import matplotlib.colors
-import matplotlib.ticker
 import numpy as np
-from matplotlib.collections import LineCollection, PatchCollection
-from matplotlib.figure import Figure
-from matplotlib.patches import Circle, Rectangle
 
-from .thumbnails import NO_DATA, nice_length, scale_text, thumbnail_png  # noqa: F401 (re-exported)
-
-# Our palette: a sequential map for magnitudes and a few accents.
-SEQ = "cividis"
-INK, GOOD, BAD, WARN, LOST = "#22313f", "#2a9d8f", "#c8553d", "#e9a23b", "#b8b8b8"
+from .colours import BAD, GOOD, INK, LOST, NO_DATA, hex_colour, ramp
+from .svg import Axes, Svg, colour_bar, legend, nice_ticks, note, num, scale_bar, text_width, upsample, wrap
 
 
-def scale_bar(ax, nm_per_unit: float, extent_units: float, *, colour: str = "white") -> float:
-    """Draw a scale bar (length in nm) in the lower-left corner of an image axis; return its length in nm.
+def error_vs_z(section_rows: list[dict], bar: float) -> str:
+    """Return the estimated alignment error of every plane (with its uncertainty) against z, and the bar."""
+    W, H = 900, 390
+    svg = Svg(W, H)
+    svg.text(W / 2, 16, "Estimated alignment error per plane (deviation from where its neighbours put it)",
+             12, "middle", bold=True)
+    box = (70, 36, 800, 260)
+    rows = [r for r in section_rows if r["z"] is not None]
+    have = [r for r in rows if r["align_error_px"] is not None]
+    if not rows:
+        note(svg, box, "no planes")
+        return svg.render()
+    zs = [r["z"] for r in rows]
+    z0, z1 = min(zs) - 0.5, max(zs) + 0.5
+    if have:
+        z = np.array([r["z"] for r in have], float)
+        e = np.array([r["align_error_px"] for r in have], float)
+        u = np.array([r["align_error_unc_px"] or 0.0 for r in have], float)
+        top = max(1.15 * float((e + u).max()), 1.1 * bar)
+    else:
+        top = 1.1 * bar if bar > 0 else 1.0
+    ax = Axes(svg, box, (z0, z1), (0.0, top))
+    for r in rows:  # lost sections first, under everything
+        if r["lost"]:
+            svg.rect(ax.X(r["z"] - 0.5), box[1], ax.X(r["z"] + 0.5) - ax.X(r["z"] - 0.5), box[3], fill=NO_DATA,
+                     opacity=0.8)
+    ax.yticks(nice_ticks(0.0, top, 5), grid=True)
+    ax.xticks(nice_ticks(z0, z1, 10, integer=True), grid=True)
+    entries = []
+    if have:
+        by = float(ax.Y(bar))
+        svg.line(box[0], by, box[0] + box[2], by, stroke=BAD, width=1.2, dash="6 4")
+        for zi, ei, ui in zip(z, e, u):
+            px, py = float(ax.X(zi)), float(ax.Y(ei))
+            if ui > 0:
+                lo, hi = float(ax.Y(max(ei - ui, 0.0))), float(ax.Y(ei + ui))
+                colour = BAD if ei > bar else GOOD
+                svg.line(px, lo, px, hi, stroke=colour, width=1)
+                svg.line(px - 3, lo, px + 3, lo, stroke=colour, width=1)
+                svg.line(px - 3, hi, px + 3, hi, stroke=colour, width=1)
+            if ei > bar:
+                svg.polygon([(px, py - 6), (px + 5.5, py + 4), (px - 5.5, py + 4)], fill=BAD)
+            else:
+                svg.circle(px, py, 3.5, fill=GOOD)
+        entries = [("circle", GOOD, "under the bar"), ("triangle", BAD, "over the bar"), ("dash", BAD, f"bar {bar:g} px")]
+    else:
+        svg.text(box[0] + box[2] / 2, box[1] + box[3] / 2, "alignment error not estimated", 12, "middle")
+    if any(r["lost"] for r in rows):
+        entries.append(("square", NO_DATA, "lost section"))
+    ax.frame()
+    ax.labels("z (plane)", "estimated error (level-0 px)")
+    legend(svg, box[0] + 150, H - 16, entries)
+    return svg.render()
 
-    ``nm_per_unit`` is the size of one axis unit (a displayed pixel, or a level-0 pixel when the
-    axis is in level-0 pixels); ``extent_units`` the axis width in those units.
-    """
-    from matplotlib.patches import Rectangle as _R
-    from matplotlib import patheffects
 
-    length = nice_length(extent_units * nm_per_unit)
-    units = length / nm_per_unit
-    x0, x1 = ax.get_xlim()
-    y0, y1 = ax.get_ylim()
-    w, h = x1 - x0, y1 - y0
-    bx, by = x0 + 0.05 * w, y0 + 0.07 * h
-    ax.add_patch(_R((bx, by), units, 0.018 * abs(h) * np.sign(h), color=colour, ec=INK, lw=0.6, zorder=5))
-    ax.text(bx + units / 2, by + 0.045 * h, scale_text(length), color=colour, ha="center", va="center",
-            fontsize=8, zorder=6, path_effects=[patheffects.withStroke(linewidth=2, foreground=INK)])
-    return length
-
-
-class _Plots:
-    """The two pyplot calls the figures need, without pyplot (its import and figure manager cost a few tenths of a second)."""
-
-    @staticmethod
-    def subplots(*args, figsize=None, layout=None, **kw):
-        """Return ``(figure, axes)`` of a new Agg figure (as ``pyplot.subplots``)."""
-        fig = Figure(figsize=figsize, layout=layout)
-        return fig, fig.subplots(*args, **kw)
-
-    @staticmethod
-    def get_cmap(name):
-        return matplotlib.colormaps[name]
-
-    Circle = Circle
-
-
-plt = _Plots()
-
-
-def save(fig, path: str | Path, dpi: int = 110) -> Path:
-    """Write ``fig`` as PNG (Agg); return the path."""
-    # constrained layouts already fit; "tight" would draw the figure twice
-    tight = None if fig.get_layout_engine() is not None else "tight"
-    # zlib level 1: about a fifth less encoding time than PIL's default 6 for 1-2 % larger files (bench_qc.py)
-    fig.savefig(path, dpi=dpi, bbox_inches=tight, facecolor="white", pil_kwargs={"compress_level": 1})
-    return Path(path)
-
-
-def _note(ax, text: str) -> None:
-    ax.text(0.5, 0.5, text, ha="center", va="center", transform=ax.transAxes, color=INK)
-    ax.set_xticks([])
-    ax.set_yticks([])
+def region_map(grid: np.ndarray, zs: list[int], bar: float) -> str:
+    """Return a planes x regions map of the estimated error; cells without data in :data:`NO_DATA`."""
+    n, ncol = grid.shape
+    plot_h = float(np.clip(14 * n, 120, 960))
+    W, H = 900, plot_h + 100
+    svg = Svg(W, H)
+    svg.text(W / 2, 16, "Estimated error by region and plane (pink = not measured)", 12, "middle", bold=True)
+    box = (70, 36, 690, plot_h)
+    vmax = max(float(np.nanmax(grid)) if np.isfinite(grid).any() else 0.0, bar)
+    svg.image(*box, upsample(ramp(grid, 0.0, vmax), box[2], box[3]), cls="heat",
+              alt="estimated error, one row per plane, one column per region")
+    ax = Axes(svg, box, (-0.5, ncol - 0.5), (n - 0.5, -0.5))  # plane 0 at the top
+    if n <= 40:
+        ax.yticks(list(range(n)), [str(z) for z in zs], size=9 if n > 20 else 10)
+    else:
+        ax.yticks(nice_ticks(0, n - 1, 8, integer=True))
+    ax.xticks(nice_ticks(0, ncol - 1, 8, integer=True))
+    ax.frame()
+    ax.labels("region (row by row over the plane)", "z (plane)")
+    colour_bar(svg, box[0] + box[2] + 24, box[1], min(plot_h, 300.0), 0.0, vmax, "estimated error (px)",
+               no_data="not measured", mark=(bar, "bar"))
+    return svg.render()
 
 
 def tile_maps(stitches: dict, tile_rows: list[dict], pair_rows: list[dict], sections: list[int],
-              px_nm: float = 1.0):
+              px_nm: float = 1.0) -> str:
     """Return maps of tile positions coloured by seam residual, one panel per section.
 
-    Accepted pairs are solid lines between tile centres, rejected pairs dashed.
+    Accepted pairs are solid lines between tile centres, rejected pairs dashed; every tile is
+    labelled with its name (up to 400 tiles a section), every panel has a scale bar in nm.
     """
     n = max(1, len(sections))
     cols = min(3, n)
     rows = int(np.ceil(n / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(4.8 * cols + 1, 4.4 * rows + 0.6), squeeze=False,
-                             layout="constrained")
+    P, gap, head = 300.0, 24.0, 58.0
+    W = cols * (P + gap) + 110
+    title = ("Tile placement: colour = seam misfit (pink = not measured); solid = accepted pair, "
+             "dashed = rejected")
+    H = head + rows * (P + 34) + 10
+    svg = Svg(W, H)
+    svg.lines(W / 2, 16, wrap(title, W - 40, 12), 12, "middle", bold=True)
     vals = [r["seam_median"] for r in tile_rows if r["section"] in sections and r["seam_median"] is not None]
     vmax = max(max(vals, default=0.0), 0.5)
-    norm = matplotlib.colors.Normalize(0, vmax)
-    cmap = plt.get_cmap(SEQ)
-    for ax in axes.ravel()[n:]:
-        ax.axis("off")
-    for ax, s in zip(axes.ravel(), sections):
-        st = stitches[s]
-        res = {r["tile"]: r["seam_median"] for r in tile_rows if r["section"] == s}
-        rects = [Rectangle((t.x - 0.5, t.y - 0.5), t.width, t.height) for t in st.tiles]
-        colours = [cmap(norm(res[t.tile])) if res.get(t.tile) is not None else NO_DATA for t in st.tiles]
-        # faces opaque (overlaps show the later tile), outlines drawn on top so every tile stays visible
-        ax.add_collection(PatchCollection(rects, facecolors=colours, edgecolors="none"))
-        ax.add_collection(PatchCollection([Rectangle(r.get_xy(), r.get_width(), r.get_height()) for r in rects],
-                                          facecolors="none", edgecolors=INK, linewidths=0.7))
-        centre = {t.tile: (t.x + t.width / 2, t.y + t.height / 2) for t in st.tiles}
-        for acc, style, col in ((True, "-", GOOD), (False, "--", BAD)):
-            segs = [(centre[r["a"]], centre[r["b"]]) for r in pair_rows
-                    if r["section"] == s and bool(r["accepted"]) == acc and r["a"] in centre and r["b"] in centre]
-            if segs:
-                ax.add_collection(LineCollection(segs, colors=col, linestyles=style, linewidths=1.6))
-        x0, y0, x1, y1 = st.bbox()
-        ax.set_xlim(x0 - 10, x1 + 10)
-        ax.set_ylim(y1 + 10, y0 - 10)
-        ax.set_aspect("equal")
-        if len(st.tiles) <= 400:  # labels stay readable up to about 20 x 20 tiles
-            for t in st.tiles:
-                ax.text(t.x + t.width / 2, t.y + t.height / 2, t.tile, ha="center", va="center",
-                        fontsize=max(4, 9 - len(st.tiles) // 50), color="white",
-                        bbox=dict(boxstyle="round,pad=0.15", fc=INK, ec="none", alpha=0.7),
-                        in_layout=False)  # inside the axes: the layout need not measure every label (half the cost)
-        scale_bar(ax, px_nm, x1 - x0, colour="white")
-        ax.set_title(f"section {s}", color=INK)
-        # no tick labels: the scale bar gives the size and the labels name the tiles (tick labels
-        # were half the cost of the report's figures)
-        ax.set_xticks([])
-        ax.set_yticks([])
-    sm = matplotlib.cm.ScalarMappable(norm=norm, cmap=cmap)
-    fig.colorbar(sm, ax=axes.ravel().tolist(), shrink=0.8, label="tile seam residual, median (px)")
-    fig.suptitle("Tile placement: colour = seam misfit (pink = not measured); solid = accepted pair, "
-                 "dashed = rejected",
-                 color=INK, fontsize=11)
-    return fig
+    for i, s in enumerate(sections):
+        bx, by = 16 + (i % cols) * (P + gap), head + (i // cols) * (P + 34) + 18
+        svg.text(bx + P / 2, by - 10, f"section {s}", 11, "middle")
+        _tile_panel(svg, (bx, by, P), stitches[s], s, tile_rows, pair_rows, vmax, px_nm)
+    colour_bar(svg, W - 84, head + 18, min(P, H - head - 60), 0.0, vmax, "tile seam residual, median (px)",
+               no_data="not measured")
+    return svg.render()
 
 
-def displacement_field(section: int, field, origin_out=(0.0, 0.0), px_nm: float | None = None):
+def _tile_panel(svg: Svg, where, st, s: int, tile_rows, pair_rows, vmax: float, px_nm: float) -> None:
+    """Draw one section's tiles (faces, then outlines, pairs and labels) into a ``P`` x ``P`` square at ``where``."""
+    bx, by, P = where
+    x0, y0, x1, y1 = st.bbox()
+    x0, y0, x1, y1 = x0 - 10, y0 - 10, x1 + 10, y1 + 10
+    k = min(P / (x1 - x0), P / (y1 - y0))  # figure px per section px, equal in x and y
+    ax = Axes(svg, (bx, by, (x1 - x0) * k, (y1 - y0) * k), (x0, x1), (y1, y0))
+    res = {r["tile"]: r["seam_median"] for r in tile_rows if r["section"] == s}
+    faces = ramp([np.nan if res.get(t.tile) is None else res[t.tile] for t in st.tiles], 0.0, vmax)
+    boxes = [(float(ax.X(t.x - 0.5)), float(ax.Y(t.y - 0.5)), t.width * k, t.height * k) for t in st.tiles]
+    # faces opaque (overlaps show the later tile), outlines on top so every tile stays visible
+    for b, c in zip(boxes, faces):
+        svg.rect(*b, fill=hex_colour(c))
+    for b in boxes:
+        svg.rect(*b, stroke=INK, width=0.7)
+    centre = {t.tile: (float(ax.X(t.x + t.width / 2)), float(ax.Y(t.y + t.height / 2))) for t in st.tiles}
+    for r in pair_rows:
+        if r["section"] == s and r["a"] in centre and r["b"] in centre:
+            (xa, ya), (xb, yb) = centre[r["a"]], centre[r["b"]]
+            ok = bool(r["accepted"])
+            svg.line(xa, ya, xb, yb, stroke=GOOD if ok else BAD, width=1.6, dash=None if ok else "5 3")
+    if len(st.tiles) <= 400:  # labels stay readable up to about 20 x 20 tiles
+        size = max(5.0, 10.0 - len(st.tiles) // 50)
+        for t in st.tiles:
+            cx, cy = centre[t.tile]
+            w = text_width(t.tile, size) + 4
+            svg.rect(cx - w / 2, cy - 0.7 * size, w, 1.4 * size, fill=INK, opacity=0.7, rx=2)
+            svg.text(cx, cy, t.tile, size, "middle", fill="#ffffff")
+    scale_bar(svg, bx + 0.05 * ax.box[2], by + ax.box[3] - 6, px_nm / k, ax.box[2])
+    ax.frame()
+
+
+def displacement_field(section: int, field, origin_out=(0.0, 0.0), px_nm: float | None = None) -> str:
     """Return the magnitude map and arrows of a section's elastic displacement field."""
-    fig, ax = plt.subplots(figsize=(6.5, 5.2), layout="constrained")  # fitted once, not drawn twice by "tight"
+    title = f"Elastic displacement, section {section} (arrows to scale of the largest)"
     if field is None:
-        _note(ax, f"section {section}: no displacement field stored")
-        return fig
-    v = field.vectors
+        svg = Svg(700, 160)
+        svg.text(350, 16, title, 12, "middle", bold=True)
+        note(svg, (20, 36, 660, 110), f"section {section}: no displacement field stored")
+        return svg.render()
+    v = np.asarray(field.vectors, float)
     ny, nx = v.shape[:2]
     xs = field.origin[0] - origin_out[0] + field.spacing * np.arange(nx)
     ys = field.origin[1] - origin_out[1] + field.spacing * np.arange(ny)
     mag = np.hypot(v[..., 0], v[..., 1])
     half = field.spacing / 2
-    im = ax.imshow(mag, cmap=SEQ, origin="upper", interpolation="nearest",
-                   extent=(xs[0] - half, xs[-1] + half, ys[-1] + half, ys[0] - half))
-    # at most about 24 arrows a side (every k-th node, arrows k times longer): a denser quiver is unreadable
-    # and most of the figure's cost
-    k = max(1, int(np.ceil(max(nx, ny) / 24)))
-    gx, gy = np.meshgrid(xs[::k], ys[::k])
-    ax.quiver(gx, gy, v[::k, ::k, 0], v[::k, ::k, 1], color="white", angles="xy",
-              scale_units="xy", scale=max(float(mag.max()), 1e-6) / (0.8 * k * field.spacing), width=0.004)
-    fig.colorbar(im, ax=ax, label="displacement (px)")
+    ex0, ex1, ey0, ey1 = xs[0] - half, xs[-1] + half, ys[0] - half, ys[-1] + half
+    k = min(560 / (ex1 - ex0), 440 / (ey1 - ey0))  # figure px per output px
+    box = (80, 36, (ex1 - ex0) * k, (ey1 - ey0) * k)
+    W, H = box[0] + box[2] + 110, box[1] + box[3] + 50
+    svg = Svg(W, H)
+    svg.text(W / 2, 16, title, 12, "middle", bold=True)
+    top = max(float(mag.max()), 1e-6)
+    svg.image(*box, upsample(ramp(mag, 0.0, top), box[2], box[3]), alt="displacement magnitude")
+    ax = Axes(svg, box, (ex0, ex1), (ey1, ey0))  # y down, as in the image
+    # at most about 24 arrows a side (every s-th node, arrows s times longer): a denser field is unreadable
+    step = max(1, int(np.ceil(max(nx, ny) / 24)))
+    reach = 0.8 * step * field.spacing / top * k  # figure px per px of displacement
+    _arrows(svg, [(float(ax.X(xs[i])), float(ax.Y(ys[j])), v[j, i, 0] * reach, v[j, i, 1] * reach)
+                  for j in range(0, ny, step) for i in range(0, nx, step)])
+    ax.xticks(nice_ticks(ex0, ex1, 5))
+    ax.yticks(nice_ticks(ey0, ey1, 5))
+    ax.frame()
+    ax.labels("x (output px)", "y (output px)", left=58)
     if px_nm:
-        scale_bar(ax, px_nm, xs[-1] - xs[0] + field.spacing)
-    ax.set_xlabel("x (output px)")
-    ax.set_ylabel("y (output px)")
-    ax.set_title(f"Elastic displacement, section {section} (arrows to scale of the largest)", color=INK)
-    return fig
+        scale_bar(svg, box[0] + 0.05 * box[2], box[1] + box[3] - 8, px_nm / k, box[2])
+    colour_bar(svg, box[0] + box[2] + 16, box[1], min(box[3], 300.0), 0.0, top, "displacement (px)")
+    return svg.render()
 
 
-def reslice(xz: np.ndarray, yz: np.ndarray, z_aspect: float, at: tuple[float, float], factor: float,
-            px_nm: float = 1.0):
-    """Return the x-z and y-z re-slices, stretched in z by ``z_aspect`` (section thickness over pixel)."""
-    panel = [float(np.clip(9.0 * img.shape[0] * z_aspect / max(img.shape[1] * factor, 1), 0.6, 4.5))
-             for img in (xz, yz)]
-    fig, axes = plt.subplots(2, 1, figsize=(9, sum(panel) + 2.0), layout="constrained",
-                             gridspec_kw={"height_ratios": panel})
-    for ax, img, name, pos in ((axes[0], xz, "x", f"y = {at[1]:.0f}"), (axes[1], yz, "y", f"x = {at[0]:.0f}")):
-        lo, hi = np.percentile(img, [1, 99]) if img.size else (0, 1)
-        n = img.shape[1] * factor
-        ax.imshow(img, cmap="gray", vmin=lo, vmax=hi, interpolation="nearest",
-                  extent=(0, n, img.shape[0] - 0.5, -0.5), aspect=z_aspect / factor)
-        ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(nbins=4, integer=True))
-        ax.set_xlabel(f"{name} (output px)")
-        ax.set_ylabel("z (plane)")
-        scale_bar(ax, px_nm, n)
-        ax.set_title(f"{name}-z re-slice at {pos} (z stretched by {z_aspect:.1f}: physical proportions)",
-                     color=INK, fontsize=10)
-    return fig
+def _arrows(svg: Svg, arrows) -> None:
+    """Draw arrows ``(x, y, dx, dy)`` (figure px): white with a dark edge, readable on any colour; three paths in all."""
+    shafts, heads = [], []
+    for x, y, dx, dy in arrows:
+        length = float(np.hypot(dx, dy))
+        if length < 1.0:
+            continue
+        ux, uy = dx / length, dy / length
+        head = min(6.0, 0.45 * length)
+        tx, ty = x + dx, y + dy
+        bx, by = tx - head * ux, ty - head * uy
+        wx, wy = -uy * head * 0.5, ux * head * 0.5
+        shafts.append(f"M{num(x)} {num(y)}L{num(bx)} {num(by)}")
+        heads.append(f"M{num(tx)} {num(ty)}L{num(bx + wx)} {num(by + wy)}L{num(bx - wx)} {num(by - wy)}Z")
+    if shafts:
+        svg.path("".join(shafts), stroke=INK, width=2.4)
+        svg.path("".join(shafts), stroke="#ffffff", width=1.1)
+        svg.path("".join(heads), fill="#ffffff", stroke=INK, width=0.6)
 
 
-def overlay(a: np.ndarray, b: np.ndarray, za: int, zb: int, at: tuple[float, float], tiles: int = 8):
-    """Return a two-colour overlay and a checkerboard of two planes around a spot.
-
-    In the overlay plane ``za`` is orange and ``zb`` blue; where they agree the
-    picture is grey.
-    """
-    def norm(x):
-        lo, hi = np.percentile(x, [1, 99])
-        return np.clip((x - lo) / max(hi - lo, 1e-6), 0, 1)
-
-    na, nb = norm(a), norm(b)
-    rgb = np.dstack([na, 0.55 * na + 0.45 * nb, nb])
-    h, w = a.shape
-    yy, xx = np.mgrid[0:h, 0:w]
-    cell = max(1, min(h, w) // tiles)
-    board = np.where(((yy // cell + xx // cell) % 2) == 0, na, nb)
-    fig, axes = plt.subplots(1, 2, figsize=(10, 5))
-    axes[0].imshow(rgb, interpolation="nearest")
-    axes[0].set_title(f"z {za} (orange) over z {zb} (blue)", color=INK)
-    axes[1].imshow(board, cmap="gray", interpolation="nearest")
-    axes[1].set_title(f"checkerboard z {za} / z {zb}", color=INK)
-    for ax in axes:
-        ax.set_xticks([])
-        ax.set_yticks([])
-    fig.suptitle(f"Worst section-to-section residual, around x = {at[0]:.0f}, y = {at[1]:.0f} output px",
-                 color=INK, fontsize=11)
-    return fig
-
-
-def histograms(pair_rows: list[dict], seam_mags: np.ndarray, plane_mags: np.ndarray):
-    """Return histograms of pair confidence (NCC), per-pair seam residuals and section residuals per block."""
-    fig, axes = plt.subplots(1, 3, figsize=(12, 3.6))
-    acc = [r["ncc"] for r in pair_rows if r["ncc"] is not None and r["accepted"]]
-    rej = [r["ncc"] for r in pair_rows if r["ncc"] is not None and not r["accepted"]]
-    bins = np.linspace(min(acc + rej + [0.0]), 1.0, 21)
-    axes[0].hist([acc, rej], bins=bins, stacked=True, color=[GOOD, BAD], label=["accepted", "rejected"])
-    axes[0].set_xlabel("pair NCC (stitcher)")
-    axes[0].legend(fontsize=8)
-    for ax, mags, name in ((axes[1], seam_mags, "seam residual per tile pair (px)"),
-                           (axes[2], plane_mags, "section-to-section residual (px)")):
-        if len(mags):
-            ax.hist(mags, bins=30, color=WARN, edgecolor=INK, linewidth=0.3)
-        else:
-            _note(ax, "nothing measured")
-        ax.set_xlabel(name)
-    for ax in axes:
-        ax.set_ylabel("count")
-        ax.grid(alpha=0.3)
-    fig.suptitle("Distributions", color=INK, fontsize=11)
-    return fig
-
-
-def landmark_residuals(rows: list[dict], marker_px: dict[str, float]):
+def landmark_residuals(rows: list[dict], marker_px: dict[str, float]) -> str:
     """Return each landmark's residual vector ``(dx, dy)`` (EM px), one panel per marker channel.
 
     A dashed circle marks one marker pixel (``marker_px[channel]``, in EM px): inside it, the
     registration places the marker spot within the marker image's own resolution.
     """
     names = sorted({r["channel"] for r in rows})
-    fig, axes = plt.subplots(1, max(len(names), 1), figsize=(3.6 * max(len(names), 1), 3.6), squeeze=False,
-                             layout="constrained")
+    P = 260.0
+    n = max(len(names), 1)
+    W, H = n * (P + 96) + 20, P + 112
+    svg = Svg(W, H)
     if not names:
-        _note(axes[0, 0], "no landmarks")
-        return fig
-    for ax, name in zip(axes[0], names):
+        note(svg, (20, 20, W - 40, H - 40), "no landmarks")
+        return svg.render()
+    for i, name in enumerate(names):
+        box = (84 + i * (P + 96), 40, P, P)
         mine = [r for r in rows if r["channel"] == name and r["residual"] is not None]
         if not mine:
-            _note(ax, f"{name}: not registered")
+            note(svg, box, f"{name}: not registered")
             continue
-        d = np.array([[r["dx"], r["dy"]] for r in mine])
+        d = np.array([[r["dx"], r["dy"]] for r in mine], float)
         one = marker_px.get(name)
         reach = max(float(np.abs(d).max()), one or 0.0) * 1.15 + 1e-6
+        ax = Axes(svg, box, (-reach, reach), (reach, -reach))  # y down, as in the image
+        ticks = nice_ticks(-reach, reach, 4)
+        ax.xticks(ticks, grid=True)
+        ax.yticks(ticks, grid=True)
+        svg.line(ax.X(0), box[1], ax.X(0), box[1] + P, stroke=LOST, width=0.8)
+        svg.line(box[0], ax.Y(0), box[0] + P, ax.Y(0), stroke=LOST, width=0.8)
         if one:
-            ax.add_patch(plt.Circle((0, 0), one, fill=False, ls="--", color=INK, lw=1))
+            svg.circle(ax.X(0), ax.Y(0), one * P / (2 * reach), stroke=INK, width=1, dash="5 3")
         inside = np.hypot(d[:, 0], d[:, 1]) <= (one or np.inf)
-        ax.scatter(d[inside, 0], d[inside, 1], s=18, color=GOOD, label="within one marker px")
-        ax.scatter(d[~inside, 0], d[~inside, 1], s=18, color=BAD, marker="^", label="beyond")
-        ax.axhline(0, color=LOST, lw=0.8)
-        ax.axvline(0, color=LOST, lw=0.8)
-        ax.set_xlim(-reach, reach)
-        ax.set_ylim(reach, -reach)  # y down, as in the image
-        ax.set_aspect("equal")
+        for (dx, dy), ok in zip(d, inside):
+            px, py = float(ax.X(dx)), float(ax.Y(dy))
+            if ok:
+                svg.circle(px, py, 3.5, fill=GOOD)
+            else:
+                svg.polygon([(px, py - 5), (px + 4.5, py + 3.5), (px - 4.5, py + 3.5)], fill=BAD)
         rms = float(np.sqrt(np.mean(np.sum(d ** 2, axis=1))))
-        ax.set_title(f"{name}: {len(mine)} landmarks, RMS {rms:.2f} px", color=INK, fontsize=10)
-        ax.set_xlabel("dx (EM px)")
-        ax.set_ylabel("dy (EM px)")
-        ax.grid(alpha=0.3)
-        ax.legend(fontsize=7, loc="lower left")
-    return fig
-
-
-def channel_overlays(panels: list[tuple[str, int, np.ndarray, np.ndarray]], nm_per_px: dict | None = None):
-    """Return the EM plane in grey with each registered marker over it in green, one panel per channel.
-
-    ``panels`` holds ``(channel, section, em, marker)``, both images on the same grid (the
-    marker pyramid's level 0 and the EM level of the same pixel size). Marker structures
-    should sit on their EM counterparts; a misregistration shows as a consistent offset.
-    """
-    def norm(x):
-        lo, hi = np.percentile(x, [1, 99.5])
-        return np.clip((x.astype(np.float32) - lo) / max(hi - lo, 1e-6), 0, 1)
-
-    n = max(len(panels), 1)
-    fig, axes = plt.subplots(1, n, figsize=(4.4 * n, 4.6), squeeze=False, layout="constrained")
-    if not panels:
-        _note(axes[0, 0], "no registered marker channels")
-        return fig
-    for ax, (name, section, em, marker) in zip(axes[0], panels):
-        g, m = norm(em), norm(marker)
-        rgb = np.dstack([0.85 * g, 0.85 * g + 0.6 * m, 0.85 * g]).clip(0, 1)
-        ax.imshow(rgb, interpolation="nearest")
-        ax.set_title(f"{name} (green) on section {section}", color=INK, fontsize=10)
-        if nm_per_px and nm_per_px.get(name):
-            scale_bar(ax, nm_per_px[name], g.shape[1])
-        ax.set_xticks([])
-        ax.set_yticks([])
-    return fig
-
-
-def error_vs_z(section_rows: list[dict], bar: float):
-    """Return the estimated alignment error of every plane (with its uncertainty) against z, and the bar."""
-    fig, ax = plt.subplots(figsize=(9, 3.6))
-    rows = [r for r in section_rows if r["z"] is not None]
-    have = [r for r in rows if r["align_error_px"] is not None]
-    if have:
-        z = np.array([r["z"] for r in have])
-        e = np.array([r["align_error_px"] for r in have])
-        u = np.array([r["align_error_unc_px"] or 0.0 for r in have])
-        over = e > bar
-        ax.errorbar(z[~over], e[~over], yerr=u[~over], fmt="o", color=GOOD, ms=4, capsize=2, label="under the bar")
-        ax.errorbar(z[over], e[over], yerr=u[over], fmt="^", color=BAD, ms=6, capsize=2, label="over the bar")
-        ax.axhline(bar, color=BAD, ls="--", lw=1, label=f"bar {bar:g} px")
-        ax.set_ylim(0, max(1.15 * float((e + u).max()), 1.1 * bar))
-    else:
-        _note(ax, "alignment error not estimated")
-    for r in rows:
-        if r["lost"]:
-            ax.axvspan(r["z"] - 0.5, r["z"] + 0.5, color=NO_DATA, alpha=0.8, lw=0)
-    if any(r["lost"] for r in rows):
-        ax.plot([], [], "s", color=NO_DATA, ms=9, label="lost section")
-    ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
-    ax.set_xlabel("z (plane)")
-    ax.set_ylabel("estimated error (level-0 px)")
-    ax.grid(alpha=0.3)
-    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.2), fontsize=8, ncols=4, frameon=False)
-    ax.set_title("Estimated alignment error per plane (deviation from where its neighbours put it)",
-                 color=INK, fontsize=10)
-    return fig
-
-
-def region_map(grid: np.ndarray, zs: list[int], bar: float):
-    """Return a planes x regions map of the estimated error; cells without data in :data:`NO_DATA`."""
-    fig, ax = plt.subplots(figsize=(9, max(2.5, min(0.18 * len(zs) + 1.5, 12))))
-    cmap = plt.get_cmap(SEQ).with_extremes(bad=NO_DATA)
-    vmax = max(float(np.nanmax(grid)) if np.isfinite(grid).any() else 0.0, bar)
-    im = ax.imshow(np.ma.masked_invalid(grid), cmap=cmap, vmin=0, vmax=vmax, aspect="auto",
-                   interpolation="nearest", extent=(-0.5, grid.shape[1] - 0.5, len(zs) - 0.5, -0.5))
-    ax.set_yticks(np.arange(len(zs)), [str(z) for z in zs] if len(zs) <= 40 else None)
-    if len(zs) > 40:
-        ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
-    fig.colorbar(im, ax=ax, label="estimated error (px)")
-    ax.set_xlabel("region (row by row over the plane)")
-    ax.set_ylabel("z (plane)")
-    ax.set_title("Estimated error by region and plane (pink = not measured)", color=INK, fontsize=10)
-    return fig
-
-
-def neighbour_panels(windows: list[tuple[int, np.ndarray]], centre: tuple[float, float], px_nm: float,
-                     factor: float, title: str):
-    """Return side-by-side crops of planes around a spot (same place), each with a scale bar."""
-    fig, axes = plt.subplots(1, max(len(windows), 1), figsize=(3.6 * max(len(windows), 1), 4), squeeze=False,
-                             layout="constrained")
-    for ax, (z, img) in zip(axes[0], windows):
-        lo, hi = np.percentile(img, [1, 99]) if img.size else (0, 1)
-        ax.imshow(img, cmap="gray", vmin=lo, vmax=hi, interpolation="nearest")
-        ax.plot([img.shape[1] / 2], [img.shape[0] / 2], "+", color=WARN, ms=14, mew=1.5)
-        ax.set_title(f"z {z}", color=INK, fontsize=10)
-        ax.set_xticks([])
-        ax.set_yticks([])
-        scale_bar(ax, px_nm * factor, img.shape[1])
-    # Wrapped to the figure's width: a long title on a two- or three-panel figure ran off both edges.
-    text = f"{title} (around x = {centre[0]:.0f}, y = {centre[1]:.0f} level-0 px; + marks the spot)"
-    width = max(40, int(fig.get_figwidth() * 12))  # about 12 characters per inch at 10 pt
-    fig.suptitle(textwrap.fill(text, width), color=INK, fontsize=10)
-    return fig
+        svg.text(box[0] + P / 2, 20, f"{name}: {len(mine)} landmarks, RMS {rms:.2f} px", 11, "middle")
+        ax.frame()
+        ax.labels("dx (EM px)", "dy (EM px)", left=50)
+    legend(svg, 84, H - 16, [("circle", GOOD, "within one marker px"), ("triangle", BAD, "beyond"),
+                             ("dash", INK, "one marker pixel")])
+    return svg.render()

@@ -1,8 +1,8 @@
 """The report stage: metrics, tables, plots and one self-contained ``DIR/qc/report.html``.
 
-The HTML file embeds its PNG figures as base64 ``data:`` URIs and its style
-inline; it needs no server, no script and no network. Every name that comes
-from input files (tile ids, paths, channel names) is escaped with
+The HTML file holds its SVG figures inline (their image panels and the plane thumbnails as
+base64 PNG ``data:`` URIs) and its style; it needs no server, no script and no network. Every
+name that comes from input files (tile ids, paths, channel names) is escaped with
 :func:`html.escape`.
 """
 from __future__ import annotations
@@ -37,7 +37,7 @@ td.t{text-align:left} tr.bad td{background:#f6d9d0}
 .ebar.over{background:#c8553d} .flag{display:inline-block;background:#efe9dc;border-radius:3px;padding:0 4px;
 margin:1px;font-size:11px} ul.why{color:#c8553d;font-weight:bold}
 p.warn{color:#8a5a00;background:#fbecc8;padding:4px 8px;border-radius:3px;display:inline-block;margin:2px 0} table.strip td{padding:1px 6px}
-figure{margin:14px 0} figure img{max-width:100%;border:1px solid #d8d2c4;background:#fff}
+figure{margin:14px 0} figure img,figure svg{max-width:100%;height:auto;border:1px solid #d8d2c4;background:#fff}
 figcaption{font-size:13px;margin-top:4px} .small{font-size:12px;color:#5b6770}
 """
 
@@ -159,8 +159,15 @@ def _landmark_table(rows: list[dict], n: int, bar: float) -> str:
     ])
 
 
-def _img(path: Path) -> str:
-    return "data:image/png;base64," + base64.b64encode(Path(path).read_bytes()).decode("ascii")
+def _figure(caption: str, path: Path) -> str:
+    """Return one figure for the page: an SVG file inline, a PNG as a ``data:`` URI."""
+    path = Path(path)
+    if path.suffix == ".svg":
+        pic = path.read_text(encoding="utf-8").replace("<svg ", f'<svg role="img" aria-label="{html.escape(caption)}" ', 1)
+    else:
+        pic = (f'<img src="data:image/png;base64,{base64.b64encode(path.read_bytes()).decode("ascii")}" '
+               f'alt="{html.escape(caption)}">')
+    return f"<figure>{pic}<figcaption>{html.escape(caption)}</figcaption></figure>"
 
 
 def _strip(doc: dict, thumbs: dict[int, str], bar_nm: float | None, settings: ReportSettings) -> str:
@@ -244,8 +251,7 @@ def render_html(doc: dict, verdict_rows: list[dict], passed: bool, figures, sett
                                                              f"({src['factor']:g} level-0 px per pixel)") if src else
                 "alignment error not measured")
     notes = "".join(f"<li>{html.escape(n)}</li>" for n in doc["notes"]) or "<li>none</li>"
-    figs = "".join(f'<figure><img src="{_img(p)}" alt="{html.escape(c)}"><figcaption>{html.escape(c)}'
-                   "</figcaption></figure>" for c, p in figures)
+    figs = "".join(_figure(c, p) for c, p in figures)
     when = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     return (f"<!DOCTYPE html><html lang=en><head><meta charset=utf-8><title>stackbuild quality report</title>"
             f"<style>{_CSS}</style></head><body>"
@@ -331,7 +337,7 @@ def provenance(folder: BuildFolder, settings: ReportSettings, doc: dict) -> dict
 
 def run_report(build_dir, settings: ReportSettings, *, fail_on: list[str] | None = None,
                progress=None, mapper=None, reuse: bool = True, changed: dict | None = None) -> Verdict:
-    """Measure a build, write ``DIR/qc`` (metrics.json, CSV tables, PNG figures, report.html).
+    """Measure a build, write ``DIR/qc`` (metrics.json, CSV tables, SVG figures, report.html).
 
     Parameters
     ----------

@@ -49,7 +49,18 @@ def png_bytes(rgb: np.ndarray) -> bytes:
 
 
 def upsample(rgb: np.ndarray, width: float, height: float) -> np.ndarray:
-    """Return ``rgb`` repeated by whole factors toward ``width`` x ``height`` (nearest: cells stay sharp in any viewer)."""
+    """Return ``rgb`` sized for a ``width`` x ``height`` figure box.
+
+    An axis over twice the box is reduced by area averaging to twice it (detail for a high-density
+    screen, without encoding pixels nobody sees); a shorter one is repeated by a whole factor toward
+    the box (nearest: cells stay sharp in any viewer).
+    """
+    ky, kx = min(1.0, 2 * height / max(rgb.shape[0], 1)), min(1.0, 2 * width / max(rgb.shape[1], 1))
+    if ky < 1 or kx < 1:  # each axis on its own: a re-slice keeps every plane while its columns are reduced
+        import cv2
+
+        size = (max(1, int(round(rgb.shape[1] * kx))), max(1, int(round(rgb.shape[0] * ky))))
+        rgb = cv2.resize(rgb, size, interpolation=cv2.INTER_AREA)
     fy = max(1, int(height // max(rgb.shape[0], 1)))
     fx = max(1, int(width // max(rgb.shape[1], 1)))
     if fy > 1:

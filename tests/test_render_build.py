@@ -225,3 +225,15 @@ def test_contrast_range_by_strips_matches_numpy_percentile_of_the_whole_render(t
     expect = np.percentile(whole[weight > 0], (1.0, 99.0))
     got = measure_range(stitch, (1.0, 99.0), scale=2, strip=7)
     np.testing.assert_allclose(got, expect, rtol=1e-6)
+
+
+def test_rendering_and_updating_do_not_import_dask_array():
+    """The writer, the patcher and the update need dask's graphs, not ``dask.array`` (0.4-1 s to import in
+    every worker process and in every in-process update); the lazy volume imports it where it makes one."""
+    import subprocess
+    import sys
+
+    code = ("import sys, stackbuild.render.pyramid, stackbuild.render.patch, stackbuild.run.update, "
+            "stackbuild.run.cluster; print('dask.array' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.split()[-1] == "False"

@@ -15,9 +15,9 @@ import threading
 from collections import OrderedDict
 from dataclasses import asdict, dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import cv2
-import dask.array as da
 import numpy as np
 from dask.base import tokenize
 from dask.highlevelgraph import HighLevelGraph
@@ -32,6 +32,9 @@ from .ngff import AXES, level_transform
 from .reduce import level_shapes, reduce2x2
 from ..sampler import interpolation_order, render_region
 from ..tiles import SectionTiles
+
+if TYPE_CHECKING:  # imported where used: render and update tasks never need dask.array (0.4-1 s to import)
+    import dask.array as da
 
 
 @dataclass(frozen=True)
@@ -158,6 +161,8 @@ def level0(plan: RenderPlan, planes: list[int] | None = None) -> da.Array:
                 dsk[(name, k, i, j)] = (render_block, plan, z, a, b, c, d)
     chunks = ((1,) * len(planes), tuple(b - a for a, b in ys), tuple(d - c for c, d in xs))
     graph = HighLevelGraph.from_collections(name, dsk, dependencies=[])
+    import dask.array as da
+
     return da.Array(graph, name, chunks, dtype=np.dtype(plan.dtype))
 
 
@@ -201,6 +206,8 @@ def reduce_level(arr: da.Array, reducer: str, block: int) -> da.Array:
                 dsk[(name, k, i // 2, j // 2)] = (_reduce_quad, kids, reducer)
     pairs = [tuple((sum(c[i:i + 2]) + 1) // 2 for i in range(0, len(c), 2)) for c in arr.chunks[1:]]
     graph = HighLevelGraph.from_collections(name, dsk, dependencies=[arr])
+    import dask.array as da
+
     return da.Array(graph, name, (arr.chunks[0], *pairs), dtype=arr.dtype)
 
 
@@ -319,4 +326,6 @@ def open_volume(build_dir, level: int = 0, lazy: bool = True, channel: str | Non
     ds = attrs["datasets"][paths.index(str(level))]["coordinateTransformations"]
     scale = tuple(next(t["scale"] for t in ds if t["type"] == "scale"))
     trans = tuple(next((t["translation"] for t in ds if t["type"] == "translation"), (0.0, 0.0, 0.0)))
+    import dask.array as da
+
     return Volume(da.from_zarr(str(group / str(level))), scale, trans, level)

@@ -94,6 +94,8 @@ def channels_stage(build: BuildFolder, mapper, *, progress=None) -> dict:
 
 def render_channels_stage(build: BuildFolder, *, overwrite: bool = False, progress=None, mapper=None) -> dict:
     """Write each marker channel's pyramid beside the EM, in the same physical space (stale planes only, unless ``overwrite``)."""
+    if not build.load_state().get("channels"):
+        return {}  # asked before the import: the marker renderer's modules cost an update 0.1-0.4 s to load
     from ..render.stage import run_markers
 
     return run_markers(build, build.config.render, mapper=mapper, overwrite=overwrite, progress=progress)

@@ -20,7 +20,6 @@ log = logging.getLogger(__name__)
 
 def align_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
     """Keep, solve again or hold each section's alignment; record why in ``plan.facts["align"]``."""
-    from ..align.stage import align_sections
     from ..render.dirty import same_alignment
     from ..transforms.hold import hold_alignments
     from .update_reach import alignment_reach
@@ -38,6 +37,8 @@ def align_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
         plan.facts["align"] = {"realigned": [], "frame_rms_px": None, "largest_untouched_move_px": 0.0,
                                "moved_px": {}, "moved_beyond_tolerance": [], "window": [], "checked": checked}
         return
+    from ..align.stage import align_sections  # only now: a section kept without a re-solve needs none of it
+
     scratch = build.scratch_dir("align")
     source = WindowSource(build.root, window_sections(store.sections_with("stitch"), resolve,
                                                       build.config.align.neighbours, appended=plan.added))

@@ -84,7 +84,9 @@ def run_build(tiles: Path, out: Path, workers: int, source: Path | None = None) 
         env["PYTHONPATH"] = os.pathsep.join([str(source), *filter(None, [env.get("PYTHONPATH")])])
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env)
+    # `python -m` puts the working directory first on sys.path (and the workers inherit it): run from the tree.
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env,
+                            cwd=str(source if source is not None else REPO))
     top = psutil.Process(proc.pid)
     cpu_by_stage: dict[str, float] = {}
     seen: dict[int, float] = {}

@@ -2,6 +2,7 @@
 
     python tests/benchmarks/bench_update.py                 # 20 sections of 3 x 3 tiles of 384 px
     python tests/benchmarks/bench_update.py --sections 10 --kills
+    python tests/benchmarks/bench_update.py --speed-only --baseline /tmp/old   # steps 1-2 with another tree too
 
 Measured side by side in one run, on one synthetic stack (``stackbuild.synth``, ground truth
 unused here):
@@ -19,6 +20,9 @@ unused here):
    and how far the local re-solve would have moved the existing sections (the tolerance);
 5. with ``--kills``: the update killed in its align, channels and render steps, run again, and
    compared byte for byte with the uninterrupted update.
+
+With ``--baseline DIR`` steps 1-2 also run with the source tree DIR (its own build, then its
+update), before this tree's, and the two are printed side by side.
 """
 from __future__ import annotations
 
@@ -40,8 +44,10 @@ import tifffile
 
 def _cli(*args, env=None, check=True) -> tuple[float, int]:
     t0 = time.perf_counter()
+    # `python -m` puts the working directory first on sys.path: run from the tree given by PYTHONPATH.
+    cwd = (env or {}).get("PYTHONPATH", "").split(os.pathsep)[0] or None
     proc = subprocess.run([sys.executable, "-m", "stackbuild.cli", *map(str, args), "--quiet"],
-                          env={**os.environ, **(env or {})}, start_new_session=True,
+                          env={**os.environ, **(env or {})}, start_new_session=True, cwd=cwd,
                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     if check and proc.returncode not in (0, 3):
         raise SystemExit(f"stackbuild {' '.join(map(str, args))} failed:\n{proc.stderr}")
@@ -192,6 +198,38 @@ def inset_memory(root: Path, base: Path, section: int, sides=(384, 960)) -> None
         shutil.rmtree(work, ignore_errors=True)
 
 
+def _build_and_update(root: Path, first: Path, again: Path, scale: list, env) -> tuple:
+    """Build ``first`` into ``root/build``, copy it to ``root/updated``, update that; return times, exit, plan."""
+    base, upd = root / "build", root / "updated"
+    for d in (base, upd):
+        shutil.rmtree(d, ignore_errors=True)
+    t_build, _ = _cli("build", first, "--out", base, *scale, env=env)
+    shutil.copytree(base, upd)
+    t_update, status = _cli("update", upd, "--tiles", again, "--workers", "2", env=env)
+    return t_build, t_update, status, json.loads((upd / "updates" / "0001" / "plan.json").read_text())
+
+
+def _side_by_side(old: tuple, new: tuple, build: Path) -> None:
+    """Print build and update times, the update's steps and the ratios of the baseline beside this tree's."""
+    print(f"{'':<26}{'baseline':>12}{'this tree':>12}")
+    rows = [("full build s", old[0], new[0]), ("update s", old[1], new[1]),
+            ("build / update", old[0] / old[1], new[0] / new[1])]
+    steps = sorted(set(old[3]["facts"].get("seconds", {})) | set(new[3]["facts"].get("seconds", {})))
+    for k in steps:
+        rows.append((f"  update step {k}", old[3]["facts"]["seconds"].get(k, 0.0),
+                     new[3]["facts"]["seconds"].get(k, 0.0)))
+    for tag, (t_build, t_update, _, plan) in (("baseline", old), ("this tree", new)):
+        secs = plan["facts"].get("seconds", {})
+        rest = t_update - sum(secs.values())
+        if tag == "baseline":
+            rest_old, nor_old = rest, old[0] / max(1e-9, t_update - secs.get("report", 0))
+        else:
+            rows.append(("  rest (start, imports)", rest_old, rest))
+            rows.append(("build / update w/o report", nor_old, t_build / max(1e-9, t_update - secs.get("report", 0))))
+    for name, a, b in rows:
+        print(f"{name:<26}{a:>12.2f}{b:>12.2f}")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--sections", type=int, default=20)
@@ -201,6 +239,9 @@ def main() -> None:
     ap.add_argument("--keep", metavar="DIR", help="work here and keep it (default: a temporary folder)")
     ap.add_argument("--inset-memory", action="store_true",
                     help="only the inset tasks' peak memory at two inset sizes (reuses DIR/build of --keep if there)")
+    ap.add_argument("--baseline", metavar="DIR", type=Path,
+                    help="also build and update with the source tree DIR (e.g. `git archive COMMIT stackbuild | "
+                         "tar -x -C DIR`), before this tree, and print both side by side")
     ap.add_argument("--speed-only", action="store_true",
                     help="only steps 1-2: the full build and the update side by side, and their ratio")
     args = ap.parse_args()
@@ -223,14 +264,15 @@ def main() -> None:
             _cli("build", first, "--out", base, *scale)
         inset_memory(root, base, n // 2)
         return
-    for d in (base, upd, root / "fresh", root / "appended"):
-        shutil.rmtree(d, ignore_errors=True)
-    t_build, _ = _cli("build", first, "--out", base, *scale)
-    shutil.copytree(base, upd)
     section, tiles = n // 2, ["r0c0", "r0c1"]
     again = _reimage(data, root / "again", section, tiles)
-    t_update, status = _cli("update", upd, "--tiles", again, "--workers", "2")
-    plan = json.loads((upd / "updates" / "0001" / "plan.json").read_text())
+    if args.baseline:
+        env = {"PYTHONPATH": os.pathsep.join([str(Path(args.baseline).resolve()),
+                                              *filter(None, [os.environ.get("PYTHONPATH")])])}
+        old = _build_and_update(root / "baseline", first, again, scale, env)
+    for d in (base, upd, root / "fresh", root / "appended"):
+        shutil.rmtree(d, ignore_errors=True)
+    t_build, t_update, status, plan = _build_and_update(root, first, again, scale, None)
     before, after = _files(base / "volume.zarr" / "em"), _files(upd / "volume.zarr" / "em")
     changed = {k for k in before.keys() | after.keys() if before.get(k) != after.get(k)}
     planes = sorted({int(k.split(os.sep)[2]) for k in changed})
@@ -263,6 +305,8 @@ def main() -> None:
     state = json.loads((base / "build.json").read_text())["stages"]
     print(f"  full build stages (s): { {k: v.get('seconds') for k, v in state.items()} }")
 
+    if args.baseline:
+        _side_by_side(old, (t_build, t_update, status, plan), base)
     if args.speed_only:
         if not args.keep:
             shutil.rmtree(root, ignore_errors=True)

@@ -10,7 +10,9 @@ on the same volume, then the modelled production size (``--production`` alone).
 ``--accuracy [FAMILY/VARIANT ...] --seeds 0,1,2`` prints the identifiable residual
 (stackbuild.synth.residual) of align on the named synthetic stacks. ``--speed [FAMILY/VARIANT ...]``
 prints align CPU beside two render CPUs on the same volume, each in its own process (one thread;
-default realistic/base seed 0; issue #13 target: align <= 0.5 x render):
+default realistic/base seed 0; issue #13 target: align <= 0.5 x render). With ``--baseline DIR`` (a
+source tree of another commit: ``git archive COMMIT stackbuild | tar -x -C DIR``) ``--speed`` and
+``--accuracy`` also run align with that code in a child process, on the same stacks, beside this tree's:
 
 * ``stage``: the render stage as ``stackbuild build`` runs it (``run.stages.render_stage`` with the
   in-process mapper: level 0, the pyramid, the codec and the writes of ``volume.zarr``);
@@ -20,8 +22,16 @@ default realistic/base seed 0; issue #13 target: align <= 0.5 x render):
 from __future__ import annotations
 
 import argparse
+import json
+import os
+import subprocess
+import sys
 import time
 from pathlib import Path
+
+# --baseline's child process imports the stackbuild of another source tree
+if os.environ.get("BENCH_ALIGN_SOURCE"):
+    sys.path.insert(0, os.environ["BENCH_ALIGN_SOURCE"])
 
 import cv2
 import numpy as np
@@ -157,8 +167,10 @@ def _peak_bytes() -> int:
 
 def _measured(fn, args):
     import resource
+    from stackbuild.run.plan_speed import one_thread
     r0 = resource.getrusage(resource.RUSAGE_SELF)
-    out = fn(*args)
+    with one_thread():      # one OpenCV, BLAS and Blosc thread: process CPU is then the work's own
+        out = fn(*args)
     r1 = resource.getrusage(resource.RUSAGE_SELF)
     cpu = (r1.ru_utime - r0.ru_utime) + (r1.ru_stime - r0.ru_stime)
     return out, cpu, _peak_bytes()
@@ -168,6 +180,22 @@ def _align_only(build):
     from stackbuild.align.stage import run_align
     al = run_align(build, AlignSettings())
     return {z: a.flags for z, a in al.items() if a.flags}
+
+
+def _baseline_align(source, build) -> tuple[dict, float]:
+    """Return the flags and CPU seconds of align run on ``build`` by the stackbuild in ``source`` (a child process)."""
+    env = {**os.environ, "BENCH_ALIGN_SOURCE": str(source)}
+    out = subprocess.run([sys.executable, __file__, "--align-child", str(build)], env=env, check=True,
+                         capture_output=True, text=True).stdout
+    res = json.loads(out.splitlines()[-1])
+    return res["flags"], res["cpu"]
+
+
+def _align_child(build) -> None:
+    """Print (JSON) the flags and CPU seconds of align on ``build``, measured in this process (one thread)."""
+    import stackbuild
+    flags, cpu, _ = _measured(_align_only, (str(build),))
+    print(json.dumps({"flags": {str(z): f for z, f in flags.items()}, "cpu": cpu, "source": stackbuild.__file__}))
 
 
 def _render_only(build):
@@ -246,7 +274,7 @@ def _build_canvas(build):
     store.save_canvas(settle_canvas(None, fresh, shard=rs.chunk * rs.shard, chunk=rs.chunk)[0])
 
 
-def accuracy(cases, seeds, root="/tmp/bench_align_accuracy"):
+def accuracy(cases, seeds, root="/tmp/bench_align_accuracy", baseline=None):
     """Print the identifiable residual (stackbuild.synth.residual) of align on named synthetic stacks.
 
     Each build is measured on two grids of 128 px blocks (only blocks covered in every plane count):
@@ -260,20 +288,33 @@ def accuracy(cases, seeds, root="/tmp/bench_align_accuracy"):
     from stackbuild.synth.residual import identifiable_residual
     print("  case                     extent grid: rms   p95    max  last | canvas grid: rms   p95    max  last"
           " | flags   (px; true tile positions)")
+
+    def measured(base):
+        cols = []
+        for grid in ("extent", "canvas"):
+            if grid == "canvas":
+                _build_canvas(base / "build")
+            r = identifiable_residual(base / "build", base / "sample")
+            last = r.per_section[max(r.per_section)]["rms"]
+            cols.append(f"{r.rms:6.2f} {r.p95:6.2f} {r.max:6.2f} {last:5.2f} ({len(r.points):3d} blocks)")
+        return cols
+
+    def bad(flags):
+        return {z: f for z, f in flags.items() if set(f) & {"damaged", "interpolated"}}
+
     for family, variant in cases:
         for seed in seeds:
+            name = family + '/' + variant + '/' + str(seed)
+            if baseline:
+                base = _fresh_case(root, family, variant, seed)
+                flags, _ = _baseline_align(baseline, base / "build")
+                cols = measured(base)
+                print(f"  {name + ' base':22s} {cols[0]} | {cols[1]} | {bad(flags) or ''}", flush=True)
             base = _fresh_case(root, family, variant, seed)
             al = run_align(base / "build", AlignSettings())
-            cols = []
-            for grid in ("extent", "canvas"):
-                if grid == "canvas":
-                    _build_canvas(base / "build")
-                r = identifiable_residual(base / "build", base / "sample")
-                last = r.per_section[max(r.per_section)]["rms"]
-                cols.append(f"{r.rms:6.2f} {r.p95:6.2f} {r.max:6.2f} {last:5.2f} ({len(r.points):3d} blocks)")
-            flags = {z: a.flags for z, a in al.items() if set(a.flags) & {"damaged", "interpolated"}}
-            print(f"  {family + '/' + variant + '/' + str(seed):22s} {cols[0]} | {cols[1]} | {flags or ''}",
-                  flush=True)
+            cols = measured(base)
+            flags = bad({z: a.flags for z, a in al.items()})
+            print(f"  {name:22s} {cols[0]} | {cols[1]} | {flags or ''}", flush=True)
 
 
 def _fresh_case(root, family: str, variant: str, seed: int, folder: bool = False) -> Path:
@@ -296,17 +337,26 @@ def _fresh_case(root, family: str, variant: str, seed: int, folder: bool = False
     return base
 
 
-def speed(cases, seeds, root="/tmp/bench_align_speed"):
-    """Print align CPU beside the render stage's CPU and level 0's on the same volume (true tile positions)."""
+def speed(cases, seeds, root="/tmp/bench_align_speed", baseline=None):
+    """Print align CPU beside the render stage's CPU and level 0's on the same volume (true tile positions).
+
+    With ``baseline`` (a source tree), the same align by that code, in a child process run
+    right before this tree's, on the same build: a row ``... base`` above each case.
+    """
     print("  case                   align CPU s   render stage CPU s  level 0 CPU s   align/stage  align/level 0"
           "   (each in its own process, one thread; target <= 0.5)")
     for family, variant in cases:
         for seed in seeds:
             base = _fresh_case(root, family, variant, seed, folder=True)
+            b_cpu = _baseline_align(baseline, base / "build")[1] if baseline else None
             _, a_cpu, _ = _child(_align_only, str(base / "build"))
             _, s_cpu, _ = _child(_render_stage, str(base / "build"))
             _, r_cpu, _ = _child(_render_only, str(base / "build"))
-            print(f"  {family + '/' + variant + '/' + str(seed):22s} {a_cpu:11.1f}   {s_cpu:18.1f}  {r_cpu:13.1f}"
+            name = family + '/' + variant + '/' + str(seed)
+            if b_cpu is not None:
+                print(f"  {name + ' base':22s} {b_cpu:11.1f}   {s_cpu:18.1f}  {r_cpu:13.1f}"
+                      f"   {b_cpu / s_cpu:11.2f}  {b_cpu / r_cpu:13.2f}", flush=True)
+            print(f"  {name:22s} {a_cpu:11.1f}   {s_cpu:18.1f}  {r_cpu:13.1f}"
                   f"   {a_cpu / s_cpu:11.2f}  {a_cpu / r_cpu:13.2f}", flush=True)
 
 
@@ -321,8 +371,14 @@ def main():
                     help="identifiable residual on synthetic stacks (default: every family and variant)")
     ap.add_argument("--speed", nargs="*", metavar="FAMILY/VARIANT",
                     help="align CPU beside render CPU on the same volume (default realistic/base)")
+    ap.add_argument("--baseline", type=Path, default=None, metavar="DIR",
+                    help="with --speed or --accuracy: a source tree (holding stackbuild/) run beside this one")
+    ap.add_argument("--align-child", type=Path, default=None, help=argparse.SUPPRESS)
     ap.add_argument("--seeds", default=None, help="seeds, e.g. 0,1,2 (default: 0,1,2 for --accuracy, 0 for --speed)")
     args = ap.parse_args()
+    if args.align_child:
+        _align_child(args.align_child)
+        return
     if args.tradeoff:
         tradeoff()
         return
@@ -335,12 +391,12 @@ def main():
         return
     if args.speed is not None:
         speed([tuple(c.split("/")) for c in args.speed] or [("realistic", "base")],
-              [int(x) for x in (args.seeds or "0").split(",")])
+              [int(x) for x in (args.seeds or "0").split(",")], baseline=args.baseline)
         return
     if args.accuracy is not None:
         cases = [tuple(c.split("/")) for c in args.accuracy] or [
             (f, v) for f in ("standard", "realistic") for v in ("base", "dense", "small", "long")]
-        accuracy(cases, [int(x) for x in (args.seeds or "0,1,2").split(",")])
+        accuracy(cases, [int(x) for x in (args.seeds or "0,1,2").split(",")], baseline=args.baseline)
         return
     n = 4096 if args.full else 1024
     s = AlignSettings()

@@ -11,6 +11,7 @@ so memory stays bounded).
 """
 from __future__ import annotations
 
+import functools
 import warnings
 from dataclasses import dataclass
 
@@ -198,6 +199,21 @@ def _dot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return prod.sum(axis=1).astype(np.float64) @ _half_weights(*a.shape[-2:]).astype(np.float64)
 
 
+def _ramped_dot(f_spec: np.ndarray, m_spec: np.ndarray, band: np.ndarray, ey: np.ndarray,
+                ex: np.ndarray) -> np.ndarray:
+    """Return :func:`_dot` of ``f_spec * band`` and ``m_spec * band * ey * ex`` (ramps of :func:`_ramps`).
+
+    ``Re sum(conj(f) m band^2 ey ex)`` with the column ramp and the Hermitian
+    weights taken by one batched matrix product instead of three full-size products.
+    """
+    n, p, q = f_spec.shape
+    g = np.conj(f_spec)
+    g *= m_spec
+    g *= (band * band * _half_weights(p, q)).astype(np.float32)
+    rows = np.matmul(g, ex.reshape(n, q, 1))[..., 0]           # (n, p)
+    return np.real((rows * ey.reshape(n, p)).sum(axis=1)).astype(np.float64)
+
+
 def _power_sums(spec: np.ndarray) -> np.ndarray:
     """Return ``(n, 4)``: each block's energy and its gradient structure tensor ``jxx, jyy, jxy``, from its real FFT.
 
@@ -205,14 +221,34 @@ def _power_sums(spec: np.ndarray) -> np.ndarray:
     ``|S|^2`` (the gradient is a product with ``2 pi i k``, up to a common
     factor), so they come out of one matrix product.
     """
-    n, p, q = spec.shape
+    return _sums_of_power(_power(spec))
+
+
+def _power(spec: np.ndarray) -> np.ndarray:
+    """Return ``|spec| ** 2`` (float32 for complex64)."""
+    power = spec.real * spec.real
+    power += spec.imag * spec.imag
+    return power
+
+
+def _sums_of_power(power: np.ndarray, band: np.ndarray | None = None) -> np.ndarray:
+    """Return :func:`_power_sums` from the power spectra ``(n, p, q)`` of the blocks (times ``band ** 2`` if given)."""
+    n, p, q = power.shape
+    if band is not None:
+        power = power * (band * band)
+    return power.reshape(n, -1).astype(np.float64) @ _sum_weights(p, q)
+
+
+@functools.lru_cache(maxsize=8)
+def _sum_weights(p: int, q: int) -> np.ndarray:
+    """Return the ``(p * q, 4)`` weights of :func:`_power_sums`: Hermitian halves, ``kx^2``, ``ky^2``, ``kx ky``."""
     ky = sfft.fftfreq(p)[:, None]
     kx = sfft.rfftfreq(p)[None, :]
     w = _half_weights(p, q)[None, :].astype(np.float64)
     weights = np.stack([np.broadcast_to(x, (p, q)) for x in (w, kx * kx * w, ky * ky * w, kx * ky * w)], axis=-1)
-    power = spec.real * spec.real
-    power += spec.imag * spec.imag
-    return power.reshape(n, -1).astype(np.float64) @ weights.reshape(-1, 4)
+    weights = weights.reshape(-1, 4)
+    weights.setflags(write=False)
+    return weights
 
 
 def _isotropy(sums: np.ndarray) -> np.ndarray:
@@ -240,13 +276,15 @@ def _band(p: int, fine_sigma: float, coarse_sigma: float) -> np.ndarray:
     return g.astype(np.float32)
 
 
-def _normalise_spectrum(x: np.ndarray, power: float, weights: np.ndarray | float = 1.0) -> np.ndarray:
+def _normalise_spectrum(x: np.ndarray, power: float, weights: np.ndarray | float = 1.0,
+                        mag: np.ndarray | None = None) -> np.ndarray:
     """Return ``weights * x / |x| ** power`` (0 where ``x`` is 0), per block.
 
     One multiplication of ``x`` by a real array (a complex division, or two
-    multiplications, cost about twice as much).
+    multiplications, cost about twice as much). ``mag``: ``|x|`` if known
+    (overwritten).
     """
-    mag = np.abs(x)
+    mag = np.abs(x) if mag is None else mag
     floor = 1e-9 * mag.reshape(len(x), -1).max(1)[:, None, None] + 1e-30
     np.maximum(mag, floor, out=mag)
     if power != 1.0:
@@ -305,6 +343,9 @@ class MatchPlan:
         Spectral normalisation (see :func:`match_blocks`).
     norm : float
         Peak height of a perfect match: the band's own inverse transform at 0.
+    root_band : ndarray, shape (p, p // 2 + 1)
+        The square root of ``band``: each side of a match carries half of it
+        (:meth:`whiten`), so their product carries the band.
     """
 
     half_size: int
@@ -316,6 +357,7 @@ class MatchPlan:
     batch: int
     power: float
     norm: float
+    root_band: np.ndarray
 
     def spectrum(self, x: np.ndarray) -> np.ndarray:
         """Return the real FFTs of blocks ``x`` ``(n, p, p)`` less their means, under the window."""
@@ -328,9 +370,24 @@ class MatchPlan:
         wx = _taper(p, self.half_size, p / 2.0, shift[:, 1])
         return sfft.rfft2((x - x.mean(axis=(1, 2), keepdims=True)) * wy[:, :, None] * wx[:, None, :])
 
-    def cross(self, f_spec: np.ndarray, m_spec: np.ndarray) -> np.ndarray:
-        """Return the band-limited, normalised cross-power spectra of fixed and moving blocks."""
-        return _normalise_spectrum(np.conj(f_spec) * m_spec, self.power, self.band)
+    def whiten(self, spec: np.ndarray, power: np.ndarray | None = None) -> np.ndarray:
+        """Return ``root_band * spec / |spec| ** power`` (a new array): one side of :meth:`cross`.
+
+        ``|conj(f) m| = |f| |m|``, so the normalised cross-power spectrum
+        factors into the two blocks' own whitened spectra: a block's is made
+        once and serves every block it is matched with (differs from
+        normalising the product only where a bin is below 1e-9 of its
+        block's largest, where both are 0 to float32 precision). ``power``:
+        ``|spec| ** 2`` if known.
+        """
+        mag = None if power is None else np.sqrt(power)
+        return _normalise_spectrum(np.array(spec, np.complex64), self.power, self.root_band, mag)
+
+    def cross(self, f_white: np.ndarray, m_white: np.ndarray) -> np.ndarray:
+        """Return the band-limited, normalised cross-power spectra of blocks from their :meth:`whiten` spectra."""
+        out = np.conj(f_white)
+        out *= m_white
+        return out
 
 
 def match_plan(half_size: int, max_shift: int, *, fine_sigma: float = 1.0, coarse_sigma: float | None = None,
@@ -344,7 +401,7 @@ def match_plan(half_size: int, max_shift: int, *, fine_sigma: float = 1.0, coars
     taper = _taper(p, hs, p / 2.0)
     norm = float(sfft.irfft2(band, s=(p, p))[0, 0])
     return MatchPlan(hs, ms, p, block_reach(hs, ms), band, np.outer(taper, taper),
-                     max(16, _BATCH_PIXELS // (p * p)), float(power), norm)
+                     max(16, _BATCH_PIXELS // (p * p)), float(power), norm, np.sqrt(band))
 
 
 @dataclass
@@ -363,12 +420,15 @@ class BlockSpectra:
         its mean, under the window; 0 where not usable.
     sums : ndarray, shape (N, 4)
         :func:`_power_sums` of the band-passed spectra.
+    white : ndarray of complex64, shape (N, p, p // 2 + 1), optional
+        :meth:`MatchPlan.whiten` of ``spec`` (made by :func:`match_spectra` when None).
     """
 
     xy: np.ndarray
     usable: np.ndarray
     spec: np.ndarray
     sums: np.ndarray
+    white: np.ndarray | None = None
 
 
 def block_spectra(image: np.ndarray, xy: np.ndarray, plan: MatchPlan, rows: np.ndarray | None = None) -> BlockSpectra:
@@ -381,9 +441,8 @@ def block_spectra(image: np.ndarray, xy: np.ndarray, plan: MatchPlan, rows: np.n
     half = p // 2
     h, w = image.shape[-2:]
     usable = (xy[:, 0] >= reach) & (xy[:, 1] >= reach) & (xy[:, 0] + reach < w) & (xy[:, 1] + reach < h)
-    spec = np.zeros((n, p, p // 2 + 1), np.complex64)
-    sums = np.zeros((n, 4))
     idx = np.flatnonzero(usable)
+    parts = None
     if idx.size:
         x = _patches(image, xy[idx, 0] - half, xy[idx, 1] - half, p, None if rows is None else rows[idx])
         # the window's flat centre must hold data; beyond it, missing pixels (a section's edge) take
@@ -392,9 +451,18 @@ def block_spectra(image: np.ndarray, xy: np.ndarray, plan: MatchPlan, rows: np.n
         usable[idx[~core]] = False
         idx = idx[core]
         if idx.size:
-            spec[idx] = plan.spectrum(_filled(x[core]))
-            sums[idx] = _power_sums(spec[idx] * plan.band)
-    return BlockSpectra(xy, usable, spec, sums)
+            x = x if core.all() else x[core]
+            sp = plan.spectrum(_filled(x))
+            pw = _power(sp)
+            parts = (sp, _sums_of_power(pw, plan.band), plan.whiten(sp, pw))
+            if idx.size == n:           # every block usable: no zero-filled copies
+                return BlockSpectra(xy, usable, parts[0], parts[1], parts[2])
+    spec = np.zeros((n, p, p // 2 + 1), np.complex64)
+    white = np.zeros_like(spec)
+    sums = np.zeros((n, 4))
+    if parts is not None:
+        spec[idx], sums[idx], white[idx] = parts
+    return BlockSpectra(xy, usable, spec, sums, white)
 
 
 def match_spectra(fixed: BlockSpectra, moving: BlockSpectra, moving_image: np.ndarray, plan: MatchPlan,
@@ -411,22 +479,29 @@ def match_spectra(fixed: BlockSpectra, moving: BlockSpectra, moving_image: np.nd
     good = np.flatnonzero(fixed.usable & moving.usable)
     if not good.size:
         return out
-    s, pk, c, g, i = _match_core(fixed.spec[good], fixed.sums[good], moving.spec[good], moving_image,
-                                 fixed.xy[good], plan, subpixel, None if rows is None else rows[good])
+    sel = slice(None) if good.size == n else good          # a view when every block is matched
+
+    def white(sp):
+        return sp.white[sel] if sp.white is not None else plan.whiten(sp.spec[sel])
+
+    s, pk, c, g, i = _match_core(fixed.spec[sel], white(fixed), fixed.sums[sel], moving.spec[sel],
+                                 white(moving), moving.sums[sel], moving_image, fixed.xy[sel], plan, subpixel,
+                                 None if rows is None else rows[sel])
     out.shifts[good], out.peak[good], out.ncc[good], out.margin[good], out.isotropy[good] = s, pk, c, g, i
     return out
 
 
-def _match_core(f_spec, f_sums, m_spec, m_img, xy, plan, subpixel, rows):
+def _match_core(f_spec, f_white, f_sums, m_spec, m_white, m_sums, m_img, xy, plan, subpixel, rows):
     """Match usable blocks by their spectra; return shifts (dx, dy), peak, ncc, margin, isotropy."""
     n, p, ms = len(xy), plan.p, plan.max_shift
     half = p // 2
     out = [np.full((n, 2), np.nan)] + [np.full(n, np.nan) for _ in range(4)]
     # pass 1: whole-pixel peak of the band-limited phase correlation within +- max_shift
-    cross = plan.cross(f_spec, m_spec)
-    surf = sfft.irfft2(cross, s=(p, p)) / plan.norm
-    surf = np.roll(surf, (ms, ms), axis=(1, 2))[:, :2 * ms + 1, :2 * ms + 1]
+    cross = plan.cross(f_white, m_white)
     k = 2 * ms + 1
+    wrap = (np.arange(k) - ms) % p                  # shifts -ms..ms of the circular surface
+    surf = sfft.irfft2(cross, s=(p, p))[:, wrap][:, :, wrap]
+    surf /= plan.norm
     r, c = np.divmod(surf.reshape(n, -1).argmax(1), k)
     top = surf.reshape(n, -1).max(1)
     rival = _rival(surf, r, c)
@@ -447,23 +522,28 @@ def _match_core(f_spec, f_sums, m_spec, m_img, xy, plan, subpixel, rows):
         m2 = _patches(m_img, xy[:, 0] - half + cut[:, 1], xy[:, 1] - half + cut[:, 0], p, rows)
         m2_spec = plan.moved_spectrum(_filled(m2), frac)
         ey, ex = _ramps(frac, p)
-        rest, height = _refine(plan.cross(f_spec, m2_spec) * ey * ex, p)
+        cross = plan.cross(f_white, plan.whiten(m2_spec))
+        cross *= ey
+        cross *= ex
+        rest, height = _refine(cross, p)
         est = est + rest
         sub = sub + rest
-        mg = m2_spec * plan.band * ey * ex
+        m_spec, m_energy = m2_spec, _sums_of_power(_power(m2_spec), plan.band)[:, 0]
     else:
         # the same surface evaluated between pixels about that peak (upsampled DFT of the cross-power
         # spectrum moved by the whole-pixel shift; no new transform), and the moving block's spectrum
         # brought to the whole-pixel shift (circularly) for the NCC
         ey, ex = _ramps(whole, p)
-        sub, height = _refine(cross * ey * ex, p)
+        cross *= ey
+        cross *= ex
+        sub, height = _refine(cross, p)
         est = whole + sub
-        mg = m_spec * plan.band * ey * ex
+        m_energy = m_sums[:, 0]
     # NCC of the band-limited, windowed blocks at the match (for the trust threshold; one pass: the
-    # whole-pixel match, circularly), by Parseval's theorem straight from the spectra
-    fg = f_spec * plan.band
+    # whole-pixel match, circularly), by Parseval's theorem straight from the spectra; the phase
+    # ramps have unit modulus, so the moved block's energy is its own
     with np.errstate(divide="ignore", invalid="ignore"):
-        ncc = _dot(fg, mg) / np.sqrt(f_sums[:, 0] * _dot(mg, mg))
+        ncc = _ramped_dot(f_spec, m_spec, plan.band, ey, ex) / np.sqrt(f_sums[:, 0] * m_energy)
         margin = np.clip(1.0 - np.maximum(rival, 0.0) / top, 0.0, 1.0)
     ok &= np.isfinite(ncc) & (np.abs(sub) < 1.0).all(axis=1)
     out[0][ok] = est[ok][:, ::-1]

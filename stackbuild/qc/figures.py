@@ -32,8 +32,8 @@ from .settings import ReportSettings
 from .thumbnails import nice_length, thumbnail_png
 from .zchain import section_error
 
-#: bump when a figure's drawing changes (every kept figure is then drawn again once); 2: SVG, no matplotlib
-FIGURE_VERSION = 2
+#: bump when a figure's drawing changes (every kept figure is then drawn again once); 2: SVG, no matplotlib; 3: tile-map scale bar under the map
+FIGURE_VERSION = 3
 #: the region figure shows at most this many columns (regions beyond are pooled, in order)
 REGION_COLUMNS = 64
 

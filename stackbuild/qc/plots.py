@@ -103,17 +103,17 @@ def tile_maps(stitches: dict, tile_rows: list[dict], pair_rows: list[dict], sect
     n = max(1, len(sections))
     cols = min(3, n)
     rows = int(np.ceil(n / cols))
-    P, gap, head = 300.0, 24.0, 58.0
+    P, gap, head = 300.0, 24.0, 44.0
     W = cols * (P + gap) + 110
     title = ("Tile placement: colour = seam misfit (pink = not measured); solid = accepted pair, "
              "dashed = rejected")
-    H = head + rows * (P + 34) + 10
+    H = head + rows * (P + 60) + 10
     svg = Svg(W, H)
     svg.lines(W / 2, 16, wrap(title, W - 40, 12), 12, "middle", bold=True)
     vals = [r["seam_median"] for r in tile_rows if r["section"] in sections and r["seam_median"] is not None]
     vmax = max(max(vals, default=0.0), 0.5)
     for i, s in enumerate(sections):
-        bx, by = 16 + (i % cols) * (P + gap), head + (i // cols) * (P + 34) + 18
+        bx, by = 16 + (i % cols) * (P + gap), head + (i // cols) * (P + 60) + 18
         svg.text(bx + P / 2, by - 10, f"section {s}", 11, "middle")
         _tile_panel(svg, (bx, by, P), stitches[s], s, tile_rows, pair_rows, vmax, px_nm)
     colour_bar(svg, W - 84, head + 18, min(P, H - head - 60), 0.0, vmax, "tile seam residual, median (px)",
@@ -149,7 +149,8 @@ def _tile_panel(svg: Svg, where, st, s: int, tile_rows, pair_rows, vmax: float, 
             w = text_width(t.tile, size) + 4
             svg.rect(cx - w / 2, cy - 0.7 * size, w, 1.4 * size, fill=INK, opacity=0.7, rx=2)
             svg.text(cx, cy, t.tile, size, "middle", fill="#ffffff")
-    scale_bar(svg, bx + 0.05 * ax.box[2], by + ax.box[3] - 6, px_nm / k, ax.box[2])
+    # under the map, in ink: inside it the bar would cover the bottom row's labels
+    scale_bar(svg, bx, by + ax.box[3] + 24, px_nm / k, ax.box[2], colour=INK)
     ax.frame()
 
 

@@ -231,7 +231,8 @@ def scale_bar(svg: Svg, x: float, y: float, nm_per_px: float, span_px: float, co
     w = length / nm_per_px
     svg.open("scalebar", nm=f"{length:g}")
     svg.rect(x, y - 4, w, 4, fill=colour, stroke=INK, width=0.6)
-    svg.text(x + w / 2, y - 13, scale_text(length), 11, "middle", fill=colour, halo=INK)
+    svg.text(x + w / 2, y - 13, scale_text(length), 11, "middle", fill=colour,
+             halo=None if colour == INK else INK)
     svg.close()
     return length
 

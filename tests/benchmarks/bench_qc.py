@@ -11,6 +11,10 @@
                  plane changed (its render fingerprint replaced: pairs measured, CPU).
                  ``--baseline DIR`` also runs the report of the package copy in DIR (for
                  example ``git archive <commit> stackbuild | tar -x -C DIR``) beside it.
+                 While others have uncommitted changes in the working tree, run the bench with
+                 ``PYTHONPATH=<archive of HEAD>`` so that the render and the new report are the
+                 committed code (reports run with cwd ``/``, so PYTHONPATH wins over the editable
+                 install).
 ``--json-size``  metrics.json of 400 sections x 1000 tiles, from a real document's
                  per-section rows (tiles and pairs go to CSV only).
 ``--one-plane``  on the 8-section agreement build: a full report, a re-report with nothing changed, and

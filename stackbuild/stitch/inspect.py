@@ -1,6 +1,8 @@
 """Per-tile statistics and quality flags: blank, saturated, out of focus."""
 from __future__ import annotations
 
+import functools
+
 import cv2
 import numpy as np
 
@@ -20,14 +22,26 @@ PILE_UP_FACTOR = 4.0
 STAT_SAMPLES = 1 << 16
 
 
+@functools.lru_cache(maxsize=8)
+def _quadratic_basis(h: int, w: int) -> np.ndarray:
+    """Return the ``(h * w, 6)`` basis ``1, u, v, u^2, uv, v^2`` of a 2-D quadratic on ``[-1, 1]^2``; read-only.
+
+    Kept per shape: every tile of a section has the same block grid, and building it cost
+    half of :func:`_minus_quadratic`.
+    """
+    yy, xx = np.mgrid[:h, :w]
+    u, v = (2 * xx + 1) / w - 1.0, (2 * yy + 1) / h - 1.0
+    basis = np.stack([np.ones_like(u), u, v, u * u, u * v, v * v], axis=-1).reshape(-1, 6)
+    basis.setflags(write=False)
+    return basis
+
+
 def _minus_quadratic(values: np.ndarray) -> np.ndarray:
     """Return ``values`` minus their least-squares 2-D quadratic (the shape of a vignetting bowl)."""
     h, w = values.shape
     if h < 3 or w < 3:
         return values - values.mean()
-    yy, xx = np.mgrid[:h, :w]
-    u, v = (2 * xx + 1) / w - 1.0, (2 * yy + 1) / h - 1.0
-    basis = np.stack([np.ones_like(u), u, v, u * u, u * v, v * v], axis=-1).reshape(-1, 6)
+    basis = _quadratic_basis(h, w)
     coef = np.linalg.lstsq(basis, values.ravel().astype(np.float64), rcond=None)[0]
     return (values - (basis @ coef).reshape(h, w)).astype(np.float32)
 
@@ -180,7 +194,7 @@ def percentiles(values: np.ndarray, q) -> np.ndarray:
     """Return ``numpy.percentile(values.astype(np.float32), q)`` (linear method), bit for bit, faster for small integers.
 
     For unsigned integers of up to 16 bits the order statistics are read from a
-    histogram (:func:`numpy.bincount`) instead of partitioning a float copy; the
+    histogram (OpenCV's ``calcHist``, or :func:`numpy.bincount` from 2**24 values) instead of partitioning a float copy; the
     interpolation between them is numpy's own (``_lerp`` of NumPy 2: ``a + (b - a) * g``,
     or ``b - (b - a) * (1 - g)`` from ``g >= 0.5``), in the same types, so the result
     is identical. Other types go to :func:`numpy.percentile`.
@@ -188,8 +202,13 @@ def percentiles(values: np.ndarray, q) -> np.ndarray:
     values = np.asarray(values)
     if values.dtype.kind != "u" or values.dtype.itemsize > 2 or values.size == 0:
         return np.percentile(values.astype(np.float32), q)
-    counts = np.bincount(values.ravel())
     n = values.size
+    if n < 1 << 24:  # OpenCV's histogram: 4x faster than bincount, float32 counts exact below 2**24
+        bins = 1 << (8 * values.dtype.itemsize)
+        flat = np.ascontiguousarray(values).reshape(1, -1)
+        counts = cv2.calcHist([flat], [0], None, [bins], [0, bins]).ravel().astype(np.int64)
+    else:
+        counts = np.bincount(values.ravel())
     virtual = (n - 1) * np.true_divide(np.asanyarray(q), 100)
     prev = np.floor(virtual)
     nxt = prev + 1

@@ -774,11 +774,14 @@ def filter_vectors(shifts: np.ndarray, peaks: np.ndarray, min_ncc: float,
         padded = np.pad(v, 1, constant_values=np.nan)
         stack = [padded[1 + dy:1 + dy + v.shape[0], 1 + dx:1 + dx + v.shape[1]]
                  for dy in (-1, 0, 1) for dx in (-1, 0, 1) if (dy, dx) != (0, 0)]
-        stack = np.stack(stack)
+        stack = np.sort(np.stack(stack), axis=0)             # NaN sort last
         count = np.isfinite(stack).sum(axis=0)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)   # all-NaN neighbourhoods
-            med = np.nanmedian(stack, axis=0)
+        # the median of each node's valid neighbours, as numpy.nanmedian gives it (the mean of the two
+        # middle values for an even count), read off the sorted stack: nanmedian over a small axis
+        # loops in Python
+        lo = np.take_along_axis(stack, np.maximum(count - 1, 0)[None] // 2, axis=0)[0]
+        hi = np.take_along_axis(stack, (count // 2)[None], axis=0)[0]
+        med = np.where(count > 0, (lo + hi) / 2, np.nan)
         keep &= (count > 0) & ~(np.abs(v - med) > max_deviation)
     return keep
 

@@ -30,17 +30,31 @@ def _run(size, **kw):
     return src, settings, aligns
 
 
+def _side(s, scale, half_size, max_shift):
+    """Return the largest region a task of ``s`` may render at ``scale``: its node block plus the matcher's reach."""
+    return (s.region_nodes - 1) * s.grid_spacing / scale + 2 * (block_reach(half_size, max_shift) + 1) + 3
+
+
 def test_every_read_is_bounded_by_the_settings_not_the_section():
     for size in (384, 768):
-        src, s, aligns = _run(size)
-        side = (s.region_nodes - 1) * s.grid_spacing / s.elastic_scale \
-            + 2 * (block_reach(s.match_half_size, s.match_max_shift) + 1) + 3
+        src, s, aligns = _run(size, early_round_coarsening=2, elastic_rounds=2)
+        f = s.early_round_coarsening
         overviews = [a for a in src.asked if not a[3]]
         regions = [a for a in src.asked if a[3]]
         assert overviews and regions
         # an overview is at most overview_size across (plus the rounding of one pixel)
         assert max(max(w, h) for w, h, _, _ in overviews) <= s.overview_size + 1
-        # a region task renders its node block plus the matcher's reach, at elastic_scale
-        assert all(sc == s.elastic_scale for _, _, sc, _ in regions)
-        assert max(max(w, h) for w, h, _, _ in regions) <= side
+        # a region task renders its node block plus the matcher's reach: the last round at
+        # elastic_scale, the early round at f times that with blocks and search f times smaller
+        last = [(w, h) for w, h, sc, _ in regions if sc == s.elastic_scale]
+        early = [(w, h) for w, h, sc, _ in regions if sc == f * s.elastic_scale]
+        assert last and early and len(last) + len(early) == len(regions)
+        assert max(max(wh) for wh in last) <= _side(s, s.elastic_scale, s.match_half_size, s.match_max_shift)
+        assert max(max(wh) for wh in early) <= _side(s, f * s.elastic_scale, s.match_half_size // f,
+                                                     s.match_max_shift // f)
         assert sorted(aligns) == list(range(5))
+
+
+def test_early_rounds_at_elastic_scale_when_not_coarsened():
+    src, s, _ = _run(384, early_round_coarsening=1)
+    assert {sc for _, _, sc, warped in src.asked if warped} == {s.elastic_scale}

@@ -89,6 +89,14 @@ class AlignSettings:
     elastic_rounds : int
         Rounds of block matching and solving; each round measures what the
         fields so far have left.
+    early_round_coarsening : int
+        Every elastic round but the last renders and matches at
+        ``elastic_scale`` times this (blocks, search and regions the same in
+        full-resolution pixels, a quarter of the pixels at 2); the last one
+        measures at ``elastic_scale``. 1 = every round at ``elastic_scale``.
+        2 cut align CPU by about a fifth on sections of 3 x 3 tiles at the
+        same residual, but small sections (2 x 2 tiles) kept 0.02-0.04 px
+        more, so it is not the default.
     damaged_fraction : float
         A section whose share of trusted block matches is below this fraction
         of the stack's median share is flagged ``"damaged"``.
@@ -125,6 +133,7 @@ class AlignSettings:
     elastic_chain: float = 0.02
     elastic_affine_chain: float = 0.0
     elastic_rounds: int = 2
+    early_round_coarsening: int = 1
     damaged_fraction: float = 0.85
     damaged_contrast: float = 0.6
 
@@ -158,5 +167,8 @@ def check_settings(settings: AlignSettings) -> None:
         raise InputError("[align] solve_halo and match_blur must be >= 0, min_match_confidence in [0, 1)")
     if settings.elastic_rounds < 1:
         raise InputError("[align] elastic_rounds must be >= 1")
-    if settings.grid_spacing < 2 * settings.elastic_scale:
-        raise InputError("[align] grid_spacing must be at least twice elastic_scale")
+    if not 1 <= settings.early_round_coarsening <= settings.match_half_size // 2:
+        # the early rounds' blocks keep a half size of at least 2 working pixels
+        raise InputError("[align] early_round_coarsening must be in [1, match_half_size / 2]")
+    if settings.grid_spacing < 2 * settings.elastic_scale * settings.early_round_coarsening:
+        raise InputError("[align] grid_spacing must be at least twice elastic_scale x early_round_coarsening")

@@ -24,6 +24,7 @@ from .fields import SolveTask, solve_block_job
 from .regions import (Grid, RegionTask, crop_alignment, make_grid, region_job, residual_job, residual_stats,
                       window_links, windows)
 from .coarse import PairResult, match_pair, pair_from_points
+from .blockmatch import block_reach
 from .correlate import correlate_overviews
 from .features import FeatureSet, detect_features
 from .settings import AlignSettings, check_settings
@@ -191,9 +192,18 @@ class _Plan:
         self.blocks = grid.block_slices(settings.region_nodes)
         self.halo = max(2, settings.solve_halo)
 
-    def region_tasks(self, aligns, tag, neighbours, consecutive=False, subpixel=True):
-        """Return one :class:`RegionTask` per node block x window."""
-        s = self.settings
+    def region_tasks(self, aligns, tag, neighbours, consecutive=False, subpixel=True, coarsening=1):
+        """Return one :class:`RegionTask` per node block x window.
+
+        ``coarsening``: the tasks render and match at ``elastic_scale`` times
+        this, with blocks and search of the same size in full-resolution pixels.
+        """
+        s, grid = self.settings, self.grid
+        if coarsening > 1:
+            s = replace(s, match_half_size=s.match_half_size // coarsening,
+                        match_max_shift=-(-s.match_max_shift // coarsening))   # the search no shorter
+            grid = replace(grid, scale=grid.scale * coarsening,
+                           reach=block_reach(s.match_half_size, s.match_max_shift))
         wins = windows(self.sections, s.region_sections, neighbours)
         tasks = []
         for b, (rows, cols) in enumerate(self.blocks):
@@ -203,7 +213,7 @@ class _Plan:
                 else:
                     links = window_links(own, seen, neighbours)
                 als = tuple(crop_alignment(aligns[z], self.grid, rows, cols, self.halo) for z in seen)
-                tasks.append(RegionTask(self.source, self.grid, b, rows, cols, als, tuple(links), tuple(own),
+                tasks.append(RegionTask(self.source, grid, b, rows, cols, als, tuple(links), tuple(own),
                                         s, str(self.scratch / f"{tag}_b{b}_w{w}.npz"), subpixel))
         return tasks, len(wins)
 
@@ -259,11 +269,13 @@ def _elastic(source, sections, affines, settings, scratch, mapper, tick):
         aligns = {z: SectionAlignment(z, affines[z], None if fields is None else
                                       DisplacementField(fields[z], grid.origin, grid.spacing))
                   for z in sections}
-        # every round but the last measures with the matcher's one pass: its small pull toward zero
-        # (a few per cent of the shift) is measured and removed by the next round, whose shifts are
-        # what the earlier rounds left; the last round takes the unbiased passes
+        # every round but the last measures with the matcher's one pass, at a coarser scale: its small
+        # pull toward zero (a few per cent of the shift) and its coarser estimate are measured and
+        # removed by the next round, whose shifts are what the earlier rounds left; the last round
+        # takes the unbiased passes at elastic_scale
         last = rnd == settings.elastic_rounds - 1
-        tasks, n_windows = plan.region_tasks(aligns, tag, settings.neighbours, subpixel=last)
+        tasks, n_windows = plan.region_tasks(aligns, tag, settings.neighbours, subpixel=last,
+                                             coarsening=1 if last else settings.early_round_coarsening)
         counts = list(mapper(region_job, tasks))
         tick(len(_pairs(sections, settings.neighbours)))
         solved = list(mapper(solve_block_job, plan.solve_tasks(tag, n_windows, fields)))

@@ -192,19 +192,13 @@ def _half_weights(p: int, q: int) -> np.ndarray:
     return w
 
 
-def _dot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Return ``sum(x * y)`` of the real blocks whose real FFTs are ``a``, ``b`` (Parseval; up to a common factor)."""
-    prod = a.real * b.real
-    prod += a.imag * b.imag
-    return prod.sum(axis=1).astype(np.float64) @ _half_weights(*a.shape[-2:]).astype(np.float64)
-
-
 def _ramped_dot(f_spec: np.ndarray, m_spec: np.ndarray, band: np.ndarray, ey: np.ndarray,
                 ex: np.ndarray) -> np.ndarray:
-    """Return :func:`_dot` of ``f_spec * band`` and ``m_spec * band * ey * ex`` (ramps of :func:`_ramps`).
+    """Return ``sum(x * y)`` of the real blocks whose real FFTs are ``f_spec * band`` and
+    ``m_spec * band * ey * ex`` (ramps of :func:`_ramps`; Parseval, up to a common factor).
 
-    ``Re sum(conj(f) m band^2 ey ex)`` with the column ramp and the Hermitian
-    weights taken by one batched matrix product instead of three full-size products.
+    ``Re sum(conj(f) m band^2 ey ex)`` over both Hermitian halves, with the
+    column ramp and the halves' weights taken by one batched matrix product.
     """
     n, p, q = f_spec.shape
     g = np.conj(f_spec)

@@ -79,8 +79,9 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
     p = 2 * (s.match_half_size + s.match_max_shift) + 2
     # one batch of at most 256 blocks (one per node): ~12 float32/complex64 arrays of p x p per block (FFT work)
     match = min(256, region_side_nodes ** 2) * p * p * 12 * 8
-    # ... and the block spectra of the sections its next links still need (neighbours + 1 of them)
-    match += (s.neighbours + 1) * region_side_nodes ** 2 * p * (p // 2 + 1) * 8
+    # ... and the block spectra of the sections its next links still need (neighbours + 1 of them),
+    # each kept twice: as transformed and whitened (blockmatch.block_spectra)
+    match += 2 * (s.neighbours + 1) * region_side_nodes ** 2 * p * (p // 2 + 1) * 8
     reduced_tile = 2 * (tile_px / s.elastic_scale) ** 2 * 4
     region = held * side ** 2 * 4 + side ** 2 * RENDER_BYTES_PER_PX + match + cache + tile + reduced_tile
     unknowns = (s.region_nodes + 2 * s.solve_halo) ** 2 * n_sections

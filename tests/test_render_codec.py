@@ -59,3 +59,38 @@ def test_write_block_gives_the_bytes_zarr_gives(tmp_path):
         for shard in ("0/0/0", "0/0/1", "0/1/0", "0/1/1"):
             assert (tmp_path / "v.zarr/zarr/c" / shard).read_bytes() == (tmp_path / "v.zarr/ours/c" / shard).read_bytes()
         np.testing.assert_array_equal(arrays[1][:], block)
+
+
+@pytest.mark.parametrize("dtype, shuffle, codec", [(np.uint8, "noshuffle", "zstd"), (np.uint16, "bitshuffle", "zstd"),
+                                                   (np.uint16, "shuffle", "none")])
+def test_whole_shards_written_directly_are_the_files_zarr_writes(tmp_path, dtype, shuffle, codec):
+    # Reference: zarr-python's own write (its sharding codec: chunks in Morton order, index of offsets and
+    # lengths at the end with its CRC-32C). The render writes whole shards without zarr's pipeline
+    # (stackbuild.render.shardfile); the files must be the same: edge shards clipped to an array whose
+    # edges are not whole chunks, a chunk of fill value only (left out), a shard rewritten over an older
+    # file, and a shard of fill value only (no file).
+    from skimage import data
+    from zarr.codecs import BloscCodec, Crc32cCodec
+
+    from stackbuild.render.pyramid import write_block
+    from stackbuild.render.shardfile import shard_writer
+    img = (data.camera()[None, :200, :230].astype(dtype) * (16 if dtype == np.uint16 else 1)).astype(dtype)
+    img[:, :64, 64:128] = 0  # one whole chunk of fill value
+    img[:, 128:, 128:] = 0  # the last shard holds nothing but fill value
+    compressors = [Crc32cCodec()] if codec == "none" else [BloscCodec(cname=codec, clevel=1, shuffle=shuffle), Crc32cCodec()]
+    group = zarr.open_group(str(tmp_path / "v.zarr"), mode="w", zarr_format=3)
+    arrays = [group.create_array(n, shape=(1, 200, 230), dtype=dtype, chunks=(1, 64, 64), shards=(1, 128, 128),
+                                 compressors=compressors, fill_value=0) for n in ("zarr", "ours")]
+    assert shard_writer(arrays[1]) is not None  # the direct path is the one tested
+    arrays[0][0:1, :, :] = img
+    for old in (img[:, ::-1, ::-1].copy(), img):  # the second pass rewrites every shard file
+        for y in (0, 128):
+            for x in (0, 128):
+                write_block(arrays[1], 0, y, x, old[:, y:y + 128, x:x + 128])
+    names = sorted(p.relative_to(tmp_path / "v.zarr/zarr") for p in (tmp_path / "v.zarr/zarr/c").rglob("*") if p.is_file())
+    assert names == sorted(p.relative_to(tmp_path / "v.zarr/ours") for p in (tmp_path / "v.zarr/ours/c").rglob("*")
+                           if p.is_file())
+    assert len(names) == 3  # the empty shard has no file
+    for name in names:
+        assert (tmp_path / "v.zarr/zarr" / name).read_bytes() == (tmp_path / "v.zarr/ours" / name).read_bytes()
+    np.testing.assert_array_equal(zarr.open_array(str(tmp_path / "v.zarr/ours"), mode="r")[:], img)

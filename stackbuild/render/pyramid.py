@@ -25,6 +25,7 @@ from dask.delayed import Delayed
 
 from .lazy import RenderPlan, block_edges, records_token, render_block
 from .reduce import reduce2x2
+from .shardfile import shard_writer
 
 
 def write_block(target, z: int, y0: int, x0: int, block: np.ndarray) -> None:
@@ -35,14 +36,28 @@ def write_block(target, z: int, y0: int, x0: int, block: np.ndarray) -> None:
     half of what zarr spends on writing a shard, measured on 4096 px shards of a build).
     When no chunk of ``block`` is all fill value (a cheaper test: one ``any`` per chunk),
     that comparison cannot leave anything out, so the write skips it
-    (``write_empty_chunks``); the bytes written are the same either way.
+    (``write_empty_chunks``); the bytes written are the same either way. A block that is
+    exactly one shard of an array laid out as the render stage lays it out is encoded and
+    written by :mod:`stackbuild.render.shardfile` instead (the same file, a third less CPU).
     """
     _, h, w = block.shape
+    writer = shard_writer(target) if target.shards is not None else None
+    if writer is not None and _whole_shard(target, z, y0, x0, block.shape):
+        writer.write((z, y0, x0), block)  # the same file, without zarr's per-chunk machinery
+        return
     cy, cx = target.chunks[1], target.chunks[2]
     fill = target.fill_value
     full = all((block[0, a:a + cy, b:b + cx] != fill).any() for a in range(0, h, cy) for b in range(0, w, cx))
     out = target.with_config({"write_empty_chunks": True}) if full else target
     out[z:z + 1, y0:y0 + h, x0:x0 + w] = block
+
+
+def _whole_shard(target, z: int, y0: int, x0: int, shape) -> bool:
+    """Return True if a block of ``shape`` at ``[z, y0, x0]`` is exactly one shard of ``target`` (clipped to the array)."""
+    sz, sy, sx = target.shards
+    _, hh, ww = target.shape
+    return sz == 1 and y0 % sy == 0 and x0 % sx == 0 and \
+        tuple(shape) == (1, min(sy, hh - y0), min(sx, ww - x0))
 
 
 def render_shard(plan: RenderPlan, target, z: int, y0: int, y1: int, x0: int, x1: int,

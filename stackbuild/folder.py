@@ -5,7 +5,7 @@ Layout::
     DIR/build.json        inputs of the build (manifests, settings) and stage status
     DIR/transforms/       every transform, apart from the pixels (see stackbuild.transforms.store)
     DIR/volume.zarr/      OME-Zarr 0.5: em/ (EM pyramid), channels/<name>/ (marker pyramids)
-    DIR/qc/               metrics.json, CSV tables, PNG plots, report.html
+    DIR/qc/               metrics.json, CSV tables, SVG figures, report.html
     DIR/manifests/        merged tile manifests written by ``update``, and
                           tiles.checked.json, the checked tile manifest (a cache)
     DIR/scratch/<stage>/  a stage's temporary files, removed when it ends

@@ -167,24 +167,6 @@ def test_a_re_report_redraws_only_the_figures_that_show_what_changed(first, tmp_
     assert all((qc / f"{n}.svg").stat().st_mtime_ns != after[n] for n in names)
 
 
-def test_a_re_report_with_every_figure_kept_does_not_import_matplotlib(first, tmp_path):
-    # matplotlib costs about 0.4 s of CPU to import; a re-report that draws nothing must not pay it.
-    import shutil
-    import subprocess
-    import sys
-
-    from stackbuild.qc.report import run_report
-
-    root = tmp_path / "build"
-    shutil.copytree(first[0], root, symlinks=True)
-    run_report(root, SETTINGS)
-    code = ("import sys; from stackbuild.qc.report import run_report; from stackbuild.qc.settings import ReportSettings; "
-            "run_report(sys.argv[1], ReportSettings(probe_half_size=32, probe_spacing=64, probe_neighbourhood=1)); "
-            "print('matplotlib' in sys.modules)")
-    out = subprocess.run([sys.executable, "-c", code, str(root)], capture_output=True, text=True, check=True)
-    assert out.stdout.split()[-1] == "False"
-
-
 def test_a_re_report_told_where_a_plane_changed_gives_the_numbers_of_a_full_report(first, tmp_path):
     # An update rewrites a few shards of a plane and tells the report where (qc.stage.run's `changed`).
     # Ground truth: a full report (reuse=False) of the same folder. Here a 96 x 96 px corner of plane 2

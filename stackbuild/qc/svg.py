@@ -14,7 +14,7 @@ import textwrap
 import numpy as np
 
 from .colours import BAD, INK, NO_DATA, hex_colour, ramp
-from .thumbnails import nice_length, scale_text
+from .thumbnails import nice_length, png_bytes, scale_text
 
 FONT = "Helvetica,Arial,sans-serif"
 #: average advance of a character in em (Helvetica / Arial text; a rule of thumb for layout, no source)
@@ -35,17 +35,6 @@ def text_width(s: str, size: float) -> float:
 def wrap(s: str, width_px: float, size: float) -> list[str]:
     """Return ``s`` broken into lines of at most ``width_px`` at font size ``size``."""
     return textwrap.wrap(s, max(20, int(width_px / (size * CHAR_EM)))) or [""]
-
-
-def png_bytes(rgb: np.ndarray) -> bytes:
-    """Return an RGB (or grey) uint8 image as PNG bytes (OpenCV, zlib level 1)."""
-    import cv2
-
-    img = np.ascontiguousarray(rgb[..., ::-1] if rgb.ndim == 3 else rgb)
-    ok, buf = cv2.imencode(".png", img, [cv2.IMWRITE_PNG_COMPRESSION, 1])
-    if not ok:
-        raise ValueError(f"cannot encode an image of shape {rgb.shape} as PNG")
-    return buf.tobytes()
 
 
 def upsample(rgb: np.ndarray, width: float, height: float) -> np.ndarray:

@@ -39,5 +39,15 @@ def thumbnail_png(plane: np.ndarray, nm_per_px: float, bar_nm: float, height: in
     x1 = int(min(w - 2, x0 + max(2, round(px))))
     rgb[y0 - 1:y0 + 3, x0 - 1:x1 + 1] = (34, 49, 63)
     rgb[y0:y0 + 2, x0:x1] = (255, 255, 255)
-    ok, buf = cv2.imencode(".png", rgb[..., ::-1])
-    return buf.tobytes() if ok else b""
+    return png_bytes(rgb)
+
+
+def png_bytes(rgb: np.ndarray) -> bytes:
+    """Return an RGB (or grey) uint8 image as PNG bytes (OpenCV, zlib level 1)."""
+    import cv2
+
+    img = np.ascontiguousarray(rgb[..., ::-1] if rgb.ndim == 3 else rgb)
+    ok, buf = cv2.imencode(".png", img, [cv2.IMWRITE_PNG_COMPRESSION, 1])
+    if not ok:
+        raise ValueError(f"cannot encode an image of shape {rgb.shape} as PNG")
+    return buf.tobytes()

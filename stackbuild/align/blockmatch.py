@@ -208,16 +208,6 @@ def _ramped_dot(f_spec: np.ndarray, m_spec: np.ndarray, band: np.ndarray, ey: np
     return np.real((rows * ey.reshape(n, p)).sum(axis=1)).astype(np.float64)
 
 
-def _power_sums(spec: np.ndarray) -> np.ndarray:
-    """Return ``(n, 4)``: each block's energy and its gradient structure tensor ``jxx, jyy, jxy``, from its real FFT.
-
-    By Parseval's theorem all four are weighted sums of the power spectrum
-    ``|S|^2`` (the gradient is a product with ``2 pi i k``, up to a common
-    factor), so they come out of one matrix product.
-    """
-    return _sums_of_power(_power(spec))
-
-
 def _power(spec: np.ndarray) -> np.ndarray:
     """Return ``|spec| ** 2`` (float32 for complex64)."""
     power = spec.real * spec.real
@@ -226,7 +216,13 @@ def _power(spec: np.ndarray) -> np.ndarray:
 
 
 def _sums_of_power(power: np.ndarray, band: np.ndarray | None = None) -> np.ndarray:
-    """Return :func:`_power_sums` from the power spectra ``(n, p, q)`` of the blocks (times ``band ** 2`` if given)."""
+    """Return ``(n, 4)``: each block's energy and its gradient structure tensor ``jxx, jyy, jxy``.
+
+    From the power spectra ``|S|^2`` ``(n, p, q)`` of the blocks' real FFTs (times ``band ** 2``
+    if given). By Parseval's theorem all four are weighted sums of the power spectrum (the
+    gradient is a product with ``2 pi i k``, up to a common factor), so they come out of one
+    matrix product.
+    """
     n, p, q = power.shape
     if band is not None:
         power = power * (band * band)
@@ -235,7 +231,7 @@ def _sums_of_power(power: np.ndarray, band: np.ndarray | None = None) -> np.ndar
 
 @functools.lru_cache(maxsize=8)
 def _sum_weights(p: int, q: int) -> np.ndarray:
-    """Return the ``(p * q, 4)`` weights of :func:`_power_sums`: Hermitian halves, ``kx^2``, ``ky^2``, ``kx ky``."""
+    """Return the ``(p * q, 4)`` weights of :func:`_sums_of_power`: Hermitian halves, ``kx^2``, ``ky^2``, ``kx ky``."""
     ky = sfft.fftfreq(p)[:, None]
     kx = sfft.rfftfreq(p)[None, :]
     w = _half_weights(p, q)[None, :].astype(np.float64)
@@ -246,7 +242,7 @@ def _sum_weights(p: int, q: int) -> np.ndarray:
 
 
 def _isotropy(sums: np.ndarray) -> np.ndarray:
-    """Return ``lambda_min / lambda_max`` of the gradient structure tensor of each block (from :func:`_power_sums`).
+    """Return ``lambda_min / lambda_max`` of the gradient structure tensor of each block (from :func:`_sums_of_power`).
 
     The structure tensor (Harris & Stephens, "A combined corner and edge
     detector", Alvey Vision Conference 1988, doi:10.5244/C.2.23) sums the
@@ -413,7 +409,7 @@ class BlockSpectra:
         The real FFT of each block (missing pixels at the block's mean), less
         its mean, under the window; 0 where not usable.
     sums : ndarray, shape (N, 4)
-        :func:`_power_sums` of the band-passed spectra.
+        :func:`_sums_of_power` of the band-passed spectra.
     white : ndarray of complex64, shape (N, p, p // 2 + 1), optional
         :meth:`MatchPlan.whiten` of ``spec`` (made by :func:`match_spectra` when None).
     """

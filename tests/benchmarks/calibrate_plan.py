@@ -1,8 +1,9 @@
 """Measure the plan's per-task factors on this machine and write stackbuild/run/plan_rates.json.
 
-Synthesises two small stacks (the project's invented phantom), builds each in
-one process with one thread (:func:`stackbuild.run.plan_measure.measure_build`),
-and for every kind of task fits a line through the two measurements against
+Synthesises two small stacks (the project's invented phantom), builds each
+three times in one process with one thread
+(:func:`stackbuild.run.plan_measure.measure_build`): memory traced in one
+build, CPU the least of the two others, untraced (tracing costs CPU); and for every kind of task fits a line through the two measurements against
 what the plan's model says that task holds and does at each shape: memory =
 fixed + slope x modelled bytes (tracemalloc peak, minus the model's cache), CPU
 per task = fixed + slope x modelled work. Two sizes, so per-task start-up costs
@@ -159,8 +160,9 @@ def measure_size(tmp: Path, name: str, sections: int, grid: int, tile: int) -> t
     tiles = generate(tmp / f"data-{name}", params)
     out = tmp / f"measured-{name}.json"
     code = ("import json, sys; from stackbuild.run.plan_measure import fastest, measure_build; "
-            "m = fastest(*(measure_build(sys.argv[1], sys.argv[2] + str(i)) for i in range(2))); "
-            "open(sys.argv[3], 'w').write(json.dumps(m))")  # the faster of two builds, per kind
+            "m = fastest(measure_build(sys.argv[1], sys.argv[2] + '0'), "
+            "*(measure_build(sys.argv[1], sys.argv[2] + str(i), trace_memory=False) for i in (1, 2))); "
+            "open(sys.argv[3], 'w').write(json.dumps(m))")  # memory from a traced build, CPU the least of two untraced
     subprocess.run([sys.executable, "-c", code, str(tiles), str(tmp / f"build-{name}"), str(out)], check=True,
                    cwd=str(REPO))
     measured = json.loads(out.read_text())
@@ -210,8 +212,9 @@ def main(argv=None) -> None:
         "measured": dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         "machine": machine(), "commit": commit,
         "how": ("tests/benchmarks/calibrate_plan.py: two synthetic stacks (sections, tiles per side, tile px: "
-                f"{args.small} and {args.large}) built in one process, one thread; per task: process CPU "
-                "time and the tracemalloc peak above the task's start; per kind a line (fixed + slope) "
+                f"{args.small} and {args.large}) built in one process, one thread, three times; per task: "
+                "process CPU time (the least of two builds without allocation tracing) and the "
+                "tracemalloc peak above the task's start (a third, traced build); per kind a line (fixed + slope) "
                 "through the two, against what stackbuild/run/plan_models.py says the task holds and does"),
         "calibration_shapes": [shape1.to_json(), shape2.to_json()],
         "reference_cpu_s": round(sum(parts.values()), 5),

@@ -91,6 +91,32 @@ def test_groups_stream_through_a_client_with_one_group_ahead():
     assert all(n <= g + 2 for g, _, n in seen) and any(n == g + 2 for g, _, n in seen if g < 2)
 
 
+def _sleep(seconds: float) -> float:
+    time.sleep(seconds)
+    return seconds
+
+
+def test_a_later_group_finishing_first_lets_no_third_group_in():
+    """Group 1 finishes while group 0 still runs: group 2 waits for group 0 (seen as a flaky failure under load)."""
+    from distributed import Client, LocalCluster
+
+    from stackbuild.run.cluster import client_mapper
+
+    built = []
+
+    def groups():
+        for g, seconds in enumerate((0.6, 0.01, 0.01)):
+            built.append(g)
+            yield [dask.delayed(_sleep)(seconds, dask_key_name=f"late-{g}")]
+
+    seen = []
+    with LocalCluster(n_workers=1, threads_per_worker=2, processes=False, dashboard_address=None) as cluster, \
+            Client(cluster) as client:
+        client_mapper(client).compute_stream(groups(), lambda g, i: seen.append((g, len(built))))
+    assert [g for g, _ in seen] == [1, 0, 2]
+    assert dict(seen)[1] == 2  # when group 1 finished, group 0 was still running: nothing more was built
+
+
 def test_a_task_error_in_a_streamed_group_reaches_the_caller():
     from distributed import Client, LocalCluster
 

@@ -288,16 +288,21 @@ def _stream_on(client, groups: Iterable[list], on_done: Callable[[int, int], Non
             running.add(fut)
         return True
 
-    for _ in range(ahead + 1):
-        if not submit():
-            break
+    def fill() -> None:
+        # Submit while the next group is at most ``ahead`` beyond the oldest unfinished one
+        # (a later group finishing first must not let a third group in).
+        oldest = next((g for g, n in left.items() if n), len(left))
+        while len(left) <= oldest + ahead and submit():
+            pass
+
+    fill()
     for fut in running:
         fut.result()
         g, i = where.pop(fut.key)
         on_done(g, i)
         left[g] -= 1
         if left[g] == 0:
-            submit()
+            fill()
 
 
 def _compute_on(client, items: list, on_done: Callable[[int], None]) -> None:

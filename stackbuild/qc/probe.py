@@ -32,6 +32,7 @@ import numpy as np
 
 from .matching import COARSE, PlaneBlocks, _coarse_sizes, _reduced, _Window, coarse_plan, fine_plan
 from .matching import match_planes  # noqa: F401 (public here too: tests and bench_qc import it from the probe)
+from .levelread import WindowReader
 from .planes import PlaneSource, data_mask, open_planes
 from .settings import ReportSettings
 
@@ -123,31 +124,6 @@ def _coarse_source(job, source: PlaneSource) -> PlaneSource | None:
     return c if np.allclose(c.offset, want, atol=1e-6 * c.factor) else None
 
 
-def _window(source: PlaneSource, z: int, box, margin: int, reduce: bool, coarse: PlaneSource | None = None):
-    """Return plane ``z``'s window around a box of block centres (as read, with its data mask), its reduced copy
-    (float32, NaN where no data) and its top-left pixel.
-
-    Only the blocks are turned into float32, never the whole window. The reduced copy is read
-    from the written pyramid level ``coarse`` when given (the window then starts on a multiple
-    of ``COARSE``), else reduced from the window.
-    """
-    x0, y0, x1, y1 = box
-    h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
-    wx0, wy0 = max(0, x0 - margin), max(0, y0 - margin)
-    if coarse is not None:
-        wx0, wy0 = wx0 - wx0 % COARSE, wy0 - wy0 % COARSE
-    wx1, wy1 = min(w, x1 + margin), min(h, y1 + margin)
-    win = _Window(source.raw_window(z, wy0, wy1, wx0, wx1), masked=data_mask)
-    small = None
-    if reduce and coarse is not None:
-        c = coarse.raw_window(z, wy0 // COARSE, -(-wy1 // COARSE), wx0 // COARSE, -(-wx1 // COARSE))
-        small = c.astype(np.float32)
-        small[~data_mask(c)] = np.nan
-    elif reduce:
-        small = _reduced(win.raw, win.valid)
-    return win, small, np.array([wx0, wy0])
-
-
 def probe_pair(job: PairJob) -> list[dict]:
     """Measure a set of plane pairs in the task's regions, region by region; store the shifts (runs on a worker).
 
@@ -235,6 +211,7 @@ def _measure_regions(job: PairJob, source: PlaneSource, pts, region, regions, sh
     coarse = _coarse_source(job, source) if reduce else None
     plan = fine_plan(half, search, st.probe_fine_sigma / f, st.probe_coarse_sigma / f)
     cplan = coarse_plan(half, reach, st.probe_fine_sigma / f, st.probe_coarse_sigma / f) if reduce else None
+    work = []  # per region with blocks to measure: its blocks, their box, the pairs and planes it measures
     for r in regions:
         whole = np.flatnonzero(region == r)
         sel = whole[need[:, whole].any(axis=0)]
@@ -244,10 +221,21 @@ def _measure_regions(job: PairJob, source: PlaneSource, pts, region, regions, sh
         # alone gives the number it gives among all of its region's
         box = (*pts[whole].min(axis=0), *(pts[whole].max(axis=0) + 1))
         active = [(a, b) for k, (a, b) in enumerate(job.pairs) if need[k, sel].any()]
-        planes = sorted({z for p in active for z in p})
+        work.append((sel, box, active, sorted({z for p in active for z in p})))
+    reader = WindowReader(source, coarse, margin, COARSE, reduce and coarse is None,
+                          [(z, box, pts[sel]) for sel, box, _, planes in work for z in planes])
+    step = 0
+    for sel, box, active, planes in work:
         held: dict[int, tuple] = {}
         for z in planes:
-            win, small, corner = _window(source, z, box, margin, reduce, coarse)
+            raw, small, corner = reader.read(step)
+            step += 1
+            win = _Window(raw, masked=data_mask)
+            if reduce and small is None:
+                small = _reduced(win.raw, win.valid)
+            elif small is not None:
+                small, raw_small = small.astype(np.float32), small
+                small[~data_mask(raw_small)] = np.nan
             here = pts[sel] - corner
             data = win.any_data()
             held[z] = (win, corner, PlaneBlocks(win, here, plan) if data else None,

@@ -1,0 +1,231 @@
+"""Chunks of a written pyramid level read straight from its shard files, each decoded once per probe task.
+
+The probe reads each plane one region window at a time. Through zarr-python a window read
+costs about 4.7 ms of CPU per 1024 px chunk (its asynchronous codec pipeline around a Blosc
+decode of about 1.8 ms), and neighbouring windows overlap by the probe's margin, so a chunk
+on a region's edge was decoded once per window that touched it (on 7 x 7 tiles of 1024 px
+about 2.2 decodes per chunk, plus the reduced level's few chunks once per window). Here a
+chunk is read with one ``pread`` from its shard (the zarr v3 sharding layout the render
+writes, :func:`stackbuild.render.shardfile.shard_writer` checks it), its CRC-32C checked, its
+Blosc stream decoded, and it is kept while a later window of the same task still needs it
+(:class:`ChunkKeeper`; the farthest-needed chunk is dropped first when over its budget).
+A window holds only the chunks under the blocks it is asked for; elsewhere it holds the
+fill value, which the probe never reads.
+
+A chunk that cannot be decoded raises the error that names array, plane and chunk
+(:func:`stackbuild.render.audit.chunk_error`).
+"""
+from __future__ import annotations
+
+import os
+
+import numpy as np
+
+
+class LevelReader:
+    """Reads whole chunks of one 3-D level ``(z, y, x)`` whose chunks are one plane deep."""
+
+    def __init__(self, layout, label: str):
+        self.layout, self.label = layout, label
+        self.chunk = tuple(int(c) for c in layout.chunk[1:])
+        self.per_shard = tuple(int(s) for s in layout.per_shard)
+        self.shape = tuple(int(s) for s in layout.shape)
+        self.dtype, self.fill = layout.dtype, layout.fill
+        self._index: dict[tuple, np.ndarray | None] = {}
+
+    @classmethod
+    def of(cls, array, label: str) -> "LevelReader | None":
+        """Return a reader of zarr ``array`` (None when its layout is not the render's, or chunks span planes)."""
+        import zarr
+
+        from ..render.shardfile import shard_writer
+
+        if not isinstance(array, zarr.Array) or array.ndim != 3:
+            return None
+        layout = shard_writer(array)
+        if layout is None or layout.chunk[0] != 1 or layout.shard[0] != 1:
+            return None
+        return cls(layout, label)
+
+    def _path(self, shard: tuple):
+        return self.layout.folder / self.layout.key(shard)
+
+    def _shard_index(self, shard: tuple) -> np.ndarray | None:
+        """Return the shard's ``(..., 2)`` offsets and lengths (None: no shard file, every chunk the fill)."""
+        import google_crc32c
+
+        if shard not in self._index:
+            path = self._path(shard)
+            try:
+                with open(path, "rb") as fh:
+                    n = int(np.prod(self.per_shard)) * 16 + 4
+                    fh.seek(-n, os.SEEK_END)
+                    raw = fh.read(n)
+            except FileNotFoundError:
+                self._index[shard] = None
+                return None
+            body, crc = raw[:-4], np.frombuffer(raw[-4:], "<u4")[0]
+            if google_crc32c.value(body) != crc:
+                raise self._damaged(shard[0], shard[1] * self.per_shard[1], shard[2] * self.per_shard[2],
+                                    ValueError("shard index checksum mismatch"))
+            self._index[shard] = np.frombuffer(body, "<u8").reshape(*self.per_shard, 2)
+        return self._index[shard]
+
+    def _damaged(self, z: int, row: int, col: int, exc: BaseException):
+        from ..render.audit import chunk_error
+
+        return chunk_error(self.label, self.layout.folder, z, row, col, exc)
+
+    def read(self, z: int, row: int, col: int) -> np.ndarray:
+        """Return chunk ``(row, col)`` of plane ``z`` (the full chunk, padded with the fill beyond the array)."""
+        import google_crc32c
+
+        shard = (z, row // self.per_shard[1], col // self.per_shard[2])
+        index = self._shard_index(shard)
+        entry = None if index is None else index[0, row % self.per_shard[1], col % self.per_shard[2]]
+        if entry is None or int(entry[0]) == 2 ** 64 - 1:
+            return np.full(self.chunk, self.fill, self.dtype)
+        try:
+            with open(self._path(shard), "rb") as fh:
+                data = os.pread(fh.fileno(), int(entry[1]), int(entry[0]))
+            if len(data) != int(entry[1]) or google_crc32c.value(data[:-4]) != np.frombuffer(data[-4:], "<u4")[0]:
+                raise ValueError("chunk checksum mismatch")
+            body = data[:-4] if self.layout.blosc is None else self.layout.blosc.decode(data[:-4])
+            return np.frombuffer(body, self.dtype).reshape(self.chunk)
+        except Exception as exc:  # codecs raise many types for damaged bytes
+            raise self._damaged(z, row, col, exc) from None
+
+    def chunks_under(self, boxes: np.ndarray) -> set[tuple[int, int]]:
+        """Return the ``(row, col)`` chunks that boxes ``(N, 4)`` ``[y0, y1, x0, x1)`` (clipped) meet."""
+        ch, cw = self.chunk
+        out = set()
+        for y0, y1, x0, x1 in np.asarray(boxes, int).reshape(-1, 4):
+            y0, x0, y1, x1 = max(0, y0), max(0, x0), min(self.shape[1], y1), min(self.shape[2], x1)
+            if y1 > y0 and x1 > x0:
+                out.update((r, c) for r in range(y0 // ch, (y1 - 1) // ch + 1) for c in range(x0 // cw, (x1 - 1) // cw + 1))
+        return out
+
+
+class ChunkKeeper:
+    """Decoded chunks of one or more levels, each kept until no later window of the task needs it.
+
+    The caller says which chunks each step will read (:meth:`plan`, steps in the order they
+    run), then reads windows step by step (:meth:`window`). A chunk is decoded at its first
+    use and dropped after its last; past ``budget`` bytes the chunk needed farthest ahead is
+    dropped first (and decoded again when its turn comes).
+    """
+
+    def __init__(self, budget: int):
+        self.budget = int(budget)
+        self._held: dict[tuple, np.ndarray] = {}
+        self._uses: dict[tuple, list[int]] = {}
+        self.decoded = 0
+
+    def plan(self, steps: list[list[tuple]]) -> None:
+        """Record the chunk keys ``(reader id, z, row, col)`` each step reads, steps in order."""
+        for i, keys in enumerate(steps):
+            for key in keys:
+                self._uses.setdefault(key, []).append(i)
+
+    def _get(self, reader: LevelReader, key: tuple, step: int) -> np.ndarray:
+        uses = self._uses.get(key, [])
+        while uses and uses[0] <= step:
+            uses.pop(0)
+        chunk = self._held.get(key)
+        if chunk is None:
+            chunk = reader.read(*key[1:])
+            self.decoded += 1
+            if uses:
+                self._held[key] = chunk
+                self._trim(key)
+        elif not uses:
+            self._held.pop(key)
+        return chunk
+
+    def _trim(self, keep: tuple) -> None:
+        size = sum(c.nbytes for c in self._held.values())
+        while size > self.budget and len(self._held) > 1:
+            far = max((k for k in self._held if k != keep), key=lambda k: self._uses[k][0])
+            size -= self._held.pop(far).nbytes
+
+    def window(self, reader: LevelReader, step: int, z: int, y0: int, y1: int, x0: int, x1: int,
+               keys: set[tuple[int, int]]) -> np.ndarray:
+        """Return rows ``y0:y1``, columns ``x0:x1`` of plane ``z`` holding chunks ``keys`` (the fill elsewhere)."""
+        out = np.full((y1 - y0, x1 - x0), reader.fill, reader.dtype)
+        ch, cw = reader.chunk
+        for r, c in sorted(keys):
+            a0, b0 = max(y0, r * ch), max(x0, c * cw)
+            a1, b1 = min(y1, (r + 1) * ch), min(x1, (c + 1) * cw)
+            if a1 <= a0 or b1 <= b0:
+                continue
+            chunk = self._get(reader, (id(reader), z, r, c), step)
+            out[a0 - y0:a1 - y0, b0 - x0:b1 - x0] = chunk[a0 - r * ch:a1 - r * ch, b0 - c * cw:b1 - c * cw]
+        return out
+
+
+#: bytes of decoded chunks a probe task keeps for its later windows (rule of thumb: a few windows' worth)
+KEEP_BYTES = 64 << 20
+
+
+class WindowReader:
+    """The probe's region windows of one level (and of the level ``coarse_factor`` times coarser), read by chunks.
+
+    ``steps`` lists the windows a task reads, in order: ``(z, box, centres)`` with the box of
+    the region's block centres ``(x0, y0, x1, y1)`` and the centres ``(N, 2)`` ``(x, y)`` of the
+    blocks measured there (level px). A window reaches ``margin`` beyond the box; of it, only
+    the chunks under ``margin + 5`` px around a centre are read (the farthest the probe cuts a
+    block, with the data mask's 4 px), or the whole window when ``whole`` (the reduced copy is
+    then made from it). Without a :class:`LevelReader` (not the render's layout, or binned
+    planes) windows are read through the array as before.
+    """
+
+    def __init__(self, source, coarse, margin: int, coarse_factor: int, whole: bool, steps: list):
+        self.source, self.coarse, self.margin, self.k, self.whole = source, coarse, margin, coarse_factor, whole
+        written = source.origin == "volume.zarr" and source.bin == 1
+        self.fine = LevelReader.of(source.data, f"volume.zarr level {source.level}") if written else None
+        self.small = (LevelReader.of(coarse.data, f"volume.zarr level {coarse.level}")
+                      if coarse is not None and self.fine is not None else None)
+        self.keeper = ChunkKeeper(KEEP_BYTES)
+        self.steps = [self._extent(z, box, centres) for z, box, centres in steps]
+        self.keeper.plan([[(id(self.fine), s["z"], *k) for k in s["fine"]] + [(id(self.small), s["z"], *k) for k in s["small"]]
+                          for s in self.steps])
+
+    def _extent(self, z: int, box, centres) -> dict:
+        h, w = self.source.data.shape[-2] // self.source.bin, self.source.data.shape[-1] // self.source.bin
+        x0, y0, x1, y1 = box
+        m, k = self.margin, self.k
+        wx0, wy0 = max(0, x0 - m), max(0, y0 - m)
+        if self.coarse is not None:
+            wx0, wy0 = wx0 - wx0 % k, wy0 - wy0 % k
+        wx1, wy1 = min(w, x1 + m), min(h, y1 + m)
+        out = {"z": z, "win": (wy0, wy1, wx0, wx1), "fine": set(), "small": set()}
+        if self.fine is not None:
+            if self.whole:
+                boxes = np.array([[wy0, wy1, wx0, wx1]])
+            else:
+                c, r = np.asarray(centres, int).reshape(-1, 2), m + 5
+                boxes = np.column_stack([np.maximum(c[:, 1] - r, wy0), np.minimum(c[:, 1] + r + 1, wy1),
+                                         np.maximum(c[:, 0] - r, wx0), np.minimum(c[:, 0] + r + 1, wx1)])
+            out["fine"] = self.fine.chunks_under(boxes)
+        if self.small is not None:
+            out["coarse"] = (wy0 // k, -(-wy1 // k), wx0 // k, -(-wx1 // k))
+            out["small"] = self.small.chunks_under(np.array([out["coarse"]]))
+        return out
+
+    def read(self, step: int):
+        """Return step ``step``'s window as read (its stored dtype), its coarse window (None without a coarse
+        level) and its top-left ``(x, y)``."""
+        s = self.steps[step]
+        wy0, wy1, wx0, wx1 = s["win"]
+        if self.fine is not None:
+            raw = self.keeper.window(self.fine, step, s["z"], wy0, wy1, wx0, wx1, s["fine"])
+        else:
+            raw = self.source.raw_window(s["z"], wy0, wy1, wx0, wx1)
+        small = None
+        if self.coarse is not None:
+            cy0, cy1, cx0, cx1 = (s["coarse"] if self.small is not None else
+                                  (wy0 // self.k, -(-wy1 // self.k), wx0 // self.k, -(-wx1 // self.k)))
+            small = (self.keeper.window(self.small, step, s["z"], cy0, min(cy1, self.small.shape[1]), cx0,
+                                        min(cx1, self.small.shape[2]), s["small"])
+                     if self.small is not None else self.coarse.raw_window(s["z"], cy0, cy1, cx0, cx1))
+        return raw, small, np.array([wx0, wy0])

@@ -206,8 +206,9 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
         d = di - np.array([sx, sy])
         if max(abs(sx), abs(sy)) <= 1.0 and up == upsample:
             break
-        if max(abs(sx), abs(sy)) <= 1.0:
-            up = upsample
+        # Refined from the second full-resolution pass on: its residual is then usually within a
+        # pixel, and a pass more just to refine the same cut would cost its FFTs twice.
+        up = upsample
     if np.max(np.abs(d - nom)) > limit:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
     ncc, _, _ = ncc_after_shift(ca, cb, (sx, sy))

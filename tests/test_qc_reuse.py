@@ -261,8 +261,8 @@ def test_probe_tasks_split_by_region_give_the_numbers_of_one_task_per_run(first,
     for a, b in zip(one["sections"], many["sections"]):
         assert a["align_error_px"] == b["align_error_px"]
 
-    # The update's hand-off (`changed`) to these split tasks: regions whose windows miss the box measure
-    # nothing, the others only their blocks near it; the stored pairs and estimates equal a full report
+    # The update's hand-off (`changed`) to these split tasks: regions whose windows miss the box are not
+    # run, the others measure only their blocks near it; the stored pairs and estimates equal a full report
     # (ground truth: reuse=False on the same folder).
     import numpy as np
     import zarr
@@ -272,7 +272,10 @@ def test_probe_tasks_split_by_region_give_the_numbers_of_one_task_per_run(first,
         arr = zarr.open_array(str(root / "volume.zarr" / "em" / level), mode="r+")
         arr[2, box[1] // f:box[3] // f, box[0] // f:box[2] // f] = arr[3, box[1] // f:box[3] // f, box[0] // f:box[2] // f]
     _stamp(root, {z: (f"plane{z}" if z != 2 else "plane2-patched") for z in range(len(SECTIONS))})
-    told, _ = collect(root, st, mapper=Counting(), changed={2: {"before": "plane2", "boxes": [box]}})
+    mapper = Counting()
+    told, _ = collect(root, st, mapper=mapper, changed={2: {"before": "plane2", "boxes": [box]}})
+    # regions that cannot reach the box are not even given a task; the run's pairs are still merged and stored
+    assert 0 < len(mapper.of("probe_pair")) < len(regions) and len(mapper.of("merge_pair_parts")) == 1
     kept = [json.loads(p.read_text()) for p in sorted(pairs_dir.glob("*.json"))]
     full, _ = collect(root, st, reuse=False)
     again = [json.loads(p.read_text()) for p in sorted(pairs_dir.glob("*.json"))]

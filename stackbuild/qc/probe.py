@@ -66,6 +66,7 @@ class MergeJob:
     parts: tuple[str, ...]
     blocks: int
     min_ncc: float
+    stored: tuple = ()  # per pair: True when blocks no part holds keep their stored values (a share was dropped)
 
 
 #: fixed planes per pair task: a task reads each of its planes once per region
@@ -181,8 +182,16 @@ def merge_pair_parts(job: MergeJob) -> list[dict]:
     """
     from .reuse import stored_measurement
 
+    from .reuse import pair_arrays, stored_pair
+
     n = len(job.pairs)
     shifts, ncc, beyond = np.full((n, job.blocks, 2), np.nan), np.full((n, job.blocks), np.nan), np.zeros((n, job.blocks), bool)
+    for k, kept in enumerate(job.stored):
+        doc = stored_pair(job.build, *job.pairs[k]) if kept else None
+        if kept and (doc is None or len(doc.get("dx") or []) != job.blocks):
+            raise RuntimeError(f"pair {job.pairs[k]}: stored probe blocks missing or of another grid")
+        if doc is not None:
+            shifts[k], ncc[k], beyond[k] = pair_arrays(doc)
     paths = [_part_path(job.build, key) for key in job.parts]
     for path in paths:
         doc = stored_measurement(path)
@@ -256,6 +265,23 @@ def _measure_regions(job: PairJob, source: PlaneSource, pts, region, regions, sh
                 held.pop(y)  # no later pair needs it
 
 
+def _shares_to_measure(job: PairJob, source: PlaneSource, pts, region, shares) -> list[bool]:
+    """Return, per share of the regions, whether any pair of ``job`` has a block to measure there.
+
+    A pair measured whole needs every share; a pair told where its planes changed (``job.keep``)
+    needs the shares holding a block whose reading reaches a changed box. A share nobody needs is
+    not run: its blocks keep their stored values (:func:`merge_pair_parts`).
+    """
+    if not len(pts) or not all(job.keep):
+        return [True] * len(shares)
+    h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
+    margin = probe_geometry(source, job.settings, w * source.factor, h * source.factor)[3]
+    need = np.zeros(len(pts), bool)
+    for boxes in job.keep:
+        need |= _reaching(source, pts, margin, boxes)
+    return [bool(need[np.isin(region, share)].any()) for share in shares]
+
+
 def _region_shares(region: np.ndarray, per_task: int) -> list[tuple[int, ...]]:
     """Return the regions of the block grid in shares of at most ``per_task`` (row by row)."""
     regions = [int(r) for r in np.unique(region)]
@@ -276,9 +302,6 @@ def _blocks_to_measure(job: PairJob, source: PlaneSource, pts: np.ndarray, margi
     need = np.ones((len(job.pairs), len(pts)), bool)
     if not job.keep or not len(pts):
         return need
-    f = source.factor
-    p0 = source.to_level0(pts)
-    reach0 = (margin + 8 + 2 * COARSE) * f + f
     for k, boxes in enumerate(job.keep):
         if not boxes:
             continue
@@ -286,12 +309,20 @@ def _blocks_to_measure(job: PairJob, source: PlaneSource, pts: np.ndarray, margi
         if doc is None or len(doc.get("dx") or []) != len(pts):
             continue
         shifts[k], ncc[k], beyond[k] = pair_arrays(doc)
-        b = np.asarray(boxes, float).reshape(-1, 4)
-        meets = ((p0[:, None, 0] + reach0 >= b[None, :, 0]) & (p0[:, None, 0] - reach0 <= b[None, :, 2])
-                 & (p0[:, None, 1] + reach0 >= b[None, :, 1]) & (p0[:, None, 1] - reach0 <= b[None, :, 3]))
-        need[k] = meets.any(axis=1)
+        need[k] = _reaching(source, pts, margin, boxes)
         shifts[k, need[k]], ncc[k, need[k]], beyond[k, need[k]] = np.nan, np.nan, False
     return need
+
+
+def _reaching(source: PlaneSource, pts: np.ndarray, margin: int, boxes) -> np.ndarray:
+    """Return which blocks' reading reaches one of the level-0 ``boxes`` (see :func:`_blocks_to_measure`)."""
+    f = source.factor
+    p0 = source.to_level0(pts)
+    reach0 = (margin + 8 + 2 * COARSE) * f + f
+    b = np.asarray(boxes, float).reshape(-1, 4)
+    meets = ((p0[:, None, 0] + reach0 >= b[None, :, 0]) & (p0[:, None, 0] - reach0 <= b[None, :, 2])
+             & (p0[:, None, 1] + reach0 >= b[None, :, 1]) & (p0[:, None, 1] - reach0 <= b[None, :, 3]))
+    return meets.any(axis=1)
 
 
 def link_summary(shifts: np.ndarray, ncc: np.ndarray, beyond: np.ndarray, min_ncc: float) -> dict:
@@ -419,9 +450,11 @@ def measure_error(build_dir, source: PlaneSource, present: list[int], settings: 
             jobs.append(job)
             continue
         keys = tuple(f"{g[0][0]:05d}-{i:04d}" for i in range(len(shares)))
-        jobs += [replace(job, regions=share, part=key) for share, key in zip(shares, keys)]
-        merges.append(MergeJob(str(build_dir), job.pairs, job.fingerprints, job.made_from, keys, len(pts),
-                               st.probe_min_confidence))
+        wanted = _shares_to_measure(job, source, pts, region, shares)
+        jobs += [replace(job, regions=share, part=key) for share, key, w in zip(shares, keys, wanted) if w]
+        merges.append(MergeJob(str(build_dir), job.pairs, job.fingerprints, job.made_from,
+                               tuple(k for k, w in zip(keys, wanted) if w), len(pts), st.probe_min_confidence,
+                               tuple(bool(b) for b in job.keep) if not all(wanted) else ()))
     fresh = set()
     results = list(mapper(probe_pair, jobs))  # every part is written before a merge reads it
     results += list(mapper(merge_pair_parts, merges)) if merges else []

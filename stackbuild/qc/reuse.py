@@ -27,6 +27,7 @@ from dataclasses import asdict
 import numpy as np
 
 from ..render.fingerprint import digest
+from .zchain import ESTIMATE_VERSION
 
 #: bump when what a stored measurement holds or how it is measured changes (old files are then ignored)
 MEASURE_VERSION = 7  # 6: seams from the stitcher's offsets, checked against the raw tiles (measure.seams_of);
@@ -113,8 +114,8 @@ def run_fingerprint(pair_fps: dict, window, stack, settings) -> str | None:
     if any(f is None for _, _, f in fps):
         return None
     s = asdict(settings)
-    return digest({"v": MEASURE_VERSION, "pairs": fps, "window": list(window), "stack": list(stack),
-                   "settings": {k: s[k] for k in RUN_KEYS}})
+    return digest({"v": MEASURE_VERSION, "estimate": ESTIMATE_VERSION, "pairs": fps, "window": list(window),
+                   "stack": list(stack), "settings": {k: s[k] for k in RUN_KEYS}})
 
 
 def _pair_path(build, a: int, b: int):

@@ -58,7 +58,15 @@ class ReportSettings:
         the matching noise).
     slow_window : int
         Planes of the local straight-line fit that defines slow change along z; what a plane
-        deviates from it is its estimated error.
+        deviates from it is its estimated error. The identifiable residual counts as unknowable
+        only what is linear in z over the whole stack, so a stack of up to ``(slow_window + 1) / 2``
+        planes (37 at 73) is judged against its whole-stack line, a longer one against the line
+        through the planes within ``slow_window // 2`` of each plane (drift and tissue bends slower
+        than that are not counted). With 9, the slow drift of a chained alignment was missed on
+        36-section stacks (realistic/long, 3 seeds, outliers replaced as in qc/runs.py: 28 % of
+        sections within the bar at 9, 81 % at 73; tests/benchmarks/bench_qc.py --agreement). Each
+        run task of the probe reads the pairs of ``slow_window // 2 + probe_spans`` planes on each
+        side of its own.
     region_size : int
         Edge of the region one probe task follows down the stack, full-resolution pixels
         (bounds the task's memory).
@@ -101,7 +109,7 @@ class ReportSettings:
     probe_coarse_sigma: float = 16.0
     probe_min_confidence: float = 0.5
     probe_spans: int = 2
-    slow_window: int = 9
+    slow_window: int = 73
     region_size: int = 2048
     probe_task_regions: int = 4
     blocks_per_region: int = 4

@@ -35,6 +35,10 @@ def test_windows_equal_zarrs_own_read_and_each_chunk_is_decoded_once(tmp_path, d
         got = keeper.window(reader, i, z, y0, y1, x0, x1, reader.chunks_under(np.array([[y0, y1, x0, x1]])))
         np.testing.assert_array_equal(got, arr[z, y0:y1, x0:x1])  # zarr-python's read is the reference
     assert keeper.decoded == len({k for s in steps for k in s})
+    part = ChunkKeeper(0).window(reader, 0, 0, 10, 100, 40, 120, {(0, 1)})  # one of the window's four chunks
+    want = np.zeros_like(part)
+    want[:54, 24:] = arr[0, 10:64, 64:120]
+    np.testing.assert_array_equal(part, want)
 
 
 def test_a_damaged_chunk_is_named(tmp_path):

@@ -151,8 +151,13 @@ class ChunkKeeper:
     def window(self, reader: LevelReader, step: int, z: int, y0: int, y1: int, x0: int, x1: int,
                keys: set[tuple[int, int]]) -> np.ndarray:
         """Return rows ``y0:y1``, columns ``x0:x1`` of plane ``z`` holding chunks ``keys`` (the fill elsewhere)."""
-        out = np.full((y1 - y0, x1 - x0), reader.fill, reader.dtype)
         ch, cw = reader.chunk
+        every = {(r, c) for r in range(y0 // ch, (y1 - 1) // ch + 1) for c in range(x0 // cw, (x1 - 1) // cw + 1)}
+        # filled with the fill value only when some part of it gets no chunk
+        if every <= keys:
+            out = np.empty((y1 - y0, x1 - x0), reader.dtype)
+        else:
+            out = np.full((y1 - y0, x1 - x0), reader.fill, reader.dtype)
         for r, c in sorted(keys):
             a0, b0 = max(y0, r * ch), max(x0, c * cw)
             a1, b1 = min(y1, (r + 1) * ch), min(x1, (c + 1) * cw)

@@ -8,6 +8,8 @@ every partner plane. Used by the pair tasks of :mod:`stackbuild.qc.probe`.
 """
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 #: the first pass works on blocks reduced this many times
@@ -121,20 +123,32 @@ class PlaneBlocks:
         self.spectra = block_spectra(self.stack, np.broadcast_to(np.array([r, r]), (len(pts), 2)), plan, self.rows)
 
     def subset(self, idx: np.ndarray):
-        """Return the spectra of blocks ``idx`` (same rows of :attr:`stack`)."""
+        """Return the spectra of blocks ``idx`` (same rows of :attr:`stack`), whitened spectra included.
+
+        All of them: the spectra themselves, no copy. The whitened spectra made once per plane
+        serve every pair (before, each pair whitened both sides again: a fifth of the match).
+        """
         from ..align.blockmatch import BlockSpectra
 
         sp = self.spectra
-        return BlockSpectra(sp.xy[idx], sp.usable[idx], sp.spec[idx], sp.sums[idx])
+        if len(idx) == len(sp.xy):
+            return sp
+        return BlockSpectra(sp.xy[idx], sp.usable[idx], sp.spec[idx], sp.sums[idx],
+                            None if sp.white is None else sp.white[idx])
 
 
+@functools.lru_cache(maxsize=8)
 def fine_plan(half: int, search: int, fine_sigma: float, coarse_sigma: float):
-    """Return the matcher's plan of the probe's fine pass (as :func:`stackbuild.align.blockmatch.match_block_pairs` makes it)."""
+    """Return the matcher's plan of the probe's fine pass (as :func:`stackbuild.align.blockmatch.match_block_pairs` makes it).
+
+    Made once per process for each size (a plan is read-only: its band, window and norm).
+    """
     from ..align.blockmatch import match_plan
 
     return match_plan(half, search, fine_sigma=fine_sigma, coarse_sigma=coarse_sigma, power=POWER)
 
 
+@functools.lru_cache(maxsize=8)
 def coarse_plan(half: int, reach: int, fine_sigma: float, coarse_sigma: float):
     """Return the matcher's plan of the probe's first pass, on ``COARSE``-times reduced blocks (whole-pixel peak)."""
     from ..align.blockmatch import match_plan

@@ -189,12 +189,14 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
     limit = search + 2 * b
     fa, fb = _coarse_canvases(strip_a, strip_b, ov, nominal, b, int(math.ceil(limit)))
     # Low-pass on the binned canvases would cut b times more of the band; the bins already average noise.
-    (sx, sy), ratio = phase_correlate(fa, fb, upsample=1, max_shift=limit / b, window=False,
-                                      spectral_exponent=spectral_exponent)
+    # The binned peak refined to a quarter of a full-resolution pixel, so that the first cut at full
+    # resolution is usually within a pixel of the final one and needs no cut more.
+    (sx, sy), ratio = phase_correlate(fa, fb, upsample=4 * b if b > 1 else 1, max_shift=limit / b,
+                                      window=False, spectral_exponent=spectral_exponent)
     d = nom - b * np.array([sx, sy])
     if max(abs(sx), abs(sy)) >= limit / b - 1:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
-    up = 1 if b > 1 else upsample  # a binned estimate is first brought to the whole pixel
+    up = upsample
     for _ in range(4):
         di = np.round(d)
         x0, y0, x1, y1 = _true_box(di, size_a, size_b, ov)
@@ -204,11 +206,8 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
         ca, cb = _cut(strip_a, ov.pad_a, (x0, y0, x1, y1)), _cut(strip_b, ov.pad_b, box_b)
         (sx, sy), ratio = phase_correlate(ca, cb, upsample=up, max_shift=2 * b + 2, **spectral)
         d = di - np.array([sx, sy])
-        if max(abs(sx), abs(sy)) <= 1.0 and up == upsample:
+        if max(abs(sx), abs(sy)) <= 1.0:
             break
-        # Refined from the second full-resolution pass on: its residual is then usually within a
-        # pixel, and a pass more just to refine the same cut would cost its FFTs twice.
-        up = upsample
     if np.max(np.abs(d - nom)) > limit:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
     ncc, _, _ = ncc_after_shift(ca, cb, (sx, sy))

@@ -130,6 +130,50 @@ def test_update_equals_a_render_from_scratch_of_the_new_transforms(updated):
         np.testing.assert_array_equal(written, fresh)
 
 
+def test_every_changed_pixel_lies_in_the_boxes_the_report_is_told(grid_build, updated):
+    """The report re-measures only inside the pixel boxes the update hands it: no pixel outside changed.
+
+    Ground truth: the plane before the update (the build) and after it, every written level; a
+    level-k pixel covers 2**k level-0 px (the pyramid's 2 x 2 reduction).
+    """
+    work, _ = updated
+    plan = json.loads((work / "updates" / "0001" / "plan.json").read_text())
+    boxes = plan["render"]["pixels"]["3"]
+    width, height = plan["render"]["canvas"]["width"], plan["render"]["canvas"]["height"]
+    assert sum((x1 - x0) * (y1 - y0) for x0, y0, x1, y1 in boxes) < width * height / 2, boxes  # 2 tiles of 9
+    for level in (0, 1, 2):
+        f = 2 ** level
+        old = zarr.open_array(str(grid_build / "volume.zarr" / "em" / str(level)), mode="r")[3]
+        new = zarr.open_array(str(work / "volume.zarr" / "em" / str(level)), mode="r")[3]
+        inside = np.zeros(old.shape, bool)
+        for x0, y0, x1, y1 in boxes:
+            inside[y0 // f:-(-y1 // f), x0 // f:-(-x1 // f)] = True
+        changed = old != new
+        assert changed.any() and not (changed & ~inside).any(), level
+
+
+def test_the_updates_report_gives_the_numbers_of_a_full_report(updated, tmp_path):
+    """The update's report, told where planes changed, against a full report (reuse=False) of the same volume.
+
+    Kept blocks may differ from re-measured ones in the last float32 bits (pocketfft's batches), so
+    the estimates are compared to 1e-4 px (the stored shifts have 4 decimals).
+    """
+    from stackbuild.folder import BuildFolder
+    from stackbuild.qc.metrics import collect
+
+    work = _copy(updated[0], tmp_path)
+    told = json.loads((work / "qc" / "metrics.json").read_text())
+    full, _ = collect(work, BuildFolder(work).config.report, reuse=False)
+    assert len(full["sections"]) == len(told["sections"]) == 5
+    for a, b in zip(full["sections"], told["sections"]):
+        assert a["section"] == b["section"]
+        pairs = [(k, a[k], b[k]) for k in ("align_error_px", "align_error_max_px", "jitter_px")]
+        pairs += [(f"motion_prev.{m}", (a["motion_prev"] or {}).get(m), (b["motion_prev"] or {}).get(m))
+                  for m in ("median", "p95")]
+        for key, x, y in pairs:
+            assert (x is None) == (y is None) and (x is None or x == pytest.approx(y, abs=1e-4)), (a["section"], key)
+
+
 def test_kept_manifest_equals_a_full_check_of_the_merged_csv(updated):
     """The update keeps the merged manifest made from the two checked ones; checking its CSV from scratch agrees."""
     from stackbuild.folder import BuildFolder

@@ -229,9 +229,12 @@ def _planes_before(build: BuildFolder) -> dict[str, str]:
 def _changed_regions(build: BuildFolder, plan: UpdatePlan) -> dict | None:
     """Return where the render step changed planes, for the report: ``{z: {"before", "boxes"}}`` (level-0 px).
 
-    The boxes are the level-0 shards the step rewrote (every pixel outside them kept its bytes);
-    ``before`` is the plane's render fingerprint before the update. None (the report measures the
-    changed planes whole) after a full render or a grown canvas.
+    The boxes are the pixel boxes the step found can change (every pixel outside them kept its value:
+    :func:`stackbuild.run.update_render.changed_pixels`), or, for a plan recorded without them, the
+    level-0 shards it rewrote. With 4096 px shards a plane of a small stack is one shard, so the
+    pixel boxes are what keeps the report from measuring the whole plane again. ``before`` is the
+    plane's render fingerprint before the update. None (the report measures the changed planes
+    whole) after a full render or a grown canvas.
     """
     from .update_plan import unpack_shards
 
@@ -241,9 +244,11 @@ def _changed_regions(build: BuildFolder, plan: UpdatePlan) -> dict | None:
         return None
     width, height = render["canvas"]["width"], render["canvas"]["height"]
     block = build.config.render.chunk * build.config.render.shard
-    return {int(z): {"before": before.get(z), "boxes": [[j * block, i * block, min((j + 1) * block, width),
-                                                         min((i + 1) * block, height)]
-                                                        for i, j in sorted(unpack_shards(packed))]}
+    pixels = render.get("pixels") or {}
+    return {int(z): {"before": before.get(z),
+                     "boxes": pixels[z] if z in pixels else [[j * block, i * block, min((j + 1) * block, width),
+                                                              min((i + 1) * block, height)]
+                                                             for i, j in sorted(unpack_shards(packed))]}
             for z, packed in render["shards"].items()}
 
 

@@ -64,11 +64,13 @@ def predicted_shards(build: BuildFolder, new: TileManifest, changed: dict, added
     return out
 
 
-def dirty_shards(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict]:
-    """Return the settled canvas, its facts and plane -> level-0 shards whose pixels can change.
+def dirty_shards(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, dict, dict]:
+    """Return the settled canvas, its facts, plane -> level-0 shards to write and plane -> changed pixel boxes.
 
     Only sections whose records the update replaced are read (:func:`_untouched` tells the
-    others by their files alone), so the cost follows the update, not the stack.
+    others by their files alone), so the cost follows the update, not the stack. The shards are
+    those the render's dirty boxes meet; the pixel boxes (:func:`changed_pixels`), inside them,
+    hold every pixel whose value can change, for the report.
     """
     from ..render.dirty import changed_boxes, level0_shards
 
@@ -78,14 +80,57 @@ def dirty_shards(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, di
     records = {s: ((before.load_stitch(s), before.load_alignment(s)), (store.load_stitch(s), store.load_alignment(s)))
                for s in changed_sections(build, plan)}
     canvas, facts = _settled_canvas(build, plan, {s: new for s, (_, new) in records.items()}, block, settings.chunk)
-    dirty = {}
+    dirty, pixels = {}, {}
     for s, (old, new) in records.items():
-        boxes, _ = changed_boxes(old, new)
-        boxes += _replaced_boxes(store, s, plan.replaced.get(str(s), []))
+        names = plan.replaced.get(str(s), [])
+        boxes, whole = changed_boxes(old, new)
+        core = list(boxes) if whole else _changed_tiles(old, new, names)
+        boxes += _replaced_boxes(store, s, names)
         shards = level0_shards(boxes, canvas, block)
         if shards:
             dirty[str(s - canvas.first_section)] = pack_shards(shards)
-    return canvas, facts, dirty
+            pixels[str(s - canvas.first_section)] = changed_pixels(core, canvas)
+    return canvas, facts, dirty, pixels
+
+
+def _changed_tiles(old: tuple, new: tuple, names) -> list:
+    """Return the aligned-frame footprints, before and after, of tiles ``names`` and of tiles whose records changed.
+
+    For a section whose alignment and illumination stand: a pixel takes its value from the tiles
+    covering it (feathered by each tile's own distance to its edge, :mod:`stackbuild.sampler`), so
+    only pixels covered by one of these tiles, before or after, can change.
+    """
+    from ..render.dirty import _TILE_KEYS  # the records' pixel-relevant keys, as the render compares them
+    from ..sampler import tile_footprints
+
+    (os_, oa), (ns, na) = old, new
+    before, after = {t.tile: t for t in os_.tiles}, {t.tile: t for t in ns.tiles}
+    moved = set(names) | {n for n in before.keys() | after.keys() if n not in before or n not in after
+                          or any(getattr(before[n], k) != getattr(after[n], k) for k in _TILE_KEYS)}
+    out = []
+    for stitch, alignment in ((os_, oa), (ns, na)):
+        boxes = tile_footprints(stitch, alignment)
+        out += [tuple(map(float, boxes[i])) for i, t in enumerate(stitch.tiles) if t.tile in moved]
+    return out
+
+
+def changed_pixels(boxes: list, canvas: Canvas) -> list[list[int]]:
+    """Return aligned-frame ``boxes`` as level-0 canvas pixel boxes ``[x0, y0, x1, y1]`` (``x1, y1`` exclusive).
+
+    Widened by a pixel and clipped as :func:`stackbuild.render.dirty.level0_shards` widens and
+    clips boxes (a bilinear sample reaches the next pixel centre); a box inside another is left out.
+    ``tests/test_update_transaction.py`` checks that every pixel an update changed lies inside them.
+    """
+    out = set()
+    for x0, y0, x1, y1 in boxes:
+        c0 = max(0, math.floor(x0 - canvas.origin_x - 1))
+        c1 = min(canvas.width - 1, math.ceil(x1 - canvas.origin_x + 1))
+        r0 = max(0, math.floor(y0 - canvas.origin_y - 1))
+        r1 = min(canvas.height - 1, math.ceil(y1 - canvas.origin_y + 1))
+        if c1 >= c0 and r1 >= r0:
+            out.add((c0, r0, c1 + 1, r1 + 1))
+    inside = lambda a, b: a != b and b[0] <= a[0] and b[1] <= a[1] and a[2] <= b[2] and a[3] <= b[3]  # noqa: E731
+    return [list(b) for b in sorted(out) if not any(inside(b, o) for o in out)]
 
 
 def changed_sections(build: BuildFolder, plan: UpdatePlan) -> list[int]:
@@ -177,8 +222,8 @@ def render_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
     from . import stages
 
     if plan.render is None:
-        canvas, facts, dirty = dirty_shards(build, plan)
-        plan.render = {"canvas": canvas.to_json(), "canvas_facts": facts, "shards": dirty}
+        canvas, facts, dirty, pixels = dirty_shards(build, plan)
+        plan.render = {"canvas": canvas.to_json(), "canvas_facts": facts, "shards": dirty, "pixels": pixels}
         save_plan(build.root, plan)  # the set to write is fixed before any of it is written
     canvas = Canvas.from_json(plan.render["canvas"])
     facts = plan.render["canvas_facts"]

@@ -31,15 +31,36 @@ from ..folder import BuildFolder
 from ..transforms.records import Canvas
 from .dirty import all_shards, pyramid_shards
 from .fingerprint import em_fingerprints, read_plane_record, write_plane_record
-from .lazy import RenderPlan, block_edges
+from .lazy import RenderPlan, block_edges, render_block
 from .ngff import multiscales_attrs, root_attrs
-from .pyramid import compute_each, join_shard, render_shard
+from .pyramid import compute_each, join_shard, render_shard, write_block
 from .reduce import level_shapes, reduce2x2
 
 
 def stored_quarter(source, z: int, y0: int, y1: int, x0: int, x1: int, reducer: str) -> np.ndarray:
     """Return the 2x2 reduction of stored pixels ``source[z, y0:y1, x0:x1]`` (a clean shard of the level below)."""
     return reduce2x2(np.asarray(source[z:z + 1, y0:y1, x0:x1]), reducer)
+
+
+def render_shard_keeping(plan: RenderPlan, target, z: int, y0: int, y1: int, x0: int, x1: int,
+                         reducer: str | None, boxes: list) -> np.ndarray | None:
+    """Write level-0 shard ``[z, y0:y1, x0:x1]`` like :func:`~stackbuild.render.pyramid.render_shard`, rendering only chunks that meet ``boxes``.
+
+    ``boxes`` (``[x0, y0, x1, y1]``, level-0 pixels, end exclusive) hold every pixel whose value
+    can have changed; a chunk outside all of them keeps its stored pixels, read back (the codecs
+    are lossless, so the shard is written with the same bytes a full render gives). Reading a
+    1024 px chunk costs a few milliseconds; rendering it, tens.
+    """
+    out = np.empty((1, y1 - y0, x1 - x0), np.dtype(plan.dtype))
+    c = plan.chunk
+    for a in range(y0, y1, c):
+        for b in range(x0, x1, c):
+            a1, b1 = min(a + c, y1), min(b + c, x1)
+            meets = any(bx0 < b1 and b < bx1 and by0 < a1 and a < by1 for bx0, by0, bx1, by1 in boxes)
+            out[:, a - y0:a1 - y0, b - x0:b1 - x0] = (render_block(plan, z, a, a1, b, b1) if meets
+                                                      else np.asarray(target[z:z + 1, a:a1, b:b1]))
+    write_block(target, z, y0, x0, out)
+    return None if reducer is None else reduce2x2(out, reducer)
 
 
 def _plane_done(*_ignored) -> None:
@@ -80,8 +101,14 @@ def _fit_arrays(em: Path, canvas: Canvas, shapes, settings, attrs: dict) -> tupl
     return arrays, extra
 
 
-def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reducer: str, block: int) -> list:
-    """Return one delayed per plane of ``dirty`` (``{z: [level-0 set, level-1 set, ...]}``) writing its dirty shards."""
+def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reducer: str, block: int,
+           keep: dict[int, list] | None = None) -> list:
+    """Return one delayed per plane of ``dirty`` (``{z: [level-0 set, level-1 set, ...]}``) writing its dirty shards.
+
+    ``keep`` maps planes whose stored level 0 may be read back to the pixel boxes that can change
+    (:func:`render_shard_keeping`); other planes' dirty shards are rendered whole.
+    """
+    keep = keep or {}
     token = tokenize(plan, {z: [sorted(s) for s in v] for z, v in dirty.items()},
                      [str(a.store_path) for a in arrays], shapes, reducer, block, time.time_ns())
     top = len(arrays) - 1
@@ -94,7 +121,9 @@ def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reduce
             for i, j in sorted(levels[n]):
                 (a, b), (c, d) = ys[i], xs[j]
                 key = (f"stackbuild-patch-{n}-{token}", z, i, j)
-                if n == 0:
+                if n == 0 and z in keep:
+                    dsk[key] = (render_shard_keeping, plan, target, z, a, b, c, d, up, keep[z])
+                elif n == 0:
                     dsk[key] = (render_shard, plan, target, z, a, b, c, d, up)
                 else:
                     below, (hb, wb) = arrays[n - 1], shapes[n - 1]
@@ -123,7 +152,7 @@ def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reduce
 
 
 def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *, previous: Canvas | None = None,
-                 progress=None, mapper=None) -> dict:
+                 pixels: dict[int, list] | None = None, progress=None, mapper=None) -> dict:
     """Rewrite the dirty level-0 shards ``dirty0`` (``{z: {(i, j)}}``) and the pyramid above them; return facts.
 
     Parameters
@@ -139,6 +168,11 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
     previous : Canvas, optional
         The canvas the volume was written on, when ``canvas`` grew from it: planes whose
         fingerprint matched under it are carried over as fresh (their pixels did not change).
+    pixels : dict, optional
+        Output plane -> level-0 pixel boxes ``[x0, y0, x1, y1]`` holding every pixel that can
+        have changed. Chunks of a dirty shard outside them keep their stored pixels instead of
+        being rendered again, on a plane that was fresh and undamaged before this call and a
+        canvas of unchanged size (otherwise, or for a plane not named, dirty shards are rendered whole).
     progress : callable(done, total), optional
 
     Returns
@@ -169,6 +203,9 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
         old = em_fingerprints(store, previous, settings, [z for z in range(previous.depth) if z not in dirty])
         new = em_fingerprints(store, canvas, settings, list(old))
         fps = {str(z): new[z] for z in old if fps.get(str(z)) == old[z]}
+    same_size = not extra and (previous is None or (previous.width, previous.height) == (canvas.width, canvas.height))
+    keep = {z: boxes for z, boxes in (pixels or {}).items()
+            if same_size and z in dirty and str(z) in fps and str(z) not in record["damaged"]}
     for z in dirty:
         fps.pop(str(z), None)  # a plane counts as stale while it is being written
     damaged = {k: v for k, v in record["damaged"].items() if int(k) not in dirty}
@@ -176,7 +213,7 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
     plan = RenderPlan.from_canvas(store.root, canvas, settings)
     order = sorted(dirty)
     fresh = em_fingerprints(store, canvas, settings, order)
-    tasks = _graph(plan, arrays, shapes, dirty, settings.reducer, block)
+    tasks = _graph(plan, arrays, shapes, dirty, settings.reducer, block, keep)
     finished = [0]
     if progress is not None:
         progress(0, len(order))

@@ -9,7 +9,9 @@ joins them into the pair documents, so the driver still receives per-pair
 summaries only). It reads the planes one region window at a time
 (``region_size`` level-0 px plus a margin, in the stored dtype with its data
 mask: at the defaults about 2.4k x 2.4k x 2 B = 11 MB per window, at most
-``probe_spans + 1`` windows held, whatever the section's size), cuts the
+``probe_spans + 1`` windows held, whatever the section's size; the chunks under a
+window's blocks are read straight from the shard files and kept for the task's later
+windows within 64 MB, :mod:`stackbuild.qc.levelread`), cuts the
 blocks of the probe's grid that fall in the region, and matches every block of
 a pair in one batched call of the project's sub-pixel estimator
 (:func:`stackbuild.align.blockmatch.match_block_pairs`): first on 4x reduced

@@ -63,7 +63,7 @@ class ReportSettings:
         planes (37 at 73) is judged against its whole-stack line, a longer one against the line
         through the planes within ``slow_window // 2`` of each plane (drift and tissue bends slower
         than that are not counted). With 9, the slow drift of a chained alignment was missed on
-        36-section stacks (realistic/long, 3 seeds, outliers replaced as in qc/runs.py: 28 % of
+        36-section stacks (realistic/long, 3 seeds, outliers replaced as in qc/runs.py: 35 % of
         sections within the bar at 9, 81 % at 73; tests/benchmarks/bench_qc.py --agreement). Each
         run task of the probe reads the pairs of ``slow_window // 2 + probe_spans`` planes on each
         side of its own.

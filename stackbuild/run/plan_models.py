@@ -328,8 +328,12 @@ def report_kinds(shape: VolumeShape, cfg) -> list[Kind]:
             kinds.append(Kind("report.merge", runs, PAIRS_TASK * spans * nx * ny * 4 * 8, PAIRS_TASK * spans * nx * ny / MB,
                               reads=PAIRS_TASK * spans * nx * ny * 4 * 8, note="joins a run's part files"))
         blocks = int(_get(q, "probe_blocks", 150))
-        kinds.append(Kind("report.runs", runs, blocks * (PAIRS_TASK + 2 * spans + 8) * 2 * 8, blocks / MB,
-                          reads=(PAIRS_TASK * spans) * blocks * 3 * 8,
+        # qc/reuse.py: a run task reads the pairs of its planes and of slow_window // 2 + probe_spans
+        # planes on each side (the planes its straight lines along z reach)
+        around = int(_get(q, "slow_window", 73)) // 2 + spans
+        held = min(shape.imaged, PAIRS_TASK + 2 * around)
+        kinds.append(Kind("report.runs", runs, blocks * held * 2 * 8, blocks * held / MB,
+                          reads=held * spans * blocks * 3 * 8,
                           note="solves a run of planes from the stored pair shifts"))
     return kinds
 

@@ -58,3 +58,62 @@ def test_every_read_is_bounded_by_the_settings_not_the_section():
 def test_early_rounds_at_elastic_scale_when_not_coarsened():
     src, s, _ = _run(384, early_round_coarsening=1)
     assert {sc for _, _, sc, warped in src.asked if warped} == {s.elastic_scale}
+
+
+def test_aligned_regions_resample_the_section_image_as_scipy_does(tiny_build):
+    """An aligned region of a build is the section-frame image at the same scale, resampled at the
+    alignment's points: reference scipy.ndimage.map_coordinates (order 1) on that image."""
+    import numpy as np
+    from scipy import ndimage
+
+    from stackbuild.align.sources import BuildSource
+    from stackbuild.transforms.records import SectionAlignment
+    from stackbuild.transforms.types import Affine2D, DisplacementField
+
+    src = BuildSource(tiny_build)
+    z = src.sections()[1]
+    x0, y0, x1, y1 = src.bbox(z)
+    s, fx, fy = 2, int(x0) + 1, int(y0) + 1
+    w, h = int((x1 - fx) // s) - 1, int((y1 - fy) // s) - 1
+    frame = src.region(z, None, fx, fy, w, h, s)
+    rng = np.random.default_rng(0)
+    field = DisplacementField(rng.normal(0, 2.0, (3, 3, 2)).astype(np.float32), (x0, y0), (x1 - x0) / 2)
+    al = SectionAlignment(z, Affine2D.similarity(1.0, 0.02, 6.3, -4.7, center=(w, h)), field)
+    rx, ry, rw, rh = fx + 40, fy + 40, w // 2, h // 2
+    got = src.region(z, al, rx, ry, rw, rh, s)
+    half = (s - 1) / 2.0
+    sx, sy = al.aligned_to_section_grid(rx + half + s * np.arange(rw), ry + half + s * np.arange(rh))
+    want = ndimage.map_coordinates(frame, [(sy - fy - half) / s, (sx - fx - half) / s], order=1, cval=np.nan)
+    ok = np.isfinite(want)
+    assert ok.mean() > 0.9 and np.isfinite(got[ok]).all()
+    # OpenCV quantises bilinear weights to 1/32 px (its documented INTER_BITS = 5): a tolerance of that order
+    assert np.abs(got[ok] - want[ok]).max() <= 0.05 * float(np.ptp(frame[np.isfinite(frame)]))
+
+
+def test_a_sections_tiles_are_prepared_once_per_align_run(tiny_build, tmp_path, monkeypatch):
+    """Every region of every elastic round is resampled from the section images the overviews made:
+    each tile is read and prepared once per run (it was three times: overview and two rounds)."""
+    import shutil
+
+    from stackbuild import tiles as tiles_mod
+    from stackbuild.align.settings import AlignSettings
+    from stackbuild.align.sources import BuildSource
+    from stackbuild.align.stage import align_sections
+
+    build = tmp_path / "b"
+    shutil.copytree(tiny_build / "transforms", build / "transforms")
+    prepared = []
+    real = tiles_mod._prepare
+
+    def counting(p, tile, *args, **kw):
+        prepared.append(str(p))
+        return real(p, tile, *args, **kw)
+
+    monkeypatch.setattr(tiles_mod, "_prepare", counting)
+    # a tile cache of one tile (production tiles are large): a tile read again is prepared again
+    monkeypatch.setattr(tiles_mod, "TILES_KEPT", 1)
+    monkeypatch.setattr(tiles_mod, "TILE_CACHE", tiles_mod.ByteLRU(0))
+    src = BuildSource(build)
+    align_sections(src, AlignSettings(elastic_rounds=2))
+    n_tiles = sum(len(src._stitch(z).tiles) for z in src.sections())
+    assert len(prepared) == n_tiles == len(set(prepared))

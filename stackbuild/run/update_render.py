@@ -240,8 +240,10 @@ def render_step(build: BuildFolder, plan: UpdatePlan, mappers) -> None:
             bar(done, total)
             if done:
                 killed_here("render")
-        done = patch_volume(build.root, build.config.render, canvas, dirty, previous=previous, progress=progress,
-                            mapper=mappers())
+        # Chunks of a dirty shard outside the changed pixels keep their stored bytes (read back, not rendered).
+        pixels = {int(z): b for z, b in (plan.render.get("pixels") or {}).items()}
+        done = patch_volume(build.root, build.config.render, canvas, dirty, previous=previous, pixels=pixels,
+                            progress=progress, mapper=mappers())
         plan.facts["render"] = {"planes": done["planes"], "shards": done["shards"],
                                 "shards_total": done["shards_total"], "full": False}
     stages.render_channels_stage(build, progress=mappers.bar("markers"), mapper=mappers())

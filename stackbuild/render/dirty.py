@@ -121,21 +121,29 @@ def changed_boxes(old: tuple[SectionStitch | None, SectionAlignment | None],
     return boxes, False
 
 
-def level0_shards(boxes: list[Box], canvas: Canvas, block: int) -> set[tuple[int, int]]:
-    """Return the level-0 shards ``(i, j)`` (edge ``block`` pixels) that aligned-frame ``boxes`` meet.
+def canvas_pixels(box: Box, canvas: Canvas) -> tuple[int, int, int, int] | None:
+    """Return the level-0 canvas pixels ``(c0, r0, c1, r1)`` (inclusive) an aligned-frame box can change, or None.
 
-    A box's pixel edges are widened by one pixel each way (a bilinear sample reaches the
-    next pixel centre), then clipped to the canvas.
+    The box's edges are widened by one pixel each way (a bilinear sample reaches the next pixel
+    centre), then clipped to the canvas; None when nothing of it is on the canvas.
     """
+    x0, y0, x1, y1 = box
+    c0 = max(0, math.floor(x0 - canvas.origin_x - 1))
+    c1 = min(canvas.width - 1, math.ceil(x1 - canvas.origin_x + 1))
+    r0 = max(0, math.floor(y0 - canvas.origin_y - 1))
+    r1 = min(canvas.height - 1, math.ceil(y1 - canvas.origin_y + 1))
+    return None if c1 < c0 or r1 < r0 else (c0, r0, c1, r1)
+
+
+def level0_shards(boxes: list[Box], canvas: Canvas, block: int) -> set[tuple[int, int]]:
+    """Return the level-0 shards ``(i, j)`` (edge ``block`` pixels) that aligned-frame ``boxes`` meet (:func:`canvas_pixels`)."""
     ny, nx = math.ceil(canvas.height / block), math.ceil(canvas.width / block)
     out = set()
-    for x0, y0, x1, y1 in boxes:
-        c0 = max(0, math.floor(x0 - canvas.origin_x - 1))
-        c1 = min(canvas.width - 1, math.ceil(x1 - canvas.origin_x + 1))
-        r0 = max(0, math.floor(y0 - canvas.origin_y - 1))
-        r1 = min(canvas.height - 1, math.ceil(y1 - canvas.origin_y + 1))
-        if c1 < c0 or r1 < r0:
+    for box in boxes:
+        pixels = canvas_pixels(box, canvas)
+        if pixels is None:
             continue
+        c0, r0, c1, r1 = pixels
         for i in range(r0 // block, min(ny - 1, r1 // block) + 1):
             for j in range(c0 // block, min(nx - 1, c1 // block) + 1):
                 out.add((i, j))

@@ -117,17 +117,17 @@ def _changed_tiles(old: tuple, new: tuple, names) -> list:
 def changed_pixels(boxes: list, canvas: Canvas) -> list[list[int]]:
     """Return aligned-frame ``boxes`` as level-0 canvas pixel boxes ``[x0, y0, x1, y1]`` (``x1, y1`` exclusive).
 
-    Widened by a pixel and clipped as :func:`stackbuild.render.dirty.level0_shards` widens and
-    clips boxes (a bilinear sample reaches the next pixel centre); a box inside another is left out.
+    Widened by a pixel and clipped as the render's dirty shards are
+    (:func:`stackbuild.render.dirty.canvas_pixels`); a box inside another is left out.
     ``tests/test_update_transaction.py`` checks that every pixel an update changed lies inside them.
     """
+    from ..render.dirty import canvas_pixels
+
     out = set()
-    for x0, y0, x1, y1 in boxes:
-        c0 = max(0, math.floor(x0 - canvas.origin_x - 1))
-        c1 = min(canvas.width - 1, math.ceil(x1 - canvas.origin_x + 1))
-        r0 = max(0, math.floor(y0 - canvas.origin_y - 1))
-        r1 = min(canvas.height - 1, math.ceil(y1 - canvas.origin_y + 1))
-        if c1 >= c0 and r1 >= r0:
+    for box in boxes:
+        pixels = canvas_pixels(box, canvas)
+        if pixels is not None:
+            c0, r0, c1, r1 = pixels
             out.add((c0, r0, c1 + 1, r1 + 1))
     inside = lambda a, b: a != b and b[0] <= a[0] and b[1] <= a[1] and a[2] <= b[2] and a[3] <= b[3]  # noqa: E731
     return [list(b) for b in sorted(out) if not any(inside(b, o) for o in out)]

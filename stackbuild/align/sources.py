@@ -107,7 +107,8 @@ class BuildSource:
         x0, y0, width, height, scale = int(x0), int(y0), int(width), int(height), int(scale)
         if alignment is None:
             img = self._render(z, x0, y0, width, height, scale)
-            self._keep(z, scale, x0, y0, img)
+            if x0 % scale == 0 and y0 % scale == 0:     # on the lattice of every kept image (see _frame)
+                self._keep(z, scale, x0, y0, img)
             return img.copy()
         return _resample(alignment, x0, y0, width, height, scale, lambda box: self._frame(z, scale, box))
 
@@ -144,9 +145,11 @@ class BuildSource:
         """Return a kept section-frame image at ``scale`` holding the section points ``box``
         (``x0, y0, x1, y1``) and its first pixel ``(x0, y0)``; renders (and keeps) one if none does.
 
-        The image is ``(values, coverage)`` as :meth:`_keep` keeps it. Beyond the
-        section's extent there is nothing to sample, so the box is cut to it and an
-        image may stop up to a pixel short of it (the coverage falls off there).
+        The image is ``(values, coverage)`` as :meth:`_keep` keeps it. Every kept
+        image starts on a multiple of ``scale`` and a pixel's value depends only on
+        its centre, so whichever kept image serves a request (which depends on what
+        ran before in this process) the result is the same. Beyond the section's
+        extent nothing is covered, so the box is cut to it.
         """
         bb = self.bbox(z)
         box = (max(box[0], bb[0]), max(box[1], bb[1]), min(box[2], bb[2]), min(box[3], bb[3]))
@@ -160,8 +163,8 @@ class BuildSource:
                 keys.remove(key)
                 continue
             _, _, _, fx, fy, (h, w) = key
-            if (fx + half - scale <= box[0] and fy + half - scale <= box[1]
-                    and fx + half + scale * w >= box[2] and fy + half + scale * h >= box[3]):
+            if (fx + half <= box[0] and fy + half <= box[1]
+                    and fx + half + scale * (w - 1) >= box[2] and fy + half + scale * (h - 1) >= box[3]):
                 return kept, fx, fy
         step = scale * _SNAP
         fx, fy = int(np.floor(box[0] / step) * step), int(np.floor(box[1] / step) * step)

@@ -16,6 +16,7 @@ from dataclasses import dataclass
 
 from .blockmatch import block_reach
 from .settings import AlignSettings
+from .sources import IMAGES_KEPT_BYTES
 
 #: resident size of a worker process before it holds any data (numpy, OpenCV, SciPy loaded)
 PROCESS_BYTES = 250e6
@@ -93,8 +94,9 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
                  f"overview {section_px / scale:.0f} px square (scale {scale})"),
         TaskKind("align.pair", links, PROCESS_BYTES + 2 * s.max_features * 140 * 4,
                  "two sections' stored features"),
-        TaskKind("align.region", blocks * windows * (rounds + 1), PROCESS_BYTES + region,
-                 f"{held} images of {side:.0f} px square at scale {s.elastic_scale}"),
+        TaskKind("align.region", blocks * windows * (rounds + 1), PROCESS_BYTES + region + IMAGES_KEPT_BYTES,
+                 f"{held} images of {side:.0f} px square at scale {s.elastic_scale}, "
+                 f"and up to {IMAGES_KEPT_BYTES // 2 ** 20} MiB of section images kept per process"),
         TaskKind("align.solve", blocks * rounds, PROCESS_BYTES + solve,
                  f"{unknowns} unknowns per component ({s.region_nodes}+2x{s.solve_halo} nodes square x sections)"),
     ]

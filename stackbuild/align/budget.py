@@ -16,7 +16,6 @@ from dataclasses import dataclass
 
 from .blockmatch import block_reach
 from .settings import AlignSettings
-from .sources import IMAGES_KEPT_BYTES
 
 #: resident size of a worker process before it holds any data (numpy, OpenCV, SciPy loaded)
 PROCESS_BYTES = 250e6
@@ -85,9 +84,6 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
     match += 2 * (s.neighbours + 1) * region_side_nodes ** 2 * p * (p // 2 + 1) * 8
     reduced_tile = 2 * (tile_px / s.elastic_scale) ** 2 * 4
     region = held * side ** 2 * 4 + side ** 2 * RENDER_BYTES_PER_PX + match + cache + tile + reduced_tile
-    # section images a process keeps for later tasks (sources.py): at most the bound, at most every
-    # section at elastic scale
-    kept = min(IMAGES_KEPT_BYTES, n_sections * (section_px / s.elastic_scale) ** 2 * 4)
     unknowns = (s.region_nodes + 2 * s.solve_halo) ** 2 * n_sections
     prior = unknowns * 2 * 4
     solve = unknowns * SOLVE_BYTES_PER_UNKNOWN + prior * 3
@@ -97,9 +93,8 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
                  f"overview {section_px / scale:.0f} px square (scale {scale})"),
         TaskKind("align.pair", links, PROCESS_BYTES + 2 * s.max_features * 140 * 4,
                  "two sections' stored features"),
-        TaskKind("align.region", blocks * windows * (rounds + 1), PROCESS_BYTES + region + kept,
-                 f"{held} images of {side:.0f} px square at scale {s.elastic_scale}, "
-                 f"and {kept / 2 ** 20:.0f} MiB of section images kept per process"),
+        TaskKind("align.region", blocks * windows * (rounds + 1), PROCESS_BYTES + region,
+                 f"{held} images of {side:.0f} px square at scale {s.elastic_scale}"),
         TaskKind("align.solve", blocks * rounds, PROCESS_BYTES + solve,
                  f"{unknowns} unknowns per component ({s.region_nodes}+2x{s.solve_halo} nodes square x sections)"),
     ]

@@ -319,8 +319,8 @@ def bench_agreement(work: Path, sections: int | None, seeds: int, cases=AGREEMEN
                                             else f"{ests[side][s][0]:.2f}" for side in sides)
                 for s, t in t_rms.items()), flush=True)
         totals[(family, variant)] = acc
-    print(f"\nagreement with the identifiable residual (bar: >= 90 % of sections within 30 % or 0.3 px, "
-          f"truly worst among the two worst on every seed)")
+    print("\nagreement with the identifiable residual (bar: >= 90 % of sections within 30 % or 0.3 px, "
+          "truly worst among the two worst on every seed)")
     print(f"{'family/variant':<20}" + "".join(f"{side + ': within':>24}{'worst top 2':>14}" for side in sides))
     for (family, variant), acc in totals.items():
         print(f"{family + '/' + variant:<20}" + "".join(

@@ -101,24 +101,33 @@ def changed_boxes(old: tuple[SectionStitch | None, SectionAlignment | None],
         return _whole(os_, oa) + _whole(ns, na), True
     if range_changed or not same_alignment(oa, na) or not _same_illumination(os_, ns):
         return _whole(os_, oa) + _whole(ns, na), True
-    before = {t.tile: t for t in os_.tiles}
-    after = {t.tile: t for t in ns.tiles}
-    changed = {name for name in before.keys() | after.keys()
-               if name not in before or name not in after
-               or any(getattr(before[name], k) != getattr(after[name], k) for k in _TILE_KEYS)}
+    changed = changed_tiles(os_, ns)
     if not changed:
         return [], False
     ob, nb = tile_footprints(os_, oa), tile_footprints(ns, na)
-    oi = {t.tile: i for i, t in enumerate(os_.tiles)}
-    ni = {t.tile: i for i, t in enumerate(ns.tiles)}
-    core = [ob[oi[n]] for n in changed if n in oi] + [nb[ni[n]] for n in changed if n in ni]
+    core = _named(os_, ob, changed) + _named(ns, nb, changed)
     hit_old, hit_new = np.zeros(len(ob), bool), np.zeros(len(nb), bool)
     for box in core:
         hit_old |= _meets(ob, box)
         hit_new |= _meets(nb, box)
-    boxes = [tuple(map(float, b)) for b in core] + [tuple(map(float, b)) for b in ob[hit_old]] \
-        + [tuple(map(float, b)) for b in nb[hit_new]]
-    return boxes, False
+    return core + [tuple(map(float, b)) for b in ob[hit_old]] + [tuple(map(float, b)) for b in nb[hit_new]], False
+
+
+def changed_tiles(before: SectionStitch, after: SectionStitch) -> set[str]:
+    """Return the tiles added, removed, or whose pixel-relevant record (file, size, place, gain) differs."""
+    old, new = {t.tile: t for t in before.tiles}, {t.tile: t for t in after.tiles}
+    return {name for name in old.keys() | new.keys()
+            if name not in old or name not in new
+            or any(getattr(old[name], k) != getattr(new[name], k) for k in _TILE_KEYS)}
+
+
+def tile_boxes(stitch: SectionStitch, alignment: SectionAlignment | None, names) -> list[Box]:
+    """Return the aligned-frame footprints of the tiles ``names`` of a section."""
+    return _named(stitch, tile_footprints(stitch, alignment), set(names))
+
+
+def _named(stitch: SectionStitch, boxes: np.ndarray, names: set) -> list[Box]:
+    return [tuple(map(float, boxes[i])) for i, t in enumerate(stitch.tiles) if t.tile in names]
 
 
 def canvas_pixels(box: Box, canvas: Canvas) -> tuple[int, int, int, int] | None:

@@ -100,18 +100,11 @@ def _changed_tiles(old: tuple, new: tuple, names) -> list:
     covering it (feathered by each tile's own distance to its edge, :mod:`stackbuild.sampler`), so
     only pixels covered by one of these tiles, before or after, can change.
     """
-    from ..render.dirty import _TILE_KEYS  # the records' pixel-relevant keys, as the render compares them
-    from ..sampler import tile_footprints
+    from ..render.dirty import changed_tiles, tile_boxes
 
     (os_, oa), (ns, na) = old, new
-    before, after = {t.tile: t for t in os_.tiles}, {t.tile: t for t in ns.tiles}
-    moved = set(names) | {n for n in before.keys() | after.keys() if n not in before or n not in after
-                          or any(getattr(before[n], k) != getattr(after[n], k) for k in _TILE_KEYS)}
-    out = []
-    for stitch, alignment in ((os_, oa), (ns, na)):
-        boxes = tile_footprints(stitch, alignment)
-        out += [tuple(map(float, boxes[i])) for i, t in enumerate(stitch.tiles) if t.tile in moved]
-    return out
+    moved = set(names) | changed_tiles(os_, ns)
+    return tile_boxes(os_, oa, moved) + tile_boxes(ns, na, moved)
 
 
 def changed_pixels(boxes: list, canvas: Canvas) -> list[list[int]]:

@@ -31,36 +31,15 @@ from ..folder import BuildFolder
 from ..transforms.records import Canvas
 from .dirty import all_shards, pyramid_shards
 from .fingerprint import em_fingerprints, read_plane_record, write_plane_record
-from .lazy import RenderPlan, block_edges, render_block
+from .lazy import RenderPlan, block_edges
 from .ngff import multiscales_attrs, root_attrs
-from .pyramid import compute_each, join_shard, render_shard, write_block
+from .pyramid import compute_each, join_shard, render_shard
 from .reduce import level_shapes, reduce2x2
 
 
 def stored_quarter(source, z: int, y0: int, y1: int, x0: int, x1: int, reducer: str) -> np.ndarray:
     """Return the 2x2 reduction of stored pixels ``source[z, y0:y1, x0:x1]`` (a clean shard of the level below)."""
     return reduce2x2(np.asarray(source[z:z + 1, y0:y1, x0:x1]), reducer)
-
-
-def render_shard_keeping(plan: RenderPlan, target, z: int, y0: int, y1: int, x0: int, x1: int,
-                         reducer: str | None, boxes: list) -> np.ndarray | None:
-    """Write level-0 shard ``[z, y0:y1, x0:x1]`` like :func:`~stackbuild.render.pyramid.render_shard`, rendering only chunks that meet ``boxes``.
-
-    ``boxes`` (``[x0, y0, x1, y1]``, level-0 pixels, end exclusive) hold every pixel whose value
-    can have changed; a chunk outside all of them keeps its stored pixels, read back (the codecs
-    are lossless, so the shard is written with the same bytes a full render gives). Reading a
-    1024 px chunk costs a few milliseconds; rendering it, tens.
-    """
-    out = np.empty((1, y1 - y0, x1 - x0), np.dtype(plan.dtype))
-    c = plan.chunk
-    for a in range(y0, y1, c):
-        for b in range(x0, x1, c):
-            a1, b1 = min(a + c, y1), min(b + c, x1)
-            meets = any(bx0 < b1 and b < bx1 and by0 < a1 and a < by1 for bx0, by0, bx1, by1 in boxes)
-            out[:, a - y0:a1 - y0, b - x0:b1 - x0] = (render_block(plan, z, a, a1, b, b1) if meets
-                                                      else np.asarray(target[z:z + 1, a:a1, b:b1]))
-    write_block(target, z, y0, x0, out)
-    return None if reducer is None else reduce2x2(out, reducer)
 
 
 def _plane_done(*_ignored) -> None:
@@ -106,7 +85,8 @@ def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reduce
     """Return one delayed per plane of ``dirty`` (``{z: [level-0 set, level-1 set, ...]}``) writing its dirty shards.
 
     ``keep`` maps planes whose stored level 0 may be read back to the pixel boxes that can change
-    (:func:`render_shard_keeping`); other planes' dirty shards are rendered whole.
+    (``changed`` of :func:`~stackbuild.render.pyramid.render_shard`); other planes' dirty shards
+    are rendered whole.
     """
     keep = keep or {}
     token = tokenize(plan, {z: [sorted(s) for s in v] for z, v in dirty.items()},
@@ -121,10 +101,8 @@ def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reduce
             for i, j in sorted(levels[n]):
                 (a, b), (c, d) = ys[i], xs[j]
                 key = (f"stackbuild-patch-{n}-{token}", z, i, j)
-                if n == 0 and z in keep:
-                    dsk[key] = (render_shard_keeping, plan, target, z, a, b, c, d, up, keep[z])
-                elif n == 0:
-                    dsk[key] = (render_shard, plan, target, z, a, b, c, d, up)
+                if n == 0:
+                    dsk[key] = (render_shard, plan, target, z, a, b, c, d, up, keep.get(z))
                 else:
                     below, (hb, wb) = arrays[n - 1], shapes[n - 1]
                     yb, xb = block_edges(hb, block), block_edges(wb, block)

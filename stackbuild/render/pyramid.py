@@ -61,19 +61,27 @@ def _whole_shard(target, z: int, y0: int, x0: int, shape) -> bool:
 
 
 def render_shard(plan: RenderPlan, target, z: int, y0: int, y1: int, x0: int, x1: int,
-                 reducer: str | None) -> np.ndarray | None:
+                 reducer: str | None, changed: list | None = None) -> np.ndarray | None:
     """Render level-0 pixels ``[z, y0:y1, x0:x1]`` (one shard), write them to ``target``, hand up their reduction.
 
     The shard is rendered in the lazy volume's blocks (:func:`stackbuild.render.lazy.render_block`
     on the same edges) straight into one buffer, so the written level 0 equals the lazy one byte
     for byte. Returns ``reduce2x2(shard, reducer)``, or None when ``reducer`` is None (no level above).
+
+    ``changed`` (a patch of a written volume, :mod:`stackbuild.render.patch`): level-0 pixel boxes
+    ``[x0, y0, x1, y1]`` (end exclusive) holding every pixel whose value can have changed; a chunk
+    outside all of them keeps its stored pixels, read back (lossless codecs: the shard gets the
+    bytes a full render gives). Reading a 1024 px chunk costs a few milliseconds; rendering it, tens.
     """
     out = np.empty((1, y1 - y0, x1 - x0), np.dtype(plan.dtype))
     c = plan.chunk
     for a in range(y0, y1, c):
         for b in range(x0, x1, c):
-            out[:, a - y0:min(a + c, y1) - y0, b - x0:min(b + c, x1) - x0] = \
-                render_block(plan, z, a, min(a + c, y1), b, min(b + c, x1))
+            a1, b1 = min(a + c, y1), min(b + c, x1)
+            kept = changed is not None and not any(bx0 < b1 and b < bx1 and by0 < a1 and a < by1
+                                                   for bx0, by0, bx1, by1 in changed)
+            out[:, a - y0:a1 - y0, b - x0:b1 - x0] = (np.asarray(target[z:z + 1, a:a1, b:b1]) if kept
+                                                      else render_block(plan, z, a, a1, b, b1))
     write_block(target, z, y0, x0, out)
     return None if reducer is None else reduce2x2(out, reducer)
 

@@ -182,9 +182,7 @@ def merge_pair_parts(job: MergeJob) -> list[dict]:
     Holds the blocks of its pairs only (``pairs x probe_blocks`` numbers), never a plane's pixels.
     The part files are removed once the pairs are stored.
     """
-    from .reuse import stored_measurement
-
-    from .reuse import pair_arrays, stored_pair
+    from .reuse import pair_arrays, stored_measurement, stored_pair
 
     n = len(job.pairs)
     shifts, ncc, beyond = np.full((n, job.blocks, 2), np.nan), np.full((n, job.blocks), np.nan), np.zeros((n, job.blocks), bool)

@@ -173,12 +173,13 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
     Notes
     -----
     Pass 1 correlates the two kept strips, each tapered and laid on a zero
-    canvas and binned by :func:`coarse_bin` (integer peak, search bounded
-    by ``search``). The strips are then re-cut at the overlap implied
-    by that estimate, so that both hold the same specimen area, and
-    correlated again; the residual shift is now small, where the Hann
-    window's bias is negligible. The peak ratio and NCC of the final pass
-    decide acceptance.
+    canvas and binned by :func:`coarse_bin` (search bounded by ``search``;
+    the binned peak refined to a quarter of a full-resolution pixel). The
+    strips are then re-cut at the overlap implied by that estimate, so that
+    both hold the same specimen area, and correlated again at full
+    resolution; the residual shift is now small (within a pixel, else the
+    strips are re-cut once more), where the Hann window's bias is
+    negligible. The peak ratio and NCC of the final pass decide acceptance.
     """
     nom = np.asarray(nominal, dtype=np.float64)
     search = float(search)
@@ -196,7 +197,6 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
     d = nom - b * np.array([sx, sy])
     if max(abs(sx), abs(sy)) >= limit / b - 1:
         return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "far_from_stage")
-    up = upsample
     for _ in range(4):
         di = np.round(d)
         x0, y0, x1, y1 = _true_box(di, size_a, size_b, ov)
@@ -204,7 +204,7 @@ def register_pair(strip_a: np.ndarray, strip_b: np.ndarray, ov: Overlap,
             return PairResult(float(d[0]), float(d[1]), 0.0, ratio, "small_overlap")
         box_b = (x0 - int(di[0]), y0 - int(di[1]), x1 - int(di[0]), y1 - int(di[1]))
         ca, cb = _cut(strip_a, ov.pad_a, (x0, y0, x1, y1)), _cut(strip_b, ov.pad_b, box_b)
-        (sx, sy), ratio = phase_correlate(ca, cb, upsample=up, max_shift=2 * b + 2, **spectral)
+        (sx, sy), ratio = phase_correlate(ca, cb, upsample=upsample, max_shift=2 * b + 2, **spectral)
         d = di - np.array([sx, sy])
         if max(abs(sx), abs(sy)) <= 1.0:
             break

@@ -80,10 +80,12 @@ class LevelReader:
         """Return chunk ``(row, col)`` of plane ``z`` (the full chunk, padded with the fill beyond the array)."""
         import google_crc32c
 
+        from ..render.shardfile import ABSENT
+
         shard = (z, row // self.per_shard[1], col // self.per_shard[2])
         index = self._shard_index(shard)
         entry = None if index is None else index[0, row % self.per_shard[1], col % self.per_shard[2]]
-        if entry is None or int(entry[0]) == 2 ** 64 - 1:
+        if entry is None or entry[0] == ABSENT:
             return np.full(self.chunk, self.fill, self.dtype)
         try:
             with open(self._path(shard), "rb") as fh:

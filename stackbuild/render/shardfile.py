@@ -24,7 +24,7 @@ import google_crc32c
 import numpy as np
 
 #: The sharding codec's marker of a chunk that is not stored (offset and length).
-_ABSENT = np.uint64(2 ** 64 - 1)
+ABSENT = np.uint64(2 ** 64 - 1)
 
 
 class ShardWriter:
@@ -52,7 +52,7 @@ class ShardWriter:
         outside the array are absent, an edge chunk is padded with the fill value, a chunk
         holding only the fill value is left out; with no chunk left the file is removed).
         """
-        index = np.full((*self.per_shard, 2), _ABSENT, dtype="<u8")
+        index = np.full((*self.per_shard, 2), ABSENT, dtype="<u8")
         parts, start = [], 0
         for coords in self.order:
             lo = [k * c for k, c in zip(coords, self.chunk)]

@@ -95,7 +95,7 @@ def stitch_section(tiles: list[TileEntry], settings: StitchSettings, section: in
     -----
     Tiles are streamed (:mod:`stackbuild.stitch.stream`): each is read once
     for the pairs (plus at most ``MAX_PROFILE_TILES`` once more for the
-    illumination profile), each pair is registered as soon as its second
+    illumination profile, fewer when they fit in ``KEEP_PROFILE_BYTES``), each pair is registered as soon as its second
     tile is read and its strips dropped, so a task's memory does not grow
     with the number of tiles in the section. When the registered pairs show
     stage errors reaching the outer half of the search, pairs lost to its
@@ -114,8 +114,9 @@ def stitch_section(tiles: list[TileEntry], settings: StitchSettings, section: in
     overlaps = find_overlaps(stage, sizes, settings.min_overlap, math.ceil(2 * settings.max_stage_error))
     order = reading_order(stage, sizes)
     cache: dict = {}
-    profile, sec_flags = sample_profile(tiles, order, settings, section, cache)
-    results, stats, lossy = stream_pairs(tiles, overlaps, order, profile, settings, section, cache)
+    kept: dict = {}
+    profile, sec_flags = sample_profile(tiles, order, settings, section, cache, kept)
+    results, stats, lossy = stream_pairs(tiles, overlaps, order, profile, settings, section, cache, kept)
     widened = widen_search(tiles, overlaps, results, profile, settings, section)
     flags = flag_tiles(stats, settings.blank_contrast_to_noise, settings.focus_min, settings.saturated_max)
     for f, name in zip(flags, lossy):

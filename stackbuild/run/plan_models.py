@@ -49,10 +49,11 @@ def stitch_kinds(shape: VolumeShape, cfg) -> list[Kind]:
 
     A task holds the strips of the pairs whose second tile is not read yet (tiles are read
     in bands along the longer side, so about one band of tiles plus one), one tile with its
-    float copies, the strips of the pair being registered, and the illumination thumbnails
-    of at most ``MAX_PROFILE_TILES`` tiles.
+    float copies, the strips of the pair being registered, the illumination thumbnails
+    of at most ``MAX_PROFILE_TILES`` tiles, and the raw tiles of those that fit in
+    ``KEEP_PROFILE_BYTES`` (not read again); the others are read twice.
     """
-    from ..stitch.stream import MAX_PROFILE_TILES
+    from ..stitch.stream import KEEP_PROFILE_BYTES, MAX_PROFILE_TILES
 
     st = cfg.stitch
     margin = math.ceil(2 * _get(st, "max_stage_error", 50.0))  # pairs are searched to twice the error
@@ -67,8 +68,10 @@ def stitch_kinds(shape: VolumeShape, cfg) -> list[Kind]:
         if _get(st, "illumination", True) else 0
     one_tile = th * tw * (b + 4)
     tile_mpx = shape.tiles_per_section * th * tw / MB
-    return [Kind("stitch.section", shape.imaged, pending + pairing + thumbs + one_tile, tile_mpx,
-                 reads=shape.tiles_per_section * shape.tile_bytes,
+    sampled = min(shape.tiles_per_section, MAX_PROFILE_TILES) if _get(st, "illumination", True) else 0
+    kept = min(sampled, KEEP_PROFILE_BYTES // max(1, shape.tile_bytes))
+    return [Kind("stitch.section", shape.imaged, pending + pairing + thumbs + one_tile + kept * shape.tile_bytes,
+                 tile_mpx, reads=(shape.tiles_per_section + sampled - kept) * shape.tile_bytes,
                  writes=shape.tiles_per_section * 600,
                  note="holds one band of pending overlap strips", items=shape.pairs_per_section),
             Kind("stitch.driver", 1, shape.tiles * 1000.0, shape.tiles, driver=True,

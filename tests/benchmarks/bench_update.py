@@ -3,6 +3,7 @@
     python tests/benchmarks/bench_update.py                 # 20 sections of 3 x 3 tiles of 384 px
     python tests/benchmarks/bench_update.py --sections 10 --kills
     python tests/benchmarks/bench_update.py --speed-only --baseline /tmp/old   # steps 1-2 with another tree too
+    python tests/benchmarks/bench_update.py --speed-only --repeat 3     # the update 3 times, its median run
 
 Measured side by side in one run, on one synthetic stack (``stackbuild.synth``, ground truth
 unused here):
@@ -21,8 +22,11 @@ unused here):
 5. with ``--kills``: the update killed in its align, channels and render steps, run again, and
    compared byte for byte with the uninterrupted update.
 
-With ``--baseline DIR`` steps 1-2 also run with the source tree DIR (its own build, then its
-update), before this tree's, and the two are printed side by side.
+With ``--baseline DIR`` steps 1-2 also run with the source tree DIR (its own build, before this
+tree's; then the two trees' updates alternate), and the two are printed side by side. With
+``--repeat N`` each tree's update runs N times, each on a fresh copy of its build, and the run of
+median wall time is the one reported (one update takes a few seconds, so on this shared machine a
+single run can be off by a second either way).
 
 Every child runs with stackbuild's byte code compiled once beforehand, as a package install has it
 (this environment sets PYTHONDONTWRITEBYTECODE and installs stackbuild editable, so otherwise every
@@ -221,15 +225,25 @@ def inset_memory(root: Path, base: Path, section: int, sides=(384, 960)) -> None
         shutil.rmtree(work, ignore_errors=True)
 
 
-def _build_and_update(root: Path, first: Path, again: Path, scale: list, env) -> tuple:
-    """Build ``first`` into ``root/build``, copy it to ``root/updated``, update that; return times, exit, plan."""
-    base, upd = root / "build", root / "updated"
-    for d in (base, upd):
-        shutil.rmtree(d, ignore_errors=True)
-    t_build, _ = _cli("build", first, "--out", base, *scale, env=env)
-    shutil.copytree(base, upd)
+def _build(root: Path, first: Path, scale: list, env) -> float:
+    """Build ``first`` into ``root/build`` (removed first); return the wall time."""
+    shutil.rmtree(root / "build", ignore_errors=True)
+    t_build, _ = _cli("build", first, "--out", root / "build", *scale, env=env)
+    return t_build
+
+
+def _update(root: Path, again: Path, env) -> tuple:
+    """Copy ``root/build`` to ``root/updated`` (afresh) and update that; return wall time, exit status, plan."""
+    upd = root / "updated"
+    shutil.rmtree(upd, ignore_errors=True)
+    shutil.copytree(root / "build", upd)
     t_update, status = _cli("update", upd, "--tiles", again, "--workers", "2", env=env)
-    return t_build, t_update, status, json.loads((upd / "updates" / "0001" / "plan.json").read_text())
+    return t_update, status, json.loads((upd / "updates" / "0001" / "plan.json").read_text())
+
+
+def _median_update(runs: list[tuple]) -> tuple:
+    """Return the run of median wall time (the lower middle one of an even count)."""
+    return sorted(runs, key=lambda r: r[0])[(len(runs) - 1) // 2]
 
 
 def _side_by_side(old: tuple, new: tuple, build: Path) -> None:
@@ -267,6 +281,9 @@ def main() -> None:
                          "tar -x -C DIR`), before this tree, and print both side by side")
     ap.add_argument("--speed-only", action="store_true",
                     help="only steps 1-2: the full build and the update side by side, and their ratio")
+    ap.add_argument("--repeat", type=int, default=1, metavar="N",
+                    help="run the update N times, each on a fresh copy of the build (alternating with the "
+                         "baseline's), and report the run of median wall time")
     ap.add_argument("--no-bytecode", action="store_true",
                     help="children compile stackbuild from source in every process, as this environment's "
                          "PYTHONDONTWRITEBYTECODE makes them (default: compiled once beforehand, as installed)")
@@ -297,13 +314,27 @@ def main() -> None:
         _keep_bytecode(root / "bytecode", [here] + ([Path(args.baseline).resolve()] if args.baseline else []))
     print("children: " + ("stackbuild compiled from source in each process (--no-bytecode)" if args.no_bytecode
                           else "stackbuild byte code compiled once beforehand, as a package install does"))
+    for d in (base, upd, root / "fresh", root / "appended"):
+        shutil.rmtree(d, ignore_errors=True)
+    env = None
     if args.baseline:
         env = {"PYTHONPATH": os.pathsep.join([str(Path(args.baseline).resolve()),
                                               *filter(None, [os.environ.get("PYTHONPATH")])])}
-        old = _build_and_update(root / "baseline", first, again, scale, env)
-    for d in (base, upd, root / "fresh", root / "appended"):
-        shutil.rmtree(d, ignore_errors=True)
-    t_build, t_update, status, plan = _build_and_update(root, first, again, scale, None)
+        t_build_old = _build(root / "baseline", first, scale, env)
+    t_build = _build(root, first, scale, None)
+    # The updates of the two trees alternate, so both meet the same load on this shared machine.
+    mine, theirs = [], []
+    for _ in range(max(1, args.repeat)):
+        if args.baseline:
+            theirs.append(_update(root / "baseline", again, env))
+        mine.append(_update(root, again, None))
+    t_update, status, plan = _median_update(mine)
+    if len(mine) > 1:
+        print("update wall times (s), in run order: this tree " + ", ".join(f"{r[0]:.2f}" for r in mine)
+              + ("; baseline " + ", ".join(f"{r[0]:.2f}" for r in theirs) if theirs else "")
+              + "; the median run is reported")
+    if args.baseline:
+        old = (t_build_old, *_median_update(theirs))
     before, after = _files(base / "volume.zarr" / "em"), _files(upd / "volume.zarr" / "em")
     changed = {k for k in before.keys() | after.keys() if before.get(k) != after.get(k)}
     planes = sorted({int(k.split(os.sep)[2]) for k in changed})

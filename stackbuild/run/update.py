@@ -243,7 +243,8 @@ def _changed_regions(build: BuildFolder, plan: UpdatePlan) -> dict | None:
     if before is None or not render.get("shards") or done.get("full", True) or any(render["canvas_facts"]["grew"]):
         return None
     width, height = render["canvas"]["width"], render["canvas"]["height"]
-    block = build.config.render.chunk * build.config.render.shard
+    settings = build.config.render  # read from build.json at each access
+    block = settings.chunk * settings.shard
     pixels = render.get("pixels") or {}
     return {int(z): {"before": before.get(z),
                      "boxes": pixels[z] if z in pixels else [[j * block, i * block, min((j + 1) * block, width),

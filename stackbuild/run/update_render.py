@@ -33,9 +33,10 @@ def predicted_shards(build: BuildFolder, new: TileManifest, changed: dict, added
 
     if canvas is None:
         return {}
-    settings = build.config.render
+    config = build.config  # read from build.json at each access
+    settings = config.render
     block = settings.chunk * settings.shard
-    margin = float(getattr(build.config.stitch, "max_stage_error", 50.0))
+    margin = float(getattr(config.stitch, "max_stage_error", 50.0))
     store = build.store
     out: dict[str, list] = {}
     for key, names in changed.items():
@@ -85,7 +86,7 @@ def dirty_shards(build: BuildFolder, plan: UpdatePlan) -> tuple[Canvas, dict, di
         names = plan.replaced.get(str(s), [])
         boxes, whole = changed_boxes(old, new)
         core = list(boxes) if whole else _changed_tiles(old, new, names)
-        boxes += _replaced_boxes(store, s, names)
+        boxes += _replaced_boxes(new, names)
         shards = level0_shards(boxes, canvas, block)
         if shards:
             dirty[str(s - canvas.first_section)] = pack_shards(shards)
@@ -182,15 +183,16 @@ def _settled_canvas(build: BuildFolder, plan: UpdatePlan, changed: dict, shard: 
     return settle_canvas(previous, fresh, shard=shard, chunk=chunk)
 
 
-def _replaced_boxes(store: TransformStore, section: int, names: list[str]) -> list:
+def _replaced_boxes(records: tuple, names: list[str]) -> list:
     """Return the aligned-frame footprints of replaced tiles and of the tiles they overlap.
 
-    A tile imaged again in place (same path, same placement) leaves its records as they were,
-    so the record comparison finds nothing; its pixels changed all the same.
+    ``records`` is the section's current ``(stitch, alignment)``. A tile imaged again in place
+    (same path, same placement) leaves its records as they were, so the record comparison finds
+    nothing; its pixels changed all the same.
     """
     from ..render.dirty import tile_neighbourhood
 
-    return tile_neighbourhood(store.load_stitch(section), store.load_alignment(section), names)
+    return tile_neighbourhood(*records, names)
 
 
 def _untouched(before: TransformStore, store: TransformStore, section: int) -> bool:

@@ -51,3 +51,40 @@ def test_a_damaged_chunk_is_named(tmp_path):
     reader = LevelReader.of(arr, "volume.zarr/em/0")
     with pytest.raises(InputError, match=rf"volume.zarr/em/0: chunk \(plane {z}, row {2 * sy}, col {2 * sx}\)"):
         reader.read(z, 2 * sy, 2 * sx)
+
+
+@pytest.mark.parametrize("cname", ["zstd", "lz4", "blosclz"])
+@pytest.mark.parametrize("dtype,shuffle", [("uint8", 0), ("uint8", 1), ("uint16", 0), ("uint16", 2)])
+def test_rows_decoded_block_by_block_equal_numcodecs_decode_of_the_whole_stream(cname, dtype, shuffle):
+    from numcodecs import Blosc
+
+    from stackbuild.qc.bloscrows import LazyChunk
+
+    rng = np.random.default_rng(7)
+    shape = (96, 80)
+    smooth = (np.add.outer(np.arange(96), np.arange(80)) * 3 % 251).astype(dtype)
+    noise = rng.integers(0, np.iinfo(dtype).max, size=shape, endpoint=True).astype(dtype)  # blocks that do not compress
+    data = np.where((np.arange(96) // 24 % 2 == 1)[:, None], noise, smooth)
+    codec = Blosc(cname=cname, clevel=1, shuffle=shuffle, blocksize=2048)
+    stream = codec.encode(data)
+    want = np.frombuffer(codec.decode(stream), dtype).reshape(shape)  # numcodecs' decode is the reference
+    for r0, r1 in [(0, 1), (30, 31), (10, 70), (95, 96), (0, 96)]:
+        chunk = LazyChunk(stream, shape, dtype, codec.decode)
+        np.testing.assert_array_equal(chunk.rows(r0, r1)[r0:r1], want[r0:r1])
+    partial = LazyChunk(stream, shape, dtype, codec.decode)
+    partial.rows(40, 41)
+    if dtype == "uint8" and cname != "blosclz":  # plain frames: only the block under row 40 is decoded
+        assert partial.decoded_blocks == 1
+
+
+def test_a_lazy_window_equals_the_window_read_whole_and_finds_data_as_it_does(tmp_path):
+    arr, data = _array(tmp_path, "uint8")
+    reader = LevelReader.of(arr, "level")
+    for z, y0, y1, x0, x1 in [(0, 10, 190, 20, 220), (1, 130, 200, 130, 230), (1, 100, 200, 100, 230)]:
+        keys = reader.chunks_under(np.array([[y0, y1, x0, x1]]))
+        whole = ChunkKeeper(1 << 30).window(reader, 0, z, y0, y1, x0, x1, keys)
+        lazy = ChunkKeeper(1 << 30).lazy_window(reader, 0, z, y0, y1, x0, x1, keys)
+        assert lazy.any_data() == bool(whole.any())
+        lazy.fill(5, 20, 7, 40)
+        np.testing.assert_array_equal(lazy.array[5:20, 7:40], whole[5:20, 7:40])
+        np.testing.assert_array_equal(lazy.fill_all(), arr[z, y0:y1, x0:x1])  # zarr-python's read is the reference

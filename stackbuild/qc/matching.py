@@ -42,12 +42,21 @@ class _Window:
     With ``masked`` (a function of raw pixels giving their data mask, :func:`data_mask`) the mask is
     made only where blocks are cut, each block's part with 4 px around it: the 5 x 5 opening of
     :func:`data_mask` reaches 4 px, so this is the window's mask exactly, at a fraction of the
-    pixels (the probe's blocks cover about a seventh of a window).
+    pixels (the probe's blocks cover about a seventh of a window). ``raw`` may be a
+    :class:`~stackbuild.qc.levelread.LazyWindow`: its pixels are then decoded where blocks are cut.
     """
 
-    def __init__(self, raw: np.ndarray, valid: np.ndarray | None = None, masked=None):
-        self.raw = raw
+    def __init__(self, raw, valid: np.ndarray | None = None, masked=None):
+        self._lazy = raw if hasattr(raw, "fill_all") else None
+        self._raw = raw.array if self._lazy is not None else raw
         self._valid, self._masked = valid, masked
+
+    @property
+    def raw(self) -> np.ndarray:
+        """Return the whole window's pixels (every one decoded)."""
+        if self._lazy is not None:
+            self._lazy.fill_all()
+        return self._raw
 
     @property
     def valid(self) -> np.ndarray:
@@ -59,25 +68,32 @@ class _Window:
     def any_data(self) -> bool:
         """Return whether the window holds any data (a non-zero pixel always survives the mask's opening)."""
         if self._valid is None and self._masked is not None:
-            return bool(self.raw.any())
+            return self._lazy.any_data() if self._lazy is not None else bool(self._raw.any())
         return bool(self.valid.any())
+
+    def release(self) -> None:
+        """Let go of what a lazy window holds to decode more of itself (its chunks); later cuts read them again."""
+        if self._lazy is not None:
+            self._lazy.release()
 
     def _mask(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
         if self._valid is not None or self._masked is None:
             return self.valid[y0:y1, x0:x1]
-        h, w = self.raw.shape
+        h, w = self._raw.shape
         a0, b0, a1, b1 = max(0, y0 - 4), max(0, x0 - 4), min(h, y1 + 4), min(w, x1 + 4)
-        return self._masked(self.raw[a0:a1, b0:b1])[y0 - a0:y1 - a0, x0 - b0:x1 - b0]
+        return self._masked(self._raw[a0:a1, b0:b1])[y0 - a0:y1 - a0, x0 - b0:x1 - b0]
 
     def cut(self, centres: np.ndarray, r: int) -> np.ndarray:
         """Return ``(N, 2r+1, 2r+1)`` blocks around integer ``(x, y)`` centres; NaN outside the window or its data."""
-        h, w = self.raw.shape
+        h, w = self._raw.shape
         out = np.full((len(centres), 2 * r + 1, 2 * r + 1), np.nan, np.float32)
         for k, (x, y) in enumerate(np.asarray(centres, int)):
             x0, y0, x1, y1 = max(0, x - r), max(0, y - r), min(w, x + r + 1), min(h, y + r + 1)
             if x1 > x0 and y1 > y0:
+                if self._lazy is not None:  # the block and the 4 px its data mask looks at
+                    self._lazy.fill(y0 - 4, y1 + 4, x0 - 4, x1 + 4)
                 dst = out[k, y0 - (y - r):y1 - (y - r), x0 - (x - r):x1 - (x - r)]
-                np.copyto(dst, self.raw[y0:y1, x0:x1], where=self._mask(y0, y1, x0, x1), casting="unsafe")
+                np.copyto(dst, self._raw[y0:y1, x0:x1], where=self._mask(y0, y1, x0, x1), casting="unsafe")
         return out
 
 

@@ -10,8 +10,8 @@ summaries only). It reads the planes one region window at a time
 (``region_size`` level-0 px plus a margin, in the stored dtype with its data
 mask: at the defaults about 2.4k x 2.4k x 2 B = 11 MB per window, at most
 ``probe_spans + 1`` windows held, whatever the section's size; the chunks under a
-window's blocks are read straight from the shard files and kept for the task's later
-windows within 64 MB, :mod:`stackbuild.qc.levelread`), cuts the
+window's blocks are read straight from the shard files, decoded only under the rows blocks
+are cut from, and kept for the task's later windows within 16 MB, :mod:`stackbuild.qc.levelread`), cuts the
 blocks of the probe's grid that fall in the region, and matches every block of
 a pair in one batched call of the project's sub-pixel estimator
 (:func:`stackbuild.align.blockmatch.match_block_pairs`): first on 4x reduced
@@ -249,6 +249,7 @@ def _measure_regions(job: PairJob, source: PlaneSource, pts, region, regions, sh
             data = win.any_data()
             held[z] = (win, corner, PlaneBlocks(win, here, plan) if data else None,
                        PlaneBlocks(small, np.rint(here / COARSE).astype(int), cplan) if data and reduce else None)
+            win.release()  # its blocks are cut: the window keeps the rows it copied, not its chunks
             for k, (a, b) in enumerate(job.pairs):
                 if b != z or a not in held or not need[k, sel].any():
                     continue

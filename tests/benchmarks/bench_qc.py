@@ -27,7 +27,10 @@
                  While others have uncommitted changes in the working tree, run the bench with
                  ``PYTHONPATH=<archive of HEAD>`` so that the render and the new report are the
                  committed code (reports run with cwd ``/``, so PYTHONPATH wins over the editable
-                 install).
+                 install). Each side's full report runs ``--repeat`` times (3), alternating, and the
+                 medians are printed; every child runs from a copy of its tree with compiled byte
+                 code, as installed (``--no-bytecode``: compiled from source in each process, as
+                 this environment's PYTHONDONTWRITEBYTECODE makes it).
 ``--json-size``  metrics.json of 400 sections x 1000 tiles, from a real document's
                  per-section rows (tiles and pairs go to CSV only).
 ``--one-plane``  on the standard seed-0 agreement build: a full report, a re-report with nothing changed, and
@@ -80,11 +83,15 @@ def bench_matcher() -> None:
           f"{len(pts) / t_ref:.0f} blocks/s, RMS error {np.sqrt(((np.array(ref) - true) ** 2).sum(1).mean()):.3f} px")
 
 
-def _run(cmd: list[str]) -> tuple[float, float, int]:
-    """Run a command in a child; return wall s, CPU s (user + sys of it and its children) and peak RSS (kB)."""
+def _run(cmd: list[str], path: str | None = None) -> tuple[float, float, int]:
+    """Run a command in a child (``path`` first on PYTHONPATH); return wall s, CPU s (user + sys of it and its
+    children) and peak RSS (kB)."""
+    import os
+
+    env = dict(os.environ, **({"PYTHONPATH": path} if path else {}))
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
-    proc = subprocess.run(cmd, capture_output=True, text=True)
+    proc = subprocess.run(cmd, capture_output=True, text=True, env=env, cwd="/" if path else None)
     wall = time.perf_counter() - t0
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     if proc.returncode not in (0, 3):
@@ -155,46 +162,79 @@ def _restore_plane(out: Path, z: int, fp: str) -> None:
     write_plane_record(group, rec["stamp"], {**rec["fingerprints"], str(z): fp}, rec["damaged"])
 
 
-def bench_memory(work: Path, sections: int, baseline: str | None) -> None:
+def compiled_copy(tree: Path, dest: Path) -> str:
+    """Copy ``tree/stackbuild`` to ``dest`` with its byte code compiled, as an installed package has it; return ``dest``.
+
+    This environment sets PYTHONDONTWRITEBYTECODE and installs stackbuild editable, so a child
+    otherwise compiles every stackbuild module it imports from source, every time (libraries in
+    site-packages have their byte code from pip). The copy is also what the children measure,
+    whatever is edited in the working tree while the bench runs.
+    """
+    import shutil
+
+    shutil.rmtree(dest, ignore_errors=True)
+    shutil.copytree(tree / "stackbuild", dest / "stackbuild", ignore=shutil.ignore_patterns("__pycache__"))
+    subprocess.run([sys.executable, "-m", "compileall", "-q", "-j", "0", str(dest / "stackbuild")], check=True,
+                   stdout=subprocess.DEVNULL)
+    return str(dest)
+
+
+def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 3, bytecode: bool = True) -> None:
     """Report peak RSS and CPU at 3 x 3 and 7 x 7 tiles of 1024 px, beside render CPU on the same volume.
 
     Each in its own process, one after the other: the render (``stackbuild render --overwrite``,
     one worker: its CLI process and worker processes), the report measuring everything
-    (``reuse=False``; process CPU, imports included), the baseline's report when asked, a
-    second report that re-uses every stored measurement (nothing changed), and a re-report
-    after one plane's render fingerprint changed (what a re-report after an update of one
-    plane measures).
+    (``reuse=False``; process CPU, imports included; ``repeat`` times, alternating with the
+    baseline's report when asked, medians printed: one report takes a few seconds, and on this
+    shared machine one run can be off by half a second), a second report that re-uses every stored
+    measurement (nothing changed), and a re-report after one plane's render fingerprint changed
+    (what a re-report after an update of one plane measures). With ``bytecode`` every child runs
+    from a compiled copy of its tree (:func:`compiled_copy`).
     """
     from stackbuild.synth.variants import variant_params
 
+    here = Path(__file__).resolve().parents[2]
+    mine = compiled_copy(here, work / "trees" / "this") if bytecode else None
+    if baseline and bytecode:
+        baseline = compiled_copy(Path(baseline), work / "trees" / "baseline")
+    print("children: " + ("compiled copies of the trees (as installed)" if bytecode else
+                          "stackbuild compiled from source in each process (--no-bytecode)"), flush=True)
     rows = []
     for grid in (3, 7):
         out = _build(work / f"mem{grid}", variant_params("standard", "base", 0, sections=sections,
                                                          grid=(grid, grid), tile_size=1024))
-        _, cpu_render, _ = _run(["stackbuild", "render", str(out), "--overwrite", "--workers", "1", "--quiet"])
+        _report(out, "reuse", mine)  # untimed: files and libraries in the page cache for both sides
+        _, cpu_render, _ = _run(["stackbuild", "render", str(out), "--overwrite", "--workers", "1", "--quiet"], mine)
         z = sections // 2
-        base = base_one = None
-        if baseline:  # the baseline's full report, then its own re-report after one plane changed
-            base = _report(out, "measure", baseline)
+        runs, base_runs = [], []
+        for _ in range(max(1, repeat)):
+            if baseline:
+                base_runs.append(_report(out, "measure", baseline))
+            runs.append(_report(out, "measure", mine))
+        base_one = None
+        if baseline:  # the baseline's re-report after one plane changed
             old = _touch_plane(out, z)
             try:
                 base_one = _report(out, "reuse", baseline)
             finally:
                 _restore_plane(out, z, old)
-        cpu, own, rss, _ = _report(out, "measure")
-        again, _, _, _ = _report(out, "reuse")
+            _report(out, "measure", mine)
+        cpu, own, rss = (float(np.median([r[i] for r in runs])) for i in range(3))
+        again, _, _, _ = _report(out, "reuse", mine)
         old = _touch_plane(out, z)
         try:
-            one, _, _, reused = _report(out, "reuse")
+            one, _, _, reused = _report(out, "reuse", mine)
         finally:
             _restore_plane(out, z, old)
         rows.append((grid, rss / 1024))
         line = (f"{grid} x {grid} tiles of 1024 px, {sections} sections: render CPU {cpu_render:.1f} s; report CPU "
-                f"{cpu:.1f} s (imports included; {own:.1f} s in run_report), ratio report/render "
-                f"{cpu / cpu_render:.2f} (bar <= 0.25), peak {rss / 1024:.0f} MB")
-        if base:
-            line += (f"; baseline report CPU {base[0]:.1f} s, ratio {base[0] / cpu_render:.2f}, "
-                     f"peak {base[2] / 1024:.0f} MB")
+                f"{cpu:.2f} s (median of {len(runs)}: {' '.join(f'{r[0]:.2f}' for r in runs)}; imports included; "
+                f"{own:.2f} s in run_report), ratio report/render {cpu / cpu_render:.3f} (bar <= 0.25), "
+                f"peak {rss / 1024:.0f} MB")
+        if base_runs:
+            b_cpu, b_rss = float(np.median([r[0] for r in base_runs])), float(np.median([r[2] for r in base_runs]))
+            line += (f"; baseline report CPU {b_cpu:.2f} s ({' '.join(f'{r[0]:.2f}' for r in base_runs)}), ratio "
+                     f"{b_cpu / cpu_render:.3f}, peak {b_rss / 1024:.0f} MB")
         print(line, flush=True)
         print(f"   re-report, nothing changed: {again:.1f} s; one plane (z {z}) changed: {one:.1f} s "
               f"({one / cpu:.2f} of the full report), stored measurements re-used / measured: {reused}"
@@ -342,6 +382,10 @@ def main() -> None:
     ap.add_argument("--seeds", type=int, default=3)
     ap.add_argument("--work", default="/tmp/bench_qc")
     ap.add_argument("--baseline", default=None, help="folder holding an older stackbuild package to report beside")
+    ap.add_argument("--repeat", type=int, default=3, help="full reports per tree in --memory (medians printed)")
+    ap.add_argument("--no-bytecode", action="store_true",
+                    help="--memory children compile stackbuild from source in each process, as "
+                         "PYTHONDONTWRITEBYTECODE makes them (default: compiled copies of the trees, as installed)")
     args = ap.parse_args()
     work = Path(args.work)
     work.mkdir(parents=True, exist_ok=True)
@@ -350,7 +394,7 @@ def main() -> None:
         cases = AGREEMENT_CASES if not args.variants else tuple(tuple(v.split("/")) for v in args.variants)
         bench_agreement(work, args.sections, args.seeds, cases, args.baseline)
     if args.memory:
-        bench_memory(work, 4, args.baseline)
+        bench_memory(work, 4, args.baseline, args.repeat, not args.no_bytecode)
     if args.one_plane:
         bench_one_plane(work)
     if args.json_size:

@@ -6,6 +6,7 @@ adjacent planes of the aligned volume, or the two sides of a tile seam.
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import cv2
@@ -166,5 +167,8 @@ def summarize(values: np.ndarray) -> dict:
     v = np.asarray(values, np.float64)
     if v.size == 0:
         return {"n": 0, "rms": None, "median": None, "p95": None, "max": None}
+    if v.size == 1:  # a pair measured from the stitcher's offset (one point): every figure is that value
+        x = float(v.reshape(-1)[0])
+        return {"n": 1, "rms": math.sqrt(x * x), "median": x, "p95": x, "max": x}
     return {"n": int(v.size), "rms": float(np.sqrt(np.mean(v ** 2))), "median": float(np.median(v)),
             "p95": float(np.percentile(v, 95)), "max": float(v.max())}

@@ -100,7 +100,9 @@ def stitch_rows(section, stitch, seams, align, loc: Locator):
             row[k] = getattr(p, k) if p else None
         row["stitch_residual"] = p.residual if p else None
         if len(sb.blocks.ncc):
-            vec, centre = np.median(sb.blocks.shifts, axis=0), sb.blocks.points.mean(axis=0)
+            one = len(sb.blocks.ncc) == 1  # a pair measured from the stitcher's offset: its one point
+            vec = sb.blocks.shifts[0] if one else np.median(sb.blocks.shifts, axis=0)
+            centre = sb.blocks.points[0] if one else sb.blocks.points.mean(axis=0)
             row["misfit"] = [float(vec[0]), float(vec[1])]
             row["residual"] = float(np.hypot(*vec))
             todo.append((row, "at", centre))

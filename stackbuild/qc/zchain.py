@@ -114,46 +114,58 @@ def _chain(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray):
 
 
 def _robust_slow(z: np.ndarray, u: np.ndarray, window: int, noise: float, rounds: int = 3):
-    """Return the slow part of one block's track, each plane's own weight ``h`` in its fit, and its gain.
+    """Return the slow part of blocks' tracks, each plane's own weight ``h`` in its fit, and its gain.
 
-    The gain is the expected ``|u - slow|^2`` of a plane under white jitter of unit variance.
+    ``u`` is ``(Z, 2)`` (one block) or ``(Z, B, 2)`` (blocks side by side, each fitted on its own:
+    the planes are the loop, the blocks are vectorised). The gain is the expected ``|u - slow|^2``
+    of a plane under white jitter of unit variance.
     """
-    n = len(z)
-    ok = np.isfinite(u[:, 0])
-    rob = np.ones(n)
-    slow = np.full_like(u, np.nan)
-    hat = np.full(n, np.nan)
-    gain = np.full(n, np.nan)
+    one = u.ndim == 2
+    u = u[:, None, :] if one else u
+    n, nb = u.shape[:2]
+    ok = np.isfinite(u[..., 0])                       # (Z, B)
+    u0 = np.where(ok[..., None], u, 0.0)
+    rob = np.ones((n, nb))
+    slow = np.full_like(u, np.nan, dtype=float)
+    hat = np.full((n, nb), np.nan)
+    gain = np.full((n, nb), np.nan)
     half = max(1, window // 2)
+    active = np.ones(nb, bool)                        # blocks still iterating (a block stops as the loop did)
     for _ in range(rounds):
-        for i in np.flatnonzero(ok):
-            near = ok & (np.abs(z - z[i]) <= half)
-            t = (z[near] - z[i]).astype(float)
+        for i in range(n):
+            fit = ok[i] & active
+            if not fit.any():
+                continue
+            t = (z - z[i]).astype(float)[:, None]     # (Z, 1)
             # equal weights in the window: on a stack no longer than the window this is the straight
             # line over all planes, as the identifiable residual removes it (tricube weights would let
             # end planes pull their own fit)
-            w = rob[near].copy()
-            s0, s1, s2 = w.sum(), (w * t).sum(), (w * t * t).sum()
+            w = np.where(ok & (np.abs(t) <= half), rob, 0.0)[:, fit]
+            s0, s1, s2 = w.sum(axis=0), (w * t).sum(axis=0), (w * t * t).sum(axis=0)
             det = s0 * s2 - s1 * s1
-            if s0 <= 0:
-                continue
-            if det <= 1e-9 * max(s0 * s2, 1e-12):          # a single plane or one side only: a constant
-                coef = w / s0
-            else:
-                coef = w * (s2 - s1 * t) / det              # local line evaluated at t = 0
-            slow[i] = coef @ u[near]
-            own = coef[np.flatnonzero(np.flatnonzero(near) == i)[0]]
-            hat[i] = own
+            flat = det <= 1e-9 * np.maximum(s0 * s2, 1e-12)   # a single plane or one side only: a constant
+            with np.errstate(divide="ignore", invalid="ignore"):
+                coef = np.where(flat, w / s0, w * (s2 - s1 * t) / np.where(flat, 1.0, det))  # line at t = 0
+            fit_b = np.flatnonzero(fit)[s0 > 0]
+            coef = coef[:, s0 > 0]
+            slow[i, fit_b] = np.einsum("zb,zbc->bc", coef, u0[:, fit_b])
+            own = coef[i]
+            hat[i, fit_b] = own
             # white jitter of variance 1 leaves (1 - own)^2 + sum of the others' squared weights in
             # u - slow: 1 - h for a plain fit, more than 1 where the robust fit left the plane out
-            gain[i] = 1.0 - 2.0 * own + float((coef ** 2).sum())
-        res = np.hypot(*(u - slow).T)
+            gain[i, fit_b] = 1.0 - 2.0 * own + (coef ** 2).sum(axis=0)
+        res = np.hypot(*np.moveaxis(u - slow, -1, 0))   # (Z, B)
         good = np.isfinite(res)
-        if good.sum() < 3:
+        stop = active & (good.sum(axis=0) < 3)
+        active &= ~stop
+        if not active.any():
             break
-        scale = max(6.0 * float(np.median(res[good])), 3.0 * noise, 1e-6)   # bisquare, as Cleveland 1979
-        rob = np.where(good, np.clip(1 - (res / scale) ** 2, 0, 1) ** 2, 0.0)
-        rob = np.maximum(rob, 1e-3)
+        med = np.array([np.median(res[good[:, k], k]) if active[k] else 0.0 for k in range(nb)])
+        scale = np.maximum(np.maximum(6.0 * med, 3.0 * noise), 1e-6)  # bisquare, as Cleveland 1979
+        new = np.maximum(np.where(good, np.clip(1 - (res / scale) ** 2, 0, 1) ** 2, 0.0), 1e-3)
+        rob[:, active] = new[:, active]
+    if one:
+        return slow[:, 0], hat[:, 0], gain[:, 0]
     return slow, hat, gain
 
 
@@ -228,11 +240,12 @@ def block_jitter(z: np.ndarray, a: np.ndarray, b: np.ndarray, shifts: np.ndarray
     noise_var = np.full((nz, nb), np.nan)
     shrink = np.full((nz, nb), np.nan)
     whole = _stack_leverage(z, z if stack is None else np.asarray(stack, float))
-    for k in range(nb):
-        slow, hat, gain = _robust_slow(z, tracks[k], window, noise)
-        jitter[:, k] = tracks[k] - slow
-        shrink[:, k] = np.clip(gain / (1.0 - whole), 0.05, 4.0)
-        noise_var[:, k] = 2.0 * noise ** 2 * variances[k] * (1.0 - whole)
+    if nb:
+        u = np.stack(tracks, axis=1)                  # (Z, B, 2)
+        slow, hat, gain = _robust_slow(z, u, window, noise)
+        jitter[:] = u - slow
+        shrink[:] = np.clip(gain / (1.0 - whole)[:, None], 0.05, 4.0)
+        noise_var[:] = 2.0 * noise ** 2 * np.stack(variances, axis=1) * (1.0 - whole)[:, None]
     return Jitter(jitter, noise_var, shrink, sigma)
 
 

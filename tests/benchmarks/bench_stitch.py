@@ -14,12 +14,15 @@ against the known offsets.
     python tests/benchmarks/bench_stitch.py --grid 3 --tile 1024
     python tests/benchmarks/bench_stitch.py --memory   # peak RSS of a stitch task, 3x3 vs 7x7 tiles of 1024 px
     python tests/benchmarks/bench_stitch.py --accuracy --baseline /tmp/old  # vs truth, beside another source tree
+    python tests/benchmarks/bench_stitch.py --accuracy --narrow --seeds 11,12  # small overlaps, large stage error
 
 ``--accuracy`` stitches every section of the named synthetic stacks of both
 families (``standard``, ``realistic``; variants ``base`` and ``bits12``, one blank
 tile in section 1; seeds 0-2 unless ``--seeds``) and prints each section's
 placement error against the synthetic truth (non-blank tiles, common translation
-removed) and its stitch CPU time. With ``--baseline DIR`` (a source tree of
+removed) and its stitch CPU time. ``--narrow`` stitches instead realistic 12-bit stacks
+(one blank tile) with small overlaps and large stage errors (``NARROW_CASES``: 5 % at
++-20 px, 6 % at +-30 px, 8 % at +-40 px of 512 px tiles). With ``--baseline DIR`` (a source tree of
 another commit, e.g. ``git archive COMMIT stackbuild | tar -x -C DIR``) the same
 sections are stitched by that code in a child process, the two runs alternating
 case by case, and printed side by side.
@@ -190,15 +193,26 @@ def memory(tile: int, grids=(3, 7)) -> None:
 
 
 ACCURACY_CASES = [(f, v) for f in ("standard", "realistic") for v in ("base", "bits12")]
+#: ``--narrow``: (overlap fraction, stage jitter +- px) of realistic 12-bit stacks of 512 px tiles.
+NARROW_CASES = [(0.05, 20.0), (0.06, 30.0), (0.08, 40.0)]
 
 
-def _accuracy_stack(data: Path, family: str, variant: str, seed: int) -> Path:
-    """Return the folder of one named stack (2 sections, a blank tile in section 1), synthesising it once."""
+def _accuracy_stack(data: Path, family: str, variant: str, seed: int, narrow: tuple | None = None) -> Path:
+    """Return the folder of one named stack (2 sections, a blank tile in section 1), synthesising it once.
+
+    ``narrow`` is ``(overlap, jitter)`` to replace the variant's (see ``NARROW_CASES``).
+    """
+    import dataclasses
+
     from stackbuild.synth import generate
     from stackbuild.synth.variants import variant_params
-    folder = data / f"{family}-{variant}-{seed}"
+    name = f"{family}-{variant}-{seed}" + (f"-overlap{narrow[0]:g}-jitter{narrow[1]:g}" if narrow else "")
+    folder = data / name
     if not (folder / "tiles.csv").exists():
-        generate(folder, variant_params(family, variant, seed, sections=2, blank_tiles="1:r1c1"))
+        params = variant_params(family, variant, seed, sections=2, blank_tiles="1:r1c1")
+        if narrow:
+            params = dataclasses.replace(params, overlap=narrow[0], jitter=narrow[1])
+        generate(folder, params)
     return folder
 
 
@@ -231,18 +245,20 @@ def _baseline_rows(source: Path, folder: Path) -> list[dict]:
     return json.loads(out.splitlines()[-1])
 
 
-def accuracy(data: Path, seeds: list[int], baseline: Path | None) -> None:
+def accuracy(data: Path, seeds: list[int], baseline: Path | None, narrow: bool = False) -> None:
     """Print placement errors against the truth per section, beside ``baseline``'s when given."""
-    head = f"{'stack':26s} {'sec':>3s} {'rms px':>7s} {'max px':>7s} {'acc/pairs':>9s} {'CPU s':>6s}"
+    cases = [("realistic", "bits12", n) for n in NARROW_CASES] if narrow else \
+        [(f, v, None) for f, v in ACCURACY_CASES]
+    head = f"{'stack':44s} {'sec':>3s} {'rms px':>7s} {'max px':>7s} {'acc/pairs':>9s} {'CPU s':>6s}"
     print(head + ("   | baseline: rms, max, acc/pairs, CPU s" if baseline else ""))
     tot = {"ours": [], "base": []}
-    for family, variant in ACCURACY_CASES:
+    for family, variant, cut in cases:
         for seed in seeds:
-            folder = _accuracy_stack(data, family, variant, seed)
+            folder = _accuracy_stack(data, family, variant, seed, cut)
             ours = accuracy_rows(folder)
             base = _baseline_rows(baseline, folder) if baseline else [None] * len(ours)
             for o, b in zip(ours, base):
-                line = (f"{folder.name:26s} {o['section']:3d} {o['rms']:7.3f} {o['max']:7.3f} "
+                line = (f"{folder.name:44s} {o['section']:3d} {o['rms']:7.3f} {o['max']:7.3f} "
                         f"{o['accepted']:4d}/{o['pairs']:<4d} {o['cpu']:6.2f}")
                 if b:
                     line += (f"   | {b['rms']:7.3f} {b['max']:7.3f} {b['accepted']:4d}/{b['pairs']:<4d} "
@@ -270,6 +286,8 @@ def main(argv=None) -> None:
                    help="peak RSS of a stitch task at 3x3 and 7x7 tiles of 1024 px, each in a fresh process")
     p.add_argument("--accuracy", action="store_true",
                    help="placement error vs the synthetic truth on both families (see the module docstring)")
+    p.add_argument("--narrow", action="store_true",
+                   help="with --accuracy: realistic 12-bit stacks with small overlaps and large stage errors")
     p.add_argument("--seeds", default="0,1,2", help="seeds of --accuracy (default 0,1,2)")
     p.add_argument("--data", type=Path, default=None, help="folder that keeps --accuracy's stacks between runs")
     p.add_argument("--baseline", type=Path, default=None, metavar="DIR",
@@ -284,10 +302,10 @@ def main(argv=None) -> None:
         seeds = [int(v) for v in args.seeds.split(",")]
         if args.data is not None:
             args.data.mkdir(parents=True, exist_ok=True)
-            accuracy(args.data, seeds, args.baseline)
+            accuracy(args.data, seeds, args.baseline, args.narrow)
         else:
             with tempfile.TemporaryDirectory() as tmp:
-                accuracy(Path(tmp), seeds, args.baseline)
+                accuracy(Path(tmp), seeds, args.baseline, args.narrow)
         return
     if args.memory:
         memory(1024 if args.tile == 2048 else args.tile)

@@ -290,8 +290,9 @@ class WindowReader:
     planes) windows are read through the array as before.
     """
 
-    def __init__(self, source, coarse, margin: int, coarse_factor: int, whole: bool, steps: list):
+    def __init__(self, source, coarse, margin: int, coarse_factor: int, whole: bool, steps: list, lazy: bool = True):
         self.source, self.coarse, self.margin, self.k, self.whole = source, coarse, margin, coarse_factor, whole
+        self.lazy = lazy
         written = source.origin == "volume.zarr" and source.bin == 1
         self.fine = LevelReader.of(source.data, f"volume.zarr level {source.level}") if written else None
         self.small = (LevelReader.of(coarse.data, f"volume.zarr level {coarse.level}")
@@ -328,11 +329,11 @@ class WindowReader:
         level) and its top-left ``(x, y)``.
 
         The window read by chunks of the written level is a :class:`LazyWindow` (its rows decoded
-        where blocks are cut) unless the whole window is needed (``whole``).
+        where blocks are cut) unless the whole window is needed (``whole``) or ``lazy`` is False.
         """
         s = self.steps[step]
         wy0, wy1, wx0, wx1 = s["win"]
-        if self.fine is not None and not self.whole:
+        if self.fine is not None and self.lazy and not self.whole:
             raw = self.keeper.lazy_window(self.fine, step, s["z"], wy0, wy1, wx0, wx1, s["fine"])
         elif self.fine is not None:
             raw = self.keeper.window(self.fine, step, s["z"], wy0, wy1, wx0, wx1, s["fine"])

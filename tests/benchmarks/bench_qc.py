@@ -179,7 +179,8 @@ def compiled_copy(tree: Path, dest: Path) -> str:
     return str(dest)
 
 
-def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 3, bytecode: bool = True) -> None:
+def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 3, bytecode: bool = True,
+                 this: str | None = None) -> None:
     """Report peak RSS and CPU at 3 x 3 and 7 x 7 tiles of 1024 px, beside render CPU on the same volume.
 
     Each in its own process, one after the other: the render (``stackbuild render --overwrite``,
@@ -193,8 +194,8 @@ def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 
     """
     from stackbuild.synth.variants import variant_params
 
-    here = Path(__file__).resolve().parents[2]
-    mine = compiled_copy(here, work / "trees" / "this") if bytecode else None
+    here = Path(this).resolve() if this else Path(__file__).resolve().parents[2]
+    mine = compiled_copy(here, work / "trees" / "this") if bytecode else this
     if baseline and bytecode:
         baseline = compiled_copy(Path(baseline), work / "trees" / "baseline")
     print("children: " + ("compiled copies of the trees (as installed)" if bytecode else
@@ -382,6 +383,9 @@ def main() -> None:
     ap.add_argument("--seeds", type=int, default=3)
     ap.add_argument("--work", default="/tmp/bench_qc")
     ap.add_argument("--baseline", default=None, help="folder holding an older stackbuild package to report beside")
+    ap.add_argument("--this", default=None,
+                    help="folder holding the stackbuild package measured as this tree in --memory (default: the "
+                         "repository's working tree; a `git archive HEAD stackbuild` leaves out others' edits)")
     ap.add_argument("--repeat", type=int, default=3, help="full reports per tree in --memory (medians printed)")
     ap.add_argument("--no-bytecode", action="store_true",
                     help="--memory children compile stackbuild from source in each process, as "
@@ -394,7 +398,7 @@ def main() -> None:
         cases = AGREEMENT_CASES if not args.variants else tuple(tuple(v.split("/")) for v in args.variants)
         bench_agreement(work, args.sections, args.seeds, cases, args.baseline)
     if args.memory:
-        bench_memory(work, 4, args.baseline, args.repeat, not args.no_bytecode)
+        bench_memory(work, 4, args.baseline, args.repeat, not args.no_bytecode, args.this)
     if args.one_plane:
         bench_one_plane(work)
     if args.json_size:

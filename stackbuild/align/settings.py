@@ -94,11 +94,9 @@ class AlignSettings:
         ``elastic_scale`` times this (blocks, search and regions the same in
         full-resolution pixels, a quarter of the pixels at 2); the last one
         measures at ``elastic_scale``. 1 = every round at ``elastic_scale``.
-        2 (with the coarse stage's 100 overview blocks) cut align CPU from
-        5.0 to 3.7 s on realistic/base and 4.3 to 3.6 s on standard/base
-        (side by side, one thread), at the same identifiable residual on 3
-        seeds of every realistic variant and standard/base (RMS at most
-        0.02 px higher on any case; realistic/long seed 1 0.99 -> 0.89).
+        2 cuts align CPU by about a fifth (realistic/base, one thread, median of 4 alternating runs: 4.54 -> 3.95 s) at the same
+        identifiable residual on seeds 0-2 of every realistic variant and
+        standard/base, and on the held-out seeds 7 and 8 of realistic/long.
     damaged_fraction : float
         A section whose share of trusted block matches (in the last elastic
         round) is below this fraction of the stack's median share is flagged

@@ -194,12 +194,7 @@ class ChunkKeeper:
     def window(self, reader: LevelReader, step: int, z: int, y0: int, y1: int, x0: int, x1: int,
                keys: set[tuple[int, int]]) -> np.ndarray:
         """Return rows ``y0:y1``, columns ``x0:x1`` of plane ``z`` holding chunks ``keys`` (the fill elsewhere)."""
-        out, parts = self._parts(reader, step, z, y0, y1, x0, x1, keys)
-        ch, cw = reader.chunk
-        for chunk, (_, r, c), a0, a1, b0, b1 in parts:
-            lo, hi = a0 + y0 - r * ch, a1 + y0 - r * ch
-            out[a0:a1, b0:b1] = reader.rows(chunk, (z, r, c), lo, hi)[lo:hi, b0 + x0 - c * cw:b1 + x0 - c * cw]
-        return out
+        return self.lazy_window(reader, step, z, y0, y1, x0, x1, keys).fill_all()
 
     def lazy_window(self, reader: LevelReader, step: int, z: int, y0: int, y1: int, x0: int, x1: int,
                     keys: set[tuple[int, int]]) -> "LazyWindow":

@@ -56,3 +56,21 @@ def test_file_identity_sees_new_content_with_size_and_time_kept_and_not_a_faithf
     shutil.copy2(path, copy)  # bytes and times kept: the same identity
     assert file_identity(copy) == file_identity(path)
     assert file_identity(tmp_path / "gone.tif") is None
+
+
+def test_file_identities_are_the_same_read_one_at_a_time_or_by_threads(tmp_path, monkeypatch):
+    """Fast storage reads identities one at a time, slow storage 16 at a time: the same list either way."""
+    from stackbuild.render import fingerprint as fpr
+
+    rng = np.random.default_rng(5)
+    paths = []
+    for k in range(9):
+        paths.append(tmp_path / f"t{k}.tif")
+        tifffile.imwrite(paths[-1], rng.integers(0, 255, (64 + 8 * k, 96), dtype=np.uint8))
+    paths.insert(4, tmp_path / "gone.tif")
+    expected = [fpr.file_identity(p) for p in paths]
+    monkeypatch.setattr(fpr, "SLOW_IDENTITY_S", 1e9)  # every file fast: one at a time
+    assert fpr.file_identities(iter(paths)) == expected
+    monkeypatch.setattr(fpr, "SLOW_IDENTITY_S", -1.0)  # every file slow: the rest by the thread pool
+    assert fpr.file_identities(iter(paths)) == expected
+    assert expected[4] is None and fpr.file_identities([]) == []

@@ -33,6 +33,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict
 from pathlib import Path
@@ -49,6 +50,11 @@ IDENTITY_END = 16384
 IDENTITY_BLOCK = 4096
 #: Blocks sampled between the two ends.
 IDENTITY_SAMPLES = 8
+#: Files read one at a time before :func:`file_identities` judges the storage, and the median time per file
+#: (s) over which it reads the rest 16 at a time (local disk: about 0.0002 s; a network round trip per read
+#: makes one 2-10 ms; rule of thumb, no source).
+IDENTITY_PROBE_FILES = 3
+SLOW_IDENTITY_S = 0.001
 #: Canvas fields that change pixels (flags and the physical scale do not).
 _CANVAS_KEYS = ("width", "height", "origin_x", "origin_y", "first_section", "dtype")
 #: Tile placement fields that change pixels.
@@ -124,12 +130,25 @@ def file_identity(path) -> list | None:
 
 
 def file_identities(paths) -> list:
-    """Return :func:`file_identity` of every path, 16 files at a time (a network file system's latency)."""
+    """Return :func:`file_identity` of every path: one at a time on fast storage, 16 at a time on slow storage.
+
+    The first :data:`IDENTITY_PROBE_FILES` are read one at a time; if the median of their times
+    exceeds :data:`SLOW_IDENTITY_S` (a network file system's latency), the rest are read by 16
+    threads. Measured on this project's local disk (25 tiles of 1024 px, page cache warm):
+    0.2 ms per file, 3.6-5.4 ms per section one at a time against 15-17 ms (and 3x the CPU)
+    for a 16-thread pool, which every report seam task and render fingerprint paid.
+    """
     paths = list(paths)
-    if len(paths) < 4:
-        return [file_identity(p) for p in paths]
-    with ThreadPoolExecutor(max_workers=16) as pool:
-        return list(pool.map(file_identity, paths))
+    out, took = [], []
+    for k, path in enumerate(paths):
+        if len(took) == IDENTITY_PROBE_FILES and len(paths) - k >= 4 and \
+                sorted(took)[len(took) // 2] > SLOW_IDENTITY_S:
+            with ThreadPoolExecutor(max_workers=16) as pool:
+                return out + list(pool.map(file_identity, paths[k:]))
+        t0 = time.perf_counter()
+        out.append(file_identity(path))
+        took.append(time.perf_counter() - t0)
+    return out
 
 
 def _record(store: TransformStore, kind: str, section: int) -> dict | None:

@@ -11,7 +11,8 @@ unused here):
 1. a full build of the first N sections (wall time, CLI, 2 workers);
 2. ``update`` replacing 2 tiles of the middle section (wall time; in-process, as any update of a few
    tiles runs, and without re-solving the section when its new pixels show the old content): the
-   ratio build / update, the
+   ratio build / update, the peak resident size of the largest process of each (build: the
+   command and its Dask scheduler and workers), the
    chunks rewritten of all chunks, that no chunk of another plane changed (bytes and mtime), and
    that the updated plane equals a render from scratch of the updated transforms (lazy renderer);
 3. a second full build of the merged manifest: where the re-imaged tiles' pixels land in the
@@ -43,8 +44,10 @@ import signal
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 import tifffile
@@ -69,16 +72,63 @@ def _keep_bytecode(cache: Path, trees: list[Path]) -> None:
                        env={**os.environ, **_CHILD_ENV}, check=True, stdout=subprocess.DEVNULL)
 
 
-def _cli(*args, env=None, check=True) -> tuple[float, int]:
+class Run(NamedTuple):
+    """One ``stackbuild`` command: wall time (s), exit status, peak resident size of its largest process (bytes)."""
+
+    seconds: float
+    status: int
+    peak: int
+
+
+def _hwm(pid: int) -> int:
+    """Return a live process's peak resident size so far (``VmHWM``, bytes; 0 once it is gone)."""
+    try:
+        with open(f"/proc/{pid}/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 0
+
+
+def _cli(*args, env=None, check=True) -> Run:
+    """Run ``stackbuild ARGS --quiet`` in a child process; return its :class:`Run`.
+
+    The peak is the largest ``VmHWM`` (a process's own lifetime peak) over the child and every
+    process it starts (Dask scheduler and workers), read every 0.1 s while they live, and the
+    child's own peak from ``wait4`` (which also covers the descendants it waited for), so a peak
+    reached just before a process exits is not missed.
+    """
+    import psutil
+
     t0 = time.perf_counter()
     # `python -m` puts the working directory first on sys.path: run from the tree given by PYTHONPATH.
     cwd = (env or {}).get("PYTHONPATH", "").split(os.pathsep)[0] or None
-    proc = subprocess.run([sys.executable, "-m", "stackbuild.cli", *map(str, args), "--quiet"],
-                          env={**os.environ, **_CHILD_ENV, **(env or {})}, start_new_session=True, cwd=cwd,
-                          stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    if check and proc.returncode not in (0, 3):
-        raise SystemExit(f"stackbuild {' '.join(map(str, args))} failed:\n{proc.stderr}")
-    return time.perf_counter() - t0, proc.returncode
+    with tempfile.TemporaryFile("w+") as err:
+        proc = subprocess.Popen([sys.executable, "-m", "stackbuild.cli", *map(str, args), "--quiet"],
+                                env={**os.environ, **_CHILD_ENV, **(env or {})}, start_new_session=True, cwd=cwd,
+                                stdout=subprocess.DEVNULL, stderr=err, text=True)
+        peak, done = [0], threading.Event()
+
+        def sample() -> None:
+            while not done.wait(0.1):
+                try:
+                    pids = [proc.pid] + [c.pid for c in psutil.Process(proc.pid).children(recursive=True)]
+                except psutil.NoSuchProcess:
+                    return
+                peak[0] = max([peak[0]] + [_hwm(pid) for pid in pids])
+        watcher = threading.Thread(target=sample, daemon=True)
+        watcher.start()
+        _, status, usage = os.wait4(proc.pid, 0)
+        seconds = time.perf_counter() - t0
+        done.set()
+        watcher.join()
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        if check and proc.returncode not in (0, 3):
+            err.seek(0)
+            raise SystemExit(f"stackbuild {' '.join(map(str, args))} failed:\n{err.read()}")
+    return Run(seconds, proc.returncode, max(peak[0], usage.ru_maxrss * 1024))
 
 
 def _files(em: Path) -> dict[str, tuple[str, int]]:
@@ -225,20 +275,19 @@ def inset_memory(root: Path, base: Path, section: int, sides=(384, 960)) -> None
         shutil.rmtree(work, ignore_errors=True)
 
 
-def _build(root: Path, first: Path, scale: list, env) -> float:
-    """Build ``first`` into ``root/build`` (removed first); return the wall time."""
+def _build(root: Path, first: Path, scale: list, env) -> Run:
+    """Build ``first`` into ``root/build`` (removed first); return its :class:`Run`."""
     shutil.rmtree(root / "build", ignore_errors=True)
-    t_build, _ = _cli("build", first, "--out", root / "build", *scale, env=env)
-    return t_build
+    return _cli("build", first, "--out", root / "build", *scale, env=env)
 
 
 def _update(root: Path, again: Path, env) -> tuple:
-    """Copy ``root/build`` to ``root/updated`` (afresh) and update that; return wall time, exit status, plan."""
+    """Copy ``root/build`` to ``root/updated`` (afresh) and update that; return wall time, exit status, plan, peak."""
     upd = root / "updated"
     shutil.rmtree(upd, ignore_errors=True)
     shutil.copytree(root / "build", upd)
-    t_update, status = _cli("update", upd, "--tiles", again, "--workers", "2", env=env)
-    return t_update, status, json.loads((upd / "updates" / "0001" / "plan.json").read_text())
+    run = _cli("update", upd, "--tiles", again, "--workers", "2", env=env)
+    return run.seconds, run.status, json.loads((upd / "updates" / "0001" / "plan.json").read_text()), run.peak
 
 
 def _median_update(runs: list[tuple]) -> tuple:
@@ -255,7 +304,7 @@ def _side_by_side(old: tuple, new: tuple, build: Path) -> None:
     for k in steps:
         rows.append((f"  update step {k}", old[3]["facts"]["seconds"].get(k, 0.0),
                      new[3]["facts"]["seconds"].get(k, 0.0)))
-    for tag, (t_build, t_update, _, plan) in (("baseline", old), ("this tree", new)):
+    for tag, (t_build, t_update, _, plan, *_peaks) in (("baseline", old), ("this tree", new)):
         secs = plan["facts"].get("seconds", {})
         rest = t_update - sum(secs.values())
         if tag == "baseline":
@@ -263,6 +312,8 @@ def _side_by_side(old: tuple, new: tuple, build: Path) -> None:
         else:
             rows.append(("  rest (start, imports)", rest_old, rest))
             rows.append(("build / update w/o report", nor_old, t_build / max(1e-9, t_update - secs.get("report", 0))))
+    rows += [("largest process MB: build", old[5] / 2 ** 20, new[5] / 2 ** 20),
+             ("  update", old[4] / 2 ** 20, new[4] / 2 ** 20)]
     for name, a, b in rows:
         print(f"{name:<26}{a:>12.2f}{b:>12.2f}")
 
@@ -320,21 +371,22 @@ def main() -> None:
     if args.baseline:
         env = {"PYTHONPATH": os.pathsep.join([str(Path(args.baseline).resolve()),
                                               *filter(None, [os.environ.get("PYTHONPATH")])])}
-        t_build_old = _build(root / "baseline", first, scale, env)
-    t_build = _build(root, first, scale, None)
+        build_old = _build(root / "baseline", first, scale, env)
+    build_run = _build(root, first, scale, None)
+    t_build = build_run.seconds
     # The updates of the two trees alternate, so both meet the same load on this shared machine.
     mine, theirs = [], []
     for _ in range(max(1, args.repeat)):
         if args.baseline:
             theirs.append(_update(root / "baseline", again, env))
         mine.append(_update(root, again, None))
-    t_update, status, plan = _median_update(mine)
+    t_update, status, plan, peak = _median_update(mine)
     if len(mine) > 1:
         print("update wall times (s), in run order: this tree " + ", ".join(f"{r[0]:.2f}" for r in mine)
               + ("; baseline " + ", ".join(f"{r[0]:.2f}" for r in theirs) if theirs else "")
               + "; the median run is reported")
     if args.baseline:
-        old = (t_build_old, *_median_update(theirs))
+        old = (build_old.seconds, *_median_update(theirs), build_old.peak)
     before, after = _files(base / "volume.zarr" / "em"), _files(upd / "volume.zarr" / "em")
     changed = {k for k in before.keys() | after.keys() if before.get(k) != after.get(k)}
     planes = sorted({int(k.split(os.sep)[2]) for k in changed})
@@ -348,6 +400,8 @@ def main() -> None:
                           stackbuild.open_volume(upd, level=0, lazy=True)[z].compute())
     print(f"full build of {n} sections: {t_build:.1f} s; update of 2 tiles: {t_update:.1f} s "
           f"(ratio {t_build / t_update:.1f}x; exit {status})")
+    print(f"  largest process, peak resident size: full build {build_run.peak / 2 ** 20:.0f} MB, update "
+          f"{peak / 2 ** 20:.0f} MB (section of {args.grid} x {args.grid} tiles of {args.tile} px)")
     checked = plan["facts"]["align"].get("checked", {})
     print(f"  update ran {plan['facts'].get('ran', '?')}; sections solved again {plan['facts']['align']['window']}; "
           + "; ".join(f"section {s}: {'kept' if c['kept_without_solve'] else 're-solved'} ({c['why']})"
@@ -368,13 +422,13 @@ def main() -> None:
     print(f"  full build stages (s): { {k: v.get('seconds') for k, v in state.items()} }")
 
     if args.baseline:
-        _side_by_side(old, (t_build, t_update, status, plan), base)
+        _side_by_side(old, (t_build, t_update, status, plan, peak, build_run.peak), base)
     if args.speed_only:
         if not args.keep:
             shutil.rmtree(root, ignore_errors=True)
         return
     merged = Path(plan["tiles_after"])
-    t_fresh, _ = _cli("build", merged, "--out", root / "fresh", *scale)
+    t_fresh = _cli("build", merged, "--out", root / "fresh", *scale).seconds
     others = [s for s in range(n) if s != section]
     mu, au = _landing(upd, section, tiles, others)
     mf, af = _landing(root / "fresh", section, tiles, others)
@@ -388,7 +442,7 @@ def main() -> None:
 
     app = root / "appended"
     shutil.copytree(base, app)
-    t_app, _ = _cli("update", app, "--tiles", later, "--append", "--workers", "2")
+    t_app = _cli("update", app, "--tiles", later, "--append", "--workers", "2").seconds
     aplan = json.loads((app / "updates" / "0001" / "plan.json").read_text())
     a_after = _files(app / "volume.zarr" / "em")
     touched = sorted({int(k.split(os.sep)[2]) for k in before if a_after.get(k) != before[k]})
@@ -407,8 +461,8 @@ def main() -> None:
             work = root / f"killed-{step}"
             shutil.rmtree(work, ignore_errors=True)
             shutil.copytree(base, work)
-            _, rc = _cli("update", work, "--tiles", again, "--workers", "2",
-                         env={"STACKBUILD_UPDATE_KILL": step}, check=False)
+            rc = _cli("update", work, "--tiles", again, "--workers", "2",
+                      env={"STACKBUILD_UPDATE_KILL": step}, check=False).status
             _cli("update", work, "--resume", "--workers", "2")
             got = {k: v[0] for k, v in _files(work / "volume.zarr" / "em").items()}
             print(f"killed in {step} (exit {rc}, SIGKILL is {-signal.SIGKILL}), then --resume: "

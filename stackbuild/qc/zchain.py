@@ -36,8 +36,10 @@ import numpy as np
 
 #: bump when the estimate computed from the same stored shifts changes (stored run results are then solved again);
 #: 2: shrink-weighted plane sums (:func:`weighted_sums`), outlier blocks replaced instead of every block
-#: (:func:`stackbuild.qc.runs.replace_outliers`)
-ESTIMATE_VERSION = 2
+#: (:func:`stackbuild.qc.runs.replace_outliers`); 3: the matching noise taken off is the noise the jitter holds, through
+#: the chain's covariance and the fit together (it was the track's variance times the fit's white-noise gain: 4x too
+#: much on a 30-plane chain, tests/test_qc_metrics.py)
+ESTIMATE_VERSION = 3
 
 
 @dataclass
@@ -50,7 +52,8 @@ class Jitter:
         ``(dx, dy)`` deviation of each plane from where its neighbours put it, level-0 px; NaN where
         the block was not measured on that plane.
     noise_var : ndarray, shape (Z, B)
-        Expected ``|jitter|^2`` from matching noise alone (both components), px^2.
+        Matching noise in ``|jitter|^2`` (both components), px^2, divided by ``shrink`` as the
+        estimate divides the jitter's square: ``shrink * noise_var`` is what the jitter holds of it.
     shrink : ndarray, shape (Z, B)
         Expected ``|jitter|^2`` over what a plain whole-stack line leaves of white jitter
         (see ``stack`` of :func:`block_jitter`); divide by it for an estimate on the
@@ -87,21 +90,23 @@ def _largest_component(n: int, a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 
 def _chain(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray):
-    """Return tracks ``u`` (n, K, 2) (NaN off the largest part), the per-plane variance factor, and RSS and dof per track.
+    """Return tracks ``u`` (n, K, 2) (NaN off the largest part), the track's noise covariance factor, and RSS and dof per track.
 
     ``d`` is ``(L, K, 2)``: the shifts of ``K`` blocks over the same links ``a -> b``, which share
     the design and its pseudo-inverse (one ``(L, 2)`` block is accepted too, giving ``u`` (n, 2)
-    and scalars).
+    and scalars). The covariance factor ``(n, n)`` is that pseudo-inverse laid out on the planes
+    (zero off the largest part): a track's noise covariance per component is it times the
+    links' noise variance. It is not diagonal: a chain's errors add up along z.
     """
     one = d.ndim == 2
     d = d[:, None, :] if one else d
     k = d.shape[1]
     keep = _largest_component(n, a, b)
     u = np.full((n, k, 2), np.nan)
-    var = np.full(n, np.nan)
+    cov = np.zeros((n, n))
     use = keep[a] & keep[b]
     if keep.sum() < 2:
-        return (u[:, 0], var, 0.0, 0) if one else (u, var, np.zeros(k), 0)
+        return (u[:, 0], cov, 0.0, 0) if one else (u, cov, np.zeros(k), 0)
     idx = np.flatnonzero(keep)
     pos = {int(j): i for i, j in enumerate(idx)}
     m = len(idx)
@@ -123,44 +128,48 @@ def _chain(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray):
     sol = sol.reshape(m, k, 2)
     sol -= sol.mean(axis=0)
     u[idx] = sol
-    var[idx] = np.diag(pinv)
+    cov[np.ix_(idx, idx)] = pinv
     if one:
-        return u[:, 0], var, float(rss[0]), max(dof, 0)
-    return u, var, rss, max(dof, 0)
+        return u[:, 0], cov, float(rss[0]), max(dof, 0)
+    return u, cov, rss, max(dof, 0)
 
 
 def _chains(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray, keep: np.ndarray):
-    """Return every block's track ``(n, B, 2)``, variance factor ``(n, B)``, link residuals ``(L, B)``, RSS and dof.
+    """Return every block's track ``(n, B, 2)``, noise covariance factor ``(B, n, n)``, link residuals ``(L, B)``, RSS and dof.
 
     ``keep`` ``(L, B)`` says which links each block uses; blocks using the same links are solved
     together (:func:`_chain`): one pseudo-inverse per set of links, not per block.
     """
     nb = d.shape[1]
     tracks = np.full((n, nb, 2), np.nan)
-    variances = np.full((n, nb), np.nan)
+    covariances = np.zeros((nb, n, n))
     residuals = np.full((len(a), nb), np.nan)
     rss_total, dof_total = 0.0, 0
     if not nb:
-        return tracks, variances, residuals, rss_total, dof_total
+        return tracks, covariances, residuals, rss_total, dof_total
     _, group = np.unique(keep.T, axis=0, return_inverse=True)
     for g in np.unique(group):
         cols = np.flatnonzero(group.reshape(-1) == g)
         good = keep[:, cols[0]]
-        u, var, rss, dof = _chain(n, a[good], b[good], d[good][:, cols])
+        u, cov, rss, dof = _chain(n, a[good], b[good], d[good][:, cols])
         tracks[:, cols] = u
-        variances[:, cols] = var[:, None]
+        covariances[cols] = cov
         residuals[np.ix_(good, cols)] = np.hypot(*np.moveaxis(u[b[good]] - u[a[good]] - d[good][:, cols], -1, 0))
         rss_total += float(np.sum(rss))
         dof_total += dof * len(cols)
-    return tracks, variances, residuals, rss_total, dof_total
+    return tracks, covariances, residuals, rss_total, dof_total
 
 
-def _robust_slow(z: np.ndarray, u: np.ndarray, window: int, noise: float, rounds: int = 3):
-    """Return the slow part of blocks' tracks, each plane's own weight ``h`` in its fit, and its gain.
+def _robust_slow(z: np.ndarray, u: np.ndarray, window: int, noise: float, rounds: int = 3,
+                 cov: np.ndarray | None = None):
+    """Return the slow part of blocks' tracks, each plane's own weight ``h`` in its fit, its gain and noise factor.
 
     ``u`` is ``(Z, 2)`` (one block) or ``(Z, B, 2)`` (blocks side by side, each fitted on its own:
     the planes are the loop, the blocks are vectorised). The gain is the expected ``|u - slow|^2``
-    of a plane under white jitter of unit variance.
+    of a plane under white jitter of unit variance. With ``cov`` ``(B, Z, Z)`` (the tracks' noise
+    covariance per unit link variance, :func:`_chain`) the noise factor ``(Z, B)`` is the variance
+    of ``u - slow`` per component and unit link variance, ``r^T cov r`` with ``r`` the plane's row
+    of the operator ``u -> u - slow`` of the last round (NaN without ``cov``).
     """
     one = u.ndim == 2
     u = u[:, None, :] if one else u
@@ -171,6 +180,7 @@ def _robust_slow(z: np.ndarray, u: np.ndarray, window: int, noise: float, rounds
     slow = np.full_like(u, np.nan, dtype=float)
     hat = np.full((n, nb), np.nan)
     gain = np.full((n, nb), np.nan)
+    rows = np.zeros((nb, n, n)) if cov is not None else None   # per block, row i: the weights of plane i's fit
     half = max(1, window // 2)
     active = np.ones(nb, bool)                        # blocks still iterating (a block stops as the loop did)
     for _ in range(rounds):
@@ -196,6 +206,8 @@ def _robust_slow(z: np.ndarray, u: np.ndarray, window: int, noise: float, rounds
             # white jitter of variance 1 leaves (1 - own)^2 + sum of the others' squared weights in
             # u - slow: 1 - h for a plain fit, more than 1 where the robust fit left the plane out
             gain[i, fit_b] = 1.0 - 2.0 * own + (coef ** 2).sum(axis=0)
+            if rows is not None:
+                rows[fit_b, i] = coef.T
         res = np.hypot(*np.moveaxis(u - slow, -1, 0))   # (Z, B)
         good = np.isfinite(res)
         stop = active & (good.sum(axis=0) < 3)
@@ -206,9 +218,15 @@ def _robust_slow(z: np.ndarray, u: np.ndarray, window: int, noise: float, rounds
         scale = np.maximum(np.maximum(6.0 * med, 3.0 * noise), 1e-6)  # bisquare, as Cleveland 1979
         new = np.maximum(np.where(good, np.clip(1 - (res / scale) ** 2, 0, 1) ** 2, 0.0), 1e-3)
         rob[:, active] = new[:, active]
+    factor = np.full((n, nb), np.nan)
+    if rows is not None:
+        r = -rows
+        r[:, np.arange(n), np.arange(n)] += 1.0    # u - slow = (I - C) u, per block
+        factor = ((r @ cov) * r).sum(axis=2).T     # diag(R cov R^T), batched over blocks
+        factor[~np.isfinite(hat)] = np.nan
     if one:
-        return slow[:, 0], hat[:, 0], gain[:, 0]
-    return slow, hat, gain
+        return slow[:, 0], hat[:, 0], gain[:, 0], factor[:, 0]
+    return slow, hat, gain, factor
 
 
 def block_jitter(z: np.ndarray, a: np.ndarray, b: np.ndarray, shifts: np.ndarray, *,
@@ -254,7 +272,7 @@ def block_jitter(z: np.ndarray, a: np.ndarray, b: np.ndarray, shifts: np.ndarray
     nz, nb = len(z), d.shape[1]
     keep = np.isfinite(d[..., 0])
     for _ in range(rejection_rounds + 1):
-        tracks, variances, res, rss_total, dof_total = _chains(nz, a, b, d, keep)
+        tracks, covariances, res, rss_total, dof_total = _chains(nz, a, b, d, keep)
         # a false match (repeated or fresh content) is an outlier of the chain: drop links that
         # disagree with the rest by more than 4 robust sigmas (common practice, no source)
         fin = res[np.isfinite(res)]
@@ -272,10 +290,13 @@ def block_jitter(z: np.ndarray, a: np.ndarray, b: np.ndarray, shifts: np.ndarray
     shrink = np.full((nz, nb), np.nan)
     whole = _stack_leverage(z, z if stack is None else np.asarray(stack, float))
     if nb:
-        slow, hat, gain = _robust_slow(z, tracks, window, noise)
+        slow, hat, gain, factor = _robust_slow(z, tracks, window, noise, cov=covariances)
         jitter[:] = tracks - slow
         shrink[:] = np.clip(gain / (1.0 - whole)[:, None], 0.05, 4.0)
-        noise_var[:] = 2.0 * noise ** 2 * variances * (1.0 - whole)[:, None]
+        # the noise that reaches the jitter, through the chain and the fit together, in the estimate's
+        # units (divided by shrink, as the jitter is): a track's noise is not white (a chain's errors
+        # add up along z), and the fit takes its slow part away with the track's slow change
+        noise_var[:] = 2.0 * noise ** 2 * factor / shrink
     return Jitter(jitter, noise_var, shrink, sigma)
 
 

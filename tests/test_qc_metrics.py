@@ -101,6 +101,26 @@ def test_chain_puts_a_single_shifted_plane_on_that_plane():
     assert max(est[:4] + est[5:]) < 0.3
 
 
+def test_a_chain_cut_by_missing_links_keeps_both_pieces():
+    # Closed form: as above, but no link crosses from planes 0-4 to 5-9 (every block), and plane 7 is 3 px off.
+    # Each piece keeps a constant of its own and both share the slant: plane 7, the middle of its 5-plane piece,
+    # keeps 3 (1 - 1/5) px of jitter, scaled to the whole-stack line's terms by sqrt((1 - h) / (1 - 1/5)), h its
+    # weight in a line over the 10 planes. Only the largest piece was kept before (ESTIMATE_VERSION 3): plane 7
+    # was not measured at all.
+    z = np.arange(10)
+    a, b = np.r_[z[:-1], z[:-2]], np.r_[z[1:], z[2:]]
+    e = np.zeros((10, 4, 2))
+    e[7, :, 0] = 3.0
+    slant = np.array([[0.7, -0.3]] * 4)
+    d = np.stack([e[j] - e[i] + (j - i) * slant for i, j in zip(a, b)])
+    d[(a <= 4) & (b >= 5)] = np.nan
+    s = plane_summary(block_jitter(z, a, b, d))
+    est = [section_error(n, q, w)[0] for n, q, w in zip(s["n"], s["sum_sq"], s["sum_noise"])]
+    h = 0.1 + 2.5 ** 2 / 82.5
+    assert list(s["n"]) == [4] * 10
+    assert est[7] == pytest.approx(3.0 * 0.8 * np.sqrt((1 - h) / 0.8), abs=0.3)
+    assert max(est[:7] + est[8:]) < 0.3
+
 def test_the_noise_taken_off_is_the_noise_the_jitter_holds():
     # Monte Carlo check of the kernel's stated expectation (no outside source): 200 blocks over 30 planes,
     # links of span 1 and 2, independent normal noise of 0.3 px per component on every link (numpy's

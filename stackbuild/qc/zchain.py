@@ -8,12 +8,13 @@ Such a shift holds two things: the error of the two planes,
 structure), which no image can tell from a steady error. The kernel
 
 1. solves the chain ``d(a, b) = u(b) - u(a)`` for a position track ``u(z)`` per
-   block (weighted least squares; the links of span 2 make the system
-   redundant, and their disagreement measures the matching noise);
+   block (least squares; the links of span 2 make the system redundant, and
+   their disagreement measures the matching noise); where refused matches cut
+   a block's chain, each piece is known up to a constant of its own;
 2. splits the track into a slow part (a robust local straight-line fit, equal
-   weights, over ``window`` planes around each plane, the plane itself down-weighted when it
-   disagrees with its neighbours: where the neighbours put it) and the
-   jitter ``j(z) = u(z) - slow(z)``;
+   weights, over ``window`` planes around each plane, one slant for all pieces,
+   the plane itself down-weighted when it disagrees with its neighbours: where
+   the neighbours put it) and the jitter ``j(z) = u(z) - slow(z)``;
 3. returns the jitter with its noise variance and the factor by which the
    local fit shrinks white jitter, so :func:`plane_summary` can give an
    unbiased mean square.
@@ -38,8 +39,9 @@ import numpy as np
 #: 2: shrink-weighted plane sums (:func:`weighted_sums`), outlier blocks replaced instead of every block
 #: (:func:`stackbuild.qc.runs.replace_outliers`); 3: the matching noise taken off is the noise the jitter holds, through
 #: the chain's covariance and the fit together (it was the track's variance times the fit's white-noise gain: 4x too
-#: much on a 30-plane chain, tests/test_qc_metrics.py)
-ESTIMATE_VERSION = 3
+#: much on a 30-plane chain, tests/test_qc_metrics.py); 4: a block's track cut by missing links keeps every piece (each
+#: with a constant of its own, one slant shared), not only its largest
+ESTIMATE_VERSION = 4
 
 
 @dataclass
@@ -68,8 +70,8 @@ class Jitter:
     sigma: float
 
 
-def _largest_component(n: int, a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Return a boolean mask of the planes in the largest connected part of the link graph."""
+def _parts(n: int, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Return each plane's connected part of the link graph, numbered from 0 (-1: a plane no link touches)."""
     parent = np.arange(n)
 
     def find(i):
@@ -83,59 +85,61 @@ def _largest_component(n: int, a: np.ndarray, b: np.ndarray) -> np.ndarray:
         parent[find(i)] = find(j)
         touched[i] = touched[j] = True
     roots = np.array([find(i) for i in range(n)])
-    if not touched.any():
-        return touched
-    counts = np.bincount(roots[touched], minlength=n)
-    return touched & (roots == int(np.argmax(counts)))
+    _, label = np.unique(roots[touched], return_inverse=True)
+    out = np.full(n, -1)
+    out[touched] = label.reshape(-1)
+    return out
 
 
 def _chain(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray):
-    """Return tracks ``u`` (n, K, 2) (NaN off the largest part), the track's noise covariance factor, and RSS and dof per track.
+    """Return tracks ``u`` (n, K, 2), the tracks' noise covariance factor, RSS and dof per track, and each plane's part.
 
     ``d`` is ``(L, K, 2)``: the shifts of ``K`` blocks over the same links ``a -> b``, which share
     the design and its pseudo-inverse (one ``(L, 2)`` block is accepted too, giving ``u`` (n, 2)
-    and scalars). The covariance factor ``(n, n)`` is that pseudo-inverse laid out on the planes
-    (zero off the largest part): a track's noise covariance per component is it times the
-    links' noise variance. It is not diagonal: a chain's errors add up along z.
+    and scalars). Where missing links cut the chain into parts (:func:`_parts`), each part's track
+    is known up to a constant of its own and is given with mean zero (NaN on planes no link
+    touches). The covariance factor ``(n, n)`` is the pseudo-inverse laid out on the planes: a
+    track's noise covariance per component is it times the links' noise variance. It is not
+    diagonal: a chain's errors add up along z.
     """
     one = d.ndim == 2
     d = d[:, None, :] if one else d
     k = d.shape[1]
-    keep = _largest_component(n, a, b)
+    part = _parts(n, a, b)
     u = np.full((n, k, 2), np.nan)
     cov = np.zeros((n, n))
-    use = keep[a] & keep[b]
-    if keep.sum() < 2:
-        return (u[:, 0], cov, 0.0, 0) if one else (u, cov, np.zeros(k), 0)
-    idx = np.flatnonzero(keep)
-    pos = {int(j): i for i, j in enumerate(idx)}
-    m = len(idx)
-    design = np.zeros((int(use.sum()), m))
-    rows = np.flatnonzero(use)
-    for r, li in enumerate(rows):
-        design[r, pos[int(b[li])]] = 1.0
-        design[r, pos[int(a[li])]] = -1.0
-    normal = design.T @ design              # the Laplacian of the connected link graph: singular along constants
-    # the track is known up to a constant: minimum-norm gauge, through the Laplacian's pseudo-inverse
-    # inv(L + 1 1^T / m) - 1 1^T / m (Gutman & Xiao, "Generalized inverse of the Laplacian matrix and some
-    # applications", Bull. Acad. Serbe Sci. Math. 129 (2004) 15-23, doi:10.2298/BMAT0429015G), a plain
-    # inverse instead of numpy's SVD-based pinv: 20x cheaper at 100 planes, equal to 1e-12
-    pinv = np.linalg.inv(normal + 1.0 / m) - 1.0 / m
-    rhs = d[rows].reshape(len(rows), -1)    # (R, 2K)
+    if not len(a):
+        return (u[:, 0], cov, 0.0, 0, part) if one else (u, cov, np.zeros(k), 0, part)
+    idx = np.flatnonzero(part >= 0)
+    pos = np.full(n, -1)
+    pos[idx] = np.arange(len(idx))
+    m, parts = len(idx), int(part.max()) + 1
+    design = np.zeros((len(a), m))
+    design[np.arange(len(a)), pos[b]] = 1.0
+    design[np.arange(len(a)), pos[a]] = -1.0
+    normal = design.T @ design              # the link graph's Laplacian: singular along each part's constant
+    # each part's track is known up to a constant: minimum-norm gauge, through the Laplacian's pseudo-inverse
+    # inv(L + J) - J, J = sum over parts of 1 1^T / (its planes) (Gutman & Xiao, "Generalized inverse of the
+    # Laplacian matrix and some applications", Bull. Acad. Serbe Sci. Math. 129 (2004) 15-23,
+    # doi:10.2298/BMAT0429015G, for one part; the parts are independent), a plain inverse instead of numpy's
+    # SVD-based pinv: 20x cheaper at 100 planes, equal to 1e-12
+    member = (part[idx][:, None] == np.arange(parts)[None]).astype(float)      # (m, parts)
+    gauge = (member / member.sum(axis=0)) @ member.T
+    pinv = np.linalg.inv(normal + gauge) - gauge
+    rhs = d.reshape(len(a), -1)             # (L, 2K)
     sol = pinv @ (design.T @ rhs)
-    rss = ((design @ sol - rhs) ** 2).reshape(len(rows), k, 2).sum(axis=(0, 2))
-    dof = len(rows) - (m - 1)
-    sol = sol.reshape(m, k, 2)
-    sol -= sol.mean(axis=0)
+    rss = ((design @ sol - rhs) ** 2).reshape(len(a), k, 2).sum(axis=(0, 2))
+    dof = len(a) - (m - parts)
+    sol = (sol - gauge @ sol).reshape(m, k, 2)
     u[idx] = sol
     cov[np.ix_(idx, idx)] = pinv
     if one:
-        return u[:, 0], cov, float(rss[0]), max(dof, 0)
-    return u, cov, rss, max(dof, 0)
+        return u[:, 0], cov, float(rss[0]), max(dof, 0), part
+    return u, cov, rss, max(dof, 0), part
 
 
 def _chains(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray, keep: np.ndarray):
-    """Return every block's track ``(n, B, 2)``, noise covariance factor ``(B, n, n)``, link residuals ``(L, B)``, RSS and dof.
+    """Return every block's track ``(n, B, 2)``, noise covariance factor ``(B, n, n)``, link residuals ``(L, B)``, RSS, dof and parts ``(n, B)``.
 
     ``keep`` ``(L, B)`` says which links each block uses; blocks using the same links are solved
     together (:func:`_chain`): one pseudo-inverse per set of links, not per block.
@@ -143,25 +147,27 @@ def _chains(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray, keep: np.ndarra
     nb = d.shape[1]
     tracks = np.full((n, nb, 2), np.nan)
     covariances = np.zeros((nb, n, n))
+    parts = np.full((n, nb), -1)
     residuals = np.full((len(a), nb), np.nan)
     rss_total, dof_total = 0.0, 0
     if not nb:
-        return tracks, covariances, residuals, rss_total, dof_total
+        return tracks, covariances, residuals, rss_total, dof_total, parts
     _, group = np.unique(keep.T, axis=0, return_inverse=True)
     for g in np.unique(group):
         cols = np.flatnonzero(group.reshape(-1) == g)
         good = keep[:, cols[0]]
-        u, cov, rss, dof = _chain(n, a[good], b[good], d[good][:, cols])
+        u, cov, rss, dof, part = _chain(n, a[good], b[good], d[good][:, cols])
         tracks[:, cols] = u
         covariances[cols] = cov
+        parts[:, cols] = part[:, None]
         residuals[np.ix_(good, cols)] = np.hypot(*np.moveaxis(u[b[good]] - u[a[good]] - d[good][:, cols], -1, 0))
         rss_total += float(np.sum(rss))
         dof_total += dof * len(cols)
-    return tracks, covariances, residuals, rss_total, dof_total
+    return tracks, covariances, residuals, rss_total, dof_total, parts
 
 
 def _robust_slow(z: np.ndarray, u: np.ndarray, window: int, noise: float, rounds: int = 3,
-                 cov: np.ndarray | None = None):
+                 cov: np.ndarray | None = None, parts: np.ndarray | None = None):
     """Return the slow part of blocks' tracks, each plane's own weight ``h`` in its fit, its gain and noise factor.
 
     ``u`` is ``(Z, 2)`` (one block) or ``(Z, B, 2)`` (blocks side by side, each fitted on its own:
@@ -170,11 +176,18 @@ def _robust_slow(z: np.ndarray, u: np.ndarray, window: int, noise: float, rounds
     covariance per unit link variance, :func:`_chain`) the noise factor ``(Z, B)`` is the variance
     of ``u - slow`` per component and unit link variance, ``r^T cov r`` with ``r`` the plane's row
     of the operator ``u -> u - slow`` of the last round (NaN without ``cov``).
+
+    ``parts`` ``(Z, B)`` numbers the pieces of a block's track that are each known up to a constant
+    of their own (:func:`_chain`; default: one piece). The slow part is then one straight line per
+    block with an offset per piece: the pieces share the block's slant, which is the tissue's
+    (oblique structure runs on through a missing link), and only their constants are free.
     """
     one = u.ndim == 2
     u = u[:, None, :] if one else u
     n, nb = u.shape[:2]
     ok = np.isfinite(u[..., 0])                       # (Z, B)
+    parts = np.where(ok, 0, -1) if parts is None else (parts[:, None] if one else parts)
+    member = (np.where(ok, parts, -1)[:, None, :] == np.arange(max(int(parts.max()) + 1, 1))[None, :, None])
     u0 = np.where(ok[..., None], u, 0.0)
     rob = np.ones((n, nb))
     slow = np.full_like(u, np.nan, dtype=float)
@@ -193,11 +206,21 @@ def _robust_slow(z: np.ndarray, u: np.ndarray, window: int, noise: float, rounds
             # line over all planes, as the identifiable residual removes it (tricube weights would let
             # end planes pull their own fit)
             w = np.where(ok & (np.abs(t) <= half), rob, 0.0)[:, fit]
-            s0, s1, s2 = w.sum(axis=0), (w * t).sum(axis=0), (w * t * t).sum(axis=0)
-            det = s0 * s2 - s1 * s1
-            flat = det <= 1e-9 * np.maximum(s0 * s2, 1e-12)   # a single plane or one side only: a constant
+            mem = member[:, :, fit]                                   # (Z, P, F): the planes of each piece
+            wp = np.einsum("zf,zpf->pf", w, mem)                      # each piece's weight in the window
             with np.errstate(divide="ignore", invalid="ignore"):
-                coef = np.where(flat, w / s0, w * (s2 - s1 * t) / np.where(flat, 1.0, det))  # line at t = 0
+                tp = np.einsum("zf,zpf->pf", w * t, mem) / wp         # and its mean position
+            tp = np.nan_to_num(tp)
+            dt = t - np.einsum("zpf,pf->zf", mem, tp)                 # position within its piece
+            sxx = (w * dt * dt).sum(axis=0)
+            own = mem[i]                                              # (P, F): plane i's piece
+            s0 = (own * wp).sum(axis=0)
+            ti = (own * tp).sum(axis=0)
+            flat = sxx <= 1e-9 * np.maximum((w * t * t).sum(axis=0), 1e-12)   # no slant to fit: a constant
+            with np.errstate(divide="ignore", invalid="ignore"):
+                # the piece's mean, carried to t = 0 along the slant shared by all pieces (least squares)
+                coef = (np.einsum("zpf,pf->zf", mem, own) * w / s0
+                        - np.where(flat, 0.0, ti / np.where(flat, 1.0, sxx)) * w * dt)
             fit_b = np.flatnonzero(fit)[s0 > 0]
             coef = coef[:, s0 > 0]
             slow[i, fit_b] = np.einsum("zb,zbc->bc", coef, u0[:, fit_b])
@@ -272,7 +295,7 @@ def block_jitter(z: np.ndarray, a: np.ndarray, b: np.ndarray, shifts: np.ndarray
     nz, nb = len(z), d.shape[1]
     keep = np.isfinite(d[..., 0])
     for _ in range(rejection_rounds + 1):
-        tracks, covariances, res, rss_total, dof_total = _chains(nz, a, b, d, keep)
+        tracks, covariances, res, rss_total, dof_total, parts = _chains(nz, a, b, d, keep)
         # a false match (repeated or fresh content) is an outlier of the chain: drop links that
         # disagree with the rest by more than 4 robust sigmas (common practice, no source)
         fin = res[np.isfinite(res)]
@@ -290,7 +313,7 @@ def block_jitter(z: np.ndarray, a: np.ndarray, b: np.ndarray, shifts: np.ndarray
     shrink = np.full((nz, nb), np.nan)
     whole = _stack_leverage(z, z if stack is None else np.asarray(stack, float))
     if nb:
-        slow, hat, gain, factor = _robust_slow(z, tracks, window, noise, cov=covariances)
+        slow, hat, gain, factor = _robust_slow(z, tracks, window, noise, cov=covariances, parts=parts)
         jitter[:] = tracks - slow
         shrink[:] = np.clip(gain / (1.0 - whole)[:, None], 0.05, 4.0)
         # the noise that reaches the jitter, through the chain and the fit together, in the estimate's

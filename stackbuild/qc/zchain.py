@@ -318,7 +318,7 @@ def block_jitter(z: np.ndarray, a: np.ndarray, b: np.ndarray, shifts: np.ndarray
         # identifiable residual takes it off: down-weighting the planes that stray from it (the robust rounds) and
         # scaling them back by the gain is unbiased only for white jitter; a chained alignment's error also
         # wanders (a random walk along z, largest at the stack's ends after the line), and the robust rounds read
-        # it low there (realistic/long seeds 0-2 and 7-9: 89-97 % of sections within with one round, 67-94 % with 3)
+        # it low there (realistic/long seeds 0-2 and 7-9: 78-97 % of sections within with one round, 67-94 % with 3)
         whole_stack = z.max() - z.min() <= max(1, window // 2) if nz else True
         slow, hat, gain, factor = _robust_slow(z, tracks, window, noise, rounds=1 if whole_stack else 3,
                                                cov=covariances, parts=parts)

@@ -129,3 +129,29 @@ def test_a_task_error_in_a_streamed_group_reaches_the_caller():
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None) as cluster, \
             Client(cluster) as client, pytest.raises(ValueError, match="bad tile"):
         client_mapper(client).compute_stream(iter(groups), lambda g, i: None)
+
+
+def _square(x: int) -> int:
+    return x * x
+
+
+def test_client_mapper_reads_a_generator_with_a_bounded_number_of_tasks_in_flight():
+    """Results come back in order, and no more than ``in_flight`` items are drawn ahead of the results
+    (a production align round has about 180,000 tasks: all at once they would not fit the driver)."""
+    from distributed import Client, LocalCluster
+
+    from stackbuild.run.cluster import client_mapper
+
+    drawn, ahead = [], []
+
+    def items():
+        for i in range(40):
+            drawn.append(i)
+            yield i
+
+    with LocalCluster(n_workers=1, threads_per_worker=2, processes=False, dashboard_address=None) as cluster, \
+            Client(cluster) as client:
+        mapper = client_mapper(client, lambda done, total: ahead.append(len(drawn) - done), in_flight=6)
+        assert mapper(_square, items()) == [i * i for i in range(40)]
+        assert mapper(_square, []) == []
+    assert len(ahead) == 40 and max(ahead) <= 6

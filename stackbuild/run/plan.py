@@ -24,6 +24,10 @@ RATES_PATH = Path(__file__).with_name("plan_rates.json")
 TASK_LIMIT = 4e9
 DRIVER_LIMIT = 8e9
 MB = 1e6
+#: The scheduler's own time per task, serial whatever the cores: Dask's documentation puts it
+#: "somewhere between 200us and 1ms" (docs.dask.org, Dask Best Practices, "Avoid Very Large
+#: Graphs"); the plan takes the upper end, as a graph of hundreds of thousands of tasks is large.
+SCHEDULER_S_PER_TASK = 1e-3
 
 
 def load_rates(path: str | Path | None = None) -> dict:
@@ -65,6 +69,8 @@ def plan_stage(name: str, kinds: list[Kind], rates: dict, cores: int, speed: flo
     # shorter than its longest task; driver work is serial.
     wall = sum(max(r["cpu_seconds"] / max(1, min(cores, r["tasks"])), r["cpu_seconds_each"]) if not r["driver"]
                else r["cpu_seconds"] for r in rows)
+    scheduler = sum(r["tasks"] for r in tasks) * SCHEDULER_S_PER_TASK
+    wall += scheduler
     worst = max(tasks, key=lambda r: r["memory_bytes"], default=None)
     over = [r for r in tasks if r["memory_bytes"] > TASK_LIMIT] + \
         [r for r in drivers if r["memory_bytes"] > DRIVER_LIMIT]
@@ -76,6 +82,7 @@ def plan_stage(name: str, kinds: list[Kind], rates: dict, cores: int, speed: flo
         "bytes_read": sum(r["bytes_read"] for r in rows),
         "bytes_written": sum(r["bytes_written"] for r in rows),
         "wall_hours": wall / 3600.0,
+        "scheduler_hours": scheduler / 3600.0,
         "bounded": not over,
         "largest_task": worst["kind"] if worst else None,
         "unbounded": [f"{r['kind']}: {r['memory_bytes'] / 1e9:.1f} GB ({r['note'] or 'grows with the volume'})"
@@ -97,7 +104,8 @@ def make_plan(shape: VolumeShape, cfg, *, cores: int = 2, rates: dict | None = N
     -------
     dict
         ``shape``; ``stages.<name>`` with ``tasks``, ``task_memory_mb``, ``driver_memory_mb``,
-        ``cpu_hours``, ``bytes_read``, ``bytes_written``, ``wall_hours``, ``bounded``, ``unbounded``;
+        ``cpu_hours``, ``bytes_read``, ``bytes_written``, ``wall_hours`` (with ``scheduler_hours``, the
+        scheduler's time per task), ``bounded``, ``unbounded``;
         ``output_bytes``, ``output_files``, ``output`` (levels, shards, codec, ratio);
         ``cpu_hours``, ``wall_hours`` (on ``cores``), ``bounded``; ``rates`` (where the factors come from);
         ``speed_factors`` (per stage).
@@ -163,6 +171,9 @@ def plan_text(plan: dict) -> str:
     lines += ["", f"output: {_size(plan['output_bytes'])} ({o['codec']}, ratio {o['compression_ratio']:.2f} as "
                   f"measured on the synthetic calibration build), {o['levels']} levels, {plan['output_files']} files "
                   f"({o['shards']} shards of {o['shard_edge_px']} px, chunks of {o['chunk_edge_px']} px)"]
+    sched = sum(s["scheduler_hours"] for s in plan["stages"].values())
+    lines.append(f"wall time includes the scheduler's {SCHEDULER_S_PER_TASK * 1e3:.0f} ms per task "
+                 f"(Dask's documented upper end): {_hours(sched)} in all")
     shard = plan["stages"]["render"]["kinds"].get("render.shard")
     if shard:
         lines.append(f"render: {shard['note']}")

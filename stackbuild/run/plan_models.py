@@ -105,7 +105,6 @@ def align_kinds(shape: VolumeShape, cfg) -> list[Kind]:
     tile_mpx = shape.tiles_per_section * shape.tile_height * shape.tile_width / MB
     es = max(1, int(_get(a, "elastic_scale", 2)))
     held_images = int(_get(a, "region_sections", 8)) + int(_get(a, "neighbours", 2))
-    nodes = budget.get("grid_nodes", 1)
     spacing = max(es, es * round(_get(a, "grid_spacing", 128.0) / es))
     region_side = (int(_get(a, "region_nodes", 16)) - 1) * spacing  # level-0 px
     # Matching compares every feature of one section with every one of the other: work grows with the
@@ -136,8 +135,13 @@ def align_kinds(shape: VolumeShape, cfg) -> list[Kind]:
             n = n * rounds // (rounds + 1)
         kinds.append(Kind(t.name, n, held, work.get(t.name, 0.0), note=t.note,
                           reads=shape.tiles_per_section * shape.tile_bytes if t.name == "align.features" else 0.0))
+    # The driver's CPU is bookkeeping per node block and section, every round: it crops each
+    # section's alignment for every region task, stacks every section's prior field for every
+    # block's solve and adds the blocks' steps back (align/stage.py: _Plan). So its work is counted
+    # in thousands of block-section rounds (memory: every section's field on the grid).
+    block_sections = budget.get("node_blocks", 1) * shape.imaged * max(1, rounds)
     kinds.append(Kind("align.driver", 1, max(0.0, budget["driver_bytes"] - PROCESS_BYTES),
-                      shape.imaged * nodes * nodes / MB, driver=True, note="every section's field on the grid"))
+                      block_sections / 1e3, driver=True, note="every section's field on the grid"))
     return kinds
 
 

@@ -151,24 +151,75 @@ def refit(doc: dict, cfg) -> dict:
     return factors(runs[0], runs[1], shapes, cfg)
 
 
-def measure_size(tmp: Path, name: str, sections: int, grid: int, tile: int) -> tuple[dict, VolumeShape, Path]:
+def measure_size(tmp: Path, name: str, sections: int, grid: int, tile: int,
+                 config: Path | None = None) -> tuple[dict, VolumeShape, Path]:
     """Synthesise and build one size in a fresh process; return the measurements, the shape and the build folder.
 
     A fresh process for each size, so neither build pays (or skips) first-call costs for the other.
+    ``config``: a settings file for the builds (the defaults if None).
     """
     params = SynthParams(seed=5, sections=sections, grid=(grid, grid), tile_size=tile, channels=0, compress=False)
-    tiles = generate(tmp / f"data-{name}", params)
+    tiles = tmp / f"data-{sections}-{grid}-{tile}" / "tiles.csv"
+    if not tiles.exists():
+        tiles = generate(tiles.parent, params)
     out = tmp / f"measured-{name}.json"
     code = ("import json, sys; from stackbuild.run.plan_measure import fastest, measure_build; "
-            "m = fastest(measure_build(sys.argv[1], sys.argv[2] + '0'), "
-            "*(measure_build(sys.argv[1], sys.argv[2] + str(i), trace_memory=False) for i in (1, 2))); "
+            "cfg = sys.argv[4] or None; "
+            "m = fastest(measure_build(sys.argv[1], sys.argv[2] + '0', cfg), "
+            "*(measure_build(sys.argv[1], sys.argv[2] + str(i), cfg, trace_memory=False) for i in (1, 2))); "
             "open(sys.argv[3], 'w').write(json.dumps(m))")  # memory from a traced build, CPU the least of two untraced
-    subprocess.run([sys.executable, "-c", code, str(tiles), str(tmp / f"build-{name}"), str(out)], check=True,
-                   cwd=str(REPO))
+    subprocess.run([sys.executable, "-c", code, str(tiles), str(tmp / f"build-{name}"), str(out),
+                    str(config or "")], check=True, cwd=str(REPO))
     measured = json.loads(out.read_text())
     for stage, err in measured["errors"].items():
         print(f"NOT MEASURED ({name}): {stage} failed: {err}", file=sys.stderr)
     return measured, VolumeShape.from_manifest(tiles), tmp / f"build-{name}1"
+
+
+#: Settings under which the larger size is built again, for kinds the two sizes cannot calibrate:
+#: the align driver's bookkeeping grows with node blocks x sections, and both sizes fit in one block
+#: of the default 16 x 16 nodes (4 x 4 nodes: 16 blocks); the report's merge task joins the part files
+#: of a plane's regions, and both sizes fit in one region of the default 2048 px (512 px: 4 tasks).
+PROBES = {"align.driver": "[align]\nregion_nodes = 4\n",
+          "report.merge": "[report]\nregion_size = 512\n"}
+
+
+def probe_kinds(tmp: Path, large: dict, shape, size: tuple, cfg) -> dict:
+    """Return new factors for the kinds of :data:`PROBES`, from the larger size built again under the
+    probe's settings.
+
+    A kind measured at both settings gets its CPU line through the two (its memory stays as the
+    two sizes fitted it); a kind only the probe runs is taken as proportional to its modelled bytes
+    and work, at the probe's measured ratios.
+    """
+    from stackbuild.config import load_config
+
+    out = {}
+    for kind, toml in PROBES.items():
+        path = tmp / f"probe-{kind}.toml"
+        path.write_text(toml, encoding="utf-8")
+        probed, _, _ = measure_size(tmp, f"probe-{kind}", *size, config=path)
+        stage = kind.split(".")[0]
+        k2 = next((k for k in STAGES[stage](shape, load_config(path)) if k.name == kind), None)
+        m1, m2 = large["kinds"].get(kind), probed["kinds"].get(kind)
+        if k2 is None or m2 is None or not m2["tasks"]:
+            continue
+        c2 = m2["cpu_robust_s"] / m2["tasks"]
+        entry = {"probe": {"settings": toml.strip(), "tasks": m2["tasks"], "modelled_tasks": k2.count,
+                           "work": round(k2.work, 4), "cpu_median_task_s": round(c2, 4),
+                           "peak_mb": round(m2["peak_bytes"] / 1e6, 3), "held_mb": round(k2.held / 1e6, 3)}}
+        k1 = next((k for k in STAGES[stage](shape, cfg) if k.name == kind), None)
+        if k1 is not None and m1 is not None and m1["tasks"]:
+            c1 = m1["cpu_robust_s"] / m1["tasks"]
+            fixed, slope = _line(k1.work, c1, k2.work, c2, 0.0 if k1.driver else None)
+            entry.update(cpu_fixed_s=round(fixed, 5), cpu_s_per_work=slope)
+            entry["probe"]["default_work_cpu_s"] = [round(k1.work, 4), round(c1, 4)]
+        else:
+            entry.update(cpu_fixed_s=0.0, cpu_s_per_work=c2 / max(k2.work, 1e-12), cpu_s_per_item=0.0,
+                         memory_fixed_bytes=0,
+                         memory_per_held=round(max(0.0, m2["peak_bytes"] - k2.fixed) / max(k2.held, 1.0), 4))
+        out[kind] = entry
+    return out
 
 
 def _size(text: str) -> tuple[int, int, int]:
@@ -185,11 +236,16 @@ def main(argv=None) -> None:
     ap.add_argument("--dry-run", action="store_true", help="print, do not write plan_rates.json")
     ap.add_argument("--refit", action="store_true",
                     help="no builds: refit the factors from the measurements kept in plan_rates.json")
+    ap.add_argument("--commit", default="",
+                    help="the code's commit, for a run outside a git checkout (a git archive); default: git's HEAD")
     args = ap.parse_args(argv)
     cfg = PipelineConfig()
     if args.refit:
         doc = json.loads(RATES_PATH.read_text(encoding="utf-8"))
+        kept = {k: v for k, v in doc["kinds"].items() if "probe" in v}
         doc["kinds"].update(refit(doc, cfg))
+        for name, entry in kept.items():  # a probed kind's factors come from its probe, not the two sizes
+            doc["kinds"].setdefault(name, {}).update(entry)
         doc["how"] = doc["how"].rstrip(".") + "; factors refitted from the kept measurements (--refit)"
         text = json.dumps(doc, indent=1) + "\n"
         print(text)
@@ -201,12 +257,15 @@ def main(argv=None) -> None:
         small, shape1, _ = measure_size(tmp, "small", *args.small)
         large, shape2, folder = measure_size(tmp, "large", *args.large)
         ratio = stored_ratio(folder / "volume.zarr")
+        kinds = factors(small, large, (shape1, shape2), cfg)
+        for kind, probed in probe_kinds(tmp, large, shape2, args.large, cfg).items():
+            kinds.setdefault(kind, {}).update(probed)
     runs = [reference_cpu_parts() for _ in range(3)]
     parts = {name: min(r[name] for r in runs) for name in runs[0]}  # the least: other work only adds time
     baseline = int(subprocess.run([sys.executable, "-c", WORKER_IMPORTS], capture_output=True, text=True,
                                   check=True).stdout.strip())
-    commit = subprocess.run(["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"], capture_output=True,
-                            text=True).stdout.strip()
+    commit = args.commit or subprocess.run(["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"], capture_output=True,
+                            text=True).stdout.strip() or "unknown (not a git checkout)"
     doc = {
         "format": "stackbuild.plan-rates", "version": 1,
         "measured": dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
@@ -215,13 +274,15 @@ def main(argv=None) -> None:
                 f"{args.small} and {args.large}) built in one process, one thread, three times; per task: "
                 "process CPU time (the least of two builds without allocation tracing) and the "
                 "tracemalloc peak above the task's start (a third, traced build); per kind a line (fixed + slope) "
-                "through the two, against what stackbuild/run/plan_models.py says the task holds and does"),
+                "through the two, against what stackbuild/run/plan_models.py says the task holds and does; "
+                "a kind the two sizes cannot calibrate (PROBES) gets its factors from the larger size built "
+                "again under settings that change its work"),
         "calibration_shapes": [shape1.to_json(), shape2.to_json()],
         "reference_cpu_s": round(sum(parts.values()), 5),
         "reference_parts_s": {name: round(t, 5) for name, t in parts.items()},
         "worker_baseline_bytes": baseline, "driver_baseline_bytes": baseline,
         "compression_ratio": {f"{cfg.render.codec} level {cfg.render.clevel}": round(ratio, 3)},
-        "kinds": factors(small, large, (shape1, shape2), cfg),
+        "kinds": kinds,
         "stage_cpu_s": [{k: round(v, 3) for k, v in m["stage_cpu_s"].items()} for m in (small, large)],
         "not_measured": {**large["errors"], **small["errors"]},
     }

@@ -405,3 +405,48 @@ def test_seams_come_from_the_stitchers_offsets_checked_against_the_raw_tiles(pla
     assert all(sb.source == "tiles" for sb in got)
     sb = next(sb for sb in got if (sb.a, sb.b) == (bad.a, bad.b))
     assert np.hypot(*np.median(sb.blocks.shifts, axis=0)) < 0.5
+
+
+def test_tables_from_kept_section_parts_equal_the_whole_table_written_again(planted, tmp_path):
+    # Reference: the whole table written from every stored row (csv.DictWriter, metrics._write_csv), and
+    # Python's csv.DictReader reading the table back to the stored rows.
+    import csv
+    import dataclasses
+    import shutil
+
+    from stackbuild.qc.metrics import _flat, _write_csv, write_metrics
+    from stackbuild.qc.sections import section_file
+
+    root, doc, meas = planted
+    work = tmp_path / "b"
+    shutil.copytree(root, work)
+    meas = dataclasses.replace(meas, build=str(work))
+    slim = {k: v for k, v in doc.items() if k not in ("tiles", "pairs")}
+
+    def check(out):
+        write_metrics(slim, out, meas)
+        for kind in ("tiles", "pairs"):
+            whole = _write_csv(tmp_path / f"{kind}-whole.csv", stored_rows(meas, kind)).read_bytes()
+            assert (out / f"{kind}.csv").read_bytes() == whole, kind
+    check(tmp_path / "made")  # parts made
+    parts = sorted((work / "qc" / "measured" / "parts").glob("*.json"))
+    assert len(parts) == 2 * len(meas.sections)
+    check(tmp_path / "kept")  # parts kept
+    with open(tmp_path / "kept" / "tiles.csv", newline="", encoding="utf-8") as fh:
+        back = list(csv.DictReader(fh))
+    rows = [_flat(r) for r in stored_rows(meas, "tiles")]
+    assert [r["tile"] for r in back] == [str(r["tile"]) for r in rows]
+    # One section measured again (a value changed): only its parts are made again.
+    first = section_file(work, meas.sections[0])
+    stored = json.loads(first.read_text())
+    stored["tiles"][0]["path"] = "elsewhere.tif"
+    first.write_text(json.dumps(stored))
+    times = {p.name: p.stat().st_mtime_ns for p in parts}
+    check(tmp_path / "one")
+    again = {p.name for p in parts if p.stat().st_mtime_ns != times[p.name]}
+    assert again == {f"{kind}-{meas.sections[0]:05d}.json" for kind in ("tiles", "pairs")}
+    # A section with a column the others lack: the whole table is written (first-seen column order).
+    stored["tiles"][0]["extra"] = 1
+    first.write_text(json.dumps(stored))
+    check(tmp_path / "extra")
+    assert "extra" in (tmp_path / "extra" / "tiles.csv").read_text().splitlines()[0]

@@ -296,3 +296,32 @@ def test_probe_tasks_split_by_region_give_the_numbers_of_one_task_per_run(first,
             assert np.allclose(np.array(k[c], float), np.array(a[c], float), equal_nan=True, atol=1e-4)
     for a, b in zip(full["sections"], told["sections"]):
         assert a["align_error_px"] == pytest.approx(b["align_error_px"], abs=1e-6)
+
+
+def test_reslice_lines_are_read_again_only_for_planes_whose_fingerprint_changed(first, tmp_path, monkeypatch):
+    # Reference: the two lines read through the whole stack in one call (planes.reslice_planes). Ground
+    # truth: which plane's record changed is known because the test stamps it.
+    import shutil
+
+    import numpy as np
+
+    from stackbuild.folder import BuildFolder
+    from stackbuild.qc import figures, planes
+
+    root = tmp_path / "build"
+    shutil.copytree(first[0], root, symlinks=True)
+    folder = BuildFolder(root)
+    src = planes.open_planes(root, max_px=SETTINGS.reslice_px)
+    whole = planes.reslice_planes(src, 100.0, 120.0)
+    read = []
+    monkeypatch.setattr(figures, "reslice_lines",
+                        lambda s, x, y, zs: read.append(sorted(zs)) or planes.reslice_lines(s, x, y, zs))
+
+    def lines():
+        got = figures._reslice(folder, src, 100.0, 120.0, True)
+        assert all(np.array_equal(a, b) for a, b in zip(got, whole))
+        return read.pop()
+    assert lines() == list(range(src.depth))  # first report: every plane read
+    assert lines() == []  # nothing changed: every plane's lines kept
+    _stamp(root, {z: (f"plane{z}" if z != 4 else "plane4-new") for z in range(len(SECTIONS))})
+    assert lines() == [4]

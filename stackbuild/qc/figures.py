@@ -25,7 +25,7 @@ from ..folder import BuildFolder
 from ..render.fingerprint import digest
 from ..transforms.store import atomic_write_text
 from . import panels, plots
-from .planes import open_planes, reslice_planes, window
+from .planes import open_planes, reslice_lines, reslice_planes, window
 from .reuse import render_fingerprints, stored_measurement, write_measurement
 from .sections import jsonable
 from .settings import ReportSettings
@@ -168,13 +168,42 @@ def _reslice_figure(folder, doc, settings, store, px) -> list:
 
     # keyed by the pixels it shows (two lines through every plane, read at a coarse level): an update that
     # rewrote shards the lines do not cross keeps the figure
-    xz, yz = reslice_planes(src, x, y)
+    xz, yz = _reslice(folder, src, x, y, store.reuse)
 
     def draw():
         return panels.reslice(xz, yz, aspect, (x, y), src.factor, px)
 
     return [store.get("reslice", "Orthogonal re-slices through the worst spot of the worst section",
                       [_pixels(xz, yz), _where(src), x, y, aspect, px], draw)]
+
+
+def _reslice(folder: BuildFolder, src, x: float, y: float, reuse: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Return :func:`~stackbuild.qc.planes.reslice_planes` at ``(x, y)``, reading only planes whose lines changed.
+
+    Each plane's two lines are kept with its render fingerprint (``DIR/qc/measured/figures/reslice-lines.json``,
+    float32 bytes in base64) and read again only when that changed, as the thumbnails are: a re-report after an
+    update reads the rewritten planes, not the stack.
+    """
+    base = digest({"v": FIGURE_VERSION, "where": _where(src), "x": x, "y": y, "shape": list(src.data.shape)})
+    path = folder.measurement_path("figures", "reslice-lines")
+    old = (stored_measurement(path) or {}) if reuse else {}
+    kept = old.get("planes", {}) if old.get("base") == base else {}
+    fps = render_fingerprints(folder, src)
+    lines = {}
+    for z in range(src.depth):
+        fp, had = fps.get(z), kept.get(str(z))
+        if fp is not None and had is not None and had[0] == fp:
+            lines[z] = tuple(np.frombuffer(base64.b64decode(a), np.float32) for a in had[1:])
+    lines.update(reslice_lines(src, x, y, [z for z in range(src.depth) if z not in lines]))
+    keep = {str(z): [fps[z]] + [base64.b64encode(np.ascontiguousarray(a, np.float32).tobytes()).decode("ascii")
+                                for a in lines[z]]
+            for z in range(src.depth) if fps.get(z) is not None}
+    if keep != kept or old.get("base") != base:
+        write_measurement(path, {"base": base, "planes": keep})
+    if not lines:
+        return reslice_planes(src, x, y)
+    return (np.stack([lines[z][0] for z in range(src.depth)]).astype(np.float32),
+            np.stack([lines[z][1] for z in range(src.depth)]).astype(np.float32))
 
 
 def _pixels(*arrays) -> str:

@@ -548,6 +548,7 @@ def write_metrics(doc: dict, qc_dir: str | Path, meas: Measurements | None = Non
     """
     from ..transforms.store import atomic_write_text
     from .sections import jsonable
+    from .tables import write_table
 
     qc_dir = Path(qc_dir)
     qc_dir.mkdir(parents=True, exist_ok=True)
@@ -556,8 +557,12 @@ def write_metrics(doc: dict, qc_dir: str | Path, meas: Measurements | None = Non
     atomic_write_text(path, json.dumps(jsonable(slim), indent=1, allow_nan=False) + "\n")
     paths = [path]
     for name in ("tiles", "pairs"):
-        rows = doc[name] if name in doc else (stored_rows(meas, name) if meas is not None else [])
-        paths.append(_write_csv(qc_dir / f"{name}.csv", rows))
+        out = qc_dir / f"{name}.csv"
+        if name in doc or meas is None:
+            paths.append(_write_csv(out, doc.get(name) or []))
+        else:  # from per-section parts: a re-report writes again only the sections measured again
+            paths.append(write_table(meas.build, meas.sections, name, out, _flat,
+                                     lambda out=out, name=name: _write_csv(out, stored_rows(meas, name))))
     for name in ("sections", "channels", "landmarks"):
         if doc.get(name) or name not in ("channels", "landmarks"):
             paths.append(_write_csv(qc_dir / f"{name}.csv", doc[name]))

@@ -207,6 +207,20 @@ def _lazy_planes(build_dir: Path, max_factor, max_px) -> PlaneSource | None:
 
 def reslice_planes(source: PlaneSource, x: float, y: float) -> tuple[np.ndarray, np.ndarray]:
     """Return the ``(z, x)`` slice at level-0 row ``y`` and the ``(z, y)`` slice at column ``x``."""
+    lines = reslice_lines(source, x, y, range(source.depth))
+    if not lines:
+        b = source.bin
+        return (np.zeros((0, source.data.shape[-1] // b), np.float32),
+                np.zeros((0, source.data.shape[-2] // b), np.float32))
+    return np.stack([lines[z][0] for z in sorted(lines)]), np.stack([lines[z][1] for z in sorted(lines)])
+
+
+def reslice_lines(source: PlaneSource, x: float, y: float, planes) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+    """Return ``{z: (row, column)}``: plane ``z``'s pixels along level-0 row ``y`` and along column ``x``.
+
+    Consecutive planes are read in one call; each plane is reduced on its own, so its lines are
+    the same numbers however the planes are grouped (a re-report reads only the planes that changed).
+    """
     b = source.bin
     lx = source.data.shape[-1] // b
     ly = source.data.shape[-2] // b
@@ -217,11 +231,21 @@ def reslice_planes(source: PlaneSource, x: float, y: float) -> tuple[np.ndarray,
         a = source.data[key]
         return np.asarray(a.compute() if hasattr(a, "compute") else a, np.float32)
 
-    xz = read((slice(None), slice(row * b, row * b + b), slice(0, lx * b))).reshape(
-        source.depth, b, lx, b).mean(axis=(1, 3))
-    yz = read((slice(None), slice(0, ly * b), slice(col * b, col * b + b))).reshape(
-        source.depth, ly, b, b).mean(axis=(2, 3))
-    return xz, yz
+    zs = sorted({int(z) for z in planes})
+    runs = [[z] for z in zs[:1]]
+    for z in zs[1:]:
+        if z == runs[-1][-1] + 1:
+            runs[-1].append(z)
+        else:
+            runs.append([z])
+    out = {}
+    for run in runs:
+        z0, z1 = run[0], run[-1] + 1
+        xz = read((slice(z0, z1), slice(row * b, row * b + b), slice(0, lx * b)))
+        yz = read((slice(z0, z1), slice(0, ly * b), slice(col * b, col * b + b)))
+        for k in range(z1 - z0):
+            out[z0 + k] = (xz[k].reshape(b, lx, b).mean(axis=(0, 2)), yz[k].reshape(ly, b, b).mean(axis=(1, 2)))
+    return out
 
 
 def window(source: PlaneSource, z: int, x: float, y: float, half: int) -> np.ndarray:

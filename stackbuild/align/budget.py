@@ -27,6 +27,8 @@ FEATURE_BYTES_PER_PX = 190.0
 RENDER_BYTES_PER_PX = 48.0
 #: sparse normal equations + preconditioner per unknown of a block solve (measured ~400-700)
 SOLVE_BYTES_PER_UNKNOWN = 800.0
+#: tasks a mapper keeps on the cluster at once (the bound of stackbuild/run/cluster.py: IN_FLIGHT)
+IN_FLIGHT_TASKS = 10_000
 
 
 @dataclass
@@ -98,9 +100,13 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
         TaskKind("align.solve", blocks * rounds, PROCESS_BYTES + solve,
                  f"{unknowns} unknowns per component ({s.region_nodes}+2x{s.solve_halo} nodes square x sections)"),
     ]
-    # the driver: every section's field on the grid (float32 x 2), the coarse inliers, task lists
+    # the driver: every section's field on the grid (float32 x 2), the coarse inliers, and the region
+    # tasks in flight (made one by one as the mapper submits them, at most IN_FLIGHT_TASKS on the
+    # cluster, each pickled with its seen sections' fields cut to the block and halo) plus each one's
+    # bookkeeping in the client (some kB; rule of thumb, no source)
     fields = n_sections * nodes * nodes * 2 * 4
     inliers = links * 4000 * 2 * 2 * 8
-    driver = PROCESS_BYTES + fields + inliers + blocks * windows * 2000
+    task_bytes = held * (min(s.region_nodes, nodes) + 2 * s.solve_halo) ** 2 * 2 * 4 + 4000
+    driver = PROCESS_BYTES + fields + inliers + min(blocks * windows, IN_FLIGHT_TASKS) * task_bytes
     return {"tasks": tasks, "driver_bytes": driver, "largest_task_bytes": max(t.bytes_each for t in tasks),
             "grid_nodes": nodes, "node_blocks": blocks, "windows": windows}

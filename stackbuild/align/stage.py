@@ -195,7 +195,7 @@ class _Plan:
         self.halo = max(2, settings.solve_halo)
 
     def region_tasks(self, aligns, tag, neighbours, consecutive=False, subpixel=True, coarsening=1):
-        """Return one :class:`RegionTask` per node block x window.
+        """Return a generator of one :class:`RegionTask` per node block x window, and the number of windows.
 
         ``coarsening``: the tasks render and match at ``elastic_scale`` times
         this, with blocks and search of the same size in full-resolution pixels.
@@ -207,17 +207,20 @@ class _Plan:
             grid = replace(grid, scale=grid.scale * coarsening,
                            reach=block_reach(s.match_half_size, s.match_max_shift))
         wins = windows(self.sections, s.region_sections, neighbours)
-        tasks = []
-        for b, (rows, cols) in enumerate(self.blocks):
-            for w, (own, seen) in enumerate(wins):
-                if consecutive:   # each section with the next present one, across lost ones
-                    links = [(a, seen[i + 1]) for i, a in enumerate(seen[:-1]) if a in own]
-                else:
-                    links = window_links(own, seen, neighbours)
-                als = tuple(crop_alignment(aligns[z], self.grid, rows, cols, self.halo) for z in seen)
-                tasks.append(RegionTask(self.source, grid, b, rows, cols, als, tuple(links), tuple(own),
-                                        s, str(self.scratch / f"{tag}_b{b}_w{w}.npz"), subpixel))
-        return tasks, len(wins)
+
+        def tasks():
+            # made as the mapper submits them: a production round has about 180,000 (each some 50 kB
+            # pickled, every seen section's field cut to the block), too many to hold at once
+            for b, (rows, cols) in enumerate(self.blocks):
+                for w, (own, seen) in enumerate(wins):
+                    if consecutive:   # each section with the next present one, across lost ones
+                        links = [(a, seen[i + 1]) for i, a in enumerate(seen[:-1]) if a in own]
+                    else:
+                        links = window_links(own, seen, neighbours)
+                    als = tuple(crop_alignment(aligns[z], self.grid, rows, cols, self.halo) for z in seen)
+                    yield RegionTask(self.source, grid, b, rows, cols, als, tuple(links), tuple(own),
+                                     s, str(self.scratch / f"{tag}_b{b}_w{w}.npz"), subpixel)
+        return tasks(), len(wins)
 
     def solve_tasks(self, tag, n_windows, fields):
         """Return one :class:`SolveTask` per node block; writes each block's prior fields to scratch."""
@@ -317,7 +320,7 @@ def _final_residuals(plan, aligns, mapper) -> dict:
     round's solve gives them from its own matches, see :func:`_elastic`).
     """
     tasks, _ = plan.region_tasks(aligns, "final", 1, consecutive=True)
-    return _merged(mapper(residual_job, [replace(t, out="") for t in tasks]))
+    return _merged(mapper(residual_job, (replace(t, out="") for t in tasks)))
 
 
 def _flags(sections, facts, solved, found, share, settings) -> dict[int, list[str]]:

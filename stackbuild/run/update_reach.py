@@ -88,11 +88,13 @@ def compare_blocks(old: np.ndarray, new: np.ndarray, block: int = BLOCK, min_std
             a0, b0 = a - a.mean(), b - b.mean()
             nccs.append(float((a0 * b0).sum() / math.sqrt(float((a0 * a0).sum()) * float((b0 * b0).sum()))))
             corners.append((y0, x0))
+    def cut(img: np.ndarray, part: list) -> np.ndarray:
+        return np.stack([img[y:y + by, x:x + bx] for y, x in part]).astype(np.float32)
+
     shifts = []
     for k in range(0, len(corners), COMPARE_BATCH):
         part = corners[k:k + COMPARE_BATCH]
-        cut = lambda img: np.stack([img[y:y + by, x:x + bx] for y, x in part]).astype(np.float32)  # noqa: E731
-        shifts += list(match_block_pairs(cut(old), cut(new), int(max_shift)).shifts)
+        shifts += list(match_block_pairs(cut(old, part), cut(new, part), int(max_shift)).shifts)
     return [(float(math.hypot(*d)), c) for d, c in zip(shifts, nccs)]
 
 

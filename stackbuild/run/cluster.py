@@ -196,7 +196,8 @@ class WorkerWatch:
 #: region tasks of some 50 kB pickled each (every section's field cut to its block): all at once
 #: they would hold about 9 GB in this process and as many scheduler states; 10,000 in flight keep
 #: about 20 queued per core of a 512-core cluster (each task's overhead in the scheduler is 200 us
-#: to 1 ms, Dask Best Practices) and bound what the driver holds.
+#: to 1 ms, Dask Best Practices) and bound what the driver holds (the align stage's plan,
+#: align/budget.py: IN_FLIGHT_TASKS, counts the same number).
 IN_FLIGHT = 10_000
 
 

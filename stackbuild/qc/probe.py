@@ -217,7 +217,7 @@ def _measure_regions(job: PairJob, source: PlaneSource, pts, region, regions, sh
     """Fill ``shifts``, ``ncc``, ``beyond`` (pairs x blocks) for the blocks of ``regions``, one region at a time."""
     st = job.settings
     h, w = source.data.shape[-2] // source.bin, source.data.shape[-1] // source.bin
-    _, half, search, margin = probe_geometry(source, st, w * source.factor, h * source.factor)
+    spacing, half, search, margin = probe_geometry(source, st, w * source.factor, h * source.factor)
     f = source.factor
     reach = int(np.ceil(st.probe_reach / f))
     reduce = reach > search
@@ -238,7 +238,6 @@ def _measure_regions(job: PairJob, source: PlaneSource, pts, region, regions, sh
         work.append((sel, box, active, sorted({z for p in active for z in p})))
     # rows of the block grid's chunks that blocks are cut from (with the data mask's 4 px and a 32-row Blosc block
     # at each end): where they are most of the rows, chunks are decoded whole, as one call of their codec
-    spacing = probe_geometry(source, st, w * f, h * f)[0]
     lazy = (2 * (plan.reach + 4) + 1 + 32) < LAZY_ROWS * spacing
     reader = WindowReader(source, coarse, margin, COARSE, reduce and coarse is None,
                           [(z, box, pts[sel]) for sel, box, _, planes in work for z in planes], lazy=lazy)

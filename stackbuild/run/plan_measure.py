@@ -30,10 +30,11 @@ KIND_OF = {"_stitch_one": "stitch.section", "features_job": "align.features", "p
            "seam_job": "report.seams"}
 
 
-def _status(field: str) -> int:
-    """Return a ``/proc/self/status`` size field (``VmRSS``, ``VmHWM``) in bytes, or 0 where there is none."""
+def status_bytes(field: str, pid: int | str = "self") -> int:
+    """Return a ``/proc/<pid>/status`` size field (``VmRSS``, ``VmHWM``) in bytes, or 0 where there is none
+    (not Linux, or the process is gone)."""
     try:
-        with open("/proc/self/status", encoding="ascii") as fh:
+        with open(f"/proc/{pid}/status", encoding="ascii") as fh:
             for line in fh:
                 if line.startswith(field + ":"):
                     return int(line.split()[1]) * 1024
@@ -55,7 +56,7 @@ def _reset_resident_peak() -> int:
             fh.write("5")
     except OSError:
         return 0
-    return _status("VmRSS")
+    return status_bytes("VmRSS")
 
 
 class TaskMeter:
@@ -83,7 +84,7 @@ class TaskMeter:
     def _task_done(self, kind: str, cur: int, c0: float, result, rss0: int = 0) -> None:
         cpu = time.process_time() - c0
         self._task_cpu += cpu
-        resident = _status("VmHWM") - rss0 if rss0 else 0
+        resident = status_bytes("VmHWM") - rss0 if rss0 else 0
         now, peak = tracemalloc.get_traced_memory()
         try:
             sent = len(pickle.dumps(result, protocol=pickle.HIGHEST_PROTOCOL))

@@ -81,18 +81,6 @@ class Run(NamedTuple):
     peak: int
 
 
-def _hwm(pid: int) -> int:
-    """Return a live process's peak resident size so far (``VmHWM``, bytes; 0 once it is gone)."""
-    try:
-        with open(f"/proc/{pid}/status", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith("VmHWM:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return 0
-
-
 def _cli(*args, env=None, check=True) -> Run:
     """Run ``stackbuild ARGS --quiet`` in a child process; return its :class:`Run`.
 
@@ -102,6 +90,8 @@ def _cli(*args, env=None, check=True) -> Run:
     reached just before a process exits is not missed.
     """
     import psutil
+
+    from stackbuild.run.plan_measure import status_bytes
 
     t0 = time.perf_counter()
     # `python -m` puts the working directory first on sys.path: run from the tree given by PYTHONPATH.
@@ -118,7 +108,7 @@ def _cli(*args, env=None, check=True) -> Run:
                     pids = [proc.pid] + [c.pid for c in psutil.Process(proc.pid).children(recursive=True)]
                 except psutil.NoSuchProcess:
                     return
-                peak[0] = max([peak[0]] + [_hwm(pid) for pid in pids])
+                peak[0] = max([peak[0]] + [status_bytes("VmHWM", pid) for pid in pids])
         watcher = threading.Thread(target=sample, daemon=True)
         watcher.start()
         _, status, usage = os.wait4(proc.pid, 0)

@@ -23,17 +23,19 @@ STAT_SAMPLES = 1 << 16
 
 
 @functools.lru_cache(maxsize=8)
-def _quadratic_basis(h: int, w: int) -> np.ndarray:
-    """Return the ``(h * w, 6)`` basis ``1, u, v, u^2, uv, v^2`` of a 2-D quadratic on ``[-1, 1]^2``; read-only.
+def _quadratic_fit(h: int, w: int) -> tuple[np.ndarray, np.ndarray]:
+    """Return the ``(h * w, 6)`` basis ``1, u, v, u^2, uv, v^2`` of a 2-D quadratic on ``[-1, 1]^2`` and its
+    pseudo-inverse (``numpy.linalg.pinv``, so a fit is one matrix-vector product); read-only.
 
-    Kept per shape: every tile of a section has the same block grid, and building it cost
-    half of :func:`_minus_quadratic`.
+    Kept per shape: every tile of a section has the same block grid.
     """
     yy, xx = np.mgrid[:h, :w]
     u, v = (2 * xx + 1) / w - 1.0, (2 * yy + 1) / h - 1.0
     basis = np.stack([np.ones_like(u), u, v, u * u, u * v, v * v], axis=-1).reshape(-1, 6)
+    inverse = np.linalg.pinv(basis)
     basis.setflags(write=False)
-    return basis
+    inverse.setflags(write=False)
+    return basis, inverse
 
 
 def _minus_quadratic(values: np.ndarray) -> np.ndarray:
@@ -41,8 +43,8 @@ def _minus_quadratic(values: np.ndarray) -> np.ndarray:
     h, w = values.shape
     if h < 3 or w < 3:
         return values - values.mean()
-    basis = _quadratic_basis(h, w)
-    coef = np.linalg.lstsq(basis, values.ravel().astype(np.float64), rcond=None)[0]
+    basis, inverse = _quadratic_fit(h, w)
+    coef = inverse @ values.ravel().astype(np.float64)
     return (values - (basis @ coef).reshape(h, w)).astype(np.float32)
 
 

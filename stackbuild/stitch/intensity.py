@@ -42,7 +42,8 @@ def tile_thumbnail(image: np.ndarray, step: int) -> np.ndarray:
     mean = float(img.mean())
     if mean <= 0:
         raise ValueError("tile mean must be > 0 to normalise it")
-    return cv2.resize(img / mean, (ws, hs), interpolation=cv2.INTER_AREA)
+    # block means of the tile, then divided by its mean: the same as averaging the divided tile
+    return cv2.resize(img, (ws, hs), interpolation=cv2.INTER_AREA) / np.float32(mean)
 
 
 def _polynomial_fit(values: np.ndarray, degree: int) -> np.ndarray:

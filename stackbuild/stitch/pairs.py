@@ -79,7 +79,7 @@ def ncc_after_shift(fixed: np.ndarray, moving: np.ndarray, shift_xy: tuple[float
     warped = cv2.warpAffine(np.ascontiguousarray(moving, dtype=np.float32), m, (w, h),
                             flags=cv2.INTER_LINEAR | cv2.WARP_INVERSE_MAP, borderMode=cv2.BORDER_REPLICATE)
     bx, by = math.ceil(abs(dx)) + 1, math.ceil(abs(dy)) + 1
-    fa = fixed[by:h - by, bx:w - bx].astype(np.float32)
+    fa = np.asarray(fixed[by:h - by, bx:w - bx], np.float32)
     fb = warped[by:h - by, bx:w - bx]
     if fa.size < 4:
         return 0.0, fa, fb
@@ -119,11 +119,20 @@ def _coarse_canvases(strip_a, strip_b, ov: Overlap, nominal, binning: int = 1,
     h = binning * scipy.fft.next_fast_len(-(-(max(pa[3], pb[3]) - uy0 + reach) // binning), real=True)
     out = []
     for strip, p in ((strip_a, pa), (strip_b, pb)):
-        c = np.zeros((h, w), np.float32)
-        s = strip.astype(np.float32)
-        c[p[1] - uy0:p[3] - uy0, p[0] - ux0:p[2] - ux0] = (s - s.mean()) * taper_window(*s.shape, COARSE_TAPER)
+        c = np.zeros((h // binning, w // binning), np.float32)
+        s = np.asarray(strip, np.float32)
+        # Each strip is binned on its own, laid on the bin grid of the canvas (zero rows and columns in
+        # front up to the bin boundary), which gives the same block means as binning the whole canvas.
+        ox, oy = p[0] - ux0, p[1] - uy0
+        lx, ly = ox % binning, oy % binning
+        bw, bh = -(-(lx + s.shape[1]) // binning), -(-(ly + s.shape[0]) // binning)
+        buf = np.zeros((bh * binning, bw * binning), np.float32) if binning > 1 else c[oy:oy + bh, ox:ox + bw]
+        view = buf[ly:ly + s.shape[0], lx:lx + s.shape[1]]
+        np.subtract(s, np.float32(s.mean()), out=view)
+        view *= taper_window(*s.shape, COARSE_TAPER)
         if binning > 1:
-            c = cv2.resize(c, (w // binning, h // binning), interpolation=cv2.INTER_AREA)
+            c[oy // binning:oy // binning + bh, ox // binning:ox // binning + bw] = cv2.resize(
+                buf, (bw, bh), interpolation=cv2.INTER_AREA)
         out.append(c)
     return out[0], out[1]
 

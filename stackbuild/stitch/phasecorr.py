@@ -108,9 +108,11 @@ def _pad_fast(img: np.ndarray) -> np.ndarray:
 @lru_cache(maxsize=WINDOW_CACHE)
 def _gaussian_weight(m: int, n: int, sigma: float) -> np.ndarray:
     """Return ``exp(-|f|^2 / (2 sigma^2))`` on the ``rfft2`` frequency grid (cycles per pixel), float32."""
-    fy = np.fft.fftfreq(m)[:, None]
-    fx = np.fft.rfftfreq(n)[None, :]
-    g = np.exp(-(fx * fx + fy * fy) / (2.0 * sigma * sigma)).astype(np.float32)
+    fy = np.fft.fftfreq(m)
+    fx = np.fft.rfftfreq(n)
+    # separable: exp(-(fx^2 + fy^2) / 2s^2) = exp(-fy^2 / 2s^2) exp(-fx^2 / 2s^2), two 1-D exponentials
+    g = np.outer(np.exp(-fy * fy / (2.0 * sigma * sigma)).astype(np.float32),
+                 np.exp(-fx * fx / (2.0 * sigma * sigma)).astype(np.float32))
     g.setflags(write=False)
     return g
 
@@ -122,26 +124,41 @@ def _signed(n: int) -> np.ndarray:
     return s
 
 
-def _dft_at(spec: np.ndarray, n_cols: int, ys: np.ndarray, xs: np.ndarray) -> np.ndarray:
-    """Return the inverse DFT of the half spectrum ``spec`` at rows ``ys`` x columns ``xs`` (any reals).
+def _dft_at(spec: np.ndarray, n_cols: int, y0: float, x0: float, offsets: np.ndarray) -> np.ndarray:
+    """Return the inverse DFT of the half spectrum ``spec`` at rows ``y0 + offsets`` x columns ``x0 + offsets``.
 
     ``spec`` is the ``rfft`` cross-power spectrum, shape ``(M, n_cols//2 + 1)``.
     The inverse DFT is evaluated by two matrix products (Guizar-Sicairos et
     al. 2008); Hermitian symmetry lets the half spectrum stand in for the
     full one: every column except 0 and Nyquist counts twice, then the real
-    part is taken.
+    part is taken. ``exp(2 pi i k (y0 + o) / M)`` is the row phase at ``y0``
+    times a kernel that depends only on the grid (cached), so each call
+    evaluates sines and cosines along one axis only.
     """
     m, nh = spec.shape
+    base_y, base_x = _grid_kernels(m, n_cols, nh, offsets.tobytes())
+    kern_y = base_y * _cis(float(y0) * _signed(m), m)[None, :]
+    kern_x = base_x * _cis(float(x0) * np.arange(nh, dtype=np.float64), n_cols)[:, None]
+    return (kern_y @ spec @ kern_x).real
+
+
+@lru_cache(maxsize=4 * WINDOW_CACHE)
+def _grid_kernels(m: int, n_cols: int, nh: int, offsets: bytes) -> tuple[np.ndarray, np.ndarray]:
+    """Return the DFT kernels of a grid of ``offsets`` around 0 (rows ``(len, m)``, columns ``(nh, len)``, the
+    half spectrum's column weights folded in); read-only. Small: ``len * (m + nh)`` complex64 values."""
+    offs = np.frombuffer(offsets, np.float64)
     ky = _signed(m).astype(np.float64)
     kx = np.arange(nh, dtype=np.float64)
-    kern_y = _cis(np.outer(ys, ky), m)
     weight = np.full(nh, 2.0, np.float32)
     weight[0] = 1.0
     if n_cols % 2 == 0:
         weight[-1] = 1.0
-    kern_x = _cis(np.outer(kx, xs), n_cols)
+    kern_y = _cis(np.outer(offs, ky), m)
+    kern_x = _cis(np.outer(kx, offs), n_cols)
     kern_x *= weight[:, None]
-    return (kern_y @ spec @ kern_x).real
+    kern_y.setflags(write=False)
+    kern_x.setflags(write=False)
+    return kern_y, kern_x
 
 
 def _cis(cycles: np.ndarray, period: int) -> np.ndarray:
@@ -167,7 +184,7 @@ def _refine(spec: np.ndarray, n_cols: int, y0: float, x0: float, upsample: int) 
     for step, half in ((1.0 / coarse, int(np.ceil(0.75 * coarse))),
                        (1.0 / upsample, int(np.ceil(upsample / coarse)))):
         offs = np.arange(-half, half + 1) * step
-        up = _dft_at(spec, n_cols, y0 + offs, x0 + offs)
+        up = _dft_at(spec, n_cols, y0, x0, offs)
         j, i = np.unravel_index(int(np.argmax(up)), up.shape)
         y0, x0 = y0 + offs[j], x0 + offs[i]
     return round(y0 * upsample) / upsample, round(x0 * upsample) / upsample
@@ -195,10 +212,14 @@ def _peak_and_ratio(surface: np.ndarray, max_shift: float | None) -> tuple[float
     return float(dy), float(dx), float(ratio)
 
 
-def _centred(img: np.ndarray, weight: np.ndarray) -> np.ndarray:
-    """Return ``img`` minus its ``weight``-weighted mean, so that ``img * weight`` has no DC term."""
-    total = float(weight.sum(dtype=np.float64))
-    mean = float((img * weight).sum(dtype=np.float64)) / total if total > 0 else float(img.mean())
+def _centred(img: np.ndarray, wy: np.ndarray, wx: np.ndarray) -> np.ndarray:
+    """Return ``img`` minus its mean weighted by the separable window ``outer(wy, wx)``, so that ``img * window``
+    has no DC term (the weighted sum as two matrix-vector products, not a weighted copy of the image)."""
+    total = float(wy.sum(dtype=np.float64)) * float(wx.sum(dtype=np.float64))
+    if total > 0:
+        mean = float(np.dot((wy @ img).astype(np.float64), wx)) / total
+    else:
+        mean = float(img.mean())
     return img - np.float32(mean)
 
 
@@ -320,8 +341,9 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
     m0, n0 = a.shape
     if window:
         w = hann_window(m0, n0)
-        a = _pad_fast(_centred(a, w) * w)
-        b_in = _pad_fast(_centred(b, w) * w)
+        wy, wx = _hann_at(m0, 0.0), _hann_at(n0, 0.0)
+        a = _pad_fast(_centred(a, wy, wx) * w)
+        b_in = _pad_fast(_centred(b, wy, wx) * w)
     else:
         b_in = b
     m, n = a.shape
@@ -336,11 +358,13 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
     elif upsample > 1:
         sigma = REFINE_SIGMA if lowpass is None else min(float(lowpass), REFINE_SIGMA)
         weight = _gaussian_weight(m, n, sigma)
-        y0, x0 = _refine(cross * weight, n, y0, x0, upsample)
+        # the surface's spectrum already carries this weight when the low-pass is the refinement's
+        y0, x0 = _refine(spec if sigma == lowpass else cross * weight, n, y0, x0, upsample)
         if window and max(abs(y0), abs(x0)) >= MOVED_WINDOW_FROM:
             # the window moved by the estimate: the windowed moving image is now the windowed
             # fixed one moved by the shift, so the window no longer pulls the peak toward 0
-            moved = np.outer(_hann_at(m0, y0), _hann_at(n0, x0))
-            cross = _normalised(conj_fa, _pad_fast(_centred(b, moved) * moved), spectral_exponent)
+            wy, wx = _hann_at(m0, y0), _hann_at(n0, x0)
+            moved = np.outer(wy, wx)
+            cross = _normalised(conj_fa, _pad_fast(_centred(b, wy, wx) * moved), spectral_exponent)
             y0, x0 = _refine(cross * weight, n, y0, x0, upsample)
     return (x0, y0), ratio

@@ -121,13 +121,13 @@ class _Corrector:
         self.full: dict[tuple[int, int], np.ndarray] = {}
 
     def __call__(self, strip: np.ndarray, pad, tile: TileEntry) -> np.ndarray:
-        raw = strip.astype(np.float32)
         if self.profile is None:
-            return raw
+            return strip.astype(np.float32)
         key = (tile.height, tile.width)
         if key not in self.full:
             self.full[key] = illumination_at_tile_size(self.profile, tile.height, tile.width)
-        return raw / self.full[key][_slice(pad)]
+        # 8- and 16-bit pixels are exact in float32: divided as they are, without a float copy first
+        return np.divide(strip, self.full[key][_slice(pad)], dtype=np.float32)
 
 
 def stream_pairs(tiles: list[TileEntry], overlaps: list[Overlap], order: np.ndarray,

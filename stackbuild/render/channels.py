@@ -27,7 +27,6 @@ import cv2
 import numpy as np
 import tifffile
 import zarr
-from dask import delayed
 
 from ..errors import InputError
 from ..manifest import image_header
@@ -185,6 +184,8 @@ def _write_channel(folder, name, recs, canvas, settings, progress, done_before, 
     def finish(i: int) -> None:
         done[todo[i]] = fps[todo[i]]
         write_plane_record(target, stamp, done, damaged)
+
+    from dask import delayed
 
     compute_each(mapper)([delayed(write_marker_plane, pure=False)(j) for j in jobs], finish)
     # Returned without error: every plane is written, whether or not the scheduler called back

@@ -19,8 +19,6 @@ from typing import TYPE_CHECKING
 
 import cv2
 import numpy as np
-from dask.base import tokenize
-from dask.highlevelgraph import HighLevelGraph
 
 from ..errors import InputError
 from ..folder import BuildFolder
@@ -33,7 +31,7 @@ from .reduce import level_shapes, reduce2x2
 from ..sampler import interpolation_order, render_region
 from ..tiles import SectionTiles
 
-if TYPE_CHECKING:  # imported where used: render and update tasks never need dask.array (0.4-1 s to import)
+if TYPE_CHECKING:  # dask is imported where a graph is made: render tasks and small updates never import it
     import dask.array as da
 
 
@@ -153,6 +151,10 @@ def level0(plan: RenderPlan, planes: list[int] | None = None) -> da.Array:
         if not 0 <= p < plan.depth:
             raise ValueError(f"plane {p} is outside the volume (depth {plan.depth})")
     ys, xs = block_edges(plan.height, plan.chunk), block_edges(plan.width, plan.chunk)
+    import dask.array as da
+    from dask.base import tokenize
+    from dask.highlevelgraph import HighLevelGraph
+
     name = "stackbuild-level0-" + tokenize(plan, planes, records_token(plan, planes))
     dsk = {}
     for k, z in enumerate(planes):
@@ -161,8 +163,6 @@ def level0(plan: RenderPlan, planes: list[int] | None = None) -> da.Array:
                 dsk[(name, k, i, j)] = (render_block, plan, z, a, b, c, d)
     chunks = ((1,) * len(planes), tuple(b - a for a, b in ys), tuple(d - c for c, d in xs))
     graph = HighLevelGraph.from_collections(name, dsk, dependencies=[])
-    import dask.array as da
-
     return da.Array(graph, name, chunks, dtype=np.dtype(plan.dtype))
 
 
@@ -196,6 +196,9 @@ def reduce_level(arr: da.Array, reducer: str, block: int) -> da.Array:
     """
     if any(set(c[:-1]) - {block} for c in arr.chunks[1:]) or set(arr.chunks[0]) != {1}:
         arr = arr.rechunk((1, block, block))
+    from dask.base import tokenize
+    from dask.highlevelgraph import HighLevelGraph
+
     name = "stackbuild-reduce-" + tokenize(arr.name, reducer, block)
     nz, ny, nx = arr.numblocks
     dsk = {}

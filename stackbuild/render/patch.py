@@ -19,13 +19,12 @@ from __future__ import annotations
 import json
 import math
 import time
+import uuid
 from dataclasses import asdict
 from pathlib import Path
 
 import numpy as np
 import zarr
-from dask.base import tokenize
-from dask.delayed import Delayed
 
 from ..folder import BuildFolder
 from ..transforms.records import Canvas
@@ -33,7 +32,7 @@ from .dirty import all_shards, pyramid_shards
 from .fingerprint import em_fingerprints, read_plane_record, write_plane_record
 from .lazy import RenderPlan, block_edges
 from .ngff import multiscales_attrs, root_attrs
-from .pyramid import compute_each, join_shard, render_shard
+from .pyramid import compute_each, compute_locally, join_shard, render_shard, run_graph_here
 from .reduce import level_shapes, reduce2x2
 
 
@@ -81,16 +80,16 @@ def _fit_arrays(em: Path, canvas: Canvas, shapes, settings, attrs: dict) -> tupl
 
 
 def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reducer: str, block: int,
-           keep: dict[int, list] | None = None) -> list:
-    """Return one delayed per plane of ``dirty`` (``{z: [level-0 set, level-1 set, ...]}``) writing its dirty shards.
+           keep: dict[int, list] | None = None) -> tuple[dict, list]:
+    """Return the task graph (dask's dict form) and one final key per plane of ``dirty`` (``{z: [level-0 set,
+    level-1 set, ...]}``), whose task finishes once the plane's dirty shards are written.
 
     ``keep`` maps planes whose stored level 0 may be read back to the pixel boxes that can change
     (``changed`` of :func:`~stackbuild.render.pyramid.render_shard`); other planes' dirty shards
     are rendered whole.
     """
     keep = keep or {}
-    token = tokenize(plan, {z: [sorted(s) for s in v] for z, v in dirty.items()},
-                     [str(a.store_path) for a in arrays], shapes, reducer, block, time.time_ns())
+    token = uuid.uuid4().hex  # keys only need to be unique to this graph
     top = len(arrays) - 1
     dsk, finals = {}, []
     for z, levels in sorted(dirty.items()):
@@ -125,8 +124,26 @@ def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reduce
                 keys.append(key)
         final = (f"stackbuild-patch-done-{token}", z)
         dsk[final] = (_plane_done, *keys)
-        finals.append(Delayed(final, dsk))
-    return finals
+        finals.append(final)
+    return dsk, finals
+
+
+#: A patch with at most this many level-0 shards to render runs in this process without dask when the
+#: mapper computes here: importing dask costs 0.25 s or more, rendering a 4096 px shard about 0.5 s, and
+#: dask's threads would run two at a time.
+HERE_WITHOUT_DASK = 2
+
+
+def _compute(dsk: dict, finals: list, finish, mapper) -> None:
+    """Run the patch graph on ``mapper``'s cluster, or here: without dask when it is small, else on dask's threads."""
+    on_cluster = compute_each(mapper) is not compute_locally
+    renders = sum(1 for task in dsk.values() if task[0] is render_shard)
+    if not on_cluster and renders <= HERE_WITHOUT_DASK:
+        run_graph_here(dsk, finals, finish)
+        return
+    from dask.delayed import Delayed
+
+    compute_each(mapper)([Delayed(key, dsk) for key in finals], finish)
 
 
 def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *, previous: Canvas | None = None,
@@ -191,7 +208,7 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
     plan = RenderPlan.from_canvas(store.root, canvas, settings)
     order = sorted(dirty)
     fresh = em_fingerprints(store, canvas, settings, order)
-    tasks = _graph(plan, arrays, shapes, dirty, settings.reducer, block, keep)
+    dsk, finals = _graph(plan, arrays, shapes, dirty, settings.reducer, block, keep)
     finished = [0]
     if progress is not None:
         progress(0, len(order))
@@ -203,8 +220,8 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
         if progress is not None:
             progress(finished[0], len(order))
 
-    if tasks:
-        compute_each(mapper)(tasks, finish)
+    if finals:
+        _compute(dsk, finals, finish, mapper)
     counts = [sum(len(v[n]) for v in dirty.values()) for n in range(len(shapes))]
     totals = [len(all_shards(s, block)) * canvas.depth for s in shapes]
     return {"planes": order, "shards": counts, "shards_total": totals, "seconds": time.perf_counter() - t0}

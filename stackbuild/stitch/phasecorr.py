@@ -190,19 +190,34 @@ def _refine(spec: np.ndarray, n_cols: int, y0: float, x0: float, upsample: int) 
     return round(y0 * upsample) / upsample, round(x0 * upsample) / upsample
 
 
-def _peak_and_ratio(surface: np.ndarray, max_shift: float | None) -> tuple[float, float, float]:
-    """Return the integer peak ``(dy, dx)`` inside the search window and its ratio to the runner-up."""
-    m, n = surface.shape
+def _surface(spec: np.ndarray, m: int, n: int, max_shift: float | None):
+    """Return the correlation surface of the half spectrum ``spec`` at the shifts within ``max_shift``, and the
+    signed shifts of its rows and columns.
+
+    When the search keeps at most half of the rows, the inverse runs along the columns first and only
+    the kept rows are transformed along the rows (the same values as the full inverse, at a fraction
+    of its cost for a search much smaller than the image).
+    """
     sy, sx = _signed(m), _signed(n)
-    rows = np.arange(m) if max_shift is None else np.flatnonzero(np.abs(sy) <= max_shift)
-    cols = np.arange(n) if max_shift is None else np.flatnonzero(np.abs(sx) <= max_shift)
-    sub = surface[np.ix_(rows, cols)]
+    if max_shift is None:
+        return scipy.fft.irfft2(spec, s=(m, n)), sy, sx
+    rows = np.flatnonzero(np.abs(sy) <= max_shift)
+    cols = np.flatnonzero(np.abs(sx) <= max_shift)
+    if 2 * len(rows) > m:
+        return scipy.fft.irfft2(spec, s=(m, n))[np.ix_(rows, cols)], sy[rows], sx[cols]
+    part = scipy.fft.ifft(spec, axis=0)[rows]
+    return scipy.fft.irfft(part, n=n, axis=1)[:, cols], sy[rows], sx[cols]
+
+
+def _peak_and_ratio(sub: np.ndarray, sy: np.ndarray, sx: np.ndarray, m: int, n: int) -> tuple[float, float, float]:
+    """Return the integer peak ``(dy, dx)`` of the searched surface ``sub`` (rows at shifts ``sy``, columns at
+    ``sx``, of a full ``m`` x ``n`` surface) and its ratio to the runner-up."""
     r, c = np.unravel_index(int(np.argmax(sub)), sub.shape)
     peak = float(sub[r, c])
-    dy, dx = int(sy[rows[r]]), int(sx[cols[c]])
+    dy, dx = int(sy[r]), int(sx[c])
     # Exclude the peak's (2k+1)^2 neighbourhood, distances measured with wrap-around.
-    near_r = np.abs((sy[rows] - dy + m // 2) % m - m // 2) <= PEAK_EXCLUSION
-    near_c = np.abs((sx[cols] - dx + n // 2) % n - n // 2) <= PEAK_EXCLUSION
+    near_r = np.abs((sy - dy + m // 2) % m - m // 2) <= PEAK_EXCLUSION
+    near_c = np.abs((sx - dx + n // 2) % n - n // 2) <= PEAK_EXCLUSION
     sub[np.ix_(near_r, near_c)] = -np.inf
     second = float(sub.max())
     if not np.isfinite(second) or second <= 0:
@@ -351,8 +366,7 @@ def phase_correlate(fixed: np.ndarray, moving: np.ndarray, upsample: int = 100,
     np.conjugate(conj_fa, out=conj_fa)
     cross = _normalised(conj_fa, b_in, spectral_exponent)
     spec = cross if lowpass is None else cross * _gaussian_weight(m, n, float(lowpass))
-    surface = scipy.fft.irfft2(spec, s=(m, n))
-    y0, x0, ratio = _peak_and_ratio(surface, max_shift)
+    y0, x0, ratio = _peak_and_ratio(*_surface(spec, m, n, max_shift), m, n)
     if upsample > 1 and classical:
         y0, x0 = _refine(spec, n, y0, x0, upsample)
     elif upsample > 1:

@@ -243,3 +243,16 @@ def test_sampled_focus_is_the_variance_of_scipy_laplacian_on_a_grid():
     lap = ndi.laplace(img.astype(np.float64))
     assert sampled_focus(img) == pytest.approx(float(lap[1:-1:4, 1:-1:4].var()), rel=1e-5)
     assert sampled_focus(img) == pytest.approx(focus_measure(img), rel=0.05)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 4096, 4097])
+def test_median_is_numpy_median(n):
+    """The one-partition median gives numpy.median's value (the reference) on odd and even counts, on
+    Immerkaer responses of skimage.data.camera (integer-valued, many ties) and on noise."""
+    from stackbuild.stitch.inspect import median
+
+    img = data.camera().astype(np.float32)
+    resp = (img[:-2, 1:-1] + img[2:, 1:-1] + img[1:-1, :-2] + img[1:-1, 2:] - 4 * img[1:-1, 1:-1]).ravel()[:n]
+    noise = np.random.default_rng(n).standard_normal(n).astype(np.float32)
+    for values in (resp, noise, np.abs(resp - np.median(resp))):
+        assert median(values) == float(np.median(values))

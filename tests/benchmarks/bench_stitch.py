@@ -154,13 +154,9 @@ def _peak_rss_mib() -> float:
     carried over from the parent through fork and exec, so a child started
     by a parent holding a big synthetic scene would report the parent's peak.
     """
-    try:
-        for line in Path("/proc/self/status").read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024
-    except OSError:
-        pass
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    from stackbuild.run.plan_measure import status_bytes
+
+    return status_bytes("VmHWM") / 2 ** 20 or resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def _task_peak(tiles) -> tuple[float, float, float]:

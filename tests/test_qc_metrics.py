@@ -144,6 +144,27 @@ def test_the_noise_taken_off_is_the_noise_the_jitter_holds():
     assert np.mean(est) == pytest.approx(np.mean(0.5 * np.sqrt(2 * (1 - h))), rel=0.05)
 
 
+def test_blocks_solved_in_batches_give_what_one_solve_gives(monkeypatch):
+    # No outside reference: the kernel's memory bound (zchain.BATCH_BYTES) must not change a number. Each block's
+    # chain and fit are its own, so a batch of one block gives what all 40 together give (refused links, false
+    # matches the rejection rounds drop, and a local fit of 9 planes with its robust rounds included).
+    from stackbuild.qc import zchain
+
+    rng = np.random.default_rng(3)
+    z = np.arange(40)
+    a, b = np.r_[z[:-1], z[:-2]], np.r_[z[1:], z[2:]]
+    e = rng.normal(0.0, 0.7, (40, 40, 2))
+    d = e[b] - e[a] + rng.normal(0.0, 0.2, (len(a), 40, 2))
+    d[rng.random((len(a), 40)) < 0.4] = np.nan
+    d[rng.random((len(a), 40)) < 0.02] += 8.0
+    whole = block_jitter(z, a, b, d, window=9)
+    monkeypatch.setattr(zchain, "BATCH_BYTES", 1)
+    one = block_jitter(z, a, b, d, window=9)
+    for name in ("jitter", "noise_var", "shrink"):
+        np.testing.assert_allclose(getattr(one, name), getattr(whole, name), rtol=0, atol=1e-12, err_msg=name)
+    assert one.sigma == whole.sigma
+
+
 def test_the_planted_tile_is_named_worst(planted):
     _, doc, _ = planted
     worst = doc["worst"]["tile"]
@@ -405,6 +426,33 @@ def test_seams_come_from_the_stitchers_offsets_checked_against_the_raw_tiles(pla
     assert all(sb.source == "tiles" for sb in got)
     sb = next(sb for sb in got if (sb.a, sb.b) == (bad.a, bad.b))
     assert np.hypot(*np.median(sb.blocks.shifts, axis=0)) < 0.5
+
+
+def test_a_table_is_replaced_whole_or_left_as_it_was(tmp_path):
+    # No outside reference: the writer's own promise (POSIX rename replaces a file in one step). A reader of
+    # tiles.csv mid-report saw a table cut short while it was written in place.
+    import os
+
+    from stackbuild.qc.tables import replace_file
+
+    path = tmp_path / "tiles.csv"
+    path.write_text("old\n", encoding="utf-8")
+    fresh = tmp_path / "fresh"
+    fresh.write_text("")
+
+    def half_then_fail(fh):
+        fh.write("new, half")
+        raise OSError("disk full")
+
+    with pytest.raises(OSError):
+        replace_file(path, half_then_fail)
+    assert not replace_file(path, lambda fh: fh.write("columns differ") and False)
+    assert path.read_text(encoding="utf-8") == "old\n"
+    assert set(os.listdir(tmp_path)) == {"tiles.csv", "fresh"}      # nothing left beside it
+    assert replace_file(path, lambda fh: fh.write("a,b\n1,2\n") > 0)
+    assert path.read_text(encoding="utf-8") == "a,b\n1,2\n"
+    assert set(os.listdir(tmp_path)) == {"tiles.csv", "fresh"}
+    assert path.stat().st_mode & 0o777 == fresh.stat().st_mode & 0o777  # a new file's mode, not mkstemp's 0600
 
 
 def test_tables_from_kept_section_parts_equal_the_whole_table_written_again(planted, tmp_path):

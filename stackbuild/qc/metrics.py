@@ -489,6 +489,8 @@ def _write_csv(path: Path, rows) -> Path:
     """
     import tempfile
 
+    from .tables import replace_file
+
     cols: list[str] = []
     with tempfile.TemporaryFile("w+", newline="", encoding="utf-8") as tmp:
         for r in rows:
@@ -498,11 +500,15 @@ def _write_csv(path: Path, rows) -> Path:
                     cols.append(k)
             tmp.write(json.dumps(flat) + "\n")
         tmp.seek(0)
-        with open(path, "w", newline="", encoding="utf-8") as fh:
+
+        def write(fh) -> bool:
             w = csv.DictWriter(fh, fieldnames=cols)
             w.writeheader()
             for line in tmp:
                 w.writerow(json.loads(line))
+            return True
+
+        replace_file(path, write)   # a reader never sees half a table
     return path
 
 

@@ -44,6 +44,10 @@ import numpy as np
 #: plain least-squares line (no robust rounds)
 ESTIMATE_VERSION = 5
 
+#: memory bound of :func:`block_jitter`'s per-block (planes x planes) arrays (the chain's covariance factor and the
+#: fit's rows, float64), bytes: blocks are solved in batches that fit
+BATCH_BYTES = 16 * 2 ** 20
+
 
 @dataclass
 class Jitter:
@@ -139,15 +143,16 @@ def _chain(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray):
     return u, cov, rss, max(dof, 0), part
 
 
-def _chains(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray, keep: np.ndarray):
+def _chains(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray, keep: np.ndarray, with_cov: bool = True):
     """Return every block's track ``(n, B, 2)``, noise covariance factor ``(B, n, n)``, link residuals ``(L, B)``, RSS, dof and parts ``(n, B)``.
 
     ``keep`` ``(L, B)`` says which links each block uses; blocks using the same links are solved
-    together (:func:`_chain`): one pseudo-inverse per set of links, not per block.
+    together (:func:`_chain`): one pseudo-inverse per set of links, not per block. Without
+    ``with_cov`` the covariance factors are not kept (None: they grow with the square of the planes).
     """
     nb = d.shape[1]
     tracks = np.full((n, nb, 2), np.nan)
-    covariances = np.zeros((nb, n, n))
+    covariances = np.zeros((nb, n, n)) if with_cov else None
     parts = np.full((n, nb), -1)
     residuals = np.full((len(a), nb), np.nan)
     rss_total, dof_total = 0.0, 0
@@ -159,7 +164,8 @@ def _chains(n: int, a: np.ndarray, b: np.ndarray, d: np.ndarray, keep: np.ndarra
         good = keep[:, cols[0]]
         u, cov, rss, dof, part = _chain(n, a[good], b[good], d[good][:, cols])
         tracks[:, cols] = u
-        covariances[cols] = cov
+        if with_cov:
+            covariances[cols] = cov
         parts[:, cols] = part[:, None]
         residuals[np.ix_(good, cols)] = np.hypot(*np.moveaxis(u[b[good]] - u[a[good]] - d[good][:, cols], -1, 0))
         rss_total += float(np.sum(rss))
@@ -295,8 +301,14 @@ def block_jitter(z: np.ndarray, a: np.ndarray, b: np.ndarray, shifts: np.ndarray
         raise ValueError(f"window must be >= 3 planes, got {window}")
     nz, nb = len(z), d.shape[1]
     keep = np.isfinite(d[..., 0])
+    # blocks are solved and fitted each on their own: in batches, so that the per-block (planes x planes)
+    # covariance and fit rows stay under BATCH_BYTES whatever the run's length (150 blocks x 104 planes
+    # held 26 MB at once before); when every block fits one batch, the last rejection round's solve is it
+    per = max(1, int(BATCH_BYTES // (2 * 8 * max(nz, 1) ** 2)))
     for _ in range(rejection_rounds + 1):
-        tracks, covariances, res, rss_total, dof_total, parts = _chains(nz, a, b, d, keep)
+        used = keep.copy()                      # the links the tracks below are solved from
+        solved = _chains(nz, a, b, d, keep, with_cov=per >= nb)
+        res, rss_total, dof_total = solved[2:5]
         # a false match (repeated or fresh content) is an outlier of the chain: drop links that
         # disagree with the rest by more than 4 robust sigmas (common practice, no source)
         fin = res[np.isfinite(res)]
@@ -320,14 +332,17 @@ def block_jitter(z: np.ndarray, a: np.ndarray, b: np.ndarray, shifts: np.ndarray
         # wanders (a random walk along z, largest at the stack's ends after the line), and the robust rounds read
         # it low there (realistic/long seeds 0-2 and 7-9: 78-97 % of sections within with one round, 67-94 % with 3)
         whole_stack = z.max() - z.min() <= max(1, window // 2) if nz else True
-        slow, hat, gain, factor = _robust_slow(z, tracks, window, noise, rounds=1 if whole_stack else 3,
-                                               cov=covariances, parts=parts)
-        jitter[:] = tracks - slow
-        shrink[:] = np.clip(gain / (1.0 - whole)[:, None], 0.05, 4.0)
-        # the noise that reaches the jitter, through the chain and the fit together, in the estimate's
-        # units (divided by shrink, as the jitter is): a track's noise is not white (a chain's errors
-        # add up along z), and the fit takes its slow part away with the track's slow change
-        noise_var[:] = 2.0 * noise ** 2 * factor / shrink
+        for lo in range(0, nb, per):
+            cols = slice(lo, lo + per)
+            tracks, covariances, _, _, _, parts = solved if per >= nb else _chains(nz, a, b, d[:, cols], used[:, cols])
+            slow, hat, gain, factor = _robust_slow(z, tracks, window, noise, rounds=1 if whole_stack else 3,
+                                                   cov=covariances, parts=parts)
+            jitter[:, cols] = tracks - slow
+            shrink[:, cols] = np.clip(gain / (1.0 - whole)[:, None], 0.05, 4.0)
+            # the noise that reaches the jitter, through the chain and the fit together, in the estimate's
+            # units (divided by shrink, as the jitter is): a track's noise is not white (a chain's errors
+            # add up along z), and the fit takes its slow part away with the track's slow change
+            noise_var[:, cols] = 2.0 * noise ** 2 * factor / shrink[:, cols]
     return Jitter(jitter, noise_var, shrink, sigma)
 
 

@@ -46,7 +46,6 @@ import argparse
 import csv
 import json
 import math
-import os
 import shutil
 import subprocess
 import sys
@@ -109,12 +108,11 @@ def _report_again(build: Path, tree: Path | None) -> subprocess.CompletedProcess
     Stored pair shifts are re-used when their fingerprints match (the probe's measurement did not
     change), so this re-solves only the estimate: the way to compare two estimators on the same builds.
     """
-    env = dict(os.environ)
-    if tree is not None:
-        env["PYTHONPATH"] = str(Path(tree).resolve()) + os.pathsep + env.get("PYTHONPATH", "")
+    from bench_qc import run_child  # this folder is first on sys.path when a bench runs as a script
+
     cmd = [sys.executable, "-c", "import sys; from stackbuild.cli import main; sys.exit(main())",
            "report", str(build), "--quiet"]
-    return subprocess.run(cmd, capture_output=True, text=True, env=env, cwd="/")
+    return run_child(cmd, tree)
 
 
 def run_case(family, variant, seed, work: Path, sections=None, workers=None, keep=False, config=None,

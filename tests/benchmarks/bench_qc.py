@@ -83,15 +83,27 @@ def bench_matcher() -> None:
           f"{len(pts) / t_ref:.0f} blocks/s, RMS error {np.sqrt(((np.array(ref) - true) ** 2).sum(1).mean()):.3f} px")
 
 
+def run_child(args: list[str], tree: str | Path | None = None) -> subprocess.CompletedProcess:
+    """Run ``args`` in a child with the stackbuild package in ``tree`` first on PYTHONPATH (None: as installed).
+
+    With a tree the child starts in ``/``: ``python -c`` and ``-m`` put the working directory first
+    on ``sys.path``, so a child started in the repository would import its tree whatever the path
+    says. The one way this bench and ``bench_accuracy.py`` start a report of another tree.
+    """
+    import os
+
+    env = dict(os.environ)
+    if tree:
+        env["PYTHONPATH"] = os.pathsep.join([str(Path(tree).resolve()), *filter(None, [env.get("PYTHONPATH")])])
+    return subprocess.run(args, capture_output=True, text=True, env=env, cwd="/" if tree else None)
+
+
 def _run(cmd: list[str], path: str | None = None) -> tuple[float, float, int]:
     """Run a command in a child (``path`` first on PYTHONPATH); return wall s, CPU s (user + sys of it and its
     children) and peak RSS (kB)."""
-    import os
-
-    env = dict(os.environ, **({"PYTHONPATH": path} if path else {}))
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
-    proc = subprocess.run(cmd, capture_output=True, text=True, env=env, cwd="/" if path else None)
+    proc = run_child(cmd, path)
     wall = time.perf_counter() - t0
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     if proc.returncode not in (0, 3):
@@ -127,12 +139,8 @@ _REPORT = ("import sys, resource, time; from stackbuild.qc.report import run_rep
 
 def _report(out: Path, mode: str, path: str | None = None) -> tuple[float, float, int, str]:
     """Run the report in a child (``path`` first on PYTHONPATH); return CPU s (imports included), its own CPU, peak kB, reuse."""
-    import os
-
-    env = dict(os.environ, **({"PYTHONPATH": path} if path else {}))
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
-    proc = subprocess.run([sys.executable, "-c", _REPORT, str(out), mode], capture_output=True, text=True, env=env,
-                          cwd="/")
+    proc = run_child([sys.executable, "-c", _REPORT, str(out), mode], path)
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     if proc.returncode:
         raise RuntimeError(proc.stderr[-2000:])
@@ -294,11 +302,7 @@ _ESTIMATE = ("import sys, json, shutil, warnings; warnings.simplefilter('ignore'
 
 def _estimate(out: Path, path: str | None) -> dict[int, tuple]:
     """Return ``{section: (align_error_px, uncertainty)}`` of the report of the tree at ``path`` (None: this one)."""
-    import os
-
-    env = dict(os.environ, **({"PYTHONPATH": path} if path else {}))
-    proc = subprocess.run([sys.executable, "-c", _ESTIMATE, str(out)], capture_output=True, text=True, env=env,
-                          cwd="/" if path else None)
+    proc = run_child([sys.executable, "-c", _ESTIMATE, str(out)], path)
     if proc.returncode:
         raise RuntimeError(proc.stderr[-2000:])
     return {int(k): tuple(v) for k, v in json.loads(proc.stdout.splitlines()[-1]).items()}

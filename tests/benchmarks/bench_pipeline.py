@@ -16,13 +16,15 @@ time to the stage then running (from ``build.json``). Printed side by side:
 Between the two sizes the *marginal* cost (extra wall / extra floor, and extra
 CPU / extra floor CPU) cancels start-up costs (cluster start, imports, the
 report's fixed work). With
-``--memory`` it also builds sections of 3 x 3 and 7 x 7 tiles and compares the
-peak memory of the largest process.
+``--memory`` it also builds 3 sections of 3 x 3 and of 7 x 7 tiles and compares the
+peak memory of the largest process (with ``--baseline``, the baseline's beside it,
+each size built by the baseline first); ``--memory-only`` does only that.
 
     python tests/benchmarks/bench_pipeline.py                      # 3 and 6 sections of 4 x 4 tiles of 1024 px
     python tests/benchmarks/bench_pipeline.py --sizes 5,10 --grid 5 --memory
     python tests/benchmarks/bench_pipeline.py --sizes 5,10 --grid 5 --keep-data /tmp/bench_stacks  # synthesise once
     python tests/benchmarks/bench_pipeline.py --sizes 5,10 --grid 5 --keep-data /tmp/bench_stacks --baseline /tmp/old
+    python tests/benchmarks/bench_pipeline.py --memory-only --keep-data /tmp/bench_stacks --baseline /tmp/old
 """
 from __future__ import annotations
 
@@ -246,6 +248,7 @@ def main(argv=None) -> None:
     ap.add_argument("--workers", type=int, default=2, help="local worker processes (default 2)")
     ap.add_argument("--memory", action="store_true",
                     help="also compare the largest process's peak at 3 x 3 and 7 x 7 tiles per section")
+    ap.add_argument("--memory-only", action="store_true", help="only the comparison of --memory (no marginal cost)")
     ap.add_argument("--keep-data", type=Path, default=None, metavar="DIR",
                     help="synthesise the stacks into DIR and reuse them on later runs (default: a temporary folder)")
     ap.add_argument("--baseline", type=Path, default=None, metavar="DIR",
@@ -256,27 +259,52 @@ def main(argv=None) -> None:
     with tempfile.TemporaryDirectory(prefix="bench_pipeline_", dir=os.environ.get("TMPDIR")) as tmp:
         tmp = Path(tmp)
         data = args.keep_data or tmp
-        a, base_a = one_size(tmp, data, n1, args.grid, args.tile, args.workers, args.baseline)
-        b, base_b = one_size(tmp, data, n2, args.grid, args.tile, args.workers, args.baseline)
-        print(f"{args.grid} x {args.grid} tiles of {args.tile} px per section, {args.workers} workers, "
-              f"{os.cpu_count()} cores")
-        if args.baseline is not None:
-            print(f"\nbaseline ({args.baseline}):")
-            report(base_a, base_b, args.workers)
-            print("\nthis tree:")
-        report(a, b, args.workers)
-        if args.baseline is not None:
-            stage_table((a, b), (base_a, base_b))
-        if args.memory:
-            small = run_build(synth(data / "m3", 3, 3, 1024), tmp / "mb3", args.workers)
-            big = run_build(synth(data / "m7", 3, 7, 1024), tmp / "mb7", args.workers)
-            print(f"\nlargest process peak, 3 sections of 3 x 3 vs 7 x 7 tiles of 1024 px: "
-                  f"{small['peak_rss'] / 1e6:.0f} MB vs {big['peak_rss'] / 1e6:.0f} MB "
-                  f"(ratio {big['peak_rss'] / small['peak_rss']:.2f})")
-            for stage in STAGES:
-                if stage in small["stage_rss"] or stage in big["stage_rss"]:
-                    a, b = small["stage_rss"].get(stage, 0), big["stage_rss"].get(stage, 0)
-                    print(f"  while {stage:<9} {a / 1e6:6.0f} MB vs {b / 1e6:6.0f} MB")
+        if not args.memory_only:
+            marginal(tmp, data, n1, n2, args)
+        if args.memory or args.memory_only:
+            memory(tmp, data, args.workers, args.baseline)
+
+
+def marginal(tmp: Path, data: Path, n1: int, n2: int, args) -> None:
+    """Build both sizes (each with the baseline first, if any) and print the marginal cost tables."""
+    a, base_a = one_size(tmp, data, n1, args.grid, args.tile, args.workers, args.baseline)
+    b, base_b = one_size(tmp, data, n2, args.grid, args.tile, args.workers, args.baseline)
+    print(f"{args.grid} x {args.grid} tiles of {args.tile} px per section, {args.workers} workers, "
+          f"{os.cpu_count()} cores")
+    if args.baseline is not None:
+        print(f"\nbaseline ({args.baseline}):")
+        report(base_a, base_b, args.workers)
+        print("\nthis tree:")
+    report(a, b, args.workers)
+    if args.baseline is not None:
+        stage_table((a, b), (base_a, base_b))
+
+
+def memory(tmp: Path, data: Path, workers: int, baseline: Path | None) -> None:
+    """Print the largest process's peak of 3 sections of 3 x 3 and of 7 x 7 tiles of 1024 px (baseline beside)."""
+    runs: dict[str, dict] = {}
+    for grid in (3, 7):
+        (data / f"m{grid}").mkdir(parents=True, exist_ok=True)
+        tiles = synth(data / f"m{grid}", 3, grid, 1024)
+        if baseline is not None:
+            runs[f"base{grid}"] = run_build(tiles, tmp / f"mbase{grid}", workers, baseline)
+            shutil.rmtree(tmp / f"mbase{grid}")
+        runs[f"this{grid}"] = run_build(tiles, tmp / f"mb{grid}", workers)
+        shutil.rmtree(tmp / f"mb{grid}")
+    trees = (["base"] if baseline is not None else []) + ["this"]
+    print("\nlargest process peak, 3 sections of 3 x 3 vs 7 x 7 tiles of 1024 px, MB (ratio 7x7 / 3x3)")
+    print(f"{'':<22}" + "".join(f"{('baseline' if t == 'base' else 'this tree'):>26}" for t in trees))
+    cells = []
+    for t in trees:
+        small, big = runs[f"{t}3"]["peak_rss"], runs[f"{t}7"]["peak_rss"]
+        cells.append(f"{small / 1e6:.0f} vs {big / 1e6:.0f} ({big / small:.2f})")
+    print(f"{'whole build':<22}" + "".join(f"{c:>26}" for c in cells))
+    for stage in STAGES:
+        cells = []
+        for t in trees:
+            small, big = runs[f"{t}3"]["stage_rss"].get(stage, 0), runs[f"{t}7"]["stage_rss"].get(stage, 0)
+            cells.append(f"{small / 1e6:.0f} vs {big / 1e6:.0f}" if small or big else "-")
+        print(f"{'  while ' + stage:<22}" + "".join(f"{c:>26}" for c in cells))
 
 
 if __name__ == "__main__":

@@ -4,7 +4,6 @@ from __future__ import annotations
 import shutil
 
 import numpy as np
-import pytest
 import zarr
 
 from stackbuild.folder import BuildFolder
@@ -58,13 +57,9 @@ def test_a_plane_not_fresh_before_is_rendered_whole(tiny_build, tmp_path):
     np.testing.assert_array_equal(np.asarray(level0[1]), truth)
 
 
-@pytest.mark.parametrize("here", [0, 1000])
-def test_the_patch_gives_the_same_bytes_on_dask_threads_and_without_dask(tiny_build, tmp_path, monkeypatch, here):
-    """Plane 1 overwritten on disk and patched whole comes back to the full render's pixels (the reference),
-    whether the patch graph runs on dask's threaded scheduler (here=0) or in this process without dask."""
-    from stackbuild.render import patch
-
-    monkeypatch.setattr(patch, "HERE_WITHOUT_DASK", here)
+def test_a_plane_overwritten_on_disk_and_patched_whole_comes_back(tiny_build, tmp_path):
+    """Plane 1 overwritten on disk and patched whole comes back to the full render's pixels (the
+    reference) at every level, through the patch's dask graph."""
     build = tmp_path / "b"
     shutil.copytree(tiny_build, build)
     em = build / "volume.zarr" / "em"
@@ -75,24 +70,3 @@ def test_the_patch_gives_the_same_bytes_on_dask_threads_and_without_dask(tiny_bu
     _patch(build, None)
     for a, want in zip(levels, truth):
         np.testing.assert_array_equal(np.asarray(a[1]), want)
-
-
-def test_graph_run_here_gives_what_dask_gives():
-    """A graph with shared and nested-list arguments: the same results as dask's own synchronous
-    scheduler (dask.get, the reference), each final reported once, in order."""
-    import dask
-
-    from stackbuild.render.pyramid import run_graph_here
-
-    got = {}
-    dsk = {("a", 0): (np.add, 1, 2), ("b", 0): (np.multiply, ("a", 0), 10),
-           ("c", 0): (sum, [("a", 0), ("b", 0), 5]), ("d", 0): (lambda rows, k: (rows, k), [[("c", 0)], [("b", 0)]], 3)}
-    finals = [("c", 0), ("d", 0)]
-    want = dask.get(dsk, finals)
-    done = []
-    dsk_here = dict(dsk)
-    dsk_here[("c", 0)] = (lambda *a: got.setdefault("c", sum(*a)), [("a", 0), ("b", 0), 5])
-    dsk_here[("d", 0)] = (lambda rows, k: got.setdefault("d", (rows, k)), [[("c", 0)], [("b", 0)]], 3)
-    run_graph_here(dsk_here, finals, done.append)
-    assert done == [0, 1]
-    assert (got["c"], got["d"]) == tuple(want)

@@ -32,7 +32,7 @@ from .dirty import all_shards, pyramid_shards
 from .fingerprint import em_fingerprints, read_plane_record, write_plane_record
 from .lazy import RenderPlan, block_edges
 from .ngff import multiscales_attrs, root_attrs
-from .pyramid import compute_each, compute_locally, join_shard, render_shard, run_graph_here
+from .pyramid import compute_each, join_shard, render_shard
 from .reduce import level_shapes, reduce2x2
 
 
@@ -128,19 +128,8 @@ def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reduce
     return dsk, finals
 
 
-#: A patch with at most this many level-0 shards to render runs in this process without dask when the
-#: mapper computes here: importing dask costs 0.25 s or more, rendering a 4096 px shard about 0.5 s, and
-#: dask's threads would run two at a time.
-HERE_WITHOUT_DASK = 2
-
-
 def _compute(dsk: dict, finals: list, finish, mapper) -> None:
-    """Run the patch graph on ``mapper``'s cluster, or here: without dask when it is small, else on dask's threads."""
-    on_cluster = compute_each(mapper) is not compute_locally
-    renders = sum(1 for task in dsk.values() if task[0] is render_shard)
-    if not on_cluster and renders <= HERE_WITHOUT_DASK:
-        run_graph_here(dsk, finals, finish)
-        return
+    """Run the patch graph on ``mapper``'s cluster, or on dask's threads here when it has none."""
     from dask.delayed import Delayed
 
     compute_each(mapper)([Delayed(key, dsk) for key in finals], finish)

@@ -19,8 +19,6 @@ written levels equal the lazy ones byte for byte.
 """
 from __future__ import annotations
 
-import os
-from concurrent.futures import ThreadPoolExecutor
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -29,7 +27,7 @@ from .lazy import RenderPlan, block_edges, records_token, render_block
 from .reduce import reduce2x2
 from .shardfile import shard_writer
 
-if TYPE_CHECKING:  # dask is imported where a graph is made: an update of a few shards runs without it
+if TYPE_CHECKING:  # dask is imported where a graph is made: render tasks never import it
     from dask.delayed import Delayed
 
 
@@ -183,68 +181,6 @@ def compute_locally(items: list, on_done) -> None:
     # function, not as "threads": dask then does not import distributed (0.4 s) to look for a client.
     with _Finished():
         dask.compute(*items, scheduler=threaded_get)
-
-
-def _is_key(arg, dsk: dict) -> bool:
-    """Return True if ``arg`` is a key of ``dsk`` (keys are tuples; a tuple holding a list cannot be one)."""
-    try:
-        return isinstance(arg, tuple) and arg in dsk
-    except TypeError:
-        return False
-
-
-def run_graph_here(dsk: dict, finals: list, on_done) -> None:
-    """Run the task graph ``dsk`` (dask's dict form: key -> ``(function, *args)``) in this process, without dask.
-
-    Calls ``on_done(i)`` once ``finals[i]`` is computed. An argument that is a key of ``dsk`` (or a
-    list of them, nested) is replaced by that task's result, as dask does; a result is dropped once
-    the last task that takes it has run. The tasks that take no other task's result (shard renders,
-    reads of stored quarters) run first, two at a time as dask's threads ran them; the rest one at a
-    time, depth first from each final key. For graphs of a few tasks, where importing dask (0.2 s or
-    more) costs more than the work: every leaf's result is held until it is taken.
-    """
-    def deps(arg, out):
-        if isinstance(arg, list):
-            for a in arg:
-                deps(a, out)
-        elif _is_key(arg, dsk):
-            out.append(arg)
-        return out
-
-    needs = {key: deps(list(task[1:]), []) for key, task in dsk.items()}
-    waiting: dict = {}
-    for found in needs.values():
-        for key in found:
-            waiting[key] = waiting.get(key, 0) + 1
-    results: dict = {}
-    leaves = [key for key, found in needs.items() if not found]
-    with ThreadPoolExecutor(max_workers=max(1, min(2, os.cpu_count() or 1))) as pool:
-        for key, out in zip(leaves, pool.map(lambda k: dsk[k][0](*dsk[k][1:]), leaves)):
-            results[key] = out
-
-    def value(arg):
-        if isinstance(arg, list):
-            return [value(a) for a in arg]
-        if _is_key(arg, dsk):
-            out = results[arg]
-            waiting[arg] -= 1
-            if not waiting[arg]:
-                del results[arg]
-            return out
-        return arg
-
-    def run(key) -> None:
-        for dep in needs[key]:
-            if dep not in results:
-                run(dep)
-        fn, *args = dsk[key]
-        results[key] = fn(*[value(a) for a in args])
-
-    for i, final in enumerate(finals):
-        if final not in results:
-            run(final)
-        results.pop(final, None)
-        on_done(i)
 
 
 def compute_each(mapper):

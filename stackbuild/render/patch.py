@@ -80,14 +80,15 @@ def _fit_arrays(em: Path, canvas: Canvas, shapes, settings, attrs: dict) -> tupl
 
 
 def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reducer: str, block: int,
-           keep: dict[int, list] | None = None) -> tuple[dict, list]:
-    """Return the task graph (dask's dict form) and one final key per plane of ``dirty`` (``{z: [level-0 set,
-    level-1 set, ...]}``), whose task finishes once the plane's dirty shards are written.
+           keep: dict[int, list] | None = None) -> list:
+    """Return one delayed per plane of ``dirty`` (``{z: [level-0 set, level-1 set, ...]}``) writing its dirty shards.
 
     ``keep`` maps planes whose stored level 0 may be read back to the pixel boxes that can change
     (``changed`` of :func:`~stackbuild.render.pyramid.render_shard`); other planes' dirty shards
     are rendered whole.
     """
+    from dask.delayed import Delayed
+
     keep = keep or {}
     token = uuid.uuid4().hex  # keys only need to be unique to this graph
     top = len(arrays) - 1
@@ -124,15 +125,8 @@ def _graph(plan: RenderPlan, arrays, shapes, dirty: dict[int, list[set]], reduce
                 keys.append(key)
         final = (f"stackbuild-patch-done-{token}", z)
         dsk[final] = (_plane_done, *keys)
-        finals.append(final)
-    return dsk, finals
-
-
-def _compute(dsk: dict, finals: list, finish, mapper) -> None:
-    """Run the patch graph on ``mapper``'s cluster, or on dask's threads here when it has none."""
-    from dask.delayed import Delayed
-
-    compute_each(mapper)([Delayed(key, dsk) for key in finals], finish)
+        finals.append(Delayed(final, dsk))
+    return finals
 
 
 def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *, previous: Canvas | None = None,
@@ -197,7 +191,7 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
     plan = RenderPlan.from_canvas(store.root, canvas, settings)
     order = sorted(dirty)
     fresh = em_fingerprints(store, canvas, settings, order)
-    dsk, finals = _graph(plan, arrays, shapes, dirty, settings.reducer, block, keep)
+    tasks = _graph(plan, arrays, shapes, dirty, settings.reducer, block, keep)
     finished = [0]
     if progress is not None:
         progress(0, len(order))
@@ -209,8 +203,8 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
         if progress is not None:
             progress(finished[0], len(order))
 
-    if finals:
-        _compute(dsk, finals, finish, mapper)
+    if tasks:
+        compute_each(mapper)(tasks, finish)
     counts = [sum(len(v[n]) for v in dirty.values()) for n in range(len(shapes))]
     totals = [len(all_shards(s, block)) * canvas.depth for s in shapes]
     return {"planes": order, "shards": counts, "shards_total": totals, "seconds": time.perf_counter() - t0}

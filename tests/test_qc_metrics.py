@@ -428,33 +428,6 @@ def test_seams_come_from_the_stitchers_offsets_checked_against_the_raw_tiles(pla
     assert np.hypot(*np.median(sb.blocks.shifts, axis=0)) < 0.5
 
 
-def test_a_table_is_replaced_whole_or_left_as_it_was(tmp_path):
-    # No outside reference: the writer's own promise (POSIX rename replaces a file in one step). A reader of
-    # tiles.csv mid-report saw a table cut short while it was written in place.
-    import os
-
-    from stackbuild.qc.tables import replace_file
-
-    path = tmp_path / "tiles.csv"
-    path.write_text("old\n", encoding="utf-8")
-    fresh = tmp_path / "fresh"
-    fresh.write_text("")
-
-    def half_then_fail(fh):
-        fh.write("new, half")
-        raise OSError("disk full")
-
-    with pytest.raises(OSError):
-        replace_file(path, half_then_fail)
-    assert not replace_file(path, lambda fh: fh.write("columns differ") and False)
-    assert path.read_text(encoding="utf-8") == "old\n"
-    assert set(os.listdir(tmp_path)) == {"tiles.csv", "fresh"}      # nothing left beside it
-    assert replace_file(path, lambda fh: fh.write("a,b\n1,2\n") > 0)
-    assert path.read_text(encoding="utf-8") == "a,b\n1,2\n"
-    assert set(os.listdir(tmp_path)) == {"tiles.csv", "fresh"}
-    assert path.stat().st_mode & 0o777 == fresh.stat().st_mode & 0o777  # a new file's mode, not mkstemp's 0600
-
-
 def test_tables_from_kept_section_parts_equal_the_whole_table_written_again(planted, tmp_path):
     # Reference: the whole table written from every stored row (csv.DictWriter, metrics._write_csv), and
     # Python's csv.DictReader reading the table back to the stored rows.

@@ -122,3 +122,35 @@ def test_displacement_field_matches_scipy_bilinear():
     expect = ref(np.column_stack([Y.ravel(), X.ravel()]))
     np.testing.assert_allclose(f.displacement(np.column_stack([X.ravel(), Y.ravel()])), expect, atol=1e-5)
     np.testing.assert_allclose(f.displacement_grid(xs, ys).reshape(-1, 2), expect, atol=1e-5)
+
+
+@pytest.mark.parametrize("durable", [True, False])
+def test_a_file_is_replaced_whole_or_left_as_it_was(tmp_path, durable):
+    # No outside reference: the writer's own promise (POSIX rename replaces a file in one step). A reader of
+    # tiles.csv mid-report saw a table cut short while it was written in place (the report's tables are
+    # written without fsync, the records with it).
+    import os
+    from functools import partial
+
+    from stackbuild.transforms.store import replace_atomically
+
+    replace_file = partial(replace_atomically, durable=durable, newline="")
+
+    path = tmp_path / "tiles.csv"
+    path.write_text("old\n", encoding="utf-8")
+    fresh = tmp_path / "fresh"
+    fresh.write_text("")
+
+    def half_then_fail(fh):
+        fh.write("new, half")
+        raise OSError("disk full")
+
+    with pytest.raises(OSError):
+        replace_file(path, half_then_fail)
+    assert not replace_file(path, lambda fh: fh.write("columns differ") and False)
+    assert path.read_text(encoding="utf-8") == "old\n"
+    assert set(os.listdir(tmp_path)) == {"tiles.csv", "fresh"}      # nothing left beside it
+    assert replace_file(path, lambda fh: fh.write("a,b\n1,2\n") > 0)
+    assert path.read_text(encoding="utf-8") == "a,b\n1,2\n"
+    assert set(os.listdir(tmp_path)) == {"tiles.csv", "fresh"}
+    assert path.stat().st_mode & 0o777 == fresh.stat().st_mode & 0o777  # a new file's mode, not mkstemp's 0600

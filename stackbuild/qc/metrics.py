@@ -489,7 +489,7 @@ def _write_csv(path: Path, rows) -> Path:
     """
     import tempfile
 
-    from .tables import replace_file
+    from ..transforms.store import replace_atomically
 
     cols: list[str] = []
     with tempfile.TemporaryFile("w+", newline="", encoding="utf-8") as tmp:
@@ -508,7 +508,7 @@ def _write_csv(path: Path, rows) -> Path:
                 w.writerow(json.loads(line))
             return True
 
-        replace_file(path, write)   # a reader never sees half a table
+        replace_atomically(path, write, durable=False, newline="")   # a reader never sees half a table
     return path
 
 

@@ -18,13 +18,11 @@ import csv
 import hashlib
 import io
 import json
-import os
-import tempfile
 from pathlib import Path
 from typing import Callable, TextIO
 
 from ..folder import BuildFolder
-from ..transforms.store import file_mode
+from ..transforms.store import replace_atomically
 from .reuse import stored_measurement, write_measurement
 from .sections import section_file
 
@@ -70,29 +68,5 @@ def write_table(build, sections: list[int], table: str, path: Path, flat: Callab
             fh.write(text)
         return columns is not None
 
-    return path if replace_file(path, write) else whole()
-
-
-def replace_file(path: Path, write: Callable[[TextIO], bool]) -> bool:
-    """Return whether ``path`` was replaced by what ``write`` wrote to a new file beside it.
-
-    ``write`` gets the new file open for text (UTF-8, newlines as written) and returns True to
-    keep it: it then takes ``path``'s place in one rename (``os.replace``), so a reader sees the
-    old table or the new one, never half of one. False, or an error, drops it and leaves ``path``
-    as it was. Not flushed to disk first (unlike the records, :func:`stackbuild.transforms.store.atomic_write_text`):
-    a table lost to a power cut is written again by the next report.
-    """
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        os.fchmod(fd, file_mode())          # the mode any new file gets (mkstemp alone gives 0600)
-        with os.fdopen(fd, "w", newline="", encoding="utf-8") as fh:
-            keep = write(fh)
-        if keep:
-            os.replace(tmp, path)
-            return True
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    Path(tmp).unlink(missing_ok=True)
-    return False
+    # a reader never sees half a table; one lost to a power cut is written again by the next report
+    return path if replace_atomically(path, write, durable=False, newline="") else whole()

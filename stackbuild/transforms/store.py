@@ -24,6 +24,7 @@ import os
 import shutil
 import tempfile
 from pathlib import Path
+from typing import Callable, TextIO
 
 import numpy as np
 import zarr
@@ -60,23 +61,44 @@ def file_mode() -> int:
     return 0o666 & ~umask
 
 
-def atomic_write_text(path: Path, text: str) -> None:
-    """Write ``text`` to ``path`` atomically (temporary file in the same folder, then rename).
+def replace_atomically(path: Path, write: Callable[[TextIO], bool], *, durable: bool = True,
+                       newline: str | None = None) -> bool:
+    """Return whether ``path`` was replaced by what ``write`` wrote to a new file beside it.
 
+    ``write`` gets the new file open for text (UTF-8; ``newline`` as :func:`open` takes it) and
+    returns True to keep it: it then takes ``path``'s place in one rename (``os.replace``), so a
+    reader sees the old file or the new one, never half of one. False, or an error, drops it and
+    leaves ``path`` as it was. ``durable`` flushes the new file to disk before the rename (records
+    a crash must not lose); without it a power cut can lose the new file, not corrupt the old one.
     The file gets the mode the umask gives any new file (``mkstemp`` alone would make it 0600).
     """
+    path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
     try:
         os.fchmod(fd, file_mode())
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
+        with os.fdopen(fd, "w", newline=newline, encoding="utf-8") as fh:
+            keep = write(fh)
+            if keep and durable:
+                fh.flush()
+                os.fsync(fh.fileno())
+        if keep:
+            os.replace(tmp, path)
+            return True
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise
+    Path(tmp).unlink(missing_ok=True)
+    return False
+
+
+def atomic_write_text(path: Path, text: str) -> None:
+    """Write ``text`` to ``path`` atomically and durably (:func:`replace_atomically`)."""
+    def write(fh) -> bool:
+        fh.write(text)
+        return True
+
+    replace_atomically(path, write)
 
 
 class TransformStore:

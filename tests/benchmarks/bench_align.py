@@ -156,14 +156,10 @@ def _peak_bytes() -> int:
     """Return this process's peak resident memory: VmHWM (ru_maxrss is carried over exec from the parent
     that forked it, here the benchmark process that made the mosaics, which showed its size instead)."""
     import resource
-    try:
-        with open("/proc/self/status", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith("VmHWM:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+    from stackbuild.run.plan_measure import status_bytes
+
+    return status_bytes("VmHWM") or resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
 
 
 def _measured(fn, args):

@@ -175,10 +175,9 @@ def _worker_reads() -> tuple[dict, int]:
     which has just made gigapixel mosaics).
     """
     from stackbuild import tiles
+    from stackbuild.run.plan_measure import status_bytes
 
-    status = Path("/proc/self/status").read_text()
-    peak_kb = int(status.split("VmHWM:")[1].split()[0])
-    return dict(tiles.PIXELS_READ), peak_kb * 1024
+    return dict(tiles.PIXELS_READ), status_bytes("VmHWM")
 
 
 def _reads_per_tile(tile: int, keep: Path | None) -> None:

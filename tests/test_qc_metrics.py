@@ -240,8 +240,8 @@ def test_elastic_and_copied_numbers_equal_the_records(planted):
     row = next(r for r in doc["sections"] if r["section"] == 3)
     assert row["elastic"]["max"] == pytest.approx(float(mag.max()), rel=1e-6)
     assert row["elastic"]["rms"] == pytest.approx(float(np.sqrt(np.mean(mag ** 2))), rel=1e-6)
-    assert row["inliers"] == {"4": 43}  # copied from the aligner's coarse-stage record
-    assert row["aligner_stats"]["coarse"]["pairs"]["4"]["inliers"] == 43
+    assert row["inliers"] == {"+1": 43}  # copied from the aligner's coarse-stage record (section 4: offset +1)
+    assert row["aligner_stats"]["coarse"]["pairs"]["+1"]["inliers"] == 43
     rec = json.loads((root / "transforms" / "sections" / "00001" / "stitch.json").read_text())["record"]
     rejected = [p for p in rec["pairs"] if not p["accepted"]]
     assert doc["totals"]["rejected"] == len(rejected) == 1

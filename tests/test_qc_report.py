@@ -57,6 +57,9 @@ def test_files_and_verdict(report):
     with open(qc / "sections.csv", newline="") as fh:
         rows = list(csv.DictReader(fh))
     assert len(rows) == 5 and {"section", "align_error_px", "align_error_unc_px", "stitch.rms"} <= set(rows[0])
+    # neighbours are columns by offset (inliers.+1, inliers.+2), not one set per section of the stack
+    neighbour = [c for c in rows[0] if c.startswith(("inliers.", "aligner_stats.coarse.pairs."))]
+    assert neighbour and all(c.split(".")[1 if c.startswith("inliers.") else 3][0] in "+-" for c in neighbour)
 
 
 def test_lazy_volume_finds_the_same_planted_errors(report):

@@ -28,7 +28,7 @@ pixels) and ``stage_x``, ``stage_y`` (stage, full-resolution pixels), see
                     ``beyond``; tissue change included, for information), ``tiles``,
                     ``pairs_accepted``, ``pairs_rejected``, ``stitch`` (summary over the
                     section's pair ``residual`` values), ``stitcher_stats``, ``inliers``
-                    (``{neighbour section: RANSAC inliers}``), ``elastic`` (``{"rms",
+                    (``{neighbour's offset: RANSAC inliers}``, offsets ``"+1"``, ``"-2"``), ``elastic`` (``{"rms",
                     "max", "at"}`` of the stored field), ``aligner_stats``.
 ``flagged_tiles``   tiles that carry a flag (at most :data:`FLAGGED_TILES_IN_JSON`),
                     as rows of ``tiles.csv``.
@@ -198,11 +198,30 @@ def _section_rows(sections, sums: dict[int, dict], meas, sc: _Scale, settings) -
             "pairs_accepted": sm.get("pairs_accepted", 0), "pairs_rejected": sm.get("pairs_rejected", 0),
             "stitch": sm.get("stitch") or summarize([]) | {"at": None},
             "stitcher_stats": sm.get("stitcher_stats") or {},
-            "inliers": sm.get("inliers") or {},
+            "inliers": by_offset(sm.get("inliers") or {}, s),
             "elastic": sm.get("elastic") or {"rms": None, "max": None, "at": None},
-            "aligner_stats": sm.get("aligner_stats") or {},
+            "aligner_stats": _aligner_stats(sm.get("aligner_stats") or {}, s),
         })
     return rows
+
+
+def by_offset(per_neighbour: dict, section: int) -> dict:
+    """Return ``{neighbour section: value}`` keyed by the neighbour's offset instead (``"+1"``, ``"-2"``).
+
+    A section's links are to its near neighbours, so keyed by offset every row of ``sections.csv``
+    has the same few columns (``inliers.+1``, ``inliers.+2``, ...). Keyed by section number, the
+    table had a set of columns per section of the stack, nearly all empty: 36 sections made 250
+    columns; 400 would make about 3,000.
+    """
+    return {f"{int(k) - section:+d}": v for k, v in sorted(per_neighbour.items(), key=lambda kv: int(kv[0]))}
+
+
+def _aligner_stats(stats: dict, section: int) -> dict:
+    """Return the aligner's statistics of one section with its coarse pairs keyed by offset (:func:`by_offset`)."""
+    coarse = stats.get("coarse")
+    if not isinstance(coarse, dict) or not isinstance(coarse.get("pairs"), dict):
+        return stats
+    return {**stats, "coarse": {**coarse, "pairs": by_offset(coarse["pairs"], section)}}
 
 
 def _image_size(path: str) -> tuple[int, int] | None:

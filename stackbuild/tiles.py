@@ -8,7 +8,8 @@ then is named instead of silently rendered.
 A tile shared by neighbouring output blocks is decoded and corrected once and
 then served from a per-process cache (:data:`TILE_CACHE`). The cache is
 bounded in bytes, sized from the tiles it serves (:func:`cache_bytes_for`: room
-for :data:`TILES_KEPT` prepared tiles of the largest size asked for), and
+for :data:`TILES_KEPT` full-resolution prepared tiles of the largest tile size seen,
+so more at a reduced scale), and
 evicts the least recently used entry first. Entries are keyed by the file's
 path, size and modification time, so a re-imaged tile is read afresh.
 
@@ -19,7 +20,6 @@ from __future__ import annotations
 
 import functools
 import hashlib
-import math
 import threading
 from collections import Counter, OrderedDict
 from dataclasses import dataclass
@@ -318,17 +318,23 @@ class ByteLRU:
             self.max_bytes = max(self.max_bytes, int(max_bytes))
 
 
-#: Prepared tiles the per-process cache has room for: the 2 x 2 tiles under one output
-#: shard and those of the shard next to it (common practice, no source). At 4096 x 4096
-#: px tiles at full resolution this is 8 x 64 MiB = 512 MiB per process.
+#: Full-resolution prepared tiles' worth of bytes the per-process cache has room for: the 2 x 2
+#: tiles under one output shard and those of the shard next to it (common practice, no source).
+#: At 4096 x 4096 px tiles this is 8 x 64 MiB = 512 MiB per process. Tiles reduced by a scale
+#: take about a scale squared times less room, so more fit in the same bytes (31 at scale 2):
+#: the align stage's region tasks render every section of their window at a reduced scale.
 TILES_KEPT = 8
 #: Illumination profiles at tile size kept per process (a task renders one or two sections).
 ILLUMINATIONS_KEPT = 2
 
 
-def cache_bytes_for(height: int, width: int, scale: int = 1) -> int:
-    """Return the cache bound for tiles of ``height x width`` px read at ``scale``: :data:`TILES_KEPT` prepared tiles."""
-    return TILES_KEPT * 4 * (math.ceil(height / scale) + 2) * (math.ceil(width / scale) + 2)
+def cache_bytes_for(height: int, width: int) -> int:
+    """Return the cache bound for tiles of ``height x width`` px: :data:`TILES_KEPT` full-resolution prepared tiles.
+
+    The same bytes whatever scale the tiles are read at, so the bound depends on the tile
+    size only (and a process that reads reduced tiles holds no more than one that renders).
+    """
+    return TILES_KEPT * 4 * (height + 2) * (width + 2)
 
 
 #: The per-process cache of prepared tiles; its bound grows with the tiles it serves.
@@ -418,7 +424,7 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
     except OSError:
         raise InputError("tile is missing", file=p, section=section) from None
     key = (str(p), st.st_size, st.st_mtime_ns, profile_key, float(tile.gain), float(tile.offset), scale)
-    TILE_CACHE.grow_to(cache_bytes_for(tile.height, tile.width, scale))
+    TILE_CACHE.grow_to(cache_bytes_for(tile.height, tile.width))
     with _PREP_LOCKS[hash(key) % len(_PREP_LOCKS)]:  # two threads never prepare the same tile
         value = TILE_CACHE.get(key)
         if value is None:
@@ -452,11 +458,8 @@ def correct_tile(raw: np.ndarray, tile, illumination: np.ndarray | None, scale: 
         Reduction factor (block means, :func:`block_mean`).
     """
     if scale != 1:
-        img = raw.astype(np.float32)
-        if illumination is not None:
-            img = img / illumination
-        if tile.gain != 1.0 or tile.offset != 0.0:
-            img = np.float32(tile.gain) * img + np.float32(tile.offset)
+        img = np.empty(raw.shape, np.float32)
+        _correct_into(img, raw, tile, illumination)   # the same float32 operations, without a converted copy
         value = cv2.copyMakeBorder(block_mean(img, scale), 1, 1, 1, 1, cv2.BORDER_REPLICATE)
     else:
         # Full resolution, the hot path of the render: gain * raw / illumination is

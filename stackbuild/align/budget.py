@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+from ..tiles import cache_bytes_for
 from .blockmatch import block_reach
 from .settings import AlignSettings
 
@@ -56,7 +57,10 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
     settings : AlignSettings, optional
         Defaults if not given.
     tile_cache_bytes : float, optional
-        The sampler's per-process tile cache; four decoded tiles if not given.
+        The sampler's per-process cache of prepared tiles; its bound for tiles of ``tile_px`` if not
+        given (:func:`stackbuild.tiles.cache_bytes_for`: the same bytes at every scale, so a region
+        task at ``elastic_scale`` 2 keeps four times as many reduced tiles as a render task keeps
+        full-resolution ones).
 
     Returns
     -------
@@ -65,7 +69,7 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
     """
     s = settings or AlignSettings()
     tile = float(tile_px) ** 2 * tile_bytes
-    cache = 4 * tile if tile_cache_bytes is None else tile_cache_bytes
+    cache = cache_bytes_for(tile_px, tile_px) if tile_cache_bytes is None else tile_cache_bytes
     scale = max(s.work_scale, math.ceil(section_px / s.overview_size))
     ov = (section_px / scale) ** 2
     links = n_sections * s.neighbours
@@ -85,13 +89,15 @@ def align_budget(section_px: int, n_sections: int, tile_px: int = 4096, tile_byt
     # each kept twice: as transformed and whitened (blockmatch.block_spectra)
     match += 2 * (s.neighbours + 1) * region_side_nodes ** 2 * p * (p // 2 + 1) * 8
     reduced_tile = 2 * (tile_px / s.elastic_scale) ** 2 * 4
+    # the overview task's cache holds its section's tiles reduced by the overview scale, up to its bound
+    ov_cache = min(cache, math.ceil(section_px / tile_px) ** 2 * 4 * (tile_px / scale + 2) ** 2)
     region = held * side ** 2 * 4 + side ** 2 * RENDER_BYTES_PER_PX + match + cache + tile + reduced_tile
     unknowns = (s.region_nodes + 2 * s.solve_halo) ** 2 * n_sections
     prior = unknowns * 2 * 4
     solve = unknowns * SOLVE_BYTES_PER_UNKNOWN + prior * 3
     rounds = s.elastic_rounds if s.elastic else 0
     tasks = [
-        TaskKind("align.features", n_sections, PROCESS_BYTES + ov * FEATURE_BYTES_PER_PX + cache + tile,
+        TaskKind("align.features", n_sections, PROCESS_BYTES + ov * FEATURE_BYTES_PER_PX + ov_cache + tile,
                  f"overview {section_px / scale:.0f} px square (scale {scale})"),
         TaskKind("align.pair", links, PROCESS_BYTES + 2 * s.max_features * 140 * 4,
                  "two sections' stored features"),

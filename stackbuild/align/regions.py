@@ -234,9 +234,12 @@ def load_block(scratch: Path, tag: str, block: int, n_windows: int):
     """
     matches, contrast = {}, {}
     for wdw in range(n_windows):
+        # each member of an .npz is decoded anew on every access: read each one once
         with np.load(Path(scratch) / f"{tag}_b{block}_w{wdw}.npz") as f:
-            for k, (a, b) in enumerate(f["links"]):
-                matches[(int(a), int(b))] = (f["shifts"][k], f["weights"][k])
-            for k, z in enumerate(f["sections"]):
-                contrast[int(z)] = f["contrast"][k]
+            links, shifts, weights = f["links"], f["shifts"], f["weights"]
+            sections, contrasts = f["sections"], f["contrast"]
+        for k, (a, b) in enumerate(links):
+            matches[(int(a), int(b))] = (shifts[k], weights[k])
+        for k, z in enumerate(sections):
+            contrast[int(z)] = contrasts[k]
     return matches, contrast

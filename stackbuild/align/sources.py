@@ -63,11 +63,18 @@ class BuildSource:
         """Return the sections that have a stitch record."""
         return self.store.sections_with("stitch")
 
+    #: stitch records kept: a region task renders the sections of its window (region_sections +
+    #: neighbours, 10 at the defaults) in turn, several times each; a record is small
+    STITCH_KEPT = 16
+
     def _stitch(self, z: int):
-        if z not in self._cache:
-            self._cache.clear()
-            self._cache[z] = self.store.load_stitch(z)
-        return self._cache[z]
+        rec = self._cache.get(z)
+        if rec is None:
+            rec = self.store.load_stitch(z)
+            if len(self._cache) >= self.STITCH_KEPT:
+                self._cache.clear()
+            self._cache[z] = rec
+        return rec
 
     def bbox(self, z: int) -> tuple[float, float, float, float]:
         """Return the section's tile extent."""

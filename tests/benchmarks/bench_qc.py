@@ -30,7 +30,11 @@
                  install). Each side's full report runs ``--repeat`` times (3), alternating, and the
                  medians are printed; every child runs from a copy of its tree with compiled byte
                  code, as installed (``--no-bytecode``: compiled from source in each process, as
-                 this environment's PYTHONDONTWRITEBYTECODE makes it).
+                 this environment's PYTHONDONTWRITEBYTECODE makes it). Beside each, the CPU of a child that only
+                 starts Python and imports what a report imports (the part that does not grow with the volume).
+                 Measured 2026-12-03 16:47 (``--this`` a git archive of dd64991): 3 x 3 tiles render 6.5 s, report
+                 3.54 s (0.543), start-up and imports 1.23 s (0.189 of the render: the 0.25 bar leaves 0.40 s
+                 for measuring, which takes 2.31 s); 7 x 7 render 17.7 s, report 4.55 s (0.257), imports 1.19 s.
 ``--json-size``  metrics.json of 400 sections x 1000 tiles, from a real document's
                  per-section rows (tiles and pairs go to CSV only).
 ``--one-plane``  on the standard seed-0 agreement build: a full report, a re-report with nothing changed, and
@@ -149,6 +153,22 @@ def _report(out: Path, mode: str, path: str | None = None) -> tuple[float, float
     return cpu, float(words[0]), int(words[-1]), words[1] if len(words) > 3 else ""
 
 
+_STARTUP = ("import stackbuild.qc.report, stackbuild.folder, stackbuild.qc.probe, stackbuild.qc.sections, "
+            "stackbuild.align.blockmatch")
+# What every report process imports before it measures anything (the matcher brings scipy.fft): the part of a
+# report's CPU that does not depend on the volume.
+
+
+def _startup(path: str | None = None) -> float:
+    """Return the CPU s of a child that starts Python and imports what a report imports, nothing else."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    proc = run_child([sys.executable, "-c", _STARTUP], path)
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if proc.returncode:
+        raise RuntimeError(proc.stderr[-2000:])
+    return (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+
+
 def _touch_plane(out: Path, z: int) -> str:
     """Replace plane ``z``'s render fingerprint (as a re-render from changed records would); return the old one."""
     from stackbuild.folder import BuildFolder
@@ -215,11 +235,12 @@ def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 
         _report(out, "reuse", mine)  # untimed: files and libraries in the page cache for both sides
         _, cpu_render, _ = _run(["stackbuild", "render", str(out), "--overwrite", "--workers", "1", "--quiet"], mine)
         z = sections // 2
-        runs, base_runs = [], []
+        runs, base_runs, starts = [], [], []
         for _ in range(max(1, repeat)):
             if baseline:
                 base_runs.append(_report(out, "measure", baseline))
             runs.append(_report(out, "measure", mine))
+            starts.append(_startup(mine))
         base_one = None
         if baseline:  # the baseline's re-report after one plane changed
             old = _touch_plane(out, z)
@@ -245,6 +266,10 @@ def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 
             line += (f"; baseline report CPU {b_cpu:.2f} s ({' '.join(f'{r[0]:.2f}' for r in base_runs)}), ratio "
                      f"{b_cpu / cpu_render:.3f}, peak {b_rss / 1024:.0f} MB")
         print(line, flush=True)
+        start = float(np.median(starts))
+        print(f"   of it start-up and imports alone (a child that only imports what a report imports): {start:.2f} s "
+              f"({start / cpu_render:.3f} of the render; the bar leaves {0.25 * cpu_render - start:.2f} s for "
+              f"measuring, {cpu - start:.2f} s used)", flush=True)
         print(f"   re-report, nothing changed: {again:.1f} s; one plane (z {z}) changed: {one:.1f} s "
               f"({one / cpu:.2f} of the full report), stored measurements re-used / measured: {reused}"
               + (f"; baseline after one plane changed: {base_one[0]:.1f} s" if base_one else ""), flush=True)

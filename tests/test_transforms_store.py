@@ -154,3 +154,42 @@ def test_a_file_is_replaced_whole_or_left_as_it_was(tmp_path, durable):
     assert path.read_text(encoding="utf-8") == "a,b\n1,2\n"
     assert set(os.listdir(tmp_path)) == {"tiles.csv", "fresh"}
     assert path.stat().st_mode & 0o777 == fresh.stat().st_mode & 0o777  # a new file's mode, not mkstemp's 0600
+
+
+@pytest.mark.parametrize("dtype, shape", [("float32", (64, 64)), ("float32", (24, 24, 2)), ("uint16", (5, 7)),
+                                          ("float64", (3,)), ("int8", (4, 4))])
+def test_small_arrays_read_directly_equal_zarrs_read(tmp_path, dtype, shape):
+    # Reference: zarr-python's own read of the array the store wrote (zarr v3, one chunk, bytes + zstd).
+    import zarr
+
+    from stackbuild.transforms.arrayfile import read_one_chunk
+
+    arr = (np.random.default_rng(1).normal(0, 50, shape)).astype(dtype)
+    path = tmp_path / "a.zarr"
+    TransformStore._write_array(path, arr)
+    ref = np.asarray(zarr.open_array(str(path), mode="r")[...])
+    got = read_one_chunk(path)
+    assert got is not None and got.dtype == ref.dtype and got.shape == ref.shape and got.flags.writeable
+    np.testing.assert_array_equal(got, ref)
+
+
+def test_other_array_layouts_are_left_to_zarr(tmp_path):
+    # What the direct read does not handle (several chunks; a chunk zarr did not store because it holds
+    # only the fill value) gives None, and the store still reads it through zarr.
+    import zarr
+
+    from stackbuild.transforms.arrayfile import read_one_chunk
+
+    tiled = zarr.create_array(store=str(tmp_path / "t.zarr"), shape=(8, 8), dtype="float32", chunks=(4, 4),
+                              zarr_format=3)
+    tiled[...] = np.arange(64, dtype=np.float32).reshape(8, 8)
+    assert read_one_chunk(tmp_path / "t.zarr") is None
+    store = TransformStore(tmp_path / "transforms")
+    store._write_array(store.section_dir(2) / "illumination.zarr", np.zeros((6, 8), np.float32))
+    assert read_one_chunk(store.section_dir(2) / "illumination.zarr") is None
+    np.testing.assert_array_equal(store._read_array(2, "illumination"), np.zeros((6, 8), np.float32))
+    store.save_stitch(_stitch_record())
+    chunk = store.section_dir(3) / "illumination.zarr" / "c" / "0" / "0"
+    chunk.write_bytes(b"not zstd")  # undecodable: left to zarr, whose error the store reports with the path
+    with pytest.raises(InputError, match="illumination.zarr"):
+        store.load_stitch(3)

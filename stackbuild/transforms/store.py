@@ -30,6 +30,7 @@ import numpy as np
 import zarr
 
 from ..errors import InputError
+from .arrayfile import read_one_chunk
 from .records import FORMAT_VERSION, Canvas, SectionAlignment, SectionStitch
 
 FORMAT_NAME = "stackbuild.transforms"
@@ -179,6 +180,9 @@ class TransformStore:
 
     def _read_array(self, section: int, name: str) -> np.ndarray:
         path = self.section_dir(section) / f"{name}.zarr"
+        direct = read_one_chunk(path)  # the layout _write_array makes, without zarr's per-array overhead
+        if direct is not None:
+            return direct
         try:
             return np.asarray(zarr.open_array(str(path), mode="r")[...])
         except Exception as exc:

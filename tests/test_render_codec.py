@@ -94,3 +94,41 @@ def test_whole_shards_written_directly_are_the_files_zarr_writes(tmp_path, dtype
     for name in names:
         assert (tmp_path / "v.zarr/zarr" / name).read_bytes() == (tmp_path / "v.zarr/ours" / name).read_bytes()
     np.testing.assert_array_equal(zarr.open_array(str(tmp_path / "v.zarr/ours"), mode="r")[:], img)
+
+
+def test_chunks_read_back_and_written_as_stored_give_the_file_zarr_writes(tmp_path):
+    # Reference: zarr-python's own write of the same pixels. An update keeps the chunks of a dirty shard
+    # that no changed pixel reaches by handing their stored bytes back to the shard writer
+    # (render.pyramid.render_shard); the shard must still be the file zarr writes: edge chunks padded with
+    # the fill value, a chunk of fill value only (not stored), and a chunk whose stored bytes are damaged
+    # (left out by the reader, so encoded again from the pixels the caller has).
+    from skimage import data
+    from zarr.codecs import BloscCodec, Crc32cCodec
+
+    from stackbuild.render.shardfile import shard_writer
+
+    img = data.camera()[None, :200, :230].copy()
+    img[:, :64, 64:128] = 0  # one whole chunk of fill value
+    compressors = [BloscCodec(cname="zstd", clevel=1, shuffle="noshuffle"), Crc32cCodec()]
+    group = zarr.open_group(str(tmp_path / "v.zarr"), mode="w", zarr_format=3)
+    arrays = [group.create_array(n, shape=(1, 200, 230), dtype=np.uint8, chunks=(1, 64, 64), shards=(1, 128, 128),
+                                 compressors=compressors, fill_value=0) for n in ("zarr", "ours")]
+    for a in arrays:
+        a[0:1, :, :] = img
+    first = tmp_path / "v.zarr/ours/c/0/0/0"
+    damaged = bytearray(first.read_bytes())
+    damaged[10] ^= 0xFF  # inside the first chunk in Morton order, (0, 0, 0)
+    first.write_bytes(bytes(damaged))
+    writer = shard_writer(arrays[1])
+    coords = [(0, i, j) for i in range(2) for j in range(2)]
+    for y in (0, 128):
+        for x in (0, 128):
+            block = img[:, y:y + 128, x:x + 128]
+            back = writer.stored((0, y, x), coords)
+            assert set(back) == set(coords) - ({(0, 0, 0)} if (y, x) == (0, 0) else set())
+            for (_, i, j), (_, pixels) in back.items():
+                part = block[:, 64 * i:64 * i + 64, 64 * j:64 * j + 64]
+                np.testing.assert_array_equal(pixels[:, :part.shape[1], :part.shape[2]], part)
+            writer.write((0, y, x), block, {k: b for k, (b, _) in back.items() if b is not None})
+    for name in ("0/0/0", "0/0/1", "0/1/0", "0/1/1"):
+        assert (tmp_path / "v.zarr/zarr/c" / name).read_bytes() == (tmp_path / "v.zarr/ours/c" / name).read_bytes()

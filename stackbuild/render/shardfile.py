@@ -17,6 +17,8 @@ for anything else, and the caller writes through zarr.
 """
 from __future__ import annotations
 
+import math
+import os
 import uuid
 from pathlib import Path
 
@@ -45,13 +47,52 @@ class ShardWriter:
         data = raw.tobytes() if self.blosc is None else self.blosc.encode(raw)
         return bytes(data) + np.uint32(google_crc32c.value(data)).astype("<u4").tobytes()
 
-    def write(self, origin: tuple[int, ...], block: np.ndarray) -> None:
+    def stored(self, origin: tuple[int, ...], wanted) -> dict[tuple[int, ...], tuple[bytes | None, np.ndarray]]:
+        """Return ``{coords: (stored bytes, pixels)}`` of the chunks ``wanted`` (coordinates within the shard) as stored.
+
+        Reads the shard file at ``origin`` (its index, then each wanted chunk, CRC-32C checked) and
+        decodes each chunk to its full chunk shape. The bytes are what :meth:`write` would encode for
+        those pixels, so handing them back to it leaves the file as a fresh write makes it. A chunk
+        not stored (all fill value) comes back as ``(None, fill)``. A chunk whose bytes do not check
+        out is left out of the result (the caller reads it through zarr, which says what is wrong);
+        with no shard file, or an index that does not check out, nothing is returned.
+        """
+        path = self.folder / self.key(tuple(o // s for o, s in zip(origin, self.shard)))
+        n = math.prod(self.per_shard) * 16 + 4
+        out = {}
+        try:
+            with open(path, "rb") as fh:
+                fh.seek(-n, os.SEEK_END)
+                raw = fh.read(n)
+                if len(raw) != n or google_crc32c.value(raw[:-4]) != np.frombuffer(raw[-4:], "<u4")[0]:
+                    return {}
+                index = np.frombuffer(raw[:-4], "<u8").reshape(*self.per_shard, 2)
+                for coords in wanted:
+                    start, length = index[tuple(coords)]
+                    if start == ABSENT:
+                        out[tuple(coords)] = (None, np.full(self.chunk, self.fill, self.dtype))
+                        continue
+                    data = os.pread(fh.fileno(), int(length), int(start))
+                    if len(data) != int(length) or google_crc32c.value(data[:-4]) != np.frombuffer(data[-4:], "<u4")[0]:
+                        continue
+                    body = data[:-4] if self.blosc is None else self.blosc.decode(data[:-4])
+                    pixels = np.frombuffer(body, self.dtype)
+                    if pixels.size == math.prod(self.chunk):
+                        out[tuple(coords)] = (data, pixels.reshape(self.chunk))
+        except (OSError, ValueError, RuntimeError):  # no file, or bytes the codec refuses: left to the caller
+            return out
+        return out
+
+    def write(self, origin: tuple[int, ...], block: np.ndarray, stored: dict | None = None) -> None:
         """Write ``block`` as the whole shard whose first element is at ``origin`` (chunk-aligned, the shard's start).
 
         ``block`` must be the shard clipped to the array (the same rule as zarr's: chunks
         outside the array are absent, an edge chunk is padded with the fill value, a chunk
         holding only the fill value is left out; with no chunk left the file is removed).
+        ``stored``: ``{coords: bytes}`` from :meth:`stored` for chunks of ``block`` that hold the
+        pixels read back with them; those bytes are written as they are instead of encoding again.
         """
+        stored = stored or {}
         index = np.full((*self.per_shard, 2), ABSENT, dtype="<u8")
         parts, start = [], 0
         for coords in self.order:
@@ -63,9 +104,10 @@ class ShardWriter:
                 full = np.full(self.chunk, self.fill, dtype=block.dtype)
                 full[tuple(slice(0, n) for n in piece.shape)] = piece
                 piece = full
-            if not (piece != self.fill).any():
+            kept = stored.get(tuple(coords))
+            if kept is None and not (piece != self.fill).any():
                 continue
-            data = self._encode(piece)
+            data = kept if kept is not None else self._encode(piece)
             index[coords] = (start, len(data))
             parts.append(data)
             start += len(data)

@@ -32,9 +32,12 @@
                  code, as installed (``--no-bytecode``: compiled from source in each process, as
                  this environment's PYTHONDONTWRITEBYTECODE makes it). Beside each, the CPU of a child that only
                  starts Python and imports what a report imports (the part that does not grow with the volume).
-                 Measured 2026-12-03 16:47 (``--this`` a git archive of dd64991): 3 x 3 tiles render 6.5 s, report
-                 3.54 s (0.543), start-up and imports 1.23 s (0.189 of the render: the 0.25 bar leaves 0.40 s
-                 for measuring, which takes 2.31 s); 7 x 7 render 17.7 s, report 4.55 s (0.257), imports 1.19 s.
+                 The render runs once per round too (median). Measured 2026-12-03 16:59 (``--this`` a git
+                 archive of dd64991, medians of 3): 3 x 3 tiles: render 5.8 s, report 3.22 s (0.552), the report's
+                 start-up and imports 1.09 s (0.187 of the render: the 0.25 bar leaves 0.37 s for measuring, which
+                 takes 2.13 s), the render's start-up 3.38 s, beyond start-up report / render 0.87; 7 x 7: render
+                 14.6 s, report 4.08 s (0.280), imports 1.03 s, beyond start-up 0.27. (16:47, one render per grid:
+                 6.5 and 17.7 s, ratios 0.543 and 0.257: a single render swings by a fifth.)
 ``--json-size``  metrics.json of 400 sections x 1000 tiles, from a real document's
                  per-section rows (tiles and pairs go to CSV only).
 ``--one-plane``  on the standard seed-0 agreement build: a full report, a re-report with nothing changed, and
@@ -159,10 +162,19 @@ _STARTUP = ("import stackbuild.qc.report, stackbuild.folder, stackbuild.qc.probe
 # report's CPU that does not depend on the volume.
 
 
-def _startup(path: str | None = None) -> float:
-    """Return the CPU s of a child that starts Python and imports what a report imports, nothing else."""
+_RENDER_STARTUP = ("import stackbuild.cli, stackbuild.render.stage, stackbuild.render.pyramid\n"
+                   "from stackbuild.run.cluster import dask_client\n"
+                   "with dask_client(1) as c:\n"
+                   "    c.submit(__import__, 'stackbuild.render.pyramid').result()\n")
+# What `stackbuild render --workers 1` spends before it renders: the command's imports, a local cluster of one
+# worker process and the render's modules imported on it (an approximation: the command's own checks are left out).
+
+
+def _startup(path: str | None = None, code: str = _STARTUP) -> float:
+    """Return the CPU s of a child (its worker processes included) running ``code``: by default one that starts
+    Python and imports what a report imports, nothing else."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
-    proc = run_child([sys.executable, "-c", _STARTUP], path)
+    proc = run_child([sys.executable, "-c", code], path)
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     if proc.returncode:
         raise RuntimeError(proc.stderr[-2000:])
@@ -212,7 +224,7 @@ def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 
     """Report peak RSS and CPU at 3 x 3 and 7 x 7 tiles of 1024 px, beside render CPU on the same volume.
 
     Each in its own process, one after the other: the render (``stackbuild render --overwrite``,
-    one worker: its CLI process and worker processes), the report measuring everything
+    one worker: its CLI process and worker processes; once per round, median printed), the report measuring everything
     (``reuse=False``; process CPU, imports included; ``repeat`` times, alternating with the
     baseline's report when asked, medians printed: one report takes a few seconds, and on this
     shared machine one run can be off by half a second), a second report that re-uses every stored
@@ -233,14 +245,16 @@ def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 
         out = _build(work / f"mem{grid}", variant_params("standard", "base", 0, sections=sections,
                                                          grid=(grid, grid), tile_size=1024))
         _report(out, "reuse", mine)  # untimed: files and libraries in the page cache for both sides
-        _, cpu_render, _ = _run(["stackbuild", "render", str(out), "--overwrite", "--workers", "1", "--quiet"], mine)
         z = sections // 2
-        runs, base_runs, starts = [], [], []
+        runs, base_runs, starts, render_starts, renders = [], [], [], [], []
         for _ in range(max(1, repeat)):
+            # the render too, once per round: one render alone was seen 14.5 and 17.7 s on the same volume
+            renders.append(_run(["stackbuild", "render", str(out), "--overwrite", "--workers", "1", "--quiet"], mine)[1])
             if baseline:
                 base_runs.append(_report(out, "measure", baseline))
             runs.append(_report(out, "measure", mine))
             starts.append(_startup(mine))
+            render_starts.append(_startup(mine, _RENDER_STARTUP))
         base_one = None
         if baseline:  # the baseline's re-report after one plane changed
             old = _touch_plane(out, z)
@@ -250,6 +264,7 @@ def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 
                 _restore_plane(out, z, old)
             _report(out, "measure", mine)
         cpu, own, rss = (float(np.median([r[i] for r in runs])) for i in range(3))
+        cpu_render = float(np.median(renders))
         again, _, _, _ = _report(out, "reuse", mine)
         old = _touch_plane(out, z)
         try:
@@ -257,7 +272,8 @@ def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 
         finally:
             _restore_plane(out, z, old)
         rows.append((grid, rss / 1024))
-        line = (f"{grid} x {grid} tiles of 1024 px, {sections} sections: render CPU {cpu_render:.1f} s; report CPU "
+        line = (f"{grid} x {grid} tiles of 1024 px, {sections} sections: render CPU {cpu_render:.1f} s (median of "
+                f"{len(renders)}: {' '.join(f'{r:.1f}' for r in renders)}); report CPU "
                 f"{cpu:.2f} s (median of {len(runs)}: {' '.join(f'{r[0]:.2f}' for r in runs)}; imports included; "
                 f"{own:.2f} s in run_report), ratio report/render {cpu / cpu_render:.3f} (bar <= 0.25), "
                 f"peak {rss / 1024:.0f} MB")
@@ -266,10 +282,12 @@ def bench_memory(work: Path, sections: int, baseline: str | None, repeat: int = 
             line += (f"; baseline report CPU {b_cpu:.2f} s ({' '.join(f'{r[0]:.2f}' for r in base_runs)}), ratio "
                      f"{b_cpu / cpu_render:.3f}, peak {b_rss / 1024:.0f} MB")
         print(line, flush=True)
-        start = float(np.median(starts))
+        start, r_start = float(np.median(starts)), float(np.median(render_starts))
         print(f"   of it start-up and imports alone (a child that only imports what a report imports): {start:.2f} s "
               f"({start / cpu_render:.3f} of the render; the bar leaves {0.25 * cpu_render - start:.2f} s for "
-              f"measuring, {cpu - start:.2f} s used)", flush=True)
+              f"measuring, {cpu - start:.2f} s used); the render's start-up (imports, a one-worker cluster): "
+              f"{r_start:.2f} s; beyond start-up, report / render {(cpu - start) / max(cpu_render - r_start, 1e-9):.3f}",
+              flush=True)
         print(f"   re-report, nothing changed: {again:.1f} s; one plane (z {z}) changed: {one:.1f} s "
               f"({one / cpu:.2f} of the full report), stored measurements re-used / measured: {reused}"
               + (f"; baseline after one plane changed: {base_one[0]:.1f} s" if base_one else ""), flush=True)

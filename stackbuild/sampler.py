@@ -398,8 +398,9 @@ def _window(r_lo: float, r_hi: float, c_lo: float, c_hi: float, t, scale: int):
 
 
 def _accumulate(acc: np.ndarray, val: np.ndarray, w: np.ndarray) -> None:
-    """Add ``weight * value`` and ``weight`` of resampled values and weights to ``acc``."""
-    acc[0] += val * w
+    """Add ``weight * value`` and ``weight`` of resampled values and weights to ``acc`` (``val`` is overwritten)."""
+    val *= w
+    acc[0] += val
     acc[1] += w
 
 

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import tifffile
 from skimage import data, transform
 
@@ -45,3 +46,16 @@ def test_cache_keeps_the_same_bytes_at_every_scale_so_more_reduced_tiles(tmp_pat
     for t in kept:
         tiles_mod.prepared_tile(t, None, "", 2)
     assert not tiles_mod.PIXELS_READ          # every one served from the cache, none read again
+
+
+@pytest.mark.parametrize("byteorder, compression", [("<", None), (">", None), ("<", "zlib")])
+def test_whole_tile_read_equals_tifffile(tmp_path, byteorder, compression):
+    # Reference: tifffile.imread of the same file (uncompressed tiles are read by their one run of
+    # pixels, after the first read without parsing the TIFF again; compressed ones through tifffile).
+    img = (data.camera()[:40, :56].astype(np.uint16) * 13)
+    path = tmp_path / "t.tif"
+    tifffile.imwrite(path, img, byteorder=byteorder, compression=compression)
+    for _ in range(2):
+        got = tiles_mod.read_tile(path, 40, 56, dtype="uint16")
+        np.testing.assert_array_equal(got, tifffile.imread(path))
+        assert got.dtype == np.dtype("uint16")

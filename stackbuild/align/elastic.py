@@ -37,6 +37,8 @@ affine part, which the coarse stage already treats that way.
 """
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
@@ -75,9 +77,17 @@ def _bending(ny: int, nx: int) -> sp.csr_matrix:
     return sp.vstack(parts).tocsr() if parts else sp.csr_matrix((0, ny * nx))
 
 
-def _touching(op: sp.csr_matrix, nodes: np.ndarray) -> np.ndarray:
-    """Return which rows of ``op`` involve any of ``nodes`` (bool over the grid's nodes)."""
-    return (abs(op).astype(bool).astype(np.float64) @ nodes.astype(np.float64)) > 0
+@functools.lru_cache(maxsize=8)
+def _in_plane(ny: int, nx: int) -> tuple[sp.spmatrix, sp.csr_matrix, sp.csr_matrix]:
+    """Return ``(G'G, B, pattern of B)`` of one grid: the membrane's normal matrix, the second-difference
+    operator and which nodes each of its rows involves (1.0), made once per grid shape (not to be modified)."""
+    memb, bend = _membrane(ny, nx), _bending(ny, nx)
+    return memb.T @ memb, bend, abs(bend).astype(bool).astype(np.float64)
+
+
+def _touching(pattern: sp.csr_matrix, nodes: np.ndarray) -> np.ndarray:
+    """Return which rows of an operator involve any of ``nodes`` (bool over the grid's nodes), from its ``pattern``."""
+    return (pattern @ nodes.astype(np.float64)) > 0
 
 
 def _regulariser(shape: tuple[int, int], uncovered: list[np.ndarray], smoothness_weight: float,
@@ -93,12 +103,12 @@ def _regulariser(shape: tuple[int, int], uncovered: list[np.ndarray], smoothness
     :func:`solve_fields`, Notes.
     """
     ny, nx = shape
-    memb, bend = _membrane(ny, nx), _bending(ny, nx)
-    base = smoothness_weight * (memb.T @ memb)
+    mtm, bend, pattern = _in_plane(ny, nx)
+    base = smoothness_weight * mtm
     parts = []
     for miss in uncovered:
         if continuation > 0 and miss.any():
-            cont = sp.diags(_touching(bend, miss).astype(np.float64)) @ bend
+            cont = sp.diags(_touching(pattern, miss).astype(np.float64)) @ bend
             parts.append(base + continuation * smoothness_weight * (cont.T @ cont)
                          + pull * sp.diags(np.where(miss, 0.01, 1.0)))
         else:

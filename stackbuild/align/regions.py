@@ -122,6 +122,7 @@ class RegionTask:
     settings: object
     out: str
     subpixel: bool = True       # the matcher's unbiased passes (False: one pass; see match_blocks)
+    backwards: bool = False     # render the sections last to first (see _Plan.region_tasks)
 
 
 def _match_links(task: RegionTask):
@@ -136,7 +137,8 @@ def _match_links(task: RegionTask):
     s = task.settings
     g = task.grid
     x0, y0, w, h = g.region(task.rows, task.cols)
-    images = {al.section: task.source.region(al.section, al, x0, y0, w, h, g.scale) for al in task.alignments}
+    order = task.alignments[::-1] if task.backwards else task.alignments
+    images = {al.section: task.source.region(al.section, al, x0, y0, w, h, g.scale) for al in order}
     nodes = g.node_pixels(task.rows, task.cols, x0, y0)
     by, bx = task.rows.stop - task.rows.start, task.cols.stop - task.cols.start
     contrast = np.stack([block_contrast(images[z], nodes, s.match_half_size).reshape(by, bx)

@@ -207,6 +207,12 @@ class _Plan:
             grid = replace(grid, scale=grid.scale * coarsening,
                            reach=block_reach(s.match_half_size, s.match_max_shift))
         wins = windows(self.sections, s.region_sections, neighbours)
+        # Blocks go row by row, so the next task usually meets tiles of the one before. A task can read
+        # more tiles than the tile cache keeps (4 sections of a 7 x 7-tile stack: 36 at scale 2, 31 kept),
+        # and the cache drops the least recently used first, the first section's; so with one window
+        # every other block renders its sections last to first, starting where the one before ended.
+        # (With several windows a window's first sections are the last ones of the window before it.)
+        # The order changes no result: 7x7 tiles, 4 sections, last round 429 -> 376 tile preparations.
 
         def tasks():
             # made as the mapper submits them: a production round has about 180,000 (each some 50 kB
@@ -219,7 +225,8 @@ class _Plan:
                         links = window_links(own, seen, neighbours)
                     als = tuple(crop_alignment(aligns[z], self.grid, rows, cols, self.halo) for z in seen)
                     yield RegionTask(self.source, grid, b, rows, cols, als, tuple(links), tuple(own),
-                                     s, str(self.scratch / f"{tag}_b{b}_w{w}.npz"), subpixel)
+                                     s, str(self.scratch / f"{tag}_b{b}_w{w}.npz"), subpixel,
+                                     backwards=len(wins) == 1 and b % 2 == 1)
         return tasks(), len(wins)
 
     def solve_tasks(self, tag, n_windows, fields):

@@ -107,8 +107,15 @@ def _report_again(build: Path, tree: Path | None) -> subprocess.CompletedProcess
 
     Stored pair shifts are re-used when their fingerprints match (the probe's measurement did not
     change), so this re-solves only the estimate: the way to compare two estimators on the same builds.
+    The stored runs (the estimate solved from those shifts) are removed first: their fingerprint holds
+    the estimator's version number, not its code, so an estimator under development would otherwise
+    be handed the runs of whichever estimator last ran on the build (it happened: realistic/long seeds
+    0-2 read 78-83 % within from runs a tried-and-dropped estimator had left, 94-97 % re-solved).
     """
     from bench_qc import run_child  # this folder is first on sys.path when a bench runs as a script
+
+    from stackbuild.folder import BuildFolder
+    shutil.rmtree(BuildFolder(build).measurement_path("runs", "x").parent, ignore_errors=True)
 
     cmd = [sys.executable, "-c", "import sys; from stackbuild.cli import main; sys.exit(main())",
            "report", str(build), "--quiet"]

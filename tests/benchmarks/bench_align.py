@@ -362,10 +362,14 @@ def steps(cases, seeds, root="/tmp/bench_align_speed"):
 
     Where the align stage's time goes (issue #13's speed bar): on realistic/base seed 0 (12 sections of
     3 x 3 tiles of 512 px) the coarse step's pair matching is about 38 %, the last elastic round about 35 %.
+    Also how many times each tile was read (pixels decoded / pixels of all tiles): 3 on that stack, about
+    the least for three scales (overview, early round, last round) with a cache that cannot hold a stack.
     """
     import time
+    from stackbuild import tiles
     from stackbuild.align.stage import run_align
     from stackbuild.run.plan_speed import one_thread
+    from stackbuild.transforms import TransformStore
     for family, variant in cases:
         for seed in seeds:
             base = _fresh_case(root, family, variant, seed)
@@ -377,11 +381,16 @@ def steps(cases, seeds, root="/tmp/bench_align_speed"):
                 out = list(map(fn, items))
                 rows.append((fn.__name__, len(items), time.process_time() - t))
                 return out
+            tiles.TILE_CACHE.clear()
+            tiles.PIXELS_READ.clear()
             with one_thread():
                 t = time.process_time()
                 run_align(str(base / "build"), AlignSettings(), mapper=mapper)
                 total = time.process_time() - t
-            print(f"  {family}/{variant}/{seed}: align CPU {total:.2f} s (one thread, in-process)")
+            store = TransformStore(base / "build" / "transforms")
+            pixels = sum(t.width * t.height for z in store.sections_with("stitch") for t in store.load_stitch(z).tiles)
+            print(f"  {family}/{variant}/{seed}: align CPU {total:.2f} s (one thread, in-process); each tile read "
+                  f"{sum(tiles.PIXELS_READ.values()) / pixels:.1f} times")
             print("    step              tasks   CPU s   share")
             for name, n, cpu in rows:
                 print(f"    {name:16s} {n:6d}  {cpu:6.3f}  {cpu / total:6.1%}")

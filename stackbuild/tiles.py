@@ -93,6 +93,16 @@ def _plain_layout(path: str, size: int, mtime_ns: int):
     return offset, shape, dt
 
 
+def _file_and_layout(path):
+    """Return ``(path, its stat, its plain layout or None)`` (see :func:`_plain_layout`), or None if it cannot be stat'ed."""
+    p = Path(path)
+    try:
+        st = p.stat()
+    except OSError:
+        return None
+    return p, st, _plain_layout(str(p), st.st_size, st.st_mtime_ns)
+
+
 def _read_plain(path, height: int, width: int, section, dtype, what: str, source: str) -> np.ndarray | None:
     """Return a whole tile stored uncompressed in one run (see :func:`_plain_layout`) with one read, or None.
 
@@ -101,15 +111,10 @@ def _read_plain(path, height: int, width: int, section, dtype, what: str, source
     CPU for a 1024 px 8-bit tile. None for any other file, or any trouble: :func:`read_tile`
     then reads it with tifffile and names what is wrong.
     """
-    p = Path(path)
-    try:
-        st = p.stat()
-    except OSError:
+    found = _file_and_layout(path)
+    if found is None or found[2] is None:
         return None
-    layout = _plain_layout(str(p), st.st_size, st.st_mtime_ns)
-    if layout is None:
-        return None
-    offset, shape, dt = layout
+    p, _, (offset, shape, dt) = found
     _check_pixels(shape, dt.newbyteorder("="), p, height, width, section, dtype, what, source)
     try:
         img = np.fromfile(p, dtype=dt, count=shape[0] * shape[1], offset=offset).reshape(shape)
@@ -132,12 +137,10 @@ def read_window(path: str | Path, height: int, width: int, rows: tuple[int, int]
     neighbouring windows of one task decode each segment once. For others the caller reads
     the whole tile (:func:`read_tile`). The recorded size and type are checked as :func:`read_tile` checks them.
     """
-    p = Path(path)
-    try:
-        st = p.stat()
-    except OSError:
+    found = _file_and_layout(path)
+    if found is None:
         return None
-    layout = _plain_layout(str(p), st.st_size, st.st_mtime_ns)
+    p, st, layout = found
     if layout is None:
         segments = _segment_layout(str(p), st.st_size, st.st_mtime_ns)
         if segments is None:

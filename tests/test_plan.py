@@ -13,7 +13,7 @@ import zarr
 from stackbuild.cli import main
 from stackbuild.config import PipelineConfig
 from stackbuild.run.plan import load_rates, make_plan
-from stackbuild.run.plan_measure import fastest, measure_build
+from stackbuild.run.plan_measure import fastest, measure_build, median_of
 from stackbuild.run.plan_shape import VolumeShape
 from stackbuild.run.plan_speed import speed_factors
 
@@ -205,3 +205,12 @@ def test_planned_render_reads_match_what_render_reads(tmp_path, tiff):
         # One process here, so a strip is decoded about once (1.0 to 1.26 reads per tile seen); the
         # plan's bound for strips across tiles wider than a shard is 2.5 reads: loose, not wild.
         assert planned <= 3 * measured, (measured, planned)
+
+
+def test_median_of_calibrations_takes_each_kinds_median_cpu_and_largest_peak():
+    # three calibrations of one kind, the second in a slow spell: the median ignores it (numpy.median as reference)
+    runs = [{"kinds": {"k": {"tasks": 4, "cpu_s": c, "cpu_robust_s": c, "cpu_max_s": c, "peak_bytes": p}},
+             "stage_cpu_s": {"stitch": c}, "errors": {}} for c, p in ((1.0, 10), (1.7, 30), (1.1, 20))]
+    m = median_of(*runs)
+    assert m["kinds"]["k"]["cpu_robust_s"] == np.median([1.0, 1.7, 1.1]) == 1.1
+    assert m["kinds"]["k"]["peak_bytes"] == 30 and m["stage_cpu_s"]["stitch"] == 1.1

@@ -1,7 +1,8 @@
 """Measure the plan's per-task factors on this machine and write stackbuild/run/plan_rates.json.
 
 Synthesises two small stacks (the project's invented phantom), builds each
-three times in one process with one thread
+three times in one process with one thread (and all that ``--runs`` times, one
+calibration after another, keeping the median of each measurement)
 (:func:`stackbuild.run.plan_measure.measure_build`): memory traced in one
 build, CPU the least of the two others, untraced (tracing costs CPU); and for every kind of task fits a line through the two measurements against
 what the plan's model says that task holds and does at each shape: memory =
@@ -34,6 +35,7 @@ sys.path.insert(0, str(REPO))
 
 from stackbuild.config import PipelineConfig  # noqa: E402
 from stackbuild.run.plan import RATES_PATH  # noqa: E402
+from stackbuild.run.plan_measure import median_of  # noqa: E402
 from stackbuild.run.plan_models import STAGES  # noqa: E402
 from stackbuild.run.plan_speed import reference_cpu_parts  # noqa: E402
 from stackbuild.run.plan_shape import VolumeShape  # noqa: E402
@@ -233,6 +235,9 @@ def main(argv=None) -> None:
                     help="smaller build: sections, tiles per side, tile side (default 3,3,384)")
     ap.add_argument("--large", type=_size, default=(4, 2, 1024), metavar="S,G,T",
                     help="larger build (default 4,2,1024)")
+    ap.add_argument("--runs", type=int, default=3, metavar="N",
+                    help="calibrate N times, one after the other, and fit the median of each measurement "
+                         "(default 3; one calibration takes about 2 minutes on 2 cores)")
     ap.add_argument("--dry-run", action="store_true", help="print, do not write plan_rates.json")
     ap.add_argument("--refit", action="store_true",
                     help="no builds: refit the factors from the measurements kept in plan_rates.json")
@@ -254,8 +259,13 @@ def main(argv=None) -> None:
         return
     with tempfile.TemporaryDirectory(prefix="calibrate_plan_") as tmp:
         tmp = Path(tmp)
-        small, shape1, _ = measure_size(tmp, "small", *args.small)
-        large, shape2, folder = measure_size(tmp, "large", *args.large)
+        small, large = [], []
+        for i in range(args.runs):  # one size after the other, so a slow spell meets both
+            m, shape1, _ = measure_size(tmp, f"small-{i}", *args.small)
+            small.append(m)
+            m, shape2, folder = measure_size(tmp, f"large-{i}", *args.large)
+            large.append(m)
+        small, large = median_of(*small), median_of(*large)
         ratio = stored_ratio(folder / "volume.zarr")
         kinds = factors(small, large, (shape1, shape2), cfg)
         for kind, probed in probe_kinds(tmp, large, shape2, args.large, cfg).items():
@@ -272,7 +282,8 @@ def main(argv=None) -> None:
         "machine": machine(), "commit": commit,
         "how": ("tests/benchmarks/calibrate_plan.py: two synthetic stacks (sections, tiles per side, tile px: "
                 f"{args.small} and {args.large}) built in one process, one thread, three times; per task: "
-                "process CPU time (the least of two builds without allocation tracing) and the "
+                "process CPU time (the least of two builds without allocation tracing; the median of "
+                f"{args.runs} such calibrations run one after another) and the "
                 "tracemalloc peak above the task's start (a third, traced build); per kind a line (fixed + slope) "
                 "through the two, against what stackbuild/run/plan_models.py says the task holds and does; "
                 "a kind the two sizes cannot calibrate (PROBES) gets its factors from the larger size built "

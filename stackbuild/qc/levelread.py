@@ -19,8 +19,6 @@ A chunk that cannot be decoded raises the error that names array, plane and chun
 """
 from __future__ import annotations
 
-import os
-
 import numpy as np
 
 
@@ -54,23 +52,15 @@ class LevelReader:
 
     def _shard_index(self, shard: tuple) -> np.ndarray | None:
         """Return the shard's ``(..., 2)`` offsets and lengths (None: no shard file, every chunk the fill)."""
-        import google_crc32c
-
         if shard not in self._index:
-            path = self._path(shard)
             try:
-                with open(path, "rb") as fh:
-                    n = int(np.prod(self.per_shard)) * 16 + 4
-                    fh.seek(-n, os.SEEK_END)
-                    raw = fh.read(n)
+                with open(self._path(shard), "rb") as fh:
+                    self._index[shard] = self.layout.read_index(fh)
             except FileNotFoundError:
                 self._index[shard] = None
-                return None
-            body, crc = raw[:-4], np.frombuffer(raw[-4:], "<u4")[0]
-            if google_crc32c.value(body) != crc:
+            except ValueError as exc:
                 raise self._damaged(shard[0], shard[1] * self.per_shard[1], shard[2] * self.per_shard[2],
-                                    ValueError("shard index checksum mismatch"))
-            self._index[shard] = np.frombuffer(body, "<u8").reshape(*self.per_shard, 2)
+                                    exc) from None
         return self._index[shard]
 
     def _damaged(self, z: int, row: int, col: int, exc: BaseException):
@@ -81,8 +71,6 @@ class LevelReader:
     def stream(self, z: int, row: int, col: int):
         """Return chunk ``(row, col)`` of plane ``z`` as a :class:`~stackbuild.qc.bloscrows.LazyChunk` (its checksum
         checked, nothing decoded yet), or the full chunk of the fill value when it was never written."""
-        import google_crc32c
-
         from ..render.shardfile import ABSENT
         from .bloscrows import LazyChunk
 
@@ -93,9 +81,7 @@ class LevelReader:
             return np.full(self.chunk, self.fill, self.dtype)
         try:
             with open(self._path(shard), "rb") as fh:
-                data = os.pread(fh.fileno(), int(entry[1]), int(entry[0]))
-            if len(data) != int(entry[1]) or google_crc32c.value(data[:-4]) != np.frombuffer(data[-4:], "<u4")[0]:
-                raise ValueError("chunk checksum mismatch")
+                data = self.layout.read_chunk(fh, entry)
             if self.layout.blosc is None:
                 return np.frombuffer(data[:-4], self.dtype).reshape(self.chunk)
             return LazyChunk(data[:-4], self.chunk, self.dtype, self.layout.blosc.decode)

@@ -47,6 +47,27 @@ class ShardWriter:
         data = raw.tobytes() if self.blosc is None else self.blosc.encode(raw)
         return bytes(data) + np.uint32(google_crc32c.value(data)).astype("<u4").tobytes()
 
+    def read_index(self, fh) -> np.ndarray:
+        """Return the ``(*per_shard, 2)`` offsets and lengths from the index at the end of open shard file ``fh``.
+
+        Raises ValueError when the index does not check out (CRC-32C).
+        """
+        n = math.prod(self.per_shard) * 16 + 4
+        fh.seek(-n, os.SEEK_END)
+        raw = fh.read(n)
+        if len(raw) != n or google_crc32c.value(raw[:-4]) != np.frombuffer(raw[-4:], "<u4")[0]:
+            raise ValueError("shard index checksum mismatch")
+        return np.frombuffer(raw[:-4], "<u8").reshape(*self.per_shard, 2)
+
+    @staticmethod
+    def read_chunk(fh, entry) -> bytes:
+        """Return the stored bytes (checksum included) of the chunk at ``entry = (offset, length)`` of open shard
+        file ``fh``; raises ValueError when they do not check out (CRC-32C)."""
+        data = os.pread(fh.fileno(), int(entry[1]), int(entry[0]))
+        if len(data) != int(entry[1]) or google_crc32c.value(data[:-4]) != np.frombuffer(data[-4:], "<u4")[0]:
+            raise ValueError("chunk checksum mismatch")
+        return data
+
     def stored(self, origin: tuple[int, ...], wanted) -> dict[tuple[int, ...], tuple[bytes | None, np.ndarray]]:
         """Return ``{coords: (stored bytes, pixels)}`` of the chunks ``wanted`` (coordinates within the shard) as stored.
 
@@ -58,22 +79,21 @@ class ShardWriter:
         with no shard file, or an index that does not check out, nothing is returned.
         """
         path = self.folder / self.key(tuple(o // s for o, s in zip(origin, self.shard)))
-        n = math.prod(self.per_shard) * 16 + 4
         out = {}
         try:
             with open(path, "rb") as fh:
-                fh.seek(-n, os.SEEK_END)
-                raw = fh.read(n)
-                if len(raw) != n or google_crc32c.value(raw[:-4]) != np.frombuffer(raw[-4:], "<u4")[0]:
+                try:
+                    index = self.read_index(fh)
+                except ValueError:
                     return {}
-                index = np.frombuffer(raw[:-4], "<u8").reshape(*self.per_shard, 2)
                 for coords in wanted:
                     start, length = index[tuple(coords)]
                     if start == ABSENT:
                         out[tuple(coords)] = (None, np.full(self.chunk, self.fill, self.dtype))
                         continue
-                    data = os.pread(fh.fileno(), int(length), int(start))
-                    if len(data) != int(length) or google_crc32c.value(data[:-4]) != np.frombuffer(data[-4:], "<u4")[0]:
+                    try:
+                        data = self.read_chunk(fh, (start, length))
+                    except ValueError:
                         continue
                     body = data[:-4] if self.blosc is None else self.blosc.decode(data[:-4])
                     pixels = np.frombuffer(body, self.dtype)

@@ -210,7 +210,7 @@ def by_offset(per_neighbour: dict, section: int) -> dict:
 
     A section's links are to its near neighbours, so keyed by offset every row of ``sections.csv``
     has the same few columns (``inliers.+1``, ``inliers.+2``, ...). Keyed by section number, the
-    table had a set of columns per section of the stack, nearly all empty: 36 sections made 250
+    table had a set of columns per section of the stack, nearly all empty: 36 sections made 333
     columns; 400 would make about 3,000.
     """
     return {f"{int(k) - section:+d}": v for k, v in sorted(per_neighbour.items(), key=lambda kv: int(kv[0]))}

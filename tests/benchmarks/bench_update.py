@@ -4,6 +4,7 @@
     python tests/benchmarks/bench_update.py --sections 10 --kills
     python tests/benchmarks/bench_update.py --speed-only --baseline /tmp/old   # steps 1-2 with another tree too
     python tests/benchmarks/bench_update.py --speed-only --repeat 3     # the update 3 times, its median run
+    python tests/benchmarks/bench_update.py --content realistic --grid 3 --tile 512   # the realistic phantom family
 
 Measured side by side in one run, on one synthetic stack (``stackbuild.synth``, ground truth
 unused here):
@@ -166,8 +167,9 @@ def _reimage(data: Path, out: Path, section: int, tiles: list[str]) -> Path:
     for line in (data / "tiles.csv").read_text().splitlines()[1:]:
         s, t, p, x, y = line.split(",")
         if int(s) == section and t in tiles:
-            img = tifffile.imread(data / p).astype(np.float32) + rng.normal(0, 4, (1,))
-            img = np.clip(img + rng.normal(0, 4, img.shape), 0, 255).astype(np.uint8)
+            raw = tifffile.imread(data / p)
+            img = raw.astype(np.float32) + rng.normal(0, 4, (1,))
+            img = np.clip(img + rng.normal(0, 4, img.shape), 0, np.iinfo(raw.dtype).max).astype(raw.dtype)
             dst = out / f"{s}_{t}.tif"
             tifffile.imwrite(dst, img)
             rows.append(f"{s},{t},{dst},{float(x) + 1.5},{float(y) - 2.0}")
@@ -340,6 +342,10 @@ def main() -> None:
     ap.add_argument("--sections", type=int, default=20)
     ap.add_argument("--grid", type=int, default=3)
     ap.add_argument("--tile", type=int, default=384)
+    ap.add_argument("--content", choices=("standard", "realistic"), default="standard",
+                    help="phantom family: the realistic one (the alignment issue's: content new in every section, "
+                         "cells slanting each their own way, its rotations, shifts, scale and warps) or the "
+                         "standard one")
     ap.add_argument("--kills", action="store_true", help="also kill the update in align, channels, render")
     ap.add_argument("--keep", metavar="DIR", help="work here and keep it (default: a temporary folder)")
     ap.add_argument("--inset-memory", action="store_true",
@@ -358,14 +364,20 @@ def main() -> None:
     args = ap.parse_args()
 
     from stackbuild.synth import SynthParams, generate
+    from stackbuild.synth.variants import variant_params
 
     root = Path(args.keep or tempfile.mkdtemp(prefix="bench-update-"))
     root.mkdir(parents=True, exist_ok=True)
     n = args.sections
     data = root / "data"
     if not (data / "tiles.csv").exists():
-        generate(data, SynthParams(seed=21, sections=n + 2, grid=(args.grid, args.grid), tile_size=args.tile,
-                                   offset=20.0, warp=4.0, channels=0, compress=False))
+        if args.content == "realistic":
+            params = variant_params("realistic", "base", seed=21, sections=n + 2, grid=(args.grid, args.grid),
+                                    tile_size=args.tile)
+        else:
+            params = SynthParams(seed=21, sections=n + 2, grid=(args.grid, args.grid), tile_size=args.tile,
+                                 offset=20.0, warp=4.0, channels=0, compress=False)
+        generate(data, params)
     first = _subset(data / "tiles.csv", data / "first.csv", lambda s: s < n)
     later = _subset(data / "tiles.csv", data / "later.csv", lambda s: s >= n)
     scale = ["--pixel-size", "4", "--section-thickness", "40", "--workers", "2"]

@@ -325,3 +325,22 @@ def test_reslice_lines_are_read_again_only_for_planes_whose_fingerprint_changed(
     assert lines() == []  # nothing changed: every plane's lines kept
     _stamp(root, {z: (f"plane{z}" if z != 4 else "plane4-new") for z in range(len(SECTIONS))})
     assert lines() == [4]
+
+
+def test_a_run_is_stamped_with_the_estimators_code(monkeypatch):
+    # A stored run is re-used only by the code that solved it: editing the estimator without
+    # bumping ESTIMATE_VERSION once handed a benchmark a dropped estimator's runs.
+    import hashlib
+    from pathlib import Path
+
+    from stackbuild.qc import reuse
+
+    here = Path(reuse.__file__).parent
+    h = hashlib.blake2b(digest_size=16)
+    for name in ("zchain.py", "runs.py"):
+        h.update((here / name).read_bytes())
+    assert reuse.ESTIMATE_CODE == h.hexdigest()
+    args = ({(0, 1): "a", (1, 2): "b"}, [0, 1, 2], [0, 1, 2], ReportSettings())
+    before = reuse.run_fingerprint(*args)
+    monkeypatch.setattr(reuse, "ESTIMATE_CODE", "edited")
+    assert reuse.run_fingerprint(*args) != before

@@ -283,7 +283,8 @@ def failing_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettin
             from .sections import stored_rows
 
             stitches = {s: folder.store.load_stitch(s) for s in secs}  # the few sections drawn, not all
-            rows = {k: [r for s in secs for r in stored_rows(folder.root, s, k)] for k in ("tiles", "pairs")}
+            got = [stored_rows(folder.root, s, ("tiles", "pairs")) for s in secs]  # each section's file read once
+            rows = {k: [r for g in got for r in g[k]] for k in ("tiles", "pairs")}
             return plots.tile_maps(stitches, rows["tiles"], rows["pairs"], secs, px)
 
         fps = [meas.section_fps.get(s) for s in secs]  # each section's records and settings, its rows follow

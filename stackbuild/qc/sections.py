@@ -18,6 +18,7 @@ one summary per section (a few kB).
 from __future__ import annotations
 
 import json
+import math
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -168,8 +169,23 @@ def _top(rows, key, n):
     return sorted(ok, key=lambda r: -key(r))[:n]
 
 
+#: types :func:`jsonable` returns as they are (exact types: a subclass, numpy's float64 among them, takes the long way)
+_AS_IS = frozenset({str, int, bool, type(None)})
+
+
 def jsonable(x):
     """Return ``x`` with numpy scalars as Python numbers, non-finite floats as None and keys as strings."""
+    # the exact built-in types first: a section's stored rows are tens of thousands of plain values, and
+    # numpy's isfinite on a Python float and isinstance against numpy's abstract types cost more than the walk
+    t = type(x)
+    if t in _AS_IS:
+        return x
+    if t is float:
+        return x if math.isfinite(x) else None
+    if t is list or t is tuple:
+        return [v if type(v) in _AS_IS else jsonable(v) for v in x]
+    if t is dict:
+        return {k if type(k) is str else str(k): v if type(v) in _AS_IS else jsonable(v) for k, v in x.items()}
     if isinstance(x, dict):
         return {str(k): jsonable(v) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
@@ -233,9 +249,13 @@ def seam_job(job: SectionJob) -> dict:
     return {**summary, "reused": False, "fingerprint": fp}
 
 
-def stored_rows(build, section: int, kind: str) -> list[dict]:
-    """Return the stored ``"tiles"`` or ``"pairs"`` rows of one section (empty when not measured)."""
+def stored_rows(build, section: int, kind):
+    """Return the stored ``"tiles"`` or ``"pairs"`` rows of one section (empty when not measured).
+
+    ``kind`` may be a tuple of kinds: ``{kind: rows}`` of each, from one read of the section's file.
+    """
     path = section_file(build, section)
-    if not path.is_file():
-        return []
-    return json.loads(path.read_text(encoding="utf-8")).get(kind) or []
+    doc = json.loads(path.read_text(encoding="utf-8")) if path.is_file() else {}
+    if isinstance(kind, tuple):
+        return {k: doc.get(k) or [] for k in kind}
+    return doc.get(kind) or []

@@ -88,3 +88,36 @@ def test_a_lazy_window_equals_the_window_read_whole_and_finds_data_as_it_does(tm
         lazy.fill(5, 20, 7, 40)
         np.testing.assert_array_equal(lazy.array[5:20, 7:40], whole[5:20, 7:40])
         np.testing.assert_array_equal(lazy.fill_all(), arr[z, y0:y1, x0:x1])  # zarr-python's read is the reference
+
+
+@pytest.mark.parametrize("dtype", ["uint8", "uint16"])
+def test_a_level_read_without_zarr_equals_zarrs_own_read(tmp_path, dtype):
+    # zarr-python's read of the same array is the reference (its layout read from zarr.json, its chunks decoded)
+    from stackbuild.qc.levelread import StoredLevel
+    from stackbuild.render.shardfile import shard_reader, shard_writer
+
+    arr, _ = _array(tmp_path, dtype)
+    level = StoredLevel.open(tmp_path / "level", "level")
+    assert level is not None and level.shape == arr.shape and level.dtype == arr.dtype
+    ours, theirs = shard_reader(tmp_path / "level"), shard_writer(arr)
+    assert (ours.chunk, ours.shard, ours.shape, ours.dtype, ours.fill) == \
+        (theirs.chunk, theirs.shard, tuple(theirs.shape), theirs.dtype, theirs.fill)
+    assert ours.key((1, 2, 3)) == theirs.key((1, 2, 3))
+    for key in [1, -1, (0,), (1, slice(130, None), slice(130, None)),  # a shard of fill only (no file)
+                (0, slice(10, 190), slice(5, 229)), (slice(0, 2), slice(63, 64), slice(None)),
+                (slice(None), slice(None), slice(100, 101)), (0, slice(-50, None), slice(-70, -3)),
+                (1, slice(5, 5), slice(0, 10))]:
+        got, want = level[key], arr[key]
+        assert got.shape == want.shape and got.dtype == want.dtype
+        np.testing.assert_array_equal(got, want)
+    with pytest.raises(IndexError):
+        level[2]
+    assert LevelReader.of(level, "level") is not None
+
+
+def test_a_layout_the_reader_does_not_handle_is_left_to_zarr(tmp_path):
+    from stackbuild.qc.levelread import StoredLevel
+
+    zarr.create_array(str(tmp_path / "plain"), shape=(2, 40, 40), dtype="uint8", chunks=(1, 20, 20))  # no shards
+    assert StoredLevel.open(tmp_path / "plain", "plain") is None
+    assert StoredLevel.open(tmp_path / "nothing", "nothing") is None

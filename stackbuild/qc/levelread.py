@@ -36,6 +36,8 @@ class LevelReader:
     @classmethod
     def of(cls, array, label: str) -> "LevelReader | None":
         """Return a reader of zarr ``array`` (None when its layout is not the render's, or chunks span planes)."""
+        if isinstance(array, StoredLevel):
+            return cls(array.reader.layout, label)
         import zarr
 
         from ..render.shardfile import shard_writer
@@ -110,6 +112,69 @@ class LevelReader:
             if y1 > y0 and x1 > x0:
                 out.update((r, c) for r in range(y0 // ch, (y1 - 1) // ch + 1) for c in range(x0 // cw, (x1 - 1) // cw + 1))
         return out
+
+
+class StoredLevel:
+    """A written 3-D level read straight from its shard files: ``shape``, ``dtype`` and numpy-style reads.
+
+    What the report reads through a level (planes, windows, lines through the stack) without
+    zarr-python, whose import alone costs a report process about 0.3 s of CPU: the layout comes from
+    the array's ``zarr.json`` (:func:`stackbuild.render.shardfile.shard_reader`), each chunk is read with
+    its CRC-32C checked and decoded only under the rows asked for. ``tests/test_qc_levelread.py``
+    compares its reads with zarr-python's.
+    """
+
+    ndim = 3
+
+    def __init__(self, layout, label: str):
+        self.reader = LevelReader(layout, label)
+        self.shape, self.dtype = self.reader.shape, self.reader.dtype
+
+    @classmethod
+    def open(cls, folder, label: str) -> "StoredLevel | None":
+        """Return the level stored in ``folder`` (None when its layout is not the render's: read it through zarr)."""
+        from ..render.shardfile import shard_reader
+
+        layout = shard_reader(folder)
+        if layout is None or len(layout.shape) != 3 or layout.chunk[0] != 1 or layout.shard[0] != 1:
+            return None
+        return cls(layout, label)
+
+    def __getitem__(self, key) -> np.ndarray:
+        """Return ``level[key]`` for integers and slices of step 1, as numpy (and zarr) index."""
+        import operator
+
+        key = key if isinstance(key, tuple) else (key,)
+        if len(key) > 3:
+            raise IndexError(f"too many indices for a 3-D level: {key!r}")
+        key = key + (slice(None),) * (3 - len(key))
+        ranges, kept = [], []
+        for k, n in zip(key, self.shape):
+            if isinstance(k, slice):
+                a, b, step = k.indices(n)
+                if step != 1:
+                    raise IndexError("only slices of step 1 are read")
+                ranges.append((a, max(a, b)))
+                kept.append(slice(None))
+            else:
+                i = operator.index(k)
+                i = i + n if i < 0 else i
+                if not 0 <= i < n:
+                    raise IndexError(f"index {k} is out of bounds for an axis of size {n}")
+                ranges.append((i, i + 1))
+                kept.append(0)
+        (z0, z1), (y0, y1), (x0, x1) = ranges
+        out = np.empty((z1 - z0, y1 - y0, x1 - x0), self.dtype)
+        rd = self.reader
+        ch, cw = rd.chunk
+        for z in range(z0, z1):
+            for r in range(y0 // ch, (y1 - 1) // ch + 1) if y1 > y0 else ():
+                a0, a1 = max(y0, r * ch), min(y1, (r + 1) * ch)
+                for c in range(x0 // cw, (x1 - 1) // cw + 1) if x1 > x0 else ():
+                    b0, b1 = max(x0, c * cw), min(x1, (c + 1) * cw)
+                    data = rd.rows(rd.stream(z, r, c), (z, r, c), a0 - r * ch, a1 - r * ch)
+                    out[z - z0, a0 - y0:a1 - y0, b0 - x0:b1 - x0] = data[a0 - r * ch:a1 - r * ch, b0 - c * cw:b1 - c * cw]
+        return out[tuple(kept)]
 
 
 class ChunkKeeper:

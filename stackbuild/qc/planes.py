@@ -12,7 +12,6 @@ from pathlib import Path
 
 import cv2
 import numpy as np
-import zarr
 
 from ..folder import BuildFolder
 
@@ -24,7 +23,8 @@ class PlaneSource:
     Attributes
     ----------
     data : array-like, shape (z, y, x)
-        A zarr array or a dask array; planes are read one at a time.
+        A :class:`~stackbuild.qc.levelread.StoredLevel` (the render's shards), a zarr array or a dask
+        array; planes are read one at a time.
     factor : float
         Pixel size of this level over that of level 0.
     offset : (float, float)
@@ -102,20 +102,41 @@ def data_mask(plane: np.ndarray) -> np.ndarray:
     return empty == 0
 
 
-def _ome_levels(volume: Path) -> tuple[zarr.Group, list[dict]] | None:
-    """Return the image group and its ``multiscales[0]`` datasets, per OME-Zarr 0.5."""
+def _ome_levels(volume: Path) -> tuple[Path, list[dict]] | None:
+    """Return the image group's folder and its ``multiscales[0]`` datasets, per OME-Zarr 0.5.
+
+    The group's attributes are read from its ``zarr.json`` (zarr v3 specification, "group metadata"),
+    not through zarr-python: a report whose levels are the render's shards never imports it.
+    """
+    import json
+
     for sub in ("em", ""):
         path = volume / sub if sub else volume
         if not (path / "zarr.json").exists():
             continue
         try:
-            grp = zarr.open_group(str(path), mode="r")
-        except Exception:
+            meta = json.loads((path / "zarr.json").read_text(encoding="utf-8"))
+            attrs = meta.get("attributes") or {} if meta.get("node_type") == "group" else None
+        except (OSError, ValueError, AttributeError):
             continue
-        ms = grp.attrs.get("ome", {}).get("multiscales") or grp.attrs.get("multiscales")
+        if not isinstance(attrs, dict):
+            continue
+        ms = (attrs.get("ome") or {}).get("multiscales") or attrs.get("multiscales")
         if ms:
-            return grp, ms[0]["datasets"]
+            return path, ms[0]["datasets"]
     return None
+
+
+def _open_level(group: Path, name: str, label: str):
+    """Return level ``name`` of the image group: read from its shard files, or through zarr for another layout."""
+    from .levelread import StoredLevel
+
+    level = StoredLevel.open(group / name, label)
+    if level is not None:
+        return level
+    import zarr
+
+    return zarr.open_array(str(group / name), mode="r")
 
 
 def _scale_translation(ds: dict) -> tuple[np.ndarray, np.ndarray]:
@@ -162,12 +183,12 @@ def open_planes(build_dir: str | Path, *, max_factor: float | None = None,
         grp, datasets = found
         st = [_scale_translation(d) for d in datasets]
         factors = [float(s[-1] / st[0][0][-1]) for s, _ in st]
-        arr0 = grp[datasets[0]["path"]]
+        arr0 = _open_level(grp, datasets[0]["path"], "volume.zarr level 0")
         i = _choose(factors, max_factor, max_px, max(arr0.shape[-2:]))
         s, t = st[i]
         s0, t0 = st[0]
         off = ((t[-1] - t0[-1]) / s0[-1], (t[-2] - t0[-2]) / s0[-2])
-        arr = grp[datasets[i]["path"]]
+        arr = arr0 if i == 0 else _open_level(grp, datasets[i]["path"], f"volume.zarr level {i}")
         if arr.ndim > 3:  # leading channel/time axes of size 1
             arr = arr[(0,) * (arr.ndim - 3)]
         return PlaneSource(arr, factors[i], off, "volume.zarr", i)

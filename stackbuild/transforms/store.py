@@ -27,7 +27,6 @@ from pathlib import Path
 from typing import Callable, TextIO
 
 import numpy as np
-import zarr
 
 from ..errors import InputError
 from .arrayfile import read_one_chunk
@@ -165,6 +164,8 @@ class TransformStore:
     @staticmethod
     def _write_array(path: Path, arr: np.ndarray) -> None:
         tmp = path.with_name(f".{path.name}.tmp")
+        import zarr  # here, not at the top: a process that only reads records (a report) never imports it
+
         shutil.rmtree(tmp, ignore_errors=True)
         z = zarr.create_array(store=str(tmp), shape=arr.shape, dtype=arr.dtype,
                               chunks=arr.shape, zarr_format=3)
@@ -184,6 +185,8 @@ class TransformStore:
         if direct is not None:
             return direct
         try:
+            import zarr
+
             return np.asarray(zarr.open_array(str(path), mode="r")[...])
         except Exception as exc:
             raise InputError(f"transform array is missing or unreadable ({exc})", file=path,

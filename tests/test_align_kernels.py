@@ -358,3 +358,22 @@ def test_overview_correlation_carries_the_shift_down_past_a_level_that_gives_no_
     assert facts["levels"] == 2 and len(pa) >= 50
     keep = (pa.min(1) > 80) & (pa.max(1) < 430)          # away from the wrapped-around border
     np.testing.assert_allclose(np.median(pb[keep] - pa[keep], axis=0), v, atol=0.05)
+
+
+def test_overview_correlation_from_a_chained_model_skips_the_coarser_levels():
+    # scikit-image's camera and an exact translation of it by (40.4, -26.3) px (scipy.ndimage.fourier_shift).
+    # A prior model within the blocks' search (8 px) is matched at the overview alone and gives the
+    # shift; a prior beyond the search gives no fit there, and the pyramid runs as with no prior
+    from stackbuild.align.correlate import correlate_overviews
+    img = data.camera().astype(np.float32)
+    v = np.array([40.4, -26.3])
+    moved = _fourier_shifted(img, v)
+    pa, pb, facts = correlate_overviews(img, moved, prior=np.array([[1, 0, 38.0], [0, 1, -24.0]]))
+    assert facts["levels"] == 1 and len(pa) >= 50
+    keep = (pa.min(1) > 80) & (pa.max(1) < 430)          # away from the wrapped-around border
+    np.testing.assert_allclose(np.median(pb[keep] - pa[keep], axis=0), v, atol=0.05)
+    far = correlate_overviews(img, moved, prior=np.array([[1, 0, 0.0], [0, 1, 0.0]]))
+    none = correlate_overviews(img, moved)
+    assert far[2] == none[2] and none[2]["levels"] == 2
+    np.testing.assert_array_equal(far[0], none[0])
+    np.testing.assert_array_equal(far[1], none[1])

@@ -86,7 +86,8 @@ def _grid(shape, spacing, reach):
 def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, max_shift: int = 8,
                         coarsest: int = 192, threshold: float = 2.0, min_confidence: float = 0.15,
                         blur: float = 1.0, blocks: int = 400, coarse_blocks: int = 400,
-                        unbiased: bool = True, coarse_unbiased: bool = True) -> tuple[np.ndarray, np.ndarray, dict]:
+                        unbiased: bool = True, coarse_unbiased: bool = True,
+                        prior: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, dict]:
     """Return corresponding points ``(pa, pb)`` (overview pixels ``(x, y)``) of two overviews, and facts.
 
     Parameters
@@ -118,6 +119,12 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         The same for the coarser levels. Each level measures what the model
         so far has left, so the one-pass estimate's pull toward that model
         (a few per cent of what is left) is measured again by the next level.
+    prior : ndarray, shape (2, 3), optional
+        A model ``a`` px -> ``b`` px already known to within the blocks'
+        search (e.g. chained through the section between): the overviews are
+        matched through it at once, with no coarser levels; if that gives
+        no model, or one farther from it than ``max_shift``, the levels are
+        run as without it.
 
     Returns
     -------
@@ -129,6 +136,14 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         and ``inliers`` of the finest level reached.
     """
     reach = block_reach(half_size, max_shift)
+    if prior is not None:
+        facts = {"levels": 1, "shift_peak": None, "matches": 0, "inliers": 0}
+        fit = _fit_level(np.asarray(a, np.float32), np.asarray(b, np.float32), np.asarray(prior, float),
+                         half_size, max_shift, reach, blocks, unbiased, blur, threshold, min_confidence, facts)
+        # a fit that strays from the prior by more than the search is not what the prior vouched for
+        corners = np.array([[0, 0, 1], [a.shape[1], 0, 1], [0, a.shape[0], 1], [a.shape[1], a.shape[0], 1]], float)
+        if fit is not None and np.abs(corners @ (fit[0] - prior).T).max() <= max_shift:
+            return fit[1], fit[2], facts
     # a level must hold a few blocks across (4 x 4 at the closest spacing) to fit an affine; a smaller
     # one only costs time (and its whole-image shift is coarser than the next level's)
     smallest = 2 * reach + 3 * half_size

@@ -280,10 +280,10 @@ def failing_figures(folder: BuildFolder, doc: dict, meas, settings: ReportSettin
         secs = [r["section"] for r in ranked]
 
         def draw_tiles():
-            from .sections import stored_rows
+            from .sections import stored_tables
 
             stitches = {s: folder.store.load_stitch(s) for s in secs}  # the few sections drawn, not all
-            got = [stored_rows(folder.root, s, ("tiles", "pairs")) for s in secs]  # each section's file read once
+            got = [stored_tables(folder.root, s, ("tiles", "pairs")) for s in secs]  # each section's file read once
             rows = {k: [r for g in got for r in g[k]] for k in ("tiles", "pairs")}
             return plots.tile_maps(stitches, rows["tiles"], rows["pairs"], secs, px)
 

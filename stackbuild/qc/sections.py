@@ -249,13 +249,13 @@ def seam_job(job: SectionJob) -> dict:
     return {**summary, "reused": False, "fingerprint": fp}
 
 
-def stored_rows(build, section: int, kind):
-    """Return the stored ``"tiles"`` or ``"pairs"`` rows of one section (empty when not measured).
-
-    ``kind`` may be a tuple of kinds: ``{kind: rows}`` of each, from one read of the section's file.
-    """
+def stored_tables(build, section: int, kinds: tuple[str, ...]) -> dict[str, list[dict]]:
+    """Return ``{kind: rows}`` of one section's stored ``"tiles"`` / ``"pairs"`` rows, from one read of its file."""
     path = section_file(build, section)
     doc = json.loads(path.read_text(encoding="utf-8")) if path.is_file() else {}
-    if isinstance(kind, tuple):
-        return {k: doc.get(k) or [] for k in kind}
-    return doc.get(kind) or []
+    return {k: doc.get(k) or [] for k in kinds}
+
+
+def stored_rows(build, section: int, kind: str) -> list[dict]:
+    """Return the stored ``"tiles"`` or ``"pairs"`` rows of one section (empty when not measured)."""
+    return stored_tables(build, section, (kind,))[kind]

@@ -34,7 +34,7 @@ from .zchain import ESTIMATE_VERSION
 
 
 def _source_digest(*names: str) -> str:
-    """Return a digest of the source files ``names`` beside this module ("" for a file not shipped as source)."""
+    """Return a digest of the source files ``names`` beside this module (a file not shipped as source counts by its name)."""
     h = hashlib.blake2b(digest_size=16)
     for name in names:
         try:

@@ -156,38 +156,21 @@ class ShardWriter:
 
 
 def shard_writer(array) -> ShardWriter | None:
-    """Return a :class:`ShardWriter` for zarr array ``array``, or None if its layout is not the one handled."""
-    from zarr.codecs import BloscCodec, BytesCodec, Crc32cCodec, ShardingCodec
-    from zarr.codecs.sharding import ShardingCodecIndexLocation
+    """Return a :class:`ShardWriter` for zarr array ``array``, or None if its layout is not the one handled.
+
+    The layout is the one :func:`shard_reader` reads from the array's ``zarr.json`` (one parser of
+    the layout for readers and writers); the array must live in a local folder and its metadata on
+    disk must say its current shape and fill value.
+    """
     from zarr.storage import LocalStore
 
-    meta = array.metadata
     store = array.store_path.store
-    if getattr(meta, "zarr_format", None) != 3 or not isinstance(store, LocalStore) or len(meta.codecs) != 1:
+    if getattr(array.metadata, "zarr_format", None) != 3 or not isinstance(store, LocalStore):
         return None
-    sharding = meta.codecs[0]
-    if not isinstance(sharding, ShardingCodec) or sharding.index_location != ShardingCodecIndexLocation.end:
+    writer = shard_reader(Path(store.root) / array.store_path.path)
+    if writer is None or tuple(writer.shape) != tuple(array.shape) or writer.fill != array.fill_value:
         return None
-    index_codecs = tuple(sharding.index_codecs)
-    if len(index_codecs) != 2 or not isinstance(index_codecs[0], BytesCodec) \
-            or not isinstance(index_codecs[1], Crc32cCodec) or str(getattr(index_codecs[0].endian, "value", "")) != "little":
-        return None
-    inner = tuple(sharding.codecs)
-    if not inner or not isinstance(inner[0], BytesCodec) or not isinstance(inner[-1], Crc32cCodec):
-        return None
-    middle = inner[1:-1]
-    if len(middle) > 1 or (middle and not isinstance(middle[0], BloscCodec)):
-        return None
-    dtype = np.dtype(array.dtype)
-    if dtype.kind not in "ui" or (dtype.itemsize > 1 and str(getattr(inner[0].endian, "value", "")) != "little"):
-        return None
-    blosc = middle[0]._blosc_codec if middle else None
-    chunk = tuple(int(c) for c in sharding.chunk_shape)
-    shard = tuple(int(s) for s in array.shards)
-    if any(s % c for s, c in zip(shard, chunk)):
-        return None
-    folder = Path(store.root) / array.store_path.path
-    return ShardWriter(folder, meta.encode_chunk_key, blosc, chunk, shard, array.shape, dtype, array.fill_value)
+    return writer
 
 
 class _BloscOnDemand:

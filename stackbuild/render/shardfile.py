@@ -26,6 +26,8 @@ from pathlib import Path
 import google_crc32c
 import numpy as np
 
+from ..transforms.arrayfile import chunk_key_separator
+
 #: The sharding codec's marker of a chunk that is not stored (offset and length).
 ABSENT = np.uint64(2 ** 64 - 1)
 
@@ -235,9 +237,8 @@ def shard_reader(folder) -> ShardWriter | None:
         if dtype.kind not in "ui" or (dtype.itemsize > 1 and
                                       (inner[0].get("configuration") or {}).get("endian") != "little"):
             return None
-        keys = meta["chunk_key_encoding"]
-        sep = (keys.get("configuration") or {}).get("separator", "/")
-        if keys.get("name") != "default" or sep not in ("/", "."):
+        sep = chunk_key_separator(meta)
+        if sep is None:
             return None
         if meta["chunk_grid"].get("name") != "regular":
             return None

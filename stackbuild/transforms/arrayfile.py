@@ -31,13 +31,21 @@ import numpy as np
 _TYPES = frozenset({"int8", "int16", "int32", "int64", "uint8", "uint16", "uint32", "uint64", "float32", "float64"})
 
 
-def _chunk_file(meta: dict, path: Path, ndim: int) -> Path | None:
-    """Return the file of chunk ``(0, ..., 0)`` under the ``default`` chunk key encoding, or None for another one."""
+def chunk_key_separator(meta: dict) -> str | None:
+    """Return the separator of an array's ``default`` chunk key encoding ("/" or "."), or None for another encoding.
+
+    Under the ``default`` encoding the chunk at grid position ``(i, j, ...)`` is stored under the key
+    ``"c" + sep + "i" + sep + "j" ...`` (zarr v3 core specification, chunk key encoding).
+    """
     enc = meta.get("chunk_key_encoding") or {}
     sep = (enc.get("configuration") or {}).get("separator", "/")
-    if enc.get("name") != "default" or sep not in ("/", "."):
-        return None
-    return path / sep.join(["c"] + ["0"] * ndim)
+    return sep if enc.get("name") == "default" and sep in ("/", ".") else None
+
+
+def _chunk_file(meta: dict, path: Path, ndim: int) -> Path | None:
+    """Return the file of chunk ``(0, ..., 0)`` under the ``default`` chunk key encoding, or None for another one."""
+    sep = chunk_key_separator(meta)
+    return None if sep is None else path / sep.join(["c"] + ["0"] * ndim)
 
 
 def read_one_chunk(path: str | Path) -> np.ndarray | None:

@@ -132,3 +132,57 @@ def test_chunks_read_back_and_written_as_stored_give_the_file_zarr_writes(tmp_pa
             writer.write((0, y, x), block, {k: b for k, (b, _) in back.items() if b is not None})
     for name in ("0/0/0", "0/0/1", "0/1/0", "0/1/1"):
         assert (tmp_path / "v.zarr/zarr/c" / name).read_bytes() == (tmp_path / "v.zarr/ours/c" / name).read_bytes()
+
+
+@pytest.mark.parametrize("grid", [(1, 4, 4), (1, 3, 5), (2, 3, 7), (1, 1, 1), (1, 16, 16), (3, 3, 3)])
+def test_shard_chunk_order_is_zarrs(grid):
+    # Reference: zarr-python's order of the chunks in a shard it writes (zarr.core.indexing.morton_order_iter).
+    from zarr.core.indexing import morton_order_iter
+
+    from stackbuild.render.shardfile import morton_order
+
+    assert morton_order(grid) == [tuple(int(c) for c in pos) for pos in morton_order_iter(grid)]
+
+
+def test_stored_array_reads_and_writes_as_zarr(tmp_path):
+    # Reference: zarr-python's reads and writes of the same array. A patch of a written volume uses
+    # StoredArray (no zarr import): its reads of any box (edge chunks, a chunk of fill value only, a shard
+    # with no file) equal zarr's, a whole shard written through it gives zarr's file, it pickles as its
+    # folder, and a damaged chunk is read through zarr, which names the problem.
+    import pickle
+
+    from skimage import data
+    from zarr.codecs import BloscCodec, Crc32cCodec
+
+    from stackbuild.render.pyramid import write_block
+    from stackbuild.render.shardfile import StoredArray, shard_writer
+
+    img = data.camera()[None, :200, :230].copy()
+    img[:, :64, 64:128] = 0  # one whole chunk of fill value
+    img[:, 128:, 128:] = 0  # the last shard holds nothing but fill value: no file
+    compressors = [BloscCodec(cname="zstd", clevel=1, shuffle="noshuffle"), Crc32cCodec()]
+    group = zarr.open_group(str(tmp_path / "v.zarr"), mode="w", zarr_format=3)
+    arrays = [group.create_array(n, shape=(1, 200, 230), dtype=np.uint8, chunks=(1, 64, 64), shards=(1, 128, 128),
+                                 compressors=compressors, fill_value=0) for n in ("zarr", "ours")]
+    arrays[0][0:1, :, :] = img
+    stored = pickle.loads(pickle.dumps(StoredArray.open(tmp_path / "v.zarr/ours")))
+    assert stored.shape == (1, 200, 230) and stored.shards == (1, 128, 128) and shard_writer(stored) is stored.layout
+    for y in (0, 128):
+        for x in (0, 128):
+            write_block(stored, 0, y, x, img[:, y:y + 128, x:x + 128])
+    assert stored._zarr is None  # whole shards only: zarr-python was not needed
+    for name in ("0/0/0", "0/0/1", "0/1/0"):
+        assert (tmp_path / "v.zarr/zarr/c" / name).read_bytes() == (tmp_path / "v.zarr/ours/c" / name).read_bytes()
+    assert not (tmp_path / "v.zarr/ours/c/0/1/1").exists()
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        y0, x0 = rng.integers(0, 199), rng.integers(0, 229)
+        y1, x1 = rng.integers(y0 + 1, 201), rng.integers(x0 + 1, 231)
+        np.testing.assert_array_equal(stored[0:1, y0:y1, x0:x1], arrays[0][0:1, y0:y1, x0:x1])
+    assert stored._zarr is None
+    first = tmp_path / "v.zarr/ours/c/0/0/0"
+    damaged = bytearray(first.read_bytes())
+    damaged[10] ^= 0xFF
+    first.write_bytes(bytes(damaged))
+    with pytest.raises(Exception):  # noqa: B017 - zarr-python's own error for bytes that do not check out
+        stored[0:1, 0:10, 0:10]

@@ -193,3 +193,23 @@ def test_other_array_layouts_are_left_to_zarr(tmp_path):
     chunk.write_bytes(b"not zstd")  # undecodable: left to zarr, whose error the store reports with the path
     with pytest.raises(InputError, match="illumination.zarr"):
         store.load_stitch(3)
+
+
+@pytest.mark.parametrize("dtype, shape, blank", [("float32", (64, 64), False), ("float32", (24, 24, 2), False),
+                                                 ("uint16", (5, 7), False), ("float64", (3,), False),
+                                                 ("int8", (4, 4), False), ("uint8", (3, 3), False),
+                                                 ("float32", (6, 8), True)])
+def test_small_arrays_are_written_as_zarr_writes_them(tmp_path, dtype, shape, blank):
+    # Reference: the files zarr-python writes for the same array (create_array with one chunk, then a
+    # whole-array write), compared byte for byte: its zarr.json and its one chunk (left out when blank).
+    import zarr
+
+    from stackbuild.transforms.arrayfile import write_one_chunk
+
+    arr = np.zeros(shape, dtype) if blank else np.random.default_rng(2).normal(0, 50, shape).astype(dtype)
+    ref = zarr.create_array(store=str(tmp_path / "ref.zarr"), shape=shape, dtype=dtype, chunks=shape, zarr_format=3)
+    ref[...] = arr
+    assert write_one_chunk(tmp_path / "mine.zarr", arr)
+    files = lambda root: {str(p.relative_to(root)): p.read_bytes() for p in root.rglob("*") if p.is_file()}  # noqa: E731
+    assert files(tmp_path / "mine.zarr") == files(tmp_path / "ref.zarr")
+    assert not write_one_chunk(tmp_path / "b.zarr", np.zeros(3, bool)) and not (tmp_path / "b.zarr").exists()

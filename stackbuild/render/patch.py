@@ -24,7 +24,6 @@ from dataclasses import asdict
 from pathlib import Path
 
 import numpy as np
-import zarr
 
 from ..folder import BuildFolder
 from ..transforms.records import Canvas
@@ -34,6 +33,7 @@ from .lazy import RenderPlan, block_edges
 from .ngff import multiscales_attrs, root_attrs
 from .pyramid import compute_each, join_shard, render_shard
 from .reduce import level_shapes, reduce2x2
+from .shardfile import StoredArray
 
 
 def stored_quarter(source, z: int, y0: int, y1: int, x0: int, x1: int, reducer: str) -> np.ndarray:
@@ -46,8 +46,37 @@ def _plane_done(*_ignored) -> None:
     return None
 
 
+def _attributes_hold(folder: Path, attrs: dict) -> bool:
+    """Return True if the group in ``folder`` already has every attribute of ``attrs`` with that value (its ``zarr.json``)."""
+    try:
+        have = json.loads((Path(folder) / "zarr.json").read_text(encoding="utf-8")).get("attributes") or {}
+    except (OSError, ValueError, AttributeError):
+        return False
+    return all(have.get(k) == v for k, v in json.loads(json.dumps(attrs)).items())
+
+
+def _stored_levels(em: Path, canvas: Canvas, shapes, attrs: dict) -> list | None:
+    """Return the levels as :class:`~stackbuild.render.shardfile.StoredArray` when neither they nor the group's
+    attributes need a change (no level to add, resize or describe anew); None otherwise (then zarr does it)."""
+    if not _attributes_hold(em, attrs):
+        return None
+    levels = [StoredArray.open(em / str(n)) for n in range(len(shapes))]
+    if any(a is None or a.shape != (canvas.depth, h, w) for a, (h, w) in zip(levels, shapes)):
+        return None
+    return levels
+
+
 def _fit_arrays(em: Path, canvas: Canvas, shapes, settings, attrs: dict) -> tuple[list, dict[int, set]]:
-    """Resize the level arrays to the canvas, create missing levels; return arrays and the extra dirty shards."""
+    """Resize the level arrays to the canvas, create missing levels; return arrays and the extra dirty shards.
+
+    When nothing about the arrays changes (an update within the canvas) nothing is written and the
+    levels come back as :class:`~stackbuild.render.shardfile.StoredArray` (no zarr-python import).
+    """
+    stored = _stored_levels(em, canvas, shapes, attrs)
+    if stored is not None:
+        return stored, {}
+    import zarr
+
     group = zarr.open_group(str(em), mode="r+")
     arrays, extra = [], {}
     block = settings.chunk * settings.shard
@@ -170,7 +199,10 @@ def patch_volume(build_dir, settings, canvas: Canvas, dirty0: dict[int, set], *,
     record = read_plane_record(em) or {"fingerprints": {}, "damaged": {}}
     if store.load_canvas() != canvas:
         store.save_canvas(canvas)
-    zarr.open_group(str(folder.volume_path), mode="a", zarr_format=3).update_attributes(root_attrs())
+    if not _attributes_hold(folder.volume_path, root_attrs()):
+        import zarr
+
+        zarr.open_group(str(folder.volume_path), mode="a", zarr_format=3).update_attributes(root_attrs())
     arrays, extra = _fit_arrays(em, canvas, shapes, settings, attrs)
     planes = sorted(set(dirty0) | (set(range(canvas.depth)) if extra else set()))
     dirty = {z: pyramid_shards(dirty0.get(z, set()), shapes, block, extra) for z in planes}

@@ -36,6 +36,7 @@ from ..manifest import TileManifest, read_tile_manifest
 from ..transforms.records import SectionAlignment
 from ..transforms.store import TransformStore, atomic_write_text
 from ..transforms.types import Affine2D, DisplacementField
+from .update_manifest import inset_pixel_sizes
 
 #: Candidate relative scales tried around the nominal pixel-size ratio (+-3 %, common practice, no source).
 SCALES = np.linspace(0.97, 1.03, 25)
@@ -43,50 +44,6 @@ SCALES = np.linspace(0.97, 1.03, 25)
 OVERVIEW = 512
 #: Side (section pixels) of the regions the inset is registered by, one task each.
 REGION = 128
-
-
-def inset_pixel_sizes(path: Path) -> dict[int, float]:
-    """Return manifest row number -> ``pixel_size`` for rows that give one (empty when the column is absent)."""
-    with Path(path).open(newline="", encoding="utf-8") as fh:
-        reader = csv.DictReader(fh)
-        if "pixel_size" not in (reader.fieldnames or []):
-            return {}
-        out = {}
-        for row, rec in enumerate(reader, start=2):
-            text = (rec.get("pixel_size") or "").strip()
-            if text:
-                try:
-                    v = float(text)
-                except ValueError:
-                    raise InputError(f"column 'pixel_size' must be a number, got {text!r}", file=path,
-                                     row=row) from None
-                if not (math.isfinite(v) and v > 0):
-                    raise InputError(f"column 'pixel_size' must be > 0, got {text!r}", file=path, row=row)
-                out[row] = v
-        return out
-
-
-def is_inset(path: Path, build_pixel_nm: float) -> bool:
-    """Return True if the manifest's tiles are at another pixel size than the build's (all of them).
-
-    Raises
-    ------
-    InputError
-        If some rows are at the build's pixel size and others are not, or the finer rows disagree.
-    """
-    sizes = inset_pixel_sizes(path)
-    other = {r: v for r, v in sizes.items() if abs(v - build_pixel_nm) > 1e-6 * build_pixel_nm}
-    if not other:
-        return False
-    n_rows = sum(1 for _ in Path(path).open(encoding="utf-8")) - 1
-    if len(other) != n_rows:
-        row = min(set(range(2, n_rows + 2)) - set(other))
-        raise InputError(f"tiles at the build's pixel size ({build_pixel_nm:g} nm) and at another in one manifest; "
-                         "put the finer inset in a manifest of its own (nothing was changed)", file=path, row=row)
-    if len(set(other.values())) > 1:
-        raise InputError("an inset's tiles must share one pixel_size (nothing was changed)", file=path,
-                         row=max(other))
-    return True
 
 
 def coarse_place(base: np.ndarray, inset: np.ndarray) -> tuple[float, int, int, float]:

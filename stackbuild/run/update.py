@@ -305,7 +305,7 @@ def update_build(build: BuildFolder, new_tiles: Path | None = None, *, append: b
     else:
         if new_tiles is None:
             raise InputError("nothing to resume: every update of this build has finished", file=build.root)
-        from .insets import is_inset
+        from .update_manifest import is_inset
 
         if is_inset(Path(new_tiles), build.config.volume.pixel_size):
             if dry_run:

@@ -4,7 +4,8 @@ Pure bookkeeping on the checked manifests (no transform is read, nothing is writ
 :func:`check_new_tiles` refuses in one line what an update cannot take (a section not in the
 build without ``--append``, tiles of another size or pixel type), :func:`merged_manifest`
 gives the build's manifest with the update's rows in, :func:`changed_tiles` names the tiles
-that really change and :func:`tiles_to_read` counts what registering their pairs again reads.
+that really change and :func:`tiles_to_read` counts what registering their pairs again reads;
+:func:`is_inset` tells a manifest of finer tiles (an inset) from one at the build's pixel size.
 """
 from __future__ import annotations
 
@@ -132,3 +133,47 @@ def tiles_to_read(old: TileManifest, new: TileManifest, changed: dict, settings)
         fresh = {i for i, t in enumerate(tiles) if t.tile in names}
         count += len(fresh | {i for ov in overlaps if {ov.a, ov.b} & fresh for i in (ov.a, ov.b)})
     return count
+
+
+def inset_pixel_sizes(path: Path) -> dict[int, float]:
+    """Return manifest row number -> ``pixel_size`` for rows that give one (empty when the column is absent)."""
+    with Path(path).open(newline="", encoding="utf-8") as fh:
+        reader = csv.DictReader(fh)
+        if "pixel_size" not in (reader.fieldnames or []):
+            return {}
+        out = {}
+        for row, rec in enumerate(reader, start=2):
+            text = (rec.get("pixel_size") or "").strip()
+            if text:
+                try:
+                    v = float(text)
+                except ValueError:
+                    raise InputError(f"column 'pixel_size' must be a number, got {text!r}", file=path,
+                                     row=row) from None
+                if not (math.isfinite(v) and v > 0):
+                    raise InputError(f"column 'pixel_size' must be > 0, got {text!r}", file=path, row=row)
+                out[row] = v
+        return out
+
+
+def is_inset(path: Path, build_pixel_nm: float) -> bool:
+    """Return True if the manifest's tiles are at another pixel size than the build's (all of them).
+
+    Raises
+    ------
+    InputError
+        If some rows are at the build's pixel size and others are not, or the finer rows disagree.
+    """
+    sizes = inset_pixel_sizes(path)
+    other = {r: v for r, v in sizes.items() if abs(v - build_pixel_nm) > 1e-6 * build_pixel_nm}
+    if not other:
+        return False
+    n_rows = sum(1 for _ in Path(path).open(encoding="utf-8")) - 1
+    if len(other) != n_rows:
+        row = min(set(range(2, n_rows + 2)) - set(other))
+        raise InputError(f"tiles at the build's pixel size ({build_pixel_nm:g} nm) and at another in one manifest; "
+                         "put the finer inset in a manifest of its own (nothing was changed)", file=path, row=row)
+    if len(set(other.values())) > 1:
+        raise InputError("an inset's tiles must share one pixel_size (nothing was changed)", file=path,
+                         row=max(other))
+    return True

@@ -100,9 +100,8 @@ def compare_blocks(old: np.ndarray, new: np.ndarray, block: int = BLOCK, min_std
 
 def _tile_task(job: tuple) -> dict:
     """One replaced tile: its footprint rendered from the current records against the stored volume."""
-    import zarr
-
     from ..render.lazy import RenderPlan, render_block
+    from ..render.shardfile import StoredArray
     from ..render.settings import RenderSettings
     from ..transforms.records import Canvas
 
@@ -111,7 +110,13 @@ def _tile_task(job: tuple) -> dict:
     plan = RenderPlan.from_canvas(Path(root) / "transforms", canvas, RenderSettings(**settings_doc))
     y0, y1, x0, x1 = box
     new = render_block(plan, z, y0, y1, x0, x1)[0]
-    old = np.asarray(zarr.open_array(str(Path(root) / "volume.zarr" / "em" / "0"), mode="r")[z, y0:y1, x0:x1])
+    level0 = Path(root) / "volume.zarr" / "em" / "0"
+    stored = StoredArray.open(level0)  # the render's layout read without zarr-python, else through zarr
+    if stored is None:
+        import zarr
+
+        stored = zarr.open_array(str(level0), mode="r")
+    old = np.asarray(stored[z:z + 1, y0:y1, x0:x1])[0]
     found = compare_blocks(old, new)
     matched = [s for s, _ in found if math.isfinite(s)]
     return {"blocks": len(found), "unmatched": len(found) - len(matched), "max_shift_px": max(matched, default=None),

@@ -29,7 +29,7 @@ from typing import Callable, TextIO
 import numpy as np
 
 from ..errors import InputError
-from .arrayfile import read_one_chunk
+from .arrayfile import read_one_chunk, write_one_chunk
 from .records import FORMAT_VERSION, Canvas, SectionAlignment, SectionStitch
 
 FORMAT_NAME = "stackbuild.transforms"
@@ -164,12 +164,14 @@ class TransformStore:
     @staticmethod
     def _write_array(path: Path, arr: np.ndarray) -> None:
         tmp = path.with_name(f".{path.name}.tmp")
-        import zarr  # here, not at the top: a process that only reads records (a report) never imports it
-
         shutil.rmtree(tmp, ignore_errors=True)
-        z = zarr.create_array(store=str(tmp), shape=arr.shape, dtype=arr.dtype,
-                              chunks=arr.shape, zarr_format=3)
-        z[...] = arr
+        if not write_one_chunk(tmp, arr):  # the files zarr writes, without importing it; else zarr itself
+            import zarr
+
+            shutil.rmtree(tmp, ignore_errors=True)
+            z = zarr.create_array(store=str(tmp), shape=arr.shape, dtype=arr.dtype,
+                                  chunks=arr.shape, zarr_format=3)
+            z[...] = arr
         shutil.rmtree(path, ignore_errors=True)
         os.replace(tmp, path)
 

@@ -86,7 +86,7 @@ from .landmarks import landmark_rows, landmark_totals, per_channel_rms
 from .measure import Measurements, section_to_output
 from .probe import measure_error
 from .straighten import straightening
-from .zchain import section_error
+from .zchain import pooled_errors
 from .planes import open_planes
 from .settings import ReportSettings
 
@@ -121,14 +121,18 @@ class _Scale:
 
 
 def plane_errors(probe, depth: int) -> dict[int, dict]:
-    """Return ``{z: {"align_error_px", "align_error_unc_px", "blocks", "max", "at_xy"}}`` from the probe's plane sums."""
+    """Return ``{z: {"align_error_px", "align_error_unc_px", "blocks", "max", "at_xy"}}`` from the probe's plane sums.
+
+    Each plane's error is pooled with its neighbours' along z (:func:`stackbuild.qc.zchain.pool_along_z`).
+    """
     out = {}
+    pooled = pooled_errors(probe.planes) if probe is not None else {}
     for z in range(depth):
         p = probe.planes.get(z) if probe is not None else None
-        if not p:
+        if not p or z not in pooled:
             out[z] = {"align_error_px": None, "align_error_unc_px": None, "blocks": 0, "max": None, "at_xy": None}
             continue
-        est, unc = section_error(p["n"], p["sum_sq"], p["sum_noise"])
+        est, unc = pooled[z]
         out[z] = {"align_error_px": est, "align_error_unc_px": unc, "blocks": int(p["n"]),
                   "max": float(p["max"]) if p["max"] >= 0 else None, "at_xy": p["at_xy"] if p["max"] >= 0 else None}
     return out

@@ -87,7 +87,7 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
                         coarsest: int = 192, threshold: float = 2.0, min_confidence: float = 0.15,
                         blur: float = 1.0, blocks: int = 400, coarse_blocks: int = 400,
                         unbiased: bool = True, coarse_unbiased: bool = True,
-                        prior: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, dict]:
+                        prior: np.ndarray | None = None, finest: bool = True) -> tuple[np.ndarray, np.ndarray, dict]:
     """Return corresponding points ``(pa, pb)`` (overview pixels ``(x, y)``) of two overviews, and facts.
 
     Parameters
@@ -125,6 +125,11 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         matched through it at once, with no coarser levels; if that gives
         no model, or one farther from it than ``max_shift``, the levels are
         run as without it.
+    finest : bool
+        False stops at the first level that gives a model (the coarsest,
+        unless it fails) and returns its correspondences in overview pixels:
+        a model to within about a pixel of that level, for a caller that
+        measures the rest itself (the align stage's grid affines).
 
     Returns
     -------
@@ -133,7 +138,8 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         what ``a`` shows at ``pa``); empty when no level gave a model.
     facts : dict
         ``levels``, ``shift_peak`` (global phase-correlation peak), ``matches``
-        and ``inliers`` of the finest level reached.
+        and ``inliers`` of the finest level reached; with ``finest`` False
+        also ``level``, the level of the answer (0 = the overviews).
     """
     reach = block_reach(half_size, max_shift)
     if prior is not None:
@@ -153,7 +159,7 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         pyr_b.append(_halve(pyr_b[-1]))
     shift, peak = global_shift(pyr_a[-1], pyr_b[-1], blur)
     model = np.array([[1.0, 0.0, shift[0]], [0.0, 1.0, shift[1]]])      # a-level px -> b-level px
-    facts = {"levels": len(pyr_a), "shift_peak": peak, "matches": 0, "inliers": 0}
+    facts = {"levels": len(pyr_a), "shift_peak": peak, "matches": 0, "inliers": 0, "level": 0}
     empty = np.zeros((0, 2))
     pa = pb = empty
     top = len(pyr_a) - 1
@@ -170,6 +176,10 @@ def correlate_overviews(a: np.ndarray, b: np.ndarray, *, half_size: int = 16, ma
         pa = pb = empty
         if fit is not None:
             model, pa, pb = fit
+            if not finest and lvl:
+                # level pixel p has its centre at overview pixel f p + (f - 1) / 2 (f = 2 ** lvl)
+                f = 2.0 ** lvl
+                return pa * f + (f - 1) / 2.0, pb * f + (f - 1) / 2.0, {**facts, "level": lvl}
         if lvl:
             # also when this level gave no fit: the whole-image shift, or the model of a coarser
             # level, must be carried down

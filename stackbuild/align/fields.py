@@ -46,6 +46,12 @@ class SolveTask:
     settings: object
     halo_rows: slice
     halo_cols: slice
+    #: ``(origin, spacing, {z: (2, 3) matrix})`` or None: the matches were measured through other
+    #: section affines, ``A_z``, than the ones now solved for, ``A'_z``; the matrix is
+    #: ``D_z = A_z^-1 A'_z`` (aligned frame to aligned frame). To first order a match ``v_ab(p)``
+    #: measured through the old affines reads ``v_ab(p) + d_a(p) - d_b(p)`` through the new ones,
+    #: ``d_z(p) = D_z p - p``, at node ``p = origin + spacing * (i, j)``
+    moved: tuple | None = None
 
 
 def _gather(task: SolveTask):
@@ -103,6 +109,19 @@ def low_contrast(contrast: dict, fraction: float) -> dict:
     return {z: np.nan_to_num(contrast[z], nan=np.inf) < fraction * med for z in contrast}
 
 
+def _moved(matches: dict, task: SolveTask) -> dict:
+    """Return ``matches`` as measured through the new affines (see :attr:`SolveTask.moved`)."""
+    origin, spacing, maps = task.moved
+    jj, ii = np.mgrid[task.halo_rows, task.halo_cols]
+    p = np.stack([origin[0] + spacing * ii, origin[1] + spacing * jj], -1).astype(np.float64)
+
+    def d(z):
+        m = np.asarray(maps[z], np.float64)
+        return p @ m[:, :2].T + m[:, 2] - p
+
+    return {(a, b): ((sh + (d(a) - d(b))).astype(np.float32), wt) for (a, b), (sh, wt) in matches.items()}
+
+
 def solve_block_job(task: SolveTask) -> dict:
     """Solve one node block with its halo; save the block's own field increments; return per-section counts.
 
@@ -117,6 +136,8 @@ def solve_block_job(task: SolveTask) -> dict:
     matches, contrast = _gather(task)
     zs = list(task.sections)
     ny, nx = task.halo_rows.stop - task.halo_rows.start, task.halo_cols.stop - task.halo_cols.start
+    if task.moved is not None:
+        matches = _moved(matches, task)
     for z in zs:
         contrast.setdefault(z, np.full((ny, nx), np.nan, np.float32))
     low = low_contrast(contrast, s.damaged_contrast)

@@ -377,3 +377,20 @@ def test_overview_correlation_from_a_chained_model_skips_the_coarser_levels():
     assert far[2] == none[2] and none[2]["levels"] == 2
     np.testing.assert_array_equal(far[0], none[0])
     np.testing.assert_array_equal(far[1], none[1])
+
+
+def test_overview_correlation_can_stop_at_the_coarsest_level():
+    # scikit-image's camera and an exact translation of it by (40.4, -26.3) px (scipy.ndimage.fourier_shift).
+    # finest=False (the align stage's grid affines measure the rest themselves) returns the first level
+    # that fits, here the 256 px one, in overview pixels: the shift to well within a pixel of that level
+    # (2 overview px), never the overview's own blocks
+    from stackbuild.align.correlate import correlate_overviews
+    img = data.camera().astype(np.float32)
+    v = np.array([40.4, -26.3])
+    moved = _fourier_shifted(img, v)
+    pa, pb, facts = correlate_overviews(img, moved, finest=False)
+    assert facts["levels"] == 2 and facts["level"] == 1 and len(pa) >= 20
+    keep = (pa.min(1) > 80) & (pa.max(1) < 430)          # away from the wrapped-around border
+    np.testing.assert_allclose(np.median(pb[keep] - pa[keep], axis=0), v, atol=0.5)
+    full = correlate_overviews(img, moved)
+    assert full[2]["level"] == 0 and len(full[0]) > len(pa)

@@ -137,18 +137,15 @@ def pair_job(item) -> PairResult:
     if min(fa_["features"], fb_["features"]) < settings.min_inliers:
         return PairResult(a, b, empty, empty, None, stats, "few_features")
     (ia, oa), (ib, ob) = _overview_at(scratch, fa_, s), _overview_at(scratch, fb_, s)
-    start = None
-    if prior is not None:
-        # overview pixel j of a -> section pixel of a -> section pixel of b -> overview pixel of b
-        to_a = Affine2D(np.array([[s, 0.0, oa[0] + 0.5 * s - 0.5], [0.0, s, oa[1] + 0.5 * s - 0.5]]))
-        to_b = Affine2D(np.array([[s, 0.0, ob[0] + 0.5 * s - 0.5], [0.0, s, ob[1] + 0.5 * s - 0.5]]))
-        start = to_a.then(prior.inverse()).then(to_b.inverse()).matrix
+    # overview pixel j has its centre at section pixel offset + (j + 0.5) * s - 0.5 (block means)
+    to_a, to_b = (Affine2D(np.array([[s, 0.0, o[0] + 0.5 * s - 0.5], [0.0, s, o[1] + 0.5 * s - 0.5]])) for o in (oa, ob))
+    # overview pixel of a -> section pixel of a -> section pixel of b -> overview pixel of b
+    start = None if prior is None else to_a.then(prior.inverse()).then(to_b.inverse()).matrix
     pa, pb, facts = correlate_overviews(ia, ib, threshold=settings.ransac_threshold,
                                         min_confidence=settings.min_match_confidence,
                                         blocks=_OVERVIEW_BLOCKS, coarse_blocks=_COARSE_BLOCKS,
                                         coarse_unbiased=False, prior=start, finest=finest)
-    # overview pixel j has its centre at section pixel offset + (j + 0.5) * s - 0.5 (block means)
-    pa, pb = oa + (pa + 0.5) * s - 0.5, ob + (pb + 0.5) * s - 0.5
+    pa, pb = to_a.apply(pa), to_b.apply(pb)
     # the threshold in pixels of the level the points come from (2 ** level overview pixels each)
     s_level = s * 2 ** facts.get("level", 0)
     return pair_from_points(pa, pb, a, b, model=settings.model, threshold=settings.ransac_threshold * s_level,

@@ -88,10 +88,6 @@ def read_one_chunk(path: str | Path) -> np.ndarray | None:
         return None
 
 
-def _fill_json(dtype: np.dtype):
-    return 0.0 if dtype.kind == "f" else 0
-
-
 def write_one_chunk(path: str | Path, arr: np.ndarray) -> bool:
     """Write ``arr`` to the new folder ``path`` as a zarr v3 array of one ``bytes`` + ``zstd`` chunk; False if not handled.
 
@@ -116,12 +112,12 @@ def write_one_chunk(path: str | Path, arr: np.ndarray) -> bool:
     meta = {"shape": shape, "data_type": dtype.name,
             "chunk_grid": {"name": "regular", "configuration": {"chunk_shape": shape}},
             "chunk_key_encoding": {"name": "default", "configuration": {"separator": "/"}},
-            "fill_value": _fill_json(dtype), "codecs": codecs, "attributes": {}, "zarr_format": 3,
+            "fill_value": 0.0 if dtype.kind == "f" else 0, "codecs": codecs, "attributes": {}, "zarr_format": 3,
             "node_type": "array", "storage_transformers": []}
     path.mkdir(parents=True)
     (path / "zarr.json").write_text(json.dumps(meta, indent=2), encoding="utf-8")
     if (arr != 0).any():
-        chunk = path / "/".join(["c"] + ["0"] * arr.ndim)
+        chunk = _chunk_file(meta, path, arr.ndim)
         chunk.parent.mkdir(parents=True)
         chunk.write_bytes(bytes(zstd_encode(np.ascontiguousarray(arr, dtype=dtype.newbyteorder("<")).tobytes())))
     return True

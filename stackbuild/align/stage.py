@@ -428,7 +428,7 @@ def _elastic(source, sections, affines, settings, scratch, mapper, tick, first=N
         grid = _grid(source, affines, settings)
         plan = _Plan(source, grid, sections, settings, scratch)
     else:
-        plan, first_windows, moved = first
+        plan, first_windows, first_moved = first
         grid = plan.grid
     fields = None
     found, share = {}, {}
@@ -445,17 +445,17 @@ def _elastic(source, sections, affines, settings, scratch, mapper, tick, first=N
         # and standard base within 0.01 px RMS of them (bench_align --accuracy, true tile positions).
         # A single round measures the whole shift, and keeps the unbiased passes
         last = rnd == settings.elastic_rounds - 1
+        moved = None
         if rnd == 0 and first is not None:
             # round 0's matches were made by _grid_affines through the affines before its solve
-            counts, n_windows = [], first_windows
-            solved = list(mapper(solve_block_job, plan.solve_tasks(tag, n_windows, fields, moved)))
+            counts, n_windows, moved = [], first_windows, first_moved
         else:
             tasks, n_windows = plan.region_tasks(aligns, tag, settings.neighbours,
                                                  subpixel=settings.elastic_rounds == 1,
                                                  coarsening=1 if last else settings.early_round_coarsening)
             counts = list(mapper(region_job, tasks))
             tick(len(_pairs(sections, settings.neighbours)))
-            solved = list(mapper(solve_block_job, plan.solve_tasks(tag, n_windows, fields)))
+        solved = list(mapper(solve_block_job, plan.solve_tasks(tag, n_windows, fields, moved)))
         if last:
             # the damage statistics come from the finest round: an early round at a coarser scale
             # keeps fewer blocks near a section's edge, and an end section, with links on one side

@@ -30,6 +30,7 @@ import numpy as np
 import tifffile
 
 from .errors import InputError
+from .tiffhead import plain_layout
 
 
 def read_tile(path: str | Path, height: int, width: int, section: int | None = None, *,
@@ -78,16 +79,20 @@ def _plain_layout(path: str, size: int, mtime_ns: int):
     read without decoding the rest (``tifffile``'s ``is_memmappable``). Keyed by size and
     modification time, so a rewritten file is looked at again.
     """
-    try:
-        with tifffile.TiffFile(path) as tf:
-            page = tf.pages[0]
-            if not page.is_memmappable or page.ndim != 2:
-                return None
-            dt = np.dtype(tf.byteorder + page.dtype.str[1:])
-            offset = int(page.dataoffsets[0])
-            shape = tuple(int(n) for n in page.shape)
-    except Exception:  # any trouble: the whole-tile reader names it
-        return None
+    found = plain_layout(path)      # the header alone, for the usual plain tile; tifffile otherwise
+    if found is not None:
+        offset, shape, dt = found
+    else:
+        try:
+            with tifffile.TiffFile(path) as tf:
+                page = tf.pages[0]
+                if not page.is_memmappable or page.ndim != 2:
+                    return None
+                dt = np.dtype(tf.byteorder + page.dtype.str[1:])
+                offset = int(page.dataoffsets[0])
+                shape = tuple(int(n) for n in page.shape)
+        except Exception:  # any trouble: the whole-tile reader names it
+            return None
     if offset + shape[0] * shape[1] * dt.itemsize > size:
         return None
     return offset, shape, dt

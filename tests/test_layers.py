@@ -9,7 +9,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1] / "stackbuild"
 STAGES = ("stitch", "align", "channels", "render", "qc")
-LAYERS = {"errors": 1, "transforms": 1, "_version": 1, "config": 2, "manifest": 2, "tiles": 2, "sampler": 2,
+LAYERS = {"errors": 1, "transforms": 1, "_version": 1, "tiffhead": 1, "config": 2, "manifest": 2, "tiles": 2, "sampler": 2,
           "synth": 2, "folder": 3, **{s: 4 + i / 10 for i, s in enumerate(STAGES)}, "run": 5, "cli": 6, "": 6}
 
 

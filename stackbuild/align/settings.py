@@ -45,6 +45,14 @@ class AlignSettings:
         Largest displacement searched by block matching, elastic working pixels.
     elastic_scale : int
         Elastic block matching works on mosaics downsampled by this factor.
+        4 (blocks of 48 full-resolution px flat, searched 24 px) measures
+        each round at a sixteenth of the pixels; 2 (with
+        ``match_half_size`` 24, ``match_max_shift`` 12) measured the last
+        round finer at about twice the align CPU, for an identifiable
+        residual 0.02-0.04 px lower on the grid-path variants (held-out seeds
+        7-9, ``tests/benchmarks/bench_accuracy.py``: realistic/base 0.52 /
+        0.52 / 0.50 px RMS at 2 against 0.56 / 0.53 / 0.54 at 4; the last of
+        36 sections of realistic/long seed 7 1.46 px at 2, 1.37 at 4).
     smoothness_weight : float
         Weight of the in-plane smoothness (membrane) of each displacement field,
         relative to the block-match data; its effect grows with ``grid_spacing``
@@ -93,10 +101,9 @@ class AlignSettings:
         Every elastic round but the last renders and matches at
         ``elastic_scale`` times this (blocks, search and regions the same in
         full-resolution pixels, a quarter of the pixels at 2); the last one
-        measures at ``elastic_scale``. 1 = every round at ``elastic_scale``.
-        2 cuts align CPU by about a fifth (realistic/base, one thread, median of 4 alternating runs: 4.54 -> 3.95 s) at the same
-        identifiable residual on seeds 0-2 of every realistic variant and
-        standard/base, and on the held-out seeds 7 and 8 of realistic/long.
+        measures at ``elastic_scale``. 1 = every round at ``elastic_scale``
+        (the default: at ``elastic_scale`` 4 the rounds already measure as
+        coarsely as an early round did at 2 x 2).
     damaged_fraction : float
         A section whose share of trusted block matches (in the last elastic
         round) is below this fraction of the stack's median share is flagged
@@ -118,9 +125,9 @@ class AlignSettings:
     min_inliers: int = 12
     elastic: bool = True
     grid_spacing: float = 128.0
-    match_half_size: int = 24
-    match_max_shift: int = 12
-    elastic_scale: int = 2
+    match_half_size: int = 12
+    match_max_shift: int = 6
+    elastic_scale: int = 4
     smoothness_weight: float = 0.002
     min_block_ncc: float = 0.4
     min_match_confidence: float = 0.05
@@ -134,7 +141,7 @@ class AlignSettings:
     elastic_chain: float = 0.02
     elastic_affine_chain: float = 0.0
     elastic_rounds: int = 2
-    early_round_coarsening: int = 2
+    early_round_coarsening: int = 1
     damaged_fraction: float = 0.85
     damaged_contrast: float = 0.6
 

@@ -38,7 +38,7 @@ def _origin(bbox) -> tuple[int, int]:
     return int(np.ceil(bbox[0] + 0.5)), int(np.ceil(bbox[1] + 0.5))
 
 
-def overview_scale(bbox, settings: AlignSettings) -> int:
+def overview_scale(bbox, settings: AlignSettings, rough: bool = False) -> int:
     """Return the reduction factor of a section's overview: at least ``work_scale``, and fine enough
     that the overview's longer side is at most ``overview_size`` pixels.
 
@@ -46,9 +46,14 @@ def overview_scale(bbox, settings: AlignSettings) -> int:
     feature task's memory whatever the section's size (a 130k px section at
     2048 px: scale 64), while a small section is never reduced below
     ``work_scale`` (a 1024 px section keeps its 512 px at scale 2).
+    ``rough`` (the section affines come from the elastic grid, see
+    :func:`_grid_affines`): never finer than the early elastic rounds, which
+    measure what the overview leaves; their renders then take the tiles the
+    overview prepared from the tile cache instead of reading them again.
     """
     side = max(bbox[2] - bbox[0], bbox[3] - bbox[1])
-    return max(int(settings.work_scale), int(np.ceil(side / settings.overview_size)))
+    s = max(int(settings.work_scale), int(np.ceil(side / settings.overview_size)))
+    return max(s, settings.elastic_scale * settings.early_round_coarsening) if rough else s
 
 
 def _structured_blocks(img: np.ndarray, size: int = 16) -> int:
@@ -68,10 +73,10 @@ def features_job(item) -> dict:
 
     Feature positions are stored in full-resolution section pixels.
     """
-    source, z, settings, scratch = item
+    source, z, settings, scratch, rough = item
     bbox = source.bbox(z)
     x0, y0 = _origin(bbox)
-    s = overview_scale(bbox, settings)
+    s = overview_scale(bbox, settings, rough)
     w = int((bbox[2] - 0.5 - x0) // s) + 1
     h = int((bbox[3] - 0.5 - y0) // s) + 1
     img = source.region(z, None, x0, y0, w, h, s)
@@ -200,7 +205,7 @@ def _coarse(source, sections, settings, scratch, mapper, tick, rough=False):
     facts, pairs = {}, []
     for i in range(0, len(sections), window):
         new = sections[i:i + window]
-        for f in mapper(features_job, [(source, z, settings, scratch) for z in new]):
+        for f in mapper(features_job, [(source, z, settings, scratch, rough) for z in new]):
             facts[f["section"]] = f
         tick(len(new))
         ready = [(a, b) for a, b in every if b in set(new)]

@@ -79,7 +79,7 @@ def _bending(ny: int, nx: int) -> sp.csr_matrix:
     return sp.vstack(parts).tocsr() if parts else sp.csr_matrix((0, ny * nx))
 
 
-@functools.lru_cache(maxsize=8)
+@functools.lru_cache(maxsize=64)
 def _in_plane(ny: int, nx: int) -> tuple[sp.spmatrix, sp.csr_matrix, sp.csr_matrix]:
     """Return ``(G'G, B, pattern of B)`` of one grid: the membrane's normal matrix, the second-difference
     operator and which nodes each of its rows involves (1.0), made once per grid shape (not to be modified)."""

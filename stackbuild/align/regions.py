@@ -18,6 +18,7 @@ nodes, match half size 24 and max shift 12 working px): a region is
 """
 from __future__ import annotations
 
+import pickle
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -180,8 +181,8 @@ def region_job(task: RegionTask) -> dict:
         counts[link] = (tried, int(np.isfinite(sh[..., 0]).sum()))
     if not task.links and task.own:
         contrast = _contrast_only(task)
-    np.savez(task.out, shifts=shifts, weights=weights, links=np.array(task.links, int).reshape(-1, 2),
-             contrast=np.asarray(contrast, np.float32), sections=np.array(task.own, int))
+    save_matches(task.out, shifts=shifts, weights=weights, links=np.array(task.links, int).reshape(-1, 2),
+                 contrast=np.asarray(contrast, np.float32), sections=np.array(task.own, int))
     return {"block": task.block, "counts": counts}
 
 
@@ -229,6 +230,25 @@ def residual_stats(hist: np.ndarray, sumsq: float, largest: float) -> dict:
     return {"n": n, "rms": float(np.sqrt(sumsq / n)), "p95": float((k + 0.5) * _BIN), "max": float(largest)}
 
 
+def save_matches(path: str | Path, **arrays: np.ndarray) -> None:
+    """Write one region task's arrays to ``path`` in the scratch folder (read back by :func:`load_matches`).
+
+    A pickle of the arrays, not an ``.npz``: each block's file is read by up to
+    nine solve tasks (its own and its neighbours' halos), and reading the five
+    members of an ``.npz`` took 1.6 ms against 0.08 ms (a quarter of the
+    solve tasks' CPU on 7 x 7-tile sections). The files live only in this
+    run's scratch folder and are read only by this run.
+    """
+    with open(path, "wb") as f:
+        pickle.dump({k: np.ascontiguousarray(v) for k, v in arrays.items()}, f, protocol=5)
+
+
+def load_matches(path: str | Path) -> dict[str, np.ndarray]:
+    """Return the arrays :func:`save_matches` wrote to ``path``."""
+    with open(path, "rb") as f:
+        return pickle.load(f)
+
+
 def load_block(scratch: Path, tag: str, block: int, n_windows: int):
     """Return ``(matches, contrast)`` of one node block from all windows' files.
 
@@ -236,10 +256,9 @@ def load_block(scratch: Path, tag: str, block: int, n_windows: int):
     """
     matches, contrast = {}, {}
     for wdw in range(n_windows):
-        # each member of an .npz is decoded anew on every access: read each one once
-        with np.load(Path(scratch) / f"{tag}_b{block}_w{wdw}.npz") as f:
-            links, shifts, weights = f["links"], f["shifts"], f["weights"]
-            sections, contrasts = f["sections"], f["contrast"]
+        f = load_matches(Path(scratch) / f"{tag}_b{block}_w{wdw}.pkl")
+        links, shifts, weights = f["links"], f["shifts"], f["weights"]
+        sections, contrasts = f["sections"], f["contrast"]
         for k, (a, b) in enumerate(links):
             matches[(int(a), int(b))] = (shifts[k], weights[k])
         for k, z in enumerate(sections):

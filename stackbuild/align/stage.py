@@ -376,7 +376,7 @@ class _Plan:
                         links = window_links(own, seen, neighbours)
                     als = tuple(crop_alignment(aligns[z], self.grid, rows, cols, self.halo) for z in seen)
                     yield RegionTask(self.source, grid, b, rows, cols, als, tuple(links), tuple(own),
-                                     s, str(self.scratch / f"{tag}_b{b}_w{w}.npz"), subpixel,
+                                     s, str(self.scratch / f"{tag}_b{b}_w{w}.pkl"), subpixel,
                                      backwards=len(wins) == 1 and b % 2 == 1)
         return tasks(), len(wins)
 
@@ -614,7 +614,7 @@ def align_sections(source, settings: AlignSettings, *, mapper=map, progress=None
         if own:
             shutil.rmtree(scratch, ignore_errors=True)
         else:
-            for p in scratch.glob("*.np[yz]"):
+            for p in [*scratch.glob("*.np[yz]"), *scratch.glob("*.pkl")]:
                 p.unlink(missing_ok=True)
 
 

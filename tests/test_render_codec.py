@@ -148,14 +148,16 @@ def test_stored_array_reads_and_writes_as_zarr(tmp_path):
     # Reference: zarr-python's reads and writes of the same array. A patch of a written volume uses
     # StoredArray (no zarr import): its reads of any box (edge chunks, a chunk of fill value only, a shard
     # with no file) equal zarr's, a whole shard written through it gives zarr's file, it pickles as its
-    # folder, and a damaged chunk is read through zarr, which names the problem.
+    # folder, and a damaged chunk raises the error that names array, plane and chunk.
     import pickle
 
     from skimage import data
     from zarr.codecs import BloscCodec, Crc32cCodec
 
+    from stackbuild.errors import InputError
+    from stackbuild.render.levelread import StoredArray
     from stackbuild.render.pyramid import write_block
-    from stackbuild.render.shardfile import StoredArray, shard_writer
+    from stackbuild.render.shardfile import shard_writer
 
     img = data.camera()[None, :200, :230].copy()
     img[:, :64, 64:128] = 0  # one whole chunk of fill value
@@ -180,9 +182,11 @@ def test_stored_array_reads_and_writes_as_zarr(tmp_path):
         y1, x1 = rng.integers(y0 + 1, 201), rng.integers(x0 + 1, 231)
         np.testing.assert_array_equal(stored[0:1, y0:y1, x0:x1], arrays[0][0:1, y0:y1, x0:x1])
     assert stored._zarr is None
+    write_block(stored, 0, 0, 0, 255 - img[:, :128, :128])  # a shard rewritten between reads, as a patch does
+    np.testing.assert_array_equal(stored[0:1, 0:128, 0:128], 255 - img[:, :128, :128])
     first = tmp_path / "v.zarr/ours/c/0/0/0"
     damaged = bytearray(first.read_bytes())
     damaged[10] ^= 0xFF
     first.write_bytes(bytes(damaged))
-    with pytest.raises(Exception):  # noqa: B017 - zarr-python's own error for bytes that do not check out
+    with pytest.raises(InputError, match=r"v.zarr/ours: chunk \(plane 0, row 0, col 0\) cannot be decoded"):
         stored[0:1, 0:10, 0:10]

@@ -43,7 +43,7 @@ class _Window:
     made only where blocks are cut, each block's part with 4 px around it: the 5 x 5 opening of
     :func:`data_mask` reaches 4 px, so this is the window's mask exactly, at a fraction of the
     pixels (the probe's blocks cover about a seventh of a window). ``raw`` may be a
-    :class:`~stackbuild.qc.levelread.LazyWindow`: its pixels are then decoded where blocks are cut.
+    :class:`~stackbuild.qc.windowread.LazyWindow`: its pixels are then decoded where blocks are cut.
     """
 
     def __init__(self, raw, valid: np.ndarray | None = None, masked=None):

@@ -23,7 +23,7 @@ class PlaneSource:
     Attributes
     ----------
     data : array-like, shape (z, y, x)
-        A :class:`~stackbuild.qc.levelread.StoredLevel` (the render's shards), a zarr array or a dask
+        A :class:`~stackbuild.render.levelread.StoredLevel` (the render's shards), a zarr array or a dask
         array; planes are read one at a time.
     factor : float
         Pixel size of this level over that of level 0.
@@ -129,7 +129,7 @@ def _ome_levels(volume: Path) -> tuple[Path, list[dict]] | None:
 
 def _open_level(group: Path, name: str, label: str):
     """Return level ``name`` of the image group: read from its shard files, or through zarr for another layout."""
-    from .levelread import StoredLevel
+    from ..render.levelread import StoredLevel
 
     level = StoredLevel.open(group / name, label)
     if level is not None:

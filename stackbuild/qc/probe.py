@@ -11,7 +11,7 @@ summaries only). It reads the planes one region window at a time
 mask: at the defaults about 2.4k x 2.4k x 2 B = 11 MB per window, at most
 ``probe_spans + 1`` windows held, whatever the section's size; the chunks under a
 window's blocks are read straight from the shard files, decoded only under the rows blocks
-are cut from, and kept for the task's later windows within 16 MB, :mod:`stackbuild.qc.levelread`), cuts the
+are cut from, and kept for the task's later windows within 16 MB, :mod:`stackbuild.qc.windowread`), cuts the
 blocks of the probe's grid that fall in the region, and matches every block of
 a pair in one batched call of the project's sub-pixel estimator
 (:func:`stackbuild.align.blockmatch.match_block_pairs`): first on 4x reduced
@@ -34,7 +34,7 @@ import numpy as np
 
 from .matching import COARSE, PlaneBlocks, _coarse_sizes, _reduced, _Window, coarse_plan, fine_plan
 from .matching import match_planes  # noqa: F401 (public here too: tests and bench_qc import it from the probe)
-from .levelread import WindowReader
+from .windowread import WindowReader
 from .planes import PlaneSource, data_mask, open_planes
 from .settings import ReportSettings
 

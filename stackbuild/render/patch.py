@@ -33,7 +33,7 @@ from .lazy import RenderPlan, block_edges
 from .ngff import multiscales_attrs, root_attrs
 from .pyramid import compute_each, join_shard, render_shard
 from .reduce import level_shapes, reduce2x2
-from .shardfile import StoredArray
+from .levelread import StoredArray
 
 
 def stored_quarter(source, z: int, y0: int, y1: int, x0: int, x1: int, reducer: str) -> np.ndarray:
@@ -56,7 +56,7 @@ def _attributes_hold(folder: Path, attrs: dict) -> bool:
 
 
 def _stored_levels(em: Path, canvas: Canvas, shapes, attrs: dict) -> list | None:
-    """Return the levels as :class:`~stackbuild.render.shardfile.StoredArray` when neither they nor the group's
+    """Return the levels as :class:`~stackbuild.render.levelread.StoredArray` when neither they nor the group's
     attributes need a change (no level to add, resize or describe anew); None otherwise (then zarr does it)."""
     if not _attributes_hold(em, attrs):
         return None
@@ -70,7 +70,7 @@ def _fit_arrays(em: Path, canvas: Canvas, shapes, settings, attrs: dict) -> tupl
     """Resize the level arrays to the canvas, create missing levels; return arrays and the extra dirty shards.
 
     When nothing about the arrays changes (an update within the canvas) nothing is written and the
-    levels come back as :class:`~stackbuild.render.shardfile.StoredArray` (no zarr-python import).
+    levels come back as :class:`~stackbuild.render.levelread.StoredArray` (no zarr-python import).
     """
     stored = _stored_levels(em, canvas, shapes, attrs)
     if stored is not None:

@@ -13,7 +13,8 @@ one zarr writes; ``tests/test_render_codec.py`` compares them byte for byte.
 Only the layout the render stage creates is handled (local store, ``sharding_indexed``
 with the index at the end, inner codecs ``bytes`` -> optional ``blosc`` -> ``crc32c``,
 index codecs ``bytes`` (little endian) -> ``crc32c``); :func:`shard_writer` returns None
-for anything else, and the caller writes through zarr.
+for anything else, and the caller writes through zarr. Levels written so are read back without
+zarr by :mod:`stackbuild.render.levelread`.
 """
 from __future__ import annotations
 
@@ -187,14 +188,14 @@ class ShardWriter:
 
 
 def shard_writer(array) -> ShardWriter | None:
-    """Return a :class:`ShardWriter` for ``array`` (a zarr array or a :class:`StoredArray`), or None if its layout is
-    not the one handled.
+    """Return a :class:`ShardWriter` for ``array`` (a zarr array, or a level read without zarr:
+    :class:`~stackbuild.render.levelread.StoredArray`), or None if its layout is not the one handled.
 
     The layout is the one :func:`shard_reader` reads from the array's ``zarr.json`` (one parser of
     the layout for readers and writers); the array must live in a local folder and its metadata on
     disk must say its current shape and fill value.
     """
-    if isinstance(array, StoredArray):
+    if isinstance(getattr(array, "layout", None), ShardWriter):  # read without zarr: its layout is at hand
         return array.layout
     from zarr.storage import LocalStore
 
@@ -209,7 +210,7 @@ def shard_writer(array) -> ShardWriter | None:
 
 class _BloscOnDemand:
     """The numcodecs Blosc codec of a stored array, made at its first use (its import is skipped by readers that
-    decode block by block, :mod:`stackbuild.qc.bloscrows`)."""
+    decode block by block, :mod:`stackbuild.render.bloscrows`)."""
 
     def __init__(self, config: dict):
         self.config, self._codec = config, None
@@ -294,82 +295,3 @@ def shard_reader(folder) -> ShardWriter | None:
         return sep.join(["c", *(str(int(c)) for c in coords)])
 
     return ShardWriter(folder, key, blosc, chunk, shard, shape, dtype, dtype.type(fill))
-
-
-class StoredArray:
-    """A written array of the render's layout, read and written shard by shard without zarr-python.
-
-    What a patch of a written volume (:mod:`stackbuild.render.patch`) needs of a level: its shape,
-    chunks, shards, fill value and data type (from its ``zarr.json``, :func:`shard_reader`), reads
-    of whole chunks (each CRC-32C checked) and whole-shard writes (:class:`ShardWriter`). An update
-    of a few tiles thereby never imports zarr-python (about 0.2 s of CPU per process). Anything
-    else (a chunk whose bytes do not check out, a write that is not one whole shard) goes through
-    a zarr array opened on first need, which also names what is wrong with damaged bytes.
-    Pickles as its folder (tasks on other processes open it again).
-    """
-
-    def __init__(self, folder, layout: ShardWriter):
-        self.folder, self.layout, self._zarr = Path(folder), layout, None
-        self.shape, self.dtype = tuple(layout.shape), np.dtype(layout.dtype).newbyteorder("=")
-        self.chunks, self.shards, self.fill_value = tuple(layout.chunk), tuple(layout.shard), layout.fill
-
-    @classmethod
-    def open(cls, folder) -> "StoredArray | None":
-        """Return the array stored in ``folder`` (None when its layout is not the one handled: open it with zarr)."""
-        layout = shard_reader(folder)
-        return None if layout is None else cls(folder, layout)
-
-    def __reduce__(self):
-        return (_reopen, (str(self.folder),))
-
-    def zarr(self):
-        """Return the array opened with zarr-python (once)."""
-        if self._zarr is None:
-            import zarr
-
-            self._zarr = zarr.open_array(str(self.folder), mode="r+")
-        return self._zarr
-
-    def __getitem__(self, key) -> np.ndarray:
-        """Return ``array[key]`` for a tuple of slices of step 1, one per axis (otherwise through zarr)."""
-        if not (isinstance(key, tuple) and len(key) == len(self.shape) and
-                all(isinstance(k, slice) and k.step in (None, 1) for k in key)):
-            return np.asarray(self.zarr()[key])
-        box = [k.indices(n)[:2] for k, n in zip(key, self.shape)]
-        out = np.empty([max(0, b - a) for a, b in box], self.dtype)
-        if out.size == 0:
-            return out
-        chunk, per = self.layout.chunk, self.layout.per_shard
-        wanted: dict[tuple, list] = {}  # shard -> chunk coords within it
-        for pos in itertools.product(*(range(a // c, (b - 1) // c + 1) for (a, b), c in zip(box, chunk))):
-            shard = tuple(p // n for p, n in zip(pos, per))
-            wanted.setdefault(shard, []).append(tuple(p % n for p, n in zip(pos, per)))
-        for shard, coords in wanted.items():
-            origin = tuple(s * n for s, n in zip(shard, self.layout.shard))
-            if not (self.folder / self.layout.key(shard)).exists():  # no file: every chunk of it is the fill value
-                fill = (None, np.full(chunk, self.fill_value, self.dtype))
-                got = {c: fill for c in coords}
-            else:
-                got = self.layout.stored(origin, coords)
-            if len(got) != len(coords):  # a chunk did not check out: zarr reads it and says what is wrong
-                return np.asarray(self.zarr()[key])
-            for inner, (_, pixels) in got.items():
-                lo = [o + i * c for o, i, c in zip(origin, inner, chunk)]
-                src = tuple(slice(max(a, l) - l, min(b, l + c) - l) for (a, b), l, c in zip(box, lo, chunk))
-                dst = tuple(slice(max(a, l) - a, min(b, l + c) - a) for (a, b), l, c in zip(box, lo, chunk))
-                out[dst] = pixels[src]
-        return out
-
-    def __setitem__(self, key, value) -> None:
-        self.zarr()[key] = value
-
-    def with_config(self, config):
-        """Return the zarr array with ``config`` (a write that is not one whole shard)."""
-        return self.zarr().with_config(config)
-
-
-def _reopen(folder: str) -> StoredArray:
-    out = StoredArray.open(folder)
-    if out is None:
-        raise ValueError(f"{folder}: its layout changed since the task was made")
-    return out

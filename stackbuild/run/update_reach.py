@@ -101,7 +101,7 @@ def compare_blocks(old: np.ndarray, new: np.ndarray, block: int = BLOCK, min_std
 def _tile_task(job: tuple) -> dict:
     """One replaced tile: its footprint rendered from the current records against the stored volume."""
     from ..render.lazy import RenderPlan, render_block
-    from ..render.shardfile import StoredArray
+    from ..render.levelread import StoredArray
     from ..render.settings import RenderSettings
     from ..transforms.records import Canvas
 

@@ -1,4 +1,4 @@
-"""The probe's chunk reader against zarr-python reading the same sharded array (the reference)."""
+"""The render's reader of its shard layout against zarr-python reading the same sharded array (the reference)."""
 from __future__ import annotations
 
 import numpy as np
@@ -6,10 +6,11 @@ import pytest
 import zarr
 
 from stackbuild.errors import InputError
-from stackbuild.qc.levelread import ChunkKeeper, LevelReader
+from stackbuild.render.levelread import LevelReader, StoredLevel
 
 
-def _array(tmp_path, dtype):
+def sharded_level(tmp_path, dtype):
+    """Return a 3-D sharded array as the render lays it out, written by zarr-python, and its pixels."""
     from zarr.codecs import BloscCodec, Crc32cCodec
 
     arr = zarr.create_array(str(tmp_path / "level"), shape=(2, 200, 230), dtype=dtype, chunks=(1, 64, 64),
@@ -22,27 +23,8 @@ def _array(tmp_path, dtype):
     return zarr.open_array(str(tmp_path / "level"), mode="r"), data
 
 
-@pytest.mark.parametrize("dtype", ["uint8", "uint16"])
-def test_windows_equal_zarrs_own_read_and_each_chunk_is_decoded_once(tmp_path, dtype):
-    arr, _ = _array(tmp_path, dtype)
-    reader = LevelReader.of(arr, "level")
-    assert reader is not None
-    boxes = [(1, 10, 150, 5, 230), (1, 100, 200, 120, 230), (0, 0, 200, 0, 230)]
-    steps = [[(id(reader), b[0], *k) for k in reader.chunks_under(np.array([b[1:]]))] for b in boxes]
-    keeper = ChunkKeeper(1 << 30)
-    keeper.plan(steps)
-    for i, (z, y0, y1, x0, x1) in enumerate(boxes):
-        got = keeper.window(reader, i, z, y0, y1, x0, x1, reader.chunks_under(np.array([[y0, y1, x0, x1]])))
-        np.testing.assert_array_equal(got, arr[z, y0:y1, x0:x1])  # zarr-python's read is the reference
-    assert keeper.decoded == len({k for s in steps for k in s})
-    part = ChunkKeeper(0).window(reader, 0, 0, 10, 100, 40, 120, {(0, 1)})  # one of the window's four chunks
-    want = np.zeros_like(part)
-    want[:54, 24:] = arr[0, 10:64, 64:120]
-    np.testing.assert_array_equal(part, want)
-
-
 def test_a_damaged_chunk_is_named(tmp_path):
-    arr, _ = _array(tmp_path, "uint8")
+    arr, _ = sharded_level(tmp_path, "uint8")
     shard = next(p for p in (tmp_path / "level").rglob("*") if p.is_file() and p.name != "zarr.json")
     raw = bytearray(shard.read_bytes())
     raw[100:120] = bytes(20)
@@ -58,7 +40,7 @@ def test_a_damaged_chunk_is_named(tmp_path):
 def test_rows_decoded_block_by_block_equal_numcodecs_decode_of_the_whole_stream(cname, dtype, shuffle):
     from numcodecs import Blosc
 
-    from stackbuild.qc.bloscrows import LazyChunk
+    from stackbuild.render.bloscrows import LazyChunk
 
     rng = np.random.default_rng(7)
     shape = (96, 80)
@@ -71,32 +53,20 @@ def test_rows_decoded_block_by_block_equal_numcodecs_decode_of_the_whole_stream(
     for r0, r1 in [(0, 1), (30, 31), (10, 70), (95, 96), (0, 96)]:
         chunk = LazyChunk(stream, shape, dtype, codec.decode)
         np.testing.assert_array_equal(chunk.rows(r0, r1)[r0:r1], want[r0:r1])
+        whole = LazyChunk(stream, shape, dtype, codec.decode, by_block=False)  # the stream decoded in one call
+        np.testing.assert_array_equal(whole.rows(r0, r1), want)
     partial = LazyChunk(stream, shape, dtype, codec.decode)
     partial.rows(40, 41)
     if dtype == "uint8" and cname != "blosclz":  # plain frames: only the block under row 40 is decoded
         assert partial.decoded_blocks == 1
 
 
-def test_a_lazy_window_equals_the_window_read_whole_and_finds_data_as_it_does(tmp_path):
-    arr, data = _array(tmp_path, "uint8")
-    reader = LevelReader.of(arr, "level")
-    for z, y0, y1, x0, x1 in [(0, 10, 190, 20, 220), (1, 130, 200, 130, 230), (1, 100, 200, 100, 230)]:
-        keys = reader.chunks_under(np.array([[y0, y1, x0, x1]]))
-        whole = ChunkKeeper(1 << 30).window(reader, 0, z, y0, y1, x0, x1, keys)
-        lazy = ChunkKeeper(1 << 30).lazy_window(reader, 0, z, y0, y1, x0, x1, keys)
-        assert lazy.any_data() == bool(whole.any())
-        lazy.fill(5, 20, 7, 40)
-        np.testing.assert_array_equal(lazy.array[5:20, 7:40], whole[5:20, 7:40])
-        np.testing.assert_array_equal(lazy.fill_all(), arr[z, y0:y1, x0:x1])  # zarr-python's read is the reference
-
-
 @pytest.mark.parametrize("dtype", ["uint8", "uint16"])
 def test_a_level_read_without_zarr_equals_zarrs_own_read(tmp_path, dtype):
     # zarr-python's read of the same array is the reference (its layout read from zarr.json, its chunks decoded)
-    from stackbuild.qc.levelread import StoredLevel
     from stackbuild.render.shardfile import shard_reader, shard_writer
 
-    arr, _ = _array(tmp_path, dtype)
+    arr, _ = sharded_level(tmp_path, dtype)
     level = StoredLevel.open(tmp_path / "level", "level")
     assert level is not None and level.shape == arr.shape and level.dtype == arr.dtype
     ours, theirs = shard_reader(tmp_path / "level"), shard_writer(arr)
@@ -116,8 +86,6 @@ def test_a_level_read_without_zarr_equals_zarrs_own_read(tmp_path, dtype):
 
 
 def test_a_layout_the_reader_does_not_handle_is_left_to_zarr(tmp_path):
-    from stackbuild.qc.levelread import StoredLevel
-
     zarr.create_array(str(tmp_path / "plain"), shape=(2, 40, 40), dtype="uint8", chunks=(1, 20, 20))  # no shards
     assert StoredLevel.open(tmp_path / "plain", "plain") is None
     assert StoredLevel.open(tmp_path / "nothing", "nothing") is None

@@ -2,13 +2,14 @@
 
 A Blosc (version 1 format) stream is a 16-byte header, a table of where each of its blocks
 starts, and the blocks, each compressed on its own (c-blosc's ``README_HEADER.rst``; the
-render writes 32 KiB blocks, 32 rows of a 1024 px uint8 chunk). The probe reads a chunk only
-around its blocks' centres (about half of its rows), so decoding the blocks under those rows
-alone saves the rest of the decode. :class:`LazyChunk` does that for the streams whose blocks
-are plain codec frames: zstd or LZ4, not split into byte streams and not shuffled (with one
-byte per item shuffling is no change). Any other stream is decoded whole by the codec that
-wrote it, at the first read. ``tests/test_qc_levelread.py`` checks the rows against
-numcodecs' own decode of the whole stream.
+render writes 32 KiB blocks, 32 rows of a 1024 px uint8 chunk). The report's probe reads a
+chunk only around its blocks' centres (about half of its rows), so decoding the blocks under
+those rows alone saves the rest of the decode (:mod:`stackbuild.render.levelread` reads the
+chunks). :class:`LazyChunk` does that for the streams whose blocks are plain codec frames:
+zstd or LZ4, not split into byte streams and not shuffled (with one byte per item shuffling
+is no change). Any other stream is decoded whole by the codec that wrote it, at the first
+read. ``tests/test_render_levelread.py`` checks the rows against numcodecs' own decode of
+the whole stream.
 """
 from __future__ import annotations
 
@@ -41,15 +42,16 @@ class LazyChunk:
     """One chunk ``(rows, cols)`` from its Blosc stream: :meth:`rows` decodes only the blocks under the rows asked for.
 
     ``whole`` decodes the stream in one call (the codec's own ``decode``); it is used when the
-    blocks cannot be decoded one by one. Errors of a damaged stream are raised when the damaged
-    rows are read.
+    blocks cannot be decoded one by one, or when ``by_block`` is False (a reader of whole chunks:
+    one call is about 0.3 ms faster per 1024 px uint8 chunk than its 32 blocks one by one).
+    Errors of a damaged stream are raised when the damaged rows are read.
     """
 
-    def __init__(self, stream: bytes, shape: tuple[int, int], dtype, whole):
+    def __init__(self, stream: bytes, shape: tuple[int, int], dtype, whole, by_block: bool = True):
         self.shape, self.dtype = shape, np.dtype(dtype)
         self.size = int(np.prod(shape)) * self.dtype.itemsize
         self._stream, self._whole = stream, whole
-        self._codec = _block_codec(stream) if len(stream) >= 16 else None
+        self._codec = _block_codec(stream) if by_block and len(stream) >= 16 else None
         self._flat = None
         if self._codec is not None:
             _, _, _, _, nbytes, self._block, cbytes = struct.unpack_from("<BBBBiii", stream, 0)

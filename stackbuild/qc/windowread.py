@@ -1,18 +1,17 @@
-"""Chunks of a written pyramid level read straight from its shard files, decoded only where the probe cuts.
+"""The probe's region windows of a written pyramid level, cut from its chunks and decoded only where the probe cuts.
 
-The probe reads each plane one region window at a time. Through zarr-python a window read
-costs about 4.7 ms of CPU per 1024 px chunk (its asynchronous codec pipeline around a Blosc
-decode of about 1.8 ms), and neighbouring windows overlap by the probe's margin, so a chunk
-on a region's edge was decoded once per window that touched it (on 7 x 7 tiles of 1024 px
-about 2.2 decodes per chunk, plus the reduced level's few chunks once per window). Here a
-chunk is read with one ``pread`` from its shard (the zarr v3 sharding layout the render
-writes, :func:`stackbuild.render.shardfile.shard_writer` checks it) and its CRC-32C checked;
-a window of the probe (:class:`LazyWindow`) then decodes only the Blosc blocks under the rows
-its blocks are cut from (:mod:`stackbuild.qc.bloscrows`: 38 % of the blocks on 7 x 7 tiles of
-1024 px), and a chunk is kept while a later window of the same task still needs it
-(:class:`ChunkKeeper`; the farthest-needed chunk is dropped first when over its budget).
-A window holds only the chunks under the blocks it is asked for; elsewhere it holds the
-fill value, which the probe never reads.
+The probe reads each plane one region window at a time, and neighbouring windows overlap
+by the probe's margin, so through zarr-python a chunk on a region's edge was decoded once
+per window that touched it (on 7 x 7 tiles of 1024 px about 2.2 decodes per chunk, plus the
+reduced level's few chunks once per window), at about 4.7 ms of CPU per 1024 px chunk. Here
+the chunks come from the render's own reader of its shards
+(:class:`stackbuild.render.levelread.LevelReader`: one ``pread`` and a CRC-32C check per
+chunk); a window of the probe (:class:`LazyWindow`) then decodes only the Blosc blocks under
+the rows its blocks are cut from (:mod:`stackbuild.render.bloscrows`: 38 % of the blocks on
+7 x 7 tiles of 1024 px), and a chunk is kept while a later window of the same task still
+needs it (:class:`ChunkKeeper`; the farthest-needed chunk is dropped first when over its
+budget). A window holds only the chunks under the blocks it is asked for; elsewhere it holds
+the fill value, which the probe never reads.
 
 A chunk that cannot be decoded raises the error that names array, plane and chunk
 (:func:`stackbuild.render.audit.chunk_error`).
@@ -21,160 +20,7 @@ from __future__ import annotations
 
 import numpy as np
 
-
-class LevelReader:
-    """Reads whole chunks of one 3-D level ``(z, y, x)`` whose chunks are one plane deep."""
-
-    def __init__(self, layout, label: str):
-        self.layout, self.label = layout, label
-        self.chunk = tuple(int(c) for c in layout.chunk[1:])
-        self.per_shard = tuple(int(s) for s in layout.per_shard)
-        self.shape = tuple(int(s) for s in layout.shape)
-        self.dtype, self.fill = layout.dtype, layout.fill
-        self._index: dict[tuple, np.ndarray | None] = {}
-
-    @classmethod
-    def of(cls, array, label: str) -> "LevelReader | None":
-        """Return a reader of zarr ``array`` (None when its layout is not the render's, or chunks span planes)."""
-        if isinstance(array, StoredLevel):
-            return cls(array.reader.layout, label)
-        import zarr
-
-        from ..render.shardfile import shard_writer
-
-        if not isinstance(array, zarr.Array) or array.ndim != 3:
-            return None
-        layout = shard_writer(array)
-        if layout is None or layout.chunk[0] != 1 or layout.shard[0] != 1:
-            return None
-        return cls(layout, label)
-
-    def _path(self, shard: tuple):
-        return self.layout.folder / self.layout.key(shard)
-
-    def _shard_index(self, shard: tuple) -> np.ndarray | None:
-        """Return the shard's ``(..., 2)`` offsets and lengths (None: no shard file, every chunk the fill)."""
-        if shard not in self._index:
-            try:
-                with open(self._path(shard), "rb") as fh:
-                    self._index[shard] = self.layout.read_index(fh)
-            except FileNotFoundError:
-                self._index[shard] = None
-            except ValueError as exc:
-                raise self._damaged(shard[0], shard[1] * self.per_shard[1], shard[2] * self.per_shard[2],
-                                    exc) from None
-        return self._index[shard]
-
-    def _damaged(self, z: int, row: int, col: int, exc: BaseException):
-        from ..render.audit import chunk_error
-
-        return chunk_error(self.label, self.layout.folder, z, row, col, exc)
-
-    def stream(self, z: int, row: int, col: int):
-        """Return chunk ``(row, col)`` of plane ``z`` as a :class:`~stackbuild.qc.bloscrows.LazyChunk` (its checksum
-        checked, nothing decoded yet), or the full chunk of the fill value when it was never written."""
-        from ..render.shardfile import ABSENT
-        from .bloscrows import LazyChunk
-
-        shard = (z, row // self.per_shard[1], col // self.per_shard[2])
-        index = self._shard_index(shard)
-        entry = None if index is None else index[0, row % self.per_shard[1], col % self.per_shard[2]]
-        if entry is None or entry[0] == ABSENT:
-            return np.full(self.chunk, self.fill, self.dtype)
-        try:
-            with open(self._path(shard), "rb") as fh:
-                data = self.layout.read_chunk(fh, entry)
-            if self.layout.blosc is None:
-                return np.frombuffer(data[:-4], self.dtype).reshape(self.chunk)
-            return LazyChunk(data[:-4], self.chunk, self.dtype, self.layout.blosc.decode)
-        except Exception as exc:  # codecs raise many types for damaged bytes
-            raise self._damaged(z, row, col, exc) from None
-
-    def rows(self, chunk, key: tuple, r0: int, r1: int) -> np.ndarray:
-        """Return chunk ``key = (z, row, col)`` (from :meth:`stream`) with at least its rows ``r0:r1`` decoded."""
-        if isinstance(chunk, np.ndarray):
-            return chunk
-        try:
-            return chunk.rows(r0, r1)
-        except Exception as exc:  # codecs raise many types for damaged bytes
-            raise self._damaged(*key, exc) from None
-
-    def read(self, z: int, row: int, col: int) -> np.ndarray:
-        """Return chunk ``(row, col)`` of plane ``z`` (the full chunk, padded with the fill beyond the array)."""
-        return self.rows(self.stream(z, row, col), (z, row, col), 0, self.chunk[0])
-
-    def chunks_under(self, boxes: np.ndarray) -> set[tuple[int, int]]:
-        """Return the ``(row, col)`` chunks that boxes ``(N, 4)`` ``[y0, y1, x0, x1)`` (clipped) meet."""
-        ch, cw = self.chunk
-        out = set()
-        for y0, y1, x0, x1 in np.asarray(boxes, int).reshape(-1, 4):
-            y0, x0, y1, x1 = max(0, y0), max(0, x0), min(self.shape[1], y1), min(self.shape[2], x1)
-            if y1 > y0 and x1 > x0:
-                out.update((r, c) for r in range(y0 // ch, (y1 - 1) // ch + 1) for c in range(x0 // cw, (x1 - 1) // cw + 1))
-        return out
-
-
-class StoredLevel:
-    """A written 3-D level read straight from its shard files: ``shape``, ``dtype`` and numpy-style reads.
-
-    What the report reads through a level (planes, windows, lines through the stack) without
-    zarr-python, whose import alone costs a report process about 0.3 s of CPU: the layout comes from
-    the array's ``zarr.json`` (:func:`stackbuild.render.shardfile.shard_reader`), each chunk is read with
-    its CRC-32C checked and decoded only under the rows asked for. ``tests/test_qc_levelread.py``
-    compares its reads with zarr-python's.
-    """
-
-    ndim = 3
-
-    def __init__(self, layout, label: str):
-        self.reader = LevelReader(layout, label)
-        self.shape, self.dtype = self.reader.shape, self.reader.dtype
-
-    @classmethod
-    def open(cls, folder, label: str) -> "StoredLevel | None":
-        """Return the level stored in ``folder`` (None when its layout is not the render's: read it through zarr)."""
-        from ..render.shardfile import shard_reader
-
-        layout = shard_reader(folder)
-        if layout is None or len(layout.shape) != 3 or layout.chunk[0] != 1 or layout.shard[0] != 1:
-            return None
-        return cls(layout, label)
-
-    def __getitem__(self, key) -> np.ndarray:
-        """Return ``level[key]`` for integers and slices of step 1, as numpy (and zarr) index."""
-        import operator
-
-        key = key if isinstance(key, tuple) else (key,)
-        if len(key) > 3:
-            raise IndexError(f"too many indices for a 3-D level: {key!r}")
-        key = key + (slice(None),) * (3 - len(key))
-        ranges, kept = [], []
-        for k, n in zip(key, self.shape):
-            if isinstance(k, slice):
-                a, b, step = k.indices(n)
-                if step != 1:
-                    raise IndexError("only slices of step 1 are read")
-                ranges.append((a, max(a, b)))
-                kept.append(slice(None))
-            else:
-                i = operator.index(k)
-                i = i + n if i < 0 else i
-                if not 0 <= i < n:
-                    raise IndexError(f"index {k} is out of bounds for an axis of size {n}")
-                ranges.append((i, i + 1))
-                kept.append(0)
-        (z0, z1), (y0, y1), (x0, x1) = ranges
-        out = np.empty((z1 - z0, y1 - y0, x1 - x0), self.dtype)
-        rd = self.reader
-        ch, cw = rd.chunk
-        for z in range(z0, z1):
-            for r in range(y0 // ch, (y1 - 1) // ch + 1) if y1 > y0 else ():
-                a0, a1 = max(y0, r * ch), min(y1, (r + 1) * ch)
-                for c in range(x0 // cw, (x1 - 1) // cw + 1) if x1 > x0 else ():
-                    b0, b1 = max(x0, c * cw), min(x1, (c + 1) * cw)
-                    data = rd.rows(rd.stream(z, r, c), (z, r, c), a0 - r * ch, a1 - r * ch)
-                    out[z - z0, a0 - y0:a1 - y0, b0 - x0:b1 - x0] = data[a0 - r * ch:a1 - r * ch, b0 - c * cw:b1 - c * cw]
-        return out[tuple(kept)]
+from ..render.levelread import LevelReader
 
 
 class ChunkKeeper:

@@ -51,7 +51,7 @@ class AlignSettings:
         round finer at about twice the align CPU, for an identifiable
         residual 0.02-0.04 px lower on the grid-path variants (held-out seeds
         7-9, ``tests/benchmarks/bench_accuracy.py``: realistic/base 0.52 /
-        0.52 / 0.50 px RMS at 2 against 0.56 / 0.53 / 0.54 at 4; the last of
+        0.52 / 0.50 px RMS at 2 against 0.53 / 0.54 / 0.54 at 4; the last of
         36 sections of realistic/long seed 7 1.46 px at 2, 1.37 at 4).
     smoothness_weight : float
         Weight of the in-plane smoothness (membrane) of each displacement field,

@@ -315,6 +315,11 @@ class ByteLRU:
         self._bytes = 0
         self._lock = threading.Lock()
 
+    def __contains__(self, key) -> bool:
+        """Return whether ``key`` is held (without marking it recent)."""
+        with self._lock:
+            return key in self._items
+
     def get(self, key):
         """Return the value for ``key`` (marking it recent) or ``None``."""
         with self._lock:
@@ -457,11 +462,7 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
         centres, and the value is never mixed with a border constant.
     """
     p = Path(tile.path)
-    try:
-        st = p.stat()
-    except OSError:
-        raise InputError("tile is missing", file=p, section=section) from None
-    key = (str(p), st.st_size, st.st_mtime_ns, profile_key, float(tile.gain), float(tile.offset), scale)
+    key = _cache_key(tile, profile_key, scale, section)
     TILE_CACHE.grow_to(cache_bytes_for(tile.height, tile.width))
     with _PREP_LOCKS[hash(key) % len(_PREP_LOCKS)]:  # two threads never prepare the same tile
         value = TILE_CACHE.get(key)
@@ -472,6 +473,17 @@ def prepared_tile(tile, profile: np.ndarray | None, profile_key: str, scale: int
 
 
 _PREP_LOCKS = [threading.Lock() for _ in range(64)]
+
+
+def _cache_key(tile, profile_key: str, scale: int, section: int | None = None) -> tuple:
+    """Return the tile cache's key of ``tile`` prepared at ``scale``: its file's identity, corrections and scale."""
+    p = Path(tile.path)
+    try:
+        st = p.stat()
+    except OSError:
+        raise InputError("tile is missing", file=p, section=section) from None
+    return (str(p), st.st_size, st.st_mtime_ns, profile_key, float(tile.gain), float(tile.offset), scale)
+
 
 
 def _prepare(p: Path, tile, profile, scale: int, section, dtype: str | None = None) -> np.ndarray:
@@ -562,6 +574,51 @@ def prepared_window(tile, profile: np.ndarray | None, window: tuple[int, int, in
     return value
 
 
+def prepared_reduced_window(tile, profile: np.ndarray | None, window: tuple[int, int, int, int], scale: int,
+                            section: int | None = None, dtype: str | None = None) -> np.ndarray | None:
+    """Return rows ``r0:r1``, columns ``c0:c1`` of the prepared tile at ``scale``, reading only the pixels under them.
+
+    Equal, pixel for pixel, to the same slice of ``prepared_tile(tile, profile, key, scale)[0]``
+    (the ring included): a reduced pixel is the mean of its own ``scale x scale`` full-resolution
+    pixels (:func:`block_mean`), so the full-resolution window is cut at multiples of ``scale`` and
+    corrected and reduced by itself (``tests/test_tiles_window.py`` compares the two). An align
+    region task at production size (regions of about 2,200 px, tiles of 4,096 px) then reads
+    about the region, not every tile it touches whole. None when the file cannot be read by window
+    (see :func:`read_window`) or the window holds no interior pixel.
+    """
+    r0, r1, c0, c1 = window
+    h, w = tile.height, tile.width
+    nr, nc = -(-h // scale), -(-w // scale)
+    jr0, jr1 = max(r0 - 1, 0), min(r1 - 1, nr)
+    jc0, jc1 = max(c0 - 1, 0), min(c1 - 1, nc)
+    if jr0 >= jr1 or jc0 >= jc1:
+        return None
+    # columns widened to multiples of _LANES reduced pixels (or the tile's edge): OpenCV's vectorised block
+    # mean then groups the pixels of a row as it does for the whole tile, and rounds them alike
+    kc0, kc1 = jc0 // _LANES * _LANES, min(-(-jc1 // _LANES) * _LANES, nc)
+    a, b, c, d = jr0 * scale, min(jr1 * scale, h), kc0 * scale, min(kc1 * scale, w)
+    raw = read_window(tile.path, h, w, (a, b), (c, d), section, dtype=dtype)
+    if raw is None:
+        return None
+    img = np.empty(raw.shape, np.float32)
+    _correct_into(img, raw, tile, None if profile is None else _illumination(profile, h, w)[a:b, c:d])
+    top, left = int(r0 == 0), int(c0 == 0)
+    value = np.empty((r1 - r0, c1 - c0), np.float32)
+    value[top:top + jr1 - jr0, left:left + jc1 - jc0] = block_mean(img, scale)[:, jc0 - kc0:jc1 - kc0]
+    _repeat_edges(value, bool(top), r1 == nr + 2, bool(left), c1 == nc + 2)
+    value.setflags(write=False)
+    return value
+
+
+#: reduced pixels of a row that OpenCV's block mean handles together, at most (16 float32 lanes: AVX-512)
+_LANES = 16
+#: a reduced tile the cache does not hold is read by window when the window holds at most this share of
+#: its pixels; a larger window prepares the whole tile into the cache, which the regions next to it then
+#: read from (rule of thumb, no source). Either way the pixels are the same, so a run's results do not
+#: depend on the order its tasks ran in
+WINDOW_SHARE = 0.5
+
+
 _ILLUMINATION = ByteLRU(0)
 
 
@@ -598,6 +655,12 @@ def illumination_at_tile_size(profile: np.ndarray, height: int, width: int) -> n
     return cv2.resize(prof, (int(width), int(height)), interpolation=cv2.INTER_LINEAR)
 
 
+def _small(window: tuple[int, int, int, int], tile, scale: int) -> bool:
+    """Return True when ``window`` holds at most :data:`WINDOW_SHARE` of the reduced tile's pixels (ring included)."""
+    r0, r1, c0, c1 = window
+    return (r1 - r0) * (c1 - c0) <= WINDOW_SHARE * (-(-tile.height // scale) + 2) * (-(-tile.width // scale) + 2)
+
+
 class SectionTiles:
     """The tile provider of one section: ``tiles(tile, scale) -> (value, weight)`` for the sampler.
 
@@ -619,8 +682,11 @@ class SectionTiles:
 
         At full resolution a window is read by itself when the file allows it
         (:func:`prepared_window`), and is not cached: neighbouring regions read
-        neighbouring windows, so each tile is read about once. Otherwise the whole
-        prepared tile comes from the cache and is sliced.
+        neighbouring windows, so each tile is read about once. At a reduced scale a
+        window of at most :data:`WINDOW_SHARE` of a tile the cache does not hold is
+        read the same way (:func:`prepared_reduced_window`; the align stage's
+        region tasks at production size). Otherwise the whole prepared tile comes
+        from the cache and is sliced.
         """
         s = self.stitch
         if window is not None and scale == 1:
@@ -628,6 +694,12 @@ class SectionTiles:
             if value is not None:
                 r0, r1, c0, c1 = window
                 return value, _padded_weight(tile.height, tile.width, 1)[r0:r1, c0:c1]
+        elif (window is not None and _small(window, tile, scale)
+              and _cache_key(tile, self._key, scale, s.section) not in TILE_CACHE):
+            value = prepared_reduced_window(tile, s.illumination, window, scale, s.section, s.dtype)
+            if value is not None:
+                r0, r1, c0, c1 = window
+                return value, _padded_weight(tile.height, tile.width, scale)[r0:r1, c0:c1]
         value, weight = prepared_tile(tile, s.illumination, self._key, scale, s.section, s.dtype)
         if window is None:
             return value, weight

@@ -118,6 +118,12 @@ def align_kinds(shape: VolumeShape, cfg) -> list[Kind]:
             "align.region": min(held_images, shape.imaged) * min(region_side, shape.section_height)
             * min(region_side, shape.section_width) / MB,
             "align.solve": (int(_get(a, "region_nodes", 16)) ** 2) * shape.imaged / MB}
+    # A region task reads its sections' tiles under its region (plus the matcher's margin) by window
+    # (tiles.prepared_reduced_window), unless its process's cache holds them; counted as read every time
+    margin = es * (_get(a, "match_half_size", 24) + _get(a, "match_max_shift", 12) + 2)
+    reads = {"align.features": shape.tiles_per_section * shape.tile_bytes,
+             "align.region": min(held_images, shape.imaged) * min(region_side + 2 * margin, shape.section_height)
+             * min(region_side + 2 * margin, shape.section_width) * shape.itemsize}
     links = sum(max(0, shape.imaged - k) for k in range(1, int(_get(a, "neighbours", 2)) + 1))
     count = {"align.pair": links}  # the pairs align/stage.py matches: (z, z + k) with both present
     rounds = int(_get(a, "elastic_rounds", 2)) if _get(a, "elastic", True) else 0
@@ -133,8 +139,7 @@ def align_kinds(shape: VolumeShape, cfg) -> list[Kind]:
                 kinds.append(Kind("align.residual", n, held, work["align.region"], note="the residual pass"))
                 continue
             n = n * rounds // (rounds + 1)
-        kinds.append(Kind(t.name, n, held, work.get(t.name, 0.0), note=t.note,
-                          reads=shape.tiles_per_section * shape.tile_bytes if t.name == "align.features" else 0.0))
+        kinds.append(Kind(t.name, n, held, work.get(t.name, 0.0), note=t.note, reads=reads.get(t.name, 0.0)))
     # The driver's CPU is bookkeeping per node block and section, every round: it crops each
     # section's alignment for every region task, stacks every section's prior field for every
     # block's solve and adds the blocks' steps back (align/stage.py: _Plan). So its work is counted

@@ -38,12 +38,17 @@ PLAIN = {
 }
 
 
+def _written(folder, flavour: dict):
+    """Return the path of a TIFF tifffile wrote from ``flavour`` (its ``data`` and ``imwrite`` options)."""
+    kw = dict(flavour)
+    path = folder / "t.tif"
+    tifffile.imwrite(path, kw.pop("data"), **kw)
+    return path
+
+
 @pytest.mark.parametrize("name", sorted(PLAIN))
 def test_plain_files_give_tifffiles_layout_and_pixels(tmp_path, name):
-    kw = dict(PLAIN[name])
-    arr = kw.pop("data")
-    path = tmp_path / "t.tif"
-    tifffile.imwrite(path, arr, **kw)
+    path = _written(tmp_path, PLAIN[name])
     got = plain_layout(str(path))
     assert got is not None, name
     assert got == _reference(path)
@@ -67,11 +72,7 @@ OTHER = {
 
 @pytest.mark.parametrize("name", sorted(OTHER))
 def test_other_layouts_are_left_to_tifffile(tmp_path, name):
-    kw = dict(OTHER[name])
-    arr = kw.pop("data")
-    path = tmp_path / "t.tif"
-    tifffile.imwrite(path, arr, **kw)
-    assert plain_layout(str(path)) is None
+    assert plain_layout(str(_written(tmp_path, OTHER[name]))) is None
 
 
 def test_not_a_tiff_or_cut_short_is_dont_know(tmp_path):

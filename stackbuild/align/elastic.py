@@ -312,8 +312,9 @@ def solve_fields(sections: list[int], shape: tuple[int, int], matches: dict, *,
     ``min ||W (D u - m)||^2 + smoothness_weight ||G u||^2 + pull ||u||^2`` (``D``
     stacks the second differences and, when asked, the first-difference
     rows), solved
-    through its normal equations (SuperLU for small stacks, preconditioned
-    conjugate gradients for large ones); x and y share the matrix. With fewer than three sections there is no
+    through its normal equations (the Cholesky of their band for small
+    stacks, SuperLU where the band is wide, preconditioned conjugate
+    gradients for large ones; :func:`_solve_spd`); x and y share the matrix. With fewer than three sections there is no
     second difference and every field is zero.
 
     A node where a section has no second-difference data (its matching

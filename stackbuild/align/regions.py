@@ -11,10 +11,12 @@ rendered with, and matches its links there. It holds ``window + neighbours``
 images of one region, never a section; it writes its matches to one small
 file in the scratch folder and returns only counts.
 
-Production size (grid spacing 128 px, elastic scale 2, blocks of 16 x 16
-nodes, match half size 24 and max shift 12 working px): a region is
-``16 * 64 + 2 * 70`` = 1164 working px square, 5.4 MB as float32; a window of
-8 + 2 sections holds 10 of them plus the sampler's tile cache.
+Production size (grid spacing 128 px, elastic scale 4, blocks of 16 x 16
+nodes, match half size 12 and max shift 6 working px): a region is
+``15 * 32 + 2 * 38 + 2`` = 558 working px square, 1.2 MB as float32; a window of
+8 + 2 sections holds 10 of them plus the sampler's tile cache. The tiles under
+a region are read by window when the process's cache does not hold them
+(:func:`stackbuild.tiles.prepared_reduced_window`).
 """
 from __future__ import annotations
 

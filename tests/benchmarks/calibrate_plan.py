@@ -224,6 +224,23 @@ def probe_kinds(tmp: Path, large: dict, shape, size: tuple, cfg) -> dict:
     return out
 
 
+def _disagreements(small: list, large: list, max_spread: float) -> list[str]:
+    """Return one line per size and stage whose CPU differs by more than ``max_spread`` between runs.
+
+    Two calibrations 15 minutes apart on a shared 2-core machine once put the production render at 85
+    and 116 CPU-hours; the plan's test against a measured build then read its render check at 1.8x
+    and 2.3-3.2x of its 2x bar. Rates from runs that disagree that much are not worth writing.
+    """
+    out = []
+    for name, runs in (("small", small), ("large", large)):
+        for stage in runs[0]["stage_cpu_s"]:
+            cpu = [m["stage_cpu_s"].get(stage, 0.0) for m in runs]
+            if min(cpu) > 0 and max(cpu) / min(cpu) > max_spread:
+                out.append(f"{name} build, {stage}: CPU {' / '.join(f'{c:.2f}' for c in cpu)} s across runs "
+                           f"({max(cpu) / min(cpu):.2f}x, more than {max_spread}x)")
+    return out
+
+
 def _size(text: str) -> tuple[int, int, int]:
     sections, grid, tile = (int(v) for v in text.split(","))
     return sections, grid, tile
@@ -239,6 +256,10 @@ def main(argv=None) -> None:
                     help="calibrate N times, one after the other, and fit the median of each measurement "
                          "(default 3; one calibration takes about 2 minutes on 2 cores)")
     ap.add_argument("--dry-run", action="store_true", help="print, do not write plan_rates.json")
+    ap.add_argument("--max-spread", type=float, default=1.3, metavar="X",
+                    help="refuse to write plan_rates.json when a stage's CPU differs by more than this factor "
+                         "between the runs of one size (a busy machine; default 1.3)")
+    ap.add_argument("--force", action="store_true", help="write plan_rates.json even when the runs disagree")
     ap.add_argument("--refit", action="store_true",
                     help="no builds: refit the factors from the measurements kept in plan_rates.json")
     ap.add_argument("--commit", default="",
@@ -265,6 +286,7 @@ def main(argv=None) -> None:
             small.append(m)
             m, shape2, folder = measure_size(tmp, f"large-{i}", *args.large)
             large.append(m)
+        noisy = _disagreements(small, large, args.max_spread)
         small, large = median_of(*small), median_of(*large)
         ratio = stored_ratio(folder / "volume.zarr")
         kinds = factors(small, large, (shape1, shape2), cfg)
@@ -306,7 +328,11 @@ def main(argv=None) -> None:
         pass
     text = json.dumps(doc, indent=1) + "\n"
     print(text)
-    if not args.dry_run:
+    for line in noisy:
+        print(f"runs disagree: {line}")
+    if noisy and not args.force:
+        print("not written: the machine was too busy for rates worth keeping (--force writes them anyway)")
+    elif not args.dry_run:
         RATES_PATH.write_text(text, encoding="utf-8")
         print(f"wrote {RATES_PATH}")
 

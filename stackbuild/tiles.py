@@ -485,7 +485,6 @@ def _cache_key(tile, profile_key: str, scale: int, section: int | None = None) -
     return (str(p), st.st_size, st.st_mtime_ns, profile_key, float(tile.gain), float(tile.offset), scale)
 
 
-
 def _prepare(p: Path, tile, profile, scale: int, section, dtype: str | None = None) -> np.ndarray:
     """Return the corrected, reduced tile with its one-pixel edge ring (float32)."""
     raw = read_tile(p, tile.height, tile.width, section, dtype=dtype)
@@ -547,44 +546,19 @@ def _repeat_edges(value: np.ndarray, top: bool, bottom: bool, left: bool, right:
 
 
 def prepared_window(tile, profile: np.ndarray | None, window: tuple[int, int, int, int],
-                    section: int | None = None, dtype: str | None = None) -> np.ndarray | None:
-    """Return rows ``r0:r1``, columns ``c0:c1`` of the full-resolution prepared tile, reading only that window.
-
-    Equal, pixel for pixel, to the same slice of ``prepared_tile(tile, profile, key, 1)[0]``
-    (the ring included), but only the raw pixels under the window are read and corrected, so a
-    render task reads each tile about once however large the tiles and whatever the order of
-    the tasks. Returns None when the tile's file cannot be read by window (compressed or
-    scattered pixels; see :func:`read_window`) or the window holds no interior pixel: the caller
-    then prepares the whole tile through the cache.
-    """
-    r0, r1, c0, c1 = window
-    h, w = tile.height, tile.width
-    a, b, c, d = max(r0 - 1, 0), min(r1 - 1, h), max(c0 - 1, 0), min(c1 - 1, w)
-    if a >= b or c >= d:
-        return None
-    raw = read_window(tile.path, h, w, (a, b), (c, d), section, dtype=dtype)
-    if raw is None:
-        return None
-    illum = None if profile is None else _illumination(profile, h, w)[a:b, c:d]
-    top, left = int(r0 == 0), int(c0 == 0)
-    value = np.empty((r1 - r0, c1 - c0), np.float32)
-    _correct_into(value[top:top + b - a, left:left + d - c], raw, tile, illum)
-    _repeat_edges(value, bool(top), r1 == h + 2, bool(left), c1 == w + 2)
-    value.setflags(write=False)
-    return value
-
-
-def prepared_reduced_window(tile, profile: np.ndarray | None, window: tuple[int, int, int, int], scale: int,
-                            section: int | None = None, dtype: str | None = None) -> np.ndarray | None:
+                    section: int | None = None, dtype: str | None = None, scale: int = 1) -> np.ndarray | None:
     """Return rows ``r0:r1``, columns ``c0:c1`` of the prepared tile at ``scale``, reading only the pixels under them.
 
     Equal, pixel for pixel, to the same slice of ``prepared_tile(tile, profile, key, scale)[0]``
-    (the ring included): a reduced pixel is the mean of its own ``scale x scale`` full-resolution
-    pixels (:func:`block_mean`), so the full-resolution window is cut at multiples of ``scale`` and
-    corrected and reduced by itself (``tests/test_tiles_window.py`` compares the two). An align
-    region task at production size (regions of about 2,200 px, tiles of 4,096 px) then reads
-    about the region, not every tile it touches whole. None when the file cannot be read by window
-    (see :func:`read_window`) or the window holds no interior pixel.
+    (the ring included), but only the raw pixels under the window are read and corrected, so a
+    render task reads each tile about once however large the tiles and whatever the order of
+    the tasks. At a reduced scale a pixel is the mean of its own ``scale x scale`` full-resolution
+    pixels (:func:`block_mean`), so the full-resolution window is cut at multiples of ``scale``
+    and reduced by itself (``tests/test_tiles_window.py`` compares the two): an align region task
+    at production size (regions of about 2,200 px, tiles of 4,096 px) then reads about its region,
+    not every tile it touches whole. Returns None when the tile's file cannot be read by window
+    (compressed or scattered pixels; see :func:`read_window`) or the window holds no interior
+    pixel: the caller then prepares the whole tile through the cache.
     """
     r0, r1, c0, c1 = window
     h, w = tile.height, tile.width
@@ -593,18 +567,24 @@ def prepared_reduced_window(tile, profile: np.ndarray | None, window: tuple[int,
     jc0, jc1 = max(c0 - 1, 0), min(c1 - 1, nc)
     if jr0 >= jr1 or jc0 >= jc1:
         return None
-    # columns widened to multiples of _LANES reduced pixels (or the tile's edge): OpenCV's vectorised block
-    # mean then groups the pixels of a row as it does for the whole tile, and rounds them alike
-    kc0, kc1 = jc0 // _LANES * _LANES, min(-(-jc1 // _LANES) * _LANES, nc)
+    # reduced: columns widened to multiples of _LANES reduced pixels (or the tile's edge), so OpenCV's
+    # vectorised block mean groups the pixels of a row as it does for the whole tile, and rounds them alike
+    lanes = _LANES if scale > 1 else 1
+    kc0, kc1 = jc0 // lanes * lanes, min(-(-jc1 // lanes) * lanes, nc)
     a, b, c, d = jr0 * scale, min(jr1 * scale, h), kc0 * scale, min(kc1 * scale, w)
     raw = read_window(tile.path, h, w, (a, b), (c, d), section, dtype=dtype)
     if raw is None:
         return None
-    img = np.empty(raw.shape, np.float32)
-    _correct_into(img, raw, tile, None if profile is None else _illumination(profile, h, w)[a:b, c:d])
+    illum = None if profile is None else _illumination(profile, h, w)[a:b, c:d]
     top, left = int(r0 == 0), int(c0 == 0)
     value = np.empty((r1 - r0, c1 - c0), np.float32)
-    value[top:top + jr1 - jr0, left:left + jc1 - jc0] = block_mean(img, scale)[:, jc0 - kc0:jc1 - kc0]
+    inner = value[top:top + jr1 - jr0, left:left + jc1 - jc0]
+    if scale == 1:      # the render's hot path: corrected straight into the window
+        _correct_into(inner, raw, tile, illum)
+    else:
+        img = np.empty(raw.shape, np.float32)
+        _correct_into(img, raw, tile, illum)
+        inner[...] = block_mean(img, scale)[:, jc0 - kc0:jc1 - kc0]
     _repeat_edges(value, bool(top), r1 == nr + 2, bool(left), c1 == nc + 2)
     value.setflags(write=False)
     return value
@@ -684,19 +664,13 @@ class SectionTiles:
         (:func:`prepared_window`), and is not cached: neighbouring regions read
         neighbouring windows, so each tile is read about once. At a reduced scale a
         window of at most :data:`WINDOW_SHARE` of a tile the cache does not hold is
-        read the same way (:func:`prepared_reduced_window`; the align stage's
-        region tasks at production size). Otherwise the whole prepared tile comes
-        from the cache and is sliced.
+        read the same way (the align stage's region tasks at production size).
+        Otherwise the whole prepared tile comes from the cache and is sliced.
         """
         s = self.stitch
-        if window is not None and scale == 1:
-            value = prepared_window(tile, s.illumination, window, s.section, s.dtype)
-            if value is not None:
-                r0, r1, c0, c1 = window
-                return value, _padded_weight(tile.height, tile.width, 1)[r0:r1, c0:c1]
-        elif (window is not None and _small(window, tile, scale)
-              and _cache_key(tile, self._key, scale, s.section) not in TILE_CACHE):
-            value = prepared_reduced_window(tile, s.illumination, window, scale, s.section, s.dtype)
+        if window is not None and (scale == 1 or (_small(window, tile, scale)
+                                                  and _cache_key(tile, self._key, scale, s.section) not in TILE_CACHE)):
+            value = prepared_window(tile, s.illumination, window, s.section, s.dtype, scale)
             if value is not None:
                 r0, r1, c0, c1 = window
                 return value, _padded_weight(tile.height, tile.width, scale)[r0:r1, c0:c1]

@@ -34,7 +34,7 @@ def test_reduced_window_equals_the_slice_of_the_whole_tile(tmp_path, shape, scal
     windows += [tuple(sorted(rng.integers(0, n_r + 1, 2))) + tuple(sorted(rng.integers(0, n_c + 1, 2)))
                 for _ in range(20)]
     for r0, r1, c0, c1 in windows:
-        got = tiles.prepared_reduced_window(tile, profile, (r0, r1, c0, c1), scale)
+        got = tiles.prepared_window(tile, profile, (r0, r1, c0, c1), scale=scale)
         if r1 - r0 == 0 or c1 - c0 == 0 or got is None:
             continue
         np.testing.assert_array_equal(got, whole[r0:r1, c0:c1], err_msg=f"window {(r0, r1, c0, c1)}")

@@ -16,7 +16,7 @@ nodes, match half size 12 and max shift 6 working px): a region is
 ``15 * 32 + 2 * 38 + 2`` = 558 working px square, 1.2 MB as float32; a window of
 8 + 2 sections holds 10 of them plus the sampler's tile cache. The tiles under
 a region are read by window when the process's cache does not hold them
-(:func:`stackbuild.tiles.prepared_reduced_window`).
+(:func:`stackbuild.tiles.prepared_window`).
 """
 from __future__ import annotations
 

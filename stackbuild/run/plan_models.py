@@ -119,7 +119,7 @@ def align_kinds(shape: VolumeShape, cfg) -> list[Kind]:
             * min(region_side, shape.section_width) / MB,
             "align.solve": (int(_get(a, "region_nodes", 16)) ** 2) * shape.imaged / MB}
     # A region task reads its sections' tiles under its region (plus the matcher's margin) by window
-    # (tiles.prepared_reduced_window), unless its process's cache holds them; counted as read every time
+    # (tiles.prepared_window), unless its process's cache holds them; counted as read every time
     margin = es * (_get(a, "match_half_size", 24) + _get(a, "match_max_shift", 12) + 2)
     reads = {"align.features": shape.tiles_per_section * shape.tile_bytes,
              "align.region": min(held_images, shape.imaged) * min(region_side + 2 * margin, shape.section_height)

@@ -320,6 +320,20 @@ def test_affine_first_difference_leaves_non_affine_slant():
     assert np.abs(_slope(plain) - _slope(aff)).max() > 0.1                  # without it, kept
 
 
+def test_affine_first_difference_alone_is_solved():
+    # invented ground truth: sections 0, 1, 3, 4 (2 lost), so no section has data on both sides and the
+    # affine first-difference rows are the only data; the solve must still give section 1 the affine
+    # field of its match with 0 (to the match noise), and 3 and 4 their zero match
+    rng = np.random.default_rng(3)
+    ys, xs = np.mgrid[0:6, 0:7].astype(float)
+    aff = np.stack([0.3 + 0.05 * xs - 0.02 * ys, -0.2 + 0.01 * xs + 0.04 * ys], -1)
+    matches = {(0, 1): (aff + 0.05 * rng.normal(size=aff.shape), np.ones((6, 7))),
+               (3, 4): (np.zeros((6, 7, 2)), np.ones((6, 7)))}
+    u = solve_fields([0, 1, 3, 4], (6, 7), matches, smoothness_weight=0.002, max_gap=1, affine_chain=1.0)
+    np.testing.assert_allclose(u[1] - u[0], aff, atol=0.06)
+    np.testing.assert_allclose(u[4] - u[3], 0.0, atol=1e-6)
+
+
 def test_block_by_block_solve_matches_the_global_solve():
     # invented matches: smooth random fields per section, noise, a fifth of the nodes without
     # data; reference: the single global solve (SciPy's SuperLU on the whole system). Issue

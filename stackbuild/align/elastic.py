@@ -131,7 +131,7 @@ def _data_terms(index: dict, nn: int, rows: list) -> tuple[sp.csr_matrix, np.nda
     """
     n = len(index)
     node = np.arange(nn)
-    ii, jj, vv = [], [], []
+    ii, jj, vv = [np.zeros(0, int)], [np.zeros(0, int)], [np.zeros(0)]     # no rows: a zero matrix
     b = np.zeros((n * nn, 2))
     for secs, coef, w, m in rows:
         start = [index[z] * nn for z in secs]
